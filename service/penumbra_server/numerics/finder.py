@@ -1,0 +1,377 @@
+"""Find a marginally outer trapped surface (Theta = 0) near a guess.
+
+Two methods behind one function, :func:`find_surface`:
+
+* ``"newton"``: Newton's method on the harmonic coefficients of h, Galerkin-projected residual
+  (Theta projected onto the real harmonics by the node quadrature; a square system). The
+  Jacobian comes from the pointwise linearisation: Theta at a node depends on h, its first and
+  second angular derivatives there, and on the fields at the node, so we perturb those six local
+  quantities (one extra geometry interpolation, for h; the five derivative perturbations reuse
+  the fields) and assemble with the basis-derivative matrices. Steps are damped by backtracking
+  on the rms residual. (Newton on a linearised expansion operator: Thornburg, CQG 21, 743 (2004).)
+* ``"flow"``: the fast flow of Gundlach, PRD 57, 863 (1998): a_lm <- a_lm - A/(1 + B l(l+1))
+  (rho Theta)_lm with A = alpha/(lmax(lmax+1)) + beta, B = beta/alpha. The defaults alpha = 1,
+  beta = 0.5 and the weight rho = h^2 / |dF| (which makes rho Theta's principal part the flat
+  angular operator for conformally flat data) are from memory, not re-read in the paper.
+  Slow but robust; the fallback when Newton fails, and the benchmark baseline.
+
+Not converging is a result: ``FindResult.status`` from :data:`STATUS_MESSAGES`.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .expansion import expansion_at
+from .geometry import PointGeometry
+from .slices import Slice
+from .sources import TrackedSource, as_tracked_source
+from .surfaces import AngularGrid, RadiusDerivatives, Surface, angular_grid, degree_of_index, unit_vectors
+
+__all__ = [
+    "FinderSettings",
+    "FindResult",
+    "STATUS_MESSAGES",
+    "CONVERGED",
+    "CONVERGED_AT_TRUNCATION",
+    "MAX_ITERATIONS",
+    "DIVERGED",
+    "OUTSIDE_DATA",
+    "LINE_SEARCH_FAILED",
+    "find_surface",
+    "expansion_of",
+]
+
+CONVERGED = 0
+CONVERGED_AT_TRUNCATION = 1
+MAX_ITERATIONS = 2
+DIVERGED = 3
+OUTSIDE_DATA = 4
+LINE_SEARCH_FAILED = 5
+
+#: Status code -> meaning. ``success`` is True exactly for codes 0 and 1.
+STATUS_MESSAGES: dict[int, str] = {
+    CONVERGED: "converged: max |Theta| at the nodes is below the tolerance",
+    CONVERGED_AT_TRUNCATION: (
+        "converged in the truncated expansion: the projected residual is below the tolerance; the "
+        "node residual is limited by l_max (raise l_max for a smaller one)"
+    ),
+    MAX_ITERATIONS: "not converged: iteration cap reached",
+    DIVERGED: "diverged: the radius became non-positive or ran away from the guess",
+    OUTSIDE_DATA: "not converged: the surface needs data no patch provides",
+    LINE_SEARCH_FAILED: "not converged: no damped step reduced the residual",
+}
+_SUCCESS = (CONVERGED, CONVERGED_AT_TRUNCATION)
+_METHODS = ("newton", "flow")
+
+
+@dataclass(frozen=True)
+class FinderSettings:
+    """Options of :func:`find_surface`.
+
+    Attributes:
+        lmax: highest harmonic degree of the surface (common practice: 8-16 for individual
+            horizons, more for a freshly formed common horizon).
+        tolerance: max |Theta| to reach, units 1/M (common practice: 1e-8 to 1e-10).
+        max_iterations: Newton iterations (flow iterations are ``flow_iterations``).
+        method: "newton" or "flow".
+        interpolation_order: interpolation nodes per axis for grid data (even).
+        fallback_to_flow: on a failed Newton solve, run the flow from the guess and polish.
+        flow_iterations: cap on flow iterations.
+        flow_alpha, flow_beta: fast-flow parameters (Gundlach 1998; defaults from memory).
+        max_radius_factor: a surface whose largest radius exceeds this multiple of the guess's
+            mean radius counts as diverged.
+    """
+
+    lmax: int = 10
+    tolerance: float = 1e-9
+    max_iterations: int = 40
+    method: str = "newton"
+    interpolation_order: int = 4
+    fallback_to_flow: bool = True
+    flow_iterations: int = 600
+    flow_alpha: float = 1.0
+    flow_beta: float = 0.5
+    max_radius_factor: float = 20.0
+
+    def __post_init__(self) -> None:
+        if self.method not in _METHODS:
+            raise ValueError(f"method: expected one of {_METHODS}, got {self.method!r}")
+        if self.lmax < 1:
+            raise ValueError(f"lmax: expected an integer >= 1, got {self.lmax}")
+        if not self.tolerance > 0:
+            raise ValueError(f"tolerance: expected a positive number, got {self.tolerance}")
+        if self.max_iterations < 1 or self.flow_iterations < 1:
+            raise ValueError("max_iterations and flow_iterations: expected integers >= 1")
+
+
+@dataclass(frozen=True)
+class FindResult:
+    """Outcome of one find.
+
+    Attributes:
+        surface: the last iterate (the MOTS when ``success``), or None if no iterate could be
+            evaluated.
+        success: True for status 0 or 1.
+        status: a key of :data:`STATUS_MESSAGES`.
+        message: the status meaning plus specifics.
+        nit: iterations taken.
+        residual_max_history, residual_rms_history: max and rms of Theta (1/M) at the nodes,
+            one entry per evaluated iterate.
+        geometry_evaluations: how many times fields were interpolated at a point set.
+        wall_time_s: seconds spent.
+        method: "newton", "flow" or "newton+flow" (Newton failed, flow then Newton polish).
+    """
+
+    surface: Surface | None
+    success: bool
+    status: int
+    message: str
+    nit: int
+    residual_max_history: tuple[float, ...]
+    residual_rms_history: tuple[float, ...]
+    geometry_evaluations: int
+    wall_time_s: float
+    method: str
+    projected_residual: float = float("nan")
+
+    @property
+    def residual_max(self) -> float:
+        """Last max |Theta| (1/M), NaN if nothing was evaluated."""
+        return self.residual_max_history[-1] if self.residual_max_history else float("nan")
+
+
+@dataclass
+class _Run:
+    """Book-keeping of one solve (local to the call)."""
+
+    source: TrackedSource
+    grid: AngularGrid
+    max_hist: list[float] = field(default_factory=list)
+    rms_hist: list[float] = field(default_factory=list)
+    uncovered_note: str = ""
+
+
+@dataclass(frozen=True, eq=False)
+class _Evaluated:
+    surface: Surface
+    rd: RadiusDerivatives
+    points: np.ndarray
+    geometry: PointGeometry
+    theta: np.ndarray
+    u: np.ndarray
+
+
+def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
+    """Theta at the nodes of ``surface``; None (with a note) when data is missing there."""
+    rd = surface.on_grid(run.grid)
+    pts = surface.points(rd)
+    geo = run.source(pts)
+    if not geo.covered.all():
+        bad = ~geo.covered
+        t, p = run.grid.theta[bad], run.grid.phi[bad]
+        run.uncovered_note = (
+            f"{int(bad.sum())} of {bad.size} surface points have no patch whose stencil covers them "
+            f"(theta {np.degrees(t.min()):.0f}..{np.degrees(t.max()):.0f} deg, phi "
+            f"{np.degrees(p.min()):.0f}..{np.degrees(p.max()):.0f} deg); {run.source.describe_uncovered(pts[bad])}"
+        )
+        return None
+    terms = expansion_at(rd, geo)
+    th = terms.theta
+    run.max_hist.append(float(np.max(np.abs(th))))
+    run.rms_hist.append(float(np.sqrt(np.sum(run.grid.weights * th**2) / (4 * np.pi))))
+    return _Evaluated(surface, rd, pts, geo, th, terms.u)
+
+
+def _projected_rms(run: _Run, values: np.ndarray) -> float:
+    return float(np.linalg.norm(run.grid.project(values)) / np.sqrt(4 * np.pi))
+
+
+def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
+    """d(projected Theta)/d(coefficients), square ((lmax+1)^2)."""
+    rd, geo = ev.rd, ev.geometry
+    scale = float(np.mean(rd.h))
+    # h: moves the point too, so the fields are re-interpolated (the one extra evaluation).
+    eps_h = 1e-7 * scale
+    n, _, _ = unit_vectors(rd.theta, rd.phi)
+    geo_h = run.source(ev.points + eps_h * n)
+    if not geo_h.covered.all():
+        geo_h = geo  # at the data edge: drop the field variation rather than fail
+    d_h = (expansion_at(rd.replace(h=rd.h + eps_h), geo_h).theta - ev.theta) / eps_h
+    cols = {}
+    # First derivatives enter nonlinearly: central differences at fixed fields.
+    for name in ("h_t", "h_p"):
+        eps = 1e-5 * scale
+        plus = expansion_at(rd.replace(**{name: getattr(rd, name) + eps}), geo).theta
+        minus = expansion_at(rd.replace(**{name: getattr(rd, name) - eps}), geo).theta
+        cols[name] = (plus - minus) / (2 * eps)
+    # Second derivatives enter linearly: a unit one-sided difference is exact up to round-off.
+    for name in ("h_tt", "h_tp", "h_pp"):
+        eps = scale
+        cols[name] = (expansion_at(rd.replace(**{name: getattr(rd, name) + eps}), geo).theta - ev.theta) / eps
+    B = run.grid.basis
+    J_nodes = (
+        d_h[:, None] * B.Y
+        + cols["h_t"][:, None] * B.d_theta
+        + cols["h_p"][:, None] * B.d_phi
+        + cols["h_tt"][:, None] * B.d_theta_theta
+        + cols["h_tp"][:, None] * B.d_theta_phi
+        + cols["h_pp"][:, None] * B.d_phi_phi
+    )
+    return B.Y.T @ (run.grid.weights[:, None] * J_nodes)
+
+
+def _diverged(surface: Surface, run: _Run, limit: float) -> bool:
+    h = surface.on_grid(run.grid).h
+    return bool(np.min(h) <= 0 or np.max(h) > limit or not np.all(np.isfinite(h)))
+
+
+def _newton(run: _Run, guess: Surface, settings: FinderSettings) -> tuple[int, _Evaluated | None, int, float]:
+    """(status, last evaluated iterate, iterations, projected residual)."""
+    limit = settings.max_radius_factor * max(guess.mean_radius, 1e-300)
+    ev = _evaluate(run, guess)
+    if ev is None:
+        return OUTSIDE_DATA, None, 0, float("nan")
+    proj = _projected_rms(run, ev.theta)
+    for it in range(1, settings.max_iterations + 1):
+        if run.max_hist[-1] <= settings.tolerance:
+            return CONVERGED, ev, it - 1, proj
+        if proj <= settings.tolerance:
+            return CONVERGED_AT_TRUNCATION, ev, it - 1, proj
+        J = _jacobian(run, ev)
+        rhs = run.grid.project(ev.theta)
+        try:
+            step = np.linalg.solve(J, -rhs)
+        except np.linalg.LinAlgError:
+            step = np.linalg.lstsq(J, -rhs, rcond=None)[0]
+        # Backtrack on the projected residual: it is what the Galerkin Newton step reduces; the
+        # node residual also holds the part beyond l_max, which no step can remove.
+        lam = 1.0
+        accepted = None
+        for _ in range(10):
+            trial = Surface(ev.surface.centre, ev.surface.lmax, ev.surface.coefficients + lam * step)
+            if _diverged(trial, run, limit):
+                lam *= 0.5
+                continue
+            cand = _evaluate(run, trial)
+            if cand is None:
+                return OUTSIDE_DATA, ev, it, proj
+            cand_proj = _projected_rms(run, cand.theta)
+            if cand_proj < (1.0 - 1e-4 * lam) * proj or cand_proj <= settings.tolerance:
+                accepted = cand
+                break
+            # Rejected trial: drop its history entry so the history follows accepted iterates.
+            run.max_hist.pop()
+            run.rms_hist.pop()
+            lam *= 0.5
+        if accepted is None:
+            return LINE_SEARCH_FAILED, ev, it, proj
+        ev = accepted
+        proj = cand_proj
+    if run.max_hist[-1] <= settings.tolerance:
+        return CONVERGED, ev, settings.max_iterations, proj
+    if proj <= settings.tolerance:
+        return CONVERGED_AT_TRUNCATION, ev, settings.max_iterations, proj
+    return MAX_ITERATIONS, ev, settings.max_iterations, proj
+
+
+def _flow(run: _Run, guess: Surface, settings: FinderSettings, tolerance: float) -> tuple[int, _Evaluated | None, int, float]:
+    """Gundlach's fast flow. The projected residual here is that of rho Theta / mean(rho)."""
+    lmax = guess.lmax
+    ell = degree_of_index(lmax)
+    alpha, beta = settings.flow_alpha, settings.flow_beta
+    A = alpha / (lmax * (lmax + 1)) + beta
+    B = beta / alpha
+    gain = A / (1.0 + B * ell * (ell + 1))
+    limit = settings.max_radius_factor * guess.mean_radius
+    surface = guess
+    ev = None
+    proj = float("nan")
+    for it in range(settings.flow_iterations + 1):
+        ev = _evaluate(run, surface)
+        if ev is None:
+            return OUTSIDE_DATA, None, it, proj
+        rho = ev.rd.h**2 / ev.u
+        weighted = rho * ev.theta
+        proj = _projected_rms(run, weighted) / float(np.mean(rho))
+        if run.max_hist[-1] <= tolerance:
+            return CONVERGED, ev, it, proj
+        if proj <= 1e-3 * tolerance:
+            return CONVERGED_AT_TRUNCATION, ev, it, proj
+        if it == settings.flow_iterations:
+            break
+        surface = Surface(surface.centre, lmax, surface.coefficients - gain * run.grid.project(weighted))
+        if _diverged(surface, run, limit):
+            return DIVERGED, ev, it, proj
+    return MAX_ITERATIONS, ev, settings.flow_iterations, proj
+
+
+def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSettings()) -> FindResult:
+    """Find a MOTS near ``guess``.
+
+    Args:
+        data: a :class:`Slice` (grid data; only sub-boxes around the surface are touched), a
+            reference spacetime (anything with ``.geometry(points)``), or a callable
+            ``points (N, 3) -> PointGeometry``.
+        guess: starting surface; re-expanded to ``settings.lmax``.
+        settings: :class:`FinderSettings`.
+
+    Returns:
+        :class:`FindResult`; failure to converge is reported there, not raised.
+
+    Raises:
+        SliceError: the data a surface needs holds NaN or infinity.
+    """
+    start = time.perf_counter()
+    source = as_tracked_source(data, order=settings.interpolation_order)
+    grid = angular_grid(settings.lmax)
+    run = _Run(source, grid)
+    guess = guess.with_lmax(settings.lmax)
+    if settings.method == "flow":
+        status, ev, nit, proj = _flow(run, guess, settings, settings.tolerance)
+        method = "flow"
+    else:
+        status, ev, nit, proj = _newton(run, guess, settings)
+        method = "newton"
+        if status not in _SUCCESS and status != OUTSIDE_DATA and settings.fallback_to_flow:
+            # Flow to a loose residual from the original guess, then let Newton finish.
+            flow_status, flow_ev, flow_nit, _ = _flow(run, guess, settings, max(settings.tolerance, 1e-4))
+            if flow_ev is not None and flow_status in _SUCCESS + (MAX_ITERATIONS,):
+                status, ev2, nit2, proj = _newton(run, flow_ev.surface, settings)
+                ev = ev2 or flow_ev
+                nit = nit + flow_nit + nit2
+                method = "newton+flow"
+    message = STATUS_MESSAGES[status]
+    if status == OUTSIDE_DATA and run.uncovered_note:
+        message = f"{message}: {run.uncovered_note}"
+    if run.max_hist:
+        message = f"{message} (max |Theta| = {run.max_hist[-1]:.3e} / M after {nit} iterations)"
+    return FindResult(
+        surface=ev.surface if ev is not None else None,
+        success=status in _SUCCESS,
+        status=status,
+        message=message,
+        nit=nit,
+        residual_max_history=tuple(run.max_hist),
+        residual_rms_history=tuple(run.rms_hist),
+        geometry_evaluations=source.evaluations,
+        wall_time_s=time.perf_counter() - start,
+        method=method,
+        projected_residual=proj,
+    )
+
+
+def expansion_of(data, surface: Surface, *, order: int = 4) -> np.ndarray:
+    """Theta (1/M) at the collocation nodes of ``surface`` (``angular_grid(surface.lmax)``).
+
+    Raises ValueError if the data does not cover every node.
+    """
+    source = as_tracked_source(data, order=order)
+    run = _Run(source, angular_grid(surface.lmax))
+    ev = _evaluate(run, surface)
+    if ev is None:
+        raise ValueError(f"surface: {run.uncovered_note}")
+    return ev.theta

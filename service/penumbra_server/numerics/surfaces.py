@@ -1,0 +1,279 @@
+"""Star-shaped surfaces r = h(theta, phi) about a centre, h expanded in real spherical harmonics.
+
+Real harmonics (orthonormal on the unit sphere, no Condon-Shortley sign games needed since only
+orthonormality matters here)::
+
+    Y_l0      = P_l^0(theta)
+    Y_lm      = sqrt(2) P_l^m(theta) cos(m phi)      m > 0
+    Y_l,-m    = sqrt(2) P_l^m(theta) sin(m phi)      m > 0
+
+with P_l^m the spherical (fully normalised) associated Legendre functions. Coefficient of
+(l, m) sits at index ``l*l + l + m``.
+
+Collocation and quadrature nodes: Gauss-Legendre in cos(theta) (no point on a pole) times a
+uniform phi grid. With ``n_theta >= l_max + 1`` and ``n_phi >= 2 l_max + 1`` the quadrature is
+exact for products of two harmonics of degree <= l_max.
+"""
+
+from __future__ import annotations
+
+import functools
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.special import sph_legendre_p_all
+
+__all__ = [
+    "coefficient_count",
+    "degree_of_index",
+    "HarmonicBasis",
+    "harmonic_basis",
+    "AngularGrid",
+    "angular_grid",
+    "RadiusDerivatives",
+    "Surface",
+    "unit_vectors",
+]
+
+
+def coefficient_count(lmax: int) -> int:
+    """Number of real harmonic coefficients up to degree ``lmax``: (lmax + 1)^2."""
+    return (lmax + 1) ** 2
+
+
+@functools.lru_cache(maxsize=64)
+def degree_of_index(lmax: int) -> np.ndarray:
+    """(n_coef,) degree l of each coefficient index, read-only."""
+    l = np.concatenate([np.full(2 * l + 1, l) for l in range(lmax + 1)])
+    l.setflags(write=False)
+    return l
+
+
+@dataclass(frozen=True, eq=False)
+class HarmonicBasis:
+    """Real harmonics and their angular derivatives at N directions.
+
+    Each matrix has shape (N, (lmax + 1)^2): ``Y``, ``d_theta``, ``d_phi``, ``d_theta_theta``,
+    ``d_theta_phi``, ``d_phi_phi``.
+    """
+
+    lmax: int
+    Y: np.ndarray
+    d_theta: np.ndarray
+    d_phi: np.ndarray
+    d_theta_theta: np.ndarray
+    d_theta_phi: np.ndarray
+    d_phi_phi: np.ndarray
+
+
+def harmonic_basis(lmax: int, theta: np.ndarray, phi: np.ndarray) -> HarmonicBasis:
+    """Real harmonics up to ``lmax`` and derivatives up to second order at (theta, phi) (radians).
+
+    ``theta`` and ``phi`` are 1-D arrays of equal length N.
+    """
+    if lmax < 0:
+        raise ValueError(f"lmax: expected an integer >= 0, got {lmax}")
+    theta = np.asarray(theta, dtype=float).ravel()
+    phi = np.asarray(phi, dtype=float).ravel()
+    if theta.shape != phi.shape:
+        raise ValueError(f"theta and phi: expected equal lengths, got {theta.shape} and {phi.shape}")
+    # p[d, l, m, n]: d-th theta derivative of the spherical Legendre function (m >= 0 used).
+    p = sph_legendre_p_all(lmax, lmax, theta, diff_n=2)
+    n = theta.size
+    ncoef = coefficient_count(lmax)
+    mats = {k: np.zeros((n, ncoef)) for k in ("Y", "t", "p", "tt", "tp", "pp")}
+    root2 = np.sqrt(2.0)
+    for l in range(lmax + 1):
+        for m in range(-l, l + 1):
+            col = l * l + l + m
+            am = abs(m)
+            P, Pt, Ptt = p[0, l, am], p[1, l, am], p[2, l, am]
+            if m == 0:
+                mats["Y"][:, col] = P
+                mats["t"][:, col] = Pt
+                mats["tt"][:, col] = Ptt
+                continue
+            if m > 0:
+                f, fp, fpp = np.cos(am * phi), -am * np.sin(am * phi), -(am**2) * np.cos(am * phi)
+            else:
+                f, fp, fpp = np.sin(am * phi), am * np.cos(am * phi), -(am**2) * np.sin(am * phi)
+            mats["Y"][:, col] = root2 * P * f
+            mats["t"][:, col] = root2 * Pt * f
+            mats["p"][:, col] = root2 * P * fp
+            mats["tt"][:, col] = root2 * Ptt * f
+            mats["tp"][:, col] = root2 * Pt * fp
+            mats["pp"][:, col] = root2 * P * fpp
+    return HarmonicBasis(lmax, mats["Y"], mats["t"], mats["p"], mats["tt"], mats["tp"], mats["pp"])
+
+
+@dataclass(frozen=True, eq=False)
+class AngularGrid:
+    """Collocation/quadrature nodes: Gauss-Legendre in cos(theta) x uniform phi.
+
+    Attributes:
+        lmax: highest degree the grid is built for.
+        theta, phi: (N,) node angles in radians, N = n_theta * n_phi, theta-major.
+        weights: (N,) quadrature weights for integrals over solid angle (sum = 4 pi).
+        basis: :class:`HarmonicBasis` at the nodes.
+    """
+
+    lmax: int
+    n_theta: int
+    n_phi: int
+    theta: np.ndarray
+    phi: np.ndarray
+    weights: np.ndarray
+    basis: HarmonicBasis
+
+    @property
+    def size(self) -> int:
+        return int(self.theta.size)
+
+    def project(self, values: np.ndarray) -> np.ndarray:
+        """Harmonic coefficients of nodal ``values`` (N,) by quadrature."""
+        return self.basis.Y.T @ (self.weights * values)
+
+
+@functools.lru_cache(maxsize=32)
+def angular_grid(lmax: int, n_theta: int | None = None, n_phi: int | None = None) -> AngularGrid:
+    """The node set for degree ``lmax`` (memoised: a pure function of its arguments).
+
+    Defaults: n_theta = lmax + 2 and n_phi = 2 n_theta, a little above the exactness minimum so
+    that the projection of the (nonlinear) expansion aliases less.
+    """
+    n_theta = int(n_theta or lmax + 2)
+    n_phi = int(n_phi or 2 * n_theta)
+    if n_theta < lmax + 1 or n_phi < 2 * lmax + 1:
+        raise ValueError(
+            f"angular grid: n_theta >= lmax + 1 and n_phi >= 2 lmax + 1 needed, got {n_theta}, {n_phi} for lmax {lmax}"
+        )
+    x, w = np.polynomial.legendre.leggauss(n_theta)
+    th = np.arccos(x)[::-1]  # increasing theta
+    w = w[::-1]
+    ph = (np.arange(n_phi) + 0.5) * (2.0 * np.pi / n_phi)
+    theta = np.repeat(th, n_phi)
+    phi = np.tile(ph, n_theta)
+    weights = np.repeat(w, n_phi) * (2.0 * np.pi / n_phi)
+    for arr in (theta, phi, weights):
+        arr.setflags(write=False)
+    return AngularGrid(lmax, n_theta, n_phi, theta, phi, weights, harmonic_basis(lmax, theta, phi))
+
+
+def unit_vectors(theta: np.ndarray, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(N, 3) radial unit vector n, e_theta and e_phi at the given angles."""
+    st, ct, sp, cp = np.sin(theta), np.cos(theta), np.sin(phi), np.cos(phi)
+    n = np.stack([st * cp, st * sp, ct], axis=-1)
+    e_t = np.stack([ct * cp, ct * sp, -st], axis=-1)
+    e_p = np.stack([-sp, cp, np.zeros_like(sp)], axis=-1)
+    return n, e_t, e_p
+
+
+@dataclass(frozen=True, eq=False)
+class RadiusDerivatives:
+    """h and its angular derivatives at N directions (all (N,), units of M)."""
+
+    theta: np.ndarray
+    phi: np.ndarray
+    h: np.ndarray
+    h_t: np.ndarray
+    h_p: np.ndarray
+    h_tt: np.ndarray
+    h_tp: np.ndarray
+    h_pp: np.ndarray
+
+    def replace(self, **changes: np.ndarray) -> "RadiusDerivatives":
+        values = {k: getattr(self, k) for k in ("theta", "phi", "h", "h_t", "h_p", "h_tt", "h_tp", "h_pp")}
+        values.update(changes)
+        return RadiusDerivatives(**values)
+
+
+@dataclass(frozen=True, eq=False)
+class Surface:
+    """A star-shaped surface x(theta, phi) = centre + h(theta, phi) n(theta, phi).
+
+    Attributes:
+        centre: (3,) coordinate centre, units of M.
+        lmax: highest harmonic degree.
+        coefficients: ((lmax + 1)^2,) real-harmonic coefficients of h, units of M.
+    """
+
+    centre: np.ndarray
+    lmax: int
+    coefficients: np.ndarray
+
+    def __post_init__(self) -> None:
+        centre = np.asarray(self.centre, dtype=float).reshape(3)
+        coeffs = np.asarray(self.coefficients, dtype=float).ravel()
+        if coeffs.size != coefficient_count(self.lmax):
+            raise ValueError(
+                f"coefficients: expected {coefficient_count(self.lmax)} values for lmax {self.lmax}, got {coeffs.size}"
+            )
+        centre = centre.copy()
+        coeffs = coeffs.copy()
+        centre.setflags(write=False)
+        coeffs.setflags(write=False)
+        object.__setattr__(self, "centre", centre)
+        object.__setattr__(self, "coefficients", coeffs)
+        object.__setattr__(self, "lmax", int(self.lmax))
+
+    @classmethod
+    def sphere(cls, centre, radius: float, lmax: int) -> "Surface":
+        """A coordinate sphere of the given radius (units of M)."""
+        if not radius > 0:
+            raise ValueError(f"radius: expected a positive number, got {radius}")
+        c = np.zeros(coefficient_count(lmax))
+        c[0] = radius * np.sqrt(4.0 * np.pi)  # Y_00 = 1 / sqrt(4 pi)
+        return cls(np.asarray(centre, dtype=float), lmax, c)
+
+    @property
+    def mean_radius(self) -> float:
+        """Solid-angle mean of h (the l = 0 part), units of M."""
+        return float(self.coefficients[0] / np.sqrt(4.0 * np.pi))
+
+    def translated(self, new_centre) -> "Surface":
+        """The same shape moved rigidly to ``new_centre``."""
+        return Surface(np.asarray(new_centre, dtype=float), self.lmax, self.coefficients)
+
+    def with_lmax(self, lmax: int) -> "Surface":
+        """The same expansion truncated or zero-padded to ``lmax``."""
+        c = np.zeros(coefficient_count(lmax))
+        n = min(c.size, self.coefficients.size)
+        c[:n] = self.coefficients[:n]
+        return Surface(self.centre, lmax, c)
+
+    def derivatives(self, basis: HarmonicBasis, theta: np.ndarray, phi: np.ndarray) -> RadiusDerivatives:
+        """h and its angular derivatives where ``basis`` was evaluated."""
+        if basis.lmax != self.lmax:
+            raise ValueError(f"basis: built for lmax {basis.lmax}, surface has lmax {self.lmax}")
+        a = self.coefficients
+        return RadiusDerivatives(
+            theta, phi, basis.Y @ a, basis.d_theta @ a, basis.d_phi @ a,
+            basis.d_theta_theta @ a, basis.d_theta_phi @ a, basis.d_phi_phi @ a,
+        )
+
+    def on_grid(self, grid: AngularGrid) -> RadiusDerivatives:
+        """h and its derivatives at the nodes of ``grid``."""
+        return self.derivatives(grid.basis, grid.theta, grid.phi)
+
+    def at(self, theta, phi) -> RadiusDerivatives:
+        """h and its derivatives at arbitrary directions, e.g. along a curve."""
+        theta = np.asarray(theta, dtype=float).ravel()
+        phi = np.asarray(phi, dtype=float).ravel()
+        return self.derivatives(harmonic_basis(self.lmax, theta, phi), theta, phi)
+
+    def radius(self, theta, phi) -> np.ndarray:
+        """h(theta, phi) at arbitrary directions (flattened), units of M."""
+        return self.at(theta, phi).h
+
+    def points(self, radius: RadiusDerivatives) -> np.ndarray:
+        """(N, 3) coordinate positions of the surface at the directions of ``radius``."""
+        n, _, _ = unit_vectors(radius.theta, radius.phi)
+        return self.centre + radius.h[:, None] * n
+
+    def top_degree_fraction(self) -> float:
+        """Energy in degree ``lmax`` relative to the total (a surface-resolution indicator)."""
+        a2 = self.coefficients**2
+        total = float(a2.sum())
+        if total == 0.0:
+            return 0.0
+        return float(a2[degree_of_index(self.lmax) == self.lmax].sum() / total)

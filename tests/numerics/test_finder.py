@@ -47,9 +47,10 @@ def test_newton_converges_fast_and_costs_two_geometry_evaluations_per_iteration(
     assert result.nit <= 7
     # Quadratic convergence: each late step squares the (normalised) residual, roughly.
     assert hist[-1] < 1e-12 and hist[-2] < 1e-4
-    # Two per iteration (the iterate and the h-perturbation), plus a rare backtracking trial;
-    # never one per coefficient ((lmax+1)^2 = 49 here).
-    assert 2 * result.nit + 1 <= result.geometry_evaluations <= 2 * result.nit + 3
+    # Two per iteration (the iterate and the h-perturbation), plus the guess, the check between
+    # nodes and a rare backtracking trial; never one per coefficient ((lmax+1)^2 = 49 here).
+    assert 2 * result.nit + 2 <= result.geometry_evaluations <= 2 * result.nit + 4
+    assert result.residual_max_between_nodes < 1e-11
     np.testing.assert_allclose(result.surface.on_grid(angular_grid(6)).h, 0.5, atol=1e-11)
 
 
@@ -83,6 +84,17 @@ def test_assembled_jacobian_matches_brute_force_differences():
         minus = _evaluate(run, Surface(surface.centre, lmax, c)).theta
         brute[:, k] = grid.project((plus - minus) / (2 * eps))
     np.testing.assert_allclose(J, brute, atol=2e-6 * np.abs(brute).max())
+
+
+def test_truncation_hidden_by_the_nodes_is_reported():
+    # Equal Brill-Lindquist pair on the z axis: by symmetry the projection pins Theta to zero at
+    # every node, but not between them; l_max 8 cannot resolve the peanut to 1e-10.
+    bl = BrillLindquist(masses=np.array([1.0, 1.0]), positions=np.array([[0, 0, 0.7], [0, 0, -0.7]]))
+    coarse = find_surface(bl, Surface.sphere([0, 0, 0], 1.3, 8), settings=FinderSettings(lmax=8, tolerance=1e-10))
+    fine = find_surface(bl, Surface.sphere([0, 0, 0], 1.3, 20), settings=FinderSettings(lmax=20, tolerance=1e-10))
+    assert coarse.residual_max < 1e-12 and coarse.residual_max_between_nodes > 1e-4
+    assert coarse.status == finder_module.CONVERGED_AT_TRUNCATION and coarse.success
+    assert fine.residual_max_between_nodes < coarse.residual_max_between_nodes / 100  # spectral decay
 
 
 def test_not_converging_is_a_result_not_an_exception():

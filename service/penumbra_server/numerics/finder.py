@@ -29,7 +29,15 @@ from .expansion import expansion_at
 from .geometry import PointGeometry
 from .slices import Slice
 from .sources import TrackedSource, as_tracked_source
-from .surfaces import AngularGrid, RadiusDerivatives, Surface, angular_grid, degree_of_index, unit_vectors
+from .surfaces import (
+    AngularGrid,
+    RadiusDerivatives,
+    Surface,
+    angular_grid,
+    degree_of_index,
+    harmonic_basis,
+    unit_vectors,
+)
 
 __all__ = [
     "FinderSettings",
@@ -54,10 +62,10 @@ LINE_SEARCH_FAILED = 5
 
 #: Status code -> meaning. ``success`` is True exactly for codes 0 and 1.
 STATUS_MESSAGES: dict[int, str] = {
-    CONVERGED: "converged: max |Theta| at the nodes is below the tolerance",
+    CONVERGED: "converged: max |Theta| at the nodes and between them is below the tolerance",
     CONVERGED_AT_TRUNCATION: (
-        "converged in the truncated expansion: the projected residual is below the tolerance; the "
-        "node residual is limited by l_max (raise l_max for a smaller one)"
+        "converged in the truncated expansion: the projected residual is below the tolerance, the "
+        "residual at or between the nodes is not, and only a larger l_max reduces it"
     ),
     MAX_ITERATIONS: "not converged: iteration cap reached",
     DIVERGED: "diverged: the radius became non-positive or ran away from the guess",
@@ -124,6 +132,10 @@ class FindResult:
         geometry_evaluations: how many times fields were interpolated at a point set.
         wall_time_s: seconds spent.
         method: "newton", "flow" or "newton+flow" (Newton failed, flow then Newton polish).
+        projected_residual: rms of the Galerkin-projected Theta (1/M) at the last iterate.
+        residual_max_between_nodes: max |Theta| (1/M) of the last iterate on a second, finer
+            node set. The collocation nodes can hide truncation error (for a symmetric surface
+            the projection conditions pin Theta to zero at every node); this one does not.
     """
 
     surface: Surface | None
@@ -137,6 +149,7 @@ class FindResult:
     wall_time_s: float
     method: str
     projected_residual: float = float("nan")
+    residual_max_between_nodes: float = float("nan")
 
     @property
     def residual_max(self) -> float:
@@ -344,11 +357,19 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
                 ev = ev2 or flow_ev
                 nit = nit + flow_nit + nit2
                 method = "newton+flow"
+    between = float("nan")
+    if ev is not None:
+        between = _residual_between_nodes(source, ev.surface)
+        if status == CONVERGED and not between <= settings.tolerance:
+            status = CONVERGED_AT_TRUNCATION  # zero at the nodes only: l_max limits accuracy
     message = STATUS_MESSAGES[status]
     if status == OUTSIDE_DATA and run.uncovered_note:
         message = f"{message}: {run.uncovered_note}"
     if run.max_hist:
-        message = f"{message} (max |Theta| = {run.max_hist[-1]:.3e} / M after {nit} iterations)"
+        message = (
+            f"{message} (max |Theta| = {run.max_hist[-1]:.3e} / M at the nodes, {between:.3e} / M between "
+            f"them, after {nit} iterations)"
+        )
     return FindResult(
         surface=ev.surface if ev is not None else None,
         success=status in _SUCCESS,
@@ -361,7 +382,19 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
         wall_time_s=time.perf_counter() - start,
         method=method,
         projected_residual=proj,
+        residual_max_between_nodes=between,
     )
+
+
+def _residual_between_nodes(source: TrackedSource, surface: Surface) -> float:
+    """max |Theta| on the nodes of a grid for l_max + 5 (shared with the collocation nodes only
+    by accident); NaN where the data does not cover them."""
+    check = angular_grid(surface.lmax + 5)
+    rd = surface.derivatives(harmonic_basis(surface.lmax, check.theta, check.phi), check.theta, check.phi)
+    geo = source(surface.points(rd))
+    if not geo.covered.all():
+        return float("nan")
+    return float(np.max(np.abs(expansion_at(rd, geo).theta)))
 
 
 def expansion_of(data, surface: Surface, *, order: int = 4) -> np.ndarray:

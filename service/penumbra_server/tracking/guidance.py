@@ -1,0 +1,429 @@
+"""Refinement guidance: where the evolution's finest levels should sit until the next regrid.
+
+Advisory only: the evolution code decides what to do with it.
+
+Units: geometric (G = c = 1), lengths and times in the run's mass scale M.
+
+Levels are numbered 1 (coarsest of the nested levels around the bodies) to ``policy.levels``
+(finest); level l has the grid spacing h_fine x level_ratio^(levels - l), one spacing per level
+for the whole run as in nested (Berger-Oliger style) mesh refinement. h_fine is set by the body
+needing the finest spacing: smallest coordinate diameter / points_across_horizon. A body whose
+horizon is level_ratio^n times larger needs n fewer levels; it gets its own finest level
+``finest_level`` (< levels), whose spacing still meets the requested points across it.
+
+Per body (``BodyGuidance``), with r_max the horizon's largest coordinate radius:
+
+* centre: centre of the bounding box of the forecast path over the interval;
+* finest radius = finest_radius_factor x r_max  (the horizon and a shell around it)
+                + motion  (largest distance from the centre to the forecast path)
+                + uncertainty  (largest forecast uncertainty over the interval)
+                + buffer_points x the finest spacing  (buffer zones of the refined grid);
+* each coarser level's radius is level_ratio times the next finer one;
+* box form: the forecast path's bounding box grown by the same non-motion margins on the finest
+  level, and each coarser box level_ratio times wider about the same centre.
+
+Per level (``LevelRegion``): bodies whose spheres on that level overlap get one merged region
+(the smallest sphere enclosing both spheres; the union of their boxes). After merger the
+caller passes the remnant's forecast (``post_merger=True``): a single region around it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Mapping
+
+import numpy as np
+
+from .forecast import Forecast
+
+__all__ = [
+    "GuidanceError",
+    "RefinementPolicy",
+    "HorizonSize",
+    "BodyGuidance",
+    "LevelRegion",
+    "RefinementGuidance",
+    "refinement_guidance",
+    "guidance_times",
+]
+
+
+class GuidanceError(ValueError):
+    """Bad input to the guidance. The message names the field at fault."""
+
+
+@dataclass(frozen=True)
+class RefinementPolicy:
+    """The run's refinement policy (part of the run spec).
+
+    Attributes:
+        points_across_horizon: grid points across the horizon's smallest coordinate diameter on
+            its finest level (default 30; common practice: 20-40, references.md).
+        levels: nested refinement levels around the bodies (default 6).
+        level_ratio: spacing and radius ratio between neighbouring levels (default 2,
+            common practice).
+        finest_radius_factor: finest-level radius in units of the horizon's largest coordinate
+            radius, before margins (default 1.5; common practice: 1.2-2, references.md).
+        regrid_interval: coordinate time between the evolution's regrids, units of M (default
+            4 M, a choice of ours: the forecast interval the guidance must cover).
+        buffer_points: buffer-zone width in grid points of the finest spacing (default 4).
+        unknown_motion_factor: margin, in units of r_max, used in place of the forecast
+            uncertainty when the forecast cannot estimate it (a single sample).
+    """
+
+    points_across_horizon: float = 30.0
+    levels: int = 6
+    level_ratio: float = 2.0
+    finest_radius_factor: float = 1.5
+    regrid_interval: float = 4.0
+    buffer_points: int = 4
+    unknown_motion_factor: float = 1.0
+
+    def __post_init__(self) -> None:
+        checks = {
+            "points_across_horizon": self.points_across_horizon > 0,
+            "levels": isinstance(self.levels, (int, np.integer)) and self.levels >= 1,
+            "level_ratio": self.level_ratio > 1,
+            "finest_radius_factor": self.finest_radius_factor >= 1,
+            "regrid_interval": self.regrid_interval > 0,
+            "buffer_points": isinstance(self.buffer_points, (int, np.integer)) and self.buffer_points >= 0,
+            "unknown_motion_factor": self.unknown_motion_factor >= 0,
+        }
+        expected = {
+            "points_across_horizon": "a positive number",
+            "levels": "an integer >= 1",
+            "level_ratio": "a number > 1",
+            "finest_radius_factor": "a number >= 1 (the region must hold the horizon)",
+            "regrid_interval": "a positive time in M",
+            "buffer_points": "an integer >= 0",
+            "unknown_motion_factor": "a number >= 0",
+        }
+        for name, ok in checks.items():
+            value = getattr(self, name)
+            if not ok or not np.isfinite(float(value)):
+                raise GuidanceError(f"policy.{name}: expected {expected[name]}, got {value!r}")
+
+
+@dataclass(frozen=True)
+class HorizonSize:
+    """Coordinate size of a horizon (from the last surface found), units of M.
+
+    Attributes:
+        max_radius: largest coordinate distance of the surface from its centre.
+        min_diameter: smallest coordinate diameter (e.g. twice the smallest coordinate radius).
+    """
+
+    max_radius: float
+    min_diameter: float
+
+    def __post_init__(self) -> None:
+        if not (np.isfinite(self.max_radius) and self.max_radius > 0):
+            raise GuidanceError(f"max_radius: expected a positive number, got {self.max_radius!r}")
+        if not (np.isfinite(self.min_diameter) and 0 < self.min_diameter <= 2 * self.max_radius * (1 + 1e-12)):
+            raise GuidanceError(
+                f"min_diameter: expected a positive number no larger than 2 x max_radius "
+                f"({2 * self.max_radius!r}), got {self.min_diameter!r}"
+            )
+
+
+def _frozen(arr) -> np.ndarray:
+    arr = np.array(arr, dtype=float, copy=True)
+    arr.setflags(write=False)
+    return arr
+
+
+@dataclass(frozen=True, eq=False)
+class BodyGuidance:
+    """The nested regions recommended for one body.
+
+    Attributes:
+        body: body name.
+        centre: (3,) recommended centre, units of M.
+        finest_level: this body's finest level (<= policy.levels).
+        radii: (finest_level,) sphere radius per level, index l - 1 for level l, units of M.
+        lower, upper: (finest_level, 3) box corners per level, units of M.
+        spacings: (finest_level,) grid spacing per level, units of M.
+        required_spacing: smallest coordinate diameter / points_across_horizon, units of M.
+        finest_spacing: spacing of ``finest_level`` (<= required_spacing), units of M.
+        margins: the terms of the finest radius (horizon, motion, uncertainty, buffer), M.
+        reasons: name of each number -> why it has its value.
+    """
+
+    body: str
+    centre: np.ndarray
+    finest_level: int
+    radii: np.ndarray
+    lower: np.ndarray
+    upper: np.ndarray
+    spacings: np.ndarray
+    required_spacing: float
+    finest_spacing: float
+    margins: Mapping[str, float]
+    reasons: Mapping[str, str]
+
+    def __post_init__(self) -> None:
+        for name in ("centre", "radii", "lower", "upper", "spacings"):
+            object.__setattr__(self, name, _frozen(getattr(self, name)))
+        object.__setattr__(self, "margins", dict(self.margins))
+        object.__setattr__(self, "reasons", dict(self.reasons))
+
+    @property
+    def finest_radius(self) -> float:
+        return float(self.radii[-1])
+
+
+@dataclass(frozen=True, eq=False)
+class LevelRegion:
+    """One refined region on one level, sphere and box forms.
+
+    Attributes:
+        level: level number (1 coarsest .. policy.levels finest).
+        spacing: grid spacing on this level, units of M.
+        bodies: the bodies this region covers (two or more when merged).
+        centre, radius: sphere form, units of M.
+        lower, upper: (3,) box form, units of M.
+        reason: why this region (single body or merged, and why).
+    """
+
+    level: int
+    spacing: float
+    bodies: tuple[str, ...]
+    centre: np.ndarray
+    radius: float
+    lower: np.ndarray
+    upper: np.ndarray
+    reason: str
+
+    def __post_init__(self) -> None:
+        for name in ("centre", "lower", "upper"):
+            object.__setattr__(self, name, _frozen(getattr(self, name)))
+
+    @property
+    def merged(self) -> bool:
+        return len(self.bodies) > 1
+
+    def sphere_contains(self, points, radius: float = 0.0) -> np.ndarray:
+        """Whether balls of ``radius`` about (n, 3) points lie inside the sphere form."""
+        p = np.atleast_2d(np.asarray(points, float))
+        return np.linalg.norm(p - self.centre, axis=1) + radius <= self.radius * (1 + 1e-12)
+
+    def box_contains(self, points, radius: float = 0.0) -> np.ndarray:
+        """Whether balls of ``radius`` about (n, 3) points lie inside the box form."""
+        p = np.atleast_2d(np.asarray(points, float))
+        return np.all((p - radius >= self.lower) & (p + radius <= self.upper), axis=1)
+
+
+@dataclass(frozen=True, eq=False)
+class RefinementGuidance:
+    """Refinement guidance valid over [valid_from, valid_until].
+
+    Attributes:
+        valid_from, valid_until: the time window (the forecast interval), units of M.
+        bodies: per-body recommendations.
+        levels: per level, coarsest first, the regions after merging overlapping spheres.
+        post_merger: True when the guidance is for the remnant after a common horizon formed.
+        policy: the policy used.
+        reasons: notes on the whole guidance (validity, merging, post-merger).
+    """
+
+    valid_from: float
+    valid_until: float
+    bodies: tuple[BodyGuidance, ...]
+    levels: tuple[tuple[LevelRegion, ...], ...]
+    post_merger: bool
+    policy: RefinementPolicy
+    reasons: Mapping[str, str] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "reasons", dict(self.reasons))
+
+    @property
+    def finest_regions(self) -> tuple[LevelRegion, ...]:
+        """Regions on the finest level any body uses."""
+        return self.levels[-1]
+
+    def regions_at(self, level: int) -> tuple[LevelRegion, ...]:
+        if not 1 <= level <= len(self.levels):
+            raise GuidanceError(f"level: expected 1..{len(self.levels)}, got {level!r}")
+        return self.levels[level - 1]
+
+    def body(self, name: str) -> BodyGuidance:
+        for b in self.bodies:
+            if b.body == name:
+                return b
+        raise GuidanceError(f"body: {name!r} is not in this guidance")
+
+    def region_of(self, body: str, level: int) -> LevelRegion:
+        """The region covering ``body`` on ``level``."""
+        for region in self.regions_at(level):
+            if body in region.bodies:
+                return region
+        raise GuidanceError(f"body {body!r} has no region on level {level} (its finest level is lower)")
+
+
+def guidance_times(now: float, *, policy: RefinementPolicy, samples: int = 9) -> np.ndarray:
+    """The forecast times a guidance needs: ``samples`` times from ``now`` to now + regrid_interval."""
+    if int(samples) < 2:
+        raise GuidanceError(f"samples: expected at least 2, got {samples!r}")
+    return np.linspace(float(now), float(now) + policy.regrid_interval, int(samples))
+
+
+def _merge_spheres(c1, r1, c2, r2):
+    """Smallest sphere containing spheres (c1, r1) and (c2, r2)."""
+    d = float(np.linalg.norm(c2 - c1))
+    if d + r2 <= r1:
+        return c1.copy(), r1
+    if d + r1 <= r2:
+        return c2.copy(), r2
+    radius = 0.5 * (d + r1 + r2)
+    centre = c1 + (radius - r1) * (c2 - c1) / d
+    return centre, radius
+
+
+def refinement_guidance(
+    forecast: Forecast,
+    sizes: Mapping[str, HorizonSize],
+    *,
+    policy: RefinementPolicy = RefinementPolicy(),
+    post_merger: bool = False,
+) -> RefinementGuidance:
+    """Recommend nested refinement regions per body for the forecast interval.
+
+    Args:
+        forecast: positions and uncertainty of each body over the interval (see
+            :func:`guidance_times` for its times); after merger, the remnant's forecast.
+        sizes: body name -> :class:`HorizonSize` from the latest surfaces found.
+        policy: the run's :class:`RefinementPolicy`.
+        post_merger: the forecast is of the remnant after a common horizon formed.
+
+    Returns:
+        :class:`RefinementGuidance` valid over the forecast's times.
+    """
+    if not isinstance(forecast, Forecast):
+        raise GuidanceError(f"forecast: expected a Forecast, got {type(forecast).__name__}")
+    missing = [b for b in forecast.bodies if b not in sizes]
+    if missing:
+        raise GuidanceError(f"sizes: no HorizonSize for body/bodies {missing}")
+    if post_merger and len(forecast.bodies) != 1:
+        raise GuidanceError(
+            f"post_merger: expected a forecast of the single remnant, got bodies {list(forecast.bodies)}"
+        )
+    ratio = float(policy.level_ratio)
+    n_levels = int(policy.levels)
+    required = {b: sizes[b].min_diameter / policy.points_across_horizon for b in forecast.bodies}
+    h_fine = min(required.values())
+    span = float(forecast.times[-1] - forecast.times[0])
+    reasons = {
+        "valid": (f"valid from t = {forecast.times[0]:.6g} M to {forecast.times[-1]:.6g} M, the forecast "
+                  f"interval ({forecast.model} model: {forecast.reason})"),
+    }
+    if span < policy.regrid_interval * (1 - 1e-9):
+        reasons["valid_short"] = (f"the forecast covers {span:.4g} M, less than the regrid interval "
+                                  f"{policy.regrid_interval:.4g} M: regrid again before it expires")
+    if post_merger:
+        reasons["post_merger"] = "common horizon formed: a single region around the remnant"
+
+    body_guidance: list[BodyGuidance] = []
+    for index, body in enumerate(forecast.bodies):
+        size = sizes[body]
+        path = forecast.positions[index]
+        unc = forecast.uncertainty[index]
+        lo_path, hi_path = path.min(axis=0), path.max(axis=0)
+        centre = 0.5 * (lo_path + hi_path)
+        motion = float(np.max(np.linalg.norm(path - centre, axis=1)))
+        # Fewer levels for a horizon level_ratio^n times larger than the smallest one.
+        skip = int(np.floor(np.log(required[body] / h_fine) / np.log(ratio) + 1e-9))
+        finest_level = max(1, n_levels - skip)
+        spacings = h_fine * ratio ** (n_levels - np.arange(1, finest_level + 1))
+        h_body = float(spacings[-1])
+        horizon_margin = policy.finest_radius_factor * size.max_radius
+        if np.all(np.isfinite(unc)):
+            unc_margin = float(np.max(unc))
+            unc_reason = (f"{unc_margin:.4g} M: the largest forecast uncertainty over the interval "
+                          f"({forecast.model} model)")
+        else:
+            unc_margin = policy.unknown_motion_factor * size.max_radius
+            unc_reason = (f"{unc_margin:.4g} M: the forecast has no uncertainty estimate, so "
+                          f"unknown_motion_factor {policy.unknown_motion_factor:g} x r_max is used")
+        buffer = policy.buffer_points * h_body
+        finest_radius = horizon_margin + motion + unc_margin + buffer
+        steps = finest_level - np.arange(1, finest_level + 1)
+        radii = finest_radius * ratio**steps
+        half_box = 0.5 * (hi_path - lo_path) + (horizon_margin + unc_margin + buffer)
+        half_boxes = half_box[None, :] * (ratio**steps)[:, None]
+        body_reasons = {
+            "centre": ("centre of the bounding box of the forecast path over the interval, so the "
+                       "motion margin is as small as a sphere about one point allows"),
+            "required_spacing": (f"{required[body]:.4g} M = smallest coordinate diameter {size.min_diameter:.4g} M "
+                                 f"/ {policy.points_across_horizon:g} points across the horizon"),
+            "finest_spacing": (f"{h_body:.4g} M on level {finest_level}: "
+                               + ("the run's finest spacing, set by this body" if skip == 0 else
+                                  f"{skip} level(s) coarser than the finest, which another smaller horizon "
+                                  f"needs; still <= the required spacing")),
+            "finest_level": (f"level {finest_level} of {n_levels}"
+                             + ("" if skip == 0 else f": this horizon is >= {ratio:g}^{skip} times larger "
+                                                     f"than the smallest, so it needs {skip} fewer level(s)")),
+            "horizon": (f"{horizon_margin:.4g} M = finest_radius_factor {policy.finest_radius_factor:g} x "
+                        f"largest coordinate radius {size.max_radius:.4g} M"),
+            "motion": f"{motion:.4g} M: largest distance from the centre to the forecast path",
+            "uncertainty": unc_reason,
+            "buffer": f"{buffer:.4g} M = buffer_points {policy.buffer_points} x finest spacing {h_body:.4g} M",
+            "finest_radius": (f"{finest_radius:.4g} M = horizon + motion + uncertainty + buffer margins"),
+            "coarser_radii": f"each coarser level's radius and box are level_ratio {ratio:g} times larger",
+            "box": ("box form: the forecast path's bounding box grown by the horizon, uncertainty and "
+                    "buffer margins on the finest level"),
+        }
+        body_guidance.append(BodyGuidance(
+            body=body, centre=centre, finest_level=finest_level, radii=radii,
+            lower=centre - half_boxes, upper=centre + half_boxes, spacings=spacings,
+            required_spacing=required[body], finest_spacing=h_body,
+            margins={"horizon": horizon_margin, "motion": motion, "uncertainty": unc_margin, "buffer": buffer},
+            reasons=body_reasons,
+        ))
+
+    levels: list[tuple[LevelRegion, ...]] = []
+    merged_any = False
+    for level in range(1, n_levels + 1):
+        spacing = float(h_fine * ratio ** (n_levels - level))
+        # Start from one region per body on this level, merge overlapping spheres until none overlap.
+        groups = [
+            dict(bodies=(b.body,), centre=b.centre.copy(), radius=float(b.radii[level - 1]),
+                 lower=b.lower[level - 1].copy(), upper=b.upper[level - 1].copy())
+            for b in body_guidance if b.finest_level >= level
+        ]
+        changed = True
+        while changed:
+            changed = False
+            for i in range(len(groups)):
+                for j in range(i + 1, len(groups)):
+                    gi, gj = groups[i], groups[j]
+                    if np.linalg.norm(gi["centre"] - gj["centre"]) < gi["radius"] + gj["radius"]:
+                        centre, radius = _merge_spheres(gi["centre"], gi["radius"], gj["centre"], gj["radius"])
+                        groups[i] = dict(bodies=gi["bodies"] + gj["bodies"], centre=centre, radius=radius,
+                                         lower=np.minimum(gi["lower"], gj["lower"]),
+                                         upper=np.maximum(gi["upper"], gj["upper"]))
+                        del groups[j]
+                        changed = True
+                        break
+                if changed:
+                    break
+        regions = []
+        for g in groups:
+            if len(g["bodies"]) > 1:
+                merged_any = True
+                why = (f"merged: the level-{level} spheres of {', '.join(g['bodies'])} overlap; the smallest "
+                       f"sphere enclosing them and the union of their boxes")
+            elif post_merger:
+                why = f"the remnant's level-{level} region after merger"
+            else:
+                why = f"body {g['bodies'][0]}'s own level-{level} region"
+            regions.append(LevelRegion(level=level, spacing=spacing, bodies=g["bodies"], centre=g["centre"],
+                                       radius=g["radius"], lower=g["lower"], upper=g["upper"], reason=why))
+        levels.append(tuple(regions))
+    if merged_any:
+        reasons["merging"] = "regions whose spheres overlap on a level are merged on that level (and coarser)"
+    return RefinementGuidance(
+        valid_from=float(forecast.times[0]), valid_until=float(forecast.times[-1]),
+        bodies=tuple(body_guidance), levels=tuple(levels), post_merger=bool(post_merger),
+        policy=policy, reasons=reasons,
+    )

@@ -130,6 +130,10 @@ def test_kerr_tilted_and_off_centre(a):
     q = measure_surface(result.surface, hole)
     assert q.area == pytest.approx(8 * np.pi * kerr_r_plus(a), rel=1e-6)
     np.testing.assert_allclose(q.centroid, centre, atol=1e-6)
+    # J = a M along the spin axis (references.md item 6b, Kerr & Schild 1965) and the
+    # Christodoulou mass returns M exactly (Christodoulou, PRL 25, 1596 (1970); item 5).
+    np.testing.assert_allclose(q.angular_momentum, a * axis / np.linalg.norm(axis), atol=1e-7)
+    assert q.christodoulou_mass == pytest.approx(1.0, rel=1e-8)
 
 
 # --- Boosted Kerr-Schild (item 4) -----------------------------------------------------------
@@ -143,6 +147,8 @@ def test_boosted_schwarzschild_area_is_invariant_and_shape_contracted():
     result = find(hole, Surface.sphere([0, 0, 0], 1.8, 12), lmax=12)
     q = measure_surface(result.surface, hole, cut_samples=64)
     assert q.area == pytest.approx(AREA_SCHWARZSCHILD, rel=1e-8)
+    np.testing.assert_allclose(q.angular_momentum, 0.0, atol=1e-8)  # moving, not spinning
+    assert q.christodoulou_mass == pytest.approx(1.0, rel=1e-8)
     cut = plane_cut(result.surface, q.centroid, 2, 256)  # xy-plane: boost along y
     assert np.ptp(cut[:, 1]) / np.ptp(cut[:, 0]) == pytest.approx(np.sqrt(1 - v * v), rel=1e-6)
 

@@ -153,3 +153,45 @@ def test_mirrored_half_grid_reference_spacetime_equals_the_full_grid_sample(whic
             # Non-trivial odd data: K_xz and shift_z are non-zero off the plane.
             for name in ("K_xz", "shift_z") if variable_set == "adm" else ("A_tilde_yz", "shift_z"):
                 assert np.max(np.abs(expected.fields[name])) > 1e-3
+
+
+# --- finder level: half grids mirrored give the surfaces of the full grid ---------------------
+
+
+def _half_and_full(spacetime, half_width, spacing, variable_set):
+    from penumbra_server.numerics.spacetimes import sample_slice
+
+    n = int(round(2 * half_width / spacing)) + 1
+    nz = (n + 1) // 2
+    origin = [-half_width + 0.31 * spacing, -half_width + 0.27 * spacing, 0.0]
+    full_box = dict(origin=[origin[0], origin[1], -(nz - 1) * spacing], spacing=[spacing] * 3, shape=[n, n, 2 * nz - 1])
+    half_box = dict(origin=origin, spacing=[spacing] * 3, shape=[n, n, nz])
+    full = sample_slice(spacetime, [full_box], variable_set=variable_set)
+    half = sample_slice(spacetime, [half_box], variable_set=variable_set)
+    return full, mirror_slice_through_z0(half)
+
+
+def test_half_grid_kerr_and_brill_lindquist_give_the_full_grid_surfaces():
+    from penumbra_server.numerics.finder import FinderSettings, find_surface
+    from penumbra_server.numerics.measures import measure_surface
+    from penumbra_server.numerics.spacetimes import BrillLindquist, KerrKerrSchild
+    from penumbra_server.numerics.surfaces import Surface
+
+    # Kerr a = 0.6 with the spin along z (odd K_xz, K_yz, shift_z) and an equal-mass
+    # Brill-Lindquist pair in the z = 0 plane (individual and common surfaces).
+    kerr = KerrKerrSchild(mass=1.0, spin=0.6, axis=np.array([0.0, 0.0, 1.0]), centre=np.zeros(3))
+    pair = BrillLindquist(masses=np.array([0.5, 0.5]), positions=np.array([[0.3, 0.0, 0.0], [-0.3, 0.0, 0.0]]))
+    cases = [
+        (kerr, 2.6, 0.1, "adm", [Surface.sphere([0.0, 0.0, 0.0], 2.0, 8)]),
+        (pair, 1.3, 0.05, "conformal_w", [Surface.sphere([0.0, 0.0, 0.0], 0.7, 8), Surface.sphere([0.3, 0.0, 0.0], 0.2, 8)]),
+    ]
+    for spacetime, half_width, spacing, vs, guesses in cases:
+        full, mirrored = _half_and_full(spacetime, half_width, spacing, vs)
+        for guess in guesses:
+            a = find_surface(full, guess, settings=FinderSettings(lmax=8))
+            b = find_surface(mirrored, guess, settings=FinderSettings(lmax=8))
+            assert a.success and b.success, (a.message, b.message)
+            np.testing.assert_allclose(b.surface.coefficients, a.surface.coefficients, atol=1e-10)
+            qa, qb = measure_surface(a.surface, full), measure_surface(b.surface, mirrored)
+            assert qb.area == pytest.approx(qa.area, rel=1e-11)
+            assert qb.circumference_xz == pytest.approx(qa.circumference_xz, rel=1e-10)

@@ -8,6 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .expansion import level_set_derivatives
 from .sources import TrackedSource, as_tracked_source
 from .surfaces import Surface, angular_grid, harmonic_basis, unit_vectors
 
@@ -29,6 +30,13 @@ class SurfaceQuantities:
             star-shaped about the centroid or leaves the data).
         resolution_indicator: energy in the top harmonic degree over the total; small (say
             < 1e-8) means l_max resolves the shape.
+        angular_momentum: (3,) J_k = (1/8 pi) closed-integral K_ij phi_k^i s^j dA with phi_k the
+            coordinate rotation about axis k through the centroid (M^2). Exact when phi_k is a
+            Killing field of the horizon (Kerr in Kerr-Schild or Boyer-Lindquist-like
+            coordinates); an estimate otherwise (approximate-Killing-vector spin is the more
+            general method: Dreyer, Krishnan, Shoemaker & Schnetter, PRD 67, 024018 (2003)).
+        christodoulou_mass: sqrt(M_irr^2 + |J|^2 / (4 M_irr^2)) (Christodoulou, PRL 25, 1596
+            (1970)), with J from ``angular_momentum``.
     """
 
     area: float
@@ -41,11 +49,13 @@ class SurfaceQuantities:
     circumference_xz: float
     circumference_yz: float
     resolution_indicator: float
+    angular_momentum: np.ndarray
+    christodoulou_mass: float
 
 
-def _area_density(surface: Surface, theta, phi, basis, geometry_source) -> tuple[np.ndarray, np.ndarray]:
-    """(sqrt(det q) / sin(theta) at the directions, surface points): the area element per solid
-    angle, so area = sum(weights * density)."""
+def _area_density(surface: Surface, theta, phi, basis, geometry_source):
+    """(sqrt(det q) / sin(theta) at the directions, surface points, geometry there, radius
+    derivatives): the area element per solid angle, so area = sum(weights * density)."""
     rd = surface.derivatives(basis, theta, phi)
     n, et, ep = unit_vectors(theta, phi)
     st = np.sin(theta)
@@ -61,14 +71,26 @@ def _area_density(surface: Surface, theta, phi, basis, geometry_source) -> tuple
     q_tt = np.einsum("ni,nij,nj->n", X_t, g, X_t)
     q_tp = np.einsum("ni,nij,nj->n", X_t, g, X_p)
     q_pp = np.einsum("ni,nij,nj->n", X_p, g, X_p)
-    return np.sqrt(q_tt * q_pp - q_tp**2) / st, pts
+    return np.sqrt(q_tt * q_pp - q_tp**2) / st, pts, geo, rd
+
+
+def _angular_momentum(weights, density, points, geo, rd, centroid) -> np.ndarray:
+    """(3,) (1/8 pi) closed-integral K_ij phi_k^i s^j dA for the rotations about the centroid."""
+    dF = level_set_derivatives(rd).dF
+    ginv = np.linalg.inv(geo.gamma)
+    up = np.einsum("nij,nj->ni", ginv, dF)
+    s_up = up / np.sqrt(np.einsum("ni,ni->n", up, dF))[:, None]
+    K_s = np.einsum("nij,nj->ni", geo.K, s_up)  # K_ij s^j
+    rel = points - centroid
+    # phi_k^i = epsilon_{k l i} rel^l, so K_ij phi_k^i s^j = (rel x K s)_k
+    return np.sum((weights * density)[:, None] * np.cross(rel, K_s), axis=0) / (8 * np.pi)
 
 
 def surface_area(surface: Surface, data, *, order: int = 4) -> float:
     """Proper area (M^2) by the node quadrature of ``angular_grid(2 lmax)``."""
     source = as_tracked_source(data, order=order)
     grid = angular_grid(2 * surface.lmax)
-    dens, _ = _area_density(surface, grid.theta, grid.phi, harmonic_basis(surface.lmax, grid.theta, grid.phi), source)
+    dens = _area_density(surface, grid.theta, grid.phi, harmonic_basis(surface.lmax, grid.theta, grid.phi), source)[0]
     return float(np.sum(grid.weights * dens))
 
 
@@ -131,9 +153,11 @@ def measure_surface(surface: Surface, data, *, order: int = 4, cut_samples: int 
     source: TrackedSource = as_tracked_source(data, order=order)
     grid = angular_grid(2 * surface.lmax)
     basis = harmonic_basis(surface.lmax, grid.theta, grid.phi)
-    dens, pts = _area_density(surface, grid.theta, grid.phi, basis, source)
+    dens, pts, geo, rd = _area_density(surface, grid.theta, grid.phi, basis, source)
     area = float(np.sum(grid.weights * dens))
     centroid = np.sum((grid.weights * dens)[:, None] * pts, axis=0) / area
+    spin = _angular_momentum(grid.weights, dens, pts, geo, rd, centroid)
+    m_irr = float(np.sqrt(area / (16 * np.pi)))
     h = basis.Y @ surface.coefficients
     circ = []
     for axis in (2, 1, 0):  # xy, xz, yz planes
@@ -141,7 +165,7 @@ def measure_surface(surface: Surface, data, *, order: int = 4, cut_samples: int 
         circ.append(float("nan") if cut is None else proper_length_closed(cut, source))
     return SurfaceQuantities(
         area=area,
-        irreducible_mass=float(np.sqrt(area / (16 * np.pi))),
+        irreducible_mass=m_irr,
         centroid=centroid,
         radius_min=float(h.min()),
         radius_mean=surface.mean_radius,
@@ -150,4 +174,6 @@ def measure_surface(surface: Surface, data, *, order: int = 4, cut_samples: int 
         circumference_xz=circ[1],
         circumference_yz=circ[2],
         resolution_indicator=surface.top_degree_fraction(),
+        angular_momentum=spin,
+        christodoulou_mass=float(np.sqrt(m_irr**2 + float(spin @ spin) / (4 * m_irr**2))),
     )

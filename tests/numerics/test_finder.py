@@ -18,6 +18,7 @@ from penumbra_server.numerics.finder import (
     find_surface,
 )
 from penumbra_server.numerics.guesses import guess_from_previous, scan_spheres, sphere_scan_profile
+from penumbra_server.numerics.measures import measure_surface
 from penumbra_server.numerics.sources import as_tracked_source
 from penumbra_server.numerics.spacetimes import BrillLindquist, KerrKerrSchild, SchwarzschildIsotropic, sample_slice
 from penumbra_server.numerics.surfaces import Surface, angular_grid
@@ -143,3 +144,22 @@ def test_guess_from_previous_moves_the_shape():
     guess = guess_from_previous(prev, [0.4, -0.05, 0.02], lmax=8)
     result = find_surface(moved_hole, guess, settings=FinderSettings(lmax=8))
     assert result.success and result.nit <= 4
+
+
+def test_unresolved_and_sub_grid_surfaces_are_not_accepted(cube):
+    # Physical (ADM) metric near a puncture varies like r^-4: at dx ~ m/6 it is not resolved and
+    # the projected solve converges to a wrong surface; the nodal residual gives it away. In the
+    # smooth W variables the same grid finds the horizon, and a spurious sub-grid "MOTS" that
+    # the scan brackets next to the puncture is refused for spanning too few grid points.
+    hole = BrillLindquist(masses=np.array([0.6]), positions=np.zeros((1, 3)))
+    box = cube([0, 0, 0], 1.26, 0.105)
+    adm = sample_slice(hole, [box], variable_set="adm")
+    smooth = sample_slice(hole, [box], variable_set="conformal_w")
+    settings = FinderSettings(lmax=8)
+    wrong = find_surface(adm, Surface.sphere([0, 0, 0], 0.26, 8), settings=settings)
+    assert wrong.status == finder_module.UNRESOLVED and not wrong.success
+    right = find_surface(smooth, Surface.sphere([0, 0, 0], 0.29, 8), settings=settings)
+    assert right.success
+    assert measure_surface(right.surface, smooth).irreducible_mass == pytest.approx(0.6, rel=2e-3)
+    tiny = find_surface(smooth, Surface.sphere([0, 0, 0], 0.072, 8), settings=settings)
+    assert not tiny.success and tiny.status in (finder_module.TOO_FEW_POINTS, finder_module.UNRESOLVED)

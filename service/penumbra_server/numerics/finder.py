@@ -49,6 +49,8 @@ __all__ = [
     "DIVERGED",
     "OUTSIDE_DATA",
     "LINE_SEARCH_FAILED",
+    "UNRESOLVED",
+    "TOO_FEW_POINTS",
     "find_surface",
     "expansion_of",
 ]
@@ -59,6 +61,8 @@ MAX_ITERATIONS = 2
 DIVERGED = 3
 OUTSIDE_DATA = 4
 LINE_SEARCH_FAILED = 5
+UNRESOLVED = 6
+TOO_FEW_POINTS = 7
 
 #: Status code -> meaning. ``success`` is True exactly for codes 0 and 1.
 STATUS_MESSAGES: dict[int, str] = {
@@ -71,6 +75,11 @@ STATUS_MESSAGES: dict[int, str] = {
     DIVERGED: "diverged: the radius became non-positive or ran away from the guess",
     OUTSIDE_DATA: "not converged: the surface needs data no patch provides",
     LINE_SEARCH_FAILED: "not converged: no damped step reduced the residual",
+    UNRESOLVED: (
+        "not accepted: the projected residual vanished but max |Theta| times the mean radius exceeds "
+        "the truncation tolerance, so the data or l_max do not resolve this surface"
+    ),
+    TOO_FEW_POINTS: "not accepted: the surface spans too few grid points across to be resolved by the data",
 }
 _SUCCESS = (CONVERGED, CONVERGED_AT_TRUNCATION)
 _METHODS = ("newton", "flow")
@@ -92,6 +101,13 @@ class FinderSettings:
         flow_alpha, flow_beta: fast-flow parameters (Gundlach 1998; defaults from memory).
         max_radius_factor: a surface whose largest radius exceeds this multiple of the guess's
             mean radius counts as diverged.
+        truncation_tolerance: a surface converged only in the projection (status 1) is accepted
+            while max |Theta| (at and between the nodes) times its mean radius stays below this
+            (dimensionless; roughly the relative error of the surface position). Our choice, not
+            a published value.
+        min_points_across: on grid data, the smallest coordinate diameter must span at least
+            this many spacings of the patches serving the surface (common practice asks for
+            tens across a horizon; this is a floor that rejects grid artefacts).
     """
 
     lmax: int = 10
@@ -104,6 +120,8 @@ class FinderSettings:
     flow_alpha: float = 1.0
     flow_beta: float = 0.5
     max_radius_factor: float = 20.0
+    truncation_tolerance: float = 1e-2
+    min_points_across: float = 4.0
 
     def __post_init__(self) -> None:
         if self.method not in _METHODS:
@@ -362,8 +380,17 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
         between = _residual_between_nodes(source, ev.surface)
         if status == CONVERGED and not between <= settings.tolerance:
             status = CONVERGED_AT_TRUNCATION  # zero at the nodes only: l_max limits accuracy
+        if status == CONVERGED_AT_TRUNCATION:
+            worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
+            if worst * ev.surface.mean_radius > settings.truncation_tolerance:
+                status = UNRESOLVED
+        if status in _SUCCESS and source.slice_ is not None:
+            across = _points_across(source.slice_, ev)
+            if across < settings.min_points_across:
+                status = TOO_FEW_POINTS
+                run.uncovered_note = f"{across:.1f} grid spacings across, fewer than {settings.min_points_across}"
     message = STATUS_MESSAGES[status]
-    if status == OUTSIDE_DATA and run.uncovered_note:
+    if status in (OUTSIDE_DATA, TOO_FEW_POINTS) and run.uncovered_note:
         message = f"{message}: {run.uncovered_note}"
     if run.max_hist:
         message = (
@@ -384,6 +411,13 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
         projected_residual=proj,
         residual_max_between_nodes=between,
     )
+
+
+def _points_across(slice_: Slice, ev: _Evaluated) -> float:
+    """Smallest coordinate diameter over the coarsest spacing among the patches serving the nodes."""
+    served = np.unique(ev.geometry.source_patch[ev.geometry.source_patch >= 0])
+    spacing = max(float(np.max(slice_.patches[i].spacing)) for i in served)
+    return 2.0 * float(np.min(ev.rd.h)) / spacing
 
 
 def _residual_between_nodes(source: TrackedSource, surface: Surface) -> float:

@@ -1,0 +1,1 @@
+"""Generated wire code for penumbra.v1 (do not edit; run ``make wire`` to regenerate)."""

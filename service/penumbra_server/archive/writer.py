@@ -1,0 +1,224 @@
+"""Writing a run archive: create the group, append committed rows, update the run's state.
+
+The writer is synchronous (zarr's sync API); the server calls it from one worker thread so the
+event loop never blocks on disk. One writer per run group, never two: rows are appended at the
+committed count, and a second writer would overwrite them.
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+from typing import Mapping, Sequence
+
+import numpy as np
+import zarr
+
+from . import _layout as layout
+
+__all__ = ["ArchiveWriter", "ArchiveError"]
+
+
+class ArchiveError(RuntimeError):
+    """The archive on disk is missing, belongs to another format, or a row is malformed."""
+
+
+def _column_block(column: layout.Column, rows: Sequence[Mapping], row_kind: str) -> np.ndarray:
+    """Stack one column of ``rows`` into an array of shape (len(rows), *trailing)."""
+    trailing = tuple(size for _, size in column.trailing)
+    block = np.full((len(rows),) + trailing, column.fill_value, dtype=column.dtype)
+    for index, row in enumerate(rows):
+        if column.name not in row or row[column.name] is None:
+            continue
+        value = np.asarray(row[column.name], dtype=column.dtype)
+        if value.shape != trailing:
+            raise ArchiveError(
+                f"{row_kind} row {index}, column {column.name!r}: expected shape {trailing}, got {value.shape}"
+            )
+        block[index] = value
+    return block
+
+
+class ArchiveWriter:
+    """Appends rows to one run's archive group. Use :meth:`create` or :meth:`open_existing`."""
+
+    def __init__(self, group: zarr.Group, path: Path) -> None:
+        self._group = group
+        self.path = path
+        attrs = dict(group.attrs)
+        if attrs.get("penumbra_archive_version") != layout.ARCHIVE_FORMAT_VERSION:
+            raise ArchiveError(
+                f"{path}: attribute penumbra_archive_version is {attrs.get('penumbra_archive_version')!r}; "
+                f"expected {layout.ARCHIVE_FORMAT_VERSION}"
+            )
+        self.run_id: str = attrs["run_id"]
+        self.lmax: int = int(attrs["lmax"])
+        self._attrs: dict = attrs
+        self._committed: dict[str, int] = {k: int(v) for k, v in attrs["committed_rows"].items()}
+        self._arrays: dict[str, zarr.Array] = {}
+
+    # -- construction -----------------------------------------------------------------------
+
+    @classmethod
+    def create(
+        cls,
+        archive_root: str | Path,
+        run_id: str,
+        *,
+        name: str,
+        run_spec: Mapping,
+        surface_labels: Sequence[str],
+        lmax: int,
+        software_version: str,
+        created_unix_s: float | None = None,
+    ) -> "ArchiveWriter":
+        """Create ``<archive_root>/<run_id>.zarr`` with empty arrays; fail if it exists."""
+        path = layout.archive_path(archive_root, run_id)
+        if path.exists():
+            raise ArchiveError(f"{path}: an archive for run {run_id!r} already exists")
+        path.parent.mkdir(parents=True, exist_ok=True)
+        group = zarr.open_group(str(path), mode="w-", zarr_format=3)
+        _create_columns(group.create_group(layout.SLICES_GROUP), layout.SLICE_COLUMNS, "slice")
+        surfaces = group.create_group(layout.SURFACES_GROUP)
+        columns = layout.surface_columns(lmax)
+        for label in surface_labels:
+            sub = surfaces.create_group(label)
+            _create_columns(sub, columns, "sample")
+            sub.update_attributes({"label": label, "lmax": int(lmax)})
+        committed = {layout.SLICES_GROUP: 0}
+        committed.update({layout.surface_group(label): 0 for label in surface_labels})
+        group.update_attributes(
+            {
+                "penumbra_archive_version": layout.ARCHIVE_FORMAT_VERSION,
+                "run_id": run_id,
+                "name": name,
+                "state": "open",
+                "created_unix_s": float(created_unix_s if created_unix_s is not None else time.time()),
+                "closed_unix_s": None,
+                "run_spec": dict(run_spec),
+                "units": dict(layout.UNITS),
+                "software_version": software_version,
+                "surface_labels": list(surface_labels),
+                "lmax": int(lmax),
+                "next_event_seq": 1,
+                "state_events": [],
+                # Bumped last by every commit; readers trust only these counts.
+                "committed_rows": committed,
+            }
+        )
+        return cls(group, path)
+
+    @classmethod
+    def open_existing(cls, path: str | Path) -> "ArchiveWriter":
+        """Re-open an archive for appending (a restarted server continuing an open run)."""
+        path = Path(path)
+        if not path.exists():
+            raise ArchiveError(f"{path}: no archive there")
+        return cls(zarr.open_group(str(path), mode="r+", zarr_format=3), path)
+
+    # -- state ------------------------------------------------------------------------------
+
+    @property
+    def attrs(self) -> dict:
+        """A copy of the root attributes as last written."""
+        return dict(self._attrs)
+
+    @property
+    def committed_rows(self) -> dict[str, int]:
+        return dict(self._committed)
+
+    def _array(self, group_path: str, name: str) -> zarr.Array:
+        key = f"{group_path}/{name}"
+        arr = self._arrays.get(key)
+        if arr is None:
+            arr = self._group[key]
+            self._arrays[key] = arr
+        return arr
+
+    # -- writing ----------------------------------------------------------------------------
+
+    def add_surface(self, label: str) -> None:
+        """Create ``surfaces/<label>`` for a surface not known when the run opened (no-op if present)."""
+        group_path = layout.surface_group(label)
+        if group_path in self._committed:
+            return
+        sub = self._group.require_group(layout.SURFACES_GROUP).create_group(label)
+        _create_columns(sub, layout.surface_columns(self.lmax), "sample")
+        sub.update_attributes({"label": label, "lmax": self.lmax})
+        committed = dict(self._committed)
+        committed[group_path] = 0
+        new_attrs = dict(self._attrs)
+        new_attrs["surface_labels"] = list(self._attrs["surface_labels"]) + [label]
+        new_attrs["committed_rows"] = committed
+        self._group.update_attributes(new_attrs)
+        self._attrs = new_attrs
+        self._committed = committed
+
+    def commit(
+        self,
+        *,
+        slice_rows: Sequence[Mapping] = (),
+        surface_rows: Mapping[str, Sequence[Mapping]] | None = None,
+        attrs: Mapping | None = None,
+    ) -> dict[str, int]:
+        """Append rows and update root attributes as one unit visible to readers.
+
+        Data rows are written first; the root attributes (``committed_rows`` and any ``attrs``
+        given) are written last, in one metadata write. A crash in between leaves unreferenced
+        trailing rows that readers ignore and the next commit overwrites.
+
+        Args:
+            slice_rows: mappings column name -> value for ``slices/`` (missing: fill value).
+            surface_rows: label -> rows for ``surfaces/<label>``.
+            attrs: root attributes to set in the same final write.
+        Returns:
+            The new committed row counts.
+        """
+        pending: list[tuple[str, Sequence[Mapping], tuple[layout.Column, ...], str]] = []
+        if slice_rows:
+            pending.append((layout.SLICES_GROUP, slice_rows, layout.SLICE_COLUMNS, "slice"))
+        columns = layout.surface_columns(self.lmax)
+        for label, rows in (surface_rows or {}).items():
+            group_path = layout.surface_group(label)
+            if group_path not in self._committed:
+                raise ArchiveError(f"surface_rows: unknown surface label {label!r}; the archive has "
+                                   f"{', '.join(self._attrs['surface_labels'])}")
+            if rows:
+                pending.append((group_path, rows, columns, f"surface {label!r}"))
+        committed = dict(self._committed)
+        for group_path, rows, cols, row_kind in pending:
+            start = committed[group_path]
+            stop = start + len(rows)
+            for column in cols:
+                block = _column_block(column, rows, row_kind)
+                arr = self._array(group_path, column.name)
+                if arr.shape[0] != stop:
+                    arr.resize((stop,) + arr.shape[1:])
+                arr[start:stop] = block
+            committed[group_path] = stop
+        new_attrs = dict(self._attrs)
+        new_attrs.update(attrs or {})
+        new_attrs["committed_rows"] = committed
+        self._group.update_attributes(new_attrs)
+        self._attrs = new_attrs
+        self._committed = committed
+        return dict(committed)
+
+
+def _create_columns(group: zarr.Group, columns: Sequence[layout.Column], row_dimension: str) -> None:
+    for column in columns:
+        arr = group.create_array(
+            column.name,
+            shape=(0,) + tuple(size for _, size in column.trailing),
+            chunks=column.chunks(),
+            dtype=column.dtype,
+            fill_value=column.fill_value,
+            dimension_names=column.dimension_names(row_dimension),
+        )
+        attrs = {}
+        if column.unit:
+            attrs["units"] = column.unit
+        if column.description:
+            attrs["description"] = column.description
+        if attrs:
+            arr.update_attributes(attrs)

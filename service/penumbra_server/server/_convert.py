@@ -1,0 +1,199 @@
+"""Events <-> archive rows, and finder outcomes -> wire messages.
+
+Events are built first; their archive rows are derived from them (so the two cannot
+disagree), and a restarted server rebuilds events from the rows.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from penumbra_shim._wire import horizons_pb2 as pb
+
+from ..archive import METHOD_CODES, SLICE_OUTCOME_FAILED, SLICE_OUTCOME_PROCESSED, SLICE_OUTCOME_SKIPPED
+from ..numerics.finder import STATUS_MESSAGES
+from .jobs import REASON_FOUND, SurfaceOutcome
+
+__all__ = [
+    "vector",
+    "surface_result_from_outcome",
+    "not_found_from_outcome",
+    "surface_row",
+    "slice_row",
+    "surface_event_from_row",
+    "slice_event_from_row",
+]
+
+_NAN = float("nan")
+_METHOD_NAMES = {code: name for name, code in METHOD_CODES.items()}
+_REASON_TEXT = {
+    pb.SurfaceNotFound.REASON_NOT_CONVERGED: "the solver did not converge",
+    pb.SurfaceNotFound.REASON_NO_CANDIDATE: "no sign change of the mean expansion in the searched radii",
+    pb.SurfaceNotFound.REASON_OUTSIDE_DATA: "the surface needs data the slice does not provide",
+    pb.SurfaceNotFound.REASON_WORKER_FAILED: "the worker failed",
+}
+
+
+def vector(values) -> pb.Vector3:
+    x, y, z = (float(v) for v in values)
+    return pb.Vector3(x=x, y=y, z=z)
+
+
+def _triple(v: pb.Vector3) -> list[float]:
+    return [v.x, v.y, v.z]
+
+
+def surface_result_from_outcome(outcome: SurfaceOutcome, *, time_m: float, iteration: int, latency_s: float) -> pb.SurfaceResult:
+    q = outcome.quantities
+    centroid = q.get("centroid", [_NAN] * 3)
+    return pb.SurfaceResult(
+        label=outcome.label,
+        time_m=time_m,
+        iteration=iteration,
+        centre_m=vector(outcome.centre),
+        lmax=outcome.lmax,
+        coefficients_m=[float(c) for c in outcome.coefficients],
+        quantities=pb.SurfaceQuantities(
+            area_m2=q.get("area", _NAN),
+            irreducible_mass_m=q.get("irreducible_mass", _NAN),
+            centroid_m=vector(centroid),
+            radius_min_m=q.get("radius_min", _NAN),
+            radius_mean_m=q.get("radius_mean", _NAN),
+            radius_max_m=q.get("radius_max", _NAN),
+            circumference_xy_m=q.get("circumference_xy", _NAN),
+            circumference_xz_m=q.get("circumference_xz", _NAN),
+            circumference_yz_m=q.get("circumference_yz", _NAN),
+            resolution_indicator=q.get("resolution_indicator", _NAN),
+        ),
+        residual_max_per_m=outcome.residual_max,
+        iterations=outcome.iterations,
+        wall_time_s=outcome.wall_time_s,
+        latency_s=latency_s,
+        method=outcome.method,
+        finder_status=outcome.status,
+    )
+
+
+def not_found_from_outcome(outcome: SurfaceOutcome, *, latency_s: float) -> pb.SurfaceNotFound:
+    return pb.SurfaceNotFound(
+        label=outcome.label,
+        reason=outcome.reason,
+        message=outcome.message,
+        finder_status=outcome.status,
+        residual_max_per_m=outcome.residual_max,
+        iterations=outcome.iterations,
+        wall_time_s=outcome.wall_time_s,
+        latency_s=latency_s,
+    )
+
+
+def surface_row(event: pb.RunEvent, archived_unix_s: float) -> tuple[str, dict]:
+    """(label, archive row) of a surface_found or surface_not_found event."""
+    kind = event.WhichOneof("kind")
+    row = {"iteration": event.iteration, "time": event.time_m, "event_seq": event.seq, "archived_unix_s": archived_unix_s}
+    if kind == "surface_found":
+        s = event.surface_found.surface
+        q = s.quantities
+        row.update(
+            status=s.finder_status, found=True, reason=REASON_FOUND,
+            centre=_triple(s.centre_m), coefficients=np.asarray(s.coefficients_m, dtype=float),
+            area=q.area_m2, irreducible_mass=q.irreducible_mass_m, centroid=_triple(q.centroid_m),
+            radius_min=q.radius_min_m, radius_mean=q.radius_mean_m, radius_max=q.radius_max_m,
+            circumference_xy=q.circumference_xy_m, circumference_xz=q.circumference_xz_m,
+            circumference_yz=q.circumference_yz_m, resolution_indicator=q.resolution_indicator,
+            residual_max=s.residual_max_per_m, iterations=s.iterations, wall_time_s=s.wall_time_s,
+            latency_s=s.latency_s, method=METHOD_CODES.get(s.method, -1),
+        )
+        return s.label, row
+    if kind == "surface_not_found":
+        n = event.surface_not_found
+        row.update(
+            status=n.finder_status, found=False, reason=n.reason, residual_max=n.residual_max_per_m,
+            iterations=n.iterations, wall_time_s=n.wall_time_s, latency_s=n.latency_s,
+        )
+        return n.label, row
+    raise ValueError(f"event: expected a surface event, got {kind}")
+
+
+def slice_row(event: pb.RunEvent, *, arrival_unix_s: float, nbytes: int, archived_unix_s: float) -> dict:
+    """Archive row of a slice_processed or slice_skipped event (outcome failed if it has an error)."""
+    kind = event.WhichOneof("kind")
+    row = {"arrival_unix_s": arrival_unix_s, "bytes": nbytes, "event_seq": event.seq, "archived_unix_s": archived_unix_s}
+    if kind == "slice_processed":
+        p = event.slice_processed
+        row.update(
+            iteration=event.iteration, time=event.time_m,
+            outcome=SLICE_OUTCOME_FAILED if p.error else SLICE_OUTCOME_PROCESSED,
+            latency_s=p.latency_s, queue_wait_s=p.queue_wait_s,
+            surfaces_attempted=p.surfaces_attempted, surfaces_found=p.surfaces_found,
+        )
+        return row
+    if kind == "slice_skipped":
+        s = event.slice_skipped
+        row.update(iteration=s.skipped_iteration, time=s.skipped_time_m, outcome=SLICE_OUTCOME_SKIPPED,
+                   superseded_by_iteration=s.superseded_by_iteration)
+        return row
+    raise ValueError(f"event: expected a slice event, got {kind}")
+
+
+def _num(value, default: float) -> float:
+    value = float(value)
+    return default if math.isnan(value) else value
+
+
+def surface_event_from_row(run_id: str, label: str, row: dict, lmax: int) -> pb.RunEvent:
+    """The event an archived surface row announced (messages are the status table's wording)."""
+    event = pb.RunEvent(seq=int(row["event_seq"]), run_id=run_id, emit_time_unix_s=_num(row["archived_unix_s"], 0.0),
+                        time_m=float(row["time"]), iteration=int(row["iteration"]))
+    if bool(row["found"]):
+        event.surface_found.surface.CopyFrom(
+            pb.SurfaceResult(
+                label=label, time_m=float(row["time"]), iteration=int(row["iteration"]),
+                centre_m=vector(row["centre"]), lmax=lmax,
+                coefficients_m=[float(c) for c in row["coefficients"]],
+                quantities=pb.SurfaceQuantities(
+                    area_m2=float(row["area"]), irreducible_mass_m=float(row["irreducible_mass"]),
+                    centroid_m=vector(row["centroid"]), radius_min_m=float(row["radius_min"]),
+                    radius_mean_m=float(row["radius_mean"]), radius_max_m=float(row["radius_max"]),
+                    circumference_xy_m=float(row["circumference_xy"]), circumference_xz_m=float(row["circumference_xz"]),
+                    circumference_yz_m=float(row["circumference_yz"]),
+                    resolution_indicator=float(row["resolution_indicator"]),
+                ),
+                residual_max_per_m=float(row["residual_max"]), iterations=int(row["iterations"]),
+                wall_time_s=float(row["wall_time_s"]), latency_s=float(row["latency_s"]),
+                finder_status=int(row["status"]), method=_METHOD_NAMES.get(int(row["method"]), ""),
+            )
+        )
+    else:
+        reason = int(row["reason"])
+        status = int(row["status"])
+        event.surface_not_found.CopyFrom(
+            pb.SurfaceNotFound(
+                label=label, reason=reason,
+                message=STATUS_MESSAGES.get(status, _REASON_TEXT.get(reason, "not found")) + " (rebuilt from the archive)",
+                finder_status=status, residual_max_per_m=float(row["residual_max"]),
+                iterations=int(row["iterations"]), wall_time_s=float(row["wall_time_s"]),
+                latency_s=float(row["latency_s"]),
+            )
+        )
+    return event
+
+
+def slice_event_from_row(run_id: str, row: dict) -> pb.RunEvent:
+    event = pb.RunEvent(seq=int(row["event_seq"]), run_id=run_id, emit_time_unix_s=_num(row["archived_unix_s"], 0.0),
+                        time_m=float(row["time"]), iteration=int(row["iteration"]))
+    if int(row["outcome"]) == SLICE_OUTCOME_SKIPPED:
+        event.slice_skipped.CopyFrom(
+            pb.SliceSkipped(skipped_iteration=int(row["iteration"]), skipped_time_m=float(row["time"]),
+                            superseded_by_iteration=int(row["superseded_by_iteration"]))
+        )
+    else:
+        failed = int(row["outcome"]) == SLICE_OUTCOME_FAILED
+        event.slice_processed.CopyFrom(
+            pb.SliceProcessed(surfaces_attempted=int(row["surfaces_attempted"]), surfaces_found=int(row["surfaces_found"]),
+                              latency_s=float(row["latency_s"]), queue_wait_s=float(row["queue_wait_s"]),
+                              error="processing failed (details in the server log)" if failed else "")
+        )
+    return event

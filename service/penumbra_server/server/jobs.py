@@ -1,0 +1,252 @@
+"""Finder jobs: what a worker process receives and returns, and the function it runs.
+
+A job carries only the sub-box of the slice around its surface (:func:`crop_slice`), never
+the whole slice, so pickling it to a worker stays cheap. :func:`run_surface_job` is a plain
+function of the job (no server state), runnable in any process or on a distributed engine.
+"""
+
+from __future__ import annotations
+
+import time
+import traceback
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..numerics.slices import Patch, Slice
+from ..numerics.surfaces import Surface
+
+__all__ = [
+    "REASON_FOUND",
+    "REASON_NOT_CONVERGED",
+    "REASON_NO_CANDIDATE",
+    "REASON_OUTSIDE_DATA",
+    "REASON_WORKER_FAILED",
+    "SurfaceJob",
+    "SurfaceOutcome",
+    "crop_slice",
+    "run_surface_job",
+    "warm_up",
+]
+
+# SurfaceNotFound.Reason values of the proto (checked against it in the tests); 0 means found.
+REASON_FOUND = 0
+REASON_NOT_CONVERGED = 1
+REASON_NO_CANDIDATE = 2
+REASON_OUTSIDE_DATA = 3
+REASON_WORKER_FAILED = 4
+
+
+def crop_slice(slice_: Slice, lower, upper, *, ghost_nodes: int) -> Slice | None:
+    """The part of ``slice_`` inside the box [lower, upper], widened by ``ghost_nodes`` per side.
+
+    Each patch is cut to the nodes covering the box plus ``ghost_nodes`` (the interpolation
+    and finite-difference stencils reach that far), clipped to the patch; patches that miss
+    the box are dropped. Field arrays of the result are contiguous copies of the sub-boxes.
+    Returns None when no patch overlaps the box.
+    """
+    lower = np.asarray(lower, dtype=float)
+    upper = np.asarray(upper, dtype=float)
+    patches = []
+    for patch in slice_.patches:
+        n = np.asarray(patch.shape)
+        first = np.floor((lower - patch.origin) / patch.spacing).astype(int) - ghost_nodes
+        last = np.ceil((upper - patch.origin) / patch.spacing).astype(int) + ghost_nodes
+        first = np.clip(first, 0, n - 1)
+        last = np.clip(last, 0, n - 1)
+        if np.any(last - first < 1):
+            continue  # misses the box, or touches it in fewer than two nodes along an axis
+        cut = tuple(slice(int(a), int(b) + 1) for a, b in zip(first, last))
+        fields = {name: np.ascontiguousarray(arr[cut]) for name, arr in patch.fields.items()}
+        patches.append(
+            Patch(
+                origin=patch.origin + first * patch.spacing,
+                spacing=patch.spacing,
+                shape=tuple(int(b - a + 1) for a, b in zip(first, last)),
+                level=patch.level,
+                fields=fields,
+                memory_order="C",
+            )
+        )
+    if not patches:
+        return None
+    return Slice(time=slice_.time, iteration=slice_.iteration, variable_set=slice_.variable_set, patches=tuple(patches))
+
+
+@dataclass(frozen=True, eq=False)
+class SurfaceJob:
+    """One surface to look for in one slice.
+
+    Attributes:
+        label: the surface's label.
+        data: the cropped slice (sub-box around the surface).
+        lmax, tolerance, max_iterations, interpolation_order: finder settings.
+        seed: a starting surface (e.g. the previous result, moved to the forecast position);
+            None when nothing is known yet.
+        scan_centre, scan_radii: where to scan coordinate spheres for a sign change of the mean
+            expansion when there is no seed or the seed does not converge: centre (3,) and
+            (r_min, r_max), units of M.
+        max_candidates: scan candidates tried, outermost first.
+    """
+
+    label: str
+    data: Slice
+    lmax: int
+    tolerance: float
+    max_iterations: int
+    interpolation_order: int = 4
+    seed: Surface | None = None
+    scan_centre: np.ndarray | None = None
+    scan_radii: tuple[float, float] | None = None
+    max_candidates: int = 3
+
+
+@dataclass(frozen=True, eq=False)
+class SurfaceOutcome:
+    """What a worker returns: small, picklable, plain numbers.
+
+    ``found`` with ``reason == REASON_FOUND``, or not found with a reason and a message.
+    Quantities are NaN where not found (or where the measurement could not be made).
+    """
+
+    label: str
+    found: bool
+    reason: int
+    status: int
+    message: str
+    method: str = ""
+    centre: np.ndarray | None = None
+    lmax: int = 0
+    coefficients: np.ndarray | None = None
+    quantities: dict[str, float | list[float]] = field(default_factory=dict)
+    residual_max: float = float("nan")
+    iterations: int = 0
+    wall_time_s: float = 0.0
+    guess: str = ""
+
+    @classmethod
+    def failed(cls, label: str, message: str, *, wall_time_s: float = 0.0) -> "SurfaceOutcome":
+        return cls(label=label, found=False, reason=REASON_WORKER_FAILED, status=-1, message=message,
+                   wall_time_s=wall_time_s)
+
+
+def _quantities_dict(q) -> dict:
+    return {
+        "area": float(q.area),
+        "irreducible_mass": float(q.irreducible_mass),
+        "centroid": [float(v) for v in q.centroid],
+        "radius_min": float(q.radius_min),
+        "radius_mean": float(q.radius_mean),
+        "radius_max": float(q.radius_max),
+        "circumference_xy": float(q.circumference_xy),
+        "circumference_xz": float(q.circumference_xz),
+        "circumference_yz": float(q.circumference_yz),
+        "resolution_indicator": float(q.resolution_indicator),
+    }
+
+
+def run_surface_job(job: SurfaceJob) -> SurfaceOutcome:
+    """Look for one surface: the seed first, then scan candidates; measure what converges.
+
+    Never raises: an unexpected error becomes an outcome with REASON_WORKER_FAILED, so one bad
+    job cannot take the run down.
+    """
+    start = time.perf_counter()
+    try:
+        return _run(job, start)
+    except Exception as exc:  # a worker must report, not crash the pool
+        tail = traceback.format_exc(limit=3).strip().splitlines()[-1]
+        return SurfaceOutcome.failed(job.label, f"finder raised {type(exc).__name__}: {exc} ({tail})",
+                                     wall_time_s=time.perf_counter() - start)
+
+
+def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
+    from ..numerics.finder import OUTSIDE_DATA, FinderSettings, find_surface
+    from ..numerics.guesses import scan_spheres
+    from ..numerics.measures import measure_surface
+
+    settings = FinderSettings(
+        lmax=job.lmax,
+        tolerance=job.tolerance,
+        max_iterations=job.max_iterations,
+        interpolation_order=job.interpolation_order,
+    )
+    attempts: list[tuple[str, Surface]] = []
+    if job.seed is not None:
+        attempts.append(("previous", job.seed))
+    last = None
+    total_iterations = 0
+    tried_scan = False
+    index = 0
+    while True:
+        if index == len(attempts):
+            if tried_scan or job.scan_centre is None:
+                break
+            tried_scan = True
+            r_min, r_max = job.scan_radii
+            radii = scan_spheres(job.data, job.scan_centre, r_min, r_max, order=job.interpolation_order)
+            attempts.extend(("scan", Surface.sphere(job.scan_centre, r, job.lmax)) for r in radii[: job.max_candidates])
+            if index == len(attempts):
+                break
+        kind, guess = attempts[index]
+        index += 1
+        result = find_surface(job.data, guess, settings=settings)
+        total_iterations += result.nit
+        last = (kind, result)
+        if result.success:
+            surface = result.surface
+            try:
+                quantities = _quantities_dict(measure_surface(surface, job.data, order=job.interpolation_order))
+                message = result.message
+            except ValueError as exc:
+                quantities = {}
+                message = f"{result.message}; not measured: {exc}"
+            return SurfaceOutcome(
+                label=job.label,
+                found=True,
+                reason=REASON_FOUND,
+                status=result.status,
+                message=message,
+                method=result.method,
+                centre=np.array(surface.centre),
+                lmax=surface.lmax,
+                coefficients=np.array(surface.coefficients),
+                quantities=quantities,
+                residual_max=result.residual_max,
+                iterations=total_iterations,
+                wall_time_s=time.perf_counter() - start,
+                guess=kind,
+            )
+    elapsed = time.perf_counter() - start
+    if last is None:
+        r_min, r_max = job.scan_radii if job.scan_radii else (float("nan"), float("nan"))
+        c = job.scan_centre if job.scan_centre is not None else np.full(3, np.nan)
+        return SurfaceOutcome(
+            label=job.label, found=False, reason=REASON_NO_CANDIDATE, status=-1,
+            message=(f"no sign change of the expansion of coordinate spheres about "
+                     f"({c[0]:.4g}, {c[1]:.4g}, {c[2]:.4g}) with radii {r_min:.4g}..{r_max:.4g} M"),
+            wall_time_s=elapsed, guess="scan",
+        )
+    kind, result = last
+    reason = REASON_OUTSIDE_DATA if result.status == OUTSIDE_DATA else REASON_NOT_CONVERGED
+    return SurfaceOutcome(
+        label=job.label, found=False, reason=reason, status=result.status,
+        message=f"{len(attempts)} guess(es) tried, last from {kind}: {result.message}",
+        method=result.method, residual_max=result.residual_max, iterations=total_iterations,
+        wall_time_s=elapsed, guess=kind,
+    )
+
+
+def warm_up(delay_s: float = 0.0) -> tuple[int, dict[str, str | None]]:
+    """Import the numerics in a fresh worker (so the first real job does not pay for it).
+
+    Returns the worker's pid and its BLAS/OpenMP thread settings (the executor checks them).
+    """
+    import os
+
+    from ..numerics import finder, guesses, measures  # noqa: F401
+
+    if delay_s:
+        time.sleep(delay_s)
+    names = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+    return os.getpid(), {name: os.environ.get(name) for name in names}

@@ -1,0 +1,170 @@
+"""Which surfaces to look for in a slice, from where, and in which sub-box of the data.
+
+The default planner looks for every expected body: seeded from that body's previous result
+(re-centred on its centroid moved on at its last velocity) or, with no prior, by scanning coordinate spheres about the
+spec's position with radii 0.1 m .. 2 m (m the body's approximate mass; puncture data has its
+apparent horizon near r = m/2 in isotropic coordinates, references.md item 1), then Newton from
+the outermost candidate. Tracking and guidance (issue 4) plug in here by providing another
+:class:`SurfacePlanner` (e.g. adding a common surface once the bodies are close).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Mapping, Protocol, Sequence
+
+import numpy as np
+
+from ..numerics.slices import Slice
+from ..numerics.surfaces import Surface
+from ._spec import RunSettings
+
+__all__ = ["SurfaceTrack", "SurfacePlan", "SurfacePlanner", "ExpectedBodiesPlanner", "SCAN_RADIUS_FACTORS", "recentred"]
+
+#: Scan radii with no prior, as multiples of the body's approximate mass (see module docstring).
+SCAN_RADIUS_FACTORS = (0.1, 2.0)
+# Region cropped around a seeded surface: its largest radius times this, plus its motion.
+_SEEDED_BOX_FACTOR = 1.6
+# Region cropped around a scan: the largest scan radius times this.
+_SCAN_BOX_FACTOR = 1.25
+# After this many misses in a row the seed is dropped and the wide scan runs again.
+_MISSES_BEFORE_WIDE_SCAN = 2
+
+
+@dataclass
+class SurfaceTrack:
+    """What the run knows about one surface (mutated only by the run, on the event loop).
+
+    Attributes:
+        label: the surface's label.
+        surface: the latest surface found (None if never found).
+        centroid: its area-weighted centroid (3,), or None.
+        found_time: coordinate time of that slice, M.
+        radius_max: its largest coordinate radius, M, or NaN.
+        velocity: (3,) centroid velocity between the last two finds, per unit coordinate time
+            (zero with fewer than two finds or no time between them).
+        displacement: (3,) centroid change between the last two finds (zero with fewer).
+        latest_found: wire message of the latest found surface (for GetLatestSurfaces).
+        latest_attempt_found, latest_attempt_iteration, latest_attempt_message: the latest try.
+        consecutive_misses: attempts since the last find.
+    """
+
+    label: str
+    surface: Surface | None = None
+    centroid: np.ndarray | None = None
+    found_time: float = 0.0
+    radius_max: float = float("nan")
+    velocity: np.ndarray = field(default_factory=lambda: np.zeros(3))
+    displacement: np.ndarray = field(default_factory=lambda: np.zeros(3))
+    latest_found: object | None = None
+    latest_attempt_found: bool = False
+    latest_attempt_iteration: int = -1
+    latest_attempt_message: str = ""
+    consecutive_misses: int = 0
+
+    def record_found(self, surface: Surface, centroid, radius_max: float, message, *, iteration: int,
+                     time: float) -> None:
+        centroid = np.asarray(centroid, dtype=float)
+        if self.centroid is not None:
+            self.displacement = centroid - self.centroid
+            if time > self.found_time:
+                self.velocity = self.displacement / (time - self.found_time)
+        self.surface = surface
+        self.centroid = centroid
+        self.found_time = float(time)
+        self.radius_max = float(radius_max)
+        self.latest_found = message
+        self.latest_attempt_found = True
+        self.latest_attempt_iteration = int(iteration)
+        self.latest_attempt_message = "found"
+        self.consecutive_misses = 0
+
+    def record_miss(self, text: str, iteration: int) -> None:
+        self.latest_attempt_found = False
+        self.latest_attempt_iteration = int(iteration)
+        self.latest_attempt_message = text
+        self.consecutive_misses += 1
+
+    def predicted_centroid(self, time: float) -> np.ndarray:
+        """The centroid moved on at the last velocity to coordinate time ``time`` (linear; the
+        orbit-aware forecast of issue 4 can replace this through a planner)."""
+        return self.centroid + self.velocity * (float(time) - self.found_time)
+
+
+def recentred(surface: Surface, centre) -> Surface:
+    """``surface``'s shape about a new centre, its l = 1 part dropped.
+
+    To first order the l = 1 coefficients are the offset of the surface from its expansion
+    centre; moving the centre onto the centroid takes that offset up, so keeping them would
+    count it twice.
+    """
+    coefficients = np.array(surface.coefficients)
+    coefficients[1:4] = 0.0  # indices l*l + l + m for l = 1
+    return Surface(np.asarray(centre, dtype=float), surface.lmax, coefficients)
+
+
+@dataclass(frozen=True, eq=False)
+class SurfacePlan:
+    """One surface to look for: label, optional seed, scan fallback and the data region."""
+
+    label: str
+    seed: Surface | None
+    scan_centre: np.ndarray | None
+    scan_radii: tuple[float, float] | None
+    box_lower: np.ndarray
+    box_upper: np.ndarray
+
+    def widened(self, factor: float) -> "SurfacePlan":
+        """The same plan with the data region scaled about its middle."""
+        mid = 0.5 * (self.box_lower + self.box_upper)
+        half = 0.5 * (self.box_upper - self.box_lower) * factor
+        return SurfacePlan(self.label, self.seed, self.scan_centre, self.scan_radii, mid - half, mid + half)
+
+
+class SurfacePlanner(Protocol):
+    """Decides the surfaces to look for in a slice."""
+
+    def plan(self, settings: RunSettings, tracks: Mapping[str, SurfaceTrack], slice_: Slice) -> Sequence[SurfacePlan]:
+        ...
+
+
+class ExpectedBodiesPlanner:
+    """One surface per expected body (see the module docstring)."""
+
+    def plan(self, settings: RunSettings, tracks: Mapping[str, SurfaceTrack], slice_: Slice) -> list[SurfacePlan]:
+        plans = []
+        lo_factor, hi_factor = SCAN_RADIUS_FACTORS
+        for body in settings.bodies:
+            track = tracks.get(body.label)
+            wide = (lo_factor * body.mass, hi_factor * body.mass)
+            if track is not None and track.surface is not None and track.consecutive_misses < _MISSES_BEFORE_WIDE_SCAN:
+                # Seed: the last shape, re-centred on where its centroid should be now.
+                centre = track.predicted_centroid(slice_.time)
+                seed = recentred(track.surface, centre)
+                scan_centre = centre
+                motion = float(np.linalg.norm(centre - track.centroid))
+                # Tight region: the surface, a margin for its growth, and its motion.
+                reach = _SEEDED_BOX_FACTOR * track.radius_max + motion
+                # The fallback scan stays inside that region.
+                scan_radii = (wide[0], max(reach / _SCAN_BOX_FACTOR, 2.0 * wide[0]))
+                middle = centre
+            else:
+                seed = None
+                scan_centre = np.asarray(body.position, dtype=float)
+                if track is not None and track.centroid is not None:
+                    # Lost: look where it should have moved on to since it was last seen.
+                    scan_centre = track.predicted_centroid(slice_.time)
+                scan_radii = wide
+                middle = scan_centre
+                reach = _SCAN_BOX_FACTOR * scan_radii[1]
+            plans.append(
+                SurfacePlan(
+                    label=body.label,
+                    seed=seed,
+                    scan_centre=np.asarray(scan_centre, dtype=float),
+                    scan_radii=scan_radii,
+                    box_lower=middle - reach,
+                    box_upper=middle + reach,
+                )
+            )
+        return plans

@@ -1,0 +1,157 @@
+"""The gRPC servicer: unpack the request, call the run manager, build the reply.
+
+Every refusal is a :class:`ServiceError` turned into an aborted call with its status code and
+message; anything else is a bug, logged and answered with INTERNAL.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import base64
+import functools
+import logging
+import time
+
+import grpc
+
+from penumbra_shim._wire import horizons_pb2 as pb
+from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
+
+from .errors import ServiceError
+from .ingest import IngestLimits, SliceAssembler
+from .runs import QueuedSlice, RunManager
+
+__all__ = ["HorizonServicer"]
+
+log = logging.getLogger("penumbra.server")
+
+
+def _translating_errors(method):
+    """Turn ServiceError into the call's status; log anything unexpected as INTERNAL."""
+
+    @functools.wraps(method)
+    async def wrapper(self, request, context):
+        try:
+            return await method(self, request, context)
+        except ServiceError as exc:
+            await context.abort(exc.code, exc.message)
+        except (asyncio.CancelledError, grpc.aio.AbortError):
+            raise
+        except Exception as exc:
+            log.exception("%s failed", method.__name__)
+            await context.abort(grpc.StatusCode.INTERNAL, f"{method.__name__}: internal error {type(exc).__name__}: {exc}")
+
+    return wrapper
+
+
+def _page_token(offset: int) -> str:
+    return base64.urlsafe_b64encode(f"offset:{offset}".encode()).decode()
+
+
+def _page_offset(token: str) -> int:
+    if not token:
+        return 0
+    try:
+        text = base64.urlsafe_b64decode(token.encode()).decode()
+        kind, value = text.split(":", 1)
+        offset = int(value)
+        if kind != "offset" or offset < 0:
+            raise ValueError
+        return offset
+    except (ValueError, UnicodeDecodeError):
+        raise ServiceError.invalid(f"page_token: {token!r} is not a token this server issued") from None
+
+
+class HorizonServicer(pb_grpc.HorizonServiceServicer):
+    """penumbra.v1.HorizonService on a :class:`RunManager`."""
+
+    def __init__(self, manager: RunManager, *, limits: IngestLimits) -> None:
+        self.manager = manager
+        self.limits = limits
+
+    @_translating_errors
+    async def OpenRun(self, request: pb.OpenRunRequest, context) -> pb.OpenRunResponse:
+        run = await self.manager.open_run(request.spec, request.request_id)
+        return pb.OpenRunResponse(run=run.to_wire())
+
+    @_translating_errors
+    async def GetRun(self, request: pb.GetRunRequest, context) -> pb.GetRunResponse:
+        return pb.GetRunResponse(run=self.manager.get(request.run_id).to_wire())
+
+    @_translating_errors
+    async def ListRuns(self, request: pb.ListRunsRequest, context) -> pb.ListRunsResponse:
+        size = request.page_size or 100
+        if not 1 <= size <= 1000:
+            raise ServiceError.invalid(f"page_size: expected 1..1000 (0 for 100), got {request.page_size}")
+        offset = _page_offset(request.page_token)
+        runs = self.manager.list_runs()
+        page = runs[offset:offset + size]
+        token = _page_token(offset + size) if offset + size < len(runs) else ""
+        return pb.ListRunsResponse(runs=[r.to_wire() for r in page], next_page_token=token)
+
+    @_translating_errors
+    async def CloseRun(self, request: pb.CloseRunRequest, context) -> pb.CloseRunResponse:
+        run = self.manager.get(request.run_id)
+        await run.close()
+        return pb.CloseRunResponse(run=run.to_wire())
+
+    @_translating_errors
+    async def SendSlice(self, request_iterator, context) -> pb.SendSliceResponse:
+        assembler: SliceAssembler | None = None
+        run = None
+        async for request in request_iterator:
+            part = request.WhichOneof("part")
+            if assembler is None:
+                if part != "header":
+                    raise ServiceError.invalid(f"header: the first message of a SendSlice stream must carry the "
+                                               f"header, got {part or 'an empty message'}")
+                header = request.header
+                run = self.manager.get(header.run_id)
+                run.check_accepting()
+                if run.is_duplicate(header.iteration):
+                    # Idempotent resend: answer at once, without reading the data again.
+                    return run.duplicate_response(header.iteration, 0)
+                assembler = SliceAssembler(header, run.settings.variable_set, self.limits)
+            elif part == "chunk":
+                assembler.add(request.chunk)
+            else:
+                raise ServiceError.invalid(f"chunk: expected only chunks after the header, got {part or 'an empty message'}")
+        if assembler is None:
+            raise ServiceError.invalid("header: the stream ended without a header")
+        # The finiteness check walks every value: keep it off the event loop.
+        slice_ = await asyncio.to_thread(assembler.finish)
+        item = QueuedSlice(slice_=slice_, nbytes=assembler.received_bytes, arrival_unix_s=time.time())
+        return run.accept(item)
+
+    @_translating_errors
+    async def WatchRun(self, request: pb.WatchRunRequest, context) -> None:
+        run = self.manager.get(request.run_id)
+        held, subscriber = run.log.subscribe(request.start_seq)
+        last = max(1, request.start_seq) - 1
+        try:
+            for event in held:
+                await context.write(pb.WatchRunResponse(event=event))
+                last = event.seq
+            while True:
+                event = await subscriber.next()
+                if event is None:
+                    break
+                if event.seq <= last:
+                    continue
+                await context.write(pb.WatchRunResponse(event=event))
+                last = event.seq
+            if subscriber.server_stopping:
+                raise ServiceError(grpc.StatusCode.UNAVAILABLE,
+                                   f"server is shutting down; reconnect with start_seq={last + 1}")
+            if subscriber.overflowed:
+                raise ServiceError(
+                    grpc.StatusCode.RESOURCE_EXHAUSTED,
+                    f"watcher fell behind: more than {subscriber.capacity} events waited for it; "
+                    f"resume with start_seq={last + 1}",
+                )
+        finally:
+            run.log.unsubscribe(subscriber)
+
+    @_translating_errors
+    async def GetLatestSurfaces(self, request: pb.GetLatestSurfacesRequest, context) -> pb.GetLatestSurfacesResponse:
+        return self.manager.get(request.run_id).latest_surfaces()

@@ -1,0 +1,1 @@
+"""Developer tools (code generation); not imported by the server at run time."""

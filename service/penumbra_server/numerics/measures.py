@@ -113,20 +113,30 @@ def plane_cut(surface: Surface, origin: np.ndarray, normal_axis: int, samples: i
         ph = np.arctan2(x[:, 1], x[:, 0])
         return r - surface.radius(th, ph)
 
-    # Bracket the crossing on each ray (F < 0 inside, > 0 outside), then bisect: robust and the
-    # surfaces are smooth, so 60 halvings reach round-off.
+    # Bracket the crossing on each ray (F < 0 inside, > 0 outside), then the Illinois variant of
+    # regula falsi: bracketing keeps it safe, superlinear convergence keeps it cheap.
     lo = np.zeros(samples)
-    if np.any(level(lo + 1e-12) >= 0):
+    f_lo = level(lo + 1e-12)
+    if np.any(f_lo >= 0):
         return None
     hi = np.full(samples, 2.0 * surface.on_grid(angular_grid(surface.lmax)).h.max() + np.linalg.norm(origin - c))
-    if np.any(level(hi) <= 0):
+    f_hi = level(hi)
+    if np.any(f_hi <= 0):
         return None
+    side = np.zeros(samples)
     for _ in range(60):
-        mid = 0.5 * (lo + hi)
-        inside = level(mid) < 0
-        lo = np.where(inside, mid, lo)
-        hi = np.where(inside, hi, mid)
-    return origin + (0.5 * (lo + hi))[:, None] * d
+        mid = (lo * f_hi - hi * f_lo) / (f_hi - f_lo)
+        f_mid = level(mid)
+        inside = f_mid < 0
+        lo, f_lo = np.where(inside, mid, lo), np.where(inside, f_mid, f_lo)
+        hi, f_hi = np.where(inside, hi, mid), np.where(inside, f_hi, f_mid)
+        # Illinois: halve the stale end's value when the same end moved twice in a row.
+        f_hi = np.where(inside & (side > 0), 0.5 * f_hi, f_hi)
+        f_lo = np.where(~inside & (side < 0), 0.5 * f_lo, f_lo)
+        side = np.where(inside, 1.0, -1.0)
+        if np.max(np.abs(f_mid)) < 1e-14 * max(1.0, float(np.max(hi))):
+            break
+    return origin + mid[:, None] * d
 
 
 def proper_length_closed(points: np.ndarray, geometry_source) -> float:

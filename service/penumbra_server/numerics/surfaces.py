@@ -28,6 +28,7 @@ __all__ = [
     "degree_of_index",
     "HarmonicBasis",
     "harmonic_basis",
+    "harmonic_values",
     "AngularGrid",
     "angular_grid",
     "RadiusDerivatives",
@@ -66,44 +67,58 @@ class HarmonicBasis:
     d_phi_phi: np.ndarray
 
 
-def harmonic_basis(lmax: int, theta: np.ndarray, phi: np.ndarray) -> HarmonicBasis:
-    """Real harmonics up to ``lmax`` and derivatives up to second order at (theta, phi) (radians).
+@functools.lru_cache(maxsize=64)
+def _degree_order(lmax: int) -> tuple[np.ndarray, np.ndarray]:
+    """(l, m) of every coefficient index, read-only."""
+    l = degree_of_index(lmax)
+    m = np.concatenate([np.arange(-d, d + 1) for d in range(lmax + 1)])
+    m.setflags(write=False)
+    return l, m
 
-    ``theta`` and ``phi`` are 1-D arrays of equal length N.
-    """
+
+def _check_angles(lmax: int, theta, phi) -> tuple[np.ndarray, np.ndarray]:
     if lmax < 0:
         raise ValueError(f"lmax: expected an integer >= 0, got {lmax}")
     theta = np.asarray(theta, dtype=float).ravel()
     phi = np.asarray(phi, dtype=float).ravel()
     if theta.shape != phi.shape:
         raise ValueError(f"theta and phi: expected equal lengths, got {theta.shape} and {phi.shape}")
+    return theta, phi
+
+
+def _azimuthal(m: np.ndarray, phi: np.ndarray, derivative: int) -> np.ndarray:
+    """(N, n_coef) the phi factor of each real harmonic (cos for m > 0, sin for m < 0, 1 for m = 0,
+    times sqrt(2) off m = 0) differentiated ``derivative`` times."""
+    am = np.abs(m)
+    arg = phi[:, None] * am[None, :]
+    if derivative == 0:
+        f = np.where(m > 0, np.cos(arg), np.where(m < 0, np.sin(arg), 1.0))
+    elif derivative == 1:
+        f = np.where(m > 0, -am * np.sin(arg), np.where(m < 0, am * np.cos(arg), 0.0))
+    else:
+        f = -(am**2) * np.where(m > 0, np.cos(arg), np.where(m < 0, np.sin(arg), 0.0))
+    return np.where(m == 0, 1.0, np.sqrt(2.0)) * f
+
+
+def harmonic_basis(lmax: int, theta: np.ndarray, phi: np.ndarray) -> HarmonicBasis:
+    """Real harmonics up to ``lmax`` and derivatives up to second order at (theta, phi) (radians).
+
+    ``theta`` and ``phi`` are 1-D arrays of equal length N.
+    """
+    theta, phi = _check_angles(lmax, theta, phi)
+    l, m = _degree_order(lmax)
     # p[d, l, m, n]: d-th theta derivative of the spherical Legendre function (m >= 0 used).
     p = sph_legendre_p_all(lmax, lmax, theta, diff_n=2)
-    n = theta.size
-    ncoef = coefficient_count(lmax)
-    mats = {k: np.zeros((n, ncoef)) for k in ("Y", "t", "p", "tt", "tp", "pp")}
-    root2 = np.sqrt(2.0)
-    for l in range(lmax + 1):
-        for m in range(-l, l + 1):
-            col = l * l + l + m
-            am = abs(m)
-            P, Pt, Ptt = p[0, l, am], p[1, l, am], p[2, l, am]
-            if m == 0:
-                mats["Y"][:, col] = P
-                mats["t"][:, col] = Pt
-                mats["tt"][:, col] = Ptt
-                continue
-            if m > 0:
-                f, fp, fpp = np.cos(am * phi), -am * np.sin(am * phi), -(am**2) * np.cos(am * phi)
-            else:
-                f, fp, fpp = np.sin(am * phi), am * np.cos(am * phi), -(am**2) * np.sin(am * phi)
-            mats["Y"][:, col] = root2 * P * f
-            mats["t"][:, col] = root2 * Pt * f
-            mats["p"][:, col] = root2 * P * fp
-            mats["tt"][:, col] = root2 * Ptt * f
-            mats["tp"][:, col] = root2 * Pt * fp
-            mats["pp"][:, col] = root2 * P * fpp
-    return HarmonicBasis(lmax, mats["Y"], mats["t"], mats["p"], mats["tt"], mats["tp"], mats["pp"])
+    P, Pt, Ptt = (p[d][l, np.abs(m)].T for d in range(3))  # each (N, n_coef)
+    f, fp, fpp = (_azimuthal(m, phi, d) for d in range(3))
+    return HarmonicBasis(lmax, P * f, Pt * f, P * fp, Ptt * f, Pt * fp, P * fpp)
+
+
+def harmonic_values(lmax: int, theta: np.ndarray, phi: np.ndarray) -> np.ndarray:
+    """(N, (lmax + 1)^2) real harmonics without derivatives (cheaper than :func:`harmonic_basis`)."""
+    theta, phi = _check_angles(lmax, theta, phi)
+    l, m = _degree_order(lmax)
+    return sph_legendre_p_all(lmax, lmax, theta)[0][l, np.abs(m)].T * _azimuthal(m, phi, 0)
 
 
 @dataclass(frozen=True, eq=False)
@@ -263,7 +278,7 @@ class Surface:
 
     def radius(self, theta, phi) -> np.ndarray:
         """h(theta, phi) at arbitrary directions (flattened), units of M."""
-        return self.at(theta, phi).h
+        return harmonic_values(self.lmax, theta, phi) @ self.coefficients
 
     def points(self, radius: RadiusDerivatives) -> np.ndarray:
         """(N, 3) coordinate positions of the surface at the directions of ``radius``."""

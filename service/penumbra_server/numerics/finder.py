@@ -414,10 +414,12 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
 
 
 def _points_across(slice_: Slice, ev: _Evaluated) -> float:
-    """Smallest coordinate diameter over the coarsest spacing among the patches serving the nodes."""
+    """Smallest coordinate extent of the surface along x, y and z over the coarsest spacing among
+    the patches serving its nodes. (The extent, not 2 min h: the expansion centre may sit far
+    off the middle of the surface.)"""
     served = np.unique(ev.geometry.source_patch[ev.geometry.source_patch >= 0])
     spacing = max(float(np.max(slice_.patches[i].spacing)) for i in served)
-    return 2.0 * float(np.min(ev.rd.h)) / spacing
+    return float(np.min(np.ptp(ev.points, axis=0))) / spacing
 
 
 def _residual_between_nodes(source: TrackedSource, surface: Surface) -> float:

@@ -1,0 +1,236 @@
+"""The `penumbra` command: serve, demo, runs, watch, report.
+
+    penumbra serve  [--listen HOST:PORT] [--archive-root DIR] [--workers N]
+    penumbra demo   [--workdir DIR]
+    penumbra runs   [--server HOST:PORT]
+    penumbra watch  RUN_ID [--server HOST:PORT] [--once] [--interval S]
+    penumbra report ARCHIVE [--output DIR] [--times T,T,...] [--plane xy|xz|yz]
+
+Every subcommand prints a one-line reason and exits non-zero on bad input or an unreachable
+server; ``--help`` on each explains the options.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from pathlib import Path
+
+__all__ = ["main", "build_parser", "parse_address", "DEFAULT_PORT", "DEFAULT_LISTEN"]
+
+DEFAULT_PORT = 50717
+DEFAULT_LISTEN = f"127.0.0.1:{DEFAULT_PORT}"
+
+
+def parse_address(text: str) -> str:
+    """Check ``host:port`` (``[v6]:port`` allowed, port 0..65535); return it unchanged."""
+    host, sep, port = str(text).rpartition(":")
+    if not sep or not host:
+        raise argparse.ArgumentTypeError(f"expected HOST:PORT (e.g. {DEFAULT_LISTEN}), got {text!r}")
+    try:
+        number = int(port)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"port: expected an integer 0..65535, got {port!r} in {text!r}") from None
+    if not 0 <= number <= 65535:
+        raise argparse.ArgumentTypeError(f"port: expected an integer 0..65535, got {number} in {text!r}")
+    return text
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a positive integer, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a positive integer, got {value}")
+    return value
+
+
+def _positive_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}") from None
+    if not value > 0:
+        raise argparse.ArgumentTypeError(f"expected a positive number, got {value}")
+    return value
+
+
+def _times(text: str) -> tuple[float, ...]:
+    try:
+        return tuple(float(t) for t in text.split(",") if t.strip())
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected comma-separated times in M (e.g. 0,2.5,4), got {text!r}") from None
+
+
+def _default_server() -> str:
+    return os.environ.get("PENUMBRA_SERVER", DEFAULT_LISTEN)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="penumbra",
+        description="Remote apparent-horizon service for numerical-relativity runs.",
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    p = sub.add_parser("serve", help="run a Penumbra server", description=(
+        "Run the server until SIGINT/SIGTERM. Binds 127.0.0.1 unless told otherwise: give the node's "
+        "address reachable from the evolution's nodes with --listen."))
+    p.add_argument("--listen", type=parse_address, default=DEFAULT_LISTEN,
+                   help=f"HOST:PORT to bind (default {DEFAULT_LISTEN}; port 0 picks a free one)")
+    p.add_argument("--archive-root", type=Path, default=Path("penumbra-archive"),
+                   help="directory holding one <run_id>.zarr per run (default ./penumbra-archive)")
+    p.add_argument("--workers", type=_positive_int, default=max(1, (os.cpu_count() or 2) - 1),
+                   help="finder worker processes (default: cores - 1, at least 1)")
+    p.add_argument("--ready-file", type=Path, default=None,
+                   help="write the bound HOST:PORT to this file once serving (for scripts)")
+    p.add_argument("--grace", type=_positive_float, default=5.0,
+                   help="seconds in-flight calls get to finish on shutdown (default 5)")
+    p.add_argument("--no-common-horizon", dest="common_horizon", action="store_false",
+                   help="look for each expected body only, never for a common surface of a pair")
+    p.set_defaults(handler=_cmd_serve)
+
+    p = sub.add_parser("demo", help="run the invented binary-black-hole demo end to end", description=(
+        "Start a server on a loopback port, run an invented 'evolution' process that sends "
+        "Brill-Lindquist slices through the shim, follow the results, write plots and a summary."))
+    p.add_argument("--workdir", type=Path, default=Path("penumbra-demo-output"),
+                   help="directory for the archive, plots and logs (default ./penumbra-demo-output)")
+    p.add_argument("--workers", type=_positive_int, default=2, help="finder worker processes (default 2)")
+    p.add_argument("--seconds-per-slice", type=float, default=None,
+                   help="pretend evolution cost between slices, s (default: the scenario's)")
+    p.add_argument("--max-slices", type=_positive_int, default=None,
+                   help="stop the evolution after this many slices (default: the whole track)")
+    p.add_argument("--lmax", type=_positive_int, default=None, help="finder l_max (default: the demo's)")
+    p.set_defaults(handler=_cmd_demo)
+
+    p = sub.add_parser("runs", help="list runs on a server")
+    p.add_argument("--server", type=parse_address, default=_default_server(),
+                   help="server HOST:PORT (default $PENUMBRA_SERVER or 127.0.0.1:50717)")
+    p.add_argument("--timeout", type=_positive_float, default=5.0,
+                   help="seconds to keep trying an unreachable server (default 5)")
+    p.set_defaults(handler=_cmd_runs)
+
+    p = sub.add_parser("watch", help="follow one run live in the terminal", description=(
+        "Redraw a table of the run's surfaces (found or not, area, irreducible mass, centre, residual, "
+        "lag) until the run closes. Without a terminal each frame is printed in turn."))
+    p.add_argument("run_id", help="the run to follow (see `penumbra runs`)")
+    p.add_argument("--server", type=parse_address, default=_default_server(),
+                   help="server HOST:PORT (default $PENUMBRA_SERVER or 127.0.0.1:50717)")
+    p.add_argument("--once", action="store_true", help="print one frame and exit")
+    p.add_argument("--interval", type=_positive_float, default=1.0, help="seconds between frames (default 1)")
+    p.add_argument("--timeout", type=_positive_float, default=5.0,
+                   help="seconds to keep trying an unreachable server (default 5)")
+    p.set_defaults(handler=_cmd_watch)
+
+    p = sub.add_parser("report", help="plots and a text summary from a run's archive")
+    p.add_argument("archive", type=Path, help="<archive_root>/<run_id>.zarr")
+    p.add_argument("--output", type=Path, default=None, help="output directory (default <archive>-report)")
+    p.add_argument("--times", type=_times, default=None,
+                   help="comma-separated times (M) for horizon cross-sections (default: chosen from the run)")
+    p.add_argument("--plane", choices=("xy", "xz", "yz"), default="xy",
+                   help="orbital plane for tracks and cross-sections (default xy)")
+    p.set_defaults(handler=_cmd_report)
+    return parser
+
+
+def _fail(message: str, code: int = 2) -> int:
+    print(f"penumbra: {message}", file=sys.stderr)
+    return code
+
+
+def _cmd_serve(args) -> int:
+    from penumbra_server.cli.serve import serve
+
+    return serve(listen=args.listen, archive_root=args.archive_root, workers=args.workers,
+                 ready_file=args.ready_file, grace_s=args.grace, common_horizon=args.common_horizon)
+
+
+def _connect(address: str, timeout_s: float):
+    import penumbra_shim as ps
+
+    # A person at a terminal: give up on an unreachable server after a few seconds, not 30.
+    return ps.connect(address, deadline_s=max(timeout_s, 1.0), retry_budget_s=timeout_s)
+
+
+def _cmd_runs(args) -> int:
+    import penumbra_shim as ps
+
+    client = _connect(args.server, args.timeout)
+    try:
+        runs = client.list_runs()
+    except ps.PenumbraError as err:
+        return _fail(f"cannot list runs on {args.server} (is `penumbra serve` running there?): {err}", 1)
+    finally:
+        client.close()
+    print(format_runs(runs))
+    return 0
+
+
+def format_runs(runs) -> str:
+    """A table of the shim's ``RunInfo`` objects."""
+    import time
+
+    columns = ["run id", "name", "state", "created", "received", "processed", "skipped", "archive"]
+    rows = []
+    for r in runs:
+        created = getattr(r, "created_unix_s", None)
+        rows.append([
+            str(r.run_id), str(r.name), str(r.state),
+            time.strftime("%Y-%m-%d %H:%M", time.localtime(created)) if created else "-",
+            str(r.slices_received), str(r.slices_processed), str(r.slices_skipped), str(r.archive_path or "-"),
+        ])
+    if not rows:
+        return "no runs"
+    widths = [max(len(columns[i]), *(len(row[i]) for row in rows)) for i in range(len(columns))]
+    lines = ["  ".join(c.ljust(w) for c, w in zip(columns, widths))]
+    lines += ["  ".join(c.ljust(w) for c, w in zip(row, widths)) for row in rows]
+    return "\n".join(lines)
+
+
+def _cmd_watch(args) -> int:
+    import penumbra_shim as ps
+
+    from penumbra_server.cli.watch import watch_run
+
+    client = _connect(args.server, args.timeout)
+    try:
+        return watch_run(client, args.run_id, once=args.once, interval_s=args.interval, server=args.server)
+    except ps.RunNotFoundError:
+        return _fail(f"run {args.run_id!r} not found on {args.server}; `penumbra runs --server {args.server}` lists them", 1)
+    except ps.PenumbraError as err:
+        return _fail(f"cannot watch {args.run_id!r} on {args.server} (is `penumbra serve` running there?): {err}", 1)
+    finally:
+        client.close()
+
+
+def _cmd_report(args) -> int:
+    from penumbra_server.cli.report import summary_text, write_report
+
+    output = args.output or args.archive.with_name(args.archive.name.removesuffix(".zarr") + "-report")
+    try:
+        result = write_report(args.archive, output, times=args.times, plane=args.plane)
+    except FileNotFoundError as err:
+        return _fail(str(err))
+    print(summary_text(result.summary), end="")
+    for path in result.plots + (result.summary_path,):
+        print(f"wrote {path}")
+    return 0
+
+
+def _cmd_demo(args) -> int:
+    from penumbra_server.cli.demo import run_demo
+
+    return run_demo(workdir=args.workdir, workers=args.workers, seconds_per_slice=args.seconds_per_slice,
+                    max_slices=args.max_slices, lmax=args.lmax)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    return int(args.handler(args) or 0)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,241 @@
+"""`penumbra watch`: a refreshing terminal view of one run, from any machine that reaches the server.
+
+The frame is a pure function of what the server reports (:func:`render_frame`): the run's
+counters (``GetRun``), the latest state of every surface (``GetLatestSurfaces``) and the
+progress of the run read from its event stream (newest slice processed, recent skips). The
+loop redraws it with plain ANSI codes on a terminal and prints frames one after another (no
+escape codes) when the output is not a terminal, so it also works in logs and over ``ssh -T``.
+
+"Lag" has two parts, both shown: how far the latest found surface trails the evolution, i.e.
+the newest slice the server has received (coordinate time, M; the newest slice processed when
+the server does not report what it received), and the wall-clock latency from a slice's arrival
+to its result being archived (s). Slices still queued at the server are counted in the header.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import Mapping, TextIO
+
+__all__ = ["RunProgress", "render_frame", "surface_rows", "read_progress", "watch_run"]
+
+_CLEAR = "\x1b[H\x1b[2J"
+_NAN = float("nan")
+
+
+@dataclass
+class RunProgress:
+    """What the event stream says about a run's progress (mutable; one writer thread)."""
+
+    newest_time: float = _NAN
+    newest_iteration: int = -1
+    last_latency_s: float = _NAN
+    last_seq: int = 0
+    skips: list[str] = field(default_factory=list)
+
+    def absorb(self, event) -> None:
+        """Update from one ``penumbra_shim.Event``."""
+        self.last_seq = max(self.last_seq, int(getattr(event, "seq", 0)))
+        kind = getattr(event, "kind", "")
+        if kind in ("slice_processed", "slice_skipped"):
+            it = int(getattr(event, "iteration", -1))
+            if it > self.newest_iteration and kind == "slice_processed":
+                self.newest_iteration = it
+                self.newest_time = float(getattr(event, "time", _NAN))
+                self.last_latency_s = float(getattr(event, "latency_s", _NAN))
+            if kind == "slice_skipped":
+                skipped = getattr(event, "skipped_iteration", -1)
+                skipped = it if skipped is None or int(skipped) < 0 else int(skipped)
+                by = int(getattr(event, "superseded_by_iteration", -1))
+                self.skips.append(f"skipped iteration {skipped}" + (f" (superseded by {by})" if by >= 0 else ""))
+                del self.skips[:-5]
+
+
+def _num(value, spec: str) -> str:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        return "-"
+    return format(v, spec) if math.isfinite(v) else "-"
+
+
+def _vec(values, spec: str = "+.3f") -> str:
+    try:
+        parts = [float(v) for v in values]
+    except TypeError:
+        return "-"
+    if len(parts) != 3 or not all(math.isfinite(v) for v in parts):
+        return "-"
+    return "(" + ", ".join(format(v, spec) for v in parts) + ")"
+
+
+COLUMNS = ("surface", "latest attempt", "found at t [M]", "area [M^2]", "M_irr [M]", "centre (x, y, z) [M]",
+           "|Theta|max [1/M]", "lag [M] / [s]")
+
+
+def surface_rows(states: Mapping[str, object], *, body_labels=(), newest_time: float = _NAN) -> list[list[str]]:
+    """Table rows, one per surface, from the shim's ``SurfaceState`` objects.
+
+    Bodies come first in spec order, then other surfaces (e.g. a common horizon). Numbers are
+    those of the latest *found* surface; the state column says whether the latest attempt found it.
+    """
+    order = [l for l in body_labels if l in states] + sorted(l for l in states if l not in body_labels)
+    rows = []
+    for label in order:
+        state = states[label]
+        found = getattr(state, "latest_found", None)
+        attempted = int(getattr(state, "latest_attempt_iteration", -1))
+        if attempted < 0:
+            status = "waiting"
+        elif getattr(state, "latest_attempt_found", False):
+            status = f"found (it {attempted})"
+        else:
+            misses = int(getattr(state, "consecutive_misses", 0))
+            status = f"NOT FOUND (it {attempted}, {misses} miss{'es' if misses != 1 else ''})"
+        if found is None:
+            rows.append([label, status, "-", "-", "-", "-", "-", "-"])
+            continue
+        t = float(found.time)
+        behind = newest_time - t if math.isfinite(newest_time) else _NAN
+        rows.append([
+            label,
+            status,
+            f"{_num(t, '.3f')} (it {found.iteration})",
+            _num(found.area, ".5f"),
+            _num(found.irreducible_mass, ".5f"),
+            _vec(found.centroid),
+            _num(found.residual_max, ".1e"),
+            f"{_num(behind, '.3f')} / {_num(found.latency_s, '.2f')}",
+        ])
+    return rows
+
+
+def render_frame(info, states: Mapping[str, object], progress: RunProgress | None = None, *,
+                 now_unix_s: float | None = None, server: str = "") -> str:
+    """One screenful describing a run.
+
+    Args:
+        info: the shim's ``RunInfo``.
+        states: label -> ``SurfaceState`` (the server's latest state per tracked surface).
+        progress: what the event stream said (newest processed slice, recent skips).
+        now_unix_s: wall clock for the header (default: now).
+        server: address shown in the header.
+    """
+    progress = progress or RunProgress()
+    now = time.time() if now_unix_s is None else now_unix_s
+    spec = getattr(info, "spec", None)
+    body_labels = tuple(getattr(b, "label", "") for b in (getattr(spec, "bodies", ()) or ()))
+    received = int(getattr(info, "slices_received", 0))
+    processed = int(getattr(info, "slices_processed", 0))
+    skipped = int(getattr(info, "slices_skipped", 0))
+    duplicate = int(getattr(info, "slices_duplicate", 0))
+    queued = max(received - processed - skipped, 0)
+    received_time = float(getattr(info, "last_received_time", _NAN))
+    received_iteration = int(getattr(info, "last_received_iteration", -1))
+    # The evolution's position as the server knows it: newest received, else newest processed.
+    evolution_time = received_time if math.isfinite(received_time) else progress.newest_time
+    lines = [
+        f"penumbra watch  {getattr(info, 'run_id', '?')}  {getattr(info, 'name', '')!r}  "
+        f"state {getattr(info, 'state', '?')}  {server}".rstrip(),
+        time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(now))
+        + f"  slices: received {received}, processed {processed}, skipped {skipped}, queued {queued}"
+        + (f", duplicates {duplicate}" if duplicate else ""),
+        ("newest slice received: "
+         + (f"t = {received_time:.3f} M, iteration {received_iteration}" if received_iteration >= 0 else "none yet")
+         + ";  newest processed: "
+         + (f"t = {progress.newest_time:.3f} M, iteration {progress.newest_iteration}, "
+            f"arrival -> archived {_num(progress.last_latency_s, '.2f')} s"
+            if progress.newest_iteration >= 0 else "none yet")),
+        "",
+    ]
+    rows = surface_rows(states, body_labels=body_labels, newest_time=evolution_time)
+    if not rows:
+        rows = [[label, "waiting", "-", "-", "-", "-", "-", "-"] for label in body_labels]
+    widths = [max([len(COLUMNS[i])] + [len(r[i]) for r in rows]) for i in range(len(COLUMNS))]
+    lines.append("  ".join(c.ljust(w) for c, w in zip(COLUMNS, widths)).rstrip())
+    lines.append("  ".join("-" * w for w in widths))
+    lines.extend("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows)
+    if progress.skips:
+        lines.append("")
+        lines.extend(progress.skips[-5:])
+    lines.append("")
+    lines.append("lag: newest slice received minus the time the surface was last found [M] / "
+                 "arrival-to-archived wall time [s]. Results are advisory.")
+    return "\n".join(lines) + "\n"
+
+
+def read_progress(client, run_id: str, last_seq: int, *, window: int = 512, timeout_s: float = 5.0) -> RunProgress:
+    """Read the tail of the run's event log (up to ``last_seq``) into a :class:`RunProgress`."""
+    progress = RunProgress()
+    if last_seq < 1:
+        return progress
+    stream = client.watch(run_id, from_seq=max(1, last_seq - window + 1), timeout_s=timeout_s)
+    try:
+        for event in stream:
+            progress.absorb(event)
+            if event.seq >= last_seq:
+                break
+    finally:
+        stream.cancel()
+    return progress
+
+
+def watch_run(client, run_id: str, *, once: bool = False, interval_s: float = 1.0, stream: TextIO | None = None,
+              server: str = "", max_frames: int | None = None) -> int:
+    """Draw frames for ``run_id`` until the run is closed (or once). Returns an exit status.
+
+    Raises the shim's ``RunNotFoundError`` / ``PenumbraError`` for an unknown run or an
+    unreachable server (the command line turns them into a message).
+    """
+    import penumbra_shim as ps
+
+    stream = stream or sys.stdout
+    tty = bool(getattr(stream, "isatty", lambda: False)())
+    info = client.get_run(run_id)
+    progress = read_progress(client, run_id, int(info.last_seq))
+    if once:
+        stream.write(render_frame(info, client.latest_surfaces(run_id), progress, server=server))
+        stream.flush()
+        return 0
+
+    events = client.watch(run_id, from_seq=progress.last_seq + 1)
+
+    def follow() -> None:
+        try:
+            for event in events:
+                progress.absorb(event)
+        except Exception:  # the frame loop's unary calls report connection problems
+            return
+
+    follower = threading.Thread(target=follow, name="penumbra-watch-events", daemon=True)
+    follower.start()
+    frames = 0
+    unreachable_since = None
+    try:
+        while True:
+            try:
+                info = client.get_run(run_id)
+                frame = render_frame(info, client.latest_surfaces(run_id), progress, server=server)
+                unreachable_since = None
+            except ps.RunNotFoundError:
+                raise
+            except ps.PenumbraError as err:  # keep watching through a server restart; the stream resumes itself
+                unreachable_since = unreachable_since or time.time()
+                frame = (f"penumbra watch  {run_id}  {server}\nserver unreachable for "
+                         f"{time.time() - unreachable_since:.0f} s ({err}); retrying every {interval_s:g} s\n")
+                info = None
+            stream.write((_CLEAR + frame) if tty else (frame + "\n"))
+            stream.flush()
+            frames += 1
+            if (info is not None and info.state == "closed") or (max_frames is not None and frames >= max_frames):
+                return 0
+            time.sleep(interval_s)
+    except KeyboardInterrupt:
+        return 130
+    finally:
+        events.cancel()
+        follower.join(timeout=2.0)

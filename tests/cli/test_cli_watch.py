@@ -1,0 +1,144 @@
+"""`penumbra watch` and `penumbra runs` against a real server on 127.0.0.1 (real workers, real zarr)."""
+
+import io
+import math
+
+import numpy as np
+import pytest
+
+ps = pytest.importorskip("penumbra_shim")
+
+from penumbra_server.cli.demo_evolution import run_spec_for, slice_arrays
+from penumbra_server.cli.demo_scenario import DemoScenario, GridLayout
+from penumbra_server.cli.main import format_runs, main
+from penumbra_server.cli.watch import RunProgress, render_frame, watch_run
+from penumbra_server.server import BackgroundServer
+
+# A coarser copy of the demo grid keeps the finds quick; both holes are still resolved.
+SCENARIO = DemoScenario(layout=GridLayout(coarse_nodes=32, coarse_half_width=1.5, fine_nodes=24))
+
+
+@pytest.fixture(scope="module")
+def served_run(tmp_path_factory):
+    """A server with one run that has processed two slices of the demo scenario."""
+    root = tmp_path_factory.mktemp("watch-archive")
+    with BackgroundServer("127.0.0.1:0", archive_root=root, workers=2) as bg:
+        client = ps.connect(bg.address)
+        run = client.open_run(run_spec_for(SCENARIO, lmax=6, name="watch-test"))
+        for index in (0, 1):
+            run.submit(ps.build_slice(**slice_arrays(SCENARIO, index)))
+        assert run.flush(timeout_s=60)
+        run_id = run.run_id
+        # Wait until the server has dealt with both slices.
+        for event in client.watch(run_id, from_seq=1, timeout_s=120):
+            if event.kind == "slice_processed" and event.iteration == SCENARIO.iteration_of(1):
+                break
+        yield bg.address, client, run_id
+        run.close()
+        client.close()
+
+
+def test_watch_once_renders_the_servers_latest_state(served_run):
+    address, client, run_id = served_run
+    out = io.StringIO()
+    assert watch_run(client, run_id, once=True, stream=out, server=address) == 0
+    frame = out.getvalue()
+    assert "\x1b[" not in frame  # no escape codes without a terminal
+    assert run_id in frame and "'watch-test'" in frame
+    assert "received 2, processed 2, skipped 0, queued 0" in frame
+    newest = f"t = {SCENARIO.time_of(1):.3f} M, iteration {SCENARIO.iteration_of(1)}"
+    assert f"newest slice received: {newest};  newest processed: {newest}" in frame
+    states = client.latest_surfaces(run_id)
+    lines = frame.splitlines()
+    assert states["heavy"].latest_attempt_found  # the large hole is found in both slices
+    for label in ("heavy", "light"):
+        state = states[label]
+        row = next(line for line in lines if line.startswith(label + " "))
+        if state.latest_attempt_found:
+            assert f"found (it {state.latest_attempt_iteration})" in row
+        else:
+            assert f"NOT FOUND (it {state.latest_attempt_iteration}, {state.consecutive_misses} miss" in row
+        found = state.latest_found
+        assert found is not None and found.found
+        assert f"{found.area:.5f}" in row and f"{found.irreducible_mass:.5f}" in row
+        assert f"({found.centroid[0]:+.3f}, {found.centroid[1]:+.3f}, {found.centroid[2]:+.3f})" in row
+        # Lag behind the evolution: newest slice received minus the time last found.
+        assert f"{SCENARIO.time_of(1) - found.time:.3f} / " in row
+    # The heavy hole sits where the track puts it (centroid within a fine cell of the puncture).
+    heavy = states["heavy"].latest_found
+    np.testing.assert_allclose(heavy.centroid, SCENARIO.track.positions(SCENARIO.time_of(1))[0],
+                               atol=SCENARIO.layout.fine_spacing)
+
+
+def test_watch_command_line_once(served_run, capsys):
+    address, _, run_id = served_run
+    assert main(["watch", run_id, "--server", address, "--once"]) == 0
+    out = capsys.readouterr().out
+    assert out.count("penumbra watch") == 1 and "heavy" in out and "light" in out
+
+
+def test_watch_unknown_run_says_so(served_run, capsys):
+    address, _, _ = served_run
+    assert main(["watch", "run-000000000000", "--server", address, "--once"]) == 1
+    assert "not found" in capsys.readouterr().err
+
+
+def test_runs_lists_the_run(served_run, capsys):
+    address, client, run_id = served_run
+    assert main(["runs", "--server", address]) == 0
+    out = capsys.readouterr().out
+    line = next(l for l in out.splitlines() if l.startswith(run_id))
+    assert "watch-test" in line and "open" in line
+    assert format_runs([]) == "no runs"
+
+
+def test_frame_marks_misses_and_lag():
+    spec = ps.RunSpec(variable_set="conformal_w", bodies=(ps.Body("A", (1, 0, 0), 0.5), ps.Body("B", (-1, 0, 0), 0.5)),
+                      name="synthetic")
+    info = ps.RunInfo(run_id="run-aaaaaaaaaaaa", name="synthetic", state="open", spec=spec, created_unix_s=0.0,
+                      closed_unix_s=math.nan, slices_received=7, slices_processed=4, slices_skipped=1,
+                      slices_duplicate=0, last_seq=20, archive_path="", last_received_iteration=50,
+                      last_received_time=5.0)
+    report = ps.SurfaceReport(label="A", time=2.0, iteration=20, found=True, status=0, area=12.566,
+                              irreducible_mass=0.5, centroid=np.array([1.0, 0.0, 0.0]), residual_max=1e-9,
+                              latency_s=0.25)
+    states = {
+        "A": ps.SurfaceState("A", report, False, 30, "not converged", 1),
+        "B": ps.SurfaceState("B", None, False, -1, "", 0),
+        "common": ps.SurfaceState("common", None, False, 30, "no candidate", 3),
+    }
+    progress = RunProgress(newest_time=3.0, newest_iteration=30, last_latency_s=0.5, last_seq=20,
+                           skips=["skipped iteration 25 (superseded by 30)"])
+    frame = render_frame(info, states, progress, now_unix_s=0.0)
+    lines = frame.splitlines()
+    assert "queued 2" in frame  # 7 received - 4 processed - 1 skipped
+    row_a = next(l for l in lines if l.startswith("A "))
+    # Lag behind the evolution: newest received t = 5 minus found at t = 2.
+    assert "NOT FOUND (it 30, 1 miss)" in row_a and "2.000 (it 20)" in row_a and "3.000 / 0.25" in row_a
+    assert "newest slice received: t = 5.000 M, iteration 50;  newest processed: t = 3.000 M, iteration 30" in frame
+    assert next(l for l in lines if l.startswith("B ")).split()[1] == "waiting"
+    assert "NOT FOUND (it 30, 3 misses)" in next(l for l in lines if l.startswith("common "))
+    # bodies first, in spec order, then the rest
+    order = [l.split()[0] for l in lines if l.split() and l.split()[0] in ("A", "B", "common")]
+    assert order == ["A", "B", "common"]
+    assert "skipped iteration 25 (superseded by 30)" in frame
+
+
+def test_live_watch_redraws_until_the_run_closes(served_run):
+    import threading
+
+    address, client, _ = served_run
+    run = client.open_run(run_spec_for(SCENARIO, lmax=6, name="live-watch"))
+    out = io.StringIO()
+    result = {}
+    watcher = threading.Thread(target=lambda: result.setdefault(
+        "status", watch_run(client, run.run_id, interval_s=0.2, stream=out, server=address)))
+    watcher.start()
+    run.submit(ps.build_slice(**slice_arrays(SCENARIO, 0)))
+    run.close()  # flushes, lets the server drain, closes the run
+    watcher.join(timeout=60)
+    assert not watcher.is_alive() and result["status"] == 0
+    frames = [f for f in out.getvalue().split("penumbra watch  ") if f]
+    assert len(frames) >= 2
+    assert "state closed" in frames[-1] and "received 1, processed 1" in frames[-1]
+    assert "state open" in frames[0]

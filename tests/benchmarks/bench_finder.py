@@ -87,6 +87,17 @@ def main() -> None:
         print(f"   exact data, tolerance {tol:.0e}: Newton {t_n * 1e3:.0f} ms ({r_n.nit} it, {r_n.residual_max:.1e}), "
               f"flow {t_f * 1e3:.0f} ms ({r_f.nit} it, {r_f.residual_max:.1e}); flow / Newton time {t_f / t_n:.1f}")
 
+    common_pair = BrillLindquist(masses=np.array([1.0, 1.0]), positions=np.array([[0, 0, 0.7], [0, 0, -0.7]]))
+    for lmax_common in (12, 16):
+        start = Surface.sphere([0, 0, 0], 1.3, lmax_common)
+        opts = dict(lmax=lmax_common, tolerance=1e-10, fallback_to_flow=False)
+        t_n, r_n = best_of(lambda: find_surface(common_pair, start, settings=FinderSettings(**opts)), 3)
+        t_f, r_f = best_of(lambda: find_surface(common_pair, start, settings=FinderSettings(
+            **opts, method="flow", flow_iterations=20000)), 1)
+        print(f"   exact data, common horizon of an equal pair at d = 1.4 m, l_max {lmax_common}: Newton "
+              f"{t_n * 1e3:.0f} ms ({r_n.nit} it), flow {t_f * 1e3:.0f} ms ({r_f.nit} it); flow / Newton time "
+              f"{t_f / t_n:.1f}")
+
     print("\n4. find time against grid size around the same hole (same spacing, larger boxes)")
     hole = BrillLindquist(masses=np.array([1.0]), positions=np.zeros((1, 3)))
     dx = 0.03

@@ -163,3 +163,15 @@ def test_unresolved_and_sub_grid_surfaces_are_not_accepted(cube):
     assert measure_surface(right.surface, smooth).irreducible_mass == pytest.approx(0.6, rel=2e-3)
     tiny = find_surface(smooth, Surface.sphere([0, 0, 0], 0.072, 8), settings=settings)
     assert not tiny.success and tiny.status in (finder_module.TOO_FEW_POINTS, finder_module.UNRESOLVED)
+
+
+def test_a_metric_that_is_not_positive_definite_is_a_status():
+    def broken(points):
+        n = len(points)
+        gamma = np.tile(np.diag([1.0, 1.0, -1.0]), (n, 1, 1))  # not a Riemannian metric
+        return finder_module.PointGeometry(gamma, np.zeros((n, 3, 3, 3)), np.zeros((n, 3, 3)),
+                                           np.ones(n, bool), -np.ones(n, int))
+
+    result = find_surface(broken, Surface.sphere([0, 0, 0], 1.0, 4), settings=FinderSettings(lmax=4))
+    assert result.status == finder_module.INVALID_GEOMETRY and not result.success
+    assert "surface points" in result.message

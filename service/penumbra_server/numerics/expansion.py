@@ -94,7 +94,8 @@ def expansion_at(rd: RadiusDerivatives, geometry: PointGeometry) -> ExpansionTer
     F = ls.dF
     F_up = np.einsum("nij,nj->ni", ginv, F)
     u2 = np.einsum("ni,ni->n", F_up, F)
-    u = np.sqrt(u2)
+    with np.errstate(invalid="ignore"):  # u2 < 0 only for a non-positive metric: NaN, seen upstream
+        u = np.sqrt(u2)
     s_up = F_up / u[:, None]
     proj = ginv - s_up[:, :, None] * s_up[:, None, :]
     term_hess = np.einsum("nij,nij->n", proj, ls.ddF) / u

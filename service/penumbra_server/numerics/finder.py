@@ -51,6 +51,7 @@ __all__ = [
     "LINE_SEARCH_FAILED",
     "UNRESOLVED",
     "TOO_FEW_POINTS",
+    "INVALID_GEOMETRY",
     "find_surface",
     "expansion_of",
 ]
@@ -63,6 +64,7 @@ OUTSIDE_DATA = 4
 LINE_SEARCH_FAILED = 5
 UNRESOLVED = 6
 TOO_FEW_POINTS = 7
+INVALID_GEOMETRY = 8
 
 #: Status code -> meaning. ``success`` is True exactly for codes 0 and 1.
 STATUS_MESSAGES: dict[int, str] = {
@@ -80,6 +82,7 @@ STATUS_MESSAGES: dict[int, str] = {
         "the truncation tolerance, so the data or l_max do not resolve this surface"
     ),
     TOO_FEW_POINTS: "not accepted: the surface spans too few grid points across to be resolved by the data",
+    INVALID_GEOMETRY: "not converged: the metric is not positive definite (or Theta not finite) on the surface",
 }
 _SUCCESS = (CONVERGED, CONVERGED_AT_TRUNCATION)
 _METHODS = ("newton", "flow")
@@ -184,6 +187,8 @@ class _Run:
     max_hist: list[float] = field(default_factory=list)
     rms_hist: list[float] = field(default_factory=list)
     uncovered_note: str = ""
+    invalid_note: str = ""
+    last_failure: int = OUTSIDE_DATA  # why the latest _evaluate returned None
 
 
 @dataclass(frozen=True, eq=False)
@@ -204,6 +209,7 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
     if not geo.covered.all():
         bad = ~geo.covered
         t, p = run.grid.theta[bad], run.grid.phi[bad]
+        run.last_failure = OUTSIDE_DATA
         run.uncovered_note = (
             f"{int(bad.sum())} of {bad.size} surface points have no patch whose stencil covers them "
             f"(theta {np.degrees(t.min()):.0f}..{np.degrees(t.max()):.0f} deg, phi "
@@ -212,6 +218,10 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     terms = expansion_at(rd, geo)
     th = terms.theta
+    if not np.all(np.isfinite(th)):
+        run.last_failure = INVALID_GEOMETRY
+        run.invalid_note = f"{int((~np.isfinite(th)).sum())} of {th.size} surface points"
+        return None
     run.max_hist.append(float(np.max(np.abs(th))))
     run.rms_hist.append(float(np.sqrt(np.sum(run.grid.weights * th**2) / (4 * np.pi))))
     return _Evaluated(surface, rd, pts, geo, th, terms.u)
@@ -265,7 +275,7 @@ def _newton(run: _Run, guess: Surface, settings: FinderSettings) -> tuple[int, _
     limit = settings.max_radius_factor * max(guess.mean_radius, 1e-300)
     ev = _evaluate(run, guess)
     if ev is None:
-        return OUTSIDE_DATA, None, 0, float("nan")
+        return run.last_failure, None, 0, float("nan")
     proj = _projected_rms(run, ev.theta)
     for it in range(1, settings.max_iterations + 1):
         if run.max_hist[-1] <= settings.tolerance:
@@ -289,7 +299,7 @@ def _newton(run: _Run, guess: Surface, settings: FinderSettings) -> tuple[int, _
                 continue
             cand = _evaluate(run, trial)
             if cand is None:
-                return OUTSIDE_DATA, ev, it, proj
+                return run.last_failure, ev, it, proj
             cand_proj = _projected_rms(run, cand.theta)
             if cand_proj < (1.0 - 1e-4 * lam) * proj or cand_proj <= settings.tolerance:
                 accepted = cand
@@ -324,7 +334,7 @@ def _flow(run: _Run, guess: Surface, settings: FinderSettings, tolerance: float)
     for it in range(settings.flow_iterations + 1):
         ev = _evaluate(run, surface)
         if ev is None:
-            return OUTSIDE_DATA, None, it, proj
+            return run.last_failure, None, it, proj
         rho = ev.rd.h**2 / ev.u
         weighted = rho * ev.theta
         proj = _projected_rms(run, weighted) / float(np.mean(rho))
@@ -367,7 +377,7 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
     else:
         status, ev, nit, proj = _newton(run, guess, settings)
         method = "newton"
-        if status not in _SUCCESS and status != OUTSIDE_DATA and settings.fallback_to_flow:
+        if status not in _SUCCESS + (OUTSIDE_DATA, INVALID_GEOMETRY) and settings.fallback_to_flow:
             # Flow to a loose residual from the original guess, then let Newton finish.
             flow_status, flow_ev, flow_nit, _ = _flow(run, guess, settings, max(settings.tolerance, 1e-4))
             if flow_ev is not None and flow_status in _SUCCESS + (MAX_ITERATIONS,):
@@ -392,6 +402,8 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
     message = STATUS_MESSAGES[status]
     if status in (OUTSIDE_DATA, TOO_FEW_POINTS) and run.uncovered_note:
         message = f"{message}: {run.uncovered_note}"
+    if status == INVALID_GEOMETRY:
+        message = f"{message}: {run.invalid_note}"
     if run.max_hist:
         message = (
             f"{message} (max |Theta| = {run.max_hist[-1]:.3e} / M at the nodes, {between:.3e} / M between "

@@ -12,6 +12,7 @@ Depends on grpcio, protobuf and numpy only. Typical use from an evolution code::
                                        patches=[ps.PatchData(origin=o, spacing=h, fields=arrays)]))
     ...                                   # submit() returned at once; a background thread sends
     states = run.latest_surfaces()        # at the regrid step: latest surface of each body
+    guidance = run.latest_guidance()      # ... and where the finest levels should sit (advisory)
     run.close()
 
 Units: G = c = 1; lengths, times and masses in units of the run's mass scale M. Results are
@@ -21,18 +22,28 @@ advisory: the evolution decides what to do with them.
 from ._client import Client, EventStream, RunHandle, SenderStats, SubmitTicket, connect
 from ._errors import PenumbraError, RunNotFoundError, SliceValidationError
 from ._fields import VARIABLE_SETS, optional_fields, required_fields
-from ._slices import DEFAULT_CHUNK_BYTES, OutgoingPatch, OutgoingSlice, PatchData, build_slice
+from ._slices import DEFAULT_CHUNK_BYTES, OutgoingPatch, OutgoingSlice, PatchData, build_slice, crop_outgoing_slice
 from ._types import (
     EVENT_KINDS,
     BacklogOptions,
     Body,
+    BodyRefinement,
+    CommonHorizon,
+    DataWindow,
+    DataWindows,
     Event,
     FinderOptions,
+    Guidance,
+    PositionForecast,
+    RefinedRegion,
+    RefinementOptions,
     RunInfo,
     RunSpec,
     SliceAck,
     SurfaceReport,
     SurfaceState,
+    TrackPoint,
+    TrackUpdate,
 )
 
 __all__ = [
@@ -41,10 +52,18 @@ __all__ = [
     "VARIABLE_SETS",
     "BacklogOptions",
     "Body",
+    "BodyRefinement",
     "Client",
+    "CommonHorizon",
+    "DataWindow",
+    "DataWindows",
     "Event",
     "EventStream",
     "FinderOptions",
+    "Guidance",
+    "PositionForecast",
+    "RefinedRegion",
+    "RefinementOptions",
     "OutgoingPatch",
     "OutgoingSlice",
     "PatchData",
@@ -59,7 +78,10 @@ __all__ = [
     "SubmitTicket",
     "SurfaceReport",
     "SurfaceState",
+    "TrackPoint",
+    "TrackUpdate",
     "build_slice",
+    "crop_outgoing_slice",
     "connect",
     "optional_fields",
     "required_fields",

@@ -15,6 +15,7 @@ never retried: they resolve the slice's ticket with a :class:`PenumbraError`.
 from __future__ import annotations
 
 import concurrent.futures
+import dataclasses
 import threading
 import time
 import uuid
@@ -25,8 +26,8 @@ from typing import Iterator
 import grpc
 
 from ._errors import PenumbraError, error_from_rpc
-from ._slices import DEFAULT_CHUNK_BYTES, OutgoingSlice, build_slice
-from ._types import Event, RunInfo, RunSpec, SliceAck, SurfaceState
+from ._slices import DEFAULT_CHUNK_BYTES, OutgoingSlice, build_slice, crop_outgoing_slice
+from ._types import DataWindows, Event, Guidance, RunInfo, RunSpec, SliceAck, SurfaceState
 from ._wire import horizons_pb2 as pb
 from ._wire import horizons_pb2_grpc as pb_grpc
 
@@ -109,7 +110,7 @@ class Client:
                 backoff = min(2 * backoff, 2.0)
 
     def open_run(self, spec: RunSpec, *, queue_depth: int | None = None, chunk_bytes: int = DEFAULT_CHUNK_BYTES,
-                 cache_results: bool = True, max_retry_s: float = 60.0) -> "RunHandle":
+                 cache_results: bool = True, max_retry_s: float = 60.0, crop_to_windows: bool = False) -> "RunHandle":
         """Open a run on the server and return a handle for sending slices to it.
 
         Args:
@@ -118,22 +119,25 @@ class Client:
                 backlog depth); beyond it the oldest waiting slice is dropped (keep newest).
             chunk_bytes: data chunk size on the wire.
             cache_results: follow the run's events in a background thread so that
-                :meth:`RunHandle.latest_surfaces` answers without a call.
+                :meth:`RunHandle.latest_surfaces` and :meth:`RunHandle.latest_guidance` answer
+                without a call.
             max_retry_s: how long one slice is retried while the server is unreachable.
+            crop_to_windows: default of :meth:`RunHandle.submit`'s option: send only the data
+                windows the server asked for (whole slices until it has asked).
         """
         if not isinstance(spec, RunSpec):
             raise TypeError(f"spec: expected a RunSpec, got {type(spec).__name__}")
         request = pb.OpenRunRequest(spec=spec.to_wire(), request_id=uuid.uuid4().hex)
         info = RunInfo.from_wire(self._call("OpenRun", request).run)
         return self._handle(info, queue_depth=queue_depth or spec.backlog.queue_depth, chunk_bytes=chunk_bytes,
-                            cache_results=cache_results, max_retry_s=max_retry_s)
+                            cache_results=cache_results, max_retry_s=max_retry_s, crop_to_windows=crop_to_windows)
 
     def attach_run(self, run_id: str, *, queue_depth: int | None = None, chunk_bytes: int = DEFAULT_CHUNK_BYTES,
-                   cache_results: bool = True, max_retry_s: float = 60.0) -> "RunHandle":
+                   cache_results: bool = True, max_retry_s: float = 60.0, crop_to_windows: bool = False) -> "RunHandle":
         """A handle on a run that is already open (e.g. after the evolution restarted)."""
         info = self.get_run(run_id)
         return self._handle(info, queue_depth=queue_depth or info.spec.backlog.queue_depth, chunk_bytes=chunk_bytes,
-                            cache_results=cache_results, max_retry_s=max_retry_s)
+                            cache_results=cache_results, max_retry_s=max_retry_s, crop_to_windows=crop_to_windows)
 
     def _handle(self, info: RunInfo, **options) -> "RunHandle":
         handle = RunHandle(self, info, **options)
@@ -162,6 +166,20 @@ class Client:
         """The latest state of every tracked surface of a run, by label (one call)."""
         response = self._call("GetLatestSurfaces", pb.GetLatestSurfacesRequest(run_id=run_id))
         return {t.label: SurfaceState.from_wire(t) for t in response.surfaces}
+
+    def _latest_guidance_reply(self, run_id: str) -> tuple[Guidance | None, DataWindows | None]:
+        response = self._call("GetLatestGuidance", pb.GetLatestGuidanceRequest(run_id=run_id))
+        windows = DataWindows.from_wire(response.windows) if response.HasField("windows") else None
+        guidance = Guidance.from_wire(response.guidance, windows) if response.HasField("guidance") else None
+        return guidance, windows
+
+    def latest_guidance(self, run_id: str) -> Guidance | None:
+        """The run's latest refinement guidance (its ``windows`` attached), or None before the first."""
+        return self._latest_guidance_reply(run_id)[0]
+
+    def latest_windows(self, run_id: str) -> DataWindows | None:
+        """The data windows the server wants in the run's next slice, or None before the first."""
+        return self._latest_guidance_reply(run_id)[1]
 
     def watch(self, run_id: str, *, from_seq: int = 1, timeout_s: float | None = None) -> "EventStream":
         """Events of a run from ``from_seq`` on, resumed across reconnects without gaps or repeats.
@@ -305,19 +323,26 @@ class SenderStats:
     retries: int = 0
     bytes_sent: int = 0
     send_seconds: float = 0.0
+    #: Slices sent cropped to the server's data windows, and what they would have cost whole.
+    cropped: int = 0
+    bytes_uncropped: int = 0
+    #: Slices that asked for cropping but went whole (no windows yet, windows not valid at the
+    #: slice's time, or windows that miss every patch).
+    sent_whole: int = 0
 
 
 @dataclass(eq=False)
 class _Pending:
     slice_: OutgoingSlice
     ticket: SubmitTicket
+    crop: bool = False
 
 
 class RunHandle:
     """Sends slices to one run and keeps its latest results. Made by :meth:`Client.open_run`."""
 
     def __init__(self, client: Client, info: RunInfo, *, queue_depth: int, chunk_bytes: int, cache_results: bool,
-                 max_retry_s: float) -> None:
+                 max_retry_s: float, crop_to_windows: bool = False) -> None:
         if queue_depth < 1:
             raise ValueError(f"queue_depth: expected at least 1, got {queue_depth}")
         self._client = client
@@ -327,6 +352,7 @@ class RunHandle:
         self.queue_depth = int(queue_depth)
         self.chunk_bytes = int(chunk_bytes)
         self.max_retry_s = float(max_retry_s)
+        self.crop_to_windows = bool(crop_to_windows)
         self.stats = SenderStats()
         self.errors: list[PenumbraError] = []
         self._queue: deque[_Pending] = deque()
@@ -335,6 +361,8 @@ class RunHandle:
         self._stopping = threading.Event()
         self._closed = False
         self._latest: dict[str, SurfaceState] = {}
+        self._latest_guidance: Guidance | None = None
+        self._latest_windows: DataWindows | None = None
         self._latest_lock = threading.Lock()
         self.last_seq = 0
         self._sender = threading.Thread(target=self._send_loop, name=f"penumbra-sender-{self.run_id}", daemon=True)
@@ -349,11 +377,15 @@ class RunHandle:
 
     # -- sending -------------------------------------------------------------------------------
 
-    def submit(self, slice_: OutgoingSlice) -> SubmitTicket:
+    def submit(self, slice_: OutgoingSlice, *, crop_to_windows: bool | None = None) -> SubmitTicket:
         """Queue a built slice for the background sender and return at once.
 
         If ``queue_depth`` slices are already waiting, the oldest waiting one is dropped
         (its ticket resolves with ``skipped_locally=True``): the evolution never waits.
+
+        ``crop_to_windows`` (default: the handle's option): the sender cuts every patch to the
+        data windows the server asked for last (plus their stencil nodes) just before sending;
+        a slice outside the windows' validity, or before any windows, goes whole.
         """
         start = time.perf_counter()
         if not isinstance(slice_, OutgoingSlice):
@@ -369,7 +401,8 @@ class RunHandle:
                 raise RuntimeError(f"run handle {self.run_id} is closed")
             while len(self._queue) >= self.queue_depth:
                 dropped.append(self._queue.popleft())
-            self._queue.append(_Pending(slice_, ticket))
+            crop = self.crop_to_windows if crop_to_windows is None else bool(crop_to_windows)
+            self._queue.append(_Pending(slice_, ticket, crop))
             self.stats.submitted += 1
             self.stats.dropped_locally += len(dropped)
             self._cond.notify_all()
@@ -378,10 +411,11 @@ class RunHandle:
         ticket.submit_block_s = time.perf_counter() - start
         return ticket
 
-    def submit_arrays(self, *, time: float, iteration: int, patches, check_finite: bool = True) -> SubmitTicket:
+    def submit_arrays(self, *, time: float, iteration: int, patches, check_finite: bool = True,
+                      crop_to_windows: bool | None = None) -> SubmitTicket:
         """:func:`build_slice` (validation + defensive copy) in the run's variable set, then :meth:`submit`."""
         return self.submit(build_slice(time=time, iteration=iteration, variable_set=self.variable_set,
-                                       patches=patches, check_finite=check_finite))
+                                       patches=patches, check_finite=check_finite), crop_to_windows=crop_to_windows)
 
     def flush(self, timeout_s: float | None = 30.0) -> bool:
         """Wait until every submitted slice is acknowledged, refused or dropped; False on timeout."""
@@ -416,9 +450,36 @@ class RunHandle:
                     self._in_flight = None
                     self._cond.notify_all()
 
+    def _windows_for(self, slice_: OutgoingSlice) -> DataWindows | None:
+        """The windows to crop ``slice_`` to: the cached ones, or (no follower) asked for now."""
+        if self._follower is not None:
+            with self._latest_lock:
+                windows = self._latest_windows
+        else:
+            try:
+                windows = self._client.latest_windows(self.run_id)
+            except PenumbraError:
+                windows = None
+        return windows if windows is not None and windows.covers(slice_.time) else None
+
+    def _cropped(self, pending: _Pending) -> tuple[OutgoingSlice, bool]:
+        slice_ = pending.slice_
+        if not pending.crop:
+            return slice_, False
+        windows = self._windows_for(slice_)
+        try:
+            cut = crop_outgoing_slice(slice_, windows.bounds(), extra_nodes=windows.extra_nodes) if windows else None
+        except ValueError:  # malformed windows must not stop the sender: send the slice whole
+            cut = None
+        if cut is None:
+            self.stats.sent_whole += 1
+            return slice_, False
+        return cut, True
+
     def _send(self, pending: _Pending) -> None:
         stub = self._client._stub
-        slice_ = pending.slice_
+        full_bytes = pending.slice_.nbytes
+        slice_, cropped = self._cropped(pending)
         deadline_s = self._client.deadline_s + slice_.nbytes / _SEND_BYTES_PER_S
         started = time.monotonic()
         backoff = 0.1
@@ -452,10 +513,12 @@ class RunHandle:
                 self._stopping.wait(backoff)
                 backoff = min(2 * backoff, 2.0)
                 continue
-            ack = SliceAck.from_wire(response, attempts=attempts)
+            ack = SliceAck.from_wire(response, attempts=attempts, cropped=cropped, uncropped_bytes=full_bytes)
             self.stats.send_seconds += time.perf_counter() - t0
             self.stats.sent += 1
             self.stats.bytes_sent += slice_.nbytes
+            self.stats.bytes_uncropped += full_bytes
+            self.stats.cropped += int(cropped)
             self.stats.duplicates += int(ack.duplicate)
             pending.ticket._resolve(ack)
             return
@@ -472,6 +535,12 @@ class RunHandle:
                     with self._latest_lock:
                         state = self._latest.get(label) or SurfaceState(label, None, False, -1, "", 0)
                         self._latest[label] = state.updated(event.surface)
+                elif event.guidance is not None:
+                    with self._latest_lock:
+                        self._latest_guidance = event.guidance
+                elif event.windows is not None:
+                    with self._latest_lock:
+                        self._latest_windows = event.windows
         except PenumbraError as exc:
             self.errors.append(exc)
 
@@ -484,6 +553,31 @@ class RunHandle:
             return states
         with self._latest_lock:
             return dict(self._latest)
+
+    def latest_guidance(self, *, refresh: bool = False) -> Guidance | None:
+        """The latest refinement guidance, with the latest data windows attached; from the cache
+        (no waiting: what an evolution reads at its regrid step), or (refresh) from the server.
+        None before the server has issued any."""
+        if refresh or self._follower is None:
+            guidance, windows = self._client._latest_guidance_reply(self.run_id)
+            with self._latest_lock:
+                self._latest_guidance, self._latest_windows = guidance, windows
+            return guidance
+        with self._latest_lock:
+            guidance, windows = self._latest_guidance, self._latest_windows
+        if guidance is None:
+            return None
+        return dataclasses.replace(guidance, windows=windows)
+
+    def latest_windows(self, *, refresh: bool = False) -> DataWindows | None:
+        """The data windows the server wants in the next slice (cache, or refresh from the server)."""
+        if refresh or self._follower is None:
+            guidance, windows = self._client._latest_guidance_reply(self.run_id)
+            with self._latest_lock:
+                self._latest_guidance, self._latest_windows = guidance, windows
+            return windows
+        with self._latest_lock:
+            return self._latest_windows
 
     def events(self, *, from_seq: int = 1, timeout_s: float | None = None) -> EventStream:
         """The run's events from ``from_seq`` (see :meth:`Client.watch`)."""

@@ -23,7 +23,8 @@ from ._errors import SliceValidationError
 from ._fields import optional_fields, required_fields
 from ._wire import horizons_pb2 as pb
 
-__all__ = ["PatchData", "OutgoingPatch", "OutgoingSlice", "build_slice", "DEFAULT_CHUNK_BYTES", "VARIABLE_SET_WIRE"]
+__all__ = ["PatchData", "OutgoingPatch", "OutgoingSlice", "build_slice", "crop_outgoing_slice", "DEFAULT_CHUNK_BYTES",
+           "VARIABLE_SET_WIRE"]
 
 #: Chunk size of the data stream (about 1 MiB was fastest on an aio server; engineering notes).
 DEFAULT_CHUNK_BYTES = 1024 * 1024
@@ -285,3 +286,40 @@ def build_slice(
         raise SliceValidationError("patches: a slice needs at least one patch")
     encoded = tuple(_encode_patch(p, i, variable_set, check_finite=check_finite) for i, p in enumerate(patches))
     return OutgoingSlice(time=time_value, iteration=int(iteration), variable_set=variable_set, patches=encoded)
+
+
+def crop_outgoing_slice(slice_: OutgoingSlice, windows, *, extra_nodes: int = 0) -> OutgoingSlice | None:
+    """``slice_`` with every patch cut to the nodes covering ``windows`` (see
+    :func:`penumbra_shim.cropping.crop_patches`), plus ``extra_nodes`` nodes of the patch's own
+    spacing on every side. Values are copied unchanged; patches the windows miss are dropped.
+
+    Args:
+        windows: (m, 2, 3) (lower, upper) boxes, units of M, or anything crop_patches accepts.
+    Returns:
+        The cropped slice, or None when the windows miss every patch.
+    """
+    from .cropping import crop_patches  # numpy only
+
+    sources = []
+    for patch in slice_.patches:
+        dtype = np.dtype("<f4" if patch.dtype == "float32" else "<f8")
+        fields = {name: np.frombuffer(data, dtype=dtype).reshape(patch.shape, order=patch.memory_order)
+                  for name, data in patch.fields.items()}
+        sources.append({"origin": patch.origin, "spacing": patch.spacing, "shape": patch.shape, "fields": fields,
+                        "level": patch.level, "memory_order": patch.memory_order})
+    cut = crop_patches(sources, windows, extra_nodes=extra_nodes)
+    if not cut:
+        return None
+    patches = []
+    for piece in cut:
+        source = slice_.patches[piece.source_index]
+        if min(piece.shape) < 2:
+            continue  # a patch one node thick along an axis cannot be sent (the server needs two)
+        patches.append(OutgoingPatch(
+            origin=tuple(float(v) for v in piece.origin), spacing=source.spacing, shape=tuple(piece.shape),
+            level=source.level, memory_order=source.memory_order, dtype=source.dtype,
+            fields={name: np.asarray(arr).tobytes(order=source.memory_order) for name, arr in piece.fields.items()}))
+    if not patches:
+        return None
+    return OutgoingSlice(time=slice_.time, iteration=slice_.iteration, variable_set=slice_.variable_set,
+                         patches=tuple(patches))

@@ -24,6 +24,16 @@ __all__ = [
     "SurfaceState",
     "Event",
     "EVENT_KINDS",
+    "RefinementOptions",
+    "TrackPoint",
+    "PositionForecast",
+    "TrackUpdate",
+    "CommonHorizon",
+    "RefinedRegion",
+    "BodyRefinement",
+    "Guidance",
+    "DataWindow",
+    "DataWindows",
 ]
 
 _LABEL = re.compile(r"^[A-Za-z0-9_-]{1,32}$")
@@ -42,10 +52,16 @@ _REASON_NAMES = {
     pb.SurfaceNotFound.REASON_NO_CANDIDATE: "no_candidate",
     pb.SurfaceNotFound.REASON_OUTSIDE_DATA: "outside_data",
     pb.SurfaceNotFound.REASON_WORKER_FAILED: "worker_failed",
+    pb.SurfaceNotFound.REASON_NOT_SEARCHED: "not_searched",
 }
+_SOURCE_NAMES = {pb.TrackPoint.SOURCE_HORIZON: "horizon", pb.TrackPoint.SOURCE_PUNCTURE: "puncture"}
+_MODEL_NAMES = {pb.PositionForecast.MODEL_STATIC: "static", pb.PositionForecast.MODEL_POLYNOMIAL: "polynomial",
+                pb.PositionForecast.MODEL_ORBIT: "orbit"}
+_WARNING_NAMES = {pb.RunWarning.KIND_MISSING_DATA: "missing_data", pb.RunWarning.KIND_TRACKING: "tracking"}
 
 #: Event kinds the shim names (others arrive as kind "other" with the message in ``raw``).
-EVENT_KINDS = ("surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed")
+EVENT_KINDS = ("surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed",
+               "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning")
 
 
 def _triple(v: pb.Vector3) -> np.ndarray:
@@ -74,11 +90,14 @@ class Body:
 
 @dataclass(frozen=True)
 class FinderOptions:
-    """Finder settings: highest harmonic degree, tolerance on max |Theta| (1/M), iteration cap."""
+    """Finder settings: highest harmonic degree, tolerance on max |Theta| (1/M), iteration cap,
+    and the degree of a pair's common surface (0: the server's default max(16, lmax); a freshly
+    formed common horizon needs more than the individual ones)."""
 
     lmax: int = 8
     tolerance: float = 1e-8
     max_iterations: int = 40
+    lmax_common: int = 0
 
 
 @dataclass(frozen=True)
@@ -96,6 +115,55 @@ class BacklogOptions:
 
 
 @dataclass(frozen=True)
+class RefinementOptions:
+    """Policy of the server's refinement guidance (defaults from common practice).
+
+    Attributes:
+        points_across_horizon: grid points across a horizon's smallest coordinate diameter on
+            its finest level (20-40 is usual).
+        levels: nested refinement levels around the bodies.
+        level_ratio: spacing and radius ratio between neighbouring levels.
+        finest_radius_factor: finest radius in horizon radii, before the margins (1.2-2 usual).
+        regrid_interval: coordinate time between the evolution's regrids, M.
+        buffer_points: buffer-zone width in finest grid points.
+    """
+
+    points_across_horizon: float = 30.0
+    levels: int = 6
+    level_ratio: float = 2.0
+    finest_radius_factor: float = 1.5
+    regrid_interval: float = 4.0
+    buffer_points: int = 4
+
+    def __post_init__(self) -> None:
+        checks = (("points_across_horizon", self.points_across_horizon > 0, "> 0"),
+                  ("levels", 1 <= int(self.levels) <= 16, "1..16"),
+                  ("level_ratio", self.level_ratio > 1, "> 1"),
+                  ("finest_radius_factor", self.finest_radius_factor >= 1, ">= 1"),
+                  ("regrid_interval", self.regrid_interval > 0, "> 0 (a time in M)"),
+                  ("buffer_points", int(self.buffer_points) >= 0, ">= 0"))
+        for name, ok, expected in checks:
+            value = getattr(self, name)
+            if not ok or not math.isfinite(float(value)):
+                raise ValueError(f"refinement.{name}: expected {expected}, got {value!r}")
+
+    def to_wire(self) -> pb.RefinementPolicy:
+        return pb.RefinementPolicy(points_across_horizon=float(self.points_across_horizon), levels=int(self.levels),
+                                   level_ratio=float(self.level_ratio),
+                                   finest_radius_factor=float(self.finest_radius_factor),
+                                   regrid_interval_m=float(self.regrid_interval), buffer_points=int(self.buffer_points))
+
+    @classmethod
+    def from_wire(cls, p: pb.RefinementPolicy) -> "RefinementOptions":
+        d = cls()
+        return cls(points_across_horizon=p.points_across_horizon or d.points_across_horizon,
+                   levels=p.levels or d.levels, level_ratio=p.level_ratio or d.level_ratio,
+                   finest_radius_factor=p.finest_radius_factor or d.finest_radius_factor,
+                   regrid_interval=p.regrid_interval_m or d.regrid_interval,
+                   buffer_points=p.buffer_points if p.HasField("buffer_points") else d.buffer_points)
+
+
+@dataclass(frozen=True)
 class RunSpec:
     """What the server needs to know about a run.
 
@@ -106,6 +174,9 @@ class RunSpec:
         mass_scale_solar_masses: what M is physically (0: not stated).
         finder: :class:`FinderOptions`.
         backlog: :class:`BacklogOptions`.
+        refinement: :class:`RefinementOptions` of the guidance.
+        reflection_z: the run has reflection symmetry through z = 0 and sends z >= 0 only (a
+            node layer on z = 0); the server fills z < 0 with the right parity per component.
     """
 
     variable_set: str
@@ -114,6 +185,8 @@ class RunSpec:
     mass_scale_solar_masses: float = 0.0
     finder: FinderOptions = field(default_factory=FinderOptions)
     backlog: BacklogOptions = field(default_factory=BacklogOptions)
+    refinement: RefinementOptions = field(default_factory=RefinementOptions)
+    reflection_z: bool = False
 
     def __post_init__(self) -> None:
         check_variable_set(self.variable_set)
@@ -136,8 +209,10 @@ class RunSpec:
                 for b in self.bodies
             ],
             finder=pb.FinderSettings(lmax=self.finder.lmax, tolerance_per_m=self.finder.tolerance,
-                                     max_iterations=self.finder.max_iterations),
+                                     max_iterations=self.finder.max_iterations, lmax_common=self.finder.lmax_common),
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.backlog.queue_depth),
+            refinement=self.refinement.to_wire(),
+            reflection_z=bool(self.reflection_z),
         )
 
     @classmethod
@@ -148,8 +223,10 @@ class RunSpec:
             name=spec.display_name,
             mass_scale_solar_masses=spec.mass_scale_solar_masses,
             finder=FinderOptions(lmax=spec.finder.lmax, tolerance=spec.finder.tolerance_per_m,
-                                 max_iterations=spec.finder.max_iterations),
+                                 max_iterations=spec.finder.max_iterations, lmax_common=spec.finder.lmax_common),
             backlog=BacklogOptions(queue_depth=spec.backlog.queue_depth or 4),
+            refinement=RefinementOptions.from_wire(spec.refinement),
+            reflection_z=spec.reflection_z,
         )
 
 
@@ -195,6 +272,7 @@ class SliceAck:
     ``accepted``: new on the server and queued. ``duplicate``: the server had it already.
     ``skipped_locally``: dropped from the shim's own queue (keep-newest) before sending.
     ``skipped_iterations``: older slices the server skipped to make room for this one.
+    ``cropped``: sent cut to the server's data windows (``bytes_sent`` of ``uncropped_bytes``).
     """
 
     iteration: int
@@ -205,10 +283,15 @@ class SliceAck:
     queue_position: int = -1
     skipped_iterations: tuple[int, ...] = ()
     attempts: int = 0
+    cropped: bool = False
+    uncropped_bytes: int = 0
 
     @classmethod
-    def from_wire(cls, response: pb.SendSliceResponse, *, attempts: int) -> "SliceAck":
+    def from_wire(cls, response: pb.SendSliceResponse, *, attempts: int, cropped: bool = False,
+                  uncropped_bytes: int = 0) -> "SliceAck":
         return cls(
+            cropped=cropped,
+            uncropped_bytes=uncropped_bytes,
             iteration=response.iteration,
             accepted=response.outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED,
             duplicate=response.outcome == pb.SendSliceResponse.OUTCOME_DUPLICATE,
@@ -248,6 +331,9 @@ class SurfaceReport:
     circumference_yz: float = _NAN
     resolution_indicator: float = _NAN
     residual_max: float = _NAN
+    residual_max_between_nodes: float = _NAN
+    angular_momentum: np.ndarray = field(default_factory=lambda: np.full(3, _NAN))
+    christodoulou_mass: float = _NAN
     iterations: int = 0
     wall_time_s: float = _NAN
     latency_s: float = _NAN
@@ -264,6 +350,8 @@ class SurfaceReport:
             radius_mean=q.radius_mean_m, radius_max=q.radius_max_m, circumference_xy=q.circumference_xy_m,
             circumference_xz=q.circumference_xz_m, circumference_yz=q.circumference_yz_m,
             resolution_indicator=q.resolution_indicator, residual_max=s.residual_max_per_m,
+            residual_max_between_nodes=s.residual_max_between_nodes_per_m,
+            angular_momentum=_triple(q.angular_momentum_m2), christodoulou_mass=q.christodoulou_mass_m,
             iterations=s.iterations, wall_time_s=s.wall_time_s, latency_s=s.latency_s, method=s.method,
         )
 
@@ -320,6 +408,13 @@ class Event:
             surface_not_found the reason name; for slice_processed the error ("" if none).
         skipped_iteration, superseded_by_iteration: for slice_skipped.
         latency_s, surfaces_found, surfaces_attempted: for slice_processed.
+        label: the surface concerned (track_updated, common_horizon_formed, warning).
+        track: for track_updated.
+        common: for common_horizon_formed.
+        guidance: for refinement_guidance.
+        windows: for data_windows_wanted.
+        For warning: ``state`` is the warning kind ("missing_data", "tracking") and ``reason``
+        its text.
         raw: the wire message (penumbra.v1.RunEvent).
     """
 
@@ -337,6 +432,11 @@ class Event:
     latency_s: float = _NAN
     surfaces_found: int = 0
     surfaces_attempted: int = 0
+    label: str = ""
+    track: "TrackUpdate | None" = None
+    common: "CommonHorizon | None" = None
+    guidance: "Guidance | None" = None
+    windows: "DataWindows | None" = None
     raw: pb.RunEvent | None = None
 
     @classmethod
@@ -360,4 +460,269 @@ class Event:
             p = e.slice_processed
             return cls(kind=kind, latency_s=p.latency_s, surfaces_found=p.surfaces_found,
                        surfaces_attempted=p.surfaces_attempted, reason=p.error, **base)
+        if kind == "track_updated":
+            track = TrackUpdate.from_wire(e.track_updated)
+            return cls(kind=kind, label=track.label, track=track, **base)
+        if kind == "common_horizon_formed":
+            common = CommonHorizon.from_wire(e.common_horizon_formed, time=e.time_m, iteration=e.iteration)
+            return cls(kind=kind, label=common.label, common=common, **base)
+        if kind == "refinement_guidance":
+            return cls(kind=kind, guidance=Guidance.from_wire(e.refinement_guidance), **base)
+        if kind == "data_windows_wanted":
+            return cls(kind=kind, windows=DataWindows.from_wire(e.data_windows_wanted), **base)
+        if kind == "warning":
+            w = e.warning
+            return cls(kind=kind, label=w.label, state=_WARNING_NAMES.get(w.kind, str(w.kind)), reason=w.message,
+                       **base)
         return cls(kind="other", **base)
+
+
+# -- tracking and guidance --------------------------------------------------------------------------
+
+
+def _vectors(values) -> np.ndarray:
+    return np.array([[v.x, v.y, v.z] for v in values], dtype=float).reshape(-1, 3)
+
+
+@dataclass(frozen=True, eq=False)
+class TrackPoint:
+    """One point of a body's track: time (M), iteration, position (3,) M, source ("horizon": the
+    horizon's centroid; "puncture": integrated from the shift), uncertainty (M)."""
+
+    time: float
+    iteration: int
+    position: np.ndarray
+    source: str
+    uncertainty: float
+
+    @classmethod
+    def from_wire(cls, p: pb.TrackPoint) -> "TrackPoint":
+        return cls(time=p.time_m, iteration=p.iteration, position=_triple(p.position_m),
+                   source=_SOURCE_NAMES.get(p.source, "unspecified"), uncertainty=p.uncertainty_m)
+
+
+@dataclass(frozen=True, eq=False)
+class PositionForecast:
+    """Forecast positions of a body: model ("static", "polynomial", "orbit"), why, times (k,),
+    positions (k, 3), expected error (k,) (inf: unknown), all in M; fit_window the samples used."""
+
+    model: str
+    reason: str
+    times: np.ndarray
+    positions: np.ndarray
+    uncertainty: np.ndarray
+    fit_window: tuple[float, float]
+
+    @classmethod
+    def from_wire(cls, f: pb.PositionForecast) -> "PositionForecast":
+        return cls(model=_MODEL_NAMES.get(f.model, "unspecified"), reason=f.reason,
+                   times=np.asarray(f.times_m, float), positions=_vectors(f.positions_m),
+                   uncertainty=np.asarray(f.uncertainty_m, float), fit_window=(f.fit_from_m, f.fit_until_m))
+
+    def at(self, time: float) -> tuple[np.ndarray, float]:
+        """(position (3,), uncertainty) at ``time``, linear between the forecast times."""
+        t = float(time)
+        pos = np.array([np.interp(t, self.times, self.positions[:, a]) for a in range(3)])
+        return pos, float(np.interp(t, self.times, self.uncertainty))
+
+
+@dataclass(frozen=True, eq=False)
+class TrackUpdate:
+    """A body's track gained a point: the horizon centroid and/or the puncture position of the
+    slice, the puncture scheme and its error order, and the forecast until the next regrid."""
+
+    label: str
+    horizon: TrackPoint | None
+    puncture: TrackPoint | None
+    puncture_method: str
+    puncture_order: int
+    horizon_points: int
+    forecast: PositionForecast | None
+
+    @classmethod
+    def from_wire(cls, t: pb.TrackUpdated) -> "TrackUpdate":
+        return cls(label=t.label,
+                   horizon=TrackPoint.from_wire(t.horizon) if t.HasField("horizon") else None,
+                   puncture=TrackPoint.from_wire(t.puncture) if t.HasField("puncture") else None,
+                   puncture_method=t.puncture_method, puncture_order=t.puncture_order,
+                   horizon_points=t.horizon_points,
+                   forecast=PositionForecast.from_wire(t.forecast) if t.HasField("forecast") else None)
+
+
+@dataclass(frozen=True, eq=False)
+class CommonHorizon:
+    """The common horizon's first appearance: label, time (M), iteration, the bodies it encloses,
+    their coordinate separation then (M), its irreducible mass (M) and area (M^2)."""
+
+    label: str
+    time: float
+    iteration: int
+    body_labels: tuple[str, ...]
+    separation: float
+    irreducible_mass: float
+    area: float
+
+    @classmethod
+    def from_wire(cls, c: pb.CommonHorizonFormed, *, time: float, iteration: int) -> "CommonHorizon":
+        return cls(label=c.label, time=time, iteration=iteration, body_labels=tuple(c.body_labels),
+                   separation=c.separation_m, irreducible_mass=c.irreducible_mass_m, area=c.area_m2)
+
+
+@dataclass(frozen=True, eq=False)
+class RefinedRegion:
+    """One refined region on one level: sphere (centre, radius) and box (lower, upper) forms, M."""
+
+    level: int
+    spacing: float
+    bodies: tuple[str, ...]
+    centre: np.ndarray
+    radius: float
+    lower: np.ndarray
+    upper: np.ndarray
+    reason: str
+
+    @classmethod
+    def from_wire(cls, r: pb.RefinedRegion) -> "RefinedRegion":
+        return cls(level=r.level, spacing=r.spacing_m, bodies=tuple(r.bodies), centre=_triple(r.centre_m),
+                   radius=r.radius_m, lower=_triple(r.lower_m), upper=_triple(r.upper_m), reason=r.reason)
+
+    @property
+    def merged(self) -> bool:
+        return len(self.bodies) > 1
+
+    def sphere_contains(self, points, radius: float = 0.0) -> np.ndarray:
+        """Whether balls of ``radius`` about (n, 3) points lie inside the sphere form."""
+        p = np.atleast_2d(np.asarray(points, float))
+        return np.linalg.norm(p - self.centre, axis=1) + radius <= self.radius * (1 + 1e-12)
+
+    def box_contains(self, points, radius: float = 0.0) -> np.ndarray:
+        """Whether balls of ``radius`` about (n, 3) points lie inside the box form."""
+        p = np.atleast_2d(np.asarray(points, float))
+        return np.all((p - radius >= self.lower) & (p + radius <= self.upper), axis=1)
+
+
+@dataclass(frozen=True, eq=False)
+class BodyRefinement:
+    """The nested regions recommended for one body (before merging): per level 1 .. finest_level
+    a sphere radius, spacing and box; the spacing the points across its horizon require, the
+    margins of the finest radius and the reason for each number (M throughout)."""
+
+    label: str
+    centre: np.ndarray
+    finest_level: int
+    radii: np.ndarray
+    spacings: np.ndarray
+    lower: np.ndarray
+    upper: np.ndarray
+    required_spacing: float
+    finest_spacing: float
+    margins: dict
+    reasons: dict
+    horizon_max_radius: float
+    horizon_min_diameter: float
+
+    @property
+    def finest_radius(self) -> float:
+        return float(self.radii[-1])
+
+    @classmethod
+    def from_wire(cls, b: pb.BodyRefinement) -> "BodyRefinement":
+        return cls(label=b.label, centre=_triple(b.centre_m), finest_level=b.finest_level,
+                   radii=np.asarray(b.radii_m, float), spacings=np.asarray(b.spacings_m, float),
+                   lower=_vectors(b.lower_m), upper=_vectors(b.upper_m), required_spacing=b.required_spacing_m,
+                   finest_spacing=b.finest_spacing_m, margins=dict(b.margins_m), reasons=dict(b.reasons),
+                   horizon_max_radius=b.horizon_max_radius_m, horizon_min_diameter=b.horizon_min_diameter_m)
+
+
+@dataclass(frozen=True, eq=False)
+class DataWindow:
+    """A box of data the server wants in the next slice (M); ``name``: the surface(s) served."""
+
+    name: str
+    lower: np.ndarray
+    upper: np.ndarray
+    reason: str
+    growth: int
+
+
+@dataclass(frozen=True, eq=False)
+class DataWindows:
+    """The windows wanted for the next slice, valid for slices with times in
+    [valid_from, valid_until] (M); crops keep ``extra_nodes`` nodes of each patch around a cut."""
+
+    time: float
+    iteration: int
+    valid_from: float
+    valid_until: float
+    extra_nodes: int
+    windows: tuple[DataWindow, ...]
+
+    @classmethod
+    def from_wire(cls, w: pb.DataWindowsWanted) -> "DataWindows":
+        return cls(time=w.time_m, iteration=w.iteration, valid_from=w.valid_from_m, valid_until=w.valid_until_m,
+                   extra_nodes=w.extra_nodes,
+                   windows=tuple(DataWindow(x.name, _triple(x.lower_m), _triple(x.upper_m), x.reason, x.growth)
+                                 for x in w.windows))
+
+    def covers(self, time: float) -> bool:
+        """Whether a slice at ``time`` may be cropped to these windows."""
+        slack = 1e-9 * max(1.0, abs(self.valid_until))
+        return bool(self.windows) and self.valid_from - slack <= float(time) <= self.valid_until + slack
+
+    def bounds(self) -> np.ndarray:
+        """(m, 2, 3) (lower, upper) per window, the form :func:`penumbra_shim.cropping.crop_patches` takes."""
+        return np.array([[w.lower, w.upper] for w in self.windows], dtype=float).reshape(-1, 2, 3)
+
+
+@dataclass(frozen=True, eq=False)
+class Guidance:
+    """Refinement guidance (advisory: the evolution decides): valid over [valid_from, valid_until]
+    (M), per-body nested regions, per level (coarsest first) the regions after merging, and after
+    merger a single region around the remnant. ``windows`` are the data windows of the same
+    reply or slice, when known."""
+
+    time: float
+    iteration: int
+    valid_from: float
+    valid_until: float
+    post_merger: bool
+    policy: RefinementOptions
+    bodies: tuple[BodyRefinement, ...]
+    levels: tuple[tuple[RefinedRegion, ...], ...]
+    reasons: dict
+    windows: DataWindows | None = None
+
+    @classmethod
+    def from_wire(cls, g: pb.RefinementGuidance, windows: DataWindows | None = None) -> "Guidance":
+        return cls(time=g.time_m, iteration=g.iteration, valid_from=g.valid_from_m, valid_until=g.valid_until_m,
+                   post_merger=g.post_merger, policy=RefinementOptions.from_wire(g.policy),
+                   bodies=tuple(BodyRefinement.from_wire(b) for b in g.bodies),
+                   levels=tuple(tuple(RefinedRegion.from_wire(r) for r in level.regions) for level in g.levels),
+                   reasons=dict(g.reasons), windows=windows)
+
+    @property
+    def finest_regions(self) -> tuple[RefinedRegion, ...]:
+        """Regions on the finest level any body uses."""
+        return self.levels[-1] if self.levels else ()
+
+    def regions_at(self, level: int) -> tuple[RefinedRegion, ...]:
+        if not 1 <= level <= len(self.levels):
+            raise ValueError(f"level: expected 1..{len(self.levels)}, got {level!r}")
+        return self.levels[level - 1]
+
+    def body(self, label: str) -> BodyRefinement:
+        for b in self.bodies:
+            if b.label == label:
+                return b
+        raise KeyError(f"label: no body {label!r} in this guidance (bodies {[b.label for b in self.bodies]})")
+
+    def region_of(self, label: str, level: int | None = None) -> RefinedRegion:
+        """The region covering ``label`` on ``level`` (default: the body's finest level)."""
+        level = self.body(label).finest_level if level is None else level
+        for region in self.regions_at(level):
+            if label in region.bodies:
+                return region
+        raise KeyError(f"label: {label!r} has no region on level {level}")
+
+    def valid_at(self, time: float) -> bool:
+        return self.valid_from <= float(time) <= self.valid_until

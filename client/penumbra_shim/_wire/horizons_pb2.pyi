@@ -42,14 +42,16 @@ class ExpectedBody(_message.Message):
     def __init__(self, label: _Optional[str] = ..., approximate_position_m: _Optional[_Union[Vector3, _Mapping]] = ..., approximate_mass_m: _Optional[float] = ...) -> None: ...
 
 class FinderSettings(_message.Message):
-    __slots__ = ("lmax", "tolerance_per_m", "max_iterations")
+    __slots__ = ("lmax", "tolerance_per_m", "max_iterations", "lmax_common")
     LMAX_FIELD_NUMBER: _ClassVar[int]
     TOLERANCE_PER_M_FIELD_NUMBER: _ClassVar[int]
     MAX_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
+    LMAX_COMMON_FIELD_NUMBER: _ClassVar[int]
     lmax: int
     tolerance_per_m: float
     max_iterations: int
-    def __init__(self, lmax: _Optional[int] = ..., tolerance_per_m: _Optional[float] = ..., max_iterations: _Optional[int] = ...) -> None: ...
+    lmax_common: int
+    def __init__(self, lmax: _Optional[int] = ..., tolerance_per_m: _Optional[float] = ..., max_iterations: _Optional[int] = ..., lmax_common: _Optional[int] = ...) -> None: ...
 
 class BacklogPolicy(_message.Message):
     __slots__ = ("policy", "queue_depth")
@@ -66,20 +68,40 @@ class BacklogPolicy(_message.Message):
     def __init__(self, policy: _Optional[_Union[BacklogPolicy.Policy, str]] = ..., queue_depth: _Optional[int] = ...) -> None: ...
 
 class RunSpec(_message.Message):
-    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog")
+    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "reflection_z")
     DISPLAY_NAME_FIELD_NUMBER: _ClassVar[int]
     VARIABLE_SET_FIELD_NUMBER: _ClassVar[int]
     MASS_SCALE_SOLAR_MASSES_FIELD_NUMBER: _ClassVar[int]
     BODIES_FIELD_NUMBER: _ClassVar[int]
     FINDER_FIELD_NUMBER: _ClassVar[int]
     BACKLOG_FIELD_NUMBER: _ClassVar[int]
+    REFINEMENT_FIELD_NUMBER: _ClassVar[int]
+    REFLECTION_Z_FIELD_NUMBER: _ClassVar[int]
     display_name: str
     variable_set: VariableSet
     mass_scale_solar_masses: float
     bodies: _containers.RepeatedCompositeFieldContainer[ExpectedBody]
     finder: FinderSettings
     backlog: BacklogPolicy
-    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ...) -> None: ...
+    refinement: RefinementPolicy
+    reflection_z: bool
+    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., reflection_z: _Optional[bool] = ...) -> None: ...
+
+class RefinementPolicy(_message.Message):
+    __slots__ = ("points_across_horizon", "levels", "level_ratio", "finest_radius_factor", "regrid_interval_m", "buffer_points")
+    POINTS_ACROSS_HORIZON_FIELD_NUMBER: _ClassVar[int]
+    LEVELS_FIELD_NUMBER: _ClassVar[int]
+    LEVEL_RATIO_FIELD_NUMBER: _ClassVar[int]
+    FINEST_RADIUS_FACTOR_FIELD_NUMBER: _ClassVar[int]
+    REGRID_INTERVAL_M_FIELD_NUMBER: _ClassVar[int]
+    BUFFER_POINTS_FIELD_NUMBER: _ClassVar[int]
+    points_across_horizon: float
+    levels: int
+    level_ratio: float
+    finest_radius_factor: float
+    regrid_interval_m: float
+    buffer_points: int
+    def __init__(self, points_across_horizon: _Optional[float] = ..., levels: _Optional[int] = ..., level_ratio: _Optional[float] = ..., finest_radius_factor: _Optional[float] = ..., regrid_interval_m: _Optional[float] = ..., buffer_points: _Optional[int] = ...) -> None: ...
 
 class Run(_message.Message):
     __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m")
@@ -282,7 +304,7 @@ class WatchRunResponse(_message.Message):
     def __init__(self, event: _Optional[_Union[RunEvent, _Mapping]] = ...) -> None: ...
 
 class SurfaceQuantities(_message.Message):
-    __slots__ = ("area_m2", "irreducible_mass_m", "centroid_m", "radius_min_m", "radius_mean_m", "radius_max_m", "circumference_xy_m", "circumference_xz_m", "circumference_yz_m", "resolution_indicator")
+    __slots__ = ("area_m2", "irreducible_mass_m", "centroid_m", "radius_min_m", "radius_mean_m", "radius_max_m", "circumference_xy_m", "circumference_xz_m", "circumference_yz_m", "resolution_indicator", "angular_momentum_m2", "christodoulou_mass_m")
     AREA_M2_FIELD_NUMBER: _ClassVar[int]
     IRREDUCIBLE_MASS_M_FIELD_NUMBER: _ClassVar[int]
     CENTROID_M_FIELD_NUMBER: _ClassVar[int]
@@ -293,6 +315,8 @@ class SurfaceQuantities(_message.Message):
     CIRCUMFERENCE_XZ_M_FIELD_NUMBER: _ClassVar[int]
     CIRCUMFERENCE_YZ_M_FIELD_NUMBER: _ClassVar[int]
     RESOLUTION_INDICATOR_FIELD_NUMBER: _ClassVar[int]
+    ANGULAR_MOMENTUM_M2_FIELD_NUMBER: _ClassVar[int]
+    CHRISTODOULOU_MASS_M_FIELD_NUMBER: _ClassVar[int]
     area_m2: float
     irreducible_mass_m: float
     centroid_m: Vector3
@@ -303,10 +327,12 @@ class SurfaceQuantities(_message.Message):
     circumference_xz_m: float
     circumference_yz_m: float
     resolution_indicator: float
-    def __init__(self, area_m2: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., centroid_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_min_m: _Optional[float] = ..., radius_mean_m: _Optional[float] = ..., radius_max_m: _Optional[float] = ..., circumference_xy_m: _Optional[float] = ..., circumference_xz_m: _Optional[float] = ..., circumference_yz_m: _Optional[float] = ..., resolution_indicator: _Optional[float] = ...) -> None: ...
+    angular_momentum_m2: Vector3
+    christodoulou_mass_m: float
+    def __init__(self, area_m2: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., centroid_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_min_m: _Optional[float] = ..., radius_mean_m: _Optional[float] = ..., radius_max_m: _Optional[float] = ..., circumference_xy_m: _Optional[float] = ..., circumference_xz_m: _Optional[float] = ..., circumference_yz_m: _Optional[float] = ..., resolution_indicator: _Optional[float] = ..., angular_momentum_m2: _Optional[_Union[Vector3, _Mapping]] = ..., christodoulou_mass_m: _Optional[float] = ...) -> None: ...
 
 class SurfaceResult(_message.Message):
-    __slots__ = ("label", "time_m", "iteration", "centre_m", "lmax", "coefficients_m", "quantities", "residual_max_per_m", "iterations", "wall_time_s", "latency_s", "method", "finder_status")
+    __slots__ = ("label", "time_m", "iteration", "centre_m", "lmax", "coefficients_m", "quantities", "residual_max_per_m", "iterations", "wall_time_s", "latency_s", "method", "finder_status", "residual_max_between_nodes_per_m")
     LABEL_FIELD_NUMBER: _ClassVar[int]
     TIME_M_FIELD_NUMBER: _ClassVar[int]
     ITERATION_FIELD_NUMBER: _ClassVar[int]
@@ -320,6 +346,7 @@ class SurfaceResult(_message.Message):
     LATENCY_S_FIELD_NUMBER: _ClassVar[int]
     METHOD_FIELD_NUMBER: _ClassVar[int]
     FINDER_STATUS_FIELD_NUMBER: _ClassVar[int]
+    RESIDUAL_MAX_BETWEEN_NODES_PER_M_FIELD_NUMBER: _ClassVar[int]
     label: str
     time_m: float
     iteration: int
@@ -333,7 +360,8 @@ class SurfaceResult(_message.Message):
     latency_s: float
     method: str
     finder_status: int
-    def __init__(self, label: _Optional[str] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., lmax: _Optional[int] = ..., coefficients_m: _Optional[_Iterable[float]] = ..., quantities: _Optional[_Union[SurfaceQuantities, _Mapping]] = ..., residual_max_per_m: _Optional[float] = ..., iterations: _Optional[int] = ..., wall_time_s: _Optional[float] = ..., latency_s: _Optional[float] = ..., method: _Optional[str] = ..., finder_status: _Optional[int] = ...) -> None: ...
+    residual_max_between_nodes_per_m: float
+    def __init__(self, label: _Optional[str] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., lmax: _Optional[int] = ..., coefficients_m: _Optional[_Iterable[float]] = ..., quantities: _Optional[_Union[SurfaceQuantities, _Mapping]] = ..., residual_max_per_m: _Optional[float] = ..., iterations: _Optional[int] = ..., wall_time_s: _Optional[float] = ..., latency_s: _Optional[float] = ..., method: _Optional[str] = ..., finder_status: _Optional[int] = ..., residual_max_between_nodes_per_m: _Optional[float] = ...) -> None: ...
 
 class SurfaceFound(_message.Message):
     __slots__ = ("surface",)
@@ -350,11 +378,13 @@ class SurfaceNotFound(_message.Message):
         REASON_NO_CANDIDATE: _ClassVar[SurfaceNotFound.Reason]
         REASON_OUTSIDE_DATA: _ClassVar[SurfaceNotFound.Reason]
         REASON_WORKER_FAILED: _ClassVar[SurfaceNotFound.Reason]
+        REASON_NOT_SEARCHED: _ClassVar[SurfaceNotFound.Reason]
     REASON_UNSPECIFIED: SurfaceNotFound.Reason
     REASON_NOT_CONVERGED: SurfaceNotFound.Reason
     REASON_NO_CANDIDATE: SurfaceNotFound.Reason
     REASON_OUTSIDE_DATA: SurfaceNotFound.Reason
     REASON_WORKER_FAILED: SurfaceNotFound.Reason
+    REASON_NOT_SEARCHED: SurfaceNotFound.Reason
     LABEL_FIELD_NUMBER: _ClassVar[int]
     REASON_FIELD_NUMBER: _ClassVar[int]
     MESSAGE_FIELD_NUMBER: _ClassVar[int]
@@ -406,7 +436,7 @@ class RunStateChanged(_message.Message):
     def __init__(self, state: _Optional[_Union[Run.State, str]] = ..., reason: _Optional[str] = ...) -> None: ...
 
 class RunEvent(_message.Message):
-    __slots__ = ("seq", "run_id", "emit_time_unix_s", "time_m", "iteration", "surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed")
+    __slots__ = ("seq", "run_id", "emit_time_unix_s", "time_m", "iteration", "surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed", "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning")
     SEQ_FIELD_NUMBER: _ClassVar[int]
     RUN_ID_FIELD_NUMBER: _ClassVar[int]
     EMIT_TIME_UNIX_S_FIELD_NUMBER: _ClassVar[int]
@@ -417,6 +447,11 @@ class RunEvent(_message.Message):
     SLICE_SKIPPED_FIELD_NUMBER: _ClassVar[int]
     RUN_STATE_CHANGED_FIELD_NUMBER: _ClassVar[int]
     SLICE_PROCESSED_FIELD_NUMBER: _ClassVar[int]
+    TRACK_UPDATED_FIELD_NUMBER: _ClassVar[int]
+    COMMON_HORIZON_FORMED_FIELD_NUMBER: _ClassVar[int]
+    REFINEMENT_GUIDANCE_FIELD_NUMBER: _ClassVar[int]
+    DATA_WINDOWS_WANTED_FIELD_NUMBER: _ClassVar[int]
+    WARNING_FIELD_NUMBER: _ClassVar[int]
     seq: int
     run_id: str
     emit_time_unix_s: float
@@ -427,7 +462,245 @@ class RunEvent(_message.Message):
     slice_skipped: SliceSkipped
     run_state_changed: RunStateChanged
     slice_processed: SliceProcessed
-    def __init__(self, seq: _Optional[int] = ..., run_id: _Optional[str] = ..., emit_time_unix_s: _Optional[float] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., surface_found: _Optional[_Union[SurfaceFound, _Mapping]] = ..., surface_not_found: _Optional[_Union[SurfaceNotFound, _Mapping]] = ..., slice_skipped: _Optional[_Union[SliceSkipped, _Mapping]] = ..., run_state_changed: _Optional[_Union[RunStateChanged, _Mapping]] = ..., slice_processed: _Optional[_Union[SliceProcessed, _Mapping]] = ...) -> None: ...
+    track_updated: TrackUpdated
+    common_horizon_formed: CommonHorizonFormed
+    refinement_guidance: RefinementGuidance
+    data_windows_wanted: DataWindowsWanted
+    warning: RunWarning
+    def __init__(self, seq: _Optional[int] = ..., run_id: _Optional[str] = ..., emit_time_unix_s: _Optional[float] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., surface_found: _Optional[_Union[SurfaceFound, _Mapping]] = ..., surface_not_found: _Optional[_Union[SurfaceNotFound, _Mapping]] = ..., slice_skipped: _Optional[_Union[SliceSkipped, _Mapping]] = ..., run_state_changed: _Optional[_Union[RunStateChanged, _Mapping]] = ..., slice_processed: _Optional[_Union[SliceProcessed, _Mapping]] = ..., track_updated: _Optional[_Union[TrackUpdated, _Mapping]] = ..., common_horizon_formed: _Optional[_Union[CommonHorizonFormed, _Mapping]] = ..., refinement_guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., data_windows_wanted: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., warning: _Optional[_Union[RunWarning, _Mapping]] = ...) -> None: ...
+
+class TrackPoint(_message.Message):
+    __slots__ = ("time_m", "iteration", "position_m", "source", "uncertainty_m")
+    class Source(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+        __slots__ = ()
+        SOURCE_UNSPECIFIED: _ClassVar[TrackPoint.Source]
+        SOURCE_HORIZON: _ClassVar[TrackPoint.Source]
+        SOURCE_PUNCTURE: _ClassVar[TrackPoint.Source]
+    SOURCE_UNSPECIFIED: TrackPoint.Source
+    SOURCE_HORIZON: TrackPoint.Source
+    SOURCE_PUNCTURE: TrackPoint.Source
+    TIME_M_FIELD_NUMBER: _ClassVar[int]
+    ITERATION_FIELD_NUMBER: _ClassVar[int]
+    POSITION_M_FIELD_NUMBER: _ClassVar[int]
+    SOURCE_FIELD_NUMBER: _ClassVar[int]
+    UNCERTAINTY_M_FIELD_NUMBER: _ClassVar[int]
+    time_m: float
+    iteration: int
+    position_m: Vector3
+    source: TrackPoint.Source
+    uncertainty_m: float
+    def __init__(self, time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., position_m: _Optional[_Union[Vector3, _Mapping]] = ..., source: _Optional[_Union[TrackPoint.Source, str]] = ..., uncertainty_m: _Optional[float] = ...) -> None: ...
+
+class PositionForecast(_message.Message):
+    __slots__ = ("model", "reason", "times_m", "positions_m", "uncertainty_m", "fit_from_m", "fit_until_m")
+    class Model(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+        __slots__ = ()
+        MODEL_UNSPECIFIED: _ClassVar[PositionForecast.Model]
+        MODEL_STATIC: _ClassVar[PositionForecast.Model]
+        MODEL_POLYNOMIAL: _ClassVar[PositionForecast.Model]
+        MODEL_ORBIT: _ClassVar[PositionForecast.Model]
+    MODEL_UNSPECIFIED: PositionForecast.Model
+    MODEL_STATIC: PositionForecast.Model
+    MODEL_POLYNOMIAL: PositionForecast.Model
+    MODEL_ORBIT: PositionForecast.Model
+    MODEL_FIELD_NUMBER: _ClassVar[int]
+    REASON_FIELD_NUMBER: _ClassVar[int]
+    TIMES_M_FIELD_NUMBER: _ClassVar[int]
+    POSITIONS_M_FIELD_NUMBER: _ClassVar[int]
+    UNCERTAINTY_M_FIELD_NUMBER: _ClassVar[int]
+    FIT_FROM_M_FIELD_NUMBER: _ClassVar[int]
+    FIT_UNTIL_M_FIELD_NUMBER: _ClassVar[int]
+    model: PositionForecast.Model
+    reason: str
+    times_m: _containers.RepeatedScalarFieldContainer[float]
+    positions_m: _containers.RepeatedCompositeFieldContainer[Vector3]
+    uncertainty_m: _containers.RepeatedScalarFieldContainer[float]
+    fit_from_m: float
+    fit_until_m: float
+    def __init__(self, model: _Optional[_Union[PositionForecast.Model, str]] = ..., reason: _Optional[str] = ..., times_m: _Optional[_Iterable[float]] = ..., positions_m: _Optional[_Iterable[_Union[Vector3, _Mapping]]] = ..., uncertainty_m: _Optional[_Iterable[float]] = ..., fit_from_m: _Optional[float] = ..., fit_until_m: _Optional[float] = ...) -> None: ...
+
+class TrackUpdated(_message.Message):
+    __slots__ = ("label", "horizon", "puncture", "puncture_method", "puncture_order", "horizon_points", "forecast")
+    LABEL_FIELD_NUMBER: _ClassVar[int]
+    HORIZON_FIELD_NUMBER: _ClassVar[int]
+    PUNCTURE_FIELD_NUMBER: _ClassVar[int]
+    PUNCTURE_METHOD_FIELD_NUMBER: _ClassVar[int]
+    PUNCTURE_ORDER_FIELD_NUMBER: _ClassVar[int]
+    HORIZON_POINTS_FIELD_NUMBER: _ClassVar[int]
+    FORECAST_FIELD_NUMBER: _ClassVar[int]
+    label: str
+    horizon: TrackPoint
+    puncture: TrackPoint
+    puncture_method: str
+    puncture_order: int
+    horizon_points: int
+    forecast: PositionForecast
+    def __init__(self, label: _Optional[str] = ..., horizon: _Optional[_Union[TrackPoint, _Mapping]] = ..., puncture: _Optional[_Union[TrackPoint, _Mapping]] = ..., puncture_method: _Optional[str] = ..., puncture_order: _Optional[int] = ..., horizon_points: _Optional[int] = ..., forecast: _Optional[_Union[PositionForecast, _Mapping]] = ...) -> None: ...
+
+class CommonHorizonFormed(_message.Message):
+    __slots__ = ("label", "body_labels", "separation_m", "irreducible_mass_m", "area_m2")
+    LABEL_FIELD_NUMBER: _ClassVar[int]
+    BODY_LABELS_FIELD_NUMBER: _ClassVar[int]
+    SEPARATION_M_FIELD_NUMBER: _ClassVar[int]
+    IRREDUCIBLE_MASS_M_FIELD_NUMBER: _ClassVar[int]
+    AREA_M2_FIELD_NUMBER: _ClassVar[int]
+    label: str
+    body_labels: _containers.RepeatedScalarFieldContainer[str]
+    separation_m: float
+    irreducible_mass_m: float
+    area_m2: float
+    def __init__(self, label: _Optional[str] = ..., body_labels: _Optional[_Iterable[str]] = ..., separation_m: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., area_m2: _Optional[float] = ...) -> None: ...
+
+class RefinedRegion(_message.Message):
+    __slots__ = ("level", "spacing_m", "bodies", "centre_m", "radius_m", "lower_m", "upper_m", "reason")
+    LEVEL_FIELD_NUMBER: _ClassVar[int]
+    SPACING_M_FIELD_NUMBER: _ClassVar[int]
+    BODIES_FIELD_NUMBER: _ClassVar[int]
+    CENTRE_M_FIELD_NUMBER: _ClassVar[int]
+    RADIUS_M_FIELD_NUMBER: _ClassVar[int]
+    LOWER_M_FIELD_NUMBER: _ClassVar[int]
+    UPPER_M_FIELD_NUMBER: _ClassVar[int]
+    REASON_FIELD_NUMBER: _ClassVar[int]
+    level: int
+    spacing_m: float
+    bodies: _containers.RepeatedScalarFieldContainer[str]
+    centre_m: Vector3
+    radius_m: float
+    lower_m: Vector3
+    upper_m: Vector3
+    reason: str
+    def __init__(self, level: _Optional[int] = ..., spacing_m: _Optional[float] = ..., bodies: _Optional[_Iterable[str]] = ..., centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_m: _Optional[float] = ..., lower_m: _Optional[_Union[Vector3, _Mapping]] = ..., upper_m: _Optional[_Union[Vector3, _Mapping]] = ..., reason: _Optional[str] = ...) -> None: ...
+
+class RefinementLevel(_message.Message):
+    __slots__ = ("level", "spacing_m", "regions")
+    LEVEL_FIELD_NUMBER: _ClassVar[int]
+    SPACING_M_FIELD_NUMBER: _ClassVar[int]
+    REGIONS_FIELD_NUMBER: _ClassVar[int]
+    level: int
+    spacing_m: float
+    regions: _containers.RepeatedCompositeFieldContainer[RefinedRegion]
+    def __init__(self, level: _Optional[int] = ..., spacing_m: _Optional[float] = ..., regions: _Optional[_Iterable[_Union[RefinedRegion, _Mapping]]] = ...) -> None: ...
+
+class BodyRefinement(_message.Message):
+    __slots__ = ("label", "centre_m", "finest_level", "radii_m", "spacings_m", "lower_m", "upper_m", "required_spacing_m", "finest_spacing_m", "margins_m", "reasons", "horizon_max_radius_m", "horizon_min_diameter_m")
+    class MarginsMEntry(_message.Message):
+        __slots__ = ("key", "value")
+        KEY_FIELD_NUMBER: _ClassVar[int]
+        VALUE_FIELD_NUMBER: _ClassVar[int]
+        key: str
+        value: float
+        def __init__(self, key: _Optional[str] = ..., value: _Optional[float] = ...) -> None: ...
+    class ReasonsEntry(_message.Message):
+        __slots__ = ("key", "value")
+        KEY_FIELD_NUMBER: _ClassVar[int]
+        VALUE_FIELD_NUMBER: _ClassVar[int]
+        key: str
+        value: str
+        def __init__(self, key: _Optional[str] = ..., value: _Optional[str] = ...) -> None: ...
+    LABEL_FIELD_NUMBER: _ClassVar[int]
+    CENTRE_M_FIELD_NUMBER: _ClassVar[int]
+    FINEST_LEVEL_FIELD_NUMBER: _ClassVar[int]
+    RADII_M_FIELD_NUMBER: _ClassVar[int]
+    SPACINGS_M_FIELD_NUMBER: _ClassVar[int]
+    LOWER_M_FIELD_NUMBER: _ClassVar[int]
+    UPPER_M_FIELD_NUMBER: _ClassVar[int]
+    REQUIRED_SPACING_M_FIELD_NUMBER: _ClassVar[int]
+    FINEST_SPACING_M_FIELD_NUMBER: _ClassVar[int]
+    MARGINS_M_FIELD_NUMBER: _ClassVar[int]
+    REASONS_FIELD_NUMBER: _ClassVar[int]
+    HORIZON_MAX_RADIUS_M_FIELD_NUMBER: _ClassVar[int]
+    HORIZON_MIN_DIAMETER_M_FIELD_NUMBER: _ClassVar[int]
+    label: str
+    centre_m: Vector3
+    finest_level: int
+    radii_m: _containers.RepeatedScalarFieldContainer[float]
+    spacings_m: _containers.RepeatedScalarFieldContainer[float]
+    lower_m: _containers.RepeatedCompositeFieldContainer[Vector3]
+    upper_m: _containers.RepeatedCompositeFieldContainer[Vector3]
+    required_spacing_m: float
+    finest_spacing_m: float
+    margins_m: _containers.ScalarMap[str, float]
+    reasons: _containers.ScalarMap[str, str]
+    horizon_max_radius_m: float
+    horizon_min_diameter_m: float
+    def __init__(self, label: _Optional[str] = ..., centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., finest_level: _Optional[int] = ..., radii_m: _Optional[_Iterable[float]] = ..., spacings_m: _Optional[_Iterable[float]] = ..., lower_m: _Optional[_Iterable[_Union[Vector3, _Mapping]]] = ..., upper_m: _Optional[_Iterable[_Union[Vector3, _Mapping]]] = ..., required_spacing_m: _Optional[float] = ..., finest_spacing_m: _Optional[float] = ..., margins_m: _Optional[_Mapping[str, float]] = ..., reasons: _Optional[_Mapping[str, str]] = ..., horizon_max_radius_m: _Optional[float] = ..., horizon_min_diameter_m: _Optional[float] = ...) -> None: ...
+
+class RefinementGuidance(_message.Message):
+    __slots__ = ("time_m", "iteration", "valid_from_m", "valid_until_m", "post_merger", "policy", "bodies", "levels", "reasons")
+    class ReasonsEntry(_message.Message):
+        __slots__ = ("key", "value")
+        KEY_FIELD_NUMBER: _ClassVar[int]
+        VALUE_FIELD_NUMBER: _ClassVar[int]
+        key: str
+        value: str
+        def __init__(self, key: _Optional[str] = ..., value: _Optional[str] = ...) -> None: ...
+    TIME_M_FIELD_NUMBER: _ClassVar[int]
+    ITERATION_FIELD_NUMBER: _ClassVar[int]
+    VALID_FROM_M_FIELD_NUMBER: _ClassVar[int]
+    VALID_UNTIL_M_FIELD_NUMBER: _ClassVar[int]
+    POST_MERGER_FIELD_NUMBER: _ClassVar[int]
+    POLICY_FIELD_NUMBER: _ClassVar[int]
+    BODIES_FIELD_NUMBER: _ClassVar[int]
+    LEVELS_FIELD_NUMBER: _ClassVar[int]
+    REASONS_FIELD_NUMBER: _ClassVar[int]
+    time_m: float
+    iteration: int
+    valid_from_m: float
+    valid_until_m: float
+    post_merger: bool
+    policy: RefinementPolicy
+    bodies: _containers.RepeatedCompositeFieldContainer[BodyRefinement]
+    levels: _containers.RepeatedCompositeFieldContainer[RefinementLevel]
+    reasons: _containers.ScalarMap[str, str]
+    def __init__(self, time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., valid_from_m: _Optional[float] = ..., valid_until_m: _Optional[float] = ..., post_merger: _Optional[bool] = ..., policy: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., bodies: _Optional[_Iterable[_Union[BodyRefinement, _Mapping]]] = ..., levels: _Optional[_Iterable[_Union[RefinementLevel, _Mapping]]] = ..., reasons: _Optional[_Mapping[str, str]] = ...) -> None: ...
+
+class DataWindow(_message.Message):
+    __slots__ = ("name", "lower_m", "upper_m", "reason", "growth")
+    NAME_FIELD_NUMBER: _ClassVar[int]
+    LOWER_M_FIELD_NUMBER: _ClassVar[int]
+    UPPER_M_FIELD_NUMBER: _ClassVar[int]
+    REASON_FIELD_NUMBER: _ClassVar[int]
+    GROWTH_FIELD_NUMBER: _ClassVar[int]
+    name: str
+    lower_m: Vector3
+    upper_m: Vector3
+    reason: str
+    growth: int
+    def __init__(self, name: _Optional[str] = ..., lower_m: _Optional[_Union[Vector3, _Mapping]] = ..., upper_m: _Optional[_Union[Vector3, _Mapping]] = ..., reason: _Optional[str] = ..., growth: _Optional[int] = ...) -> None: ...
+
+class DataWindowsWanted(_message.Message):
+    __slots__ = ("time_m", "iteration", "valid_from_m", "valid_until_m", "extra_nodes", "windows")
+    TIME_M_FIELD_NUMBER: _ClassVar[int]
+    ITERATION_FIELD_NUMBER: _ClassVar[int]
+    VALID_FROM_M_FIELD_NUMBER: _ClassVar[int]
+    VALID_UNTIL_M_FIELD_NUMBER: _ClassVar[int]
+    EXTRA_NODES_FIELD_NUMBER: _ClassVar[int]
+    WINDOWS_FIELD_NUMBER: _ClassVar[int]
+    time_m: float
+    iteration: int
+    valid_from_m: float
+    valid_until_m: float
+    extra_nodes: int
+    windows: _containers.RepeatedCompositeFieldContainer[DataWindow]
+    def __init__(self, time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., valid_from_m: _Optional[float] = ..., valid_until_m: _Optional[float] = ..., extra_nodes: _Optional[int] = ..., windows: _Optional[_Iterable[_Union[DataWindow, _Mapping]]] = ...) -> None: ...
+
+class RunWarning(_message.Message):
+    __slots__ = ("kind", "label", "message")
+    class Kind(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+        __slots__ = ()
+        KIND_UNSPECIFIED: _ClassVar[RunWarning.Kind]
+        KIND_MISSING_DATA: _ClassVar[RunWarning.Kind]
+        KIND_TRACKING: _ClassVar[RunWarning.Kind]
+    KIND_UNSPECIFIED: RunWarning.Kind
+    KIND_MISSING_DATA: RunWarning.Kind
+    KIND_TRACKING: RunWarning.Kind
+    KIND_FIELD_NUMBER: _ClassVar[int]
+    LABEL_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    kind: RunWarning.Kind
+    label: str
+    message: str
+    def __init__(self, kind: _Optional[_Union[RunWarning.Kind, str]] = ..., label: _Optional[str] = ..., message: _Optional[str] = ...) -> None: ...
 
 class GetLatestSurfacesRequest(_message.Message):
     __slots__ = ("run_id",)
@@ -458,3 +731,19 @@ class GetLatestSurfacesResponse(_message.Message):
     surfaces: _containers.RepeatedCompositeFieldContainer[TrackedSurface]
     last_event_seq: int
     def __init__(self, surfaces: _Optional[_Iterable[_Union[TrackedSurface, _Mapping]]] = ..., last_event_seq: _Optional[int] = ...) -> None: ...
+
+class GetLatestGuidanceRequest(_message.Message):
+    __slots__ = ("run_id",)
+    RUN_ID_FIELD_NUMBER: _ClassVar[int]
+    run_id: str
+    def __init__(self, run_id: _Optional[str] = ...) -> None: ...
+
+class GetLatestGuidanceResponse(_message.Message):
+    __slots__ = ("guidance", "windows", "last_event_seq")
+    GUIDANCE_FIELD_NUMBER: _ClassVar[int]
+    WINDOWS_FIELD_NUMBER: _ClassVar[int]
+    LAST_EVENT_SEQ_FIELD_NUMBER: _ClassVar[int]
+    guidance: RefinementGuidance
+    windows: DataWindowsWanted
+    last_event_seq: int
+    def __init__(self, guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., windows: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., last_event_seq: _Optional[int] = ...) -> None: ...

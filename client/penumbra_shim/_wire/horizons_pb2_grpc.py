@@ -71,6 +71,11 @@ class HorizonServiceStub:
                 request_serializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestSurfacesRequest.SerializeToString,
                 response_deserializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestSurfacesResponse.FromString,
                 _registered_method=True)
+        self.GetLatestGuidance = channel.unary_unary(
+                '/penumbra.v1.HorizonService/GetLatestGuidance',
+                request_serializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceRequest.SerializeToString,
+                response_deserializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceResponse.FromString,
+                _registered_method=True)
 
 
 class HorizonServiceServicer:
@@ -152,6 +157,15 @@ class HorizonServiceServicer:
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
+    def GetLatestGuidance(self, request, context):
+        """Returns the latest refinement guidance of a run and the data windows the server wants in
+        the next slice (both unset before the first guidance). Answers at once from memory, so an
+        evolution can call it at its regrid step. NOT_FOUND: unknown run.
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
 
 def add_HorizonServiceServicer_to_server(servicer, server):
     rpc_method_handlers = {
@@ -189,6 +203,11 @@ def add_HorizonServiceServicer_to_server(servicer, server):
                     servicer.GetLatestSurfaces,
                     request_deserializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestSurfacesRequest.FromString,
                     response_serializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestSurfacesResponse.SerializeToString,
+            ),
+            'GetLatestGuidance': grpc.unary_unary_rpc_method_handler(
+                    servicer.GetLatestGuidance,
+                    request_deserializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceRequest.FromString,
+                    response_serializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceResponse.SerializeToString,
             ),
     }
     generic_handler = grpc.method_handlers_generic_handler(
@@ -381,6 +400,33 @@ class HorizonService:
             '/penumbra.v1.HorizonService/GetLatestSurfaces',
             penumbra_dot_v1_dot_horizons__pb2.GetLatestSurfacesRequest.SerializeToString,
             penumbra_dot_v1_dot_horizons__pb2.GetLatestSurfacesResponse.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def GetLatestGuidance(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/penumbra.v1.HorizonService/GetLatestGuidance',
+            penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceRequest.SerializeToString,
+            penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceResponse.FromString,
             options,
             channel_credentials,
             insecure,

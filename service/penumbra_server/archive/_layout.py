@@ -6,6 +6,15 @@ One zarr v3 group per run at ``<archive_root>/<run_id>.zarr``::
                                software_version, committed_rows, surface_labels, ...
         slices/                one row per slice whose fate is final; dimension "slice"
         surfaces/<label>/      one row per attempt on a surface; dimension "sample"
+        tracks/<label>/        one row per track point (horizon centroid or puncture); "point"
+        forecasts/<label>/     one row per forecast issued; dimensions "forecast", "lead"
+        guidance/updates/      one row per refinement guidance; "update"
+        guidance/bodies/       one row per body of a guidance; "entry"
+        guidance/regions/      one row per merged region per level of a guidance; "region"
+        windows/               one row per data window wanted; "window"
+        events/                one row per tracking/guidance event, with its wire form; "event"
+
+The tracking groups are created by the first commit that writes to them.
 
 Every array grows along axis 0 and sets ``dimension_names`` so that ``xarray.open_zarr``
 opens each group. Rows become visible to readers only when the root attribute
@@ -33,6 +42,17 @@ __all__ = [
     "surface_columns",
     "surface_group",
     "archive_path",
+    "FORECAST_LEADS",
+    "TRACK_SOURCES",
+    "FORECAST_MODELS",
+    "TRACKS_GROUP",
+    "FORECASTS_GROUP",
+    "GUIDANCE_UPDATES_GROUP",
+    "GUIDANCE_BODIES_GROUP",
+    "GUIDANCE_REGIONS_GROUP",
+    "WINDOWS_GROUP",
+    "EVENTS_GROUP",
+    "group_columns",
 ]
 
 #: Written to the root attribute ``penumbra_archive_version``; bumped on incompatible changes.
@@ -78,6 +98,8 @@ class Column:
 
     @property
     def fill_value(self):
+        if self.dtype == "str":
+            return ""
         kind = np.dtype(self.dtype).kind
         if kind == "f":
             return float("nan")
@@ -138,6 +160,16 @@ def surface_columns(lmax: int) -> tuple[Column, ...]:
         Column("circumference_yz", "float64", unit="M", description="proper, plane x = centroid x"),
         Column("resolution_indicator", "float64", description="top-degree coefficient fraction"),
         Column("residual_max", "float64", unit="1/M", description="max |Theta| at the nodes"),
+        Column("residual_max_between_nodes", "float64", unit="1/M",
+               description="max |Theta| on a finer point set between the nodes (the honest residual)"),
+        Column("angular_momentum", "float64", xyz, unit="M^2",
+               description="J_i from the coordinate rotations about the centroid (spin estimate)"),
+        Column("christodoulou_mass", "float64", unit="M", description="sqrt(M_irr^2 + J^2 / (4 M_irr^2))"),
+        Column("seed_centre", "float64", xyz, unit="M",
+               description="forecast position the planner seeded the search at (NaN: no forecast seed)"),
+        Column("seed_uncertainty", "float64", unit="M",
+               description="the forecast's expected error at that position (inf: unknown)"),
+        Column("seed_model", "int8", description="0 none, 1 static, 2 polynomial, 3 orbit (FORECAST_MODELS)"),
         Column("iterations", "int32"),
         Column("method", "int8", description="solver: 0 none, 1 newton, 2 flow, 3 newton then flow (METHOD_CODES)"),
         Column("wall_time_s", "float64", unit="s", description="finder wall time in the worker"),
@@ -157,3 +189,146 @@ def archive_path(archive_root, run_id: str):
     from pathlib import Path
 
     return Path(archive_root) / f"{run_id}{ARCHIVE_SUFFIX}"
+
+
+# -- tracking, guidance and windows (issue 4) ------------------------------------------------------
+
+TRACKS_GROUP = "tracks"
+FORECASTS_GROUP = "forecasts"
+GUIDANCE_UPDATES_GROUP = "guidance/updates"
+GUIDANCE_BODIES_GROUP = "guidance/bodies"
+GUIDANCE_REGIONS_GROUP = "guidance/regions"
+WINDOWS_GROUP = "windows"
+EVENTS_GROUP = "events"
+
+#: Forecast times per forecast row: the slice's time to one regrid interval later.
+FORECAST_LEADS = 9
+#: ``tracks/<label>/source`` values.
+TRACK_SOURCES: dict[str, int] = {"horizon": 1, "puncture": 2}
+#: ``forecasts/<label>/model`` and ``surfaces/<label>/seed_model`` values.
+FORECAST_MODELS: dict[str, int] = {"": 0, "static": 1, "polynomial": 2, "orbit": 3}
+
+_XYZ = (("xyz", 3),)
+
+TRACK_COLUMNS: tuple[Column, ...] = (
+    Column("iteration", "int64", description="the evolution's iteration number"),
+    Column("time", "float64", unit="M", description="coordinate time of the slice"),
+    Column("position", "float64", _XYZ, unit="M", description="horizon centroid or puncture position"),
+    Column("source", "int8", description="1 horizon centroid, 2 puncture integrated from the shift (TRACK_SOURCES)"),
+    Column("uncertainty", "float64", unit="M",
+           description="0 for centroids; punctures: summed step error estimates since the track began"),
+    Column("order", "int8", description="punctures: global error order of the step (2 or 3); 0 else"),
+    Column("event_seq", "int64", description="seq of the track_updated event"),
+)
+
+FORECAST_COLUMNS: tuple[Column, ...] = (
+    Column("iteration", "int64", description="iteration of the slice after which the forecast was made"),
+    Column("time", "float64", unit="M", description="coordinate time of that slice"),
+    Column("model", "int8", description="1 static, 2 polynomial, 3 orbit (FORECAST_MODELS)"),
+    Column("fit_from", "float64", unit="M", description="first sample time the fit used"),
+    Column("fit_until", "float64", unit="M", description="last sample time the fit used"),
+    Column("lead_time", "float64", (("lead", FORECAST_LEADS),), unit="M", description="forecast times"),
+    Column("position", "float64", (("lead", FORECAST_LEADS), ("xyz", 3)), unit="M",
+           description="forecast positions"),
+    Column("uncertainty", "float64", (("lead", FORECAST_LEADS),), unit="M",
+           description="expected position error (inf: unknown)"),
+    Column("reason", "str", description="why this model"),
+    Column("event_seq", "int64", description="seq of the track_updated event carrying the forecast"),
+)
+
+GUIDANCE_UPDATE_COLUMNS: tuple[Column, ...] = (
+    Column("iteration", "int64", description="iteration of the slice the guidance was made from"),
+    Column("time", "float64", unit="M"),
+    Column("valid_from", "float64", unit="M"),
+    Column("valid_until", "float64", unit="M"),
+    Column("post_merger", "bool", description="a single region around the remnant"),
+    Column("levels", "int32", description="refinement levels of the policy"),
+    Column("finest_spacing", "float64", unit="M", description="spacing of the finest level"),
+    Column("reasons", "str", description="JSON object: notes on the whole guidance"),
+    Column("event_seq", "int64", description="seq of the refinement_guidance event"),
+)
+
+GUIDANCE_BODY_COLUMNS: tuple[Column, ...] = (
+    Column("iteration", "int64"),
+    Column("time", "float64", unit="M"),
+    Column("label", "str", description="body label ('common' for the remnant)"),
+    Column("centre", "float64", _XYZ, unit="M"),
+    Column("finest_level", "int32"),
+    Column("finest_radius", "float64", unit="M"),
+    Column("finest_spacing", "float64", unit="M"),
+    Column("required_spacing", "float64", unit="M", description="smallest diameter / points across"),
+    Column("finest_lower", "float64", _XYZ, unit="M", description="box form of the finest level"),
+    Column("finest_upper", "float64", _XYZ, unit="M"),
+    Column("horizon_max_radius", "float64", unit="M"),
+    Column("horizon_min_diameter", "float64", unit="M"),
+    Column("margin_horizon", "float64", unit="M"),
+    Column("margin_motion", "float64", unit="M"),
+    Column("margin_uncertainty", "float64", unit="M"),
+    Column("margin_buffer", "float64", unit="M"),
+    Column("reasons", "str", description="JSON object: why each number has its value"),
+    Column("event_seq", "int64", description="seq of the refinement_guidance event"),
+)
+
+GUIDANCE_REGION_COLUMNS: tuple[Column, ...] = (
+    Column("iteration", "int64"),
+    Column("time", "float64", unit="M"),
+    Column("level", "int32", description="1 coarsest .. levels finest"),
+    Column("spacing", "float64", unit="M"),
+    Column("bodies", "str", description="labels covered, joined by '+'"),
+    Column("centre", "float64", _XYZ, unit="M", description="sphere form"),
+    Column("radius", "float64", unit="M", description="sphere form"),
+    Column("lower", "float64", _XYZ, unit="M", description="box form"),
+    Column("upper", "float64", _XYZ, unit="M", description="box form"),
+    Column("reason", "str"),
+    Column("event_seq", "int64", description="seq of the refinement_guidance event"),
+)
+
+WINDOW_COLUMNS: tuple[Column, ...] = (
+    Column("iteration", "int64", description="iteration of the slice the windows were made from"),
+    Column("time", "float64", unit="M"),
+    Column("valid_from", "float64", unit="M"),
+    Column("valid_until", "float64", unit="M"),
+    Column("name", "str", description="surface label(s) served, joined by '+'"),
+    Column("lower", "float64", _XYZ, unit="M"),
+    Column("upper", "float64", _XYZ, unit="M"),
+    Column("growth", "int32", description="times grown after a slice lacked data"),
+    Column("extra_nodes", "int32", description="stencil nodes to keep around each cut, per patch"),
+    Column("reason", "str"),
+    Column("event_seq", "int64", description="seq of the data_windows_wanted event"),
+)
+
+EVENT_COLUMNS: tuple[Column, ...] = (
+    Column("seq", "int64", description="sequence number of the event"),
+    Column("kind", "str", description="track_updated, common_horizon_formed, refinement_guidance, "
+                                      "data_windows_wanted or warning"),
+    Column("iteration", "int64"),
+    Column("time", "float64", unit="M"),
+    Column("label", "str", description="surface or body concerned ('' for guidance and windows)"),
+    Column("message", "str", description="warnings: the text; else a one-line summary"),
+    Column("wire", "str", description="base64 of the serialized penumbra.v1.RunEvent (replayed after a restart)"),
+    Column("archived_unix_s", "float64", unit="s"),
+)
+
+_FIXED_GROUPS: dict[str, tuple[tuple[Column, ...], str]] = {
+    GUIDANCE_UPDATES_GROUP: (GUIDANCE_UPDATE_COLUMNS, "update"),
+    GUIDANCE_BODIES_GROUP: (GUIDANCE_BODY_COLUMNS, "entry"),
+    GUIDANCE_REGIONS_GROUP: (GUIDANCE_REGION_COLUMNS, "region"),
+    WINDOWS_GROUP: (WINDOW_COLUMNS, "window"),
+    EVENTS_GROUP: (EVENT_COLUMNS, "event"),
+}
+
+
+def group_columns(group_path: str) -> tuple[tuple[Column, ...], str]:
+    """(columns, row dimension) of a tracking group path, e.g. ``tracks/A`` or ``windows``.
+
+    Raises KeyError for a path that is not a tracking group.
+    """
+    if group_path in _FIXED_GROUPS:
+        return _FIXED_GROUPS[group_path]
+    head, _, label = group_path.partition("/")
+    if label and "/" not in label:
+        if head == TRACKS_GROUP:
+            return TRACK_COLUMNS, "point"
+        if head == FORECASTS_GROUP:
+            return FORECAST_COLUMNS, "forecast"
+    raise KeyError(f"group path: {group_path!r} is not a tracking group of the archive layout")

@@ -77,10 +77,14 @@ class ArchiveView:
     def surface_labels(self) -> tuple[str, ...]:
         return tuple(self.attrs["surface_labels"])
 
+    def surface_lmax(self, label: str) -> int:
+        """Harmonic degree of ``surfaces/<label>`` (a common surface may have its own; else lmax)."""
+        return int(self.attrs.get("surface_lmax", {}).get(label, self.lmax))
+
     def _columns(self, group_path: str) -> dict[str, np.ndarray]:
         rows = self.committed_rows[group_path]
         group = self._group[group_path]
-        return {name: np.asarray(arr[:rows]) for name, arr in sorted(group.arrays())}
+        return {name: _plain(arr[:rows]) for name, arr in sorted(group.arrays())}
 
     def slices(self) -> dict[str, np.ndarray]:
         """Columns of ``slices/`` (see the layout), committed rows only."""
@@ -101,8 +105,94 @@ class ArchiveView:
         variables = {}
         for name, arr in sorted(group.arrays()):
             dims = tuple(arr.metadata.dimension_names or ())
-            variables[name] = xr.Variable(dims, np.asarray(arr[:rows]), attrs=dict(arr.attrs))
+            variables[name] = xr.Variable(dims, _plain(arr[:rows]), attrs=dict(arr.attrs))
         return xr.Dataset(variables, attrs={"run_id": self.run_id, "group": group_path, "row_dimension": row_dimension})
+
+    # -- tracking, guidance and windows ----------------------------------------------------------
+
+    def _labels_under(self, head: str) -> tuple[str, ...]:
+        prefix = head + "/"
+        return tuple(path[len(prefix):] for path in self.committed_rows if path.startswith(prefix))
+
+    @property
+    def track_labels(self) -> tuple[str, ...]:
+        """Labels with a track (bodies, and "common" once found)."""
+        return self._labels_under(layout.TRACKS_GROUP)
+
+    @property
+    def forecast_labels(self) -> tuple[str, ...]:
+        return self._labels_under(layout.FORECASTS_GROUP)
+
+    def group(self, group_path: str) -> dict[str, np.ndarray]:
+        """Committed columns of any group of the run, e.g. ``tracks/A`` or ``windows``.
+
+        A tracking group not written yet reads as empty columns (no error): a run that has not
+        produced guidance yet simply has none.
+        """
+        if group_path in self.committed_rows:
+            return self._columns(group_path)
+        try:
+            columns, _ = layout.group_columns(group_path)
+        except KeyError:
+            raise KeyError(f"group_path: no group {group_path!r} in {self.path}") from None
+        return {c.name: _empty(c) for c in columns}
+
+    def track(self, label: str, *, source: str | None = None) -> dict[str, np.ndarray]:
+        """``tracks/<label>`` in time order: iteration, time, position (n, 3), source (1 horizon,
+        2 puncture), uncertainty, order, event_seq. ``source="horizon"`` or ``"puncture"`` keeps
+        those points only."""
+        cols = self.group(f"{layout.TRACKS_GROUP}/{label}")
+        if source is not None:
+            if source not in layout.TRACK_SOURCES:
+                raise ValueError(f"source: expected one of {sorted(layout.TRACK_SOURCES)} or None, got {source!r}")
+            keep = cols["source"] == layout.TRACK_SOURCES[source]
+            cols = {name: values[keep] for name, values in cols.items()}
+        order = np.argsort(cols["time"], kind="stable")
+        return {name: values[order] for name, values in cols.items()}
+
+    def forecasts(self, label: str) -> dict[str, np.ndarray]:
+        """``forecasts/<label>``: one row per forecast issued (after each slice): iteration, time,
+        model, fit_from, fit_until, lead_time (n, leads), position (n, leads, 3), uncertainty
+        (n, leads), reason, event_seq. A cone for the report: position +- uncertainty."""
+        return self.group(f"{layout.FORECASTS_GROUP}/{label}")
+
+    def guidance(self) -> dict[str, dict[str, np.ndarray]]:
+        """{"updates", "bodies", "regions"} columns; bodies and regions point at their update by
+        ``event_seq``. Use :meth:`guidance_regions_at` for one update's regions."""
+        return {
+            "updates": self.group(layout.GUIDANCE_UPDATES_GROUP),
+            "bodies": self.group(layout.GUIDANCE_BODIES_GROUP),
+            "regions": self.group(layout.GUIDANCE_REGIONS_GROUP),
+        }
+
+    def guidance_regions_at(self, event_seq: int, *, level: int | None = None) -> list[dict]:
+        """The regions of the guidance announced as ``event_seq`` (one level or all), as dicts."""
+        cols = self.group(layout.GUIDANCE_REGIONS_GROUP)
+        keep = cols["event_seq"] == int(event_seq)
+        if level is not None:
+            keep &= cols["level"] == int(level)
+        return [{name: values[i] for name, values in cols.items()} for i in np.nonzero(keep)[0]]
+
+    def windows(self) -> dict[str, np.ndarray]:
+        """``windows``: one row per data window wanted: iteration, time, valid_from, valid_until,
+        name, lower (n, 3), upper (n, 3), growth, extra_nodes, reason, event_seq."""
+        return self.group(layout.WINDOWS_GROUP)
+
+    def tracking_events(self) -> dict[str, np.ndarray]:
+        """``events``: the tracking and guidance events (seq, kind, iteration, time, label,
+        message, wire, archived_unix_s); warnings and "common horizon formed" live only here."""
+        return self.group(layout.EVENTS_GROUP)
+
+    def group_dataset(self, group_path: str, row_dimension: str | None = None):
+        """Any committed group as an :class:`xarray.Dataset` (e.g. ``tracks/A``, ``windows``)."""
+        if group_path not in self.committed_rows:
+            raise KeyError(f"group_path: no committed group {group_path!r} in {self.path}")
+        if row_dimension is None:
+            try:
+                row_dimension = layout.group_columns(group_path)[1]
+            except KeyError:
+                row_dimension = ""
+        return self._dataset(group_path, row_dimension)
 
     def surface_dataset(self, label: str):
         """``surfaces/<label>`` as an :class:`xarray.Dataset` over dimension ``sample``."""
@@ -112,6 +202,19 @@ class ArchiveView:
     def slices_dataset(self):
         """``slices/`` as an :class:`xarray.Dataset` over dimension ``slice``."""
         return self._dataset(layout.SLICES_GROUP, "slice")
+
+
+def _plain(values) -> np.ndarray:
+    """A column as a plain numpy array; variable-length strings as an object array of str."""
+    arr = np.asarray(values)
+    if arr.dtype.kind in ("T", "U", "O"):
+        return arr.astype(object)
+    return arr
+
+
+def _empty(column: layout.Column) -> np.ndarray:
+    shape = (0,) + tuple(size for _, size in column.trailing)
+    return np.zeros(shape, dtype=object if column.dtype == "str" else column.dtype)
 
 
 def open_archive(path_or_root: str | Path, run_id: str | None = None) -> ArchiveView:

@@ -25,6 +25,8 @@ class ArchiveError(RuntimeError):
 
 def _column_block(column: layout.Column, rows: Sequence[Mapping], row_kind: str) -> np.ndarray:
     """Stack one column of ``rows`` into an array of shape (len(rows), *trailing)."""
+    if column.dtype == "str":
+        return np.array(["" if row.get(column.name) is None else str(row[column.name]) for row in rows], dtype=object)
     trailing = tuple(size for _, size in column.trailing)
     block = np.full((len(rows),) + trailing, column.fill_value, dtype=column.dtype)
     for index, row in enumerate(rows):
@@ -53,6 +55,8 @@ class ArchiveWriter:
             )
         self.run_id: str = attrs["run_id"]
         self.lmax: int = int(attrs["lmax"])
+        #: Degree of each surface group (a common surface may have its own); the run's lmax else.
+        self.surface_lmax: dict[str, int] = {label: int(v) for label, v in attrs.get("surface_lmax", {}).items()}
         self._attrs: dict = attrs
         self._committed: dict[str, int] = {k: int(v) for k, v in attrs["committed_rows"].items()}
         self._arrays: dict[str, zarr.Array] = {}
@@ -127,28 +131,44 @@ class ArchiveWriter:
     def committed_rows(self) -> dict[str, int]:
         return dict(self._committed)
 
-    def _array(self, group_path: str, name: str) -> zarr.Array:
-        key = f"{group_path}/{name}"
+    def _array(self, group_path: str, column: layout.Column, row_dimension: str) -> zarr.Array:
+        key = f"{group_path}/{column.name}"
         arr = self._arrays.get(key)
         if arr is None:
-            arr = self._group[key]
+            try:
+                arr = self._group[key]
+            except KeyError:
+                # A column added to the layout after this archive was created: made now, with
+                # fill values for the rows already there.
+                arr = _create_column(self._group[group_path], column, row_dimension)
+                rows = self._committed.get(group_path, 0)
+                if rows:
+                    arr.resize((rows,) + arr.shape[1:])
             self._arrays[key] = arr
         return arr
 
     # -- writing ----------------------------------------------------------------------------
 
-    def add_surface(self, label: str) -> None:
-        """Create ``surfaces/<label>`` for a surface not known when the run opened (no-op if present)."""
+    def add_surface(self, label: str, *, lmax: int | None = None) -> None:
+        """Create ``surfaces/<label>`` for a surface not known when the run opened (no-op if present).
+
+        ``lmax``: the surface's harmonic degree (default: the run's); recorded in the group's
+        attribute ``lmax`` and in the root attribute ``surface_lmax``.
+        """
         group_path = layout.surface_group(label)
         if group_path in self._committed:
             return
+        lmax = int(lmax or self.lmax)
         sub = self._group.require_group(layout.SURFACES_GROUP).create_group(label)
-        _create_columns(sub, layout.surface_columns(self.lmax), "sample")
-        sub.update_attributes({"label": label, "lmax": self.lmax})
+        _create_columns(sub, layout.surface_columns(lmax), "sample")
+        sub.update_attributes({"label": label, "lmax": lmax})
         committed = dict(self._committed)
         committed[group_path] = 0
         new_attrs = dict(self._attrs)
         new_attrs["surface_labels"] = list(self._attrs["surface_labels"]) + [label]
+        if lmax != self.lmax:
+            self.surface_lmax[label] = lmax
+            new_attrs["surface_lmax"] = dict(self.surface_lmax)
         new_attrs["committed_rows"] = committed
         self._group.update_attributes(new_attrs)
         self._attrs = new_attrs
@@ -159,6 +179,7 @@ class ArchiveWriter:
         *,
         slice_rows: Sequence[Mapping] = (),
         surface_rows: Mapping[str, Sequence[Mapping]] | None = None,
+        group_rows: Mapping[str, Sequence[Mapping]] | None = None,
         attrs: Mapping | None = None,
     ) -> dict[str, int]:
         """Append rows and update root attributes as one unit visible to readers.
@@ -170,28 +191,41 @@ class ArchiveWriter:
         Args:
             slice_rows: mappings column name -> value for ``slices/`` (missing: fill value).
             surface_rows: label -> rows for ``surfaces/<label>``.
+            group_rows: tracking group path (``tracks/<label>``, ``forecasts/<label>``,
+                ``guidance/updates``, ``guidance/bodies``, ``guidance/regions``, ``windows``,
+                ``events``) -> rows; a group is created by the first commit that writes to it.
             attrs: root attributes to set in the same final write.
         Returns:
             The new committed row counts.
         """
-        pending: list[tuple[str, Sequence[Mapping], tuple[layout.Column, ...], str]] = []
+        pending: list[tuple[str, Sequence[Mapping], tuple[layout.Column, ...], str, str]] = []
         if slice_rows:
-            pending.append((layout.SLICES_GROUP, slice_rows, layout.SLICE_COLUMNS, "slice"))
-        columns = layout.surface_columns(self.lmax)
+            pending.append((layout.SLICES_GROUP, slice_rows, layout.SLICE_COLUMNS, "slice", "slice"))
         for label, rows in (surface_rows or {}).items():
             group_path = layout.surface_group(label)
             if group_path not in self._committed:
                 raise ArchiveError(f"surface_rows: unknown surface label {label!r}; the archive has "
                                    f"{', '.join(self._attrs['surface_labels'])}")
             if rows:
-                pending.append((group_path, rows, columns, f"surface {label!r}"))
+                columns = layout.surface_columns(self.surface_lmax.get(label, self.lmax))
+                pending.append((group_path, rows, columns, f"surface {label!r}", "sample"))
+        for group_path, rows in (group_rows or {}).items():
+            try:
+                cols, row_dimension = layout.group_columns(group_path)
+            except KeyError as exc:
+                raise ArchiveError(f"group_rows: {exc.args[0]}") from None
+            if rows:
+                pending.append((group_path, rows, cols, f"{group_path!r}", row_dimension))
         committed = dict(self._committed)
-        for group_path, rows, cols, row_kind in pending:
+        for group_path, rows, cols, row_kind, row_dimension in pending:
+            if group_path not in committed:
+                _create_columns(self._group.require_group(group_path), cols, row_dimension)
+                committed[group_path] = 0
             start = committed[group_path]
             stop = start + len(rows)
             for column in cols:
                 block = _column_block(column, rows, row_kind)
-                arr = self._array(group_path, column.name)
+                arr = self._array(group_path, column, row_dimension)
                 if arr.shape[0] != stop:
                     arr.resize((stop,) + arr.shape[1:])
                 arr[start:stop] = block
@@ -205,20 +239,25 @@ class ArchiveWriter:
         return dict(committed)
 
 
+def _create_column(group: zarr.Group, column: layout.Column, row_dimension: str) -> zarr.Array:
+    arr = group.create_array(
+        column.name,
+        shape=(0,) + tuple(size for _, size in column.trailing),
+        chunks=column.chunks(),
+        dtype=str if column.dtype == "str" else column.dtype,
+        fill_value=column.fill_value,
+        dimension_names=column.dimension_names(row_dimension),
+    )
+    attrs = {}
+    if column.unit:
+        attrs["units"] = column.unit
+    if column.description:
+        attrs["description"] = column.description
+    if attrs:
+        arr.update_attributes(attrs)
+    return arr
+
+
 def _create_columns(group: zarr.Group, columns: Sequence[layout.Column], row_dimension: str) -> None:
     for column in columns:
-        arr = group.create_array(
-            column.name,
-            shape=(0,) + tuple(size for _, size in column.trailing),
-            chunks=column.chunks(),
-            dtype=column.dtype,
-            fill_value=column.fill_value,
-            dimension_names=column.dimension_names(row_dimension),
-        )
-        attrs = {}
-        if column.unit:
-            attrs["units"] = column.unit
-        if column.description:
-            attrs["description"] = column.description
-        if attrs:
-            arr.update_attributes(attrs)
+        _create_column(group, column, row_dimension)

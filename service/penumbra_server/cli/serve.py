@@ -24,9 +24,9 @@ async def _serve(*, listen: str, archive_root: Path, workers: int, ready_file: P
                  common_horizon: bool) -> int:
     from penumbra_server.server import ServerOptions, create_server
 
-    from penumbra_server.cli.planning import binary_planner_factory
-
-    options = ServerOptions(planner_factory=binary_planner_factory if common_horizon else None)
+    # The server's default planner (server/planning.py) seeds each body at its forecast and, for a
+    # pair, looks for the common horizon once the bodies are close.
+    options = ServerOptions(common_horizon=common_horizon)
 
     # The worker pool starts inside create_server, before the gRPC server (grpc and fork do not mix).
     try:
@@ -62,7 +62,8 @@ def serve(*, listen: str, archive_root: Path, workers: int, ready_file: Path | N
           common_horizon: bool = True) -> int:
     """Run the server; return the process exit status.
 
-    ``common_horizon``: look for a common surface in two-body runs (:mod:`.planning`).
+    ``common_horizon``: look for a common surface in two-body runs
+    (:class:`penumbra_server.server.SteeringPlanner`, the server's default planner).
     """
     Path(archive_root).mkdir(parents=True, exist_ok=True)
     return asyncio.run(_serve(listen=listen, archive_root=Path(archive_root), workers=workers,

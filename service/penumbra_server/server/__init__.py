@@ -5,9 +5,16 @@ Entry points: :func:`create_server` (asyncio) and :class:`BackgroundServer` (own
 
 from .app import SERVICE_NAME, BackgroundServer, PenumbraServer, ServerOptions, create_server
 from .executors import FinderExecutor, ProcessPoolFinderExecutor
+from .planning import SteeringPlanner, steering_planner_factory
 from .scheduler import ExpectedBodiesPlanner, SurfacePlan, SurfacePlanner, SurfaceTrack
+from .steering import COMMON_LABEL, RunSteering, common_label_for
 
 __all__ = [
+    "COMMON_LABEL",
+    "RunSteering",
+    "SteeringPlanner",
+    "common_label_for",
+    "steering_planner_factory",
     "SERVICE_NAME",
     "BackgroundServer",
     "ExpectedBodiesPlanner",

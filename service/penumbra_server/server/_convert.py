@@ -33,6 +33,7 @@ _REASON_TEXT = {
     pb.SurfaceNotFound.REASON_NO_CANDIDATE: "no sign change of the mean expansion in the searched radii",
     pb.SurfaceNotFound.REASON_OUTSIDE_DATA: "the surface needs data the slice does not provide",
     pb.SurfaceNotFound.REASON_WORKER_FAILED: "the worker failed",
+    pb.SurfaceNotFound.REASON_NOT_SEARCHED: "not searched: lost inside the common horizon after the merger",
 }
 
 
@@ -66,8 +67,11 @@ def surface_result_from_outcome(outcome: SurfaceOutcome, *, time_m: float, itera
             circumference_xz_m=q.get("circumference_xz", _NAN),
             circumference_yz_m=q.get("circumference_yz", _NAN),
             resolution_indicator=q.get("resolution_indicator", _NAN),
+            angular_momentum_m2=vector(q.get("angular_momentum", [_NAN] * 3)),
+            christodoulou_mass_m=q.get("christodoulou_mass", _NAN),
         ),
         residual_max_per_m=outcome.residual_max,
+        residual_max_between_nodes_per_m=outcome.residual_max_between_nodes,
         iterations=outcome.iterations,
         wall_time_s=outcome.wall_time_s,
         latency_s=latency_s,
@@ -103,7 +107,9 @@ def surface_row(event: pb.RunEvent, archived_unix_s: float) -> tuple[str, dict]:
             radius_min=q.radius_min_m, radius_mean=q.radius_mean_m, radius_max=q.radius_max_m,
             circumference_xy=q.circumference_xy_m, circumference_xz=q.circumference_xz_m,
             circumference_yz=q.circumference_yz_m, resolution_indicator=q.resolution_indicator,
-            residual_max=s.residual_max_per_m, iterations=s.iterations, wall_time_s=s.wall_time_s,
+            angular_momentum=_triple(q.angular_momentum_m2), christodoulou_mass=q.christodoulou_mass_m,
+            residual_max=s.residual_max_per_m, residual_max_between_nodes=s.residual_max_between_nodes_per_m,
+            iterations=s.iterations, wall_time_s=s.wall_time_s,
             latency_s=s.latency_s, method=METHOD_CODES.get(s.method, -1),
         )
         return s.label, row
@@ -138,6 +144,12 @@ def slice_row(event: pb.RunEvent, *, arrival_unix_s: float, nbytes: int, archive
     raise ValueError(f"event: expected a slice event, got {kind}")
 
 
+def _row_value(row: dict, name: str, default):
+    """A column of an archived row; ``default`` for archives written before the column existed."""
+    value = row.get(name)
+    return default if value is None else value
+
+
 def _num(value, default: float) -> float:
     value = float(value)
     return default if math.isnan(value) else value
@@ -160,8 +172,12 @@ def surface_event_from_row(run_id: str, label: str, row: dict, lmax: int) -> pb.
                     circumference_xy_m=float(row["circumference_xy"]), circumference_xz_m=float(row["circumference_xz"]),
                     circumference_yz_m=float(row["circumference_yz"]),
                     resolution_indicator=float(row["resolution_indicator"]),
+                    angular_momentum_m2=vector(_row_value(row, "angular_momentum", [_NAN] * 3)),
+                    christodoulou_mass_m=float(_row_value(row, "christodoulou_mass", _NAN)),
                 ),
-                residual_max_per_m=float(row["residual_max"]), iterations=int(row["iterations"]),
+                residual_max_per_m=float(row["residual_max"]),
+                residual_max_between_nodes_per_m=float(_row_value(row, "residual_max_between_nodes", _NAN)),
+                iterations=int(row["iterations"]),
                 wall_time_s=float(row["wall_time_s"]), latency_s=float(row["latency_s"]),
                 finder_status=int(row["status"]), method=_METHOD_NAMES.get(int(row["method"]), ""),
             )

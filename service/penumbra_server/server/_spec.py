@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from penumbra_shim._wire import horizons_pb2 as pb
 
 from ..numerics.slices import VariableSet
+from ..tracking.guidance import RefinementPolicy
 from .errors import ServiceError
 
 __all__ = [
@@ -22,17 +23,26 @@ __all__ = [
     "DEFAULT_TOLERANCE",
     "DEFAULT_MAX_ITERATIONS",
     "DEFAULT_QUEUE_DEPTH",
+    "DEFAULT_REFINEMENT",
+    "refinement_from_wire",
+    "refinement_to_wire",
     "variable_set_from_wire",
     "variable_set_to_wire",
 ]
 
 DEFAULT_LMAX = 8
+#: A freshly formed common horizon needs a higher degree than the individual ones (common
+#: practice; the demo pair's common surface at d = 0.735 M is accepted from l_max 16 on).
+DEFAULT_LMAX_COMMON = 16
 DEFAULT_TOLERANCE = 1e-8  # 1/M; common practice is 1e-8 to 1e-10 (references.md)
 DEFAULT_MAX_ITERATIONS = 40
 DEFAULT_QUEUE_DEPTH = 4
 MAX_LMAX = 32
 MAX_BODIES = 16
 MAX_QUEUE_DEPTH = 1024
+MAX_LEVELS = 16
+#: The refinement policy's defaults (common practice; see tracking.guidance.RefinementPolicy).
+DEFAULT_REFINEMENT = RefinementPolicy()
 
 _LABEL = re.compile(r"^[A-Za-z0-9_-]{1,32}$")
 
@@ -65,6 +75,57 @@ def _finite(value: float, field: str) -> float:
     return float(value)
 
 
+def refinement_from_wire(policy: pb.RefinementPolicy, field: str = "spec.refinement") -> RefinementPolicy:
+    """The guidance policy of a spec, defaults filled in (0 / unset means the default)."""
+    d = DEFAULT_REFINEMENT
+    points = _finite(policy.points_across_horizon, f"{field}.points_across_horizon") or d.points_across_horizon
+    if points <= 0:
+        raise ServiceError.invalid(f"{field}.points_across_horizon: expected > 0 (0 for the default "
+                                   f"{d.points_across_horizon:g}), got {points}")
+    levels = int(policy.levels) or d.levels
+    if not 1 <= levels <= MAX_LEVELS:
+        raise ServiceError.invalid(f"{field}.levels: expected 1..{MAX_LEVELS} (0 for the default {d.levels}), got {levels}")
+    ratio = _finite(policy.level_ratio, f"{field}.level_ratio") or d.level_ratio
+    if ratio <= 1:
+        raise ServiceError.invalid(f"{field}.level_ratio: expected > 1 (0 for the default {d.level_ratio:g}), got {ratio}")
+    factor = _finite(policy.finest_radius_factor, f"{field}.finest_radius_factor") or d.finest_radius_factor
+    if factor < 1:
+        raise ServiceError.invalid(f"{field}.finest_radius_factor: expected >= 1 so the region holds the horizon "
+                                   f"(0 for the default {d.finest_radius_factor:g}), got {factor}")
+    interval = _finite(policy.regrid_interval_m, f"{field}.regrid_interval_m") or d.regrid_interval
+    if interval <= 0:
+        raise ServiceError.invalid(f"{field}.regrid_interval_m: expected a time > 0 in M (0 for the default "
+                                   f"{d.regrid_interval:g}), got {interval}")
+    buffer = int(policy.buffer_points) if policy.HasField("buffer_points") else d.buffer_points
+    if not 0 <= buffer <= 1000:
+        raise ServiceError.invalid(f"{field}.buffer_points: expected 0..1000 (unset for the default "
+                                   f"{d.buffer_points}), got {buffer}")
+    return RefinementPolicy(points_across_horizon=float(points), levels=levels, level_ratio=float(ratio),
+                            finest_radius_factor=float(factor), regrid_interval=float(interval),
+                            buffer_points=buffer)
+
+
+def refinement_to_wire(policy: RefinementPolicy) -> pb.RefinementPolicy:
+    return pb.RefinementPolicy(points_across_horizon=policy.points_across_horizon, levels=policy.levels,
+                               level_ratio=policy.level_ratio, finest_radius_factor=policy.finest_radius_factor,
+                               regrid_interval_m=policy.regrid_interval, buffer_points=policy.buffer_points)
+
+
+def _refinement_to_dict(policy: RefinementPolicy) -> dict:
+    return {"points_across_horizon": policy.points_across_horizon, "levels": policy.levels,
+            "level_ratio": policy.level_ratio, "finest_radius_factor": policy.finest_radius_factor,
+            "regrid_interval": policy.regrid_interval, "buffer_points": policy.buffer_points}
+
+
+def _refinement_from_dict(data: dict | None) -> RefinementPolicy:
+    if not data:  # archives written before the policy existed
+        return DEFAULT_REFINEMENT
+    return RefinementPolicy(points_across_horizon=float(data["points_across_horizon"]), levels=int(data["levels"]),
+                            level_ratio=float(data["level_ratio"]),
+                            finest_radius_factor=float(data["finest_radius_factor"]),
+                            regrid_interval=float(data["regrid_interval"]), buffer_points=int(data["buffer_points"]))
+
+
 @dataclass(frozen=True)
 class BodySpec:
     """An expected body: label, approximate position (units of M) and mass (units of M)."""
@@ -87,10 +148,22 @@ class RunSettings:
     max_iterations: int
     queue_depth: int
     backlog_policy: str = "keep_newest"
+    #: Highest degree of the common surface of a pair (0: the run's lmax; from_wire fills in
+    #: max(DEFAULT_LMAX_COMMON, lmax)).
+    lmax_common: int = 0
+    #: Policy of the refinement guidance (tracking.guidance.RefinementPolicy).
+    refinement: RefinementPolicy = DEFAULT_REFINEMENT
+    #: Slices carry z >= 0 only and are mirrored through z = 0 at ingest.
+    reflection_z: bool = False
 
     @property
     def labels(self) -> tuple[str, ...]:
         return tuple(body.label for body in self.bodies)
+
+    @property
+    def common_lmax(self) -> int:
+        """Degree of the common surface's expansion."""
+        return int(self.lmax_common or self.lmax)
 
     # -- wire ---------------------------------------------------------------------------------
 
@@ -126,6 +199,10 @@ class RunSettings:
         tolerance = _finite(finder.tolerance_per_m, "spec.finder.tolerance_per_m") or DEFAULT_TOLERANCE
         if tolerance <= 0:
             raise ServiceError.invalid(f"spec.finder.tolerance_per_m: expected > 0 (0 for the default), got {tolerance}")
+        lmax_common = finder.lmax_common or max(DEFAULT_LMAX_COMMON, lmax)
+        if not 2 <= lmax_common <= MAX_LMAX:
+            raise ServiceError.invalid(f"spec.finder.lmax_common: expected 2..{MAX_LMAX} (0 for the default "
+                                       f"max({DEFAULT_LMAX_COMMON}, lmax)), got {lmax_common}")
         max_iterations = finder.max_iterations or DEFAULT_MAX_ITERATIONS
         if not 1 <= max_iterations <= 1000:
             raise ServiceError.invalid(
@@ -150,6 +227,9 @@ class RunSettings:
             tolerance=float(tolerance),
             max_iterations=int(max_iterations),
             queue_depth=int(depth),
+            lmax_common=int(lmax_common),
+            refinement=refinement_from_wire(spec.refinement),
+            reflection_z=bool(spec.reflection_z),
         )
 
     def to_wire(self) -> pb.RunSpec:
@@ -165,8 +245,11 @@ class RunSettings:
                 )
                 for b in self.bodies
             ],
-            finder=pb.FinderSettings(lmax=self.lmax, tolerance_per_m=self.tolerance, max_iterations=self.max_iterations),
+            finder=pb.FinderSettings(lmax=self.lmax, tolerance_per_m=self.tolerance, max_iterations=self.max_iterations,
+                                     lmax_common=self.common_lmax),
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.queue_depth),
+            refinement=refinement_to_wire(self.refinement),
+            reflection_z=self.reflection_z,
         )
 
     # -- archive attributes -----------------------------------------------------------------
@@ -178,8 +261,11 @@ class RunSettings:
             "variable_set": self.variable_set.value,
             "mass_scale_solar_masses": self.mass_scale_solar_masses,
             "bodies": [{"label": b.label, "position": list(b.position), "mass": b.mass} for b in self.bodies],
-            "finder": {"lmax": self.lmax, "tolerance": self.tolerance, "max_iterations": self.max_iterations},
+            "finder": {"lmax": self.lmax, "tolerance": self.tolerance, "max_iterations": self.max_iterations,
+                       "lmax_common": self.common_lmax},
             "backlog": {"queue_depth": self.queue_depth, "policy": self.backlog_policy},
+            "refinement": _refinement_to_dict(self.refinement),
+            "reflection_z": self.reflection_z,
         }
 
     @classmethod
@@ -193,5 +279,9 @@ class RunSettings:
             tolerance=float(data["finder"]["tolerance"]),
             max_iterations=int(data["finder"]["max_iterations"]),
             queue_depth=int(data["backlog"]["queue_depth"]),
+            # Archives written before lmax_common existed kept their common surface at lmax.
+            lmax_common=int(data["finder"].get("lmax_common", 0)),
             backlog_policy=data["backlog"].get("policy", "keep_newest"),
+            refinement=_refinement_from_dict(data.get("refinement")),
+            reflection_z=bool(data.get("reflection_z", False)),
         )

@@ -52,6 +52,11 @@ class ServerOptions:
     subscriber_queue_size: int = 1024
     interpolation_order: int = 4
     restore_runs: bool = True
+    #: Look for the common horizon of two-body runs (the default planner; `serve --no-common-horizon`).
+    common_horizon: bool = True
+    #: Per run, the planner of the surfaces to look for; None: the default
+    #: :class:`~penumbra_server.server.planning.SteeringPlanner` (forecast seeds, common horizon).
+    #: A planner with an ``attach(steering)`` method is handed the run's tracking state.
     planner_factory: Callable[[RunSettings], SurfacePlanner] | None = field(default=None, compare=False)
     #: Per run, callbacks ``(run, queued_slice, outcomes)`` after each processed slice (tracking
     #: and guidance hook, issue 4); they may call ``run.publish(...)`` to emit events.
@@ -149,6 +154,7 @@ async def create_server(
                 event_log_limit=options.event_log_limit,
                 subscriber_queue_size=options.subscriber_queue_size,
                 interpolation_order=options.interpolation_order,
+                common_horizon=options.common_horizon,
             ),
             planner_factory=options.planner_factory,
             slice_observer_factory=options.slice_observer_factory,

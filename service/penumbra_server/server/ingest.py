@@ -16,11 +16,12 @@ import numpy as np
 
 from penumbra_shim._wire import horizons_pb2 as pb
 
+from ..numerics.reflection import mirror_slice_through_z0
 from ..numerics.slices import Patch, Slice, SliceError, VariableSet, optional_fields, required_fields
 from ._spec import variable_set_from_wire
 from .errors import ServiceError
 
-__all__ = ["IngestLimits", "SliceAssembler"]
+__all__ = ["IngestLimits", "SliceAssembler", "mirror_through_z0"]
 
 _DTYPES = {pb.PatchHeader.DTYPE_FLOAT64: np.dtype("<f8"), pb.PatchHeader.DTYPE_FLOAT32: np.dtype("<f4")}
 _ORDERS = {pb.PatchHeader.MEMORY_ORDER_C: "C", pb.PatchHeader.MEMORY_ORDER_FORTRAN: "F"}
@@ -231,3 +232,15 @@ class SliceAssembler:
             return Slice(time=self.time, iteration=self.iteration, variable_set=self.variable_set, patches=tuple(patches))
         except SliceError as exc:
             raise ServiceError.invalid(str(exc)) from None
+
+
+def mirror_through_z0(slice_: Slice) -> Slice:
+    """The full slice of a run with reflection symmetry through z = 0 (``reflection_z``).
+
+    INVALID_ARGUMENT when a patch reaches below z = 0 or its lowest node lies strictly between
+    the plane and one spacing above it (see :mod:`penumbra_server.numerics.reflection`).
+    """
+    try:
+        return mirror_slice_through_z0(slice_)
+    except SliceError as exc:
+        raise ServiceError.invalid(f"header.patches: the run has reflection_z set: {exc}") from None

@@ -22,6 +22,7 @@ __all__ = [
     "REASON_NO_CANDIDATE",
     "REASON_OUTSIDE_DATA",
     "REASON_WORKER_FAILED",
+    "REASON_NOT_SEARCHED",
     "SurfaceJob",
     "SurfaceOutcome",
     "crop_slice",
@@ -35,6 +36,7 @@ REASON_NOT_CONVERGED = 1
 REASON_NO_CANDIDATE = 2
 REASON_OUTSIDE_DATA = 3
 REASON_WORKER_FAILED = 4
+REASON_NOT_SEARCHED = 5
 
 
 def crop_slice(slice_: Slice, lower, upper, *, ghost_nodes: int) -> Slice | None:
@@ -83,10 +85,14 @@ class SurfaceJob:
         lmax, tolerance, max_iterations, interpolation_order: finder settings.
         seed: a starting surface (e.g. the previous result, moved to the forecast position);
             None when nothing is known yet.
+        extra_seeds: further starting surfaces tried, in order, when the seed does not
+            converge (before the scan), e.g. a sphere enclosing both bodies for a common
+            horizon.
         scan_centre, scan_radii: where to scan coordinate spheres for a sign change of the mean
             expansion when there is no seed or the seed does not converge: centre (3,) and
             (r_min, r_max), units of M.
         max_candidates: scan candidates tried, outermost first.
+        fallback_to_flow: on a failed Newton solve run the fast flow (finder option).
     """
 
     label: str
@@ -96,9 +102,11 @@ class SurfaceJob:
     max_iterations: int
     interpolation_order: int = 4
     seed: Surface | None = None
+    extra_seeds: tuple[Surface, ...] = ()
     scan_centre: np.ndarray | None = None
     scan_radii: tuple[float, float] | None = None
     max_candidates: int = 3
+    fallback_to_flow: bool = True
 
 
 @dataclass(frozen=True, eq=False)
@@ -123,6 +131,7 @@ class SurfaceOutcome:
     iterations: int = 0
     wall_time_s: float = 0.0
     guess: str = ""
+    residual_max_between_nodes: float = float("nan")
 
     @classmethod
     def failed(cls, label: str, message: str, *, wall_time_s: float = 0.0) -> "SurfaceOutcome":
@@ -142,6 +151,8 @@ def _quantities_dict(q) -> dict:
         "circumference_xz": float(q.circumference_xz),
         "circumference_yz": float(q.circumference_yz),
         "resolution_indicator": float(q.resolution_indicator),
+        "angular_momentum": [float(v) for v in q.angular_momentum],
+        "christodoulou_mass": float(q.christodoulou_mass),
     }
 
 
@@ -170,10 +181,12 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
         tolerance=job.tolerance,
         max_iterations=job.max_iterations,
         interpolation_order=job.interpolation_order,
+        fallback_to_flow=job.fallback_to_flow,
     )
     attempts: list[tuple[str, Surface]] = []
     if job.seed is not None:
         attempts.append(("previous", job.seed))
+    attempts.extend(("alternative", extra) for extra in job.extra_seeds)
     last = None
     total_iterations = 0
     tried_scan = False
@@ -216,6 +229,7 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
                 iterations=total_iterations,
                 wall_time_s=time.perf_counter() - start,
                 guess=kind,
+                residual_max_between_nodes=float(result.residual_max_between_nodes),
             )
     elapsed = time.perf_counter() - start
     if last is None:
@@ -233,7 +247,7 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
         label=job.label, found=False, reason=reason, status=result.status,
         message=f"{len(attempts)} guess(es) tried, last from {kind}: {result.message}",
         method=result.method, residual_max=result.residual_max, iterations=total_iterations,
-        wall_time_s=elapsed, guess=kind,
+        wall_time_s=elapsed, guess=kind, residual_max_between_nodes=float(result.residual_max_between_nodes),
     )
 
 

@@ -32,8 +32,11 @@ from ._spec import RunSettings
 from .errors import ServiceError
 from .events import EventLog
 from .executors import FinderExecutor
-from .jobs import REASON_OUTSIDE_DATA, SurfaceJob, SurfaceOutcome, crop_slice
-from .scheduler import ExpectedBodiesPlanner, SurfacePlan, SurfacePlanner, SurfaceTrack
+from ..archive import _layout as layout
+from .jobs import REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceJob, SurfaceOutcome, crop_slice
+from .planning import steering_planner_factory
+from .scheduler import SurfacePlan, SurfacePlanner, SurfaceTrack
+from .steering import Notice, RunSteering, decode_wire, encode_wire
 
 __all__ = ["RunManager", "RunRecord", "QueuedSlice", "ManagerOptions"]
 
@@ -61,6 +64,7 @@ class ManagerOptions:
     event_log_limit: int = 100_000
     subscriber_queue_size: int = 1024
     interpolation_order: int = 4
+    common_horizon: bool = True
 
 
 @dataclass(frozen=True, eq=False)
@@ -78,9 +82,10 @@ class QueuedSlice:
 
 @dataclass(eq=False)
 class _Emission:
-    """One event to commit: ``build(seq, archived_unix_s)`` makes the event and its rows."""
+    """One event to commit: ``build(seq, archived_unix_s)`` makes the event and its rows:
+    (event, slice rows, label -> surface rows, root attributes[, group path -> tracking rows])."""
 
-    build: Callable[[int, float], tuple[pb.RunEvent, list[dict], dict[str, list[dict]], dict]]
+    build: Callable[[int, float], tuple]
     apply: Callable[[pb.RunEvent], None] | None
     done: asyncio.Future = field(default_factory=lambda: asyncio.get_running_loop().create_future())
 
@@ -108,6 +113,15 @@ class RunRecord:
         self.archive_thread = archive_thread
         self.options = options
         self.planner = planner
+        #: Tracks, forecasts, common-horizon watch, guidance and windows (steering.py).
+        self.steering = RunSteering(settings, interpolation_order=options.interpolation_order,
+                                    common_horizon=options.common_horizon)
+        attach = getattr(planner, "attach", None)
+        if callable(attach):
+            attach(self.steering)
+        #: The latest announced refinement_guidance and data_windows_wanted events.
+        self.latest_guidance_event: pb.RunEvent | None = None
+        self.latest_windows_event: pb.RunEvent | None = None
         self.created_unix_s = created_unix_s
         self.closed_unix_s = 0.0
         self.state = pb.Run.STATE_OPEN
@@ -174,6 +188,14 @@ class RunRecord:
             )
             if track.latest_found is not None:
                 entry.latest_found.CopyFrom(track.latest_found)
+        return response
+
+    def latest_guidance(self) -> pb.GetLatestGuidanceResponse:
+        response = pb.GetLatestGuidanceResponse(last_event_seq=self.log.last_seq)
+        if self.latest_guidance_event is not None:
+            response.guidance.CopyFrom(self.latest_guidance_event.refinement_guidance)
+        if self.latest_windows_event is not None:
+            response.windows.CopyFrom(self.latest_windows_event.data_windows_wanted)
         return response
 
     # -- ingest -------------------------------------------------------------------------------
@@ -245,11 +267,21 @@ class RunRecord:
         plans = list(self.planner.plan(self.settings, self.tracks, item.slice_))
         for plan in plans:
             if plan.label not in self.tracks:  # a surface the planner added (e.g. a common horizon)
-                await self._in_archive_thread(self.writer.add_surface, plan.label)
+                await self._in_archive_thread(self.writer.add_surface, plan.label, lmax=plan.lmax or self.settings.lmax)
                 self.tracks[plan.label] = SurfaceTrack(plan.label)
-        outcomes = await asyncio.gather(*(self._attempt(plan, item) for plan in plans))
-        found = sum(1 for o in outcomes if o.found)
-        await self._emit(self._slice_emission(item, attempted=len(plans), found=found, started=started))
+        outcomes = list(await asyncio.gather(*(self._attempt(plan, item) for plan in plans)))
+        searched = [o for o, plan in zip(outcomes, plans) if plan.search]
+        found = sum(1 for o in searched if o.found)
+        try:
+            # Fits and interpolation of the shift: off the event loop (the state is this run's alone).
+            notices = await asyncio.to_thread(self.steering.observe, item.slice_, plans, outcomes)
+        except Exception as exc:  # tracking must not stop the run; say so instead
+            log.exception("run %s: tracking iteration %d failed", self.run_id, item.iteration)
+            text = f"tracking and guidance not updated for iteration {item.iteration}: {type(exc).__name__}: {exc}"
+            notices = [Notice("warning", pb.RunWarning(kind=pb.RunWarning.KIND_TRACKING, message=text), message=text)]
+        for notice in notices:
+            self._submit(self._notice_emission(item, notice))
+        await self._emit(self._slice_emission(item, attempted=len(searched), found=found, started=started))
         for observer in self.slice_observers:
             try:
                 observer(self, item, list(outcomes))
@@ -257,11 +289,15 @@ class RunRecord:
                 log.exception("run %s: slice observer failed", self.run_id)
 
     async def _attempt(self, plan: SurfacePlan, item: QueuedSlice) -> SurfaceOutcome:
-        outcome = await self._find(plan, item.slice_)
-        if outcome.reason == REASON_OUTSIDE_DATA:
-            # The crop may have cut what the surface needs: once more on twice the region.
-            outcome = await self._find(plan.widened(2.0), item.slice_)
-        await self._emit(self._surface_emission(item, outcome))
+        if not plan.search:
+            outcome = SurfaceOutcome(label=plan.label, found=False, reason=REASON_NOT_SEARCHED, status=-1,
+                                     message=plan.note or "not searched in this slice")
+        else:
+            outcome = await self._find(plan, item.slice_)
+            if outcome.reason == REASON_OUTSIDE_DATA and plan.retry_wider:
+                # The crop may have cut what the surface needs: once more on twice the region.
+                outcome = await self._find(plan.widened(2.0), item.slice_)
+        await self._emit(self._surface_emission(item, outcome, plan))
         return outcome
 
     async def _find(self, plan: SurfacePlan, slice_: Slice) -> SurfaceOutcome:
@@ -277,11 +313,13 @@ class RunRecord:
         job = SurfaceJob(
             label=plan.label,
             data=data,
-            lmax=self.settings.lmax,
+            lmax=plan.lmax or self.settings.lmax,
             tolerance=self.settings.tolerance,
             max_iterations=self.settings.max_iterations,
             interpolation_order=order,
+            fallback_to_flow=plan.fallback_to_flow,
             seed=plan.seed,
+            extra_seeds=tuple(plan.extra_seeds),
             scan_centre=plan.scan_centre,
             scan_radii=plan.scan_radii,
         )
@@ -289,7 +327,7 @@ class RunRecord:
 
     # -- emissions ------------------------------------------------------------------------------
 
-    def _surface_emission(self, item: QueuedSlice, outcome: SurfaceOutcome) -> _Emission:
+    def _surface_emission(self, item: QueuedSlice, outcome: SurfaceOutcome, plan: SurfacePlan | None = None) -> _Emission:
         slice_ = item.slice_
 
         def build(seq: int, now: float):
@@ -302,6 +340,11 @@ class RunRecord:
             else:
                 event.surface_not_found.CopyFrom(convert.not_found_from_outcome(outcome, latency_s=latency))
             label, row = convert.surface_row(event, now)
+            if plan is not None and plan.seed_position is not None:
+                row.update(seed_centre=np.asarray(plan.seed_position, float), seed_uncertainty=plan.seed_uncertainty,
+                           seed_model=layout.FORECAST_MODELS.get(plan.seed_model, 0))
+            else:
+                row.update(seed_model=0)
             return event, [], {label: [row]}, {}
 
         def apply(event: pb.RunEvent) -> None:
@@ -317,6 +360,28 @@ class RunRecord:
                                    iteration=slice_.iteration, time=slice_.time)
             else:
                 track.record_miss(outcome.message, slice_.iteration)
+
+        return _Emission(build, apply)
+
+    def _notice_emission(self, item: QueuedSlice, notice: Notice) -> _Emission:
+        """A tracking event of ``notice`` (steering.py) with its rows and its archived wire form."""
+        slice_ = item.slice_
+
+        def build(seq: int, now: float):
+            event = pb.RunEvent(seq=seq, run_id=self.run_id, time_m=slice_.time, iteration=slice_.iteration)
+            getattr(event, notice.kind).CopyFrom(notice.payload)
+            rows = {path: [dict(row, event_seq=seq) for row in group] for path, group in notice.group_rows.items()}
+            rows[layout.EVENTS_GROUP] = [{
+                "seq": seq, "kind": notice.kind, "iteration": slice_.iteration, "time": slice_.time,
+                "label": notice.label, "message": notice.message, "wire": encode_wire(event), "archived_unix_s": now,
+            }]
+            return event, [], {}, {}, rows
+
+        def apply(event: pb.RunEvent) -> None:
+            if notice.kind == "refinement_guidance":
+                self.latest_guidance_event = event
+            elif notice.kind == "data_windows_wanted":
+                self.latest_windows_event = event
 
         return _Emission(build, apply)
 
@@ -399,19 +464,23 @@ class RunRecord:
             built = []
             slice_rows: list[dict] = []
             surface_rows: dict[str, list[dict]] = {}
+            group_rows: dict[str, list[dict]] = {}
             attrs: dict = {}
             for emission in batch:
-                event, s_rows, f_rows, e_attrs = emission.build(seq, now)
+                parts = emission.build(seq, now)
+                event, s_rows, f_rows, e_attrs = parts[:4]
                 built.append(event)
                 slice_rows.extend(s_rows)
                 for label, rows in f_rows.items():
                     surface_rows.setdefault(label, []).extend(rows)
+                for path, rows in (parts[4] if len(parts) > 4 else {}).items():
+                    group_rows.setdefault(path, []).extend(rows)
                 attrs.update(e_attrs)
                 seq += 1
             attrs["next_event_seq"] = seq
             try:
                 await self._in_archive_thread(self.writer.commit, slice_rows=slice_rows, surface_rows=surface_rows,
-                                              attrs=attrs)
+                                              group_rows=group_rows, attrs=attrs)
             except asyncio.CancelledError:
                 for emission in batch:
                     emission.done.cancel()
@@ -484,13 +553,17 @@ class RunRecord:
     # -- restore ----------------------------------------------------------------------------------
 
     @staticmethod
-    def read_archive(path: Path) -> tuple[ArchiveView, dict, dict]:
-        """(view, slice columns, label -> surface columns): the disk reads of a restore (any thread)."""
+    def read_archive(path: Path) -> tuple[ArchiveView, dict, dict, dict]:
+        """(view, slice columns, label -> surface columns, tracking events): the disk reads of a
+        restore (any thread)."""
         view = open_archive(path)
-        return view, view.slices(), {label: view.surface(label) for label in view.surface_labels}
+        return (view, view.slices(), {label: view.surface(label) for label in view.surface_labels},
+                view.tracking_events())
 
-    def restore_from_archive(self, view: ArchiveView, slices: dict, surfaces: dict) -> None:
+    def restore_from_archive(self, view: ArchiveView, slices: dict, surfaces: dict,
+                             tracking_events: dict | None = None) -> None:
         """Rebuild counters, tracks and the event log from :meth:`read_archive` output (restart)."""
+        tracking_events = tracking_events or {}
         events: list[pb.RunEvent] = []
         n = len(slices.get("iteration", []))
         for i in range(n):
@@ -508,12 +581,12 @@ class RunRecord:
             track = self.tracks.setdefault(label, SurfaceTrack(label))
             for i in range(len(cols["iteration"])):
                 row = {name: values[i] for name, values in cols.items()}
-                event = convert.surface_event_from_row(self.run_id, label, row, view.lmax)
+                event = convert.surface_event_from_row(self.run_id, label, row, view.surface_lmax(label))
                 events.append(event)
                 if event.WhichOneof("kind") == "surface_found":
                     s = event.surface_found.surface
                     q = s.quantities
-                    surface = Surface(row["centre"], view.lmax, row["coefficients"])
+                    surface = Surface(row["centre"], view.surface_lmax(label), row["coefficients"])
                     centroid = np.array([q.centroid_m.x, q.centroid_m.y, q.centroid_m.z])
                     if not np.all(np.isfinite(centroid)):
                         centroid = surface.centre
@@ -522,6 +595,17 @@ class RunRecord:
                                        time=float(row["time"]))
                 else:
                     track.record_miss(event.surface_not_found.message, int(row["iteration"]))
+        # Tracking events come back from their archived wire form, exactly as announced.
+        for index, wire in enumerate(tracking_events.get("wire", [])):
+            event = decode_wire(wire)
+            event.emit_time_unix_s = float(tracking_events["archived_unix_s"][index])
+            events.append(event)
+            kind = event.WhichOneof("kind")
+            if kind == "refinement_guidance":
+                self.latest_guidance_event = event
+            elif kind == "data_windows_wanted":
+                self.latest_windows_event = event
+        self.steering.restore(surfaces, tracking_events)
         for entry in self.state_events:
             event = pb.RunEvent(seq=int(entry["seq"]), run_id=self.run_id, emit_time_unix_s=float(entry["unix_s"]))
             event.run_state_changed.CopyFrom(
@@ -543,7 +627,7 @@ class RunManager:
         self.archive_root = Path(archive_root)
         self.executor = executor
         self.options = options
-        self.planner_factory = planner_factory or (lambda settings: ExpectedBodiesPlanner())
+        self.planner_factory = planner_factory or steering_planner_factory
         self.slice_observer_factory = slice_observer_factory
         self.archive_thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix="penumbra-archive")
         self.runs: dict[str, RunRecord] = {}

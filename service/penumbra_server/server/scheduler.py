@@ -1,16 +1,18 @@
 """Which surfaces to look for in a slice, from where, and in which sub-box of the data.
 
-The default planner looks for every expected body: seeded from that body's previous result
+The planner protocol (:class:`SurfacePlanner`, :class:`SurfacePlan`) and the simple
+:class:`ExpectedBodiesPlanner`: every expected body, seeded from that body's previous result
 (re-centred on its centroid moved on at its last velocity) or, with no prior, by scanning coordinate spheres about the
 spec's position with radii 0.1 m .. 2 m (m the body's approximate mass; puncture data has its
 apparent horizon near r = m/2 in isotropic coordinates, references.md item 1), then Newton from
-the outermost candidate. Tracking and guidance (issue 4) plug in here by providing another
-:class:`SurfacePlanner` (e.g. adding a common surface once the bodies are close).
+the outermost candidate. The server's default is
+:class:`penumbra_server.server.planning.SteeringPlanner` (forecast seeds, lost bodies held,
+the common horizon of a pair); this one stays for custom planners that wrap it.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Mapping, Protocol, Sequence
 
 import numpy as np
@@ -105,7 +107,25 @@ def recentred(surface: Surface, centre) -> Surface:
 
 @dataclass(frozen=True, eq=False)
 class SurfacePlan:
-    """One surface to look for: label, optional seed, scan fallback and the data region."""
+    """One surface to look for: label, optional seed, scan fallback and the data region.
+
+    Attributes:
+        label, seed, scan_centre, scan_radii, box_lower, box_upper: as :class:`SurfaceJob`
+            takes them (the box is the data region cropped for the worker), units of M.
+        extra_seeds: further starting surfaces tried in order when the seed fails.
+        search: False reports the surface as not searched in this slice (``note`` says why)
+            without running a job (e.g. an individual horizon lost inside the common one).
+        note: why the surface is not searched (``search`` False), or free text.
+        seed_position, seed_uncertainty, seed_model: the forecast the seed was placed at (units
+            of M; inf uncertainty when unknown; model "", "static", "polynomial" or "orbit"),
+            archived with the surface row.
+        lmax: harmonic degree of this surface (None: the run's lmax); its archive group keeps
+            the degree it was created with.
+        fallback_to_flow: run the fast flow when Newton fails (slow; off for searches repeated
+            every slice for a surface that may not exist yet).
+        retry_wider: when the search runs out of data, try once more on twice the region (off
+            for those searches too: their iterates run away when the surface does not exist).
+    """
 
     label: str
     seed: Surface | None
@@ -113,12 +133,21 @@ class SurfacePlan:
     scan_radii: tuple[float, float] | None
     box_lower: np.ndarray
     box_upper: np.ndarray
+    extra_seeds: tuple[Surface, ...] = ()
+    search: bool = True
+    note: str = ""
+    seed_position: np.ndarray | None = None
+    seed_uncertainty: float = float("nan")
+    seed_model: str = ""
+    lmax: int | None = None
+    fallback_to_flow: bool = True
+    retry_wider: bool = True
 
     def widened(self, factor: float) -> "SurfacePlan":
         """The same plan with the data region scaled about its middle."""
         mid = 0.5 * (self.box_lower + self.box_upper)
         half = 0.5 * (self.box_upper - self.box_lower) * factor
-        return SurfacePlan(self.label, self.seed, self.scan_centre, self.scan_radii, mid - half, mid + half)
+        return replace(self, box_lower=mid - half, box_upper=mid + half)
 
 
 class SurfacePlanner(Protocol):

@@ -18,7 +18,7 @@ from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
 from .errors import ServiceError
-from .ingest import IngestLimits, SliceAssembler
+from .ingest import IngestLimits, SliceAssembler, mirror_through_z0
 from .runs import QueuedSlice, RunManager
 
 __all__ = ["HorizonServicer"]
@@ -120,6 +120,8 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
             raise ServiceError.invalid("header: the stream ended without a header")
         # The finiteness check walks every value: keep it off the event loop.
         slice_ = await asyncio.to_thread(assembler.finish)
+        if run.settings.reflection_z:
+            slice_ = await asyncio.to_thread(mirror_through_z0, slice_)
         item = QueuedSlice(slice_=slice_, nbytes=assembler.received_bytes, arrival_unix_s=time.time())
         return run.accept(item)
 
@@ -155,3 +157,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
     @_translating_errors
     async def GetLatestSurfaces(self, request: pb.GetLatestSurfacesRequest, context) -> pb.GetLatestSurfacesResponse:
         return self.manager.get(request.run_id).latest_surfaces()
+
+    @_translating_errors
+    async def GetLatestGuidance(self, request: pb.GetLatestGuidanceRequest, context) -> pb.GetLatestGuidanceResponse:
+        return self.manager.get(request.run_id).latest_guidance()

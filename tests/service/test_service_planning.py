@@ -1,0 +1,185 @@
+"""The default planner and the run's steering state without a server: seeds at the forecast, a
+lost body held at its last centroid with a scan widened by the gap, individual surfaces retired
+after the merger, the smallest diameter and the shift interpolation; and the new spec fields
+and the GetLatestGuidance call on a real server."""
+
+from __future__ import annotations
+
+import grpc
+import numpy as np
+import pytest
+
+import penumbra_shim as ps
+from penumbra_shim._wire import horizons_pb2 as pb
+from penumbra_server.numerics.slices import Patch, Slice, VariableSet
+from penumbra_server.numerics.surfaces import Surface, angular_grid
+from penumbra_server.server._spec import BodySpec, RunSettings
+from penumbra_server.server.jobs import REASON_NOT_CONVERGED, SurfaceOutcome
+from penumbra_server.server.planning import SteeringPlanner
+from penumbra_server.server.steering import RunSteering, shift_field, smallest_diameter
+
+
+def _settings(*bodies) -> RunSettings:
+    return RunSettings(display_name="t", variable_set=VariableSet.ADM, mass_scale_solar_masses=0.0,
+                       bodies=tuple(BodySpec(label, pos, mass) for label, pos, mass in bodies), lmax=4,
+                       tolerance=1e-8, max_iterations=20, queue_depth=2)
+
+
+def _slice(time: float, *, with_shift: bool = False) -> Slice:
+    fields = {n: np.ones((5, 5, 5)) for n in ps.required_fields("adm")}
+    if with_shift:
+        fields.update({n: np.zeros((5, 5, 5)) for n in ("shift_x", "shift_y", "shift_z")})
+    return Slice(time=time, iteration=int(round(10 * time)), variable_set="adm",
+                 patches=(Patch(origin=(-4, -4, -4), spacing=(2, 2, 2), shape=(5, 5, 5), level=0, fields=fields),))
+
+
+def _found(label: str, centroid, radius: float = 0.5) -> SurfaceOutcome:
+    surface = Surface.sphere(centroid, radius, 4)
+    return SurfaceOutcome(label=label, found=True, reason=0, status=0, message="found", centre=np.array(centroid, float),
+                          lmax=4, coefficients=np.array(surface.coefficients),
+                          quantities={"centroid": list(centroid), "radius_max": radius, "irreducible_mass": 1.0})
+
+
+def _missed(label: str) -> SurfaceOutcome:
+    return SurfaceOutcome(label=label, found=False, reason=REASON_NOT_CONVERGED, status=2, message="missed")
+
+
+def _observe(steering, planner, settings, time, outcomes):
+    sl = _slice(time)
+    plans = planner.plan(settings, {}, sl)
+    return plans, steering.observe(sl, plans, outcomes)
+
+
+def test_seed_at_the_forecast_then_a_lost_body_is_held_and_its_scan_widens_with_the_gap():
+    settings = _settings(("A", (0.0, 0.0, 0.0), 1.0))
+    steering = RunSteering(settings)
+    planner = SteeringPlanner(steering)
+    first, _ = _observe(steering, planner, settings, 0.0, [_found("A", (0.0, 0.0, 0.0))])
+    assert first[0].seed is None and first[0].scan_radii == pytest.approx((0.1, 2.0))  # never found: wide scan
+    for t, x in ((1.0, 0.1), (2.0, 0.4)):  # accelerating along x
+        _observe(steering, planner, settings, t, [_found("A", (x, 0.0, 0.0))])
+    (plan,) = planner.plan(settings, {}, _slice(3.0))
+    # The quadratic through (0, 0), (1, 0.1), (2, 0.4) gives 0.9 at t = 3 (not the linear 0.7).
+    np.testing.assert_allclose(plan.seed.centre, (0.9, 0.0, 0.0), atol=1e-12)
+    assert plan.seed_model == "polynomial" and np.isfinite(plan.seed_uncertainty)
+    np.testing.assert_allclose(plan.seed_position, plan.seed.centre)
+    # Missed twice: lost. The seed stays at the forecast, the scan is held at the last centroid
+    # and its outer radius grows with the time since the body was last found.
+    _observe(steering, planner, settings, 3.0, [_missed("A")])
+    _observe(steering, planner, settings, 4.0, [_missed("A")])
+    (soon,) = planner.plan(settings, {}, _slice(5.0))
+    (later,) = planner.plan(settings, {}, _slice(9.0))
+    for p in (soon, later):
+        np.testing.assert_allclose(p.scan_centre, (0.4, 0.0, 0.0))
+        assert p.seed is not None
+    speed = 0.3  # the last two finds: 0.3 M per M
+    assert soon.scan_radii[1] == pytest.approx(2.0 + speed * 3.0)
+    assert later.scan_radii[1] == pytest.approx(2.0 + speed * 7.0)
+    # The data region holds the widened scan.
+    assert np.all(later.box_upper - later.box_lower >= 2 * 1.25 * later.scan_radii[1] - 1e-12)
+
+
+def test_common_search_starts_when_close_and_individuals_retire_after_merger():
+    settings = _settings(("A", (0.5, 0.0, 0.0), 0.5), ("B", (-0.5, 0.0, 0.0), 0.5))
+    steering = RunSteering(settings)
+    planner = SteeringPlanner(steering)
+    far = [_found("A", (1.0, 0, 0), 0.25), _found("B", (-1.0, 0, 0), 0.25)]
+    plans, _ = _observe(steering, planner, settings, 0.0, far)
+    plans, _ = _observe(steering, planner, settings, 1.0, far)
+    assert [p.label for p in plans] == ["A", "B"]  # 2 M apart = 4 x (r_A + r_B): no common search yet
+    close = [_found("A", (0.7, 0, 0), 0.25), _found("B", (-0.7, 0, 0), 0.25)]
+    plans, _ = _observe(steering, planner, settings, 2.0, close)
+    assert [p.label for p in plans] == ["A", "B"]  # planned from the forecast at t = 2: still 2 M apart
+    plans = planner.plan(settings, {}, _slice(3.0))
+    common = plans[-1]
+    assert common.label == "common" and common.scan_centre is None and common.search
+    # The guess encloses both horizons where the forecast puts them at the slice's time.
+    for body in plans[:2]:
+        assert np.linalg.norm(body.seed_position - common.seed.centre) + 0.25 < common.seed.mean_radius
+    notices = steering.observe(_slice(3.0), plans, [_found("A", (0.4, 0, 0), 0.25), _missed("B"),
+                                                     _found("common", (0.0, 0, 0), 0.7)])
+    kinds = [n.kind for n in notices]
+    assert kinds.count("common_horizon_formed") == 1 and steering.common_formed == (3.0, 30)
+    notices = steering.observe(_slice(4.0), planner.plan(settings, {}, _slice(4.0)),
+                               [_found("A", (0.4, 0, 0), 0.25), _missed("B"), _found("common", (0.0, 0, 0), 0.7)])
+    assert "common_horizon_formed" not in [n.kind for n in notices]  # once only
+    plans = {p.label: p for p in planner.plan(settings, {}, _slice(5.0))}
+    assert plans["A"].search and plans["common"].search
+    assert not plans["B"].search and "inside the common horizon" in plans["B"].note
+    guidance = [n for n in notices if n.kind == "refinement_guidance"][0].payload
+    assert guidance.post_merger and [b.label for b in guidance.bodies] == ["common"]
+
+
+def test_smallest_diameter_of_a_spheroid():
+    a, c = 0.3, 0.5  # prolate along z: the smallest diameter is the equatorial 2 a
+    grid = angular_grid(16)
+    h = 1.0 / np.sqrt(np.sin(grid.theta) ** 2 / a**2 + np.cos(grid.theta) ** 2 / c**2)
+    surface = Surface((1.0, 2.0, 3.0), 16, grid.project(h))
+    # l_max 16 truncation and the direction sampling leave ~2e-4 relative
+    assert smallest_diameter(surface) == pytest.approx(2 * a, rel=1e-3)
+    assert smallest_diameter(Surface.sphere((0, 0, 0), 0.7, 8)) == pytest.approx(1.4, rel=1e-12)
+
+
+def test_shift_field_interpolates_the_finest_patch_and_reports_uncovered_points():
+    axes = [np.linspace(-1, 1, 9)] * 3
+    x, y, z = np.meshgrid(*axes, indexing="ij")
+    coarse = {n: np.ones((9, 9, 9)) for n in ps.required_fields("adm")}
+    coarse.update(shift_x=0.1 + 0.2 * x - 0.3 * y, shift_y=0.5 * z * x, shift_z=np.zeros_like(x))
+    fine_axes = [np.linspace(-0.5, 0.5, 9)] * 3
+    fx, fy, fz = np.meshgrid(*fine_axes, indexing="ij")
+    fine = {n: np.ones((9, 9, 9)) for n in ps.required_fields("adm")}
+    fine.update(shift_x=0.1 + 0.2 * fx - 0.3 * fy, shift_y=0.5 * fz * fx, shift_z=np.full_like(fx, 7.0))
+    sl = Slice(time=0.0, iteration=0, variable_set="adm", patches=(
+        Patch(origin=(-1, -1, -1), spacing=(0.25,) * 3, shape=(9, 9, 9), level=0, fields=coarse),
+        Patch(origin=(-0.5, -0.5, -0.5), spacing=(0.125,) * 3, shape=(9, 9, 9), level=1, fields=fine)))
+    beta = shift_field(sl, (-1, -1, -1), (1, 1, 1))
+    points = np.array([[0.03, -0.02, 0.01], [0.6, 0.1, -0.2], [5.0, 0.0, 0.0]])
+    values = beta(points)
+    # 4th-order Lagrange interpolation is exact for these polynomials; the fine patch (shift_z = 7)
+    # serves the first point, the coarse one (shift_z = 0) the second, none the third.
+    for i in range(2):
+        p = points[i]
+        np.testing.assert_allclose(values[i, :2], [0.1 + 0.2 * p[0] - 0.3 * p[1], 0.5 * p[2] * p[0]], atol=1e-13)
+    assert values[0, 2] == pytest.approx(7.0, rel=1e-13) and values[1, 2] == 0.0
+    assert np.all(np.isnan(values[2]))
+    assert shift_field(_slice(0.0), (-1, -1, -1), (1, 1, 1)) is None  # no shift in the slice
+
+
+def test_refinement_policy_is_validated_and_echoed(stub):
+    spec = ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),),
+                      refinement=ps.RefinementOptions(points_across_horizon=20, levels=4, buffer_points=0),
+                      reflection_z=True).to_wire()
+    run = stub.OpenRun(pb.OpenRunRequest(spec=spec)).run
+    assert run.spec.refinement.points_across_horizon == 20 and run.spec.refinement.levels == 4
+    assert run.spec.refinement.HasField("buffer_points") and run.spec.refinement.buffer_points == 0
+    assert run.spec.refinement.level_ratio == 2.0 and run.spec.refinement.regrid_interval_m == 4.0  # defaults
+    assert run.spec.reflection_z
+    bad = pb.RunSpec()
+    bad.CopyFrom(spec)
+    bad.refinement.levels = 99
+    with pytest.raises(grpc.RpcError) as info:
+        stub.OpenRun(pb.OpenRunRequest(spec=bad))
+    assert info.value.code() == grpc.StatusCode.INVALID_ARGUMENT
+    assert "spec.refinement.levels" in info.value.details()
+    bad.refinement.levels = 0
+    bad.refinement.level_ratio = 0.5
+    with pytest.raises(grpc.RpcError) as info:
+        stub.OpenRun(pb.OpenRunRequest(spec=bad))
+    assert "spec.refinement.level_ratio" in info.value.details()
+    with pytest.raises(ValueError, match="refinement.levels"):
+        ps.RefinementOptions(levels=0)
+
+
+def test_latest_guidance_before_any_slice_and_for_an_unknown_run(client):
+    run = client.open_run(ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),)), cache_results=False)
+    assert client.latest_guidance(run.run_id) is None and client.latest_windows(run.run_id) is None
+    assert run.latest_guidance() is None
+    run.close()
+    with pytest.raises(ps.RunNotFoundError):
+        client.latest_guidance("run-000000000000")
+
+
+def test_not_searched_reason_mirrors_the_proto():
+    from penumbra_server.server import jobs
+
+    assert jobs.REASON_NOT_SEARCHED == pb.SurfaceNotFound.REASON_NOT_SEARCHED

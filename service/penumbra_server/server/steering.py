@@ -49,7 +49,7 @@ from ..tracking.common import CommonSearchAdvice, common_horizon_watch
 from ..tracking.forecast import Forecast, forecast_pair, forecast_polynomial
 from ..tracking.guidance import HorizonSize, RefinementGuidance, guidance_times, refinement_guidance
 from ..tracking.tracks import ShiftSample, Track, TrackError, advance_puncture_track
-from ..tracking.windows import DataWindow, window_coverage
+from ..tracking.windows import DataWindow, merge_overlapping_windows, window_coverage
 from ._convert import vector
 from ._spec import RunSettings, refinement_to_wire
 from .jobs import REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceOutcome
@@ -746,7 +746,7 @@ class RunSteering:
                         reason=(f"common-surface search: the guess sphere about the pair's centre grown by "
                                 f"{common.growth_factor * SEARCH_BOX_FACTOR:.3g} x radius {radius:.4g} + "
                                 f"{WINDOW_SLACK_POINTS} x {spacing:.4g} M"), growth=common.growth))
-        return _merge_windows(windows)
+        return merge_overlapping_windows(windows)
 
     def _windows_notice(self, windows: list[DataWindow], times: np.ndarray, t: float, it: int) -> Notice:
         valid_from, valid_until = float(times[0]), float(times[-1])
@@ -827,26 +827,3 @@ def _triple(v: pb.Vector3) -> np.ndarray:
 def _track_point(row: dict, source: int) -> pb.TrackPoint:
     return pb.TrackPoint(time_m=row["time"], iteration=row["iteration"], position_m=vector(row["position"]),
                          source=source, uncertainty_m=row["uncertainty"])
-
-
-def _merge_windows(windows: list[DataWindow]) -> list[DataWindow]:
-    """Merge overlapping windows into their bounding boxes until none overlap (no node twice)."""
-    windows = list(windows)
-    changed = True
-    while changed:
-        changed = False
-        for i in range(len(windows)):
-            for j in range(i + 1, len(windows)):
-                a, b = windows[i], windows[j]
-                if np.all(a.lower <= b.upper) and np.all(b.lower <= a.upper):
-                    names = a.name.split("+") + [n for n in b.name.split("+") if n not in a.name.split("+")]
-                    windows[i] = DataWindow(name="+".join(names), lower=np.minimum(a.lower, b.lower),
-                                            upper=np.maximum(a.upper, b.upper),
-                                            reason=f"bounding box of overlapping windows ({a.reason}) and ({b.reason})",
-                                            growth=max(a.growth, b.growth))
-                    del windows[j]
-                    changed = True
-                    break
-            if changed:
-                break
-    return windows

@@ -46,6 +46,7 @@ from .windows import (
     WindowSet,
     data_windows,
     grow_windows,
+    merge_overlapping_windows,
     window_coverage,
 )
 
@@ -87,6 +88,7 @@ __all__ = [
     "WindowError",
     "data_windows",
     "grow_windows",
+    "merge_overlapping_windows",
     "window_coverage",
     "DEFAULT_MARGIN_POINTS",
 ]

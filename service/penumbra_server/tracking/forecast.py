@@ -46,6 +46,8 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
+from ._arrays import frozen_float_array
+
 from .tracks import Track
 
 __all__ = [
@@ -60,12 +62,6 @@ __all__ = [
 
 class ForecastError(ValueError):
     """Bad input to a forecast. The message names the field at fault."""
-
-
-def _frozen(arr) -> np.ndarray:
-    arr = np.array(arr, dtype=float, copy=True)
-    arr.setflags(write=False)
-    return arr
 
 
 @dataclass(frozen=True, eq=False)
@@ -95,9 +91,9 @@ class Forecast:
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "bodies", tuple(str(b) for b in self.bodies))
-        object.__setattr__(self, "times", _frozen(self.times))
-        object.__setattr__(self, "positions", _frozen(self.positions))
-        object.__setattr__(self, "uncertainty", _frozen(self.uncertainty))
+        object.__setattr__(self, "times", frozen_float_array(self.times))
+        object.__setattr__(self, "positions", frozen_float_array(self.positions))
+        object.__setattr__(self, "uncertainty", frozen_float_array(self.uncertainty))
         nb, k = len(self.bodies), self.times.size
         if self.positions.shape != (nb, k, 3):
             raise ForecastError(f"positions: expected shape ({nb}, {k}, 3), got {self.positions.shape}")

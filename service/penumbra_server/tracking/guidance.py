@@ -34,6 +34,8 @@ from typing import Mapping
 
 import numpy as np
 
+from ._arrays import frozen_float_array
+
 from .forecast import Forecast
 
 __all__ = [
@@ -126,12 +128,6 @@ class HorizonSize:
             )
 
 
-def _frozen(arr) -> np.ndarray:
-    arr = np.array(arr, dtype=float, copy=True)
-    arr.setflags(write=False)
-    return arr
-
-
 @dataclass(frozen=True, eq=False)
 class BodyGuidance:
     """The nested regions recommended for one body.
@@ -163,7 +159,7 @@ class BodyGuidance:
 
     def __post_init__(self) -> None:
         for name in ("centre", "radii", "lower", "upper", "spacings"):
-            object.__setattr__(self, name, _frozen(getattr(self, name)))
+            object.__setattr__(self, name, frozen_float_array(getattr(self, name)))
         object.__setattr__(self, "margins", dict(self.margins))
         object.__setattr__(self, "reasons", dict(self.reasons))
 
@@ -196,7 +192,7 @@ class LevelRegion:
 
     def __post_init__(self) -> None:
         for name in ("centre", "lower", "upper"):
-            object.__setattr__(self, name, _frozen(getattr(self, name)))
+            object.__setattr__(self, name, frozen_float_array(getattr(self, name)))
 
     @property
     def merged(self) -> bool:

@@ -27,6 +27,8 @@ from typing import Callable, Sequence
 
 import numpy as np
 
+from ._arrays import frozen_float_array
+
 __all__ = [
     "TrackError",
     "Track",
@@ -44,12 +46,6 @@ ShiftField = Callable[[np.ndarray], np.ndarray]
 
 class TrackError(ValueError):
     """Bad input to a track function. The message names the field at fault."""
-
-
-def _frozen(arr: np.ndarray) -> np.ndarray:
-    arr = np.array(arr, dtype=float, copy=True)
-    arr.setflags(write=False)
-    return arr
 
 
 @dataclass(frozen=True, eq=False)
@@ -85,15 +81,15 @@ class Track:
             raise TrackError("times/positions: expected finite numbers")
         if times.size > 1 and np.any(np.diff(times) <= 0):
             raise TrackError("times: expected strictly increasing values")
-        object.__setattr__(self, "times", _frozen(times))
-        object.__setattr__(self, "positions", _frozen(positions))
+        object.__setattr__(self, "times", frozen_float_array(times))
+        object.__setattr__(self, "positions", frozen_float_array(positions))
         if self.uncertainty is not None:
             unc = np.asarray(self.uncertainty, dtype=float)
             if unc.shape != (times.size,):
                 raise TrackError(f"uncertainty: expected shape ({times.size},), got {unc.shape}")
             if not np.all(np.isfinite(unc)) or np.any(unc < 0):
                 raise TrackError("uncertainty: expected finite non-negative values")
-            object.__setattr__(self, "uncertainty", _frozen(unc))
+            object.__setattr__(self, "uncertainty", frozen_float_array(unc))
         object.__setattr__(self, "body", str(self.body))
         object.__setattr__(self, "source", str(self.source))
 

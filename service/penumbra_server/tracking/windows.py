@@ -26,10 +26,13 @@ from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 
+from ._arrays import frozen_float_array
+
 from .common import CommonSearchAdvice
 from .forecast import Forecast
 
 __all__ = [
+    "merge_overlapping_windows",
     "WindowError",
     "DataWindow",
     "WindowSet",
@@ -45,12 +48,6 @@ DEFAULT_MARGIN_POINTS = 8
 
 class WindowError(ValueError):
     """Bad input to a data-window function. The message names the field at fault."""
-
-
-def _frozen(arr) -> np.ndarray:
-    arr = np.array(arr, dtype=float, copy=True)
-    arr.setflags(write=False)
-    return arr
 
 
 @dataclass(frozen=True, eq=False)
@@ -77,8 +74,8 @@ class DataWindow:
         if not (np.all(np.isfinite(lower)) and np.all(np.isfinite(upper)) and np.all(lower < upper)):
             raise WindowError(f"window {self.name!r}: expected finite corners with lower < upper, got "
                               f"{lower.tolist()} and {upper.tolist()}")
-        object.__setattr__(self, "lower", _frozen(lower))
-        object.__setattr__(self, "upper", _frozen(upper))
+        object.__setattr__(self, "lower", frozen_float_array(lower))
+        object.__setattr__(self, "upper", frozen_float_array(upper))
 
     @property
     def centre(self) -> np.ndarray:
@@ -124,7 +121,9 @@ def _overlap(a: DataWindow, b: DataWindow) -> bool:
     return bool(np.all(a.lower <= b.upper) and np.all(b.lower <= a.upper))
 
 
-def _merge_overlapping(windows: list[DataWindow]) -> list[DataWindow]:
+def merge_overlapping_windows(windows) -> list[DataWindow]:
+    """Merge overlapping windows into their bounding boxes until none overlap (no node is sent
+    twice); a merged window is named after its parts ("A+B"), each part once."""
     windows = list(windows)
     changed = True
     while changed:
@@ -133,8 +132,9 @@ def _merge_overlapping(windows: list[DataWindow]) -> list[DataWindow]:
             for j in range(i + 1, len(windows)):
                 a, b = windows[i], windows[j]
                 if _overlap(a, b):
+                    parts = a.name.split("+") + [n for n in b.name.split("+") if n not in a.name.split("+")]
                     windows[i] = DataWindow(
-                        name=f"{a.name}+{b.name}",
+                        name="+".join(parts),
                         lower=np.minimum(a.lower, b.lower), upper=np.maximum(a.upper, b.upper),
                         reason=f"bounding box of overlapping windows ({a.reason}) and ({b.reason})",
                         growth=max(a.growth, b.growth),
@@ -208,7 +208,7 @@ def data_windows(
                     f"stencil margin"),
         ))
     if merge_overlapping:
-        windows = _merge_overlapping(windows)
+        windows = merge_overlapping_windows(windows)
     return WindowSet(windows=tuple(windows), valid_from=float(forecast.times[0]),
                      valid_until=float(forecast.times[-1]), margin_points=margin_points)
 
@@ -241,7 +241,7 @@ def grow_windows(window_set: WindowSet, *, lacking: Iterable[str], factor: float
                                reason=f"{w.reason}; grown x{factor:g} after missing data"))
         else:
             out.append(w)
-    return replace(window_set, windows=tuple(_merge_overlapping(out)))
+    return replace(window_set, windows=tuple(merge_overlapping_windows(out)))
 
 
 def window_coverage(window: DataWindow, patches: Sequence, *, samples_per_axis: int = 9) -> float:

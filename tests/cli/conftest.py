@@ -80,3 +80,22 @@ def small_archive(tmp_path_factory):
         seq += 1
     expected["skipped_iterations"] = (scenario.iteration_of(SKIPPED_INDEX),)
     return writer.path, expected
+
+
+@pytest.fixture(scope="session")
+def demo_run(tmp_path_factory):
+    """One `penumbra demo` run (server and evolution subprocesses, the real demo data), shared
+    by the tests that check its output, its archive, its control run and its report.
+
+    Returns (workdir, completed process). About 55 s on two cores; the tests using it are
+    marked slow.
+    """
+    import os
+    import subprocess
+    import sys
+
+    workdir = tmp_path_factory.mktemp("demo")
+    env = dict(os.environ, OMP_NUM_THREADS="1", OPENBLAS_NUM_THREADS="1", MKL_NUM_THREADS="1")
+    done = subprocess.run([sys.executable, "-m", "penumbra_server.cli.main", "demo", "--workdir", str(workdir)],
+                          capture_output=True, text=True, timeout=300, env=env)
+    return workdir, done

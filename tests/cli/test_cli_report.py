@@ -1,9 +1,16 @@
-"""`penumbra report` on a small real archive (zarr on disk, written by the archive writer)."""
+"""`penumbra report` on a small real archive (zarr on disk, written by the archive writer) and on
+the archive of a real demo run (tracks, puncture tracks, forecasts, guidance, merger)."""
 
+import math
+import re
+
+import numpy as np
 import pytest
 
+from penumbra_server.archive import open_archive
 from penumbra_server.cli.main import main
-from penumbra_server.cli.report import load_run, summarise, summary_text, write_report
+from penumbra_server.cli.report import (chosen_forecasts, cone_path, default_guidance_choice, forecast_check,
+                                        guidance_updates, load_run, summarise, summary_text, write_report)
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -55,7 +62,7 @@ def test_report_writes_pngs_and_a_summary(small_archive, tmp_path):
     path, expected = small_archive
     result = write_report(path, tmp_path / "out")
     names = sorted(p.name for p in result.plots)
-    assert names == ["areas_masses.png", "cross_sections.png", "tracks.png"]
+    assert names == ["areas_masses.png", "cross_sections.png", "guidance.png", "tracks.png"]
     for plot in result.plots:
         width, height = _png_size(plot)
         assert width > 300 and height > 300
@@ -63,6 +70,16 @@ def test_report_writes_pngs_and_a_summary(small_archive, tmp_path):
     assert result.summary_path.read_text().startswith("run run-0123456789ab")
     # Default cross-section times include the first common horizon.
     assert result.summary.common_first_time in result.section_times
+    # An archive without tracking groups: the tracks plot falls back to the found centroids (all
+    # inside its ranges), the guidance plot says there is none, the summary has no tracking part.
+    (x0, x1, y0, y1), = result.limits["tracks.png"]
+    record = load_run(path)
+    for label, cols in record.surfaces.items():
+        c = np.asarray(cols["centroid"])[np.asarray(cols["found"], bool)]
+        assert np.all((x0 <= c[:, 0]) & (c[:, 0] <= x1) & (y0 <= c[:, 1]) & (c[:, 1] <= y1)), label
+    assert result.limits["guidance.png"] == ()
+    assert result.summary.tracks == () and result.summary.guidance is None
+    assert "refinement guidance" not in result.summary_path.read_text()
 
 
 def test_cross_section_plot_draws_one_curve_per_found_surface_at_the_chosen_time(small_archive, tmp_path):
@@ -70,8 +87,8 @@ def test_cross_section_plot_draws_one_curve_per_found_surface_at_the_chosen_time
     path, expected = small_archive
     t_two = expected["common"][0][0]       # no common surface there
     t_three = expected["common"][-1][0]    # common surface found
-    a = write_report(path, tmp_path / "a", times=(t_two,)).plots[2].read_bytes()
-    b = write_report(path, tmp_path / "b", times=(t_three,)).plots[2].read_bytes()
+    a = (write_report(path, tmp_path / "a", times=(t_two,)).output_dir / "cross_sections.png").read_bytes()
+    b = (write_report(path, tmp_path / "b", times=(t_three,)).output_dir / "cross_sections.png").read_bytes()
     assert a != b
 
 
@@ -82,10 +99,179 @@ def test_report_command_line(small_archive, tmp_path, capsys):
     assert status == 0
     assert "common horizon (common) first found" in out.out
     assert (tmp_path / "cli" / "tracks.png").exists()
-    assert "report: 5/5" in out.err  # progress lines
+    assert "report: 6/6" in out.err  # progress lines
 
 
 def test_report_of_a_missing_archive_fails_with_a_reason(tmp_path, capsys):
     status = main(["report", str(tmp_path / "nope.zarr")])
     assert status == 2
     assert "no such path" in capsys.readouterr().err
+
+
+# -- pure pieces of the tracking plots and summary ------------------------------------------------
+
+
+def test_cone_path_shades_the_union_of_the_discs_along_the_path():
+    cone = cone_path([[0.0, 0.0], [1.0, 0.0]], [0.1, 0.3])
+    assert cone.contains_point((0.0, 0.09)) and cone.contains_point((1.0, 0.29))
+    assert cone.contains_point((0.5, 0.19))        # the joining quadrilateral: half-way the radius is 0.2
+    assert not cone.contains_point((0.5, 0.25))
+    assert not cone.contains_point((1.31, 0.0)) and not cone.contains_point((-0.11, 0.0))
+    # Unknown (infinite) uncertainties are not drawn.
+    assert cone_path([[0.0, 0.0], [1.0, 0.0]], [math.inf, math.inf]) is None
+
+
+def test_forecast_check_measures_the_error_against_the_later_track():
+    # A forecast made at t = 1 along +x at speed 1 (leads 1 .. 2), a track that moves at speed 1.5.
+    leads = np.linspace(1.0, 2.0, 9)
+    forecasts = {"time": np.array([1.0]), "lead_time": leads[None, :], "model": np.array([3]),
+                 "position": np.stack([leads - 1.0, 0 * leads, 0 * leads], axis=1)[None],
+                 "uncertainty": (0.3 * (leads - 1.0))[None, :]}
+    times = np.array([0.5, 1.0, 1.5, 2.0, 2.5])
+    track = {"time": times, "source": np.array([1, 1, 1, 1, 1]),
+             "position": np.stack([1.5 * (times - 1.0), 0 * times, 0 * times], axis=1)}
+    check = forecast_check(forecasts, track)
+    # Compared at t = 1.5 and 2 (inside the leads, after the forecast): errors 0.25 and 0.5, stated 0.15 and 0.3.
+    assert check.comparisons == 2 and check.max_error == pytest.approx(0.5)
+    assert check.median_error == pytest.approx(0.375) and check.with_uncertainty == 2 and check.covered == 0
+    assert check.by_model == (("orbit", 2, pytest.approx(0.375)),)
+    loose = dict(forecasts, uncertainty=(0.6 * (leads - 1.0))[None, :])
+    assert forecast_check(loose, track).covered == 2
+    assert forecast_check(forecasts, {"time": times[:2], "source": np.array([1, 1]),
+                                      "position": track["position"][:2]}) is None
+
+
+# -- the report of a real demo run ----------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def demo_report(demo_run, tmp_path_factory):
+    workdir, done = demo_run
+    assert done.returncode == 0, done.stdout[-3000:] + done.stderr[-3000:]
+    archive = re.search(r"^archive: (\S+)", done.stdout, flags=re.MULTILINE).group(1)
+    result = write_report(archive, tmp_path_factory.mktemp("demo-report"))
+    return archive, result, open_archive(archive), load_run(archive)
+
+
+def _inside(points, limits):
+    x0, x1, y0, y1 = limits
+    p = np.asarray(points, float).reshape(-1, 2)
+    return bool(np.all((x0 <= p[:, 0]) & (p[:, 0] <= x1) & (y0 <= p[:, 1]) & (p[:, 1] <= y1)))
+
+
+@pytest.mark.slow
+def test_tracks_plot_holds_every_track_and_forecast_path(demo_report):
+    archive, result, view, record = demo_report
+    width, height = _png_size(result.output_dir / "tracks.png")
+    assert width > 600 and height > 600 and (result.output_dir / "tracks.png").stat().st_size > 40_000
+    (limits,) = result.limits["tracks.png"]
+    assert set(view.track_labels) >= {"heavy", "light", "common"}
+    for label in view.track_labels:
+        assert _inside(view.track(label)["position"][:, :2], limits), label
+    # The demo sends a shift: both bodies have puncture tracks, drawn too (inside the ranges above).
+    for label in ("heavy", "light"):
+        assert len(view.track(label, source="puncture")["time"]) >= 10
+    chosen = chosen_forecasts(record)
+    assert {label for label, _ in chosen} >= {"heavy", "light"}
+    for label, row in chosen:
+        assert _inside(view.forecasts(label)["position"][row][:, :2], limits)
+    # The ranges are the tracks' (plus a margin), not the whole grid.
+    every = np.concatenate([view.track(l)["position"][:, :2] for l in view.track_labels])
+    assert (limits[1] - limits[0]) < 2.0 * float(np.max(np.ptp(every, axis=0)))
+
+
+@pytest.mark.slow
+def test_guidance_plot_draws_the_regions_of_the_chosen_updates(demo_report):
+    archive, result, view, record = demo_report
+    width, height = _png_size(result.output_dir / "guidance.png")
+    assert width > 1000 and height > 300 and (result.output_dir / "guidance.png").stat().st_size > 40_000
+    updates = guidance_updates(record)
+    assert len(updates) == len(view.guidance()["updates"]["time"])
+    picks = default_guidance_choice(updates)
+    post = [i for i, u in enumerate(updates) if u.post_merger]
+    assert picks[0] == 0 and picks[-1] == len(updates) - 1 and post and post[0] in picks and post[0] - 1 in picks
+    panels = result.limits["guidance.png"]
+    assert len(panels) == len(picks)
+    for limits, index in zip(panels, picks):
+        for body in updates[index].bodies:
+            # The sphere form's circle and the box form fit in the panel, and so do the tracks.
+            c, r = body.centre[:2], body.radius
+            assert _inside([c - r, c + r, body.lower[:2], body.upper[:2]], limits)
+        for label in view.track_labels:
+            assert _inside(view.track(label)["position"][:, :2], limits)
+
+
+@pytest.mark.slow
+def test_summary_states_the_merger_and_the_guidance(demo_report):
+    archive, result, view, record = demo_report
+    text = result.summary_path.read_text()
+    events = view.tracking_events()
+    formed = [i for i, k in enumerate(events["kind"]) if k == "common_horizon_formed"]
+    assert len(formed) == 1
+    i = formed[0]
+    assert (f"common horizon formed (server event) at t = {events['time'][i]:.4f} M, iteration "
+            f"{events['iteration'][i]}: {events['message'][i]}") in text
+    updates = view.guidance()["updates"]
+    assert f"refinement guidance (advisory: the evolution decides): {len(updates['time'])} updates" in text
+    # Merger: the first update with a single remnant region, from the archive's own columns.
+    order = np.argsort(updates["time"])
+    first_post = next(j for j in order if updates["post_merger"][j])
+    assert (f"after merger: a single region around the remnant from t = {updates['time'][first_post]:.3f} M "
+            f"(iteration {updates['iteration'][first_post]})") in text
+    # The bodies' finest regions merged before that: an update whose finest-level region covered two bodies.
+    regions, bodies = view.guidance()["regions"], view.guidance()["bodies"]
+    merged_iterations = []
+    for j in order:
+        seq = updates["event_seq"][j]
+        for b in np.flatnonzero(bodies["event_seq"] == seq):
+            level = bodies["finest_level"][b]
+            rows = np.flatnonzero((regions["event_seq"] == seq) & (regions["level"] == level))
+            if not updates["post_merger"][j] and any("+" in str(regions["bodies"][r]) and
+                                                     str(bodies["label"][b]) in str(regions["bodies"][r]).split("+")
+                                                     for r in rows):
+                merged_iterations.append(int(updates["iteration"][j]))
+    assert merged_iterations, "the demo's bodies come close enough for their finest regions to merge"
+    assert f"(first at iteration {min(merged_iterations)})" in text
+    # The final remnant region, as archived.
+    last = order[-1]
+    rows = np.flatnonzero(bodies["event_seq"] == updates["event_seq"][last])
+    assert [str(bodies["label"][r]) for r in rows] == ["common"]
+    level = int(bodies["finest_level"][rows[0]])
+    region = [r for r in np.flatnonzero((regions["event_seq"] == updates["event_seq"][last]) & (regions["level"] == level))]
+    assert len(region) == 1
+    assert (f"    common: finest level {level} (remnant), centre ({regions['centre'][region[0]][0]:+.3f}, "
+            f"{regions['centre'][region[0]][1]:+.3f}, {regions['centre'][region[0]][2]:+.3f}), "
+            f"radius {regions['radius'][region[0]]:.4f}") in text
+    # Tracks: puncture points from the shift for both bodies; forecasts checked against the later track.
+    for label in ("heavy", "light"):
+        n = len(view.track(label, source="puncture")["time"])
+        assert re.search(rf"  {label}: \d+ horizon-centroid points .*; {n} puncture points integrated from the shift", text)
+        summary = next(t for t in result.summary.tracks if t.label == label)
+        assert summary.check is not None and summary.check.comparisons >= 10
+        assert f"over {summary.check.comparisons} comparisons" in text
+    assert "warnings: 0" in text
+
+
+def test_compare_surfaces_finds_any_difference(small_archive):
+    import dataclasses
+
+    from penumbra_server.cli.report import compare_surfaces
+
+    path, expected = small_archive
+    record = load_run(path)
+    same = compare_surfaces(record, record)
+    attempts = sum(len(rows) for label, rows in expected.items() if label != "skipped_iterations")
+    found = sum(row[2] for label, rows in expected.items() if label != "skipped_iterations" for row in rows)
+    assert (same.compared, same.same_outcome, same.found_in_both, same.only_in_one) == (attempts, attempts, found, 0)
+    assert same.identical_outcomes and same.max_relative_area_difference == 0.0
+    # One area off by 1e-9 relative, one attempt missing, one outcome flipped: each is seen.
+    heavy = {k: np.array(v, copy=True) for k, v in record.surfaces["heavy"].items()}
+    heavy["area"][1] *= 1 + 1e-9
+    light = {k: np.asarray(v)[1:] for k, v in record.surfaces["light"].items()}
+    common = {k: np.array(v, copy=True) for k, v in record.surfaces["common"].items()}
+    common["found"][-1] = False
+    other = dataclasses.replace(record, surfaces={"heavy": heavy, "light": light, "common": common})
+    diff = compare_surfaces(record, other)
+    assert diff.only_in_one == 1 and diff.compared == attempts - 1 and diff.same_outcome == attempts - 2
+    assert diff.max_relative_area_difference == pytest.approx(1e-9, rel=1e-3)
+    assert not diff.identical_outcomes

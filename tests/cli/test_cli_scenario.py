@@ -3,7 +3,8 @@
 import numpy as np
 import pytest
 
-from penumbra_server.cli.demo_scenario import DemoScenario, GridLayout, InspiralTrack, brill_lindquist_w_fields
+from penumbra_server.cli.demo_scenario import (DemoScenario, GridLayout, InspiralTrack, blended_shift_fields,
+                                               brill_lindquist_w_fields)
 from penumbra_server.numerics.slices import Patch, Slice, required_fields
 from penumbra_server.numerics.spacetimes import BrillLindquist, sample_patch
 
@@ -32,14 +33,60 @@ def test_phase_follows_the_kepler_frequency_of_the_current_separation():
     assert omega == pytest.approx(np.sqrt(track.total_mass / track.separation(t) ** 3), rel=1e-8)
 
 
+def test_velocities_are_the_derivative_of_the_positions():
+    track = InspiralTrack()
+    dt = 1e-6
+    for t in (0.1, 2.0, 3.9, 4.5):  # while shrinking, and after (circular at the final separation)
+        numeric = (track.positions(t + dt) - track.positions(t - dt)) / (2 * dt)
+        np.testing.assert_allclose(track.velocities(t), numeric, atol=1e-8)
+    # The centre of mass stays at rest.
+    v = track.velocities(1.0)
+    np.testing.assert_allclose(track.masses[0] * v[0] + track.masses[1] * v[1], 0.0, atol=1e-15)
+
+
+def test_invented_shift_moves_each_puncture_with_the_track():
+    scenario = DemoScenario()
+    t = 1.3
+    positions, velocities = scenario.track.positions(t), scenario.track.velocities(t)
+    # A tiny box of 2 x 2 x 2 nodes around each puncture: the blend equals -v_i at puncture i.
+    from penumbra_server.cli.demo_scenario import BoxSpec
+
+    for p, v in zip(positions, velocities):
+        box = BoxSpec(origin=tuple(p), spacing=1e-3, shape=(2, 2, 2), level=0)
+        shift = blended_shift_fields(box, positions, velocities)
+        at_puncture = np.array([shift[name][0, 0, 0] for name in ("shift_x", "shift_y", "shift_z")])
+        np.testing.assert_allclose(at_puncture, -v, atol=1e-15)
+        # Smooth: the next node (1e-3 M away) differs by O(1e-3 |v| / d).
+        nearby = np.array([shift[name][1, 1, 1] for name in ("shift_x", "shift_y", "shift_z")])
+        assert 0 < np.linalg.norm(nearby - at_puncture) < 1e-2 * np.linalg.norm(v)
+    with pytest.raises(ValueError, match="velocities"):
+        blended_shift_fields(scenario.layout.coarse_box(), positions, velocities[:1])
+
+
+def test_outer_level_holds_the_coarse_box_on_the_coarse_lattice():
+    scenario = DemoScenario()
+    layout = scenario.layout
+    outer, coarse = layout.outer_box(), layout.coarse_box()
+    assert (outer.level, coarse.level) == (0, 1)
+    assert outer.spacing == pytest.approx(2 * coarse.spacing)
+    assert np.all(np.asarray(outer.origin) <= -layout.outer_half_width + outer.spacing)
+    assert np.all(outer.upper >= layout.outer_half_width - outer.spacing)
+    assert np.all(np.asarray(outer.origin) < np.asarray(coarse.origin)) and np.all(outer.upper > coarse.upper)
+    steps = (np.asarray(coarse.origin) - np.asarray(outer.origin)) / coarse.spacing
+    np.testing.assert_allclose(steps, np.round(steps), atol=1e-9)
+    assert GridLayout().outer_box() is None and [b.level for b in GridLayout().boxes([[0.5, 0, 0]])] == [0, 1]
+    with pytest.raises(ValueError, match="outer_half_width"):
+        GridLayout(outer_half_width=1.0)
+
+
 def test_fine_boxes_follow_the_punctures_on_the_fine_lattice_inside_the_coarse_box():
     scenario = DemoScenario()
     layout = scenario.layout
     coarse = layout.coarse_box()
     for index in range(scenario.slice_count):
         boxes = scenario.boxes_at(index)
-        assert [b.level for b in boxes] == [0, 1, 1]
-        for box, puncture in zip(boxes[1:], scenario.track.positions(scenario.time_of(index))):
+        assert [b.level for b in boxes] == [0, 1, 2, 2]
+        for box, puncture in zip(boxes[2:], scenario.track.positions(scenario.time_of(index))):
             assert box.spacing == pytest.approx(coarse.spacing / 2)
             centre = (np.asarray(box.origin) + box.upper) / 2
             assert np.max(np.abs(centre - puncture)) <= box.spacing / 2 + 1e-12
@@ -84,7 +131,9 @@ def test_sampled_slices_pass_the_shim_validation():
     assert len(outgoing.patches) == 3
     assert [p.level for p in outgoing.patches] == [0, 1, 1]
     assert outgoing.nbytes == sum(a.nbytes for p in arrays["patches"] for a in p.fields.values())
-    assert set(outgoing.patches[0].fields) == set(ps.required_fields("conformal_w"))
+    assert set(outgoing.patches[0].fields) == set(ps.required_fields("conformal_w")) | {"shift_x", "shift_y", "shift_z"}
+    assert set(ps.build_slice(**slice_arrays(scenario, 3, shift=False)).patches[0].fields) == set(
+        ps.required_fields("conformal_w"))
     # The same validation refuses a corrupted copy (so passing above means something).
     bad = dict(arrays["patches"][1].fields)
     bad["W"] = bad["W"].copy()

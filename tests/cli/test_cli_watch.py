@@ -64,6 +64,14 @@ def test_watch_once_renders_the_servers_latest_state(served_run):
         assert f"({found.centroid[0]:+.3f}, {found.centroid[1]:+.3f}, {found.centroid[2]:+.3f})" in row
         # Lag behind the evolution: newest slice received minus the time last found.
         assert f"{SCENARIO.time_of(1) - found.time:.3f} / " in row
+    # The latest guidance is shown: every body of the server's latest guidance with its finest region.
+    guidance = client.latest_guidance(run_id)
+    assert guidance is not None and guidance.iteration == SCENARIO.iteration_of(1)
+    assert f"refinement guidance (advisory: the evolution decides) from t = {guidance.time:.3f} M" in frame
+    for body in guidance.bodies:
+        row = next(l for l in lines if l.strip().startswith(body.label + " ") and " of " in l)
+        assert f"{body.finest_radius:.4f}" in row and f"({body.centre[0]:+.3f}, {body.centre[1]:+.3f}" in row
+    assert "common horizon: not formed yet" in frame  # two slices at 1.4 M separation
     # The heavy hole sits where the track puts it (centroid within a fine cell of the puncture).
     heavy = states["heavy"].latest_found
     np.testing.assert_allclose(heavy.centroid, SCENARIO.track.positions(SCENARIO.time_of(1))[0],
@@ -118,10 +126,61 @@ def test_frame_marks_misses_and_lag():
     assert "newest slice received: t = 5.000 M, iteration 50;  newest processed: t = 3.000 M, iteration 30" in frame
     assert next(l for l in lines if l.startswith("B ")).split()[1] == "waiting"
     assert "NOT FOUND (it 30, 3 misses)" in next(l for l in lines if l.startswith("common "))
-    # bodies first, in spec order, then the rest
-    order = [l.split()[0] for l in lines if l.split() and l.split()[0] in ("A", "B", "common")]
+    # bodies first, in spec order, then the rest (the surface table ends at the first blank line)
+    table = lines[lines.index("") + 1:]
+    table = table[:table.index("")]
+    order = [l.split()[0] for l in table if l.split() and l.split()[0] in ("A", "B", "common")]
     assert order == ["A", "B", "common"]
     assert "skipped iteration 25 (superseded by 30)" in frame
+    assert "common horizon: not formed yet" in frame and "refinement guidance: none yet" in frame
+
+
+def _region(level, bodies, centre, radius):
+    c = np.asarray(centre, float)
+    return ps.RefinedRegion(level=level, spacing=0.1 / 2 ** (level - 1), bodies=tuple(bodies), centre=c, radius=radius,
+                            lower=c - radius, upper=c + radius, reason="test")
+
+
+def _body(label, centre, radius, level=2):
+    c = np.asarray(centre, float)
+    return ps.BodyRefinement(label=label, centre=c, finest_level=level, radii=np.array([2 * radius, radius]),
+                             spacings=np.array([0.1, 0.05]), lower=np.array([c - 2 * radius, c - radius]),
+                             upper=np.array([c + 2 * radius, c + radius]), required_spacing=0.05, finest_spacing=0.05,
+                             margins={}, reasons={}, horizon_max_radius=0.3, horizon_min_diameter=0.6)
+
+
+def test_frame_shows_the_common_horizon_and_the_latest_guidance():
+    spec = ps.RunSpec(variable_set="conformal_w", bodies=(ps.Body("A", (1, 0, 0), 0.5), ps.Body("B", (-1, 0, 0), 0.5)))
+    info = ps.RunInfo(run_id="run-bbbbbbbbbbbb", name="synthetic", state="open", spec=spec, created_unix_s=0.0,
+                      closed_unix_s=math.nan, slices_received=9, slices_processed=9, slices_skipped=0,
+                      slices_duplicate=0, last_seq=90, archive_path="", last_received_iteration=80,
+                      last_received_time=8.0)
+    # Before merger: A's finest region is merged with B's on level 2.
+    guidance = ps.Guidance(time=7.5, iteration=75, valid_from=7.5, valid_until=9.5, post_merger=False,
+                           policy=ps.RefinementOptions(levels=2), reasons={},
+                           bodies=(_body("A", (0.5, 0, 0), 0.7), _body("B", (-0.5, 0, 0), 0.6)),
+                           levels=((_region(1, ("A", "B"), (0, 0, 0), 2.0),),
+                                   (_region(2, ("A", "B"), (0, 0, 0), 1.2),)))
+    progress = RunProgress(last_seq=90)
+    frame = render_frame(info, {}, progress, guidance=guidance, now_unix_s=0.0)
+    assert "refinement guidance (advisory: the evolution decides) from t = 7.500 M (iteration 75), valid 7.500 .. 9.500 M:" in frame
+    row_a = next(l for l in frame.splitlines() if l.strip().startswith("A ") and "merged" in l)
+    assert "2 of 2" in row_a and "(+0.500, +0.000, +0.000)" in row_a and "0.7000" in row_a and "merged A+B" in row_a
+    # After merger: one remnant region, and the formation event.
+    remnant = ps.Guidance(time=8.0, iteration=80, valid_from=8.0, valid_until=10.0, post_merger=True,
+                          policy=ps.RefinementOptions(levels=2), reasons={},
+                          bodies=(_body("common", (0.01, 0, 0), 1.1),),
+                          levels=((_region(1, ("common",), (0.01, 0, 0), 2.2),), (_region(2, ("common",), (0.01, 0, 0), 1.1),)))
+    progress.absorb(ps.Event(seq=91, run_id=info.run_id, kind="common_horizon_formed", time=7.75, iteration=77,
+                             emitted_unix_s=0.0,
+                             common=ps.CommonHorizon(label="common", time=7.75, iteration=77, body_labels=("A", "B"),
+                                                     separation=0.74, irreducible_mass=0.99, area=49.3)))
+    frame = render_frame(info, {}, progress, guidance=remnant, now_unix_s=0.0)
+    assert ("common horizon: formed at t = 7.750 M (iteration 77), surface 'common', bodies 0.740 M apart, "
+            "M_irr 0.9900 M") in frame
+    assert ", after merger:" in frame
+    row = next(l for l in frame.splitlines() if l.strip().startswith("common ") and "remnant" in l)
+    assert "1.1000" in row and "(+0.010, +0.000, +0.000)" in row
 
 
 def test_live_watch_redraws_until_the_run_closes(served_run):
@@ -142,3 +201,45 @@ def test_live_watch_redraws_until_the_run_closes(served_run):
     assert len(frames) >= 2
     assert "state closed" in frames[-1] and "received 1, processed 1" in frames[-1]
     assert "state open" in frames[0]
+
+
+@pytest.mark.slow
+def test_watch_once_on_a_finished_demo_run_shows_the_merger_and_the_remnant_guidance(demo_run, tmp_path):
+    """A server started on (a copy of) the demo's archive serves the closed run from the archive:
+    the frame states when the common horizon formed and the latest, post-merger guidance."""
+    import re
+    import shutil
+
+    from penumbra_server.archive import open_archive
+    from penumbra_server.cli.watch import find_common_formed
+
+    workdir, done = demo_run
+    assert done.returncode == 0, done.stdout[-3000:]
+    archive = re.search(r"^archive: (\S+)", done.stdout, flags=re.MULTILINE).group(1)
+    root = tmp_path / "archive"
+    shutil.copytree(workdir / "archive", root)
+    view = open_archive(archive)
+    events = view.tracking_events()
+    formed = [i for i, k in enumerate(events["kind"]) if k == "common_horizon_formed"][0]
+    with BackgroundServer("127.0.0.1:0", archive_root=root, workers=1) as bg:
+        client = ps.connect(bg.address)
+        try:
+            info = client.get_run(view.run_id)
+            assert info.state == "closed"
+            common = find_common_formed(client, view.run_id, int(info.last_seq))
+            assert (common.time, common.iteration) == (events["time"][formed], events["iteration"][formed])
+            out = io.StringIO()
+            assert watch_run(client, view.run_id, once=True, stream=out, server=bg.address) == 0
+            guidance = client.latest_guidance(view.run_id)
+        finally:
+            client.close()
+    frame = out.getvalue()
+    assert f"common horizon: formed at t = {common.time:.3f} M (iteration {common.iteration}), surface 'common'" in frame
+    updates = view.guidance()["updates"]
+    last = int(np.argmax(updates["time"]))
+    assert guidance is not None and guidance.iteration == int(updates["iteration"][last]) and guidance.post_merger
+    assert f"from t = {updates['time'][last]:.3f} M (iteration {updates['iteration'][last]})" in frame
+    assert ", after merger:" in frame
+    body = guidance.body("common")
+    row = next(l for l in frame.splitlines() if l.strip().startswith("common ") and l.rstrip().endswith("remnant"))
+    assert f"{body.finest_radius:.4f}" in row and f"{body.finest_spacing:.5f}" in row

@@ -2,10 +2,13 @@
 
 1. start `penumbra serve` as a subprocess on a free loopback port (archive under --workdir);
 2. start the pretend evolution (:mod:`.demo_evolution`) as another process: it talks to the
-   server only through the shim;
+   server only through the shim, sends its slices cropped to the server's data windows and
+   (by default) every slice whole to a control run as well;
 3. follow the run's events from here and print progress;
-4. when the evolution has closed its run, write the report (:mod:`.report`) and print a
-   summary: when the common horizon first appeared, final masses, slices skipped, paths.
+4. when the evolution has closed its runs, write the report (:mod:`.report`) and print a
+   summary: when the common horizon first appeared, final masses, slices skipped, the bytes
+   sent cropped against whole, whether the control run found the same surfaces, the latest
+   refinement guidance (advisory), paths.
 
 The data are invented (see :mod:`.demo_scenario` and the README): Brill-Lindquist snapshots
 along a made-up shrinking orbit, not an evolution of Einstein's equations.
@@ -23,7 +26,7 @@ from pathlib import Path
 
 from penumbra_server.cli.progress import Progress
 
-__all__ = ["run_demo", "start_server_process", "stop_process"]
+__all__ = ["run_demo", "start_server_process", "stop_process", "byte_lines", "comparison_line", "guidance_lines"]
 
 
 def _child_env() -> dict[str, str]:
@@ -99,6 +102,12 @@ class _EventFollower:
         try:
             for event in self.client.watch(self.run_id, from_seq=1):
                 kind = event.kind
+                if kind == "common_horizon_formed" and event.common is not None:
+                    c = event.common
+                    self.progress.show(f"server: common horizon {c.label!r} formed at t = {c.time:.2f} M "
+                                       f"(bodies {c.separation:.3f} M apart, M_irr {c.irreducible_mass:.4f} M)")
+                elif kind == "warning":
+                    self.progress.show(f"server warning ({event.state}, {event.label}): {event.reason}")
                 if kind in ("surface_found", "surface_not_found") and event.surface is not None:
                     s = event.surface
                     self.latest[s.label] = s
@@ -120,14 +129,71 @@ class _EventFollower:
             self.error = err
 
 
+def _mib(n: float) -> str:
+    return f"{n / 2**20:.1f} MiB"
+
+
+def byte_lines(stats: dict) -> list[str]:
+    """What the evolution's stats file says about cropping, as summary lines."""
+    s = stats.get("stats") or {}
+    sent, whole = int(s.get("bytes_sent", 0)), int(s.get("bytes_uncropped", 0))
+    if not stats.get("crop"):
+        return [f"data windows: slices sent whole (--no-crop): {_mib(sent)} in {s.get('sent', 0)} slices"]
+    acks = [a for a in stats.get("acks", ()) if a.get("accepted")]
+    cropped = [a for a in acks if a.get("cropped")]
+    lines = [f"data windows: {len(cropped)} of {len(acks)} slices sent cropped to the server's windows "
+             f"({len(acks) - len(cropped)} whole: no valid windows yet when sent); bytes sent {_mib(sent)} of "
+             f"{_mib(whole)} whole: ratio {sent / whole:.3f}" if whole else "data windows: nothing sent"]
+    if cropped:
+        mean_sent = sum(a["bytes_sent"] for a in cropped) / len(cropped)
+        mean_whole = sum(a["bytes_whole"] for a in cropped) / len(cropped)
+        lines.append(f"  per cropped slice: {_mib(mean_sent)} sent against {_mib(mean_whole)} whole on average "
+                     f"(ratio {mean_sent / mean_whole:.3f}; smallest {min(a['bytes_sent'] / a['bytes_whole'] for a in cropped):.3f}, "
+                     f"largest {max(a['bytes_sent'] / a['bytes_whole'] for a in cropped):.3f})")
+    return lines
+
+
+def comparison_line(comparison, control_run_id: str) -> str:
+    """The control run's verdict (a :class:`~penumbra_server.cli.report.SurfaceComparison`)."""
+    c = comparison
+    verdict = ("the same surfaces were found" if c.identical_outcomes and c.only_in_one == 0
+               and not c.max_relative_area_difference > 1e-10 else "the surfaces DIFFER")
+    return (f"same surfaces: the control run {control_run_id} got every slice whole; {verdict}: {c.compared} "
+            f"attempts compared by iteration and label, {c.same_outcome} with the same outcome, {c.found_in_both} "
+            f"found in both (largest relative area difference {c.max_relative_area_difference:.1e}, largest "
+            f"coefficient difference {c.max_coefficient_difference:.1e} M)"
+            + (f", {c.only_in_one} attempts in one run only (slices skipped by one of them)" if c.only_in_one else ""))
+
+
+def guidance_lines(summary) -> list[str]:
+    """The latest recommended finest regions, per body or the remnant, from a report summary."""
+    g = summary.guidance
+    if g is None:
+        return ["refinement guidance: none received"]
+    f = g.final
+    lines = [f"refinement guidance (advisory: the evolution decides; this pretend evolution only logs it), latest "
+             f"from t = {f.time:.2f} M, valid {f.valid_from:.2f} .. {f.valid_until:.2f} M"
+             + (", after merger: one region around the remnant" if f.post_merger else "") + ":"]
+    for b in f.bodies:
+        c = b.centre
+        lines.append(f"  {b.label}: finest level {b.finest_level} of {f.levels}, centre ({c[0]:+.3f}, {c[1]:+.3f}, "
+                     f"{c[2]:+.3f}) M, radius {b.radius:.3f} M, spacing {b.spacing:.4f} M"
+                     + (f" (merged region {'+'.join(b.region_bodies)})" if b.merged and not f.post_merger else ""))
+    return lines
+
+
 def run_demo(*, workdir: Path, workers: int = 2, seconds_per_slice: float | None = None,
-             max_slices: int | None = None, lmax: int | None = None, out=sys.stdout) -> int:
+             max_slices: int | None = None, lmax: int | None = None, crop: bool = True, control: bool = True,
+             regrid_interval: float | None = None, out=sys.stdout) -> int:
     """Run the whole demo; return the exit status (0 when a common horizon was found and reported)."""
+    import json
+
     import penumbra_shim as ps
 
-    from penumbra_server.cli.demo_evolution import DEFAULT_LMAX, DEFAULT_SECONDS_PER_SLICE
+    from penumbra_server.cli.demo_evolution import (DEFAULT_LMAX, DEFAULT_SECONDS_PER_SLICE,
+                                                    DEFAULT_SECONDS_PER_SLICE_WITH_CONTROL)
     from penumbra_server.cli.demo_scenario import DemoScenario
-    from penumbra_server.cli.report import summary_text, write_report
+    from penumbra_server.cli.report import compare_surfaces, load_run, summary_text, write_report
 
     started = time.monotonic()
     workdir = Path(workdir).resolve()
@@ -135,8 +201,13 @@ def run_demo(*, workdir: Path, workers: int = 2, seconds_per_slice: float | None
     workdir.mkdir(parents=True, exist_ok=True)
     scenario = DemoScenario()
     total = scenario.slice_count if max_slices is None else min(max_slices, scenario.slice_count)
-    print(f"penumbra demo: invented data (Brill-Lindquist snapshots along a made-up orbit), up to {total} slices; "
-          f"output in {workdir}", file=out, flush=True)
+    pace = seconds_per_slice
+    if pace is None:
+        pace = DEFAULT_SECONDS_PER_SLICE_WITH_CONTROL if control else DEFAULT_SECONDS_PER_SLICE
+    print(f"penumbra demo: invented data (Brill-Lindquist snapshots along a made-up orbit), up to {total} slices"
+          f"{', sent cropped to the data windows' if crop else ', sent whole'}"
+          f"{' and whole to a control run' if control else ''}, one every {pace:g} s; output in {workdir}",
+          file=out, flush=True)
 
     server, address = start_server_process(archive_root, workers=workers, log_path=workdir / "server.log",
                                            ready_file=workdir / "server-address")
@@ -145,13 +216,21 @@ def run_demo(*, workdir: Path, workers: int = 2, seconds_per_slice: float | None
     client = None
     try:
         run_id_file = workdir / "run-id"
+        stats_file = workdir / "evolution-stats.json"
         run_id_file.unlink(missing_ok=True)
+        stats_file.unlink(missing_ok=True)
         command = [sys.executable, "-m", "penumbra_server.cli.demo_evolution", "--server", address,
-                   "--run-id-file", str(run_id_file),
-                   "--seconds-per-slice", str(DEFAULT_SECONDS_PER_SLICE if seconds_per_slice is None else seconds_per_slice),
+                   "--run-id-file", str(run_id_file), "--stats-file", str(stats_file),
+                   "--seconds-per-slice", str(pace),
                    "--lmax", str(DEFAULT_LMAX if lmax is None else lmax)]
         if max_slices is not None:
             command += ["--max-slices", str(max_slices)]
+        if not crop:
+            command.append("--no-crop")
+        if control:
+            command.append("--control")
+        if regrid_interval is not None:
+            command += ["--regrid-interval", str(regrid_interval)]
         with open(workdir / "evolution.log", "w") as evolution_log:
             evolution = subprocess.Popen(command, stdout=evolution_log, stderr=subprocess.STDOUT, env=_child_env())
         run_id = _wait_for_file(run_id_file, evolution, 60.0, "the evolution")
@@ -172,9 +251,10 @@ def run_demo(*, workdir: Path, workers: int = 2, seconds_per_slice: float | None
             return 1
         if follower.error is not None:
             print(f"penumbra demo: following events failed: {follower.error!r}", file=out, flush=True)
+        stats = json.loads(stats_file.read_text())
 
         archive_path = Path(client.get_run(run_id).archive_path or archive_root / f"{run_id}.zarr")
-        report = write_report(archive_path, workdir / "report", progress=Progress("report", 5, stream=out))
+        report = write_report(archive_path, workdir / "report", progress=Progress("report", 6, stream=out))
         summary = report.summary
         print("", file=out)
         print(summary_text(summary), file=out, end="")
@@ -192,7 +272,19 @@ def run_demo(*, workdir: Path, workers: int = 2, seconds_per_slice: float | None
         print(f"slices skipped: {summary.slices_skipped} of {summary.slices_total}"
               + (f" (iterations {', '.join(map(str, summary.skipped_iterations))})" if summary.skipped_iterations else ""),
               file=out)
-        print(f"archive: {archive_path}", file=out)
+        for line in byte_lines(stats):
+            print(line, file=out)
+        control_id = stats.get("control_run_id")
+        control_path = None
+        if control_id:
+            control_path = Path(client.get_run(control_id).archive_path or archive_root / f"{control_id}.zarr")
+            print(comparison_line(compare_surfaces(load_run(archive_path), load_run(control_path)), control_id),
+                  file=out)
+        else:
+            print("same surfaces: not checked in this run (no control run)", file=out)
+        for line in guidance_lines(summary):
+            print(line, file=out)
+        print(f"archive: {archive_path}" + (f"  (control: {control_path})" if control_path else ""), file=out)
         print("plots: " + ", ".join(str(p) for p in report.plots), file=out)
         print(f"summary: {report.summary_path}", file=out)
         print(f"demo took {time.monotonic() - started:.1f} s", file=out, flush=True)

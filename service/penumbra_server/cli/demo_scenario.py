@@ -12,15 +12,24 @@ Brill & Lindquist, Phys. Rev. 131, 471 (1963)) whose two punctures sit on a trac
 
 For two equal bare masses a common apparent horizon exists below a coordinate separation of
 about 0.766 M (Brill & Lindquist 1963; Cadez 1974; Bishop 1982; values from memory, see
-/work/shared/references.md item 7); the track ends well below that, so a common horizon must
+references.md item 7 of the shared design notes); the track ends well below that, so a common horizon must
 appear on the way even though unequal masses shift the threshold somewhat.
 
-The grid mimics two refinement levels that follow the holes: one coarse box around the origin
-and, at half its spacing, one fine box around each puncture, snapped to the fine lattice as a
-mesh-refinement code would place it. The lattice is offset by a quarter of a coarse cell in
+The grid mimics the mesh refinement of a run: an outer box at twice the coarse spacing reaching
+3 M from the origin (a run's grid extends much further; this one is just large enough that a
+crop to the server's data windows has something to leave out), one coarse box around the
+origin and, at half its spacing, one fine box around each puncture, snapped to the fine lattice
+as a mesh-refinement code would place it. The lattice is offset by a quarter of a coarse cell in
 every direction, so the orbital plane z = 0 lies half-way between fine nodes and no node ever
 sits on a puncture. Fields are sent in the conformal ``W`` variable set (W = psi^-2 stays finite
 at a puncture where the physical metric does not).
+
+Brill-Lindquist data fix no shift. So that the server can integrate puncture tracks
+(d x^i / dt = -beta^i at a puncture), the demo also sends an invented shift: the blend
+beta = -(r_2^2 v_1 + r_1^2 v_2) / (r_1^2 + r_2^2) of the punctures' track velocities v_i, with
+r_i the coordinate distance to puncture i. It is smooth, and equals -v_i exactly at puncture i,
+so the integrated puncture moves along the invented track; away from the punctures it means
+nothing.
 
 Everything here is a pure function of its arguments; :mod:`penumbra_server.cli.demo_evolution`
 turns it into a stream of slices sent through the shim.
@@ -38,6 +47,7 @@ __all__ = [
     "BoxSpec",
     "DemoScenario",
     "brill_lindquist_w_fields",
+    "blended_shift_fields",
 ]
 
 
@@ -103,6 +113,21 @@ class InspiralTrack:
         direction = np.array([np.cos(phi), np.sin(phi), 0.0])
         return np.stack([(m2 / self.total_mass) * d * direction, -(m1 / self.total_mass) * d * direction])
 
+    def velocities(self, time: float) -> np.ndarray:
+        """(2, 3) coordinate velocities d x_i / dt of the punctures (dimensionless), the exact
+        derivative of :meth:`positions`."""
+        m1, m2 = self.masses
+        t = float(time)
+        d = float(self.separation(t))
+        phi = float(self.phase(t))
+        shrinking = 0.0 <= t < self.duration
+        d_dot = -self.shrink_speed if shrinking else 0.0
+        omega = float(np.sqrt(self.total_mass / d ** 3))
+        direction = np.array([np.cos(phi), np.sin(phi), 0.0])
+        normal = np.array([-np.sin(phi), np.cos(phi), 0.0])
+        relative = d_dot * direction + d * omega * normal
+        return np.stack([(m2 / self.total_mass) * relative, -(m1 / self.total_mass) * relative])
+
 
 @dataclass(frozen=True)
 class BoxSpec:
@@ -123,17 +148,22 @@ class BoxSpec:
 
 @dataclass(frozen=True)
 class GridLayout:
-    """Two refinement levels: a coarse box about the origin, a fine box around each puncture.
+    """Refinement levels: an optional outer box, a coarse box about the origin, a fine box around
+    each puncture.
 
     Attributes:
         coarse_nodes: nodes per axis of the coarse box.
         coarse_half_width: the coarse box spans about [-w, w] on each axis, units of M.
         fine_nodes: nodes per axis of each fine box (spacing half the coarse one).
+        outer_half_width: 0 for no outer level; else an outer box at twice the coarse spacing
+            spanning about [-w, w] on each axis (units of M, more than ``coarse_half_width``),
+            on the coarse lattice, as level 0 (the coarse and fine boxes then are levels 1 and 2).
     """
 
     coarse_nodes: int = 48
     coarse_half_width: float = 1.5
     fine_nodes: int = 32
+    outer_half_width: float = 0.0
 
     def __post_init__(self) -> None:
         if self.coarse_nodes < 8 or self.fine_nodes < 8:
@@ -143,6 +173,19 @@ class GridLayout:
             )
         if not self.coarse_half_width > 0:
             raise ValueError(f"coarse_half_width: expected a positive length, got {self.coarse_half_width!r}")
+        if not (self.outer_half_width == 0 or self.outer_half_width > self.coarse_half_width):
+            raise ValueError(
+                f"outer_half_width: expected 0 (no outer level) or a length above coarse_half_width "
+                f"{self.coarse_half_width!r}, got {self.outer_half_width!r}"
+            )
+
+    @property
+    def has_outer(self) -> bool:
+        return self.outer_half_width > 0
+
+    @property
+    def coarse_level(self) -> int:
+        return 1 if self.has_outer else 0
 
     @property
     def coarse_spacing(self) -> float:
@@ -161,7 +204,17 @@ class GridLayout:
     def coarse_box(self) -> BoxSpec:
         o = self.coarse_origin
         n = self.coarse_nodes
-        return BoxSpec(origin=(o, o, o), spacing=self.coarse_spacing, shape=(n, n, n), level=0)
+        return BoxSpec(origin=(o, o, o), spacing=self.coarse_spacing, shape=(n, n, n), level=self.coarse_level)
+
+    def outer_box(self) -> BoxSpec | None:
+        """The outer level (None without one): spacing 2 x coarse, its nodes on coarse nodes."""
+        if not self.has_outer:
+            return None
+        h = 2.0 * self.coarse_spacing
+        steps = int(np.ceil((self.outer_half_width + self.coarse_origin) / h - 1e-9))
+        o = self.coarse_origin - steps * h
+        n = int(np.floor((self.outer_half_width - o) / h + 1e-9)) + 1
+        return BoxSpec(origin=(o, o, o), spacing=h, shape=(n, n, n), level=0)
 
     def fine_box(self, centre) -> BoxSpec:
         """The fine box centred as nearly as the fine lattice allows on ``centre``, kept inside the coarse box."""
@@ -173,11 +226,13 @@ class GridLayout:
         wanted = centre - 0.5 * (n - 1) * hf
         snapped = lo_c + np.round((wanted - lo_c) / hf) * hf
         snapped = np.clip(snapped, lo_c, hi_c - (n - 1) * hf)
-        return BoxSpec(origin=tuple(float(v) for v in snapped), spacing=hf, shape=(n, n, n), level=1)
+        return BoxSpec(origin=tuple(float(v) for v in snapped), spacing=hf, shape=(n, n, n),
+                       level=self.coarse_level + 1)
 
     def boxes(self, punctures) -> list[BoxSpec]:
-        """Coarse box first, then one fine box per puncture (``punctures``: (n, 3))."""
-        return [self.coarse_box()] + [self.fine_box(p) for p in np.asarray(punctures, dtype=float)]
+        """Outer box (if any), coarse box, then one fine box per puncture (``punctures``: (n, 3))."""
+        outer = [] if self.outer_box() is None else [self.outer_box()]
+        return outer + [self.coarse_box()] + [self.fine_box(p) for p in np.asarray(punctures, dtype=float)]
 
 
 def brill_lindquist_w_fields(box: BoxSpec, masses, positions) -> dict[str, np.ndarray]:
@@ -201,20 +256,48 @@ def brill_lindquist_w_fields(box: BoxSpec, masses, positions) -> dict[str, np.nd
     return fields
 
 
+def blended_shift_fields(box: BoxSpec, positions, velocities) -> dict[str, np.ndarray]:
+    """The demo's invented shift on a box: ``shift_x/y/z`` arrays indexed [i, j, k].
+
+    beta = -sum_i w_i v_i with weights w_i = prod_{j != i} r_j^2 / sum_k prod_{j != k} r_j^2
+    (r_j: coordinate distance to puncture j), i.e. for two punctures
+    beta = -(r_2^2 v_1 + r_1^2 v_2) / (r_1^2 + r_2^2). A ratio of polynomials in x with a
+    non-vanishing denominator, so smooth; beta = -v_i at puncture i exactly (d x / dt = -beta
+    moves the puncture with the track). ``positions``, ``velocities``: (n, 3), M and
+    dimensionless.
+    """
+    positions = np.asarray(positions, dtype=float)
+    velocities = np.asarray(velocities, dtype=float)
+    if positions.ndim != 2 or positions.shape[1] != 3 or velocities.shape != positions.shape:
+        raise ValueError(f"positions, velocities: expected two (n, 3) arrays, got {positions.shape} and {velocities.shape}")
+    x, y, z = np.meshgrid(*box.node_axes(), indexing="ij")
+    r2 = [(x - p[0]) ** 2 + (y - p[1]) ** 2 + (z - p[2]) ** 2 for p in positions]
+    weights = []
+    for i in range(len(positions)):
+        w = np.ones(box.shape)
+        for j, r in enumerate(r2):
+            if j != i:
+                w = w * r
+        weights.append(w)
+    total = sum(weights)
+    return {name: -sum(w * v[axis] for w, v in zip(weights, velocities)) / total
+            for axis, name in enumerate(("shift_x", "shift_y", "shift_z"))}
+
+
 @dataclass(frozen=True)
 class DemoScenario:
     """The whole invented run: track, grids and output cadence.
 
     Attributes:
         track: puncture positions over time.
-        layout: the two refinement levels.
+        layout: the refinement levels (by default with an outer level to 3 M).
         slice_interval: coordinate time between slices sent, units of M.
         iterations_per_slice: evolution iterations between slices (iteration numbers only).
         slices_after_common: slices still sent after the server first reports a common horizon.
     """
 
     track: InspiralTrack = InspiralTrack()
-    layout: GridLayout = GridLayout()
+    layout: GridLayout = GridLayout(outer_half_width=3.0)
     slice_interval: float = 0.2
     iterations_per_slice: int = 16
     slices_after_common: int = 3

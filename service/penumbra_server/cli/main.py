@@ -1,7 +1,7 @@
 """The `penumbra` command: serve, demo, runs, watch, report.
 
     penumbra serve  [--listen HOST:PORT] [--archive-root DIR] [--workers N]
-    penumbra demo   [--workdir DIR]
+    penumbra demo   [--workdir DIR] [--no-crop] [--no-control]
     penumbra runs   [--server HOST:PORT]
     penumbra watch  RUN_ID [--server HOST:PORT] [--once] [--interval S]
     penumbra report ARCHIVE [--output DIR] [--times T,T,...] [--plane xy|xz|yz]
@@ -99,10 +99,17 @@ def build_parser() -> argparse.ArgumentParser:
                    help="directory for the archive, plots and logs (default ./penumbra-demo-output)")
     p.add_argument("--workers", type=_positive_int, default=2, help="finder worker processes (default 2)")
     p.add_argument("--seconds-per-slice", type=float, default=None,
-                   help="pretend evolution cost between slices, s (default: the scenario's)")
+                   help="pretend evolution cost between slices, s (default 3.5 with the control run, 2.5 without)")
     p.add_argument("--max-slices", type=_positive_int, default=None,
                    help="stop the evolution after this many slices (default: the whole track)")
     p.add_argument("--lmax", type=_positive_int, default=None, help="finder l_max (default: the demo's)")
+    p.add_argument("--regrid-interval", type=_positive_float, default=None,
+                   help="regrid interval the evolution states in its run spec, M (default: two slice intervals)")
+    p.add_argument("--no-crop", dest="crop", action="store_false",
+                   help="send slices whole instead of cropped to the server's data windows")
+    p.add_argument("--no-control", dest="control", action="store_false",
+                   help="skip the control run that gets every slice whole (halves the server's work; "
+                        "the summary then cannot say whether cropping changed the surfaces)")
     p.set_defaults(handler=_cmd_demo)
 
     p = sub.add_parser("runs", help="list runs on a server")
@@ -223,7 +230,8 @@ def _cmd_demo(args) -> int:
     from penumbra_server.cli.demo import run_demo
 
     return run_demo(workdir=args.workdir, workers=args.workers, seconds_per_slice=args.seconds_per_slice,
-                    max_slices=args.max_slices, lmax=args.lmax)
+                    max_slices=args.max_slices, lmax=args.lmax, crop=args.crop, control=args.control,
+                    regrid_interval=args.regrid_interval)
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -6,6 +6,11 @@ progress of the run read from its event stream (newest slice processed, recent s
 loop redraws it with plain ANSI codes on a terminal and prints frames one after another (no
 escape codes) when the output is not a terminal, so it also works in logs and over ``ssh -T``.
 
+Below the table: when the common horizon formed (the server's ``common_horizon_formed`` event,
+once per run) and the latest refinement guidance (``GetLatestGuidance``): per body, or for the
+remnant after merger, the centre, radius and spacing of its recommended finest region. The
+guidance is advisory; the frame says so.
+
 "Lag" has two parts, both shown: how far the latest found surface trails the evolution, i.e.
 the newest slice the server has received (coordinate time, M; the newest slice processed when
 the server does not report what it received), and the wall-clock latency from a slice's arrival
@@ -21,7 +26,8 @@ import time
 from dataclasses import dataclass, field
 from typing import Mapping, TextIO
 
-__all__ = ["RunProgress", "render_frame", "surface_rows", "read_progress", "watch_run"]
+__all__ = ["RunProgress", "render_frame", "surface_rows", "guidance_rows", "read_progress", "find_common_formed",
+           "watch_run"]
 
 _CLEAR = "\x1b[H\x1b[2J"
 _NAN = float("nan")
@@ -36,11 +42,21 @@ class RunProgress:
     last_latency_s: float = _NAN
     last_seq: int = 0
     skips: list[str] = field(default_factory=list)
+    #: The run's ``common_horizon_formed`` payload (a ``penumbra_shim.CommonHorizon``), once seen.
+    common_formed: object | None = None
+    warnings: list[str] = field(default_factory=list)
 
     def absorb(self, event) -> None:
         """Update from one ``penumbra_shim.Event``."""
         self.last_seq = max(self.last_seq, int(getattr(event, "seq", 0)))
         kind = getattr(event, "kind", "")
+        if kind == "common_horizon_formed" and getattr(event, "common", None) is not None:
+            if self.common_formed is None:
+                self.common_formed = event.common
+        elif kind == "warning":
+            self.warnings.append(f"warning at iteration {getattr(event, 'iteration', -1)} "
+                                 f"({getattr(event, 'label', '')}): {str(getattr(event, 'reason', ''))[:160]}")
+            del self.warnings[:-3]
         if kind in ("slice_processed", "slice_skipped"):
             it = int(getattr(event, "iteration", -1))
             if it > self.newest_iteration and kind == "slice_processed":
@@ -114,14 +130,59 @@ def surface_rows(states: Mapping[str, object], *, body_labels=(), newest_time: f
     return rows
 
 
+GUIDANCE_COLUMNS = ("guidance for", "finest level", "centre (x, y, z) [M]", "radius [M]", "spacing [M]", "region")
+
+
+def guidance_rows(guidance) -> list[list[str]]:
+    """Table rows of a ``penumbra_shim.Guidance``: one per body (the remnant after merger) with
+    its recommended finest region; the region column names the bodies a merged region covers."""
+    levels = len(getattr(guidance, "levels", ()) or ())
+    rows = []
+    for body in getattr(guidance, "bodies", ()):
+        try:
+            region = guidance.region_of(body.label)
+            covered = tuple(region.bodies)
+        except (KeyError, ValueError):
+            region, covered = None, (body.label,)
+        if getattr(guidance, "post_merger", False):
+            where = "remnant"
+        elif len(covered) > 1:
+            where = "merged " + "+".join(covered) + (f" (radius {_num(region.radius, '.4f')})" if region is not None else "")
+        else:
+            where = "own"
+        rows.append([body.label, f"{body.finest_level} of {levels}" if levels else str(body.finest_level),
+                     _vec(body.centre), _num(body.finest_radius, ".4f"), _num(body.finest_spacing, ".5f"), where])
+    return rows
+
+
+def _table(columns, rows) -> list[str]:
+    widths = [max([len(columns[i])] + [len(r[i]) for r in rows]) for i in range(len(columns))]
+    lines = ["  ".join(c.ljust(w) for c, w in zip(columns, widths)).rstrip(), "  ".join("-" * w for w in widths)]
+    lines.extend("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows)
+    return lines
+
+
+def _common_line(progress: RunProgress, states: Mapping[str, object], body_labels) -> str:
+    c = progress.common_formed
+    if c is not None:
+        return (f"common horizon: formed at t = {c.time:.3f} M (iteration {c.iteration}), surface {c.label!r}, "
+                f"bodies {c.separation:.3f} M apart, M_irr {c.irreducible_mass:.4f} M")
+    found = [l for l, s in states.items() if l not in body_labels and getattr(s, "latest_found", None) is not None]
+    if found:  # formed, but the event lies before the part of the log this view read
+        return f"common horizon: found ({', '.join(found)}); time of formation not in the events read"
+    return "common horizon: not formed yet"
+
+
 def render_frame(info, states: Mapping[str, object], progress: RunProgress | None = None, *,
-                 now_unix_s: float | None = None, server: str = "") -> str:
+                 guidance=None, now_unix_s: float | None = None, server: str = "") -> str:
     """One screenful describing a run.
 
     Args:
         info: the shim's ``RunInfo``.
         states: label -> ``SurfaceState`` (the server's latest state per tracked surface).
-        progress: what the event stream said (newest processed slice, recent skips).
+        progress: what the event stream said (newest processed slice, recent skips, the common
+            horizon's formation).
+        guidance: the latest ``penumbra_shim.Guidance`` (None: none yet).
         now_unix_s: wall clock for the header (default: now).
         server: address shown in the header.
     """
@@ -155,16 +216,23 @@ def render_frame(info, states: Mapping[str, object], progress: RunProgress | Non
     rows = surface_rows(states, body_labels=body_labels, newest_time=evolution_time)
     if not rows:
         rows = [[label, "waiting", "-", "-", "-", "-", "-", "-"] for label in body_labels]
-    widths = [max([len(COLUMNS[i])] + [len(r[i]) for r in rows]) for i in range(len(COLUMNS))]
-    lines.append("  ".join(c.ljust(w) for c, w in zip(COLUMNS, widths)).rstrip())
-    lines.append("  ".join("-" * w for w in widths))
-    lines.extend("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows)
-    if progress.skips:
+    lines.extend(_table(COLUMNS, rows))
+    lines.append("")
+    lines.append(_common_line(progress, states, body_labels))
+    if guidance is None:
+        lines.append("refinement guidance: none yet")
+    else:
+        lines.append(f"refinement guidance (advisory: the evolution decides) from t = {guidance.time:.3f} M "
+                     f"(iteration {guidance.iteration}), valid {guidance.valid_from:.3f} .. {guidance.valid_until:.3f} M"
+                     + (", after merger" if guidance.post_merger else "") + ":")
+        lines.extend("  " + line for line in _table(GUIDANCE_COLUMNS, guidance_rows(guidance)))
+    if progress.skips or progress.warnings:
         lines.append("")
         lines.extend(progress.skips[-5:])
+        lines.extend(progress.warnings[-3:])
     lines.append("")
     lines.append("lag: newest slice received minus the time the surface was last found [M] / "
-                 "arrival-to-archived wall time [s]. Results are advisory.")
+                 "arrival-to-archived wall time [s]. Results and guidance are advisory.")
     return "\n".join(lines) + "\n"
 
 
@@ -184,6 +252,34 @@ def read_progress(client, run_id: str, last_seq: int, *, window: int = 512, time
     return progress
 
 
+def find_common_formed(client, run_id: str, last_seq: int, *, timeout_s: float = 5.0):
+    """Scan the run's events from the first up to ``last_seq`` for ``common_horizon_formed``;
+    its ``CommonHorizon`` payload, or None (not formed, or not reached within ``timeout_s``)."""
+    if last_seq < 1:
+        return None
+    stream = client.watch(run_id, from_seq=1, timeout_s=timeout_s)
+    try:
+        for event in stream:
+            if event.kind == "common_horizon_formed" and event.common is not None:
+                return event.common
+            if event.seq >= last_seq:
+                break
+    finally:
+        stream.cancel()
+    return None
+
+
+def _latest_guidance(client, run_id: str):
+    import penumbra_shim as ps
+
+    try:
+        return client.latest_guidance(run_id)
+    except ps.RunNotFoundError:
+        raise
+    except ps.PenumbraError:  # an older server without GetLatestGuidance: show the rest
+        return None
+
+
 def watch_run(client, run_id: str, *, once: bool = False, interval_s: float = 1.0, stream: TextIO | None = None,
               server: str = "", max_frames: int | None = None) -> int:
     """Draw frames for ``run_id`` until the run is closed (or once). Returns an exit status.
@@ -197,8 +293,13 @@ def watch_run(client, run_id: str, *, once: bool = False, interval_s: float = 1.
     tty = bool(getattr(stream, "isatty", lambda: False)())
     info = client.get_run(run_id)
     progress = read_progress(client, run_id, int(info.last_seq))
+    states = client.latest_surfaces(run_id)
+    body_labels = {getattr(b, "label", "") for b in (getattr(info.spec, "bodies", ()) or ())}
+    if progress.common_formed is None and any(l not in body_labels and getattr(s, "latest_found", None) is not None
+                                              for l, s in states.items()):
+        progress.common_formed = find_common_formed(client, run_id, progress.last_seq)
     if once:
-        stream.write(render_frame(info, client.latest_surfaces(run_id), progress, server=server))
+        stream.write(render_frame(info, states, progress, guidance=_latest_guidance(client, run_id), server=server))
         stream.flush()
         return 0
 
@@ -219,7 +320,8 @@ def watch_run(client, run_id: str, *, once: bool = False, interval_s: float = 1.
         while True:
             try:
                 info = client.get_run(run_id)
-                frame = render_frame(info, client.latest_surfaces(run_id), progress, server=server)
+                frame = render_frame(info, client.latest_surfaces(run_id), progress,
+                                     guidance=_latest_guidance(client, run_id), server=server)
                 unreachable_since = None
             except ps.RunNotFoundError:
                 raise

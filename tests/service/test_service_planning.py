@@ -183,3 +183,17 @@ def test_not_searched_reason_mirrors_the_proto():
     from penumbra_server.server import jobs
 
     assert jobs.REASON_NOT_SEARCHED == pb.SurfaceNotFound.REASON_NOT_SEARCHED
+
+
+def test_a_common_plan_refuses_a_surface_that_misses_a_body():
+    # A "common" surface must hold both bodies inside; a body's own horizon does not.
+    import numpy as np
+
+    from penumbra_server.numerics.surfaces import Surface
+    from penumbra_server.server.scheduler import SurfacePlan
+
+    plan = SurfacePlan("common", None, None, None, -np.ones(3), np.ones(3),
+                       must_enclose=(np.array([0.3, 0.0, 0.0]), np.array([-0.3, 0.1, 0.0])))
+    assert plan.points_outside(Surface.sphere([0.0, 0.0, 0.0], 0.6, 4)) == []
+    outside = plan.points_outside(Surface.sphere([0.3, 0.0, 0.0], 0.2, 4))  # the first body's own
+    assert len(outside) == 1 and np.allclose(outside[0], [-0.3, 0.1, 0.0])

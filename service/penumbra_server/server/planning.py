@@ -141,9 +141,12 @@ class SteeringPlanner:
         # exist yet: Newton only (the flow's hundreds of iterations would dominate every slice),
         # and no second try on a wider region when the iterates run off the data.
         formed = steering.common_formed is not None
+        # A "common" surface that misses a body is that body's own horizon (or a spurious MOTS).
+        bodies = (steering.history(b) for b in steering.body_labels)
+        enclose = tuple(h.centroid for h in bodies if h.centroid is not None and not h.lost)
         return SurfacePlan(label, seeds[0], None, None, centre - reach, centre + reach, extra_seeds=tuple(seeds[1:]),
                            seed_position=position, seed_uncertainty=uncertainty, seed_model=model, lmax=lmax,
-                           fallback_to_flow=formed, retry_wider=formed)
+                           fallback_to_flow=formed, retry_wider=formed, must_enclose=enclose)
 
 
 def steering_planner_factory(settings: RunSettings) -> SteeringPlanner:

@@ -33,7 +33,7 @@ from .errors import ServiceError
 from .events import EventLog
 from .executors import FinderExecutor
 from ..archive import _layout as layout
-from .jobs import REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceJob, SurfaceOutcome, crop_slice
+from .jobs import REASON_NOT_CONVERGED, REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceJob, SurfaceOutcome, crop_slice
 from .planning import steering_planner_factory
 from .scheduler import SurfacePlan, SurfacePlanner, SurfaceTrack
 from .steering import Notice, RunSteering, decode_wire, encode_wire
@@ -297,6 +297,15 @@ class RunRecord:
             if outcome.reason == REASON_OUTSIDE_DATA and plan.retry_wider:
                 # The crop may have cut what the surface needs: once more on twice the region.
                 outcome = await self._find(plan.widened(2.0), item.slice_)
+            if outcome.found and plan.must_enclose:
+                outside = plan.points_outside(Surface(outcome.centre, outcome.lmax, outcome.coefficients))
+                if outside:
+                    where = ", ".join(str(np.round(p, 4).tolist()) for p in outside)
+                    outcome = SurfaceOutcome(
+                        label=plan.label, found=False, reason=REASON_NOT_CONVERGED, status=outcome.status,
+                        message=f"the surface found does not enclose {where}, which it must hold inside: not accepted",
+                        method=outcome.method, residual_max=outcome.residual_max, iterations=outcome.iterations,
+                        wall_time_s=outcome.wall_time_s)
         await self._emit(self._surface_emission(item, outcome, plan))
         return outcome
 

@@ -125,6 +125,8 @@ class SurfacePlan:
             every slice for a surface that may not exist yet).
         retry_wider: when the search runs out of data, try once more on twice the region (off
             for those searches too: their iterates run away when the surface does not exist).
+        must_enclose: points (3,) a found surface must hold inside (a common horizon must
+            enclose both bodies); a surface that does not is reported not found.
     """
 
     label: str
@@ -142,6 +144,20 @@ class SurfacePlan:
     lmax: int | None = None
     fallback_to_flow: bool = True
     retry_wider: bool = True
+    must_enclose: tuple[np.ndarray, ...] = ()
+
+    def points_outside(self, surface: Surface) -> list[np.ndarray]:
+        """The ``must_enclose`` points that lie on or outside ``surface``."""
+        outside = []
+        for point in self.must_enclose:
+            rel = np.asarray(point, dtype=float) - surface.centre
+            r = float(np.linalg.norm(rel))
+            if r == 0.0:
+                continue
+            theta, phi = np.arccos(np.clip(rel[2] / r, -1.0, 1.0)), np.arctan2(rel[1], rel[0])
+            if r >= surface.radius([theta], [phi])[0]:
+                outside.append(np.asarray(point, dtype=float))
+        return outside
 
     def widened(self, factor: float) -> "SurfacePlan":
         """The same plan with the data region scaled about its middle."""

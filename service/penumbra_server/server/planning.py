@@ -142,8 +142,10 @@ class SteeringPlanner:
         # and no second try on a wider region when the iterates run off the data.
         formed = steering.common_formed is not None
         # A "common" surface that misses a body is that body's own horizon (or a spurious MOTS).
+        # A lost body counts at its last centroid: better a common horizon announced a slice late
+        # than one announced that is really the other body's horizon.
         bodies = (steering.history(b) for b in steering.body_labels)
-        enclose = tuple(h.centroid for h in bodies if h.centroid is not None and not h.lost)
+        enclose = tuple(h.centroid for h in bodies if h.centroid is not None)
         return SurfacePlan(label, seeds[0], None, None, centre - reach, centre + reach, extra_seeds=tuple(seeds[1:]),
                            seed_position=position, seed_uncertainty=uncertainty, seed_model=model, lmax=lmax,
                            fallback_to_flow=formed, retry_wider=formed, must_enclose=enclose)

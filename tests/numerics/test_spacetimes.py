@@ -1,6 +1,6 @@
 """Reference spacetimes: published components, independent derivations, sampling.
 
-Sources (see /work/shared/references.md; item numbers refer to it):
+Sources (item numbers refer to the shared list of published check values, references.md):
 item 1: Schwarzschild, isotropic (Baumgarte & Shapiro, Numerical Relativity, 2010);
 item 2: Kerr-Schild Schwarzschild (Matzner, Huq & Shoemaker, PRD 59, 024015 (1999); Cook, Living
 Rev. Relativity 3, 5 (2000)); item 2b: Painleve-Gullstrand (Painleve 1921, Gullstrand 1922);

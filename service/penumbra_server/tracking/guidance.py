@@ -34,7 +34,7 @@ from typing import Mapping
 
 import numpy as np
 
-from ._arrays import frozen_float_array
+from ._arrays import frozen_float_array, merge_until_disjoint
 
 from .forecast import Forecast
 
@@ -264,6 +264,17 @@ def guidance_times(now: float, *, policy: RefinementPolicy, samples: int = 9) ->
     return np.linspace(float(now), float(now) + policy.regrid_interval, int(samples))
 
 
+def _spheres_overlap(a: dict, b: dict) -> bool:
+    return bool(np.linalg.norm(a["centre"] - b["centre"]) < a["radius"] + b["radius"])
+
+
+def _merge_groups(a: dict, b: dict) -> dict:
+    """One region from two overlapping ones: the smallest sphere enclosing both, the union box."""
+    centre, radius = _merge_spheres(a["centre"], a["radius"], b["centre"], b["radius"])
+    return dict(bodies=a["bodies"] + b["bodies"], centre=centre, radius=radius,
+                lower=np.minimum(a["lower"], b["lower"]), upper=np.maximum(a["upper"], b["upper"]))
+
+
 def _merge_spheres(c1, r1, c2, r2):
     """Smallest sphere containing spheres (c1, r1) and (c2, r2)."""
     d = float(np.linalg.norm(c2 - c1))
@@ -387,22 +398,7 @@ def refinement_guidance(
                  lower=b.lower[level - 1].copy(), upper=b.upper[level - 1].copy())
             for b in body_guidance if b.finest_level >= level
         ]
-        changed = True
-        while changed:
-            changed = False
-            for i in range(len(groups)):
-                for j in range(i + 1, len(groups)):
-                    gi, gj = groups[i], groups[j]
-                    if np.linalg.norm(gi["centre"] - gj["centre"]) < gi["radius"] + gj["radius"]:
-                        centre, radius = _merge_spheres(gi["centre"], gi["radius"], gj["centre"], gj["radius"])
-                        groups[i] = dict(bodies=gi["bodies"] + gj["bodies"], centre=centre, radius=radius,
-                                         lower=np.minimum(gi["lower"], gj["lower"]),
-                                         upper=np.maximum(gi["upper"], gj["upper"]))
-                        del groups[j]
-                        changed = True
-                        break
-                if changed:
-                    break
+        groups = merge_until_disjoint(groups, _spheres_overlap, _merge_groups)
         regions = []
         for g in groups:
             if len(g["bodies"]) > 1:

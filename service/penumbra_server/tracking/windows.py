@@ -26,7 +26,7 @@ from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 
-from ._arrays import frozen_float_array
+from ._arrays import frozen_float_array, merge_until_disjoint
 
 from .common import CommonSearchAdvice
 from .forecast import Forecast
@@ -124,27 +124,17 @@ def _overlap(a: DataWindow, b: DataWindow) -> bool:
 def merge_overlapping_windows(windows) -> list[DataWindow]:
     """Merge overlapping windows into their bounding boxes until none overlap (no node is sent
     twice); a merged window is named after its parts ("A+B"), each part once."""
-    windows = list(windows)
-    changed = True
-    while changed:
-        changed = False
-        for i in range(len(windows)):
-            for j in range(i + 1, len(windows)):
-                a, b = windows[i], windows[j]
-                if _overlap(a, b):
-                    parts = a.name.split("+") + [n for n in b.name.split("+") if n not in a.name.split("+")]
-                    windows[i] = DataWindow(
-                        name="+".join(parts),
-                        lower=np.minimum(a.lower, b.lower), upper=np.maximum(a.upper, b.upper),
-                        reason=f"bounding box of overlapping windows ({a.reason}) and ({b.reason})",
-                        growth=max(a.growth, b.growth),
-                    )
-                    del windows[j]
-                    changed = True
-                    break
-            if changed:
-                break
-    return windows
+
+    def merge(a: DataWindow, b: DataWindow) -> DataWindow:
+        parts = a.name.split("+") + [n for n in b.name.split("+") if n not in a.name.split("+")]
+        return DataWindow(
+            name="+".join(parts),
+            lower=np.minimum(a.lower, b.lower), upper=np.maximum(a.upper, b.upper),
+            reason=f"bounding box of overlapping windows ({a.reason}) and ({b.reason})",
+            growth=max(a.growth, b.growth),
+        )
+
+    return merge_until_disjoint(windows, _overlap, merge)
 
 
 def _per_body(value, bodies: Sequence[str], name: str) -> dict[str, float]:

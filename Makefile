@@ -7,7 +7,7 @@ STAMP  := $(VENV)/.installed
 # One BLAS thread per process: the finder runs in several worker processes at once.
 THREADS := OMP_NUM_THREADS=1 OPENBLAS_NUM_THREADS=1 MKL_NUM_THREADS=1
 
-.PHONY: demo test bench wire clean
+.PHONY: demo test bench wire clean example-c example-fortran
 
 $(STAMP): pyproject.toml
 	@test -n "$(PYTHON)" || { echo "need python3.11 on PATH (or make PYTHON=/path/to/python3.11)"; exit 1; }
@@ -28,8 +28,18 @@ test: $(STAMP)
 bench: $(STAMP)
 	$(THREADS) $(PY) tests/benchmarks/bench_finder.py
 
+# The C and Fortran examples (client/native/examples) against a server of their own on a free
+# loopback port, stopped afterwards. The library and examples build into client/native/build.
+example-c: $(STAMP)
+	$(MAKE) -C client/native PY=$(abspath $(PY)) examples-c
+	$(THREADS) $(PY) client/native/examples/with_local_server.py -- client/native/build/bl_pair_evolution_c
+
+example-fortran: $(STAMP)
+	$(MAKE) -C client/native PY=$(abspath $(PY)) examples-fortran
+	$(THREADS) $(PY) client/native/examples/with_local_server.py -- client/native/build/bl_pair_evolution_f
+
 wire: $(STAMP)
 	$(PY) -m penumbra_server.tools.regenerate_wire
 
 clean:
-	rm -rf $(VENV) penumbra-demo-output
+	rm -rf $(VENV) penumbra-demo-output client/native/build

@@ -109,6 +109,8 @@ static int bad_input(const char *target)
     zero[N * N * 4 + N * 4 + 4] = 0.0;
     report("bad_timeout", pnl_wait_surfaces(run, 0, 0.0), 0);
     report("two_ranks", pnl_submit(run, 0.0, 0, 1, 2, &p, 1), 0);
+    /* Settle whatever became of that part, so the next flush speaks of the next slice only. */
+    report("flush_after_two_ranks", pnl_flush(run, 120.0), 0);
 
     /* The contract that the caller may reuse its buffers at once: overwrite them with NaN
      * right after the call; the server refuses non-finite data, so a slice sent from the

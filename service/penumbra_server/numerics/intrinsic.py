@@ -20,9 +20,10 @@ from dataclasses import dataclass
 import numpy as np
 
 from .geometry import PointGeometry
-from .surfaces import Surface, harmonic_basis, unit_vectors
+from .surfaces import HarmonicBasis, Surface, _azimuthal, _degree_order, harmonic_basis, unit_vectors
+from scipy.special import sph_legendre_p_all
 
-__all__ = ["InducedGeometry", "induced_geometry"]
+__all__ = ["InducedGeometry", "induced_geometry", "product_grid_basis"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -53,15 +54,36 @@ class InducedGeometry:
     geometry: PointGeometry
 
 
-def induced_geometry(surface: Surface, theta: np.ndarray, phi: np.ndarray, geometry_source) -> InducedGeometry:
+def product_grid_basis(lmax: int, theta_values: np.ndarray, phi_values: np.ndarray) -> HarmonicBasis:
+    """:func:`harmonic_basis` at the product grid theta_values x phi_values (theta-major, N =
+    n_theta n_phi), built from the 1-D factors: the same values far more cheaply."""
+    th = np.asarray(theta_values, dtype=float).ravel()
+    ph = np.asarray(phi_values, dtype=float).ravel()
+    l, m = _degree_order(lmax)
+    p = sph_legendre_p_all(lmax, lmax, th, diff_n=2)
+    P, Pt, Ptt = (p[d][l, np.abs(m)].T[:, None, :] for d in range(3))  # (n_theta, 1, n_coef)
+    f, fp, fpp = (_azimuthal(m, ph, d)[None] for d in range(3))  # (1, n_phi, n_coef)
+    n = th.size * ph.size
+
+    def flat(a):
+        return a.reshape(n, -1)
+
+    return HarmonicBasis(lmax, flat(P * f), flat(Pt * f), flat(P * fp), flat(Ptt * f), flat(Pt * fp), flat(P * fpp))
+
+
+def induced_geometry(
+    surface: Surface, theta: np.ndarray, phi: np.ndarray, geometry_source, *, basis: HarmonicBasis | None = None
+) -> InducedGeometry:
     """Induced metric, its Christoffel symbols and the unit normal at directions (theta, phi).
 
     ``geometry_source`` maps (N, 3) points to :class:`PointGeometry`; a ValueError names the
-    points it does not cover.
+    points it does not cover. ``basis``: the surface's harmonic basis at the directions, if
+    already at hand (e.g. from :func:`product_grid_basis`).
     """
     theta = np.asarray(theta, dtype=float).ravel()
     phi = np.asarray(phi, dtype=float).ravel()
-    rd = surface.derivatives(harmonic_basis(surface.lmax, theta, phi), theta, phi)
+    basis = harmonic_basis(surface.lmax, theta, phi) if basis is None else basis
+    rd = surface.derivatives(basis, theta, phi)
     n, et, ep = unit_vectors(theta, phi)
     st, ct = np.sin(theta)[:, None], np.cos(theta)[:, None]
     h, ht, hp = rd.h[:, None], rd.h_t[:, None], rd.h_p[:, None]

@@ -37,7 +37,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.linalg import eigh
 
-from .intrinsic import InducedGeometry, induced_geometry
+from .intrinsic import InducedGeometry, induced_geometry, product_grid_basis
 from .sources import as_tracked_source
 from .surfaces import HarmonicBasis, Surface, angular_grid, harmonic_basis
 
@@ -103,14 +103,17 @@ class SurfaceQuadrature:
         return float(np.sum(self.dA))
 
 
-def surface_quadrature(surface: Surface, source, lmax_zeta: int) -> SurfaceQuadrature:
-    """Nodes for products of two degree-``lmax_zeta`` fields with the (smooth) metric: about
-    twice the larger degree, as measures.py uses for the area."""
-    n_theta = 2 * max(surface.lmax, lmax_zeta) + 2
+def surface_quadrature(surface: Surface, source, lmax_zeta: int, n_theta: int | None = None) -> SurfaceQuadrature:
+    """Gauss-Legendre (cos theta) x uniform phi nodes, n_phi = 2 n_theta. Default n_theta: for
+    products of two degree-``lmax_zeta`` fields with the (smooth) metric, about twice the larger
+    degree, as measures.py uses for the area."""
+    n_theta = int(n_theta or 2 * max(surface.lmax, lmax_zeta) + 2)
     grid = angular_grid(1, n_theta, 2 * n_theta)  # nodes and weights only (basis of degree 1)
-    induced = induced_geometry(surface, grid.theta, grid.phi, source)
+    th, ph = grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi]
+    surface_basis = product_grid_basis(surface.lmax, th, ph)
+    induced = induced_geometry(surface, grid.theta, grid.phi, source, basis=surface_basis)
     st = np.sin(grid.theta)
-    basis = harmonic_basis(lmax_zeta, grid.theta, grid.phi)
+    basis = product_grid_basis(lmax_zeta, th, ph)
     return SurfaceQuadrature(induced, basis, grid.weights, grid.weights * induced.sqrt_det / st, st)
 
 

@@ -38,7 +38,7 @@ import numpy as np
 from scipy.linalg import eigh
 
 from .intrinsic import InducedGeometry, induced_geometry, product_grid_basis
-from .sources import as_tracked_source
+from .sources import TrackedSource, as_tracked_source
 from .surfaces import HarmonicBasis, Surface, angular_grid, harmonic_basis
 
 __all__ = ["HorizonSpin", "horizon_spin", "PotentialTerms", "potential_terms", "SurfaceQuadrature", "surface_quadrature"]
@@ -103,10 +103,12 @@ class SurfaceQuadrature:
         return float(np.sum(self.dA))
 
 
-def surface_quadrature(surface: Surface, source, lmax_zeta: int, n_theta: int | None = None) -> SurfaceQuadrature:
-    """Gauss-Legendre (cos theta) x uniform phi nodes, n_phi = 2 n_theta. Default n_theta: for
+def surface_quadrature(surface: Surface, data, lmax_zeta: int, n_theta: int | None = None) -> SurfaceQuadrature:
+    """Gauss-Legendre (cos theta) x uniform phi nodes, n_phi = 2 n_theta, on ``surface`` in
+    ``data`` (a Slice, a reference spacetime or a geometry source). Default n_theta: for
     products of two degree-``lmax_zeta`` fields with the (smooth) metric, about twice the larger
     degree, as measures.py uses for the area."""
+    source = data if isinstance(data, TrackedSource) else as_tracked_source(data)
     n_theta = int(n_theta or 2 * max(surface.lmax, lmax_zeta) + 2)
     grid = angular_grid(1, n_theta, 2 * n_theta)  # nodes and weights only (basis of degree 1)
     th, ph = grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi]

@@ -177,7 +177,7 @@ def potential_terms(quad: SurfaceQuadrature, coefficients: np.ndarray) -> Potent
     return PotentialTerms(zeta, k_phi_s / quad.sin_theta)
 
 
-def _normalised(coefs_z: np.ndarray, basis_Y: np.ndarray, dA: np.ndarray, area: float, R: float) -> np.ndarray:
+def _normalised(coefs_z: np.ndarray, basis_Y: np.ndarray, dA: np.ndarray, area: float) -> np.ndarray:
     """Coefficients (with l = 0) of zeta = (z - zbar)/R^2, scaled so that closed-integral zeta^2 dA = A/3."""
     full = np.concatenate([[0.0], coefs_z])
     z = basis_Y @ full
@@ -228,7 +228,7 @@ def horizon_spin(
         J = R * R * float(np.sum(quad.weights * terms.rotation_density)) / (8 * np.pi)
         return J, np.sum((quad.dA * terms.zeta)[:, None] * rel, axis=0)
 
-    candidates = [_normalised(vectors[:, k], Y, quad.dA, area, R) for k in range(min(3, modes))]
+    candidates = [_normalised(vectors[:, k], Y, quad.dA, area) for k in range(min(3, modes))]
     degenerate = len(candidates) == 3 and eig[1] - eig[0] < degeneracy_tolerance
     chosen = candidates[0]
     if degenerate:
@@ -238,19 +238,20 @@ def horizon_spin(
         if np.linalg.norm(spin_vector) > 0:
             axis = spin_vector / np.linalg.norm(spin_vector)
             combined = sum(float(d @ axis) * c for c, d in zip(candidates, unit))
-            chosen = _normalised(combined[1:], Y, quad.dA, area, R)
+            chosen = _normalised(combined[1:], Y, quad.dA, area)
     J, dipole = spin_and_dipole(chosen)
     if J < 0:
         chosen, J, dipole = -chosen, -J, -dipole
     direction = dipole / np.linalg.norm(dipole)
     m_irr = float(np.sqrt(area / (16 * np.pi)))
     m_chr = float(np.sqrt(m_irr**2 + J * J / (4 * m_irr**2)))
-    for arr in (direction, centroid, chosen, eig):
+    spin_vector = J * direction
+    for arr in (direction, spin_vector, centroid, chosen, eig):
         arr.setflags(write=False)
     return HorizonSpin(
         angular_momentum=J,
         direction=direction,
-        spin_vector=J * direction,
+        spin_vector=spin_vector,
         area=area,
         areal_radius=R,
         irreducible_mass=m_irr,

@@ -18,10 +18,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.special import sph_legendre_p_all
 
 from .geometry import PointGeometry
 from .surfaces import HarmonicBasis, Surface, _azimuthal, _degree_order, harmonic_basis, unit_vectors
-from scipy.special import sph_legendre_p_all
 
 __all__ = ["InducedGeometry", "induced_geometry", "product_grid_basis"]
 

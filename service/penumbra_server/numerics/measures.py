@@ -12,7 +12,7 @@ from .expansion import level_set_derivatives
 from .sources import TrackedSource, as_tracked_source
 from .surfaces import Surface, angular_grid, harmonic_basis, unit_vectors
 
-__all__ = ["SurfaceQuantities", "measure_surface", "surface_area", "plane_cut", "proper_length_closed"]
+__all__ = ["SurfaceQuantities", "measure_surface", "surface_area", "plane_cut", "plane_cut_spanned", "proper_length_closed"]
 
 
 @dataclass(frozen=True)
@@ -101,9 +101,15 @@ def plane_cut(surface: Surface, origin: np.ndarray, normal_axis: int, samples: i
     None when a ray from ``origin`` does not meet the surface once (cut not star-shaped about it).
     """
     a1, a2 = [a for a in range(3) if a != normal_axis]
+    return plane_cut_spanned(surface, origin, np.eye(3)[a1], np.eye(3)[a2], samples)
+
+
+def plane_cut_spanned(surface: Surface, origin: np.ndarray, e1: np.ndarray, e2: np.ndarray, samples: int = 128) -> np.ndarray | None:
+    """(samples, 3) points where the surface meets the plane through ``origin`` spanned by the
+    orthonormal coordinate vectors ``e1``, ``e2``, at in-plane angles psi = 2 pi k / samples
+    from e1 towards e2 about ``origin``. None as for :func:`plane_cut`."""
     psi = 2 * np.pi * np.arange(samples) / samples
-    d = np.zeros((samples, 3))
-    d[:, a1], d[:, a2] = np.cos(psi), np.sin(psi)
+    d = np.cos(psi)[:, None] * np.asarray(e1, dtype=float) + np.sin(psi)[:, None] * np.asarray(e2, dtype=float)
     c = surface.centre
 
     def level(rho):

@@ -15,8 +15,10 @@ import pytest
 
 import penumbra_shim as ps
 from penumbra_shim._wire import horizons_pb2 as pb
+from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
 import parts_support as support
+from penumbra_server.server import BackgroundServer, ServerOptions
 from service_support import LONE_CENTRE, box, lone_hole, lone_spec, patch_data
 
 POLL_S = 120.0
@@ -286,3 +288,47 @@ def test_refused_parts_leave_the_stored_ones_pending_and_the_slice_completes(stu
     info = client.get_run(run_id)
     assert (info.slices_received, info.slices_incomplete) == (2, 0)
     assert not [e for e in events if e.kind == "slice_parts_missing"]
+
+
+# -- restart ----------------------------------------------------------------------------------------
+
+
+@pytest.mark.slow
+def test_a_restarted_server_remembers_incomplete_and_given_up_slices(tmp_path):
+    """Parts-missing events are archived: after a restart the counter, the events and the refusal
+    of late parts come back (pending parts themselves live in memory only)."""
+    options = ServerOptions(workers=1)
+    first = BackgroundServer("127.0.0.1:0", archive_root=tmp_path, workers=1, options=options).start()
+    address = first.address
+    try:
+        with ps.connect(address, deadline_s=20.0) as client:
+            spec = ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", LONE_CENTRE, 1.0),), name="restart parts",
+                              part_deadline_s=0.5)
+            run_id = client.open_run(spec, cache_results=False).run_id
+            channel = grpc.insecure_channel(address)
+            stub = pb_grpc.HorizonServiceStub(channel)
+            _send(stub, _part(0, [], 0, 2), run_id)
+            _events_until(client, run_id, lambda ev: any(e.kind == "slice_parts_missing" for e in ev))
+            _send(stub, _part(1, [_lone_patch()], 0, 2), run_id)
+            before = _events_until(client, run_id, _processed(1))
+            channel.close()
+    finally:
+        first.stop()
+    second = BackgroundServer(address, archive_root=tmp_path, workers=1, options=options).start()
+    try:
+        with ps.connect(address, deadline_s=20.0) as client:
+            info = client.get_run(run_id)
+            assert (info.slices_received, info.slices_incomplete) == (1, 1)
+            reports = [e for e in client.watch(run_id, from_seq=1, timeout_s=5) if e.kind == "slice_parts_missing"]
+            assert [(e.iteration, e.state, e.missing_parts) for e in reports] == [(0, "given_up", (1,)),
+                                                                                (1, "processed", (1,))]
+            assert [e.seq for e in reports] == [e.seq for e in before if e.kind == "slice_parts_missing"]
+            channel = grpc.insecure_channel(address)
+            stub = pb_grpc.HorizonServiceStub(channel)
+            err = _refused(stub, list(_part(0, [_lone_patch()], 1, 2).requests(run_id)))
+            _assert_refusal(err, grpc.StatusCode.FAILED_PRECONDITION, "part_after_give_up", "iteration 0")
+            err = _refused(stub, list(_part(1, [_lone_patch()], 1, 2).requests(run_id)))
+            _assert_refusal(err, grpc.StatusCode.FAILED_PRECONDITION, "part_after_assembly", "iteration 1")
+            channel.close()
+    finally:
+        second.stop()

@@ -113,7 +113,8 @@ def _patch_bytes(patches) -> int:
 
 @dataclass(frozen=True, eq=False)
 class ReceivedPart:
-    """One part as it arrived: its slice's identity, its label and its patches (copies dropped)."""
+    """One part as it arrived: its slice's identity, its label and its patches (copies dropped),
+    with each patch's :func:`patch_key` and field bytes (worked out off the event loop)."""
 
     iteration: int
     time: float
@@ -121,6 +122,14 @@ class ReceivedPart:
     label: PartLabel
     patches: tuple[Patch, ...]
     nbytes: int
+    keys: tuple[tuple, ...] = ()
+    patch_bytes: tuple[int, ...] = ()
+
+    def __post_init__(self) -> None:
+        if len(self.keys) != len(self.patches):
+            object.__setattr__(self, "keys", tuple(patch_key(p) for p in self.patches))
+        if len(self.patch_bytes) != len(self.patches):
+            object.__setattr__(self, "patch_bytes", tuple(_patch_bytes((p,)) for p in self.patches))
 
 
 def prepare_part(assembler: SliceAssembler, label: PartLabel, *, reflection_z: bool) -> ReceivedPart:
@@ -140,18 +149,19 @@ def prepare_part(assembler: SliceAssembler, label: PartLabel, *, reflection_z: b
                 raise ServiceError.invalid(f"header.patches: the run has reflection_z set: {exc}") from None
         patches = tuple(mirrored)
     seen: dict[tuple, Patch] = {}
-    kept = []
+    kept, keys = [], []
     for patch in patches:
         key = patch_key(patch)
         first = seen.get(key)
         if first is None:
             seen[key] = patch
             kept.append(patch)
+            keys.append(key)
         elif not _same_data(first, patch):
             raise _refusal("patch_conflict", f"header.patches: part {label.index} carries the patch ({_describe(patch)}) "
                                              f"twice with different data; expected one copy")
     return ReceivedPart(iteration=assembler.iteration, time=assembler.time, variable_set=assembler.variable_set,
-                        label=label, patches=tuple(kept), nbytes=assembler.received_bytes)
+                        label=label, patches=tuple(kept), nbytes=assembler.received_bytes, keys=tuple(keys))
 
 
 class PartSink(Protocol):
@@ -276,8 +286,7 @@ class PartAssembly:
             if pending is None:
                 break
             to_compare = []
-            for patch in part.patches:
-                key = patch_key(patch)
+            for key, patch in zip(part.keys, part.patches):
                 held = pending.by_key.get(key)
                 if held is not None and key not in identical:
                     to_compare.append((key, held, patch))
@@ -294,8 +303,8 @@ class PartAssembly:
                                    f"identical data or a different patch")
                 identical.add(key)
         # From here on no await: the checks above still hold.
-        kept = tuple(p for p in part.patches if pending is None or patch_key(p) not in pending.by_key)
-        kept_bytes = _patch_bytes(kept)
+        kept = [i for i, key in enumerate(part.keys) if pending is None or key not in pending.by_key]
+        kept_bytes = sum(part.patch_bytes[i] for i in kept)
         held_bytes = pending.patch_bytes if pending is not None else 0
         if held_bytes + kept_bytes > max_bytes:
             raise _refusal("parts_too_large",
@@ -306,9 +315,9 @@ class PartAssembly:
             self._pending[iteration] = pending
             loop = asyncio.get_running_loop()
             pending.timer = loop.call_later(self.deadline_s, self._expire, pending)
-        for patch in kept:
-            pending.by_key[patch_key(patch)] = (patch, label.index)
-        pending.parts[label.index] = kept
+        for i in kept:
+            pending.by_key[part.keys[i]] = (part.patches[i], label.index)
+        pending.parts[label.index] = tuple(part.patches[i] for i in kept)
         pending.nbytes += part.nbytes
         pending.patch_bytes += kept_bytes
         if len(pending.parts) < pending.count:

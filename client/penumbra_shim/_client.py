@@ -5,8 +5,8 @@ thread per run handle streams slices in about 1 MiB chunks; one follower thread 
 (optional) watches the run's events to keep the latest surfaces cached. The caller's thread
 never waits on the network in ``submit()``.
 
-Retries: only what is safe. SendSlice is idempotent on the server by (run, iteration), so a
-slice whose stream broke (UNAVAILABLE, DEADLINE_EXCEEDED, ABORTED, CANCELLED) is sent again;
+Retries: only what is safe. SendSlice is idempotent on the server by (run, iteration), and
+by (run, iteration, part) for a slice sent in parts, so a slice whose stream broke (UNAVAILABLE, DEADLINE_EXCEEDED, ABORTED, CANCELLED) is sent again;
 OpenRun carries a request id so a retry returns the same run; Get/List/Close are idempotent.
 Refusals (INVALID_ARGUMENT, NOT_FOUND, FAILED_PRECONDITION, RESOURCE_EXHAUSTED, DATA_LOSS) are
 never retried: they resolve the slice's ticket with a :class:`PenumbraError`.
@@ -286,8 +286,9 @@ class EventStream:
 class SubmitTicket:
     """The fate of one submitted slice: :meth:`result` gives its :class:`SliceAck` or raises."""
 
-    def __init__(self, iteration: int, nbytes: int) -> None:
+    def __init__(self, iteration: int, nbytes: int, part_index: int = 0) -> None:
         self.iteration = iteration
+        self.part_index = part_index
         self.nbytes = nbytes
         self.submit_block_s = 0.0
         self._future: concurrent.futures.Future = concurrent.futures.Future()
@@ -381,7 +382,8 @@ class RunHandle:
         """Queue a built slice for the background sender and return at once.
 
         If ``queue_depth`` slices are already waiting, the oldest waiting one is dropped
-        (its ticket resolves with ``skipped_locally=True``): the evolution never waits.
+        (its ticket resolves with ``skipped_locally=True``): the evolution never waits. A slice
+        (or part) waiting with the same iteration and part index is replaced by this one.
 
         ``crop_to_windows`` (default: the handle's option): the sender cuts every patch to the
         data windows the server asked for last (plus their stencil nodes) just before sending;
@@ -394,11 +396,15 @@ class RunHandle:
             raise ValueError(
                 f"slice_.variable_set: {slice_.variable_set!r} does not match the run's variable set {self.variable_set!r}"
             )
-        ticket = SubmitTicket(slice_.iteration, slice_.nbytes)
+        ticket = SubmitTicket(slice_.iteration, slice_.nbytes, slice_.part_index)
         dropped: list[_Pending] = []
+        key = (slice_.iteration, slice_.part_index)
         with self._cond:
             if self._closed:
                 raise RuntimeError(f"run handle {self.run_id} is closed")
+            for waiting in [w for w in self._queue if (w.slice_.iteration, w.slice_.part_index) == key]:
+                self._queue.remove(waiting)
+                dropped.append(waiting)
             while len(self._queue) >= self.queue_depth:
                 dropped.append(self._queue.popleft())
             crop = self.crop_to_windows if crop_to_windows is None else bool(crop_to_windows)
@@ -407,15 +413,21 @@ class RunHandle:
             self.stats.dropped_locally += len(dropped)
             self._cond.notify_all()
         for old in dropped:
-            old.ticket._resolve(SliceAck(iteration=old.slice_.iteration, accepted=False, skipped_locally=True))
+            old.ticket._resolve(SliceAck(iteration=old.slice_.iteration, accepted=False, skipped_locally=True,
+                                         part_index=old.slice_.part_index, parts_expected=old.slice_.part_count))
         ticket.submit_block_s = time.perf_counter() - start
         return ticket
 
     def submit_arrays(self, *, time: float, iteration: int, patches, check_finite: bool = True,
-                      crop_to_windows: bool | None = None) -> SubmitTicket:
-        """:func:`build_slice` (validation + defensive copy) in the run's variable set, then :meth:`submit`."""
+                      crop_to_windows: bool | None = None, part_index: int = 0, part_count: int = 1) -> SubmitTicket:
+        """:func:`build_slice` (validation + defensive copy) in the run's variable set, then :meth:`submit`.
+
+        On MPI ranks: every rank passes its own boxes (possibly none) with ``part_index`` = its rank
+        and ``part_count`` = the rank count; no rank gathers the grid.
+        """
         return self.submit(build_slice(time=time, iteration=iteration, variable_set=self.variable_set,
-                                       patches=patches, check_finite=check_finite), crop_to_windows=crop_to_windows)
+                                       patches=patches, check_finite=check_finite, part_index=part_index,
+                                       part_count=part_count), crop_to_windows=crop_to_windows)
 
     def flush(self, timeout_s: float | None = 30.0) -> bool:
         """Wait until every submitted slice is acknowledged, refused or dropped; False on timeout."""
@@ -471,7 +483,7 @@ class RunHandle:
             cut = crop_outgoing_slice(slice_, windows.bounds(), extra_nodes=windows.extra_nodes) if windows else None
         except ValueError:  # malformed windows must not stop the sender: send the slice whole
             cut = None
-        if cut is None:
+        if cut is None:  # a part the windows miss is not None: it goes as an empty part
             self.stats.sent_whole += 1
             return slice_, False
         return cut, True
@@ -492,6 +504,7 @@ class RunHandle:
                                           timeout=deadline_s, wait_for_ready=True)
             except ValueError:  # the client was closed under the sender
                 pending.ticket._resolve(SliceAck(iteration=slice_.iteration, accepted=False, skipped_locally=True,
+                                                 part_index=slice_.part_index, parts_expected=slice_.part_count,
                                                  attempts=attempts))
                 return
             except grpc.RpcError as exc:
@@ -507,13 +520,15 @@ class RunHandle:
                     # Keep newest: a full queue of newer slices beats retrying this one.
                     self.stats.dropped_locally += 1
                     pending.ticket._resolve(SliceAck(iteration=slice_.iteration, accepted=False, skipped_locally=True,
+                                                     part_index=slice_.part_index, parts_expected=slice_.part_count,
                                                      attempts=attempts))
                     return
                 self.stats.retries += 1
                 self._stopping.wait(backoff)
                 backoff = min(2 * backoff, 2.0)
                 continue
-            ack = SliceAck.from_wire(response, attempts=attempts, cropped=cropped, uncropped_bytes=full_bytes)
+            ack = SliceAck.from_wire(response, attempts=attempts, cropped=cropped, uncropped_bytes=full_bytes,
+                                     part_index=slice_.part_index)
             self.stats.send_seconds += time.perf_counter() - t0
             self.stats.sent += 1
             self.stats.bytes_sent += slice_.nbytes

@@ -91,12 +91,23 @@ class OutgoingPatch:
 
 @dataclass(frozen=True, eq=False)
 class OutgoingSlice:
-    """A validated slice ready to stream: time (M), iteration, variable set, patches."""
+    """A validated slice ready to stream: time (M), iteration, variable set, patches.
+
+    ``part_index`` / ``part_count``: which part of its slice this is when the slice is sent in
+    parts (e.g. one per MPI rank); 0 / 1 for a whole slice. A part may have no patches.
+    """
 
     time: float
     iteration: int
     variable_set: str
     patches: tuple[OutgoingPatch, ...]
+    part_index: int = 0
+    part_count: int = 1
+
+    @property
+    def is_part(self) -> bool:
+        """Whether this is one part of a slice sent in parts."""
+        return self.part_count > 1
 
     @property
     def nbytes(self) -> int:
@@ -111,6 +122,8 @@ class OutgoingSlice:
             variable_set=VARIABLE_SET_WIRE[self.variable_set],
             patches=[p.header() for p in self.patches],
             total_bytes=self.nbytes,
+            part_index=self.part_index,
+            part_count=self.part_count,
         )
 
     def requests(self, run_id: str, *, chunk_bytes: int = DEFAULT_CHUNK_BYTES) -> Iterator[pb.SendSliceRequest]:
@@ -254,15 +267,21 @@ def build_slice(
     variable_set: str,
     patches: Sequence[PatchData] | PatchData,
     check_finite: bool = True,
+    part_index: int = 0,
+    part_count: int = 1,
 ) -> OutgoingSlice:
-    """Validate a slice and copy its data in wire layout.
+    """Validate a slice (or one part of it) and copy its data in wire layout.
 
     Args:
         time: coordinate time, units of M (finite).
         iteration: the evolution's iteration number (identifies the slice within the run).
         variable_set: "adm", "conformal_chi", "conformal_w" or "conformal_phi".
-        patches: one :class:`PatchData` or a sequence of them.
+        patches: one :class:`PatchData` or a sequence of them; may be empty in a part.
         check_finite: reject NaN and infinity (the server rejects them too).
+        part_index: this part's index, 0 .. part_count - 1 (e.g. the MPI rank).
+        part_count: the number of parts the slice is sent in (e.g. the MPI rank count); 1 for a
+            whole slice. Every part of one iteration must give the same time and count; the
+            server assembles the slice when all have arrived (or after the run's part deadline).
 
     Raises:
         SliceValidationError: naming the field at fault and what was expected.
@@ -279,13 +298,23 @@ def build_slice(
         raise SliceValidationError(f"time: expected a finite number, got {time!r}")
     if isinstance(iteration, bool) or not isinstance(iteration, (int, np.integer)):
         raise SliceValidationError(f"iteration: expected an integer, got {iteration!r}")
+    for name, value in (("part_index", part_index), ("part_count", part_count)):
+        if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+            raise SliceValidationError(f"{name}: expected an integer, got {value!r}")
+    if part_count < 1:
+        raise SliceValidationError(f"part_count: expected 1 for a whole slice or the number of parts, got {part_count}")
+    if not 0 <= part_index < part_count:
+        raise SliceValidationError(f"part_index: expected 0 .. {part_count - 1} for part_count {part_count}, "
+                                   f"got {part_index}")
     if isinstance(patches, PatchData):
         patches = [patches]
     patches = list(patches)
-    if not patches:
-        raise SliceValidationError("patches: a slice needs at least one patch")
+    if not patches and part_count == 1:
+        raise SliceValidationError("patches: a whole slice needs at least one patch (only a part of a slice sent "
+                                   "in parts, part_count > 1, may be empty)")
     encoded = tuple(_encode_patch(p, i, variable_set, check_finite=check_finite) for i, p in enumerate(patches))
-    return OutgoingSlice(time=time_value, iteration=int(iteration), variable_set=variable_set, patches=encoded)
+    return OutgoingSlice(time=time_value, iteration=int(iteration), variable_set=variable_set, patches=encoded,
+                         part_index=int(part_index), part_count=int(part_count))
 
 
 def crop_outgoing_slice(slice_: OutgoingSlice, windows, *, extra_nodes: int = 0) -> OutgoingSlice | None:
@@ -296,7 +325,9 @@ def crop_outgoing_slice(slice_: OutgoingSlice, windows, *, extra_nodes: int = 0)
     Args:
         windows: (m, 2, 3) (lower, upper) boxes, units of M, or anything crop_patches accepts.
     Returns:
-        The cropped slice, or None when the windows miss every patch.
+        The cropped slice, or None when the windows miss every patch of a whole slice. A part
+        of a slice sent in parts is never None: a part the windows miss comes back with no
+        patches, and must still be sent (the server waits for every part).
     """
     from .cropping import crop_patches  # numpy only
 
@@ -308,8 +339,6 @@ def crop_outgoing_slice(slice_: OutgoingSlice, windows, *, extra_nodes: int = 0)
         sources.append({"origin": patch.origin, "spacing": patch.spacing, "shape": patch.shape, "fields": fields,
                         "level": patch.level, "memory_order": patch.memory_order})
     cut = crop_patches(sources, windows, extra_nodes=extra_nodes)
-    if not cut:
-        return None
     patches = []
     for piece in cut:
         source = slice_.patches[piece.source_index]
@@ -319,7 +348,7 @@ def crop_outgoing_slice(slice_: OutgoingSlice, windows, *, extra_nodes: int = 0)
             origin=tuple(float(v) for v in piece.origin), spacing=source.spacing, shape=tuple(piece.shape),
             level=source.level, memory_order=source.memory_order, dtype=source.dtype,
             fields={name: np.asarray(arr).tobytes(order=source.memory_order) for name, arr in piece.fields.items()}))
-    if not patches:
+    if not patches and not slice_.is_part:
         return None
     return OutgoingSlice(time=slice_.time, iteration=slice_.iteration, variable_set=slice_.variable_set,
-                         patches=tuple(patches))
+                         patches=tuple(patches), part_index=slice_.part_index, part_count=slice_.part_count)

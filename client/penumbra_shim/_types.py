@@ -58,10 +58,13 @@ _SOURCE_NAMES = {pb.TrackPoint.SOURCE_HORIZON: "horizon", pb.TrackPoint.SOURCE_P
 _MODEL_NAMES = {pb.PositionForecast.MODEL_STATIC: "static", pb.PositionForecast.MODEL_POLYNOMIAL: "polynomial",
                 pb.PositionForecast.MODEL_ORBIT: "orbit"}
 _WARNING_NAMES = {pb.RunWarning.KIND_MISSING_DATA: "missing_data", pb.RunWarning.KIND_TRACKING: "tracking"}
+_DISPOSITION_NAMES = {pb.SlicePartsMissing.DISPOSITION_PROCESSED: "processed",
+                      pb.SlicePartsMissing.DISPOSITION_GIVEN_UP: "given_up"}
 
 #: Event kinds the shim names (others arrive as kind "other" with the message in ``raw``).
 EVENT_KINDS = ("surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed",
-               "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning")
+               "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning",
+               "slice_parts_missing")
 
 
 def _triple(v: pb.Vector3) -> np.ndarray:
@@ -177,6 +180,8 @@ class RunSpec:
         refinement: :class:`RefinementOptions` of the guidance.
         reflection_z: the run has reflection symmetry through z = 0 and sends z >= 0 only (a
             node layer on z = 0); the server fills z < 0 with the right parity per component.
+        part_deadline_s: for slices sent in parts (one per MPI rank), seconds from the first
+            part's arrival until the server processes what arrived (0: the server's default).
     """
 
     variable_set: str
@@ -187,9 +192,13 @@ class RunSpec:
     backlog: BacklogOptions = field(default_factory=BacklogOptions)
     refinement: RefinementOptions = field(default_factory=RefinementOptions)
     reflection_z: bool = False
+    part_deadline_s: float = 0.0
 
     def __post_init__(self) -> None:
         check_variable_set(self.variable_set)
+        if not (math.isfinite(self.part_deadline_s) and self.part_deadline_s >= 0):
+            raise ValueError(f"part_deadline_s: expected seconds > 0 (0 for the server's default), "
+                             f"got {self.part_deadline_s!r}")
         bodies = tuple(self.bodies)
         if not bodies:
             raise ValueError("bodies: expected at least one Body")
@@ -213,6 +222,7 @@ class RunSpec:
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.backlog.queue_depth),
             refinement=self.refinement.to_wire(),
             reflection_z=bool(self.reflection_z),
+            part_deadline_s=float(self.part_deadline_s),
         )
 
     @classmethod
@@ -227,6 +237,7 @@ class RunSpec:
             backlog=BacklogOptions(queue_depth=spec.backlog.queue_depth or 4),
             refinement=RefinementOptions.from_wire(spec.refinement),
             reflection_z=spec.reflection_z,
+            part_deadline_s=spec.part_deadline_s,
         )
 
 
@@ -236,6 +247,7 @@ class RunInfo:
 
     ``last_received_iteration`` / ``last_received_time`` (M): the newest slice the server accepted
     (-1 / NaN before the first): a watcher's lag is that time minus a surface's time.
+    ``slices_incomplete``: slices sent in parts that were processed with parts missing.
     """
 
     run_id: str
@@ -252,6 +264,7 @@ class RunInfo:
     archive_path: str
     last_received_iteration: int = -1
     last_received_time: float = _NAN
+    slices_incomplete: int = 0
 
     @classmethod
     def from_wire(cls, run: pb.Run) -> "RunInfo":
@@ -262,6 +275,7 @@ class RunInfo:
             slices_processed=run.slices_processed, slices_skipped=run.slices_skipped,
             slices_duplicate=run.slices_duplicate, last_seq=run.last_event_seq, archive_path=run.archive_path,
             last_received_iteration=run.last_received_iteration, last_received_time=run.last_received_time_m,
+            slices_incomplete=run.slices_incomplete,
         )
 
 
@@ -273,6 +287,11 @@ class SliceAck:
     ``skipped_locally``: dropped from the shim's own queue (keep-newest) before sending.
     ``skipped_iterations``: older slices the server skipped to make room for this one.
     ``cropped``: sent cut to the server's data windows (``bytes_sent`` of ``uncropped_bytes``).
+
+    For a part of a slice sent in parts (``parts_expected`` > 1): ``accepted`` means the part was
+    stored; ``waiting_for_parts`` that the slice still waits for other parts (else this part
+    completed it and it was queued); ``parts_received`` counts the parts the server holds.
+    ``duplicate``: the server held this part already.
     """
 
     iteration: int
@@ -285,15 +304,24 @@ class SliceAck:
     attempts: int = 0
     cropped: bool = False
     uncropped_bytes: int = 0
+    part_index: int = 0
+    waiting_for_parts: bool = False
+    parts_received: int = 1
+    parts_expected: int = 1
 
     @classmethod
     def from_wire(cls, response: pb.SendSliceResponse, *, attempts: int, cropped: bool = False,
-                  uncropped_bytes: int = 0) -> "SliceAck":
+                  uncropped_bytes: int = 0, part_index: int = 0) -> "SliceAck":
+        waiting = response.outcome == pb.SendSliceResponse.OUTCOME_PART_ACCEPTED
         return cls(
+            part_index=part_index,
+            waiting_for_parts=waiting,
+            parts_received=response.parts_received or 1,
+            parts_expected=response.parts_expected or 1,
             cropped=cropped,
             uncropped_bytes=uncropped_bytes,
             iteration=response.iteration,
-            accepted=response.outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED,
+            accepted=waiting or response.outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED,
             duplicate=response.outcome == pb.SendSliceResponse.OUTCOME_DUPLICATE,
             bytes_sent=response.received_bytes,
             queue_position=response.queue_position,
@@ -415,6 +443,8 @@ class Event:
         windows: for data_windows_wanted.
         For warning: ``state`` is the warning kind ("missing_data", "tracking") and ``reason``
         its text.
+        For slice_parts_missing: ``missing_parts`` (indices), ``parts_expected``, ``state``
+        ("processed" with what arrived, or "given_up") and ``reason`` (the server's text).
         raw: the wire message (penumbra.v1.RunEvent).
     """
 
@@ -437,6 +467,8 @@ class Event:
     common: "CommonHorizon | None" = None
     guidance: "Guidance | None" = None
     windows: "DataWindows | None" = None
+    missing_parts: tuple[int, ...] = ()
+    parts_expected: int = 0
     raw: pb.RunEvent | None = None
 
     @classmethod
@@ -474,6 +506,10 @@ class Event:
             w = e.warning
             return cls(kind=kind, label=w.label, state=_WARNING_NAMES.get(w.kind, str(w.kind)), reason=w.message,
                        **base)
+        if kind == "slice_parts_missing":
+            m = e.slice_parts_missing
+            return cls(kind=kind, missing_parts=tuple(m.missing_part_indices), parts_expected=m.parts_expected,
+                       state=_DISPOSITION_NAMES.get(m.disposition, str(m.disposition)), reason=m.message, **base)
         return cls(kind="other", **base)
 
 

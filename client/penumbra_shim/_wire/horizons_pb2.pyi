@@ -68,7 +68,7 @@ class BacklogPolicy(_message.Message):
     def __init__(self, policy: _Optional[_Union[BacklogPolicy.Policy, str]] = ..., queue_depth: _Optional[int] = ...) -> None: ...
 
 class RunSpec(_message.Message):
-    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "reflection_z")
+    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "reflection_z", "part_deadline_s")
     DISPLAY_NAME_FIELD_NUMBER: _ClassVar[int]
     VARIABLE_SET_FIELD_NUMBER: _ClassVar[int]
     MASS_SCALE_SOLAR_MASSES_FIELD_NUMBER: _ClassVar[int]
@@ -77,6 +77,7 @@ class RunSpec(_message.Message):
     BACKLOG_FIELD_NUMBER: _ClassVar[int]
     REFINEMENT_FIELD_NUMBER: _ClassVar[int]
     REFLECTION_Z_FIELD_NUMBER: _ClassVar[int]
+    PART_DEADLINE_S_FIELD_NUMBER: _ClassVar[int]
     display_name: str
     variable_set: VariableSet
     mass_scale_solar_masses: float
@@ -85,7 +86,8 @@ class RunSpec(_message.Message):
     backlog: BacklogPolicy
     refinement: RefinementPolicy
     reflection_z: bool
-    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., reflection_z: _Optional[bool] = ...) -> None: ...
+    part_deadline_s: float
+    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., reflection_z: _Optional[bool] = ..., part_deadline_s: _Optional[float] = ...) -> None: ...
 
 class RefinementPolicy(_message.Message):
     __slots__ = ("points_across_horizon", "levels", "level_ratio", "finest_radius_factor", "regrid_interval_m", "buffer_points")
@@ -104,7 +106,7 @@ class RefinementPolicy(_message.Message):
     def __init__(self, points_across_horizon: _Optional[float] = ..., levels: _Optional[int] = ..., level_ratio: _Optional[float] = ..., finest_radius_factor: _Optional[float] = ..., regrid_interval_m: _Optional[float] = ..., buffer_points: _Optional[int] = ...) -> None: ...
 
 class Run(_message.Message):
-    __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m")
+    __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m", "slices_incomplete")
     class State(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         STATE_UNSPECIFIED: _ClassVar[Run.State]
@@ -126,6 +128,7 @@ class Run(_message.Message):
     ARCHIVE_PATH_FIELD_NUMBER: _ClassVar[int]
     LAST_RECEIVED_ITERATION_FIELD_NUMBER: _ClassVar[int]
     LAST_RECEIVED_TIME_M_FIELD_NUMBER: _ClassVar[int]
+    SLICES_INCOMPLETE_FIELD_NUMBER: _ClassVar[int]
     run_id: str
     spec: RunSpec
     state: Run.State
@@ -139,7 +142,8 @@ class Run(_message.Message):
     archive_path: str
     last_received_iteration: int
     last_received_time_m: float
-    def __init__(self, run_id: _Optional[str] = ..., spec: _Optional[_Union[RunSpec, _Mapping]] = ..., state: _Optional[_Union[Run.State, str]] = ..., create_time_unix_s: _Optional[float] = ..., close_time_unix_s: _Optional[float] = ..., slices_received: _Optional[int] = ..., slices_processed: _Optional[int] = ..., slices_skipped: _Optional[int] = ..., slices_duplicate: _Optional[int] = ..., last_event_seq: _Optional[int] = ..., archive_path: _Optional[str] = ..., last_received_iteration: _Optional[int] = ..., last_received_time_m: _Optional[float] = ...) -> None: ...
+    slices_incomplete: int
+    def __init__(self, run_id: _Optional[str] = ..., spec: _Optional[_Union[RunSpec, _Mapping]] = ..., state: _Optional[_Union[Run.State, str]] = ..., create_time_unix_s: _Optional[float] = ..., close_time_unix_s: _Optional[float] = ..., slices_received: _Optional[int] = ..., slices_processed: _Optional[int] = ..., slices_skipped: _Optional[int] = ..., slices_duplicate: _Optional[int] = ..., last_event_seq: _Optional[int] = ..., archive_path: _Optional[str] = ..., last_received_iteration: _Optional[int] = ..., last_received_time_m: _Optional[float] = ..., slices_incomplete: _Optional[int] = ...) -> None: ...
 
 class OpenRunRequest(_message.Message):
     __slots__ = ("spec", "request_id")
@@ -230,20 +234,24 @@ class PatchHeader(_message.Message):
     def __init__(self, origin_m: _Optional[_Union[Vector3, _Mapping]] = ..., spacing_m: _Optional[_Union[Vector3, _Mapping]] = ..., shape: _Optional[_Iterable[int]] = ..., level: _Optional[int] = ..., dtype: _Optional[_Union[PatchHeader.DType, str]] = ..., memory_order: _Optional[_Union[PatchHeader.MemoryOrder, str]] = ..., field_names: _Optional[_Iterable[str]] = ...) -> None: ...
 
 class SliceHeader(_message.Message):
-    __slots__ = ("run_id", "time_m", "iteration", "variable_set", "patches", "total_bytes")
+    __slots__ = ("run_id", "time_m", "iteration", "variable_set", "patches", "total_bytes", "part_index", "part_count")
     RUN_ID_FIELD_NUMBER: _ClassVar[int]
     TIME_M_FIELD_NUMBER: _ClassVar[int]
     ITERATION_FIELD_NUMBER: _ClassVar[int]
     VARIABLE_SET_FIELD_NUMBER: _ClassVar[int]
     PATCHES_FIELD_NUMBER: _ClassVar[int]
     TOTAL_BYTES_FIELD_NUMBER: _ClassVar[int]
+    PART_INDEX_FIELD_NUMBER: _ClassVar[int]
+    PART_COUNT_FIELD_NUMBER: _ClassVar[int]
     run_id: str
     time_m: float
     iteration: int
     variable_set: VariableSet
     patches: _containers.RepeatedCompositeFieldContainer[PatchHeader]
     total_bytes: int
-    def __init__(self, run_id: _Optional[str] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., patches: _Optional[_Iterable[_Union[PatchHeader, _Mapping]]] = ..., total_bytes: _Optional[int] = ...) -> None: ...
+    part_index: int
+    part_count: int
+    def __init__(self, run_id: _Optional[str] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., patches: _Optional[_Iterable[_Union[PatchHeader, _Mapping]]] = ..., total_bytes: _Optional[int] = ..., part_index: _Optional[int] = ..., part_count: _Optional[int] = ...) -> None: ...
 
 class SliceChunk(_message.Message):
     __slots__ = ("patch_index", "field_name", "offset_bytes", "data")
@@ -266,28 +274,34 @@ class SendSliceRequest(_message.Message):
     def __init__(self, header: _Optional[_Union[SliceHeader, _Mapping]] = ..., chunk: _Optional[_Union[SliceChunk, _Mapping]] = ...) -> None: ...
 
 class SendSliceResponse(_message.Message):
-    __slots__ = ("run_id", "iteration", "outcome", "received_bytes", "queue_position", "skipped_iterations")
+    __slots__ = ("run_id", "iteration", "outcome", "received_bytes", "queue_position", "skipped_iterations", "parts_received", "parts_expected")
     class Outcome(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         OUTCOME_UNSPECIFIED: _ClassVar[SendSliceResponse.Outcome]
         OUTCOME_ACCEPTED: _ClassVar[SendSliceResponse.Outcome]
         OUTCOME_DUPLICATE: _ClassVar[SendSliceResponse.Outcome]
+        OUTCOME_PART_ACCEPTED: _ClassVar[SendSliceResponse.Outcome]
     OUTCOME_UNSPECIFIED: SendSliceResponse.Outcome
     OUTCOME_ACCEPTED: SendSliceResponse.Outcome
     OUTCOME_DUPLICATE: SendSliceResponse.Outcome
+    OUTCOME_PART_ACCEPTED: SendSliceResponse.Outcome
     RUN_ID_FIELD_NUMBER: _ClassVar[int]
     ITERATION_FIELD_NUMBER: _ClassVar[int]
     OUTCOME_FIELD_NUMBER: _ClassVar[int]
     RECEIVED_BYTES_FIELD_NUMBER: _ClassVar[int]
     QUEUE_POSITION_FIELD_NUMBER: _ClassVar[int]
     SKIPPED_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
+    PARTS_RECEIVED_FIELD_NUMBER: _ClassVar[int]
+    PARTS_EXPECTED_FIELD_NUMBER: _ClassVar[int]
     run_id: str
     iteration: int
     outcome: SendSliceResponse.Outcome
     received_bytes: int
     queue_position: int
     skipped_iterations: _containers.RepeatedScalarFieldContainer[int]
-    def __init__(self, run_id: _Optional[str] = ..., iteration: _Optional[int] = ..., outcome: _Optional[_Union[SendSliceResponse.Outcome, str]] = ..., received_bytes: _Optional[int] = ..., queue_position: _Optional[int] = ..., skipped_iterations: _Optional[_Iterable[int]] = ...) -> None: ...
+    parts_received: int
+    parts_expected: int
+    def __init__(self, run_id: _Optional[str] = ..., iteration: _Optional[int] = ..., outcome: _Optional[_Union[SendSliceResponse.Outcome, str]] = ..., received_bytes: _Optional[int] = ..., queue_position: _Optional[int] = ..., skipped_iterations: _Optional[_Iterable[int]] = ..., parts_received: _Optional[int] = ..., parts_expected: _Optional[int] = ...) -> None: ...
 
 class WatchRunRequest(_message.Message):
     __slots__ = ("run_id", "start_seq")
@@ -427,6 +441,32 @@ class SliceProcessed(_message.Message):
     error: str
     def __init__(self, surfaces_attempted: _Optional[int] = ..., surfaces_found: _Optional[int] = ..., latency_s: _Optional[float] = ..., queue_wait_s: _Optional[float] = ..., error: _Optional[str] = ...) -> None: ...
 
+class SlicePartsMissing(_message.Message):
+    __slots__ = ("iteration", "time_m", "parts_expected", "missing_part_indices", "disposition", "patches_received", "message")
+    class Disposition(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+        __slots__ = ()
+        DISPOSITION_UNSPECIFIED: _ClassVar[SlicePartsMissing.Disposition]
+        DISPOSITION_PROCESSED: _ClassVar[SlicePartsMissing.Disposition]
+        DISPOSITION_GIVEN_UP: _ClassVar[SlicePartsMissing.Disposition]
+    DISPOSITION_UNSPECIFIED: SlicePartsMissing.Disposition
+    DISPOSITION_PROCESSED: SlicePartsMissing.Disposition
+    DISPOSITION_GIVEN_UP: SlicePartsMissing.Disposition
+    ITERATION_FIELD_NUMBER: _ClassVar[int]
+    TIME_M_FIELD_NUMBER: _ClassVar[int]
+    PARTS_EXPECTED_FIELD_NUMBER: _ClassVar[int]
+    MISSING_PART_INDICES_FIELD_NUMBER: _ClassVar[int]
+    DISPOSITION_FIELD_NUMBER: _ClassVar[int]
+    PATCHES_RECEIVED_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    iteration: int
+    time_m: float
+    parts_expected: int
+    missing_part_indices: _containers.RepeatedScalarFieldContainer[int]
+    disposition: SlicePartsMissing.Disposition
+    patches_received: int
+    message: str
+    def __init__(self, iteration: _Optional[int] = ..., time_m: _Optional[float] = ..., parts_expected: _Optional[int] = ..., missing_part_indices: _Optional[_Iterable[int]] = ..., disposition: _Optional[_Union[SlicePartsMissing.Disposition, str]] = ..., patches_received: _Optional[int] = ..., message: _Optional[str] = ...) -> None: ...
+
 class RunStateChanged(_message.Message):
     __slots__ = ("state", "reason")
     STATE_FIELD_NUMBER: _ClassVar[int]
@@ -436,7 +476,7 @@ class RunStateChanged(_message.Message):
     def __init__(self, state: _Optional[_Union[Run.State, str]] = ..., reason: _Optional[str] = ...) -> None: ...
 
 class RunEvent(_message.Message):
-    __slots__ = ("seq", "run_id", "emit_time_unix_s", "time_m", "iteration", "surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed", "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning")
+    __slots__ = ("seq", "run_id", "emit_time_unix_s", "time_m", "iteration", "surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed", "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning", "slice_parts_missing")
     SEQ_FIELD_NUMBER: _ClassVar[int]
     RUN_ID_FIELD_NUMBER: _ClassVar[int]
     EMIT_TIME_UNIX_S_FIELD_NUMBER: _ClassVar[int]
@@ -452,6 +492,7 @@ class RunEvent(_message.Message):
     REFINEMENT_GUIDANCE_FIELD_NUMBER: _ClassVar[int]
     DATA_WINDOWS_WANTED_FIELD_NUMBER: _ClassVar[int]
     WARNING_FIELD_NUMBER: _ClassVar[int]
+    SLICE_PARTS_MISSING_FIELD_NUMBER: _ClassVar[int]
     seq: int
     run_id: str
     emit_time_unix_s: float
@@ -467,7 +508,8 @@ class RunEvent(_message.Message):
     refinement_guidance: RefinementGuidance
     data_windows_wanted: DataWindowsWanted
     warning: RunWarning
-    def __init__(self, seq: _Optional[int] = ..., run_id: _Optional[str] = ..., emit_time_unix_s: _Optional[float] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., surface_found: _Optional[_Union[SurfaceFound, _Mapping]] = ..., surface_not_found: _Optional[_Union[SurfaceNotFound, _Mapping]] = ..., slice_skipped: _Optional[_Union[SliceSkipped, _Mapping]] = ..., run_state_changed: _Optional[_Union[RunStateChanged, _Mapping]] = ..., slice_processed: _Optional[_Union[SliceProcessed, _Mapping]] = ..., track_updated: _Optional[_Union[TrackUpdated, _Mapping]] = ..., common_horizon_formed: _Optional[_Union[CommonHorizonFormed, _Mapping]] = ..., refinement_guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., data_windows_wanted: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., warning: _Optional[_Union[RunWarning, _Mapping]] = ...) -> None: ...
+    slice_parts_missing: SlicePartsMissing
+    def __init__(self, seq: _Optional[int] = ..., run_id: _Optional[str] = ..., emit_time_unix_s: _Optional[float] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., surface_found: _Optional[_Union[SurfaceFound, _Mapping]] = ..., surface_not_found: _Optional[_Union[SurfaceNotFound, _Mapping]] = ..., slice_skipped: _Optional[_Union[SliceSkipped, _Mapping]] = ..., run_state_changed: _Optional[_Union[RunStateChanged, _Mapping]] = ..., slice_processed: _Optional[_Union[SliceProcessed, _Mapping]] = ..., track_updated: _Optional[_Union[TrackUpdated, _Mapping]] = ..., common_horizon_formed: _Optional[_Union[CommonHorizonFormed, _Mapping]] = ..., refinement_guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., data_windows_wanted: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., warning: _Optional[_Union[RunWarning, _Mapping]] = ..., slice_parts_missing: _Optional[_Union[SlicePartsMissing, _Mapping]] = ...) -> None: ...
 
 class TrackPoint(_message.Message):
     __slots__ = ("time_m", "iteration", "position_m", "source", "uncertainty_m")

@@ -114,20 +114,30 @@ class HorizonServiceServicer:
         raise NotImplementedError('Method not implemented!')
 
     def SendSlice(self, request_iterator, context):
-        """Sends one slice: the first message carries a `SliceHeader`, every later message a
-        `SliceChunk`. The reply comes once the slice is assembled and queued, never after a
-        find. Re-sending a slice with the same run and iteration is idempotent: the reply has
-        outcome OUTCOME_DUPLICATE and status OK, and the slice is archived once.
-        Status codes:
+        """Sends one slice, or one part of a slice sent in parts (header part_count > 1, e.g. one
+        part per MPI rank): the first message carries a `SliceHeader`, every later message a
+        `SliceChunk`. The reply comes once the slice (or part) is assembled and queued (or
+        stored, outcome OUTCOME_PART_ACCEPTED), never after a find. Re-sending a slice with the
+        same run and iteration, or a part with the same run, iteration and part_index, is
+        idempotent: the reply has outcome OUTCOME_DUPLICATE and status OK, and the slice is
+        archived once. A refused part leaves the parts already stored pending.
+        Status codes (messages of part refusals start with a reason token in brackets, e.g.
+        "[part_index_out_of_range]"):
         NOT_FOUND            unknown run_id.
-        FAILED_PRECONDITION  the run is closed.
-        INVALID_ARGUMENT     header missing or malformed (unknown variable set, a required
-        field missing from a patch, bad shape/spacing/dtype/order,
-        total_bytes not matching the patches), a chunk that does not
-        fit the patch and field the header declared, chunks of a field
-        out of order, or a non-finite value in a field.
-        RESOURCE_EXHAUSTED   a chunk larger than the server's chunk limit, or a slice
-        larger than the server's slice limit.
+        FAILED_PRECONDITION  the run is closed; a part whose time_m or part_count differs from
+        the parts of its iteration stored before; a part of an iteration
+        already assembled (or accepted whole) or given up.
+        INVALID_ARGUMENT     header missing or malformed (unknown variable set, no patches in a
+        whole slice, a required field missing from a patch, bad
+        shape/spacing/dtype/order, total_bytes not matching the patches,
+        part_count < 0, part_index outside 0 .. part_count - 1), a chunk
+        that does not fit the patch and field the header declared, chunks
+        of a field out of order, or a non-finite value in a field.
+        ALREADY_EXISTS       a part carries a patch (same level, origin, spacing and shape)
+        that another part of the iteration carried with different data.
+        RESOURCE_EXHAUSTED   a chunk larger than the server's chunk limit, or a slice (or the
+        parts of one iteration together) larger than the server's slice
+        limit.
         DATA_LOSS            the stream ended before every byte the header declared arrived.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)

@@ -57,6 +57,10 @@ class RunProgress:
             self.warnings.append(f"warning at iteration {getattr(event, 'iteration', -1)} "
                                  f"({getattr(event, 'label', '')}): {str(getattr(event, 'reason', ''))[:160]}")
             del self.warnings[:-3]
+        elif kind == "slice_parts_missing":
+            self.warnings.append(f"parts missing at iteration {getattr(event, 'iteration', -1)}: "
+                                 f"{str(getattr(event, 'reason', ''))[:160]}")
+            del self.warnings[:-3]
         if kind in ("slice_processed", "slice_skipped"):
             it = int(getattr(event, "iteration", -1))
             if it > self.newest_iteration and kind == "slice_processed":

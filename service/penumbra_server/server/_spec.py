@@ -23,6 +23,7 @@ __all__ = [
     "DEFAULT_TOLERANCE",
     "DEFAULT_MAX_ITERATIONS",
     "DEFAULT_QUEUE_DEPTH",
+    "DEFAULT_PART_DEADLINE_S",
     "DEFAULT_REFINEMENT",
     "refinement_from_wire",
     "refinement_to_wire",
@@ -37,6 +38,10 @@ DEFAULT_LMAX_COMMON = 16
 DEFAULT_TOLERANCE = 1e-8  # 1/M; common practice is 1e-8 to 1e-10 (references.md)
 DEFAULT_MAX_ITERATIONS = 40
 DEFAULT_QUEUE_DEPTH = 4
+#: Seconds the server waits for the missing parts of a slice sent in parts, from its first part.
+DEFAULT_PART_DEADLINE_S = 60.0
+#: Longest part deadline a spec may ask for (a day): pending parts hold memory.
+MAX_PART_DEADLINE_S = 86400.0
 MAX_LMAX = 32
 MAX_BODIES = 16
 MAX_QUEUE_DEPTH = 1024
@@ -155,6 +160,8 @@ class RunSettings:
     refinement: RefinementPolicy = DEFAULT_REFINEMENT
     #: Slices carry z >= 0 only and are mirrored through z = 0 at ingest.
     reflection_z: bool = False
+    #: Seconds from the first part of a slice sent in parts until the server processes what arrived.
+    part_deadline_s: float = DEFAULT_PART_DEADLINE_S
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -215,6 +222,10 @@ class RunSettings:
         depth = spec.backlog.queue_depth or default_queue_depth
         if not 1 <= depth <= MAX_QUEUE_DEPTH:
             raise ServiceError.invalid(f"spec.backlog.queue_depth: expected 1..{MAX_QUEUE_DEPTH} (0 for the default), got {depth}")
+        part_deadline = _finite(spec.part_deadline_s, "spec.part_deadline_s") or DEFAULT_PART_DEADLINE_S
+        if not 0 < part_deadline <= MAX_PART_DEADLINE_S:
+            raise ServiceError.invalid(f"spec.part_deadline_s: expected seconds in (0, {MAX_PART_DEADLINE_S:g}] "
+                                       f"(0 for the default {DEFAULT_PART_DEADLINE_S:g}), got {part_deadline}")
         scale = _finite(spec.mass_scale_solar_masses, "spec.mass_scale_solar_masses")
         if scale < 0:
             raise ServiceError.invalid(f"spec.mass_scale_solar_masses: expected >= 0, got {scale}")
@@ -230,6 +241,7 @@ class RunSettings:
             lmax_common=int(lmax_common),
             refinement=refinement_from_wire(spec.refinement),
             reflection_z=bool(spec.reflection_z),
+            part_deadline_s=float(part_deadline),
         )
 
     def to_wire(self) -> pb.RunSpec:
@@ -250,6 +262,7 @@ class RunSettings:
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.queue_depth),
             refinement=refinement_to_wire(self.refinement),
             reflection_z=self.reflection_z,
+            part_deadline_s=self.part_deadline_s,
         )
 
     # -- archive attributes -----------------------------------------------------------------
@@ -266,6 +279,7 @@ class RunSettings:
             "backlog": {"queue_depth": self.queue_depth, "policy": self.backlog_policy},
             "refinement": _refinement_to_dict(self.refinement),
             "reflection_z": self.reflection_z,
+            "part_deadline_s": self.part_deadline_s,
         }
 
     @classmethod
@@ -284,4 +298,5 @@ class RunSettings:
             backlog_policy=data["backlog"].get("policy", "keep_newest"),
             refinement=_refinement_from_dict(data.get("refinement")),
             reflection_z=bool(data.get("reflection_z", False)),
+            part_deadline_s=float(data.get("part_deadline_s", DEFAULT_PART_DEADLINE_S)),
         )

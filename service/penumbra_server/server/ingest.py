@@ -68,9 +68,12 @@ class SliceAssembler:
         header: the stream's first message.
         run_variable_set: the run's variable set; the header must match it.
         limits: size limits.
+        allow_empty: accept a header without patches (a part of a slice sent in parts); then
+            only :meth:`finish_patches` may be called.
     """
 
-    def __init__(self, header: pb.SliceHeader, run_variable_set: VariableSet, limits: IngestLimits) -> None:
+    def __init__(self, header: pb.SliceHeader, run_variable_set: VariableSet, limits: IngestLimits, *,
+                 allow_empty: bool = False) -> None:
         self.limits = limits
         self.run_id = header.run_id
         self.iteration = int(header.iteration)
@@ -83,7 +86,7 @@ class SliceAssembler:
                 f"header.variable_set: {self.variable_set.value} does not match the run's variable set "
                 f"{run_variable_set.value}"
             )
-        if not header.patches:
+        if not header.patches and not allow_empty:
             raise ServiceError.invalid("header.patches: expected at least one patch, got none")
         if len(header.patches) > MAX_PATCHES:
             raise ServiceError.invalid(f"header.patches: at most {MAX_PATCHES} patches, got {len(header.patches)}")
@@ -199,6 +202,14 @@ class SliceAssembler:
 
         Safe to run on a worker thread (numpy releases the GIL for the finiteness check).
         """
+        try:
+            return Slice(time=self.time, iteration=self.iteration, variable_set=self.variable_set,
+                         patches=self.finish_patches())
+        except SliceError as exc:
+            raise ServiceError.invalid(str(exc)) from None
+
+    def finish_patches(self) -> tuple[Patch, ...]:
+        """The patches of the stream, checked as :meth:`finish` checks them (possibly none)."""
         if self.received_bytes != self.total_bytes:
             raise ServiceError(
                 grpc.StatusCode.DATA_LOSS,
@@ -228,10 +239,7 @@ class SliceAssembler:
                 )
             except SliceError as exc:
                 raise ServiceError.invalid(f"patches[{index}]: {exc}") from None
-        try:
-            return Slice(time=self.time, iteration=self.iteration, variable_set=self.variable_set, patches=tuple(patches))
-        except SliceError as exc:
-            raise ServiceError.invalid(str(exc)) from None
+        return tuple(patches)
 
 
 def mirror_through_z0(slice_: Slice) -> Slice:

@@ -33,6 +33,7 @@ from .errors import ServiceError
 from .events import EventLog
 from .executors import FinderExecutor
 from ..archive import _layout as layout
+from .parts import PartAssembly
 from .jobs import REASON_NOT_CONVERGED, REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceJob, SurfaceOutcome, crop_slice
 from .planning import steering_planner_factory
 from .scheduler import SurfacePlan, SurfacePlanner, SurfaceTrack
@@ -133,6 +134,10 @@ class RunRecord:
         self.slices_processed = 0
         self.slices_skipped = 0
         self.slices_duplicate = 0
+        #: Slices sent in parts and processed with parts missing.
+        self.slices_incomplete = 0
+        #: Slices arriving in parts, per iteration, until complete or past the part deadline.
+        self.parts = PartAssembly(self, run_id=run_id, deadline_s=settings.part_deadline_s)
         #: (iteration, time) of the newest slice accepted; the lag of a watcher's view.
         self.last_received: tuple[int, float] = (-1, float("nan"))
         self.state_events: list[dict] = list(writer.attrs.get("state_events", []))
@@ -174,6 +179,7 @@ class RunRecord:
             archive_path=str(self.archive_path),
             last_received_iteration=self.last_received[0],
             last_received_time_m=self.last_received[1],
+            slices_incomplete=self.slices_incomplete,
         )
 
     def latest_surfaces(self) -> pb.GetLatestSurfacesResponse:
@@ -215,7 +221,8 @@ class RunRecord:
         self.slices_duplicate += 1
         return pb.SendSliceResponse(run_id=self.run_id, iteration=iteration,
                                     outcome=pb.SendSliceResponse.OUTCOME_DUPLICATE,
-                                    received_bytes=received_bytes, queue_position=-1)
+                                    received_bytes=received_bytes, queue_position=-1, parts_received=1,
+                                    parts_expected=1)
 
     def accept(self, item: QueuedSlice) -> pb.SendSliceResponse:
         """Queue an assembled slice under the keep-newest policy; never waits."""
@@ -241,7 +248,21 @@ class RunRecord:
             received_bytes=item.nbytes,
             queue_position=len(self._queue) - 1,
             skipped_iterations=[old.iteration for old in skipped],
+            parts_received=1,
+            parts_expected=1,
         )
+
+    def accept_assembled(self, slice_: Slice | None, nbytes: int,
+                         report: pb.SlicePartsMissing | None) -> pb.SendSliceResponse | None:
+        """Take a slice assembled from parts (parts.PartSink): announce ``report`` (parts missing)
+        first, then queue the slice as :meth:`accept` does; ``slice_`` None: given up, nothing queued."""
+        if report is not None:
+            self._submit(self._parts_missing_emission(report))
+            if slice_ is not None:
+                self.slices_incomplete += 1
+        if slice_ is None:
+            return None
+        return self.accept(QueuedSlice(slice_=slice_, nbytes=nbytes, arrival_unix_s=time.time()))
 
     # -- processing ---------------------------------------------------------------------------
 
@@ -394,6 +415,19 @@ class RunRecord:
 
         return _Emission(build, apply)
 
+    def _parts_missing_emission(self, report: pb.SlicePartsMissing) -> _Emission:
+        """The slice_parts_missing event, archived with the tracking events (replayed after a restart)."""
+        def build(seq: int, now: float):
+            event = pb.RunEvent(seq=seq, run_id=self.run_id, time_m=report.time_m, iteration=report.iteration)
+            event.slice_parts_missing.CopyFrom(report)
+            rows = {layout.EVENTS_GROUP: [{
+                "seq": seq, "kind": "slice_parts_missing", "iteration": report.iteration, "time": report.time_m,
+                "label": "", "message": report.message, "wire": encode_wire(event), "archived_unix_s": now,
+            }]}
+            return event, [], {}, {}, rows
+
+        return _Emission(build, None)
+
     def _slice_emission(self, item: QueuedSlice, *, attempted: int, found: int, started: float,
                         error: str = "") -> _Emission:
         def build(seq: int, now: float):
@@ -523,6 +557,7 @@ class RunRecord:
         if self._closing:
             await self._closed.wait()
             return
+        self.parts.flush("the run was closed before every part arrived")
         self._closing = True
         self._queue_changed.set()
         await self._processor_task
@@ -536,6 +571,7 @@ class RunRecord:
     def mark_closed(self, closed_unix_s: float) -> None:
         """A run loaded closed from its archive: no processing, its log ends after the held events."""
         self._closing = True
+        self.parts.cancel()
         self.state = pb.Run.STATE_CLOSED
         self.closed_unix_s = closed_unix_s
         self._processor_task.cancel()
@@ -544,7 +580,9 @@ class RunRecord:
         self._closed.set()
 
     async def shutdown(self) -> None:
-        """Server stopping: stop processing, let the commit in flight finish, keep the run open on disk."""
+        """Server stopping: stop processing, let the commit in flight finish, keep the run open on disk.
+        Parts of unfinished slices are dropped (they live in memory only)."""
+        self.parts.cancel()
         self._processor_task.cancel()
         try:
             await self._processor_task
@@ -614,6 +652,11 @@ class RunRecord:
                 self.latest_guidance_event = event
             elif kind == "data_windows_wanted":
                 self.latest_windows_event = event
+            elif kind == "slice_parts_missing":
+                if event.slice_parts_missing.disposition == pb.SlicePartsMissing.DISPOSITION_PROCESSED:
+                    self.slices_incomplete += 1
+                else:
+                    self.parts.given_up.add(int(event.iteration))
         self.steering.restore(surfaces, tracking_events)
         for entry in self.state_events:
             event = pb.RunEvent(seq=int(entry["seq"]), run_id=self.run_id, emit_time_unix_s=float(entry["unix_s"]))

@@ -19,6 +19,7 @@ from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
 from .errors import ServiceError
 from .ingest import IngestLimits, SliceAssembler, mirror_through_z0
+from .parts import PartLabel, part_of, prepare_part
 from .runs import QueuedSlice, RunManager
 
 __all__ = ["HorizonServicer"]
@@ -99,6 +100,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
     async def SendSlice(self, request_iterator, context) -> pb.SendSliceResponse:
         assembler: SliceAssembler | None = None
         run = None
+        label = PartLabel(0, 1)
         async for request in request_iterator:
             part = request.WhichOneof("part")
             if assembler is None:
@@ -108,21 +110,28 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                 header = request.header
                 run = self.manager.get(header.run_id)
                 run.check_accepting()
-                if run.is_duplicate(header.iteration):
+                label = part_of(header)
+                if not label.is_part and run.is_duplicate(header.iteration):
                     # Idempotent resend: answer at once, without reading the data again.
                     return run.duplicate_response(header.iteration, 0)
-                assembler = SliceAssembler(header, run.settings.variable_set, self.limits)
+                assembler = SliceAssembler(header, run.settings.variable_set, self.limits, allow_empty=label.is_part)
+                if run.parts.check(assembler.iteration, assembler.time, label):
+                    return run.parts.duplicate_response(assembler.iteration, label)
             elif part == "chunk":
                 assembler.add(request.chunk)
             else:
                 raise ServiceError.invalid(f"chunk: expected only chunks after the header, got {part or 'an empty message'}")
         if assembler is None:
             raise ServiceError.invalid("header: the stream ended without a header")
+        if label.is_part:
+            part = await asyncio.to_thread(prepare_part, assembler, label, reflection_z=run.settings.reflection_z)
+            return await run.parts.receive(part, max_bytes=self.limits.max_slice_bytes)
         # The finiteness check walks every value: keep it off the event loop.
         slice_ = await asyncio.to_thread(assembler.finish)
         if run.settings.reflection_z:
             slice_ = await asyncio.to_thread(mirror_through_z0, slice_)
         item = QueuedSlice(slice_=slice_, nbytes=assembler.received_bytes, arrival_unix_s=time.time())
+        run.parts.check(slice_.iteration, slice_.time, label)  # parts of this iteration may have begun meanwhile
         return run.accept(item)
 
     @_translating_errors

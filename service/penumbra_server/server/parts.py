@@ -1,0 +1,394 @@
+"""Slices sent in parts: one part per sender (e.g. per MPI rank), assembled per iteration.
+
+An evolution that runs on many ranks sends, for one iteration, one part per rank: the patches
+that rank owns, with the part's index and the number of parts (``SliceHeader.part_index`` and
+``part_count``). A run's :class:`PartAssembly` keeps, per iteration, the patches of each part
+that arrived, the slice's time and part count, and a deadline timer on the event loop. When the
+last part arrives the patches are merged, in part order, into one numerics ``Slice`` and handed
+to the run like a whole slice (queue, duplicate check and processing unchanged). When the run's
+part deadline passes first, the patches that arrived are handed on with a ``SlicePartsMissing``
+report, or the slice is given up when no part carried a patch.
+
+Refusals are :class:`ServiceError` whose message starts with a reason token in brackets (see
+:data:`REASONS`) followed by the field at fault and what was expected. A refused part changes
+nothing: the parts stored before stay pending.
+
+Cost on the event loop: dictionary look-ups per patch. The one data comparison (a patch that two
+parts both carry) runs on a worker thread, as does everything that reads field values.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import math
+from dataclasses import dataclass, field
+from typing import Protocol
+
+import grpc
+import numpy as np
+
+from penumbra_shim._wire import horizons_pb2 as pb
+
+from ..numerics.reflection import mirror_patch_through_z0
+from ..numerics.slices import Patch, Slice, SliceError, VariableSet
+from .errors import ServiceError
+from .ingest import SliceAssembler
+
+__all__ = ["REASONS", "MAX_PART_COUNT", "PartLabel", "ReceivedPart", "PartSink", "PartAssembly", "part_of",
+           "prepare_part", "patch_key"]
+
+log = logging.getLogger("penumbra.server")
+
+#: Most parts one slice may be sent in (one per MPI rank; large machines run ~1e5 ranks).
+MAX_PART_COUNT = 1 << 20
+
+#: Reason tokens at the start of every refusal message of this module, by status code.
+REASONS: dict[str, grpc.StatusCode] = {
+    "part_count_negative": grpc.StatusCode.INVALID_ARGUMENT,
+    "part_count_too_large": grpc.StatusCode.INVALID_ARGUMENT,
+    "part_index_out_of_range": grpc.StatusCode.INVALID_ARGUMENT,
+    "whole_slice_without_patches": grpc.StatusCode.INVALID_ARGUMENT,
+    "part_time_mismatch": grpc.StatusCode.FAILED_PRECONDITION,
+    "part_count_mismatch": grpc.StatusCode.FAILED_PRECONDITION,
+    "part_after_assembly": grpc.StatusCode.FAILED_PRECONDITION,
+    "part_after_give_up": grpc.StatusCode.FAILED_PRECONDITION,
+    "patch_conflict": grpc.StatusCode.ALREADY_EXISTS,
+    "parts_too_large": grpc.StatusCode.RESOURCE_EXHAUSTED,
+}
+
+
+def _refusal(reason: str, text: str) -> ServiceError:
+    return ServiceError(REASONS[reason], f"[{reason}] {text}")
+
+
+@dataclass(frozen=True)
+class PartLabel:
+    """Which part of its slice a stream carries: ``index`` in 0 .. ``count`` - 1 (count 1: whole)."""
+
+    index: int
+    count: int
+
+    @property
+    def is_part(self) -> bool:
+        return self.count > 1
+
+
+def part_of(header: pb.SliceHeader) -> PartLabel:
+    """The validated part index and count of a SendSlice header (INVALID_ARGUMENT naming the field)."""
+    count, index = int(header.part_count), int(header.part_index)
+    if count < 0:
+        raise _refusal("part_count_negative", f"header.part_count: expected 0 or 1 for a whole slice or the "
+                                              f"number of parts (2 .. {MAX_PART_COUNT}), got {count}")
+    if count > MAX_PART_COUNT:
+        raise _refusal("part_count_too_large", f"header.part_count: at most {MAX_PART_COUNT} parts, got {count}")
+    count = max(count, 1)
+    if not 0 <= index < count:
+        raise _refusal("part_index_out_of_range", f"header.part_index: expected 0 .. {count - 1} for part_count "
+                                                  f"{header.part_count}, got {index}")
+    if count == 1 and not header.patches:
+        raise _refusal("whole_slice_without_patches",
+                       "header.patches: a whole slice (part_count 0 or 1) needs at least one patch, got none; "
+                       "only a part of a slice sent in parts (part_count > 1) may be empty")
+    return PartLabel(index, count)
+
+
+def patch_key(patch: Patch) -> tuple:
+    """What makes two patches "the same patch": level, origin, spacing and shape."""
+    return (patch.level, *(float(v) for v in patch.origin), *(float(v) for v in patch.spacing), *patch.shape)
+
+
+def _same_data(a: Patch, b: Patch) -> bool:
+    return a.fields.keys() == b.fields.keys() and all(np.array_equal(a.fields[n], b.fields[n]) for n in a.fields)
+
+
+def _describe(patch: Patch) -> str:
+    return (f"level {patch.level}, origin {np.round(patch.origin, 6).tolist()}, spacing "
+            f"{np.round(patch.spacing, 6).tolist()}, shape {list(patch.shape)}")
+
+
+def _patch_bytes(patches) -> int:
+    return int(sum(a.nbytes for p in patches for a in p.fields.values()))
+
+
+@dataclass(frozen=True, eq=False)
+class ReceivedPart:
+    """One part as it arrived: its slice's identity, its label and its patches (copies dropped),
+    with each patch's :func:`patch_key` and field bytes (worked out off the event loop)."""
+
+    iteration: int
+    time: float
+    variable_set: VariableSet
+    label: PartLabel
+    patches: tuple[Patch, ...]
+    nbytes: int
+    keys: tuple[tuple, ...] = ()
+    patch_bytes: tuple[int, ...] = ()
+
+    def __post_init__(self) -> None:
+        if len(self.keys) != len(self.patches):
+            object.__setattr__(self, "keys", tuple(patch_key(p) for p in self.patches))
+        if len(self.patch_bytes) != len(self.patches):
+            object.__setattr__(self, "patch_bytes", tuple(_patch_bytes((p,)) for p in self.patches))
+
+
+def prepare_part(assembler: SliceAssembler, label: PartLabel, *, reflection_z: bool) -> ReceivedPart:
+    """The checked patches of one part stream (run on a worker thread: it reads every value).
+
+    DATA_LOSS / INVALID_ARGUMENT as :meth:`SliceAssembler.finish`; with ``reflection_z`` each
+    patch is mirrored through z = 0. A patch the part carries twice is kept once if its data are
+    identical, else ALREADY_EXISTS.
+    """
+    patches = assembler.finish_patches()
+    if reflection_z:
+        mirrored = []
+        for index, patch in enumerate(patches):
+            try:
+                mirrored.extend(mirror_patch_through_z0(patch, index=index))
+            except SliceError as exc:
+                raise ServiceError.invalid(f"header.patches: the run has reflection_z set: {exc}") from None
+        patches = tuple(mirrored)
+    seen: dict[tuple, Patch] = {}
+    kept, keys = [], []
+    for patch in patches:
+        key = patch_key(patch)
+        first = seen.get(key)
+        if first is None:
+            seen[key] = patch
+            kept.append(patch)
+            keys.append(key)
+        elif not _same_data(first, patch):
+            raise _refusal("patch_conflict", f"header.patches: part {label.index} carries the patch ({_describe(patch)}) "
+                                             f"twice with different data; expected one copy")
+    return ReceivedPart(iteration=assembler.iteration, time=assembler.time, variable_set=assembler.variable_set,
+                        label=label, patches=tuple(kept), nbytes=assembler.received_bytes, keys=tuple(keys))
+
+
+class PartSink(Protocol):
+    """What a :class:`PartAssembly` needs of its run."""
+
+    def check_accepting(self) -> None:
+        """Raise the run's refusal if it takes no more slices."""
+
+    def is_duplicate(self, iteration: int) -> bool:
+        """Whether the run accepted a slice of ``iteration`` (whole, or assembled from parts)."""
+
+    def duplicate_response(self, iteration: int, received_bytes: int) -> pb.SendSliceResponse:
+        """The reply to a copy of something the run holds (counted as a duplicate)."""
+
+    def accept_assembled(self, slice_: Slice | None, nbytes: int,
+                         report: pb.SlicePartsMissing | None) -> pb.SendSliceResponse | None:
+        """Take an assembled slice (None: given up) and announce ``report`` (parts missing) if any."""
+
+
+@dataclass(eq=False)
+class _Pending:
+    """The parts of one iteration received so far."""
+
+    iteration: int
+    time: float
+    count: int
+    variable_set: VariableSet
+    parts: dict[int, tuple[Patch, ...]] = field(default_factory=dict)
+    #: patch key -> (the patch kept, index of the part that brought it)
+    by_key: dict[tuple, tuple[Patch, int]] = field(default_factory=dict)
+    nbytes: int = 0
+    patch_bytes: int = 0
+    timer: asyncio.TimerHandle | None = None
+
+    def merged(self) -> Slice:
+        """The slice of every patch received, in part order (one pass; no pairwise checks)."""
+        patches = tuple(p for index in sorted(self.parts) for p in self.parts[index])
+        return Slice(time=self.time, iteration=self.iteration, variable_set=self.variable_set, patches=patches)
+
+
+class PartAssembly:
+    """The slices of one run that are arriving in parts. Call everything on the event loop thread.
+
+    Args:
+        sink: the run (see :class:`PartSink`).
+        run_id: for messages.
+        deadline_s: seconds from an iteration's first part until what arrived is handed on.
+    """
+
+    def __init__(self, sink: PartSink, *, run_id: str, deadline_s: float) -> None:
+        if not (math.isfinite(deadline_s) and deadline_s > 0):
+            raise ValueError(f"deadline_s: expected a finite number of seconds > 0, got {deadline_s}")
+        self.sink = sink
+        self.run_id = run_id
+        self.deadline_s = float(deadline_s)
+        self._pending: dict[int, _Pending] = {}
+        #: Iterations given up (no patch arrived before the deadline): later parts are refused.
+        self.given_up: set[int] = set()
+
+    @property
+    def pending_iterations(self) -> list[int]:
+        return sorted(self._pending)
+
+    # -- checks -------------------------------------------------------------------------------
+
+    def check(self, iteration: int, time_m: float, label: PartLabel) -> bool:
+        """Refuse a stream that cannot join its iteration; True when this part is held already.
+
+        A whole slice (count 1) is refused only while parts of its iteration are pending.
+        """
+        pending = self._pending.get(iteration)
+        if not label.is_part:
+            if pending is not None:
+                raise _refusal("part_count_mismatch",
+                               f"header.part_count: iteration {iteration} is arriving in {pending.count} parts "
+                               f"({len(pending.parts)} held); a whole slice (part_count 0 or 1) cannot join them")
+            return False
+        if iteration in self.given_up:
+            raise _refusal("part_after_give_up",
+                           f"header.iteration: the slice of iteration {iteration} was already given up (no part "
+                           f"that arrived before it was handed on carried a patch); part {label.index} came too "
+                           f"late")
+        if pending is None:
+            if self.sink.is_duplicate(iteration):
+                raise _refusal("part_after_assembly",
+                               f"header.iteration: the slice of iteration {iteration} was already assembled (or "
+                               f"accepted whole) and handed on for processing; part {label.index} came too late")
+            return False
+        if label.count != pending.count:
+            raise _refusal("part_count_mismatch",
+                           f"header.part_count: expected {pending.count}, as the parts of iteration {iteration} "
+                           f"received before, got {label.count}")
+        if time_m != pending.time:
+            raise _refusal("part_time_mismatch",
+                           f"header.time_m: expected {pending.time!r} M, the time of the parts of iteration "
+                           f"{iteration} received before, got {time_m!r} M")
+        return label.index in pending.parts
+
+    def duplicate_response(self, iteration: int, label: PartLabel, received_bytes: int = 0) -> pb.SendSliceResponse:
+        """The reply to a part already held (counted by the run as a duplicate)."""
+        response = self.sink.duplicate_response(iteration, received_bytes)
+        pending = self._pending.get(iteration)
+        response.parts_received = len(pending.parts) if pending is not None else label.count
+        response.parts_expected = label.count
+        return response
+
+    # -- receiving ----------------------------------------------------------------------------
+
+    async def receive(self, part: ReceivedPart, *, max_bytes: int) -> pb.SendSliceResponse:
+        """Store one part; when it completes its slice, hand the slice to the run.
+
+        Returns OUTCOME_PART_ACCEPTED (waiting for parts), OUTCOME_DUPLICATE (held already), or
+        the run's reply to the assembled slice. Refusals leave every stored part in place.
+        """
+        iteration, label = part.iteration, part.label
+        identical: set[tuple] = set()  # keys already compared equal to the stored patch
+        while True:
+            self.sink.check_accepting()
+            if self.check(iteration, part.time, label):
+                return self.duplicate_response(iteration, label, part.nbytes)
+            pending = self._pending.get(iteration)
+            if pending is None:
+                break
+            to_compare = []
+            for key, patch in zip(part.keys, part.patches):
+                held = pending.by_key.get(key)
+                if held is not None and key not in identical:
+                    to_compare.append((key, held, patch))
+            if not to_compare:
+                break
+            # Field-by-field comparison reads both copies: off the event loop. Other parts may
+            # arrive meanwhile, so every check is made again afterwards.
+            same = await asyncio.to_thread(lambda: [_same_data(held[0], patch) for _, held, patch in to_compare])
+            for (key, (stored, owner), patch), equal in zip(to_compare, same):
+                if not equal:
+                    raise _refusal("patch_conflict",
+                                   f"header.patches: part {label.index} of iteration {iteration} carries the patch "
+                                   f"({_describe(patch)}) that part {owner} carried with different data; expected "
+                                   f"identical data or a different patch")
+                identical.add(key)
+        # From here on no await: the checks above still hold.
+        kept = [i for i, key in enumerate(part.keys) if pending is None or key not in pending.by_key]
+        kept_bytes = sum(part.patch_bytes[i] for i in kept)
+        held_bytes = pending.patch_bytes if pending is not None else 0
+        if held_bytes + kept_bytes > max_bytes:
+            raise _refusal("parts_too_large",
+                           f"header.patches: the parts of iteration {iteration} would hold {held_bytes + kept_bytes} "
+                           f"bytes, over the server's slice limit of {max_bytes} bytes")
+        if pending is None:
+            pending = _Pending(iteration=iteration, time=part.time, count=label.count, variable_set=part.variable_set)
+            self._pending[iteration] = pending
+            loop = asyncio.get_running_loop()
+            pending.timer = loop.call_later(self.deadline_s, self._expire, pending)
+        for i in kept:
+            pending.by_key[part.keys[i]] = (part.patches[i], label.index)
+        pending.parts[label.index] = tuple(part.patches[i] for i in kept)
+        pending.nbytes += part.nbytes
+        pending.patch_bytes += kept_bytes
+        if len(pending.parts) < pending.count:
+            return pb.SendSliceResponse(
+                run_id=self.run_id, iteration=iteration, outcome=pb.SendSliceResponse.OUTCOME_PART_ACCEPTED,
+                received_bytes=part.nbytes, queue_position=-1, parts_received=len(pending.parts),
+                parts_expected=pending.count)
+        self._take(pending)
+        response = self._hand_on(pending, missing=[], why="")
+        if response is None:  # every part arrived empty: nothing to process
+            response = pb.SendSliceResponse(run_id=self.run_id, iteration=iteration,
+                                            outcome=pb.SendSliceResponse.OUTCOME_PART_ACCEPTED, queue_position=-1)
+        response.received_bytes = part.nbytes
+        response.parts_received = pending.count
+        response.parts_expected = pending.count
+        return response
+
+    # -- handing on ---------------------------------------------------------------------------
+
+    def _take(self, pending: _Pending) -> None:
+        del self._pending[pending.iteration]
+        if pending.timer is not None:
+            pending.timer.cancel()
+            pending.timer = None
+
+    def _hand_on(self, pending: _Pending, *, missing: list[int], why: str) -> pb.SendSliceResponse | None:
+        """Give the run what arrived (complete when ``missing`` is empty); a report when incomplete or empty."""
+        has_patches = any(pending.parts.values())
+        if not missing and has_patches:
+            return self.sink.accept_assembled(pending.merged(), pending.nbytes, None)
+        received = sum(len(p) for p in pending.parts.values())
+        if not has_patches:
+            self.given_up.add(pending.iteration)
+            what = (f"the {len(pending.parts)} part(s) that arrived carried no patch: the slice is given up"
+                    if missing else "every part arrived and none carried a patch: nothing to process")
+        else:
+            what = f"processing the {received} patch(es) of the {len(pending.parts)} part(s) that arrived"
+        shown = ", ".join(map(str, missing[:20])) + (f" and {len(missing) - 20} more" if len(missing) > 20 else "")
+        text = f"iteration {pending.iteration}: {why + '; ' if why else ''}"
+        text += f"{len(missing)} of {pending.count} parts missing ({shown}); {what}" if missing else what
+        report = pb.SlicePartsMissing(
+            iteration=pending.iteration, time_m=pending.time, parts_expected=pending.count,
+            missing_part_indices=missing, patches_received=received, message=text,
+            disposition=(pb.SlicePartsMissing.DISPOSITION_PROCESSED if has_patches
+                         else pb.SlicePartsMissing.DISPOSITION_GIVEN_UP))
+        return self.sink.accept_assembled(pending.merged() if has_patches else None, pending.nbytes, report)
+
+    def _hand_on_incomplete(self, pending: _Pending, why: str) -> None:
+        missing = [i for i in range(pending.count) if i not in pending.parts]
+        try:
+            self._hand_on(pending, missing=missing, why=why)
+        except ServiceError as exc:  # the run stopped taking slices meanwhile
+            log.warning("run %s: iteration %d not handed on: %s", self.run_id, pending.iteration, exc.message)
+        except Exception:
+            log.exception("run %s: handing on the parts of iteration %d failed", self.run_id, pending.iteration)
+
+    def _expire(self, pending: _Pending) -> None:
+        """The deadline timer of ``pending`` (on the event loop)."""
+        if self._pending.get(pending.iteration) is not pending:
+            return
+        self._take(pending)
+        self._hand_on_incomplete(pending, f"part_deadline_s = {self.deadline_s:g} s passed since its first part")
+
+    def flush(self, why: str) -> None:
+        """Hand on every pending slice with what arrived (the run is closing)."""
+        for iteration in sorted(self._pending):
+            pending = self._pending[iteration]
+            self._take(pending)
+            self._hand_on_incomplete(pending, why)
+
+    def cancel(self) -> None:
+        """Drop every pending part and stop the timers (the server is stopping)."""
+        for pending in list(self._pending.values()):
+            self._take(pending)

@@ -29,7 +29,7 @@ def test_archive_fixture_has_what_the_physics_says(small_archive):
     # Both individual horizons exist on every slice of the track.
     assert all(found for _, _, found, _ in expected["heavy"] + expected["light"])
     # A widely separated hole's irreducible mass is close to m_i (1 + m_j / (2 d)) at leading order
-    # (references.md item 7); at d = 1.4 M (first slice) within a few per cent.
+    # (docs/references.md item 7); at d = 1.4 M (first slice) within a few per cent.
     t0, _, _, m_heavy = expected["heavy"][0]
     assert m_heavy == pytest.approx(0.6 * (1 + 0.4 / (2 * 1.4)), rel=0.03)
     # No common horizon at d = 1.4 M; one at d = 0.45 M (well below the equal-mass 0.766 M threshold,

@@ -115,8 +115,8 @@ def test_bad_parity_override_is_refused():
 
 @pytest.mark.parametrize("which", ["brill_lindquist", "kerr_z_spin"])
 def test_mirrored_half_grid_reference_spacetime_equals_the_full_grid_sample(which):
-    """Brill-Lindquist punctures in the plane z = 0 (references.md item 7) and Kerr in
-    Kerr-Schild form spinning along z (references.md item 3): both are symmetric under z -> -z,
+    """Brill-Lindquist punctures in the plane z = 0 (docs/references.md item 7) and Kerr in
+    Kerr-Schild form spinning along z (docs/references.md item 3): both are symmetric under z -> -z,
     Kerr with non-zero K_ij and shift, so the odd components are exercised."""
     st = spacetimes
     if which == "brill_lindquist":

@@ -20,7 +20,15 @@ advisory: the evolution decides what to do with them.
 """
 
 from ._client import Client, EventStream, RunHandle, SenderStats, SubmitTicket, connect
-from ._errors import PenumbraError, RunNotFoundError, SliceValidationError
+from ._errors import (
+    CropError,
+    InvalidArgumentError,
+    PenumbraError,
+    RunNotFoundError,
+    ServerError,
+    SliceValidationError,
+    UnknownWireValueError,
+)
 from ._fields import VARIABLE_SETS, optional_fields, required_fields
 from ._slices import DEFAULT_CHUNK_BYTES, OutgoingPatch, OutgoingSlice, PatchData, build_slice, crop_outgoing_slice
 from ._types import (
@@ -55,12 +63,14 @@ __all__ = [
     "BodyRefinement",
     "Client",
     "CommonHorizon",
+    "CropError",
     "DataWindow",
     "DataWindows",
     "Event",
     "EventStream",
     "FinderOptions",
     "Guidance",
+    "InvalidArgumentError",
     "PositionForecast",
     "RefinedRegion",
     "RefinementOptions",
@@ -73,6 +83,7 @@ __all__ = [
     "RunNotFoundError",
     "RunSpec",
     "SenderStats",
+    "ServerError",
     "SliceAck",
     "SliceValidationError",
     "SubmitTicket",
@@ -80,6 +91,7 @@ __all__ = [
     "SurfaceState",
     "TrackPoint",
     "TrackUpdate",
+    "UnknownWireValueError",
     "build_slice",
     "crop_outgoing_slice",
     "connect",

@@ -1,23 +1,68 @@
-"""Errors the shim raises."""
+"""Errors the shim raises: one hierarchy under :class:`PenumbraError`.
+
+Each member also subclasses the built-in error it resembles, so callers may catch either::
+
+    PenumbraError                                   every error of the shim
+        SliceValidationError(ValueError)            a slice is refused before anything is sent
+        CropError(ValueError)                       bad input to the crop (penumbra_shim.cropping)
+        UnknownWireValueError(ValueError)           the server sent an enum value this shim does not know
+        ServerError(RuntimeError)                   the server refused a call or could not be reached
+            InvalidArgumentError(ValueError)        ... INVALID_ARGUMENT: the request was bad
+            RunNotFoundError(LookupError)           ... NOT_FOUND: no run with that id
+
+This module imports nothing beyond the standard library (grpc only for type names), so that
+:mod:`penumbra_shim.cropping` stays usable with numpy alone.
+"""
 
 from __future__ import annotations
 
-import grpc
+from typing import TYPE_CHECKING
 
-__all__ = ["PenumbraError", "RunNotFoundError", "SliceValidationError", "error_from_rpc"]
+if TYPE_CHECKING:
+    import grpc
+
+__all__ = [
+    "PenumbraError",
+    "SliceValidationError",
+    "CropError",
+    "UnknownWireValueError",
+    "ServerError",
+    "InvalidArgumentError",
+    "RunNotFoundError",
+    "error_from_rpc",
+]
 
 
-class SliceValidationError(ValueError):
+class PenumbraError(Exception):
+    """Base of every error the shim raises.
+
+    Attributes:
+        code: the gRPC status code when the error came from a call (:class:`ServerError`);
+            None for errors found in this process before anything was sent.
+        details: the server's message (names the field at fault); "" when there was no call.
+        method: the RPC that failed; "" when there was no call.
+    """
+
+    code: grpc.StatusCode | None = None
+    details: str = ""
+    method: str = ""
+
+
+class SliceValidationError(PenumbraError, ValueError):
     """A slice fails validation before anything is sent; the message names the field."""
 
 
-class PenumbraError(RuntimeError):
-    """The server refused a call or could not be reached.
+class CropError(PenumbraError, ValueError):
+    """Bad input to the crop. The message names the field at fault."""
 
-    Attributes:
-        code: the gRPC status code.
-        details: the server's message (names the field at fault).
-    """
+
+class UnknownWireValueError(PenumbraError, ValueError):
+    """The server sent an enum value this shim has no name for (a newer server: upgrade the
+    shim). The message names the field and the names this shim knows."""
+
+
+class ServerError(PenumbraError, RuntimeError):
+    """The server refused a call or could not be reached."""
 
     def __init__(self, code: grpc.StatusCode, details: str, *, method: str = "") -> None:
         self.code = code
@@ -27,12 +72,26 @@ class PenumbraError(RuntimeError):
         super().__init__(f"{where}{code.name}: {details}")
 
 
-class RunNotFoundError(PenumbraError, LookupError):
+class InvalidArgumentError(ServerError, ValueError):
+    """The server refused the request as invalid (INVALID_ARGUMENT); ``details`` names the field."""
+
+
+class RunNotFoundError(ServerError, LookupError):
     """The server has no run with that id (NOT_FOUND)."""
 
 
-def error_from_rpc(exc: grpc.RpcError, method: str = "") -> PenumbraError:
+#: Status codes (by name) with their own class; every other code becomes a plain :class:`ServerError`.
+_CLASS_OF_CODE: dict[str, type[ServerError]] = {
+    "INVALID_ARGUMENT": InvalidArgumentError,
+    "NOT_FOUND": RunNotFoundError,
+}
+
+
+def error_from_rpc(exc: grpc.RpcError, method: str = "") -> ServerError:
+    """The shim's error for a failed call: its class chosen by the status code."""
+    import grpc
+
     code = exc.code() if hasattr(exc, "code") else grpc.StatusCode.UNKNOWN
     details = exc.details() if hasattr(exc, "details") else str(exc)
-    cls = RunNotFoundError if code == grpc.StatusCode.NOT_FOUND else PenumbraError
+    cls = _CLASS_OF_CODE.get(code.name, ServerError)
     return cls(code, details or "", method=method)

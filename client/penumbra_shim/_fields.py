@@ -1,15 +1,37 @@
-"""Names of the fields each variable set carries (the shim's own copy of the table).
+"""Variable sets: their names, their wire enum values, and the fields each one carries.
 
-The server keeps the same table in ``penumbra_server.numerics.slices``; a test checks the two
-agree. The shim does not import the server (it must run with grpcio, protobuf and numpy only).
+This is the shim's one table between variable-set names and wire values (building slices and
+run specs, and reading run specs back, all use it). The server keeps its own tables, wire
+values in ``penumbra_server.server._spec`` and fields in ``penumbra_server.numerics.slices``;
+tests check the two sides agree. The shim does not import the server (it must run with grpcio,
+protobuf and numpy only).
 """
 
 from __future__ import annotations
 
-__all__ = ["VARIABLE_SETS", "SYMMETRIC_SUFFIXES", "required_fields", "optional_fields", "check_variable_set"]
+from ._errors import UnknownWireValueError
+from ._wire import horizons_pb2 as pb
 
+__all__ = [
+    "VARIABLE_SETS",
+    "VARIABLE_SET_WIRE",
+    "SYMMETRIC_SUFFIXES",
+    "required_fields",
+    "optional_fields",
+    "check_variable_set",
+    "variable_set_from_wire",
+]
+
+#: Variable-set name -> ``penumbra.v1.VariableSet`` wire value.
+VARIABLE_SET_WIRE: dict[str, int] = {
+    "adm": pb.VARIABLE_SET_ADM,
+    "conformal_chi": pb.VARIABLE_SET_CONFORMAL_CHI,
+    "conformal_w": pb.VARIABLE_SET_CONFORMAL_W,
+    "conformal_phi": pb.VARIABLE_SET_CONFORMAL_PHI,
+}
+_VARIABLE_SET_NAMES: dict[int, str] = {wire: name for name, wire in VARIABLE_SET_WIRE.items()}
 #: Variable sets by name, as the server accepts them.
-VARIABLE_SETS: tuple[str, ...] = ("adm", "conformal_chi", "conformal_w", "conformal_phi")
+VARIABLE_SETS: tuple[str, ...] = tuple(VARIABLE_SET_WIRE)
 #: Suffixes of the six independent components of a symmetric 3-tensor, in storage order.
 SYMMETRIC_SUFFIXES: tuple[str, ...] = ("xx", "xy", "xz", "yy", "yz", "zz")
 
@@ -26,6 +48,18 @@ def check_variable_set(variable_set: str) -> str:
     if variable_set not in VARIABLE_SETS:
         raise ValueError(f"variable_set: unknown value {variable_set!r}; expected one of {', '.join(VARIABLE_SETS)}")
     return variable_set
+
+
+def variable_set_from_wire(value: int, field: str = "variable_set") -> str:
+    """The name of a wire variable-set value; :class:`UnknownWireValueError` naming ``field``
+    for a value this shim has no name for (never a silent default)."""
+    try:
+        return _VARIABLE_SET_NAMES[int(value)]
+    except KeyError:
+        known = ", ".join(f"{name} ({wire})" for name, wire in VARIABLE_SET_WIRE.items())
+        raise UnknownWireValueError(
+            f"{field}: the server sent variable set {int(value)}, which this shim does not know; "
+            f"expected one of {known} (a newer server? upgrade penumbra_shim)") from None
 
 
 def required_fields(variable_set: str) -> tuple[str, ...]:

@@ -20,7 +20,7 @@ from typing import Iterator, Mapping, Sequence
 import numpy as np
 
 from ._errors import SliceValidationError
-from ._fields import optional_fields, required_fields
+from ._fields import VARIABLE_SET_WIRE, optional_fields, required_fields
 from ._wire import horizons_pb2 as pb
 
 __all__ = ["PatchData", "OutgoingPatch", "OutgoingSlice", "build_slice", "crop_outgoing_slice", "DEFAULT_CHUNK_BYTES",
@@ -29,12 +29,6 @@ __all__ = ["PatchData", "OutgoingPatch", "OutgoingSlice", "build_slice", "crop_o
 #: Chunk size of the data stream (about 1 MiB was fastest on an aio server; engineering notes).
 DEFAULT_CHUNK_BYTES = 1024 * 1024
 
-VARIABLE_SET_WIRE = {
-    "adm": pb.VARIABLE_SET_ADM,
-    "conformal_chi": pb.VARIABLE_SET_CONFORMAL_CHI,
-    "conformal_w": pb.VARIABLE_SET_CONFORMAL_W,
-    "conformal_phi": pb.VARIABLE_SET_CONFORMAL_PHI,
-}
 _DTYPE_WIRE = {"float64": pb.PatchHeader.DTYPE_FLOAT64, "float32": pb.PatchHeader.DTYPE_FLOAT32}
 _ORDER_WIRE = {"C": pb.PatchHeader.MEMORY_ORDER_C, "F": pb.PatchHeader.MEMORY_ORDER_FORTRAN}
 

@@ -10,7 +10,7 @@ from typing import Sequence
 
 import numpy as np
 
-from ._fields import check_variable_set
+from ._fields import VARIABLE_SET_WIRE, check_variable_set, variable_set_from_wire
 from ._wire import horizons_pb2 as pb
 
 __all__ = [
@@ -38,13 +38,6 @@ __all__ = [
 
 _LABEL = re.compile(r"^[A-Za-z0-9_-]{1,32}$")
 _NAN = float("nan")
-_VARIABLE_SET_NAMES = {
-    pb.VARIABLE_SET_ADM: "adm",
-    pb.VARIABLE_SET_CONFORMAL_CHI: "conformal_chi",
-    pb.VARIABLE_SET_CONFORMAL_W: "conformal_w",
-    pb.VARIABLE_SET_CONFORMAL_PHI: "conformal_phi",
-}
-_VARIABLE_SET_WIRE = {v: k for k, v in _VARIABLE_SET_NAMES.items()}
 _STATE_NAMES = {pb.Run.STATE_OPEN: "open", pb.Run.STATE_CLOSED: "closed", pb.Run.STATE_UNSPECIFIED: "unspecified"}
 _REASON_NAMES = {
     pb.SurfaceNotFound.REASON_UNSPECIFIED: "unspecified",
@@ -210,7 +203,7 @@ class RunSpec:
     def to_wire(self) -> pb.RunSpec:
         return pb.RunSpec(
             display_name=self.name,
-            variable_set=_VARIABLE_SET_WIRE[self.variable_set],
+            variable_set=VARIABLE_SET_WIRE[self.variable_set],
             mass_scale_solar_masses=self.mass_scale_solar_masses,
             bodies=[
                 pb.ExpectedBody(label=b.label, approximate_mass_m=b.mass,
@@ -228,7 +221,7 @@ class RunSpec:
     @classmethod
     def from_wire(cls, spec: pb.RunSpec) -> "RunSpec":
         return cls(
-            variable_set=_VARIABLE_SET_NAMES.get(spec.variable_set, "adm"),
+            variable_set=variable_set_from_wire(spec.variable_set, "spec.variable_set"),
             bodies=tuple(Body(b.label, tuple(_triple(b.approximate_position_m)), b.approximate_mass_m) for b in spec.bodies),
             name=spec.display_name,
             mass_scale_solar_masses=spec.mass_scale_solar_masses,

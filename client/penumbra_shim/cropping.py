@@ -1,4 +1,4 @@
-"""Crop grid patches to the data windows the server asked for (numpy only).
+"""Crop grid patches to the data windows the server asked for.
 
 A patch is a vertex-centred uniform box: node [i, j, k] sits at origin + (i dx, j dy, k dz),
 every field array is indexed [i, j, k]. Cropping keeps whole nodes of the original lattice:
@@ -8,7 +8,8 @@ enclose the window (the last node at or below the window's lower corner and the 
 above its upper corner), plus ``extra_nodes`` more on every side, clipped to the patch. Field
 values are copied unchanged.
 
-This module imports numpy only, so an evolution code can crop without the server installed.
+This module needs numpy and the shim's error classes only, so an evolution code can crop without
+the server installed.
 """
 
 from __future__ import annotations
@@ -18,11 +19,9 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
+from ._errors import CropError
+
 __all__ = ["CropError", "CroppedPatch", "crop_index_box", "crop_patches"]
-
-
-class CropError(ValueError):
-    """Bad input to the crop. The message names the field at fault."""
 
 
 @dataclass(frozen=True, eq=False)

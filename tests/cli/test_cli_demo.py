@@ -28,13 +28,13 @@ def test_demo_runs_to_a_common_horizon_and_reports_it(demo_run):
     separation = float(match.group(3))
     # A common Brill-Lindquist horizon needs a coordinate separation below about 0.766 M for equal
     # bare masses (total bare mass 1; Brill & Lindquist 1963, Cadez 1974, Bishop 1982; from memory,
-    # references.md item 7). For 0.6 + 0.4 the threshold differs somewhat: allow up to 0.8 M. The
+    # docs/references.md item 7). For 0.6 + 0.4 the threshold differs somewhat: allow up to 0.8 M. The
     # first slice with one must also be no later than a slice or two past the threshold.
     assert 0.6 < separation < 0.8
 
     masses = dict(re.findall(r"(\w+) ([0-9.]+)", out.split("final irreducible masses [M]:")[1].splitlines()[0]))
     # Common horizon: irreducible mass just below the total bare mass 1 (at zero separation BL is
-    # Schwarzschild of mass m1 + m2, references.md item 8); individual ones above their bare masses.
+    # Schwarzschild of mass m1 + m2, docs/references.md item 8); individual ones above their bare masses.
     assert 0.97 < float(masses["common"]) <= 1.0 + 5e-3
     assert float(masses["heavy"]) > 0.6 and float(masses["light"]) > 0.4
 

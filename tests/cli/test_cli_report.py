@@ -10,7 +10,8 @@ import pytest
 from penumbra_server.archive import open_archive
 from penumbra_server.cli.main import main
 from penumbra_server.cli.report import (chosen_forecasts, cone_path, default_guidance_choice, forecast_check,
-                                        guidance_updates, load_run, summarise, summary_text, write_report)
+                                        guidance_updates, load_run, plot_cross_sections, summarise, summary_text,
+                                        write_report)
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -28,7 +29,7 @@ def test_archive_fixture_has_what_the_physics_says(small_archive):
     # Both individual horizons exist on every slice of the track.
     assert all(found for _, _, found, _ in expected["heavy"] + expected["light"])
     # A widely separated hole's irreducible mass is close to m_i (1 + m_j / (2 d)) at leading order
-    # (references.md item 7); at d = 1.4 M (first slice) within a few per cent.
+    # (docs/references.md item 7); at d = 1.4 M (first slice) within a few per cent.
     t0, _, _, m_heavy = expected["heavy"][0]
     assert m_heavy == pytest.approx(0.6 * (1 + 0.4 / (2 * 1.4)), rel=0.03)
     # No common horizon at d = 1.4 M; one at d = 0.45 M (well below the equal-mass 0.766 M threshold,
@@ -58,15 +59,21 @@ def test_summary_states_the_rows(small_archive):
     assert "1 skipped" in text
 
 
-def test_report_writes_pngs_and_a_summary(small_archive, tmp_path):
+@pytest.fixture(scope="module")
+def small_report(small_archive, tmp_path_factory):
+    """The report of the small archive, written once for the tests that read it."""
+    path, _ = small_archive
+    return write_report(path, tmp_path_factory.mktemp("small-report"))
+
+
+def test_report_writes_pngs_and_a_summary(small_archive, small_report):
     path, expected = small_archive
-    result = write_report(path, tmp_path / "out")
+    result = small_report
     names = sorted(p.name for p in result.plots)
     assert names == ["areas_masses.png", "cross_sections.png", "guidance.png", "tracks.png"]
     for plot in result.plots:
         width, height = _png_size(plot)
         assert width > 300 and height > 300
-        assert plot.stat().st_size > 10_000  # not an empty canvas
     assert result.summary_path.read_text().startswith("run run-0123456789ab")
     # Default cross-section times include the first common horizon.
     assert result.summary.common_first_time in result.section_times
@@ -82,14 +89,63 @@ def test_report_writes_pngs_and_a_summary(small_archive, tmp_path):
     assert "refinement guidance" not in result.summary_path.read_text()
 
 
+def test_areas_plot_draws_every_found_area_and_mass_against_time(small_archive, small_report):
+    _, expected = small_archive
+    figure = small_report.figures["areas_masses.png"]
+    area_axes, mass_axes = figure.axes[:2]
+    for axes in (area_axes, mass_axes):
+        lines = {line.get_label(): line for line in axes.lines if not line.get_label().startswith("_")}
+        assert sorted(lines) == ["common", "heavy", "light"]
+        for label, line in lines.items():
+            rows = sorted((t, m) for t, _, found, m in expected[label] if found)
+            assert np.allclose(line.get_xdata(), [t for t, _ in rows], rtol=0, atol=1e-12)
+            if axes is mass_axes:
+                assert np.allclose(line.get_ydata(), [m for _, m in rows], rtol=1e-12)
+            else:  # area = 16 pi M_irr^2 (the archived mass is sqrt(A / 16 pi))
+                assert np.allclose(line.get_ydata(), [16 * math.pi * m * m for _, m in rows], rtol=1e-9)
+    # The first common horizon is marked by a vertical line at its time on both panels.
+    first_common = min(t for t, _, found, _ in expected["common"] if found)
+    for axes in (area_axes, mass_axes):
+        verticals = [l for l in axes.lines if l.get_label().startswith("_") and np.ptp(l.get_xdata()) == 0]
+        assert [float(l.get_xdata()[0]) for l in verticals] == [pytest.approx(first_common)]
+
+
+def test_summary_file_states_each_surfaces_numbers(small_archive, small_report):
+    _, expected = small_archive
+    text = small_report.summary_path.read_text()
+    for label in ("heavy", "light", "common"):
+        found = sorted((t, m) for t, _, f, m in expected[label] if f)
+        row = next(line.split() for line in text.splitlines() if re.match(rf"{label} +\d+/\d+ ", line))
+        # surface, found/attempts, first t, last t, area, M_irr, centroid (3), |Theta|max, wall s
+        assert row[1] == f"{len(found)}/{len(expected[label])}"
+        assert float(row[2]) == pytest.approx(found[0][0], abs=5e-4)
+        assert float(row[3]) == pytest.approx(found[-1][0], abs=5e-4)
+        assert float(row[4]) == pytest.approx(16 * math.pi * found[-1][1] ** 2, abs=5e-6)
+        assert float(row[5]) == pytest.approx(found[-1][1], abs=5e-6)
+
+
 def test_cross_section_plot_draws_one_curve_per_found_surface_at_the_chosen_time(small_archive, tmp_path):
-    # Indirect but real: plotting at a time with three found surfaces differs from one with two.
     path, expected = small_archive
+    record = load_run(path)
     t_two = expected["common"][0][0]       # no common surface there
     t_three = expected["common"][-1][0]    # common surface found
-    a = (write_report(path, tmp_path / "a", times=(t_two,)).output_dir / "cross_sections.png").read_bytes()
-    b = (write_report(path, tmp_path / "b", times=(t_three,)).output_dir / "cross_sections.png").read_bytes()
-    assert a != b
+    for t, labels in ((t_two, ["heavy", "light"]), (t_three, ["heavy", "light", "common"])):
+        figure = plot_cross_sections(record, (t,), tmp_path / f"t{t}.png").figure
+        (axes,) = [ax for ax in figure.axes if ax.get_visible()]
+        curves = [line for line in axes.lines if not line.get_label().startswith("_")]
+        assert [line.get_label() for line in curves] == labels
+        assert axes.get_title() == f"t = {t:.3f} M"
+        for line in curves:
+            cols = record.surfaces[line.get_label()]
+            row = int(np.flatnonzero(np.isclose(cols["time"], t, rtol=0, atol=1e-9))[0])
+            x, y = np.asarray(line.get_xdata()), np.asarray(line.get_ydata())
+            assert (x[0], y[0]) == (x[-1], y[-1]) and len(x) > 100  # a closed curve
+            # Through the archived centre: the distance from the centre stays within the coordinate
+            # radius range the measurement archived for that surface (at its nodes; 1 % slack for
+            # the curve's points between the nodes).
+            r = np.hypot(x - cols["centre"][row][0], y - cols["centre"][row][1])
+            slack = 0.01 * float(cols["radius_mean"][row])
+            assert float(cols["radius_min"][row]) - slack <= r.min() and r.max() <= float(cols["radius_max"][row]) + slack
 
 
 def test_report_command_line(small_archive, tmp_path, capsys):
@@ -163,20 +219,33 @@ def _inside(points, limits):
 def test_tracks_plot_holds_every_track_and_forecast_path(demo_report):
     archive, result, view, record = demo_report
     width, height = _png_size(result.output_dir / "tracks.png")
-    assert width > 600 and height > 600 and (result.output_dir / "tracks.png").stat().st_size > 40_000
+    assert width > 600 and height > 600
     (limits,) = result.limits["tracks.png"]
     assert set(view.track_labels) >= {"heavy", "light", "common"}
     for label in view.track_labels:
         assert _inside(view.track(label)["position"][:, :2], limits), label
+    # Every horizon track is drawn point by point from the archive (x, y in the xy plane).
+    (axes,) = result.figures["tracks.png"].axes
+    lines = {line.get_label(): line for line in axes.lines}
+    for label in view.track_labels:
+        horizon = view.track(label, source="horizon")["position"]
+        line = lines[f"{label} horizon"]
+        assert np.array_equal(line.get_xdata(), horizon[:, 0]) and np.array_equal(line.get_ydata(), horizon[:, 1])
     # The demo sends a shift: both bodies have puncture tracks, drawn too (inside the ranges above).
     for label in ("heavy", "light"):
-        assert len(view.track(label, source="puncture")["time"]) >= 10
+        puncture = view.track(label, source="puncture")["position"]
+        assert len(puncture) >= 10
+        line = lines[f"{label} puncture (shift)"]
+        assert np.array_equal(line.get_xdata(), puncture[:, 0]) and np.array_equal(line.get_ydata(), puncture[:, 1])
     chosen = chosen_forecasts(record)
     assert {label for label, _ in chosen} >= {"heavy", "light"}
     for label, row in chosen:
         assert _inside(view.forecasts(label)["position"][row][:, :2], limits)
-    # The ranges are the tracks' (plus a margin), not the whole grid.
-    every = np.concatenate([view.track(l)["position"][:, :2] for l in view.track_labels])
+    # The ranges are those of what is drawn, the tracks and the chosen forecast paths (plus a margin of
+    # at most 0.3 of their span), not the whole grid. Forecast paths count: on a loaded machine the
+    # demo skips slices, and a polynomial fit to sparse points may run well beyond the tracks.
+    every = np.concatenate([view.track(l)["position"][:, :2] for l in view.track_labels]
+                           + [view.forecasts(l)["position"][row][:, :2] for l, row in chosen])
     assert (limits[1] - limits[0]) < 2.0 * float(np.max(np.ptp(every, axis=0)))
 
 
@@ -184,7 +253,7 @@ def test_tracks_plot_holds_every_track_and_forecast_path(demo_report):
 def test_guidance_plot_draws_the_regions_of_the_chosen_updates(demo_report):
     archive, result, view, record = demo_report
     width, height = _png_size(result.output_dir / "guidance.png")
-    assert width > 1000 and height > 300 and (result.output_dir / "guidance.png").stat().st_size > 40_000
+    assert width > 1000 and height > 300
     updates = guidance_updates(record)
     assert len(updates) == len(view.guidance()["updates"]["time"])
     picks = default_guidance_choice(updates)
@@ -199,6 +268,27 @@ def test_guidance_plot_draws_the_regions_of_the_chosen_updates(demo_report):
             assert _inside([c - r, c + r, body.lower[:2], body.upper[:2]], limits)
         for label in view.track_labels:
             assert _inside(view.track(label)["position"][:, :2], limits)
+    # Each panel draws, for every body of its update, a circle with the archived finest sphere: a
+    # merged region row of that update covering the body on its finest level, or the body's own.
+    guidance = view.guidance()
+    bodies, regions = guidance["bodies"], guidance["regions"]
+    axes = result.figures["guidance.png"].axes
+    from matplotlib.patches import Circle
+
+    for k, index in enumerate(picks):
+        seq = updates[index].event_seq
+        circles = [p for p in axes[k].patches if isinstance(p, Circle)]
+        assert circles
+        for b in np.flatnonzero(bodies["event_seq"] == seq):
+            label, level = str(bodies["label"][b]), int(bodies["finest_level"][b])
+            covering = [r for r in np.flatnonzero((regions["event_seq"] == seq) & (regions["level"] == level))
+                        if label in str(regions["bodies"][r]).split("+")]
+            if covering:
+                centre, radius = regions["centre"][covering[0]], regions["radius"][covering[0]]
+            else:
+                centre, radius = bodies["centre"][b], bodies["finest_radius"][b]
+            assert any(label in c.get_label().split(":")[0].split("+") and c.radius == pytest.approx(radius)
+                       and np.allclose(c.center, centre[:2]) for c in circles), (k, label)
 
 
 @pytest.mark.slow
@@ -247,9 +337,24 @@ def test_summary_states_the_merger_and_the_guidance(demo_report):
         n = len(view.track(label, source="puncture")["time"])
         assert re.search(rf"  {label}: \d+ horizon-centroid points .*; {n} puncture points integrated from the shift", text)
         summary = next(t for t in result.summary.tracks if t.label == label)
-        assert summary.check is not None and summary.check.comparisons >= 10
+        # One comparison per (forecast, later horizon-track point inside its finite lead range),
+        # counted from the archive's columns (how many depends on how many slices the demo's
+        # server processed, hence on the machine's load: count, do not assume).
+        forecasts, track = view.forecasts(label), view.track(label, source="horizon")
+        expected = 0
+        for row in range(len(forecasts["time"])):
+            ok = np.isfinite(forecasts["lead_time"][row]) & np.all(np.isfinite(forecasts["position"][row]), axis=1)
+            if np.count_nonzero(ok) >= 2:
+                end = float(forecasts["lead_time"][row][ok][-1])
+                eps = 1e-9 * max(1.0, abs(end))
+                expected += int(np.sum((track["time"] > forecasts["time"][row] + eps) & (track["time"] <= end + eps)))
+        assert expected >= 1, "the demo's forecasts have later track points to be checked against"
+        assert summary.check is not None and summary.check.comparisons == expected
         assert f"over {summary.check.comparisons} comparisons" in text
-    assert "warnings: 0" in text
+    # The warnings the server archived, counted (a loaded machine makes the demo skip slices, and
+    # a slice that lacks data a surface needs is a warning).
+    warnings = int(np.sum(np.asarray(events["kind"]).astype(str) == "warning"))
+    assert re.search(rf"^warnings: {warnings}\b", text, flags=re.MULTILINE)
 
 
 def test_compare_surfaces_finds_any_difference(small_archive):

@@ -17,7 +17,7 @@ def test_track_shrinks_from_stated_start_to_stated_end_about_the_centre_of_mass(
     assert separations[-1] == pytest.approx(0.45, abs=1e-12)
     assert np.all(np.diff(separations) < 0)
     # Ends well below the equal-mass critical separation for a common horizon, about 0.766 M in
-    # units of the total bare mass (Brill & Lindquist 1963; Cadez 1974; from memory, references.md item 7).
+    # units of the total bare mass (Brill & Lindquist 1963; Cadez 1974; from memory, docs/references.md item 7).
     assert separations[-1] < 0.766 - 0.25
     for t in times:
         p = track.positions(t)

@@ -8,9 +8,8 @@ import time
 
 import pytest
 
+import penumbra_shim as ps
 from penumbra_server.cli.main import build_parser, main, parse_address
-
-ps = pytest.importorskip("penumbra_shim")
 
 
 def _wait_for(path, process, timeout_s=60.0):

@@ -6,8 +6,7 @@ import math
 import numpy as np
 import pytest
 
-ps = pytest.importorskip("penumbra_shim")
-
+import penumbra_shim as ps
 from penumbra_server.cli.demo_evolution import run_spec_for, slice_arrays
 from penumbra_server.cli.demo_scenario import DemoScenario, GridLayout
 from penumbra_server.cli.main import format_runs, main

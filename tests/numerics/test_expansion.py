@@ -98,7 +98,7 @@ def test_expansion_matches_independent_divergence_evaluation(spacetime):
 
 def test_kerr_schild_spheres_follow_the_closed_form():
     # Theta(r) = (2 alpha / r)(1 - 2M/r), alpha = (1 + 2M/r)^(-1/2): Matzner, Huq & Shoemaker,
-    # PRD 59, 024015 (1999); Cook, Living Rev. Relativity 3, 5 (2000) (references.md item 2).
+    # PRD 59, 024015 (1999); Cook, Living Rev. Relativity 3, 5 (2000) (docs/references.md item 2).
     st = SchwarzschildKerrSchild(mass=1.0, centre=np.zeros(3))
     grid = angular_grid(4)
     for r in (1.2, 2.0, 3.5):
@@ -112,7 +112,7 @@ def test_kerr_schild_spheres_follow_the_closed_form():
 
 def test_painleve_gullstrand_spheres_follow_the_closed_form():
     # Theta(r) = (2/r)(1 - sqrt(2M/r)); all of it beyond 2/r comes from K_ij
-    # (Painleve 1921, Gullstrand 1922; references.md item 2b).
+    # (Painleve 1921, Gullstrand 1922; docs/references.md item 2b).
     st = SchwarzschildPainleveGullstrand(mass=1.0, centre=np.zeros(3))
     grid = angular_grid(4)
     for r in (1.0, 2.0, 5.0):

@@ -99,7 +99,7 @@ def test_truncation_hidden_by_the_nodes_is_reported():
 
 
 def test_not_converging_is_a_result_not_an_exception():
-    # Two bare masses 1 at separation 2.5: no common horizon there (references.md item 7), so a
+    # Two bare masses 1 at separation 2.5: no common horizon there (docs/references.md item 7), so a
     # search about the midpoint must fail, cleanly.
     bl = BrillLindquist(masses=np.array([1.0, 1.0]), positions=np.array([[0, 0, 1.25], [0, 0, -1.25]]))
     result = find_surface(bl, Surface.sphere([0, 0, 0], 2.2, 8),
@@ -125,7 +125,7 @@ def test_bad_settings_are_rejected_up_front():
 
 def test_sphere_scan_brackets_the_horizon_and_inner_surfaces():
     # Isotropic Schwarzschild: mean expansion of centred spheres changes sign only at r = M/2
-    # (references.md item 1).
+    # (docs/references.md item 1).
     radii = scan_spheres(SchwarzschildIsotropic(mass=1.0, centre=np.zeros(3)), [0, 0, 0], 0.1, 3.0)
     # mean and barrier coincide for a centred round horizon
     assert len(radii) == 1 and radii[0] == pytest.approx(0.5, abs=1e-6)

@@ -1,5 +1,5 @@
-"""Horizons of reference spacetimes against published values (sources in shared references,
-named beside each check)."""
+"""Horizons of reference spacetimes against published values (sources named beside each
+check, with their item in docs/references.md)."""
 
 import numpy as np
 import pytest
@@ -31,7 +31,7 @@ def find(data, guess, **options):
     return result
 
 
-# --- Schwarzschild (references.md items 1, 2, 2b) -----------------------------------------
+# --- Schwarzschild (docs/references.md items 1, 2, 2b) -----------------------------------------
 
 
 def test_isotropic_schwarzschild_horizon_exact_evaluator():
@@ -65,7 +65,8 @@ def test_grid_area_error_converges_at_the_interpolation_order(cube):
 
 
 def test_kerr_schild_schwarzschild_horizon_at_two_m():
-    # K_ij != 0: r = 2M, area 16 pi M^2 (Matzner, Huq & Shoemaker, PRD 59, 024015 (1999)).
+    # K_ij != 0: r = 2M, area 16 pi M^2 (Matzner, Huq & Shoemaker, PRD 59, 024015 (1999);
+    # docs/references.md item 2).
     hole = SchwarzschildKerrSchild(mass=1.0, centre=np.zeros(3))
     result = find(hole, Surface.sphere([0.1, 0, 0], 2.6, 8), lmax=8)
     q = measure_surface(result.surface, hole)
@@ -82,7 +83,7 @@ def test_kerr_schild_schwarzschild_on_a_grid(cube):
 
 
 def test_painleve_gullstrand_horizon_comes_from_K_alone():
-    # Flat metric, r = 2M (Painleve 1921, Gullstrand 1922; references.md item 2b).
+    # Flat metric, r = 2M (Painleve 1921, Gullstrand 1922; docs/references.md item 2b).
     hole = SchwarzschildPainleveGullstrand(mass=1.0, centre=np.zeros(3))
     result = find(hole, Surface.sphere([0, 0.1, 0], 1.6, 8), lmax=8)
     pts = result.surface.points(result.surface.on_grid(angular_grid(8)))
@@ -90,7 +91,7 @@ def test_painleve_gullstrand_horizon_comes_from_K_alone():
     assert measure_surface(result.surface, hole).area == pytest.approx(AREA_SCHWARZSCHILD, rel=1e-9)
 
 
-# --- Kerr (references.md items 3, 6) --------------------------------------------------------
+# --- Kerr (docs/references.md items 3, 6) --------------------------------------------------------
 
 
 @pytest.mark.parametrize("a", [0.6, 0.9])
@@ -98,7 +99,7 @@ def test_kerr_area_and_equatorial_circumference(a):
     # Area 8 pi M r_+ (Kerr & Schild 1965; Visser, arXiv:0706.0622 (2007)); equatorial proper
     # circumference 4 pi M for every a; polar one 4 sqrt(r_+^2 + a^2) E(k),
     # k = a^2 / (r_+^2 + a^2) (Brandt & Seidel, PRD 52, 870 (1995), from memory; formula as in
-    # references.md item 6).
+    # docs/references.md item 6).
     hole = KerrKerrSchild(mass=1.0, spin=a, axis=np.array([0.0, 0.0, 1.0]), centre=np.zeros(3))
     rp = kerr_r_plus(a)
     q = measure_surface(find(hole, Surface.sphere([0, 0, 0], 2.0, 12), lmax=12).surface, hole)
@@ -112,7 +113,7 @@ def test_kerr_area_and_equatorial_circumference(a):
 
 
 def test_kerr_circumference_ratio_matches_tabulated_values():
-    # C_p / C_e = 0.949541 at a = 0.5 and 0.783968 at a = 0.9 (references.md item 6, values
+    # C_p / C_e = 0.949541 at a = 0.5 and 0.783968 at a = 0.9 (docs/references.md item 6, values
     # re-derived there).
     for a, ratio in ((0.5, 0.949541), (0.9, 0.783968)):
         hole = KerrKerrSchild(mass=1.0, spin=a, axis=np.array([0.0, 0.0, 1.0]), centre=np.zeros(3))
@@ -130,7 +131,7 @@ def test_kerr_tilted_and_off_centre(a):
     q = measure_surface(result.surface, hole)
     assert q.area == pytest.approx(8 * np.pi * kerr_r_plus(a), rel=1e-6)
     np.testing.assert_allclose(q.centroid, centre, atol=1e-6)
-    # J = a M along the spin axis (references.md item 6b, Kerr & Schild 1965) and the
+    # J = a M along the spin axis (docs/references.md item 6b, Kerr & Schild 1965) and the
     # Christodoulou mass returns M exactly (Christodoulou, PRL 25, 1596 (1970); item 5).
     np.testing.assert_allclose(q.angular_momentum, a * axis / np.linalg.norm(axis), atol=1e-7)
     assert q.christodoulou_mass == pytest.approx(1.0, rel=1e-8)
@@ -164,7 +165,7 @@ def brill_lindquist_pair(separation, m=1.0, axis=2):
 
 def test_wide_pair_individual_horizons_tend_to_schwarzschild():
     # Each individual horizon tends to Schwarzschild of mass m_i with M_irr close to
-    # m_i (1 + m_j / (2 d)) at large d (references.md item 7, leading order).
+    # m_i (1 + m_j / (2 d)) at large d (docs/references.md item 7, leading order).
     previous = None
     for d in (6.0, 12.0, 24.0):
         pair = brill_lindquist_pair(d)
@@ -188,13 +189,14 @@ def test_zero_separation_is_schwarzschild_of_the_total_mass():
 
 def test_common_horizon_at_separation_1_2_m():
     # A common horizon exists at coordinate separation 1.2 m = 0.6 M (below d_c ~ 1.53 m;
-    # Cadez, Ann. Phys. 83, 449 (1974); Bishop, GRG 14, 717 (1982); from memory).
+    # Cadez, Ann. Phys. 83, 449 (1974); Bishop, GRG 14, 717 (1982); from memory; docs/references.md item 7).
     pair = brill_lindquist_pair(1.2)
     result = find(pair, Surface.sphere([0, 0, 0], 1.3, 12), lmax=12)
     q = measure_surface(result.surface, pair)
     assert q.radius_max > 0.6 + 0.25  # encloses both punctures with room
     # Penrose inequality, sqrt(A / 16 pi) <= M_ADM = m1 + m2 for time-symmetric data (Huisken &
-    # Ilmanen, J. Diff. Geom. 59, 353 (2001); Bray, J. Diff. Geom. 59, 177 (2001); from memory),
+    # Ilmanen, J. Diff. Geom. 59, 353 (2001); Bray, J. Diff. Geom. 59, 177 (2001); from memory;
+    # docs/references.md item 21),
     # and larger than either hole alone.
     assert 1.5 < q.irreducible_mass < 2.0
 
@@ -202,7 +204,7 @@ def test_common_horizon_at_separation_1_2_m():
 def test_continuation_finds_the_critical_separation():
     # Largest separation with a common horizon: d_c ~ 1.53 m (Cadez 1974, Bishop 1982, from
     # memory; Brill & Lindquist 1963 estimated 1.56 m; an independent axisymmetric calculation
-    # in references.md gave 1.5324 m). Required here: within 1%.
+    # for this project gave 1.5324 m, docs/references.md item 7). Required here: within 1%.
     settings = FinderSettings(lmax=12, fallback_to_flow=False, max_iterations=25)
     d, step = 1.2, 0.08
     surface = Surface.sphere([0, 0, 0], 1.3, 12)

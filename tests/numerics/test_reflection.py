@@ -3,6 +3,7 @@
 import numpy as np
 import pytest
 
+from penumbra_server.numerics import spacetimes
 from penumbra_server.numerics.reflection import (
     field_parity,
     mirror_patch_through_z0,
@@ -112,21 +113,12 @@ def test_bad_parity_override_is_refused():
         mirror_patch_through_z0(p, parity_overrides={"lapse": 0})
 
 
-def _spacetimes():
-    try:
-        from penumbra_server.numerics import spacetimes
-    except ImportError:  # pragma: no cover - written concurrently by another contributor
-        return None
-    return spacetimes
-
-
-@pytest.mark.skipif(_spacetimes() is None, reason="reference spacetimes not available")
 @pytest.mark.parametrize("which", ["brill_lindquist", "kerr_z_spin"])
 def test_mirrored_half_grid_reference_spacetime_equals_the_full_grid_sample(which):
-    """Brill-Lindquist punctures in the plane z = 0 (references.md item 7) and Kerr in
-    Kerr-Schild form spinning along z (references.md item 3): both are symmetric under z -> -z,
+    """Brill-Lindquist punctures in the plane z = 0 (docs/references.md item 7) and Kerr in
+    Kerr-Schild form spinning along z (docs/references.md item 3): both are symmetric under z -> -z,
     Kerr with non-zero K_ij and shift, so the odd components are exercised."""
-    st = _spacetimes()
+    st = spacetimes
     if which == "brill_lindquist":
         spacetime = st.BrillLindquist(masses=[0.5, 0.5], positions=[[0.6, 0.0, 0.0], [-0.6, 0.0, 0.0]])
     else:

@@ -1,6 +1,6 @@
 """Reference spacetimes: published components, independent derivations, sampling.
 
-Sources (item numbers refer to the shared list of published check values, references.md):
+Sources (item numbers refer to the project's list of published check values, docs/references.md):
 item 1: Schwarzschild, isotropic (Baumgarte & Shapiro, Numerical Relativity, 2010);
 item 2: Kerr-Schild Schwarzschild (Matzner, Huq & Shoemaker, PRD 59, 024015 (1999); Cook, Living
 Rev. Relativity 3, 5 (2000)); item 2b: Painleve-Gullstrand (Painleve 1921, Gullstrand 1922);
@@ -98,7 +98,7 @@ def rotation_taking_z_to(n):
 
 
 def test_kerr_schild_schwarzschild_matches_published_components():
-    # references.md item 2: Matzner, Huq & Shoemaker, PRD 59, 024015 (1999); Cook, Living Rev.
+    # docs/references.md item 2: Matzner, Huq & Shoemaker, PRD 59, 024015 (1999); Cook, Living Rev.
     # Relativity 3, 5 (2000): gamma, lapse, shift, K_ij and K in closed form.
     rng = np.random.default_rng(1)
     mass, centre = 1.3, np.array([0.4, -1.1, 2.0])
@@ -132,7 +132,7 @@ def test_kerr_schild_schwarzschild_matches_published_components():
 
 
 def test_kerr_schild_sphere_expansion_vanishes_at_2m():
-    # references.md item 2 (Matzner, Huq & Shoemaker 1999; Cook 2000):
+    # docs/references.md item 2 (Matzner, Huq & Shoemaker 1999; Cook 2000):
     # Theta(r) = (2 alpha / r)(1 - 2M/r) for the spheres r = const.
     rng = np.random.default_rng(2)
     mass, centre = 0.8, np.array([1.0, 2.0, -0.5])
@@ -145,7 +145,7 @@ def test_kerr_schild_sphere_expansion_vanishes_at_2m():
 
 
 def test_painleve_gullstrand_matches_published_components_and_expansion():
-    # references.md item 2b (Painleve 1921, Gullstrand 1922): flat gamma, lapse 1,
+    # docs/references.md item 2b (Painleve 1921, Gullstrand 1922): flat gamma, lapse 1,
     # beta^i = sqrt(2M/r) n^i, K_ij = (sqrt(2M/r)/r)[delta_ij - (3/2) n_i n_j],
     # Theta(r) = (2/r)(1 - sqrt(2M/r)), zero at r = 2M.
     rng = np.random.default_rng(3)
@@ -172,7 +172,7 @@ def test_painleve_gullstrand_matches_published_components_and_expansion():
 
 
 def test_isotropic_schwarzschild_horizon_at_half_mass():
-    # references.md item 1 (Baumgarte & Shapiro 2010): psi = 1 + M/(2r), K_ij = 0, apparent
+    # docs/references.md item 1 (Baumgarte & Shapiro 2010): psi = 1 + M/(2r), K_ij = 0, apparent
     # horizon at r = M/2; the static lapse (1 - M/2r)/(1 + M/2r) vanishes there.
     rng = np.random.default_rng(4)
     mass, centre = 2.0, np.array([0.5, 0.5, -1.0])
@@ -199,7 +199,7 @@ def test_isotropic_schwarzschild_horizon_at_half_mass():
 
 def _symbolic_kerr_kerr_schild(spin, mass):
     """Numeric callable (x, y, z) -> (g_mu_nu (4,4), d_k g_mu_nu (3,4,4)) from the Kerr metric
-    in Cartesian Kerr-Schild form, differentiated symbolically (references.md item 3)."""
+    in Cartesian Kerr-Schild form, differentiated symbolically (docs/references.md item 3)."""
     x, y, z = sp.symbols("x y z", real=True)
     a, m = sp.nsimplify(spin), sp.nsimplify(mass)
     rho2 = x**2 + y**2 + z**2
@@ -228,7 +228,7 @@ def _symbolic_kerr_kerr_schild(spin, mass):
 
 
 def test_kerr_extrinsic_curvature_matches_sympy_derivation():
-    # references.md item 3 (Kerr & Schild 1965; Visser, arXiv:0706.0622 (2007)). Independent
+    # docs/references.md item 3 (Kerr & Schild 1965; Visser, arXiv:0706.0622 (2007)). Independent
     # route: symbolic derivatives of g_mu_nu, then K_ij = -alpha 4Gamma^t_ij (the sign with
     # K = -nabla_mu n^mu), alpha = (-g^tt)^(-1/2), the metric being independent of t.
     mass, spin = 1.0, 0.6
@@ -290,7 +290,7 @@ def test_kerr_reduces_to_schwarzschild_at_zero_spin():
 
 @pytest.mark.parametrize("spin", [0.5, 0.9])
 def test_kerr_horizon_surface_has_zero_expansion(spin):
-    # references.md item 3 (Kerr & Schild 1965; Visser 2007): horizon at r = r_+ =
+    # docs/references.md item 3 (Kerr & Schild 1965; Visser 2007): horizon at r = r_+ =
     # M + sqrt(M^2 - a^2), i.e. the spheroid (x^2 + y^2)/(r_+^2 + a^2) + z^2/r_+^2 = 1 in the
     # body frame; a cross-section of the Killing horizon, so Theta = 0 on it.
     rng = np.random.default_rng(7)
@@ -334,7 +334,7 @@ def sphere_integral(geometry_source, centre, radius, integrand, *, n_theta=32, n
 
 @pytest.mark.parametrize("spin", [0.5, -0.9])
 def test_kerr_angular_momentum_is_a_m_about_the_axis(spin):
-    # references.md item 6b: J = (1/8 pi) oint K_ij phi^i s^j dA = a M with phi the rotational
+    # docs/references.md item 6b: J = (1/8 pi) oint K_ij phi^i s^j dA = a M with phi the rotational
     # Killing field (phi = x d_y - y d_x for spin along +z; here axis x (x - c)). In vacuum the
     # integral does not depend on the (axisymmetric) surface: use two coordinate spheres.
     mass, axis, centre = 1.0, np.array([2.0, -1.0, 2.0]) / 3.0, np.array([0.4, 0.1, -0.3])
@@ -356,7 +356,7 @@ def test_kerr_angular_momentum_is_a_m_about_the_axis(spin):
 def _boosted_schwarzschild_4metric(mass, velocity, centre, t, x):
     """Independent construction of the boosted Kerr-Schild 4-metric at one event (t, x):
     g'_mu_nu = (dX^a/dx^mu)(dX^b/dx^nu) g_ab(X) with the rest-frame metric written out
-    (references.md item 2) and X(x) the Lorentz transformation to the hole's rest frame."""
+    (docs/references.md item 2) and X(x) the Lorentz transformation to the hole's rest frame."""
     v = np.asarray(velocity, float)
     speed = np.linalg.norm(v)
     lf = 1 / np.sqrt(1 - speed**2)
@@ -449,7 +449,7 @@ def test_boosted_hole_matches_finite_differences_of_independent_4metric():
 
 
 def test_boosted_horizon_is_lorentz_contracted_and_marginally_trapped():
-    # references.md item 4 (Matzner, Huq & Shoemaker 1999): at t = 0 the horizon's coordinate
+    # docs/references.md item 4 (Matzner, Huq & Shoemaker 1999): at t = 0 the horizon's coordinate
     # shape is contracted along the boost by sqrt(1 - v^2): gamma^2 x_par^2 + x_perp^2 = (2M)^2.
     rng = np.random.default_rng(9)
     mass, velocity, centre = 1.0, np.array([0.0, 0.3, 0.5]), np.array([-1.0, 0.5, 0.0])
@@ -521,7 +521,7 @@ def test_point_derivatives_agree_with_central_differences(spacetime):
 
 
 def test_brill_lindquist_conformal_factor_at_points():
-    # references.md item 7 (Brill & Lindquist, Phys. Rev. 131, 471 (1963)):
+    # docs/references.md item 7 (Brill & Lindquist, Phys. Rev. 131, 471 (1963)):
     # psi = 1 + sum m_i / (2 |x - x_i|). Hand values: at (0, 0, 0.5), distances 1 and 2:
     # psi = 1 + 1/2 + 0.5/4 = 1.625; at (2, 0, 0), distances 2.5 and 2.5: psi = 1 + 0.2 + 0.1 = 1.3.
     data = BrillLindquist([1.0, 0.5], [[0.0, 0.0, 1.5], [0.0, 0.0, -1.5]])
@@ -538,7 +538,7 @@ def test_brill_lindquist_conformal_factor_at_points():
 
 
 def test_brill_lindquist_at_zero_separation_is_isotropic_schwarzschild():
-    # references.md item 8: coincident punctures give Schwarzschild of mass m1 + m2 (item 1).
+    # docs/references.md item 8: coincident punctures give Schwarzschild of mass m1 + m2 (item 1).
     rng = np.random.default_rng(11)
     centre = np.array([0.2, 0.1, -0.4])
     points = random_points(rng, 30, r_min=0.2, r_max=5.0, centre=centre)

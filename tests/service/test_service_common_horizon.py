@@ -3,7 +3,7 @@ along a shrinking track. The common horizon first appears at the published criti
 is announced once, the individual horizons are still found after it, every surface's status is
 reported every slice, and the guidance after merger is a single region around the remnant.
 
-Published value (references.md item 7): for two equal bare masses m a common apparent horizon
+Published value (docs/references.md item 7): for two equal bare masses m a common apparent horizon
 exists only below a coordinate separation d_c of about 1.53 m (Cadez, Ann. Phys. 83, 449 (1974);
 Bishop, GRG 14, 717 (1982); values from memory), an independent axisymmetric calculation made
 for this project gave 1.5324 m. With m = 0.5 (total bare mass M = 1) d_c = 0.766 M.

@@ -2,10 +2,10 @@
 
 Published checks:
 * A lone Brill-Lindquist puncture is Schwarzschild in isotropic coordinates: horizon area
-  16 pi m^2, irreducible mass m (references.md item 1: Baumgarte & Shapiro, Numerical
+  16 pi m^2, irreducible mass m (docs/references.md item 1: Baumgarte & Shapiro, Numerical
   Relativity, Cambridge 2010, ch. 3 and 7).
 * Two Brill-Lindquist punctures far apart: each individual horizon's irreducible mass is close
-  to m_i (1 + m_j / (2 d)) (references.md item 7, leading order from the conformal factor).
+  to m_i (1 + m_j / (2 d)) (docs/references.md item 7, leading order from the conformal factor).
 """
 
 from __future__ import annotations
@@ -53,7 +53,7 @@ def test_lone_hole_area_is_16_pi_m2_and_every_result_is_archived(client, archive
     assert [e.iteration for e in found] == [0, 1, 2]
     for e in found:
         s = e.surface
-        # references.md item 1: area 16 pi m^2, irreducible mass m (grid h = 0.075 m, lmax 6)
+        # docs/references.md item 1: area 16 pi m^2, irreducible mass m (grid h = 0.075 m, lmax 6)
         assert s.area / (16 * np.pi * mass**2) == pytest.approx(1.0, abs=2e-3)
         assert s.irreducible_mass == pytest.approx(mass, abs=1e-3)
         assert np.allclose(s.centroid, LONE_CENTRE, atol=0.02)
@@ -107,7 +107,7 @@ def test_two_punctures_far_apart_have_the_leading_order_irreducible_masses(clien
     assert set(found) == {("A", 0), ("B", 0), ("A", 1), ("B", 1)}
     for (label, _), s in found.items():
         m, other, centre = (m1, m2, p1) if label == "A" else (m2, m1, p2)
-        # references.md item 7 (leading order in m/d): M_irr ~ m_i (1 + m_j / (2 d))
+        # docs/references.md item 7 (leading order in m/d): M_irr ~ m_i (1 + m_j / (2 d))
         assert s.irreducible_mass == pytest.approx(m * (1 + other / (2 * d)), rel=5e-3)
         assert np.linalg.norm(s.centroid - centre) < 0.05
     # The second slice was seeded from the first: it needs far fewer iterations than a scan.
@@ -132,7 +132,7 @@ def test_latest_surfaces_cache_and_unary_call_agree(client):
         time.sleep(0.05)
     fresh = client.latest_surfaces(run.run_id)["A"]  # the unary call, not the cache
     assert fresh.latest_attempt_found and fresh.latest_found.iteration == 7 and fresh.consecutive_misses == 0
-    assert fresh.latest_found.area == pytest.approx(16 * np.pi, rel=2e-3)  # references.md item 1
+    assert fresh.latest_found.area == pytest.approx(16 * np.pi, rel=2e-3)  # docs/references.md item 1
     assert cached.latest_found.iteration == 7 and cached.latest_found.area == fresh.latest_found.area
     np.testing.assert_array_equal(cached.latest_found.coefficients, fresh.latest_found.coefficients)
     run.close()

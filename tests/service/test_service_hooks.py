@@ -50,7 +50,7 @@ def test_planner_and_observer_hooks(tmp_path):
             assert kinds[index - 1] == "slice_processed"
     found = [e.surface for e in events if e.kind == "surface_found"]
     assert sorted(s.label for s in found) == ["A", "A", "outer", "outer"]
-    for s in found:  # references.md item 1: area 16 pi m^2
+    for s in found:  # docs/references.md item 1: area 16 pi m^2
         assert s.area == pytest.approx(16 * np.pi, rel=2e-3)
     view = open_archive(tmp_path, run.run_id)
     assert view.surface_labels == ("A", "outer")

@@ -3,9 +3,9 @@ z >= 0 and the server mirrors each slice at ingest (odd parity for the xz and yz
 components and shift_z). The surfaces and quantities equal those of a run sending the full grid
 on the same lattice.
 
-Spacetimes: Kerr in Kerr-Schild form with a = 0.6, spin along z (references.md item 3: area
+Spacetimes: Kerr in Kerr-Schild form with a = 0.6, spin along z (docs/references.md item 3: area
 8 pi M r_+, J = a M; item 5: Christodoulou mass M; item 6b: J from K_ij and the rotation field)
-and a Brill-Lindquist pair in the plane z = 0 (references.md item 7).
+and a Brill-Lindquist pair in the plane z = 0 (docs/references.md item 7).
 """
 
 from __future__ import annotations
@@ -97,7 +97,7 @@ def test_half_grid_with_reflection_gives_the_full_grid_surfaces(client, case):
     if case == "kerr_spin_z":
         k = direct["K"]
         r_plus = spacetime.horizon_radius
-        # Published checks (references.md items 3, 5, 6b); grid h = 0.1 M, so loose tolerances.
+        # Published checks (docs/references.md items 3, 5, 6b); grid h = 0.1 M, so loose tolerances.
         assert k.area == pytest.approx(8 * np.pi * r_plus, rel=2e-3)
         assert k.angular_momentum[2] == pytest.approx(0.6, rel=1e-2)
         assert k.christodoulou_mass == pytest.approx(1.0, rel=2e-3)

@@ -78,7 +78,7 @@ def test_restart_reopens_the_run_and_the_shim_carries_on(tmp_path):
     found = [e for e in seen if e.kind == "surface_found"]
     assert [e.iteration for e in found] == [0, 1, 2]
     # The slice after the restart was seeded from the archive's last surface (no new scan):
-    assert found[2].surface.area == pytest.approx(16 * np.pi, rel=2e-3)  # references.md item 1
+    assert found[2].surface.area == pytest.approx(16 * np.pi, rel=2e-3)  # docs/references.md item 1
     view = open_archive(tmp_path, run.run_id)
     assert view.surface("A")["event_seq"].tolist() == [e.seq for e in found]
     assert view.state == "closed"

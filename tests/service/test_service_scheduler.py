@@ -109,6 +109,6 @@ def test_a_moving_hole_is_followed_slice_after_slice(client):
     assert sorted(found) == list(range(5))
     for i, s in found.items():
         assert np.linalg.norm(s.centroid - truth[i]) < 0.02
-        assert s.area == pytest.approx(16 * np.pi, rel=3e-3)  # references.md item 1
+        assert s.area == pytest.approx(16 * np.pi, rel=3e-3)  # docs/references.md item 1
     # seeded finds (iterations 2..4, with a velocity) start close: few Newton iterations
     assert all(found[i].iterations <= 6 for i in (2, 3, 4)), [found[i].iterations for i in found]

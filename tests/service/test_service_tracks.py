@@ -1,8 +1,8 @@
 """Tracks through the service: horizon centroids over time, the puncture integrated from the
 shift the slices carry (d x^i / dt = -beta^i; Campanelli, Lousto, Marronetti & Zlochower, PRL 96,
-111101 (2006); Baker, Centrella, Choi, Koppitz & van Meter, PRL 96, 111102 (2006)), forecasts
-archived with their uncertainty and used to seed the next search, and all of it surviving a
-server restart."""
+111101 (2006); Baker, Centrella, Choi, Koppitz & van Meter, PRL 96, 111102 (2006);
+docs/references.md item 13), forecasts archived with their uncertainty and used to seed the next
+search, and all of it surviving a server restart."""
 
 from __future__ import annotations
 

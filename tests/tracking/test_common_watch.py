@@ -12,8 +12,8 @@ from penumbra_server.tracking import (
 
 # Two equal Brill-Lindquist bare masses m: a common horizon exists below a coordinate
 # separation of about 1.53 m (Cadez, Ann. Phys. 83, 449 (1974); Bishop, GRG 14, 717 (1982);
-# references.md item 7, from memory there); each individual horizon's coordinate radius is
-# close to m/2 (isotropic Schwarzschild, references.md item 7).
+# docs/references.md item 7, from memory there); each individual horizon's coordinate radius is
+# close to m/2 (isotropic Schwarzschild, docs/references.md item 7).
 M_BARE = 0.5
 D_CRITICAL = 1.53 * M_BARE
 R_INDIVIDUAL = 0.5 * M_BARE

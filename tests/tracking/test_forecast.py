@@ -1,6 +1,6 @@
 """Forecasts on synthetic quasi-circular inspirals from Peters' leading-order formula
 (Peters, Phys. Rev. 136, B1224 (1964): da/dt = -(64/5) m1 m2 (m1 + m2) / a^3,
-omega^2 = (m1 + m2) / a^3), compared with quadratic extrapolation of the same samples."""
+omega^2 = (m1 + m2) / a^3; docs/references.md item 14), compared with quadratic extrapolation of the same samples."""
 
 import numpy as np
 import pytest

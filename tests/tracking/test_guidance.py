@@ -118,7 +118,7 @@ def test_levels_nest():
 
 @pytest.mark.parametrize("q, regrid_interval", [(1.0, 4.0), (3.0, 4.0), (1.0, 16.0)])
 def test_finest_region_contains_the_moving_horizon_until_the_next_regrid(q, regrid_interval):
-    """Peters inspiral (Phys. Rev. 136, B1224 (1964)) from a = 10 M to 4 M; horizons of
+    """Peters inspiral (Phys. Rev. 136, B1224 (1964); docs/references.md item 14) from a = 10 M to 4 M; horizons of
     coordinate radius about m_i / 2 (isotropic-Schwarzschild-like, an assumption of the test)."""
     m1, m2 = mass_ratio_pair(q)
     inspiral = PetersInspiral(m1, m2, a0=10.0)

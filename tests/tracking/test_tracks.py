@@ -1,6 +1,6 @@
 """Tracks and the puncture integration d x^i / dt = -beta^i (Campanelli, Lousto, Marronetti &
 Zlochower, PRL 96, 111101 (2006); Baker, Centrella, Choi, Koppitz & van Meter, PRL 96, 111102
-(2006))."""
+(2006); docs/references.md item 13)."""
 
 import numpy as np
 import pytest

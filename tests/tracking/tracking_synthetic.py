@@ -1,6 +1,7 @@
 """Synthetic tracks for the tracking tests.
 
-Quasi-circular inspiral at leading order (Peters, Phys. Rev. 136, B1224 (1964)), G = c = 1:
+Quasi-circular inspiral at leading order (Peters, Phys. Rev. 136, B1224 (1964); docs/references.md
+item 14), G = c = 1:
     da/dt = -(64/5) m1 m2 (m1 + m2) / a^3,   omega^2 = (m1 + m2) / a^3.
 Integrated in closed form: a(t)^4 = a0^4 - 4 beta t with beta = (64/5) m1 m2 M, and
 dphi/da = omega / (da/dt) gives phi(t) = (2/5) sqrt(M) / beta (a0^(5/2) - a(t)^(5/2)).

@@ -12,8 +12,8 @@ Brill & Lindquist, Phys. Rev. 131, 471 (1963)) whose two punctures sit on a trac
 
 For two equal bare masses a common apparent horizon exists below a coordinate separation of
 about 0.766 M (Brill & Lindquist 1963; Cadez 1974; Bishop 1982; values from memory, see
-references.md item 7 of the shared design notes); the track ends well below that, so a common horizon must
-appear on the way even though unequal masses shift the threshold somewhat.
+docs/references.md item 7); the track ends well below that, so a common horizon must appear on
+the way even though unequal masses shift the threshold somewhat.
 
 The grid mimics the mesh refinement of a run: an outer box at twice the coarse spacing reaching
 3 M from the origin (a run's grid extends much further; this one is just large enough that a

@@ -35,7 +35,7 @@ DEFAULT_LMAX = 8
 #: A freshly formed common horizon needs a higher degree than the individual ones (common
 #: practice; the demo pair's common surface at d = 0.735 M is accepted from l_max 16 on).
 DEFAULT_LMAX_COMMON = 16
-DEFAULT_TOLERANCE = 1e-8  # 1/M; common practice is 1e-8 to 1e-10 (references.md)
+DEFAULT_TOLERANCE = 1e-8  # 1/M; common practice is 1e-8 to 1e-10 (docs/references.md item 15)
 DEFAULT_MAX_ITERATIONS = 40
 DEFAULT_QUEUE_DEPTH = 4
 #: Seconds the server waits for the missing parts of a slice sent in parts, from its first part.

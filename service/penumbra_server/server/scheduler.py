@@ -4,7 +4,7 @@ The planner protocol (:class:`SurfacePlanner`, :class:`SurfacePlan`) and the sim
 :class:`ExpectedBodiesPlanner`: every expected body, seeded from that body's previous result
 (re-centred on its centroid moved on at its last velocity) or, with no prior, by scanning coordinate spheres about the
 spec's position with radii 0.1 m .. 2 m (m the body's approximate mass; puncture data has its
-apparent horizon near r = m/2 in isotropic coordinates, references.md item 1), then Newton from
+apparent horizon near r = m/2 in isotropic coordinates, docs/references.md item 1), then Newton from
 the outermost candidate. The server's default is
 :class:`penumbra_server.server.planning.SteeringPlanner` (forecast seeds, lost bodies held,
 the common horizon of a pair); this one stays for custom planners that wrap it.

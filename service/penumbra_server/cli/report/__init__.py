@@ -1,0 +1,50 @@
+"""`penumbra report`: turn a run's archive into PNG plots and a text summary.
+
+The package's modules, one job each: :mod:`.loading` reads the archive into an
+:class:`ArchivedRun` of plain columns; :mod:`.numbers` and :mod:`.guidance` derive the figures
+(pure functions); :mod:`.text` writes them as ``summary.txt``; :mod:`.plots` draws
+``areas_masses.png``, ``tracks.png``, ``guidance.png`` and ``cross_sections.png``;
+:mod:`.write` runs the steps in order.
+
+Surfaces labelled like a body of the run spec are individual horizons; any other label is a
+surface the server looked for beyond the bodies (the common horizon of a merging pair).
+Guidance is advisory: the report shows what the server recommended, not what a run did.
+"""
+
+from .guidance import BodyRegion, GuidanceSummary, GuidanceUpdate, guidance_updates
+from .loading import ArchivedRun, load_run
+from .numbers import (ForecastCheck, RunSummary, SurfaceComparison, SurfaceSummary, TrackSummary, compare_surfaces,
+                      default_section_times, forecast_check, summarise)
+from .plots import (PlotInfo, chosen_forecasts, cone_path, default_guidance_choice, plot_areas_masses,
+                    plot_cross_sections, plot_guidance, plot_tracks)
+from .text import summary_text
+from .write import ReportResult, write_report
+
+__all__ = [
+    "ArchivedRun",
+    "BodyRegion",
+    "ForecastCheck",
+    "GuidanceSummary",
+    "GuidanceUpdate",
+    "PlotInfo",
+    "ReportResult",
+    "RunSummary",
+    "SurfaceComparison",
+    "SurfaceSummary",
+    "TrackSummary",
+    "chosen_forecasts",
+    "compare_surfaces",
+    "cone_path",
+    "default_guidance_choice",
+    "default_section_times",
+    "forecast_check",
+    "guidance_updates",
+    "load_run",
+    "plot_areas_masses",
+    "plot_cross_sections",
+    "plot_guidance",
+    "plot_tracks",
+    "summarise",
+    "summary_text",
+    "write_report",
+]

@@ -44,11 +44,11 @@ log = logging.getLogger("penumbra.server")
 
 
 def software_version() -> str:
-    """The installed penumbra distribution's version (recorded in every archive)."""
+    """The installed penumbra-horizons distribution's version (recorded in every archive)."""
     from importlib import metadata
 
     try:
-        return metadata.version("penumbra")
+        return metadata.version("penumbra-horizons")
     except metadata.PackageNotFoundError:
         return "unknown"
 

@@ -121,46 +121,52 @@ class RefinementOptions:
     Attributes:
         points_across_horizon: grid points across a horizon's smallest coordinate diameter on
             its finest level (20-40 is usual).
-        levels: nested refinement levels around the bodies.
+        nesting_depth: depth of the nest of refinement levels around the bodies.
         level_ratio: spacing and radius ratio between neighbouring levels.
         finest_radius_factor: finest radius in horizon radii, before the margins (1.2-2 usual).
-        regrid_interval: coordinate time between the evolution's regrids, M.
-        buffer_points: buffer-zone width in finest grid points.
+        steering_interval: coordinate time between the evolution's steering steps (where it
+            moves its refined regions), M.
+        guard_points: guard width around the finest region, in finest grid points.
     """
 
     points_across_horizon: float = 30.0
-    levels: int = 6
+    nesting_depth: int = 6
     level_ratio: float = 2.0
     finest_radius_factor: float = 1.5
-    regrid_interval: float = 4.0
-    buffer_points: int = 4
+    steering_interval: float = 4.0
+    guard_points: int = 4
 
     def __post_init__(self) -> None:
         checks = (("points_across_horizon", self.points_across_horizon > 0, "> 0"),
-                  ("levels", 1 <= int(self.levels) <= 16, "1..16"),
+                  ("nesting_depth", 1 <= int(self.nesting_depth) <= 16, "1..16"),
                   ("level_ratio", self.level_ratio > 1, "> 1"),
                   ("finest_radius_factor", self.finest_radius_factor >= 1, ">= 1"),
-                  ("regrid_interval", self.regrid_interval > 0, "> 0 (a time in M)"),
-                  ("buffer_points", int(self.buffer_points) >= 0, ">= 0"))
+                  ("steering_interval", self.steering_interval > 0, "> 0 (a time in M)"),
+                  ("guard_points", int(self.guard_points) >= 0, ">= 0"))
         for name, ok, expected in checks:
             value = getattr(self, name)
             if not ok or not math.isfinite(float(value)):
                 raise ValueError(f"refinement.{name}: expected {expected}, got {value!r}")
 
     def to_wire(self) -> pb.RefinementPolicy:
-        return pb.RefinementPolicy(points_across_horizon=float(self.points_across_horizon), levels=int(self.levels),
-                                   level_ratio=float(self.level_ratio),
+        return pb.RefinementPolicy(points_across_horizon=float(self.points_across_horizon),
+                                   nesting_depth=int(self.nesting_depth), level_ratio=float(self.level_ratio),
                                    finest_radius_factor=float(self.finest_radius_factor),
-                                   regrid_interval_m=float(self.regrid_interval), buffer_points=int(self.buffer_points))
+                                   steering_interval_m=float(self.steering_interval),
+                                   guard_points=int(self.guard_points))
 
     @classmethod
     def from_wire(cls, p: pb.RefinementPolicy) -> "RefinementOptions":
         d = cls()
         return cls(points_across_horizon=p.points_across_horizon or d.points_across_horizon,
-                   levels=p.levels or d.levels, level_ratio=p.level_ratio or d.level_ratio,
+                   nesting_depth=p.nesting_depth or d.nesting_depth, level_ratio=p.level_ratio or d.level_ratio,
                    finest_radius_factor=p.finest_radius_factor or d.finest_radius_factor,
-                   regrid_interval=p.regrid_interval_m or d.regrid_interval,
-                   buffer_points=p.buffer_points if p.HasField("buffer_points") else d.buffer_points)
+                   steering_interval=p.steering_interval_m or d.steering_interval,
+                   guard_points=p.guard_points if p.HasField("guard_points") else d.guard_points)
+
+
+_SYMMETRY_WIRE = {"none": pb.RunSpec.SYMMETRY_NONE, "bitant": pb.RunSpec.SYMMETRY_BITANT}
+_SYMMETRY_NAMES = {v: k for k, v in _SYMMETRY_WIRE.items()}
 
 
 @dataclass(frozen=True)
@@ -175,8 +181,9 @@ class RunSpec:
         finder: :class:`FinderOptions`.
         backlog: :class:`BacklogOptions`.
         refinement: :class:`RefinementOptions` of the guidance.
-        reflection_z: the run has reflection symmetry through z = 0 and sends z >= 0 only (a
-            node layer on z = 0); the server fills z < 0 with the right parity per component.
+        symmetry: "none" (the default), or "bitant": the run has mirror symmetry through z = 0
+            and sends z >= 0 only (a node layer on z = 0); the server fills z < 0 with the right
+            parity per component.
     """
 
     variable_set: str
@@ -186,10 +193,12 @@ class RunSpec:
     finder: FinderOptions = field(default_factory=FinderOptions)
     backlog: BacklogOptions = field(default_factory=BacklogOptions)
     refinement: RefinementOptions = field(default_factory=RefinementOptions)
-    reflection_z: bool = False
+    symmetry: str = "none"
 
     def __post_init__(self) -> None:
         check_variable_set(self.variable_set)
+        if self.symmetry not in _SYMMETRY_WIRE:
+            raise ValueError(f"symmetry: expected one of {sorted(_SYMMETRY_WIRE)}, got {self.symmetry!r}")
         bodies = tuple(self.bodies)
         if not bodies:
             raise ValueError("bodies: expected at least one Body")
@@ -212,7 +221,7 @@ class RunSpec:
                                      max_iterations=self.finder.max_iterations, lmax_common=self.finder.lmax_common),
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.backlog.queue_depth),
             refinement=self.refinement.to_wire(),
-            reflection_z=bool(self.reflection_z),
+            symmetry=_SYMMETRY_WIRE[self.symmetry],
         )
 
     @classmethod
@@ -226,7 +235,7 @@ class RunSpec:
                                  max_iterations=spec.finder.max_iterations, lmax_common=spec.finder.lmax_common),
             backlog=BacklogOptions(queue_depth=spec.backlog.queue_depth or 4),
             refinement=RefinementOptions.from_wire(spec.refinement),
-            reflection_z=spec.reflection_z,
+            symmetry=_SYMMETRY_NAMES.get(spec.symmetry, "none"),
         )
 
 

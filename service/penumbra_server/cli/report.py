@@ -253,7 +253,7 @@ class GuidanceUpdate:
     valid_from: float
     valid_until: float
     post_merger: bool
-    levels: int
+    nesting_depth: int
     bodies: tuple[BodyRegion, ...]
 
     @property
@@ -479,6 +479,8 @@ def guidance_updates(record: RunRecord) -> tuple[GuidanceUpdate, ...]:
         return ()
     region_seq = np.asarray(regions.get("event_seq", np.zeros(0, int)))
     body_seq = np.asarray(bodies.get("event_seq", np.zeros(0, int)))
+    # Archives written before the policy's fields were renamed call the column "levels".
+    depth = updates["nesting_depth"] if "nesting_depth" in updates else updates["levels"]
     result = []
     for u in np.argsort(np.asarray(updates["time"], dtype=float), kind="stable"):
         seq = int(updates["event_seq"][u])
@@ -504,7 +506,7 @@ def guidance_updates(record: RunRecord) -> tuple[GuidanceUpdate, ...]:
         result.append(GuidanceUpdate(
             event_seq=seq, time=float(updates["time"][u]), iteration=int(updates["iteration"][u]),
             valid_from=float(updates["valid_from"][u]), valid_until=float(updates["valid_until"][u]),
-            post_merger=bool(updates["post_merger"][u]), levels=int(updates["levels"][u]), bodies=tuple(entries)))
+            post_merger=bool(updates["post_merger"][u]), nesting_depth=int(depth[u]), bodies=tuple(entries)))
     return tuple(result)
 
 
@@ -606,7 +608,7 @@ def _tracking_lines(summary: RunSummary) -> list[str]:
     g = summary.guidance
     if g is not None:
         lines += ["", f"refinement guidance (advisory: the evolution decides): {g.updates} updates, "
-                      f"t = {g.first_time:.3f} .. {g.last_time:.3f} M, {g.final.levels} levels"]
+                      f"t = {g.first_time:.3f} .. {g.last_time:.3f} M, nesting depth {g.final.nesting_depth}"]
         if g.merged_spans:
             spans = ", ".join(f"{a:.3f}" if a == b else f"{a:.3f}-{b:.3f}" for a, b in g.merged_spans)
             lines.append(f"  finest regions of the bodies merged into one region at t = {spans} M "

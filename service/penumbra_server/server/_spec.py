@@ -26,6 +26,7 @@ __all__ = [
     "DEFAULT_REFINEMENT",
     "refinement_from_wire",
     "refinement_to_wire",
+    "symmetry_from_wire",
     "variable_set_from_wire",
     "variable_set_to_wire",
 ]
@@ -40,7 +41,7 @@ DEFAULT_QUEUE_DEPTH = 4
 MAX_LMAX = 32
 MAX_BODIES = 16
 MAX_QUEUE_DEPTH = 1024
-MAX_LEVELS = 16
+MAX_NESTING_DEPTH = 16
 #: The refinement policy's defaults (common practice; see tracking.guidance.RefinementPolicy).
 DEFAULT_REFINEMENT = RefinementPolicy()
 
@@ -69,6 +70,23 @@ def variable_set_to_wire(value: VariableSet) -> int:
     return _VARIABLE_SETS_BACK[VariableSet.parse(value)]
 
 
+_SYMMETRIES = {
+    pb.RunSpec.SYMMETRY_UNSPECIFIED: "none",
+    pb.RunSpec.SYMMETRY_NONE: "none",
+    pb.RunSpec.SYMMETRY_BITANT: "bitant",
+}
+_SYMMETRIES_BACK = {"none": pb.RunSpec.SYMMETRY_NONE, "bitant": pb.RunSpec.SYMMETRY_BITANT}
+
+
+def symmetry_from_wire(value: int, field: str = "spec.symmetry") -> str:
+    """"none" or "bitant" from the wire enum (unspecified is none); INVALID_ARGUMENT naming ``field``."""
+    try:
+        return _SYMMETRIES[value]
+    except KeyError:
+        raise ServiceError.invalid(f"{field}: unknown symmetry {value}; expected SYMMETRY_NONE or "
+                                   f"SYMMETRY_BITANT") from None
+
+
 def _finite(value: float, field: str) -> float:
     if not math.isfinite(value):
         raise ServiceError.invalid(f"{field}: expected a finite number, got {value}")
@@ -82,9 +100,10 @@ def refinement_from_wire(policy: pb.RefinementPolicy, field: str = "spec.refinem
     if points <= 0:
         raise ServiceError.invalid(f"{field}.points_across_horizon: expected > 0 (0 for the default "
                                    f"{d.points_across_horizon:g}), got {points}")
-    levels = int(policy.levels) or d.levels
-    if not 1 <= levels <= MAX_LEVELS:
-        raise ServiceError.invalid(f"{field}.levels: expected 1..{MAX_LEVELS} (0 for the default {d.levels}), got {levels}")
+    depth = int(policy.nesting_depth) or d.nesting_depth
+    if not 1 <= depth <= MAX_NESTING_DEPTH:
+        raise ServiceError.invalid(f"{field}.nesting_depth: expected 1..{MAX_NESTING_DEPTH} (0 for the default "
+                                   f"{d.nesting_depth}), got {depth}")
     ratio = _finite(policy.level_ratio, f"{field}.level_ratio") or d.level_ratio
     if ratio <= 1:
         raise ServiceError.invalid(f"{field}.level_ratio: expected > 1 (0 for the default {d.level_ratio:g}), got {ratio}")
@@ -92,38 +111,45 @@ def refinement_from_wire(policy: pb.RefinementPolicy, field: str = "spec.refinem
     if factor < 1:
         raise ServiceError.invalid(f"{field}.finest_radius_factor: expected >= 1 so the region holds the horizon "
                                    f"(0 for the default {d.finest_radius_factor:g}), got {factor}")
-    interval = _finite(policy.regrid_interval_m, f"{field}.regrid_interval_m") or d.regrid_interval
+    interval = _finite(policy.steering_interval_m, f"{field}.steering_interval_m") or d.steering_interval
     if interval <= 0:
-        raise ServiceError.invalid(f"{field}.regrid_interval_m: expected a time > 0 in M (0 for the default "
-                                   f"{d.regrid_interval:g}), got {interval}")
-    buffer = int(policy.buffer_points) if policy.HasField("buffer_points") else d.buffer_points
-    if not 0 <= buffer <= 1000:
-        raise ServiceError.invalid(f"{field}.buffer_points: expected 0..1000 (unset for the default "
-                                   f"{d.buffer_points}), got {buffer}")
-    return RefinementPolicy(points_across_horizon=float(points), levels=levels, level_ratio=float(ratio),
-                            finest_radius_factor=float(factor), regrid_interval=float(interval),
-                            buffer_points=buffer)
+        raise ServiceError.invalid(f"{field}.steering_interval_m: expected a time > 0 in M (0 for the default "
+                                   f"{d.steering_interval:g}), got {interval}")
+    guard = int(policy.guard_points) if policy.HasField("guard_points") else d.guard_points
+    if not 0 <= guard <= 1000:
+        raise ServiceError.invalid(f"{field}.guard_points: expected 0..1000 (unset for the default "
+                                   f"{d.guard_points}), got {guard}")
+    return RefinementPolicy(points_across_horizon=float(points), nesting_depth=depth, level_ratio=float(ratio),
+                            finest_radius_factor=float(factor), steering_interval=float(interval),
+                            guard_points=guard)
 
 
 def refinement_to_wire(policy: RefinementPolicy) -> pb.RefinementPolicy:
-    return pb.RefinementPolicy(points_across_horizon=policy.points_across_horizon, levels=policy.levels,
+    return pb.RefinementPolicy(points_across_horizon=policy.points_across_horizon, nesting_depth=policy.nesting_depth,
                                level_ratio=policy.level_ratio, finest_radius_factor=policy.finest_radius_factor,
-                               regrid_interval_m=policy.regrid_interval, buffer_points=policy.buffer_points)
+                               steering_interval_m=policy.steering_interval, guard_points=policy.guard_points)
 
 
 def _refinement_to_dict(policy: RefinementPolicy) -> dict:
-    return {"points_across_horizon": policy.points_across_horizon, "levels": policy.levels,
+    return {"points_across_horizon": policy.points_across_horizon, "nesting_depth": policy.nesting_depth,
             "level_ratio": policy.level_ratio, "finest_radius_factor": policy.finest_radius_factor,
-            "regrid_interval": policy.regrid_interval, "buffer_points": policy.buffer_points}
+            "steering_interval": policy.steering_interval, "guard_points": policy.guard_points}
 
 
 def _refinement_from_dict(data: dict | None) -> RefinementPolicy:
     if not data:  # archives written before the policy existed
         return DEFAULT_REFINEMENT
-    return RefinementPolicy(points_across_horizon=float(data["points_across_horizon"]), levels=int(data["levels"]),
+
+    def value(name: str, earlier_name: str):
+        # Archives written before the policy's fields were renamed hold the earlier names.
+        return data[name] if name in data else data[earlier_name]
+
+    return RefinementPolicy(points_across_horizon=float(data["points_across_horizon"]),
+                            nesting_depth=int(value("nesting_depth", "levels")),
                             level_ratio=float(data["level_ratio"]),
                             finest_radius_factor=float(data["finest_radius_factor"]),
-                            regrid_interval=float(data["regrid_interval"]), buffer_points=int(data["buffer_points"]))
+                            steering_interval=float(value("steering_interval", "regrid_interval")),
+                            guard_points=int(value("guard_points", "buffer_points")))
 
 
 @dataclass(frozen=True)
@@ -153,8 +179,13 @@ class RunSettings:
     lmax_common: int = 0
     #: Policy of the refinement guidance (tracking.guidance.RefinementPolicy).
     refinement: RefinementPolicy = DEFAULT_REFINEMENT
-    #: Slices carry z >= 0 only and are mirrored through z = 0 at ingest.
-    reflection_z: bool = False
+    #: The run's symmetry: "none", or "bitant" (slices carry z >= 0 only and are mirrored
+    #: through z = 0 at ingest).
+    symmetry: str = "none"
+
+    @property
+    def bitant(self) -> bool:
+        return self.symmetry == "bitant"
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -229,7 +260,7 @@ class RunSettings:
             queue_depth=int(depth),
             lmax_common=int(lmax_common),
             refinement=refinement_from_wire(spec.refinement),
-            reflection_z=bool(spec.reflection_z),
+            symmetry=symmetry_from_wire(spec.symmetry),
         )
 
     def to_wire(self) -> pb.RunSpec:
@@ -249,7 +280,7 @@ class RunSettings:
                                      lmax_common=self.common_lmax),
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.queue_depth),
             refinement=refinement_to_wire(self.refinement),
-            reflection_z=self.reflection_z,
+            symmetry=_SYMMETRIES_BACK[self.symmetry],
         )
 
     # -- archive attributes -----------------------------------------------------------------
@@ -265,7 +296,7 @@ class RunSettings:
                        "lmax_common": self.common_lmax},
             "backlog": {"queue_depth": self.queue_depth, "policy": self.backlog_policy},
             "refinement": _refinement_to_dict(self.refinement),
-            "reflection_z": self.reflection_z,
+            "symmetry": self.symmetry,
         }
 
     @classmethod
@@ -283,5 +314,6 @@ class RunSettings:
             lmax_common=int(data["finder"].get("lmax_common", 0)),
             backlog_policy=data["backlog"].get("policy", "keep_newest"),
             refinement=_refinement_from_dict(data.get("refinement")),
-            reflection_z=bool(data.get("reflection_z", False)),
+            # Archives written before the symmetry choice hold the bool reflection_z.
+            symmetry=data.get("symmetry") or ("bitant" if data.get("reflection_z") else "none"),
         )

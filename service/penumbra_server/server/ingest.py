@@ -235,7 +235,7 @@ class SliceAssembler:
 
 
 def mirror_through_z0(slice_: Slice) -> Slice:
-    """The full slice of a run with reflection symmetry through z = 0 (``reflection_z``).
+    """The full slice of a run with bitant symmetry (mirror symmetry through z = 0).
 
     INVALID_ARGUMENT when a patch reaches below z = 0 or its lowest node lies strictly between
     the plane and one spacing above it (see :mod:`penumbra_server.numerics.reflection`).
@@ -243,4 +243,4 @@ def mirror_through_z0(slice_: Slice) -> Slice:
     try:
         return mirror_slice_through_z0(slice_)
     except SliceError as exc:
-        raise ServiceError.invalid(f"header.patches: the run has reflection_z set: {exc}") from None
+        raise ServiceError.invalid(f"header.patches: the run has symmetry SYMMETRY_BITANT: {exc}") from None

@@ -120,7 +120,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
             raise ServiceError.invalid("header: the stream ended without a header")
         # The finiteness check walks every value: keep it off the event loop.
         slice_ = await asyncio.to_thread(assembler.finish)
-        if run.settings.reflection_z:
+        if run.settings.bitant:
             slice_ = await asyncio.to_thread(mirror_through_z0, slice_)
         item = QueuedSlice(slice_=slice_, nbytes=assembler.received_bytes, arrival_unix_s=time.time())
         return run.accept(item)

@@ -663,7 +663,7 @@ class RunSteering:
                 "required_spacing": b.required_spacing, "finest_lower": b.lower[-1], "finest_upper": b.upper[-1],
                 "horizon_max_radius": size.max_radius, "horizon_min_diameter": size.min_diameter,
                 "margin_horizon": b.margins["horizon"], "margin_motion": b.margins["motion"],
-                "margin_uncertainty": b.margins["uncertainty"], "margin_buffer": b.margins["buffer"],
+                "margin_uncertainty": b.margins["uncertainty"], "margin_guard": b.margins["guard"],
                 "reasons": json.dumps(dict(b.reasons), sort_keys=True),
             })
         for index, regions in enumerate(g.levels):
@@ -676,7 +676,7 @@ class RunSteering:
                                     "lower": r.lower, "upper": r.upper, "reason": r.reason})
         finest = min(b.finest_spacing for b in g.bodies)
         update_row = {"iteration": it, "time": t, "valid_from": g.valid_from, "valid_until": g.valid_until,
-                      "post_merger": g.post_merger, "levels": g.policy.levels, "finest_spacing": finest,
+                      "post_merger": g.post_merger, "nesting_depth": g.policy.nesting_depth, "finest_spacing": finest,
                       "reasons": json.dumps(dict(g.reasons), sort_keys=True)}
         regions_text = ", ".join(f"{'+'.join(r.bodies)} r={r.radius:.3g}" for r in g.finest_regions)
         text = (f"guidance valid {g.valid_from:.6g}..{g.valid_until:.6g} M, finest spacing {finest:.4g} M, "

@@ -1,0 +1,56 @@
+"""The run spec's renamed parts: archives written under the earlier names re-open unchanged, and
+the symmetry choice travels both ways."""
+
+import pytest
+
+import penumbra_shim as ps
+from penumbra_server.server._spec import RunSettings
+from penumbra_server.server.errors import ServiceError
+from penumbra_shim._wire import horizons_pb2 as pb
+
+
+def _spec_dict(**extra) -> dict:
+    settings = RunSettings.from_wire(ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),),
+                                                refinement=ps.RefinementOptions(nesting_depth=3, steering_interval=2.5,
+                                                                                guard_points=1)).to_wire())
+    data = settings.to_dict()
+    data.update(extra)
+    return data
+
+
+def test_an_archive_spec_with_the_earlier_names_reopens_with_the_same_policy_and_symmetry():
+    data = _spec_dict()
+    assert data["refinement"]["nesting_depth"] == 3 and data["symmetry"] == "none"
+    earlier = _spec_dict()
+    refinement = earlier["refinement"]
+    refinement["levels"] = refinement.pop("nesting_depth")
+    refinement["regrid_interval"] = refinement.pop("steering_interval")
+    refinement["buffer_points"] = refinement.pop("guard_points")
+    del earlier["symmetry"]
+    earlier["reflection_z"] = True
+    old = RunSettings.from_dict(earlier)
+    assert old.refinement == RunSettings.from_dict(data).refinement
+    assert (old.refinement.nesting_depth, old.refinement.steering_interval, old.refinement.guard_points) == (3, 2.5, 1)
+    assert old.symmetry == "bitant" and old.bitant
+
+
+@pytest.mark.parametrize("name, wire", [("none", pb.RunSpec.SYMMETRY_NONE), ("bitant", pb.RunSpec.SYMMETRY_BITANT)])
+def test_symmetry_round_trips_and_unspecified_means_none(name, wire):
+    spec = ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),), symmetry=name)
+    assert spec.to_wire().symmetry == wire
+    settings = RunSettings.from_wire(spec.to_wire())
+    assert settings.symmetry == name and settings.to_wire().symmetry == wire
+    assert ps.RunSpec.from_wire(settings.to_wire()).symmetry == name
+    unspecified = spec.to_wire()
+    unspecified.symmetry = pb.RunSpec.SYMMETRY_UNSPECIFIED
+    assert RunSettings.from_wire(unspecified).symmetry == "none"
+
+
+def test_an_unknown_symmetry_is_refused_naming_the_field():
+    with pytest.raises(ValueError, match="symmetry"):
+        ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),), symmetry="octant")
+    spec = ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),)).to_wire()
+    spec.symmetry = 7
+    with pytest.raises(ServiceError, match=r"spec\.symmetry: unknown symmetry 7") as info:
+        RunSettings.from_wire(spec)
+    assert info.value.code.name == "INVALID_ARGUMENT"

@@ -21,6 +21,7 @@ advisory: the evolution decides what to do with them.
 
 from ._client import Client, EventStream, RunHandle, SenderStats, SubmitTicket, connect
 from ._errors import PenumbraError, RunNotFoundError, SliceValidationError
+from ._excision import EXCISION_MASK_FIELD, ExcisedSphere
 from ._fields import VARIABLE_SETS, optional_fields, required_fields
 from ._slices import DEFAULT_CHUNK_BYTES, OutgoingPatch, OutgoingSlice, PatchData, build_slice, crop_outgoing_slice
 from ._types import (
@@ -49,6 +50,7 @@ from ._types import (
 __all__ = [
     "DEFAULT_CHUNK_BYTES",
     "EVENT_KINDS",
+    "EXCISION_MASK_FIELD",
     "VARIABLE_SETS",
     "BacklogOptions",
     "Body",
@@ -59,6 +61,7 @@ __all__ = [
     "DataWindows",
     "Event",
     "EventStream",
+    "ExcisedSphere",
     "FinderOptions",
     "Guidance",
     "PositionForecast",

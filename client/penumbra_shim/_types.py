@@ -10,6 +10,7 @@ from typing import Sequence
 
 import numpy as np
 
+from ._excision import ExcisedSphere
 from ._fields import check_variable_set
 from ._wire import horizons_pb2 as pb
 
@@ -53,6 +54,7 @@ _REASON_NAMES = {
     pb.SurfaceNotFound.REASON_OUTSIDE_DATA: "outside_data",
     pb.SurfaceNotFound.REASON_WORKER_FAILED: "worker_failed",
     pb.SurfaceNotFound.REASON_NOT_SEARCHED: "not_searched",
+    pb.SurfaceNotFound.REASON_NEEDS_EXCISED_DATA: "needs_excised_data",
 }
 _SOURCE_NAMES = {pb.TrackPoint.SOURCE_HORIZON: "horizon", pb.TrackPoint.SOURCE_PUNCTURE: "puncture"}
 _MODEL_NAMES = {pb.PositionForecast.MODEL_STATIC: "static", pb.PositionForecast.MODEL_POLYNOMIAL: "polynomial",
@@ -167,6 +169,9 @@ class RefinementOptions:
 
 _SYMMETRY_WIRE = {"none": pb.RunSpec.SYMMETRY_NONE, "bitant": pb.RunSpec.SYMMETRY_BITANT}
 _SYMMETRY_NAMES = {v: k for k, v in _SYMMETRY_WIRE.items()}
+_SHIFT_GAUGE_WIRE = {None: pb.RunSpec.SHIFT_GAUGE_UNSPECIFIED, "moving_puncture": pb.RunSpec.SHIFT_GAUGE_MOVING_PUNCTURE,
+                     "other": pb.RunSpec.SHIFT_GAUGE_OTHER}
+_SHIFT_GAUGE_NAMES = {v: k for k, v in _SHIFT_GAUGE_WIRE.items()}
 
 
 @dataclass(frozen=True)
@@ -184,6 +189,10 @@ class RunSpec:
         symmetry: "none" (the default), or "bitant": the run has mirror symmetry through z = 0
             and sends z >= 0 only (a node layer on z = 0); the server fills z < 0 with the right
             parity per component.
+        excised_spheres: :class:`ExcisedSphere` s the evolution cuts out (values there are not
+            data; pass the same to :func:`build_slice` so it accepts NaN there).
+        shift_gauge: "moving_puncture" (puncture tracks are integrated from the shift the slices
+            carry), "other", or None (not declared); only "moving_puncture" uses the shift.
     """
 
     variable_set: str
@@ -194,9 +203,17 @@ class RunSpec:
     backlog: BacklogOptions = field(default_factory=BacklogOptions)
     refinement: RefinementOptions = field(default_factory=RefinementOptions)
     symmetry: str = "none"
+    excised_spheres: Sequence[ExcisedSphere] = ()
+    shift_gauge: str | None = None
 
     def __post_init__(self) -> None:
         check_variable_set(self.variable_set)
+        spheres = tuple(self.excised_spheres)
+        if not all(isinstance(sphere, ExcisedSphere) for sphere in spheres):
+            raise ValueError(f"excised_spheres: expected ExcisedSphere values, got {list(self.excised_spheres)!r}")
+        object.__setattr__(self, "excised_spheres", spheres)
+        if self.shift_gauge not in _SHIFT_GAUGE_WIRE:
+            raise ValueError(f"shift_gauge: expected 'moving_puncture', 'other' or None, got {self.shift_gauge!r}")
         if self.symmetry not in _SYMMETRY_WIRE:
             raise ValueError(f"symmetry: expected one of {sorted(_SYMMETRY_WIRE)}, got {self.symmetry!r}")
         bodies = tuple(self.bodies)
@@ -222,6 +239,8 @@ class RunSpec:
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.backlog.queue_depth),
             refinement=self.refinement.to_wire(),
             symmetry=_SYMMETRY_WIRE[self.symmetry],
+            excised_spheres=[sphere.to_wire() for sphere in self.excised_spheres],
+            shift_gauge=_SHIFT_GAUGE_WIRE[self.shift_gauge],
         )
 
     @classmethod
@@ -236,6 +255,8 @@ class RunSpec:
             backlog=BacklogOptions(queue_depth=spec.backlog.queue_depth or 4),
             refinement=RefinementOptions.from_wire(spec.refinement),
             symmetry=_SYMMETRY_NAMES.get(spec.symmetry, "none"),
+            excised_spheres=tuple(ExcisedSphere.from_wire(sphere) for sphere in spec.excised_spheres),
+            shift_gauge=_SHIFT_GAUGE_NAMES.get(spec.shift_gauge),
         )
 
 

@@ -50,7 +50,7 @@ def _spec(name: str) -> ps.RunSpec:
     # steering interval = 8 cadences: the forecast's 9 lead times fall on the next slices' times.
     return ps.RunSpec(variable_set="conformal_w", bodies=(ps.Body("A", tuple(_puncture(0.0)), MASS),), name=name,
                       finder=ps.FinderOptions(lmax=6), backlog=ps.BacklogOptions(queue_depth=SLICES),
-                      refinement=ps.RefinementOptions(steering_interval=8 * DT))
+                      refinement=ps.RefinementOptions(steering_interval=8 * DT), shift_gauge="moving_puncture")
 
 
 def test_puncture_and_horizon_tracks_and_forecast_seeds(client, archive_root):

@@ -54,3 +54,35 @@ def test_an_unknown_symmetry_is_refused_naming_the_field():
     with pytest.raises(ServiceError, match=r"spec\.symmetry: unknown symmetry 7") as info:
         RunSettings.from_wire(spec)
     assert info.value.code.name == "INVALID_ARGUMENT"
+
+
+def test_excised_spheres_and_shift_gauge_travel_and_bad_ones_are_refused_naming_the_field():
+    spec = ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),),
+                      excised_spheres=[ps.ExcisedSphere((0.5, 0, 0), 0.4, body="A")], shift_gauge="moving_puncture")
+    settings = RunSettings.from_wire(spec.to_wire())
+    assert settings.excised_spheres[0].centre == (0.5, 0.0, 0.0) and settings.excised_spheres[0].radius == 0.4
+    assert settings.tracks_punctures and RunSettings.from_dict(settings.to_dict()) == settings
+    echoed = ps.RunSpec.from_wire(settings.to_wire())  # defaults filled in by the server, e.g. lmax_common
+    assert (echoed.excised_spheres, echoed.shift_gauge) == (spec.excised_spheres, "moving_puncture")
+    assert not RunSettings.from_wire(ps.RunSpec(variable_set="adm", bodies=spec.bodies,
+                                                shift_gauge="other").to_wire()).tracks_punctures
+    # Archives written before the gauge existed integrated every shift: a restarted server keeps that.
+    earlier = settings.to_dict()
+    del earlier["shift_gauge"], earlier["excised_spheres"]
+    assert RunSettings.from_dict(earlier).shift_gauge == "moving_puncture"
+    bad = spec.to_wire()
+    bad.excised_spheres[0].radius_m = -1.0
+    with pytest.raises(ServiceError, match=r"spec\.excised_spheres\[0\]\.radius_m: expected a radius > 0"):
+        RunSettings.from_wire(bad)
+    bad = spec.to_wire()
+    bad.excised_spheres[0].centre_m.y = float("nan")
+    with pytest.raises(ServiceError, match=r"spec\.excised_spheres\[0\]\.centre_m: expected a finite number"):
+        RunSettings.from_wire(bad)
+    bad = spec.to_wire()
+    bad.shift_gauge = 9
+    with pytest.raises(ServiceError, match=r"spec\.shift_gauge: unknown shift gauge 9"):
+        RunSettings.from_wire(bad)
+    with pytest.raises(ValueError, match="shift_gauge"):
+        ps.RunSpec(variable_set="adm", bodies=spec.bodies, shift_gauge="puncture")
+    with pytest.raises(ValueError, match="radius"):
+        ps.ExcisedSphere((0, 0, 0), -0.1)

@@ -68,7 +68,7 @@ class BacklogPolicy(_message.Message):
     def __init__(self, policy: _Optional[_Union[BacklogPolicy.Policy, str]] = ..., queue_depth: _Optional[int] = ...) -> None: ...
 
 class RunSpec(_message.Message):
-    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "symmetry")
+    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "symmetry", "excised_spheres", "shift_gauge")
     class Symmetry(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         SYMMETRY_UNSPECIFIED: _ClassVar[RunSpec.Symmetry]
@@ -77,6 +77,14 @@ class RunSpec(_message.Message):
     SYMMETRY_UNSPECIFIED: RunSpec.Symmetry
     SYMMETRY_NONE: RunSpec.Symmetry
     SYMMETRY_BITANT: RunSpec.Symmetry
+    class ShiftGauge(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+        __slots__ = ()
+        SHIFT_GAUGE_UNSPECIFIED: _ClassVar[RunSpec.ShiftGauge]
+        SHIFT_GAUGE_MOVING_PUNCTURE: _ClassVar[RunSpec.ShiftGauge]
+        SHIFT_GAUGE_OTHER: _ClassVar[RunSpec.ShiftGauge]
+    SHIFT_GAUGE_UNSPECIFIED: RunSpec.ShiftGauge
+    SHIFT_GAUGE_MOVING_PUNCTURE: RunSpec.ShiftGauge
+    SHIFT_GAUGE_OTHER: RunSpec.ShiftGauge
     DISPLAY_NAME_FIELD_NUMBER: _ClassVar[int]
     VARIABLE_SET_FIELD_NUMBER: _ClassVar[int]
     MASS_SCALE_SOLAR_MASSES_FIELD_NUMBER: _ClassVar[int]
@@ -85,6 +93,8 @@ class RunSpec(_message.Message):
     BACKLOG_FIELD_NUMBER: _ClassVar[int]
     REFINEMENT_FIELD_NUMBER: _ClassVar[int]
     SYMMETRY_FIELD_NUMBER: _ClassVar[int]
+    EXCISED_SPHERES_FIELD_NUMBER: _ClassVar[int]
+    SHIFT_GAUGE_FIELD_NUMBER: _ClassVar[int]
     display_name: str
     variable_set: VariableSet
     mass_scale_solar_masses: float
@@ -93,7 +103,19 @@ class RunSpec(_message.Message):
     backlog: BacklogPolicy
     refinement: RefinementPolicy
     symmetry: RunSpec.Symmetry
-    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., symmetry: _Optional[_Union[RunSpec.Symmetry, str]] = ...) -> None: ...
+    excised_spheres: _containers.RepeatedCompositeFieldContainer[ExcisedSphere]
+    shift_gauge: RunSpec.ShiftGauge
+    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., symmetry: _Optional[_Union[RunSpec.Symmetry, str]] = ..., excised_spheres: _Optional[_Iterable[_Union[ExcisedSphere, _Mapping]]] = ..., shift_gauge: _Optional[_Union[RunSpec.ShiftGauge, str]] = ...) -> None: ...
+
+class ExcisedSphere(_message.Message):
+    __slots__ = ("centre_m", "radius_m", "body")
+    CENTRE_M_FIELD_NUMBER: _ClassVar[int]
+    RADIUS_M_FIELD_NUMBER: _ClassVar[int]
+    BODY_FIELD_NUMBER: _ClassVar[int]
+    centre_m: Vector3
+    radius_m: float
+    body: str
+    def __init__(self, centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_m: _Optional[float] = ..., body: _Optional[str] = ...) -> None: ...
 
 class RefinementPolicy(_message.Message):
     __slots__ = ("points_across_horizon", "nesting_depth", "level_ratio", "finest_radius_factor", "steering_interval_m", "guard_points")
@@ -387,12 +409,14 @@ class SurfaceNotFound(_message.Message):
         REASON_OUTSIDE_DATA: _ClassVar[SurfaceNotFound.Reason]
         REASON_WORKER_FAILED: _ClassVar[SurfaceNotFound.Reason]
         REASON_NOT_SEARCHED: _ClassVar[SurfaceNotFound.Reason]
+        REASON_NEEDS_EXCISED_DATA: _ClassVar[SurfaceNotFound.Reason]
     REASON_UNSPECIFIED: SurfaceNotFound.Reason
     REASON_NOT_CONVERGED: SurfaceNotFound.Reason
     REASON_NO_CANDIDATE: SurfaceNotFound.Reason
     REASON_OUTSIDE_DATA: SurfaceNotFound.Reason
     REASON_WORKER_FAILED: SurfaceNotFound.Reason
     REASON_NOT_SEARCHED: SurfaceNotFound.Reason
+    REASON_NEEDS_EXCISED_DATA: SurfaceNotFound.Reason
     LABEL_FIELD_NUMBER: _ClassVar[int]
     REASON_FIELD_NUMBER: _ClassVar[int]
     MESSAGE_FIELD_NUMBER: _ClassVar[int]

@@ -125,7 +125,8 @@ class HorizonServiceServicer:
         field missing from a patch, bad shape/spacing/dtype/order,
         total_bytes not matching the patches), a chunk that does not
         fit the patch and field the header declared, chunks of a field
-        out of order, or a non-finite value in a field.
+        out of order, or a non-finite value in a field outside the
+        excised regions (RunSpec.excised_spheres, excision_mask).
         RESOURCE_EXHAUSTED   a chunk larger than the server's chunk limit, or a slice
         larger than the server's slice limit.
         DATA_LOSS            the stream ended before every byte the header declared arrived.

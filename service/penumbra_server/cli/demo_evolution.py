@@ -70,6 +70,7 @@ def run_spec_for(scenario: DemoScenario, *, lmax: int = DEFAULT_LMAX, name: str 
         finder=ps.FinderOptions(lmax=lmax, tolerance=1e-8, max_iterations=40),
         backlog=ps.BacklogOptions(queue_depth=4, policy="keep_newest"),
         refinement=ps.RefinementOptions(steering_interval=float(steering_interval)),
+        shift_gauge="moving_puncture",  # the invented shift carries the punctures (puncture tracks)
     )
 
 

@@ -12,6 +12,7 @@ from dataclasses import dataclass
 
 from penumbra_shim._wire import horizons_pb2 as pb
 
+from ..numerics.excision import ExcisedSphere
 from ..numerics.slices import VariableSet
 from ..tracking.guidance import RefinementPolicy
 from .errors import ServiceError
@@ -27,6 +28,9 @@ __all__ = [
     "refinement_from_wire",
     "refinement_to_wire",
     "symmetry_from_wire",
+    "shift_gauge_from_wire",
+    "excised_spheres_from_wire",
+    "excised_spheres_to_wire",
     "variable_set_from_wire",
     "variable_set_to_wire",
 ]
@@ -42,6 +46,7 @@ MAX_LMAX = 32
 MAX_BODIES = 16
 MAX_QUEUE_DEPTH = 1024
 MAX_NESTING_DEPTH = 16
+MAX_EXCISED_SPHERES = 64
 #: The refinement policy's defaults (common practice; see tracking.guidance.RefinementPolicy).
 DEFAULT_REFINEMENT = RefinementPolicy()
 
@@ -85,6 +90,47 @@ def symmetry_from_wire(value: int, field: str = "spec.symmetry") -> str:
     except KeyError:
         raise ServiceError.invalid(f"{field}: unknown symmetry {value}; expected SYMMETRY_NONE or "
                                    f"SYMMETRY_BITANT") from None
+
+
+_SHIFT_GAUGES = {
+    pb.RunSpec.SHIFT_GAUGE_UNSPECIFIED: "unspecified",
+    pb.RunSpec.SHIFT_GAUGE_MOVING_PUNCTURE: "moving_puncture",
+    pb.RunSpec.SHIFT_GAUGE_OTHER: "other",
+}
+_SHIFT_GAUGES_BACK = {v: k for k, v in _SHIFT_GAUGES.items()}
+
+
+def shift_gauge_from_wire(value: int, field: str = "spec.shift_gauge") -> str:
+    """"unspecified", "moving_puncture" or "other"; INVALID_ARGUMENT naming ``field`` otherwise."""
+    try:
+        return _SHIFT_GAUGES[value]
+    except KeyError:
+        raise ServiceError.invalid(f"{field}: unknown shift gauge {value}; expected SHIFT_GAUGE_MOVING_PUNCTURE, "
+                                   f"SHIFT_GAUGE_OTHER or unset") from None
+
+
+def excised_spheres_from_wire(spheres, field: str = "spec.excised_spheres") -> tuple[ExcisedSphere, ...]:
+    """The declared excised spheres; INVALID_ARGUMENT naming the sphere and field at fault."""
+    if len(spheres) > MAX_EXCISED_SPHERES:
+        raise ServiceError.invalid(f"{field}: at most {MAX_EXCISED_SPHERES} spheres, got {len(spheres)}")
+    result = []
+    for index, sphere in enumerate(spheres):
+        where = f"{field}[{index}]"
+        c = sphere.centre_m
+        centre = tuple(_finite(v, f"{where}.centre_m") for v in (c.x, c.y, c.z))
+        radius = _finite(sphere.radius_m, f"{where}.radius_m")
+        if radius <= 0:
+            raise ServiceError.invalid(f"{where}.radius_m: expected a radius > 0 in M, got {radius}")
+        if sphere.body and not _LABEL.match(sphere.body):
+            raise ServiceError.invalid(f"{where}.body: expected empty or 1-32 letters, digits, '-' or '_', "
+                                       f"got {sphere.body!r}")
+        result.append(ExcisedSphere(centre, radius, sphere.body))
+    return tuple(result)
+
+
+def excised_spheres_to_wire(spheres) -> list[pb.ExcisedSphere]:
+    return [pb.ExcisedSphere(centre_m=pb.Vector3(x=s.centre[0], y=s.centre[1], z=s.centre[2]), radius_m=s.radius,
+                             body=s.body) for s in spheres]
 
 
 def _finite(value: float, field: str) -> float:
@@ -182,10 +228,20 @@ class RunSettings:
     #: The run's symmetry: "none", or "bitant" (slices carry z >= 0 only and are mirrored
     #: through z = 0 at ingest).
     symmetry: str = "none"
+    #: Regions whose values are not data (numerics.excision.ExcisedSphere), units of M.
+    excised_spheres: tuple[ExcisedSphere, ...] = ()
+    #: "moving_puncture" (puncture tracks are integrated from the shift), "other" or
+    #: "unspecified" (both: the shift is not used for tracking).
+    shift_gauge: str = "unspecified"
 
     @property
     def bitant(self) -> bool:
         return self.symmetry == "bitant"
+
+    @property
+    def tracks_punctures(self) -> bool:
+        """Whether puncture tracks are integrated from the shift (a moving-puncture gauge)."""
+        return self.shift_gauge == "moving_puncture"
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -261,6 +317,8 @@ class RunSettings:
             lmax_common=int(lmax_common),
             refinement=refinement_from_wire(spec.refinement),
             symmetry=symmetry_from_wire(spec.symmetry),
+            excised_spheres=excised_spheres_from_wire(spec.excised_spheres),
+            shift_gauge=shift_gauge_from_wire(spec.shift_gauge),
         )
 
     def to_wire(self) -> pb.RunSpec:
@@ -281,6 +339,8 @@ class RunSettings:
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.queue_depth),
             refinement=refinement_to_wire(self.refinement),
             symmetry=_SYMMETRIES_BACK[self.symmetry],
+            excised_spheres=excised_spheres_to_wire(self.excised_spheres),
+            shift_gauge=_SHIFT_GAUGES_BACK[self.shift_gauge],
         )
 
     # -- archive attributes -----------------------------------------------------------------
@@ -297,6 +357,9 @@ class RunSettings:
             "backlog": {"queue_depth": self.queue_depth, "policy": self.backlog_policy},
             "refinement": _refinement_to_dict(self.refinement),
             "symmetry": self.symmetry,
+            "excised_spheres": [{"centre": list(s.centre), "radius": s.radius, "body": s.body}
+                                for s in self.excised_spheres],
+            "shift_gauge": self.shift_gauge,
         }
 
     @classmethod
@@ -316,4 +379,8 @@ class RunSettings:
             refinement=_refinement_from_dict(data.get("refinement")),
             # Archives written before the symmetry choice hold the bool reflection_z.
             symmetry=data.get("symmetry") or ("bitant" if data.get("reflection_z") else "none"),
+            excised_spheres=tuple(ExcisedSphere(tuple(s["centre"]), float(s["radius"]), s.get("body", ""))
+                                  for s in data.get("excised_spheres", ())),
+            # Archives written before the gauge was declared integrated tracks from any shift.
+            shift_gauge=data.get("shift_gauge", "moving_puncture"),
         )

@@ -111,7 +111,8 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                 if run.is_duplicate(header.iteration):
                     # Idempotent resend: answer at once, without reading the data again.
                     return run.duplicate_response(header.iteration, 0)
-                assembler = SliceAssembler(header, run.settings.variable_set, self.limits)
+                assembler = SliceAssembler(header, run.settings.variable_set, self.limits,
+                                           excised_spheres=run.settings.excised_spheres)
             elif part == "chunk":
                 assembler.add(request.chunk)
             else:

@@ -13,7 +13,7 @@ $(STAMP): pyproject.toml
 	@test -n "$(PYTHON)" || { echo "need python3.11 on PATH (or make PYTHON=/path/to/python3.11)"; exit 1; }
 	@$(PYTHON) -c 'import sys; sys.exit(sys.version_info < (3, 11))' || \
 		{ echo "need Python >= 3.11; $(PYTHON) is $$($(PYTHON) -V 2>&1)"; exit 1; }
-	@echo "setting up $(VENV) with $(PYTHON) and installing penumbra[dev] (about a minute the first time)"
+	@echo "setting up $(VENV) with $(PYTHON) and installing penumbra-horizons[dev] (about a minute the first time)"
 	$(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
 	$(PY) -m pip install --quiet -e '.[dev]'

@@ -29,6 +29,7 @@ from ._errors import (
     SliceValidationError,
     UnknownWireValueError,
 )
+from ._excision import EXCISION_MASK_FIELD, ExcisedSphere
 from ._fields import VARIABLE_SETS, optional_fields, required_fields
 from ._slices import DEFAULT_CHUNK_BYTES, OutgoingPatch, OutgoingSlice, PatchData, build_slice, crop_outgoing_slice
 from ._types import (
@@ -57,6 +58,7 @@ from ._types import (
 __all__ = [
     "DEFAULT_CHUNK_BYTES",
     "EVENT_KINDS",
+    "EXCISION_MASK_FIELD",
     "VARIABLE_SETS",
     "BacklogOptions",
     "Body",
@@ -68,6 +70,7 @@ __all__ = [
     "DataWindows",
     "Event",
     "EventStream",
+    "ExcisedSphere",
     "FinderOptions",
     "Guidance",
     "InvalidArgumentError",

@@ -93,10 +93,12 @@ def _timeout(value: float, name: str = "timeout_s") -> float:
 
 # -- the run spec string ----------------------------------------------------------------------
 
-_INT_KEYS = ("lmax", "lmax_common", "max_iterations", "queue_depth", "levels")
-_FLOAT_KEYS = ("tolerance", "points_across_horizon", "regrid_interval", "mass_scale_solar_masses")
-_FLAG_KEYS = ("reflection_z", "crop_to_windows")
-_SPEC_KEYS = ("variable_set", "body", "name") + _INT_KEYS + _FLOAT_KEYS + _FLAG_KEYS
+_INT_KEYS = ("lmax", "lmax_common", "max_iterations", "queue_depth", "nesting_depth")
+_FLOAT_KEYS = ("tolerance", "points_across_horizon", "steering_interval", "mass_scale_solar_masses",
+               "part_deadline_s")
+_FLAG_KEYS = ("crop_to_windows",)
+_CHOICE_KEYS = {"symmetry": ("none", "bitant"), "shift_gauge": ("moving_puncture", "other")}
+_SPEC_KEYS = ("variable_set", "body", "name") + _INT_KEYS + _FLOAT_KEYS + _FLAG_KEYS + tuple(_CHOICE_KEYS)
 
 
 def _number(text: str, key: str, kind):
@@ -147,6 +149,11 @@ def parse_spec(text: str) -> tuple[RunSpec, dict]:
             if value.strip() not in ("0", "1"):
                 raise BridgeError("INVALID_ARGUMENT", f"spec.{key}: expected 0 or 1, got {value.strip()!r}")
             values[key] = value.strip() == "1"
+        elif key in _CHOICE_KEYS:
+            if value.strip() not in _CHOICE_KEYS[key]:
+                raise BridgeError("INVALID_ARGUMENT",
+                                  f"spec.{key}: expected one of {', '.join(_CHOICE_KEYS[key])}, got {value.strip()!r}")
+            values[key] = value.strip()
         else:
             values[key] = value.strip()
     variable_set = values.get("variable_set")
@@ -167,9 +174,11 @@ def parse_spec(text: str) -> tuple[RunSpec, dict]:
             backlog=BacklogOptions(queue_depth=values.get("queue_depth", BacklogOptions().queue_depth)),
             refinement=RefinementOptions(
                 points_across_horizon=values.get("points_across_horizon", refine_defaults.points_across_horizon),
-                levels=values.get("levels", refine_defaults.levels),
-                regrid_interval=values.get("regrid_interval", refine_defaults.regrid_interval)),
-            reflection_z=values.get("reflection_z", False),
+                nesting_depth=values.get("nesting_depth", refine_defaults.nesting_depth),
+                steering_interval=values.get("steering_interval", refine_defaults.steering_interval)),
+            symmetry=values.get("symmetry", "none"),
+            shift_gauge=values.get("shift_gauge"),
+            part_deadline_s=values.get("part_deadline_s", 0.0),
         )
     except ValueError as exc:
         raise BridgeError("INVALID_ARGUMENT", f"spec: {exc}") from None

@@ -20,6 +20,7 @@ from typing import Iterator, Mapping, Sequence
 import numpy as np
 
 from ._errors import SliceValidationError
+from ._excision import EXCISION_MASK_FIELD, ExcisedSphere, excised_nodes
 from ._fields import VARIABLE_SET_WIRE, optional_fields, required_fields
 from ._wire import horizons_pb2 as pb
 
@@ -183,11 +184,35 @@ def _pick_order(patch: PatchData, where: str) -> str:
     return "C"
 
 
-def _first_bad_node(arr: np.ndarray) -> list[int]:
-    return [int(v) for v in np.argwhere(~np.isfinite(arr))[0]]
+def _check_finite(arrays: Mapping[str, np.ndarray], shape, order: str, where: str, patch: PatchData,
+                  excised_spheres: Sequence[ExcisedSphere]) -> None:
+    """Refuse NaN and infinity outside the declared excised regions (the mask must be finite)."""
+    as_3d = {name: (arr.reshape(shape, order=order) if arr.ndim == 1 else arr) for name, arr in arrays.items()}
+    excised = None  # built only when a field holds a non-finite value
+    for name, arr in as_3d.items():
+        finite = np.isfinite(arr)
+        if finite.all():
+            continue
+        if name != EXCISION_MASK_FIELD:
+            if excised is None:
+                mask = as_3d.get(EXCISION_MASK_FIELD)
+                excised = excised_nodes(patch.origin, patch.spacing, shape, excised_spheres,
+                                        mask if mask is not None and np.isfinite(mask).all() else None)
+            finite = finite | excised
+            if finite.all():
+                continue
+        declared = excised_spheres or EXCISION_MASK_FIELD in arrays
+        detail = (" (the excision mask itself must be finite)" if name == EXCISION_MASK_FIELD else
+                  " outside the declared excised regions" if declared else "")
+        node = [int(v) for v in np.argwhere(~finite)[0]]
+        raise SliceValidationError(
+            f"{where}.fields[{name!r}]: non-finite value (NaN or infinity){detail} at node [i, j, k] = {node}; "
+            f"expected finite numbers"
+        )
 
 
-def _encode_patch(patch: PatchData, index: int, variable_set: str, *, check_finite: bool) -> OutgoingPatch:
+def _encode_patch(patch: PatchData, index: int, variable_set: str, *, check_finite: bool,
+                  excised_spheres: Sequence[ExcisedSphere] = ()) -> OutgoingPatch:
     where = f"patches[{index}]"
     if not isinstance(patch, PatchData):
         raise SliceValidationError(f"{where}: expected a PatchData, got {type(patch).__name__}")
@@ -196,7 +221,8 @@ def _encode_patch(patch: PatchData, index: int, variable_set: str, *, check_fini
     if not patch.fields:
         raise SliceValidationError(f"{where}.fields: no fields given")
     required = required_fields(variable_set)
-    allowed = set(required) | set(optional_fields(variable_set))
+    optional = optional_fields(variable_set) + (EXCISION_MASK_FIELD,)
+    allowed = set(required) | set(optional)
     missing = [name for name in required if name not in patch.fields]
     if missing:
         raise SliceValidationError(
@@ -206,7 +232,7 @@ def _encode_patch(patch: PatchData, index: int, variable_set: str, *, check_fini
     if unknown:
         raise SliceValidationError(
             f"{where}.fields: unknown field {', '.join(map(repr, unknown))} for variable set {variable_set!r}; "
-            f"expected {', '.join(required)} and optionally {', '.join(optional_fields(variable_set))}"
+            f"expected {', '.join(required)} and optionally {', '.join(optional)}"
         )
     shape, shape_source = _patch_shape(patch, where)
     order = _pick_order(patch, where)
@@ -234,13 +260,9 @@ def _encode_patch(patch: PatchData, index: int, variable_set: str, *, check_fini
             raise SliceValidationError(
                 f"{where}.fields[{name!r}]: expected a 3-D array of shape {shape} or a flat buffer, got {arr.ndim}-D"
             )
-        if check_finite and not np.all(np.isfinite(arr)):
-            node = _first_bad_node(arr.reshape(shape, order=order) if arr.ndim == 1 else arr)
-            raise SliceValidationError(
-                f"{where}.fields[{name!r}]: non-finite value (NaN or infinity) at node [i, j, k] = {node}; "
-                f"expected finite numbers"
-            )
         arrays[name] = arr
+    if check_finite:
+        _check_finite(arrays, shape, order, where, patch, excised_spheres)
     dtype = "float32" if all(a.dtype == np.float32 for a in arrays.values()) else "float64"
     wire_dtype = np.dtype("<f4" if dtype == "float32" else "<f8")
     # The defensive copy: bytes in wire layout, so the caller may reuse its arrays at once.
@@ -263,6 +285,7 @@ def build_slice(
     check_finite: bool = True,
     part_index: int = 0,
     part_count: int = 1,
+    excised_spheres: Sequence[ExcisedSphere] = (),
 ) -> OutgoingSlice:
     """Validate a slice (or one part of it) and copy its data in wire layout.
 
@@ -271,11 +294,14 @@ def build_slice(
         iteration: the evolution's iteration number (identifies the slice within the run).
         variable_set: "adm", "conformal_chi", "conformal_w" or "conformal_phi".
         patches: one :class:`PatchData` or a sequence of them; may be empty in a part.
-        check_finite: reject NaN and infinity (the server rejects them too).
+        check_finite: reject NaN and infinity outside the excised regions (the server rejects
+            them too).
         part_index: this part's index, 0 .. part_count - 1 (e.g. the MPI rank).
         part_count: the number of parts the slice is sent in (e.g. the MPI rank count); 1 for a
             whole slice. Every part of one iteration must give the same time and count; the
             server assembles the slice when all have arrived (or after the run's part deadline).
+        excised_spheres: the run's excised spheres (``RunSpec.excised_spheres``): NaN is allowed
+            at nodes inside them, as at nodes where a patch's ``excision_mask`` field is nonzero.
 
     Raises:
         SliceValidationError: naming the field at fault and what was expected.
@@ -306,7 +332,11 @@ def build_slice(
     if not patches and part_count == 1:
         raise SliceValidationError("patches: a whole slice needs at least one patch (only a part of a slice sent "
                                    "in parts, part_count > 1, may be empty)")
-    encoded = tuple(_encode_patch(p, i, variable_set, check_finite=check_finite) for i, p in enumerate(patches))
+    spheres = tuple(excised_spheres)
+    if not all(isinstance(sphere, ExcisedSphere) for sphere in spheres):
+        raise SliceValidationError("excised_spheres: expected ExcisedSphere values (the run spec's)")
+    encoded = tuple(_encode_patch(p, i, variable_set, check_finite=check_finite, excised_spheres=spheres)
+                    for i, p in enumerate(patches))
     return OutgoingSlice(time=time_value, iteration=int(iteration), variable_set=variable_set, patches=encoded,
                          part_index=int(part_index), part_count=int(part_count))
 

@@ -10,6 +10,7 @@ from typing import Sequence
 
 import numpy as np
 
+from ._excision import ExcisedSphere
 from ._fields import VARIABLE_SET_WIRE, check_variable_set, variable_set_from_wire
 from ._wire import horizons_pb2 as pb
 
@@ -46,6 +47,7 @@ _REASON_NAMES = {
     pb.SurfaceNotFound.REASON_OUTSIDE_DATA: "outside_data",
     pb.SurfaceNotFound.REASON_WORKER_FAILED: "worker_failed",
     pb.SurfaceNotFound.REASON_NOT_SEARCHED: "not_searched",
+    pb.SurfaceNotFound.REASON_NEEDS_EXCISED_DATA: "needs_excised_data",
 }
 _SOURCE_NAMES = {pb.TrackPoint.SOURCE_HORIZON: "horizon", pb.TrackPoint.SOURCE_PUNCTURE: "puncture"}
 _MODEL_NAMES = {pb.PositionForecast.MODEL_STATIC: "static", pb.PositionForecast.MODEL_POLYNOMIAL: "polynomial",
@@ -117,46 +119,55 @@ class RefinementOptions:
     Attributes:
         points_across_horizon: grid points across a horizon's smallest coordinate diameter on
             its finest level (20-40 is usual).
-        levels: nested refinement levels around the bodies.
+        nesting_depth: depth of the nest of refinement levels around the bodies.
         level_ratio: spacing and radius ratio between neighbouring levels.
         finest_radius_factor: finest radius in horizon radii, before the margins (1.2-2 usual).
-        regrid_interval: coordinate time between the evolution's regrids, M.
-        buffer_points: buffer-zone width in finest grid points.
+        steering_interval: coordinate time between the evolution's steering steps (where it
+            moves its refined regions), M.
+        guard_points: guard width around the finest region, in finest grid points.
     """
 
     points_across_horizon: float = 30.0
-    levels: int = 6
+    nesting_depth: int = 6
     level_ratio: float = 2.0
     finest_radius_factor: float = 1.5
-    regrid_interval: float = 4.0
-    buffer_points: int = 4
+    steering_interval: float = 4.0
+    guard_points: int = 4
 
     def __post_init__(self) -> None:
         checks = (("points_across_horizon", self.points_across_horizon > 0, "> 0"),
-                  ("levels", 1 <= int(self.levels) <= 16, "1..16"),
+                  ("nesting_depth", 1 <= int(self.nesting_depth) <= 16, "1..16"),
                   ("level_ratio", self.level_ratio > 1, "> 1"),
                   ("finest_radius_factor", self.finest_radius_factor >= 1, ">= 1"),
-                  ("regrid_interval", self.regrid_interval > 0, "> 0 (a time in M)"),
-                  ("buffer_points", int(self.buffer_points) >= 0, ">= 0"))
+                  ("steering_interval", self.steering_interval > 0, "> 0 (a time in M)"),
+                  ("guard_points", int(self.guard_points) >= 0, ">= 0"))
         for name, ok, expected in checks:
             value = getattr(self, name)
             if not ok or not math.isfinite(float(value)):
                 raise ValueError(f"refinement.{name}: expected {expected}, got {value!r}")
 
     def to_wire(self) -> pb.RefinementPolicy:
-        return pb.RefinementPolicy(points_across_horizon=float(self.points_across_horizon), levels=int(self.levels),
-                                   level_ratio=float(self.level_ratio),
+        return pb.RefinementPolicy(points_across_horizon=float(self.points_across_horizon),
+                                   nesting_depth=int(self.nesting_depth), level_ratio=float(self.level_ratio),
                                    finest_radius_factor=float(self.finest_radius_factor),
-                                   regrid_interval_m=float(self.regrid_interval), buffer_points=int(self.buffer_points))
+                                   steering_interval_m=float(self.steering_interval),
+                                   guard_points=int(self.guard_points))
 
     @classmethod
     def from_wire(cls, p: pb.RefinementPolicy) -> "RefinementOptions":
         d = cls()
         return cls(points_across_horizon=p.points_across_horizon or d.points_across_horizon,
-                   levels=p.levels or d.levels, level_ratio=p.level_ratio or d.level_ratio,
+                   nesting_depth=p.nesting_depth or d.nesting_depth, level_ratio=p.level_ratio or d.level_ratio,
                    finest_radius_factor=p.finest_radius_factor or d.finest_radius_factor,
-                   regrid_interval=p.regrid_interval_m or d.regrid_interval,
-                   buffer_points=p.buffer_points if p.HasField("buffer_points") else d.buffer_points)
+                   steering_interval=p.steering_interval_m or d.steering_interval,
+                   guard_points=p.guard_points if p.HasField("guard_points") else d.guard_points)
+
+
+_SYMMETRY_WIRE = {"none": pb.RunSpec.SYMMETRY_NONE, "bitant": pb.RunSpec.SYMMETRY_BITANT}
+_SYMMETRY_NAMES = {v: k for k, v in _SYMMETRY_WIRE.items()}
+_SHIFT_GAUGE_WIRE = {None: pb.RunSpec.SHIFT_GAUGE_UNSPECIFIED, "moving_puncture": pb.RunSpec.SHIFT_GAUGE_MOVING_PUNCTURE,
+                     "other": pb.RunSpec.SHIFT_GAUGE_OTHER}
+_SHIFT_GAUGE_NAMES = {v: k for k, v in _SHIFT_GAUGE_WIRE.items()}
 
 
 @dataclass(frozen=True)
@@ -171,10 +182,15 @@ class RunSpec:
         finder: :class:`FinderOptions`.
         backlog: :class:`BacklogOptions`.
         refinement: :class:`RefinementOptions` of the guidance.
-        reflection_z: the run has reflection symmetry through z = 0 and sends z >= 0 only (a
-            node layer on z = 0); the server fills z < 0 with the right parity per component.
         part_deadline_s: for slices sent in parts (one per MPI rank), seconds from the first
             part's arrival until the server processes what arrived (0: the server's default).
+        symmetry: "none" (the default), or "bitant": the run has mirror symmetry through z = 0
+            and sends z >= 0 only (a node layer on z = 0); the server fills z < 0 with the right
+            parity per component.
+        excised_spheres: :class:`ExcisedSphere` s the evolution cuts out (values there are not
+            data; pass the same to :func:`build_slice` so it accepts NaN there).
+        shift_gauge: "moving_puncture" (puncture tracks are integrated from the shift the slices
+            carry), "other", or None (not declared); only "moving_puncture" uses the shift.
     """
 
     variable_set: str
@@ -184,14 +200,24 @@ class RunSpec:
     finder: FinderOptions = field(default_factory=FinderOptions)
     backlog: BacklogOptions = field(default_factory=BacklogOptions)
     refinement: RefinementOptions = field(default_factory=RefinementOptions)
-    reflection_z: bool = False
     part_deadline_s: float = 0.0
+    symmetry: str = "none"
+    excised_spheres: Sequence[ExcisedSphere] = ()
+    shift_gauge: str | None = None
 
     def __post_init__(self) -> None:
         check_variable_set(self.variable_set)
         if not (math.isfinite(self.part_deadline_s) and self.part_deadline_s >= 0):
             raise ValueError(f"part_deadline_s: expected seconds > 0 (0 for the server's default), "
                              f"got {self.part_deadline_s!r}")
+        spheres = tuple(self.excised_spheres)
+        if not all(isinstance(sphere, ExcisedSphere) for sphere in spheres):
+            raise ValueError(f"excised_spheres: expected ExcisedSphere values, got {list(self.excised_spheres)!r}")
+        object.__setattr__(self, "excised_spheres", spheres)
+        if self.shift_gauge not in _SHIFT_GAUGE_WIRE:
+            raise ValueError(f"shift_gauge: expected 'moving_puncture', 'other' or None, got {self.shift_gauge!r}")
+        if self.symmetry not in _SYMMETRY_WIRE:
+            raise ValueError(f"symmetry: expected one of {sorted(_SYMMETRY_WIRE)}, got {self.symmetry!r}")
         bodies = tuple(self.bodies)
         if not bodies:
             raise ValueError("bodies: expected at least one Body")
@@ -214,8 +240,10 @@ class RunSpec:
                                      max_iterations=self.finder.max_iterations, lmax_common=self.finder.lmax_common),
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.backlog.queue_depth),
             refinement=self.refinement.to_wire(),
-            reflection_z=bool(self.reflection_z),
             part_deadline_s=float(self.part_deadline_s),
+            symmetry=_SYMMETRY_WIRE[self.symmetry],
+            excised_spheres=[sphere.to_wire() for sphere in self.excised_spheres],
+            shift_gauge=_SHIFT_GAUGE_WIRE[self.shift_gauge],
         )
 
     @classmethod
@@ -229,8 +257,10 @@ class RunSpec:
                                  max_iterations=spec.finder.max_iterations, lmax_common=spec.finder.lmax_common),
             backlog=BacklogOptions(queue_depth=spec.backlog.queue_depth or 4),
             refinement=RefinementOptions.from_wire(spec.refinement),
-            reflection_z=spec.reflection_z,
             part_deadline_s=spec.part_deadline_s,
+            symmetry=_SYMMETRY_NAMES.get(spec.symmetry, "none"),
+            excised_spheres=tuple(ExcisedSphere.from_wire(sphere) for sphere in spec.excised_spheres),
+            shift_gauge=_SHIFT_GAUGE_NAMES.get(spec.shift_gauge),
         )
 
 

@@ -76,7 +76,7 @@ def test_demo_measures_the_bytes_cropping_saves(demo_run):
     assert int(np.sum(archived["bytes"])) == s["bytes_sent"]
     assert int(np.sum(open_archive(control).slices()["bytes"])) == s["bytes_uncropped"]
     # The first slice goes whole (no windows yet); later ones go cropped while the server keeps up
-    # (windows are valid for one regrid interval, two slices here), each smaller than whole.
+    # (windows are valid for one steering interval, two slices here), each smaller than whole.
     assert not acks[0]["cropped"] and s["cropped"] >= 1 and s["cropped"] + s["sent_whole"] == len(acks)
     cropped = [a for a in acks if a["cropped"]]
     assert all(a["bytes_sent"] < a["bytes_whole"] for a in cropped)
@@ -140,7 +140,7 @@ def test_demo_states_the_latest_guidance_as_advisory(demo_run):
     rows = np.flatnonzero(bodies["event_seq"] == updates["event_seq"][last])
     assert [str(bodies["label"][r]) for r in rows] == ["common"]
     r = rows[0]
-    assert (f"  common: finest level {int(bodies['finest_level'][r])} of {int(updates['levels'][last])}, "
+    assert (f"  common: finest level {int(bodies['finest_level'][r])} of {int(updates['nesting_depth'][last])}, "
             f"centre ({bodies['centre'][r][0]:+.3f}") in out
     assert f"radius {bodies['finest_radius'][r]:.3f} M, spacing {bodies['finest_spacing'][r]:.4f} M" in out
 

@@ -156,7 +156,7 @@ def test_frame_shows_the_common_horizon_and_the_latest_guidance():
                       last_received_time=8.0)
     # Before merger: A's finest region is merged with B's on level 2.
     guidance = ps.Guidance(time=7.5, iteration=75, valid_from=7.5, valid_until=9.5, post_merger=False,
-                           policy=ps.RefinementOptions(levels=2), reasons={},
+                           policy=ps.RefinementOptions(nesting_depth=2), reasons={},
                            bodies=(_body("A", (0.5, 0, 0), 0.7), _body("B", (-0.5, 0, 0), 0.6)),
                            levels=((_region(1, ("A", "B"), (0, 0, 0), 2.0),),
                                    (_region(2, ("A", "B"), (0, 0, 0), 1.2),)))
@@ -167,7 +167,7 @@ def test_frame_shows_the_common_horizon_and_the_latest_guidance():
     assert "2 of 2" in row_a and "(+0.500, +0.000, +0.000)" in row_a and "0.7000" in row_a and "merged A+B" in row_a
     # After merger: one remnant region, and the formation event.
     remnant = ps.Guidance(time=8.0, iteration=80, valid_from=8.0, valid_until=10.0, post_merger=True,
-                          policy=ps.RefinementOptions(levels=2), reasons={},
+                          policy=ps.RefinementOptions(nesting_depth=2), reasons={},
                           bodies=(_body("common", (0.01, 0, 0), 1.1),),
                           levels=((_region(1, ("common",), (0.01, 0, 0), 2.2),), (_region(2, ("common",), (0.01, 0, 0), 1.1),)))
     progress.absorb(ps.Event(seq=91, run_id=info.run_id, kind="common_horizon_formed", time=7.75, iteration=77,

@@ -28,7 +28,7 @@ def test_tracking_groups_round_trip_and_open_in_xarray(tmp_path):
                          "lead_time": np.linspace(0, 4, 9), "position": np.ones((9, 3)),
                          "uncertainty": np.full(9, np.inf), "reason": "a single point", "event_seq": 5}],
         "guidance/updates": [{"iteration": 0, "time": 0.0, "valid_from": 0.0, "valid_until": 4.0, "post_merger": False,
-                              "levels": 6, "finest_spacing": 0.01, "reasons": '{"valid": "yes"}', "event_seq": 6}],
+                              "nesting_depth": 6, "finest_spacing": 0.01, "reasons": '{"valid": "yes"}', "event_seq": 6}],
         "guidance/regions": [{"iteration": 0, "time": 0.0, "level": 6, "spacing": 0.01, "bodies": "A",
                               "centre": (1, 2, 3), "radius": 0.9, "lower": (0, 1, 2), "upper": (2, 3, 4),
                               "reason": "body A's own level-6 region", "event_seq": 6}],

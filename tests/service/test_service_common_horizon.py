@@ -39,7 +39,7 @@ def test_common_horizon_forms_at_the_critical_separation_and_the_individual_ones
                       bodies=(ps.Body("A", (0.4, 0.0, 0.0), MASS), ps.Body("B", (-0.4, 0.0, 0.0), MASS)),
                       finder=ps.FinderOptions(lmax=LMAX, tolerance=1e-8),
                       backlog=ps.BacklogOptions(queue_depth=len(SEPARATIONS)),
-                      refinement=ps.RefinementOptions(regrid_interval=1.0))
+                      refinement=ps.RefinementOptions(steering_interval=1.0))
     run = client.open_run(spec, cache_results=False)
     box = cube((0.0, 0.0, 0.0), 1.3, SPACING)
     for index, d in enumerate(SEPARATIONS):

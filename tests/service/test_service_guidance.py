@@ -31,8 +31,8 @@ def _spec(name: str) -> ps.RunSpec:
     scenario = demo_like_scenario()
     return ps.RunSpec(variable_set="conformal_w", bodies=scenario_bodies(scenario), name=name,
                       finder=ps.FinderOptions(lmax=8, tolerance=1e-8), backlog=ps.BacklogOptions(queue_depth=SLICES),
-                      refinement=ps.RefinementOptions(points_across_horizon=POINTS_ACROSS, regrid_interval=0.5,
-                                                      levels=5))
+                      refinement=ps.RefinementOptions(points_across_horizon=POINTS_ACROSS, steering_interval=0.5,
+                                                      nesting_depth=5))
 
 
 def _send_in_step(run: ps.RunHandle, scenario, count: int) -> None:
@@ -133,7 +133,7 @@ def test_finest_spacing_follows_the_points_across_the_horizon(full_and_cropped_r
     found = _surfaces(events)
     for e in (e for e in events if e.kind == "refinement_guidance"):
         g = e.guidance
-        assert g.policy.points_across_horizon == POINTS_ACROSS and g.policy.levels == 5
+        assert g.policy.points_across_horizon == POINTS_ACROSS and g.policy.nesting_depth == 5
         spacings = {b.label: b.finest_spacing for b in g.bodies}
         for b in g.bodies:
             diameter = _smallest_diameter(found[(e.iteration, b.label)])
@@ -145,7 +145,7 @@ def test_finest_spacing_follows_the_points_across_the_horizon(full_and_cropped_r
             np.testing.assert_allclose(b.spacings[:-1] / b.spacings[1:], 2.0)
             np.testing.assert_allclose(b.radii[:-1] / b.radii[1:], 2.0)
             assert set(b.reasons) >= {"required_spacing", "finest_spacing", "horizon", "motion", "uncertainty",
-                                      "buffer", "finest_radius"}
+                                      "guard", "finest_radius"}
             assert b.finest_radius == pytest.approx(sum(b.margins.values()))
         # The run's finest spacing is set by the smaller horizon; levels are factor 2 apart.
         finest = min(spacings.values())
@@ -250,7 +250,7 @@ def test_pair_forecasts_seed_each_body_within_their_stated_uncertainty(full_and_
               f"{miss[orbit].mean():.2e} M")
         forecasts = view.forecasts(label)
         assert forecasts["position"].shape == (SLICES, 9, 3)
-        np.testing.assert_allclose(forecasts["lead_time"][:, -1] - forecasts["time"], 0.5)  # the regrid interval
+        np.testing.assert_allclose(forecasts["lead_time"][:, -1] - forecasts["time"], 0.5)  # the steering interval
     for label in models:
         # no seed in the first slice (scan), static from one point, then polynomial, then the orbit fit
         assert models[label][:2] == [0, 1] and models[label][-1] == 3

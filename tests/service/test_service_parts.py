@@ -338,7 +338,7 @@ def test_a_restarted_server_remembers_incomplete_and_given_up_slices(tmp_path):
 
 
 def test_parts_of_a_half_grid_are_mirrored_through_z0_each(client, stub):
-    """With reflection_z each part is mirrored on arrival: two slabs of the z >= 0 half of a lone
+    """With bitant symmetry each part is mirrored on arrival: two slabs of the z >= 0 half of a lone
     hole give its full horizon; a part reaching below z = 0 is refused naming the run's setting."""
     from penumbra_server.numerics.spacetimes import BrillLindquist
 
@@ -348,12 +348,12 @@ def test_parts_of_a_half_grid_are_mirrored_through_z0_each(client, stub):
     slabs = [{"origin": (centre[0] - 1.2 + first * h, centre[1] - 1.2, 0.0), "spacing": (h, h, h),
               "shape": (last - first + 1, 33, 17)} for first, last in ((0, 20), (12, 32))]
     run = client.open_run(ps.RunSpec(variable_set="conformal_chi", bodies=(ps.Body("A", centre, 1.0),),
-                                     name="half grid in parts", reflection_z=True), cache_results=False)
+                                     name="half grid in parts", symmetry="bitant"), cache_results=False)
     below = dict(slabs[1], origin=(slabs[1]["origin"][0], slabs[1]["origin"][1], -0.3))
     err = _refused(stub, list(ps.build_slice(time=0.0, iteration=0, variable_set="conformal_chi", part_index=1,
                                              part_count=2, patches=[patch_data(hole, below, variable_set="conformal_chi")])
                               .requests(run.run_id)))
-    assert err.code() == grpc.StatusCode.INVALID_ARGUMENT and "reflection_z" in err.details()
+    assert err.code() == grpc.StatusCode.INVALID_ARGUMENT and "SYMMETRY_BITANT" in err.details()
     for index, slab in enumerate(slabs):
         outgoing = ps.build_slice(time=0.0, iteration=0, variable_set="conformal_chi", part_index=index, part_count=2,
                                   patches=[patch_data(hole, slab, variable_set="conformal_chi")])

@@ -147,27 +147,27 @@ def test_shift_field_interpolates_the_finest_patch_and_reports_uncovered_points(
 
 def test_refinement_policy_is_validated_and_echoed(stub):
     spec = ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),),
-                      refinement=ps.RefinementOptions(points_across_horizon=20, levels=4, buffer_points=0),
-                      reflection_z=True).to_wire()
+                      refinement=ps.RefinementOptions(points_across_horizon=20, nesting_depth=4, guard_points=0),
+                      symmetry="bitant").to_wire()
     run = stub.OpenRun(pb.OpenRunRequest(spec=spec)).run
-    assert run.spec.refinement.points_across_horizon == 20 and run.spec.refinement.levels == 4
-    assert run.spec.refinement.HasField("buffer_points") and run.spec.refinement.buffer_points == 0
-    assert run.spec.refinement.level_ratio == 2.0 and run.spec.refinement.regrid_interval_m == 4.0  # defaults
-    assert run.spec.reflection_z
+    assert run.spec.refinement.points_across_horizon == 20 and run.spec.refinement.nesting_depth == 4
+    assert run.spec.refinement.HasField("guard_points") and run.spec.refinement.guard_points == 0
+    assert run.spec.refinement.level_ratio == 2.0 and run.spec.refinement.steering_interval_m == 4.0  # defaults
+    assert run.spec.symmetry == pb.RunSpec.SYMMETRY_BITANT
     bad = pb.RunSpec()
     bad.CopyFrom(spec)
-    bad.refinement.levels = 99
+    bad.refinement.nesting_depth = 99
     with pytest.raises(grpc.RpcError) as info:
         stub.OpenRun(pb.OpenRunRequest(spec=bad))
     assert info.value.code() == grpc.StatusCode.INVALID_ARGUMENT
-    assert "spec.refinement.levels" in info.value.details()
-    bad.refinement.levels = 0
+    assert "spec.refinement.nesting_depth" in info.value.details()
+    bad.refinement.nesting_depth = 0
     bad.refinement.level_ratio = 0.5
     with pytest.raises(grpc.RpcError) as info:
         stub.OpenRun(pb.OpenRunRequest(spec=bad))
     assert "spec.refinement.level_ratio" in info.value.details()
-    with pytest.raises(ValueError, match="refinement.levels"):
-        ps.RefinementOptions(levels=0)
+    with pytest.raises(ValueError, match="refinement.nesting_depth"):
+        ps.RefinementOptions(nesting_depth=0)
 
 
 def test_latest_guidance_before_any_slice_and_for_an_unknown_run(client):

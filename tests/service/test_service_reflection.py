@@ -1,4 +1,4 @@
-"""Reflection symmetry through z = 0 through the service: a run with ``reflection_z`` sends only
+"""Bitant symmetry (mirror symmetry through z = 0) through the service: a run with symmetry "bitant" sends only
 z >= 0 and the server mirrors each slice at ingest (odd parity for the xz and yz tensor
 components and shift_z). The surfaces and quantities equal those of a run sending the full grid
 on the same lattice.
@@ -75,7 +75,7 @@ def test_half_grid_with_reflection_gives_the_full_grid_surfaces(client, case):
         bodies, variable_set = (ps.Body("A", (0.5, 0.0, 0.0), 0.5), ps.Body("B", (-0.5, 0.0, 0.0), 0.5)), "conformal_w"
     finder = ps.FinderOptions(lmax=8)
     mirrored, half_ack = _found(client, ps.RunSpec(variable_set=variable_set, bodies=bodies, finder=finder,
-                                                    reflection_z=True, name=f"{case} half"), half)
+                                                    symmetry="bitant", name=f"{case} half"), half)
     direct, full_ack = _found(client, ps.RunSpec(variable_set=variable_set, bodies=bodies, finder=finder,
                                                   name=f"{case} full"), full)
     assert half_ack.bytes_sent < 0.52 * full_ack.bytes_sent
@@ -106,11 +106,11 @@ def test_half_grid_with_reflection_gives_the_full_grid_surfaces(client, case):
 def test_a_patch_below_the_plane_is_refused_in_a_reflection_run(client):
     spacetime = BrillLindquist(masses=np.array([0.5]), positions=np.array([[0.0, 0.0, 0.0]]))
     run = client.open_run(ps.RunSpec(variable_set="conformal_w", bodies=(ps.Body("A", (0, 0, 0), 0.5),),
-                                     reflection_z=True), cache_results=False)
+                                     symmetry="bitant"), cache_results=False)
     below = _patch(spacetime, origin=(-0.6, -0.6, -0.2), spacing=0.1, shape=(13, 13, 9), variable_set="conformal_w")
     ticket = run.submit(ps.build_slice(time=0.0, iteration=0, variable_set="conformal_w", patches=[below]))
     with pytest.raises(ps.PenumbraError) as info:
         ticket.result(30)
     assert info.value.code.name == "INVALID_ARGUMENT"
-    assert "reflection_z" in info.value.details and "< 0" in info.value.details
+    assert "SYMMETRY_BITANT" in info.value.details and "< 0" in info.value.details
     run.close()

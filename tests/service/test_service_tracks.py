@@ -47,10 +47,10 @@ def _slice(index: int) -> ps.OutgoingSlice:
 
 
 def _spec(name: str) -> ps.RunSpec:
-    # regrid interval = 8 cadences: the forecast's 9 lead times fall on the next slices' times.
+    # steering interval = 8 cadences: the forecast's 9 lead times fall on the next slices' times.
     return ps.RunSpec(variable_set="conformal_w", bodies=(ps.Body("A", tuple(_puncture(0.0)), MASS),), name=name,
                       finder=ps.FinderOptions(lmax=6), backlog=ps.BacklogOptions(queue_depth=SLICES),
-                      refinement=ps.RefinementOptions(regrid_interval=8 * DT))
+                      refinement=ps.RefinementOptions(steering_interval=8 * DT), shift_gauge="moving_puncture")
 
 
 def test_puncture_and_horizon_tracks_and_forecast_seeds(client, archive_root):
@@ -91,7 +91,7 @@ def test_puncture_and_horizon_tracks_and_forecast_seeds(client, archive_root):
     dataset = view.group_dataset("tracks/A")
     assert dataset["position"].dims == ("point", "xyz")
 
-    # Forecasts: one per slice over the regrid interval, with uncertainty; the next slice was
+    # Forecasts: one per slice over the steering interval, with uncertainty; the next slice was
     # seeded exactly at the forecast position for its time (lead 1), with that uncertainty.
     forecasts = view.forecasts("A")
     surfaces = view.surface("A")

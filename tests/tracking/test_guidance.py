@@ -34,14 +34,14 @@ def test_finest_spacing_puts_the_requested_points_across_the_horizon(points):
     size = HorizonSize(max_radius=0.5, min_diameter=0.9)
     g = refinement_guidance(static_forecast([[5, 0, 0], [-5, 0, 0]]), {"A": size, "B": size}, policy=policy)
     for body in g.bodies:
-        assert body.finest_level == policy.levels
+        assert body.finest_level == policy.nesting_depth
         assert body.finest_spacing == pytest.approx(0.9 / points)
         assert size.min_diameter / body.finest_spacing == pytest.approx(points)
         np.testing.assert_allclose(body.spacings[:-1] / body.spacings[1:], 2.0)
         np.testing.assert_allclose(body.radii[:-1] / body.radii[1:], 2.0)
-    for level in range(1, policy.levels + 1):
+    for level in range(1, policy.nesting_depth + 1):
         for region in g.regions_at(level):
-            assert region.spacing == pytest.approx(0.9 / points * 2.0 ** (policy.levels - level))
+            assert region.spacing == pytest.approx(0.9 / points * 2.0 ** (policy.nesting_depth - level))
 
 
 def test_larger_horizon_needs_fewer_levels_but_still_gets_the_requested_points():
@@ -51,7 +51,7 @@ def test_larger_horizon_needs_fewer_levels_but_still_gets_the_requested_points()
     policy = RefinementPolicy()
     g = refinement_guidance(static_forecast([[-6, 0, 0], [2, 0, 0]]), {"A": large, "B": small}, policy=policy)
     a, b = g.body("A"), g.body("B")
-    assert b.finest_level == policy.levels and a.finest_level == policy.levels - 1
+    assert b.finest_level == policy.nesting_depth and a.finest_level == policy.nesting_depth - 1
     assert large.min_diameter / a.finest_spacing >= policy.points_across_horizon
     assert large.min_diameter / a.finest_spacing < 2 * policy.points_across_horizon
     assert a.finest_spacing == pytest.approx(2 * b.finest_spacing)
@@ -62,17 +62,17 @@ def test_larger_horizon_needs_fewer_levels_but_still_gets_the_requested_points()
 def test_finest_radius_is_the_sum_of_its_stated_margins():
     size = HorizonSize(max_radius=0.5, min_diameter=0.9)
     fc = static_forecast([[3, 0, 0]], uncertainty=0.05, bodies=("A",))
-    policy = RefinementPolicy(buffer_points=6)
+    policy = RefinementPolicy(guard_points=6)
     g = refinement_guidance(fc, {"A": size}, policy=policy)
     body = g.body("A")
     h = 0.9 / 30
     assert body.margins["horizon"] == pytest.approx(1.5 * 0.5)
     assert body.margins["motion"] == pytest.approx(0.0)
     assert body.margins["uncertainty"] == pytest.approx(0.05)
-    assert body.margins["buffer"] == pytest.approx(6 * h)
+    assert body.margins["guard"] == pytest.approx(6 * h)
     assert body.finest_radius == pytest.approx(0.75 + 0.05 + 6 * h)
     for key in ("centre", "required_spacing", "finest_spacing", "horizon", "motion", "uncertainty",
-                "buffer", "finest_radius", "coarser_radii", "box", "finest_level"):
+                "guard", "finest_radius", "coarser_radii", "box", "finest_level"):
         assert body.reasons[key]
     assert "valid" in g.reasons and "valid_short" not in g.reasons
 
@@ -98,7 +98,7 @@ def test_finest_regions_merge_when_they_overlap_and_not_otherwise():
         # The merged sphere holds each body's own finest sphere; the box holds each body's box.
         assert np.linalg.norm(body.centre - merged.centre) + body.finest_radius <= merged.radius * (1 + 1e-12)
         assert np.all(body.lower[-1] >= merged.lower) and np.all(body.upper[-1] <= merged.upper)
-        assert close.region_of(name, close.policy.levels) is merged
+        assert close.region_of(name, close.policy.nesting_depth) is merged
     # Smallest enclosing sphere of two equal spheres: centred between them.
     np.testing.assert_allclose(merged.centre, [0.0, 0.05, 0.0], atol=1e-12)
     assert merged.radius == pytest.approx(0.5 * np.hypot(1.6, 0.1) + close.body("A").finest_radius)
@@ -107,7 +107,7 @@ def test_finest_regions_merge_when_they_overlap_and_not_otherwise():
 def test_levels_nest():
     size = HorizonSize(max_radius=0.5, min_diameter=0.9)
     g = refinement_guidance(static_forecast([[1.5, 0, 0], [-1.5, 0, 0]]), {"A": size, "B": size})
-    for level in range(2, g.policy.levels + 1):
+    for level in range(2, g.policy.nesting_depth + 1):
         for fine in g.regions_at(level):
             coarse = [r for r in g.regions_at(level - 1) if set(fine.bodies) <= set(r.bodies)]
             assert len(coarse) == 1
@@ -116,14 +116,14 @@ def test_levels_nest():
             assert np.all(fine.lower >= c.lower - 1e-12) and np.all(fine.upper <= c.upper + 1e-12)
 
 
-@pytest.mark.parametrize("q, regrid_interval", [(1.0, 4.0), (3.0, 4.0), (1.0, 16.0)])
-def test_finest_region_contains_the_moving_horizon_until_the_next_regrid(q, regrid_interval):
+@pytest.mark.parametrize("q, steering_interval", [(1.0, 4.0), (3.0, 4.0), (1.0, 16.0)])
+def test_finest_region_contains_the_moving_horizon_until_the_next_regrid(q, steering_interval):
     """Peters inspiral (Phys. Rev. 136, B1224 (1964); docs/references.md item 14) from a = 10 M to 4 M; horizons of
     coordinate radius about m_i / 2 (isotropic-Schwarzschild-like, an assumption of the test)."""
     m1, m2 = mass_ratio_pair(q)
     inspiral = PetersInspiral(m1, m2, a0=10.0)
-    policy = RefinementPolicy(regrid_interval=regrid_interval)
-    t_stop = inspiral.time_at_separation(4.0) - regrid_interval
+    policy = RefinementPolicy(steering_interval=steering_interval)
+    t_stop = inspiral.time_at_separation(4.0) - steering_interval
     t = np.arange(0.0, t_stop, 1.0)
     x1, x2 = inspiral.positions(t)
     sizes = {"A": HorizonSize(max_radius=0.55 * m1, min_diameter=0.95 * m1),
@@ -135,7 +135,7 @@ def test_finest_region_contains_the_moving_horizon_until_the_next_regrid(q, regr
         times = guidance_times(t[i], policy=policy)
         fc = forecast_pair(a, b, masses=(m1, m2), times=times)
         g = refinement_guidance(fc, sizes, policy=policy)
-        assert g.valid_from == t[i] and g.valid_until == pytest.approx(t[i] + regrid_interval)
+        assert g.valid_from == t[i] and g.valid_until == pytest.approx(t[i] + steering_interval)
         dense = np.linspace(times[0], times[-1], 33)
         y = dict(zip(("A", "B"), inspiral.positions(dense)))
         for name in ("A", "B"):
@@ -186,8 +186,8 @@ def test_short_forecast_is_flagged():
 def test_bad_policy_and_input_name_the_field():
     with pytest.raises(GuidanceError, match="points_across_horizon"):
         RefinementPolicy(points_across_horizon=0)
-    with pytest.raises(GuidanceError, match="levels"):
-        RefinementPolicy(levels=0)
+    with pytest.raises(GuidanceError, match="nesting_depth"):
+        RefinementPolicy(nesting_depth=0)
     with pytest.raises(GuidanceError, match="level_ratio"):
         RefinementPolicy(level_ratio=1.0)
     with pytest.raises(GuidanceError, match="finest_radius_factor"):

@@ -158,8 +158,9 @@ int pnl_disconnect(pnl_connection *connection);
  *   variable_set=adm | conformal_chi | conformal_w | conformal_phi   (required)
  *   body=LABEL,x,y,z,mass        one per expected body (at least one), M
  *   name=free text               lmax=8  lmax_common=0  tolerance=1e-8  max_iterations=40
- *   queue_depth=4                points_across_horizon=30  levels=6  regrid_interval=4
- *   reflection_z=0|1             mass_scale_solar_masses=0  crop_to_windows=0|1
+ *   queue_depth=4                points_across_horizon=30  nesting_depth=6  steering_interval=4
+ *   symmetry=none|bitant         shift_gauge=moving_puncture|other (unset: shift not used)
+ *   part_deadline_s=0 (server default)  mass_scale_solar_masses=0  crop_to_windows=0|1
  * Unknown keys and bad values give PNL_INVALID_ARGUMENT naming the key. */
 int pnl_open_run(pnl_connection *connection, const char *spec, pnl_run **out);
 

@@ -68,7 +68,23 @@ class BacklogPolicy(_message.Message):
     def __init__(self, policy: _Optional[_Union[BacklogPolicy.Policy, str]] = ..., queue_depth: _Optional[int] = ...) -> None: ...
 
 class RunSpec(_message.Message):
-    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "reflection_z", "part_deadline_s")
+    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "part_deadline_s", "symmetry", "excised_spheres", "shift_gauge")
+    class Symmetry(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+        __slots__ = ()
+        SYMMETRY_UNSPECIFIED: _ClassVar[RunSpec.Symmetry]
+        SYMMETRY_NONE: _ClassVar[RunSpec.Symmetry]
+        SYMMETRY_BITANT: _ClassVar[RunSpec.Symmetry]
+    SYMMETRY_UNSPECIFIED: RunSpec.Symmetry
+    SYMMETRY_NONE: RunSpec.Symmetry
+    SYMMETRY_BITANT: RunSpec.Symmetry
+    class ShiftGauge(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+        __slots__ = ()
+        SHIFT_GAUGE_UNSPECIFIED: _ClassVar[RunSpec.ShiftGauge]
+        SHIFT_GAUGE_MOVING_PUNCTURE: _ClassVar[RunSpec.ShiftGauge]
+        SHIFT_GAUGE_OTHER: _ClassVar[RunSpec.ShiftGauge]
+    SHIFT_GAUGE_UNSPECIFIED: RunSpec.ShiftGauge
+    SHIFT_GAUGE_MOVING_PUNCTURE: RunSpec.ShiftGauge
+    SHIFT_GAUGE_OTHER: RunSpec.ShiftGauge
     DISPLAY_NAME_FIELD_NUMBER: _ClassVar[int]
     VARIABLE_SET_FIELD_NUMBER: _ClassVar[int]
     MASS_SCALE_SOLAR_MASSES_FIELD_NUMBER: _ClassVar[int]
@@ -76,8 +92,10 @@ class RunSpec(_message.Message):
     FINDER_FIELD_NUMBER: _ClassVar[int]
     BACKLOG_FIELD_NUMBER: _ClassVar[int]
     REFINEMENT_FIELD_NUMBER: _ClassVar[int]
-    REFLECTION_Z_FIELD_NUMBER: _ClassVar[int]
     PART_DEADLINE_S_FIELD_NUMBER: _ClassVar[int]
+    SYMMETRY_FIELD_NUMBER: _ClassVar[int]
+    EXCISED_SPHERES_FIELD_NUMBER: _ClassVar[int]
+    SHIFT_GAUGE_FIELD_NUMBER: _ClassVar[int]
     display_name: str
     variable_set: VariableSet
     mass_scale_solar_masses: float
@@ -85,25 +103,37 @@ class RunSpec(_message.Message):
     finder: FinderSettings
     backlog: BacklogPolicy
     refinement: RefinementPolicy
-    reflection_z: bool
     part_deadline_s: float
-    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., reflection_z: _Optional[bool] = ..., part_deadline_s: _Optional[float] = ...) -> None: ...
+    symmetry: RunSpec.Symmetry
+    excised_spheres: _containers.RepeatedCompositeFieldContainer[ExcisedSphere]
+    shift_gauge: RunSpec.ShiftGauge
+    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., part_deadline_s: _Optional[float] = ..., symmetry: _Optional[_Union[RunSpec.Symmetry, str]] = ..., excised_spheres: _Optional[_Iterable[_Union[ExcisedSphere, _Mapping]]] = ..., shift_gauge: _Optional[_Union[RunSpec.ShiftGauge, str]] = ...) -> None: ...
+
+class ExcisedSphere(_message.Message):
+    __slots__ = ("centre_m", "radius_m", "body")
+    CENTRE_M_FIELD_NUMBER: _ClassVar[int]
+    RADIUS_M_FIELD_NUMBER: _ClassVar[int]
+    BODY_FIELD_NUMBER: _ClassVar[int]
+    centre_m: Vector3
+    radius_m: float
+    body: str
+    def __init__(self, centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_m: _Optional[float] = ..., body: _Optional[str] = ...) -> None: ...
 
 class RefinementPolicy(_message.Message):
-    __slots__ = ("points_across_horizon", "levels", "level_ratio", "finest_radius_factor", "regrid_interval_m", "buffer_points")
+    __slots__ = ("points_across_horizon", "nesting_depth", "level_ratio", "finest_radius_factor", "steering_interval_m", "guard_points")
     POINTS_ACROSS_HORIZON_FIELD_NUMBER: _ClassVar[int]
-    LEVELS_FIELD_NUMBER: _ClassVar[int]
+    NESTING_DEPTH_FIELD_NUMBER: _ClassVar[int]
     LEVEL_RATIO_FIELD_NUMBER: _ClassVar[int]
     FINEST_RADIUS_FACTOR_FIELD_NUMBER: _ClassVar[int]
-    REGRID_INTERVAL_M_FIELD_NUMBER: _ClassVar[int]
-    BUFFER_POINTS_FIELD_NUMBER: _ClassVar[int]
+    STEERING_INTERVAL_M_FIELD_NUMBER: _ClassVar[int]
+    GUARD_POINTS_FIELD_NUMBER: _ClassVar[int]
     points_across_horizon: float
-    levels: int
+    nesting_depth: int
     level_ratio: float
     finest_radius_factor: float
-    regrid_interval_m: float
-    buffer_points: int
-    def __init__(self, points_across_horizon: _Optional[float] = ..., levels: _Optional[int] = ..., level_ratio: _Optional[float] = ..., finest_radius_factor: _Optional[float] = ..., regrid_interval_m: _Optional[float] = ..., buffer_points: _Optional[int] = ...) -> None: ...
+    steering_interval_m: float
+    guard_points: int
+    def __init__(self, points_across_horizon: _Optional[float] = ..., nesting_depth: _Optional[int] = ..., level_ratio: _Optional[float] = ..., finest_radius_factor: _Optional[float] = ..., steering_interval_m: _Optional[float] = ..., guard_points: _Optional[int] = ...) -> None: ...
 
 class Run(_message.Message):
     __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m", "slices_incomplete")
@@ -393,12 +423,14 @@ class SurfaceNotFound(_message.Message):
         REASON_OUTSIDE_DATA: _ClassVar[SurfaceNotFound.Reason]
         REASON_WORKER_FAILED: _ClassVar[SurfaceNotFound.Reason]
         REASON_NOT_SEARCHED: _ClassVar[SurfaceNotFound.Reason]
+        REASON_NEEDS_EXCISED_DATA: _ClassVar[SurfaceNotFound.Reason]
     REASON_UNSPECIFIED: SurfaceNotFound.Reason
     REASON_NOT_CONVERGED: SurfaceNotFound.Reason
     REASON_NO_CANDIDATE: SurfaceNotFound.Reason
     REASON_OUTSIDE_DATA: SurfaceNotFound.Reason
     REASON_WORKER_FAILED: SurfaceNotFound.Reason
     REASON_NOT_SEARCHED: SurfaceNotFound.Reason
+    REASON_NEEDS_EXCISED_DATA: SurfaceNotFound.Reason
     LABEL_FIELD_NUMBER: _ClassVar[int]
     REASON_FIELD_NUMBER: _ClassVar[int]
     MESSAGE_FIELD_NUMBER: _ClassVar[int]

@@ -132,7 +132,8 @@ class HorizonServiceServicer:
         shape/spacing/dtype/order, total_bytes not matching the patches,
         part_count < 0, part_index outside 0 .. part_count - 1), a chunk
         that does not fit the patch and field the header declared, chunks
-        of a field out of order, or a non-finite value in a field.
+        of a field out of order, or a non-finite value in a field outside the
+        excised regions (RunSpec.excised_spheres, excision_mask).
         ALREADY_EXISTS       a part carries a patch (same level, origin, spacing and shape)
         that another part of the iteration carried with different data.
         RESOURCE_EXHAUSTED   a chunk larger than the server's chunk limit, or a slice (or the

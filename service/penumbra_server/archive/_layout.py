@@ -242,7 +242,7 @@ GUIDANCE_UPDATE_COLUMNS: tuple[Column, ...] = (
     Column("valid_from", "float64", unit="M"),
     Column("valid_until", "float64", unit="M"),
     Column("post_merger", "bool", description="a single region around the remnant"),
-    Column("levels", "int32", description="refinement levels of the policy"),
+    Column("nesting_depth", "int32", description="nesting depth of the policy (its finest level)"),
     Column("finest_spacing", "float64", unit="M", description="spacing of the finest level"),
     Column("reasons", "str", description="JSON object: notes on the whole guidance"),
     Column("event_seq", "int64", description="seq of the refinement_guidance event"),
@@ -264,7 +264,7 @@ GUIDANCE_BODY_COLUMNS: tuple[Column, ...] = (
     Column("margin_horizon", "float64", unit="M"),
     Column("margin_motion", "float64", unit="M"),
     Column("margin_uncertainty", "float64", unit="M"),
-    Column("margin_buffer", "float64", unit="M"),
+    Column("margin_guard", "float64", unit="M"),
     Column("reasons", "str", description="JSON object: why each number has its value"),
     Column("event_seq", "int64", description="seq of the refinement_guidance event"),
 )
@@ -272,7 +272,7 @@ GUIDANCE_BODY_COLUMNS: tuple[Column, ...] = (
 GUIDANCE_REGION_COLUMNS: tuple[Column, ...] = (
     Column("iteration", "int64"),
     Column("time", "float64", unit="M"),
-    Column("level", "int32", description="1 coarsest .. levels finest"),
+    Column("level", "int32", description="1 coarsest .. nesting_depth finest"),
     Column("spacing", "float64", unit="M"),
     Column("bodies", "str", description="labels covered, joined by '+'"),
     Column("centre", "float64", _XYZ, unit="M", description="sphere form"),

@@ -176,7 +176,7 @@ def guidance_lines(summary) -> list[str]:
              + (", after merger: one region around the remnant" if f.post_merger else "") + ":"]
     for b in f.bodies:
         c = b.centre
-        lines.append(f"  {b.label}: finest level {b.finest_level} of {f.levels}, centre ({c[0]:+.3f}, {c[1]:+.3f}, "
+        lines.append(f"  {b.label}: finest level {b.finest_level} of {f.nesting_depth}, centre ({c[0]:+.3f}, {c[1]:+.3f}, "
                      f"{c[2]:+.3f}) M, radius {b.radius:.3f} M, spacing {b.spacing:.4f} M"
                      + (f" (merged region {'+'.join(b.region_bodies)})" if b.merged and not f.post_merger else ""))
     return lines
@@ -184,7 +184,7 @@ def guidance_lines(summary) -> list[str]:
 
 def run_demo(*, workdir: Path, workers: int = 2, seconds_per_slice: float | None = None,
              max_slices: int | None = None, lmax: int | None = None, crop: bool = True, control: bool = True,
-             regrid_interval: float | None = None, out=sys.stdout) -> int:
+             steering_interval: float | None = None, out=sys.stdout) -> int:
     """Run the whole demo; return the exit status (0 when a common horizon was found and reported)."""
     import json
 
@@ -229,8 +229,8 @@ def run_demo(*, workdir: Path, workers: int = 2, seconds_per_slice: float | None
             command.append("--no-crop")
         if control:
             command.append("--control")
-        if regrid_interval is not None:
-            command += ["--regrid-interval", str(regrid_interval)]
+        if steering_interval is not None:
+            command += ["--steering-interval", str(steering_interval)]
         with open(workdir / "evolution.log", "w") as evolution_log:
             evolution = subprocess.Popen(command, stdout=evolution_log, stderr=subprocess.STDOUT, env=_child_env())
         run_id = _wait_for_file(run_id_file, evolution, 60.0, "the evolution")

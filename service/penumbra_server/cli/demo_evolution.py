@@ -42,7 +42,7 @@ from penumbra_server.numerics.slices import required_fields
 from penumbra_server.numerics.spacetimes import BrillLindquist, sample_patch
 
 __all__ = ["run_spec_for", "slice_arrays", "guidance_line", "evolve", "main", "DEFAULT_LMAX",
-           "DEFAULT_SECONDS_PER_SLICE", "DEFAULT_SECONDS_PER_SLICE_WITH_CONTROL", "DEFAULT_REGRID_SLICES"]
+           "DEFAULT_SECONDS_PER_SLICE", "DEFAULT_SECONDS_PER_SLICE_WITH_CONTROL", "DEFAULT_STEERING_SLICES"]
 
 VARIABLE_SET = "conformal_w"
 #: Wall-clock seconds between slices: a pace two workers keep up with on two cores for one run
@@ -50,26 +50,27 @@ VARIABLE_SET = "conformal_w"
 DEFAULT_SECONDS_PER_SLICE = 2.5
 DEFAULT_SECONDS_PER_SLICE_WITH_CONTROL = 3.5
 DEFAULT_LMAX = 10
-#: The pretend evolution moves its fine boxes every slice; it tells the server it regrids every
-#: this many slices (RefinementOptions.regrid_interval = this x the slice interval).
-DEFAULT_REGRID_SLICES = 2
+#: The pretend evolution moves its fine boxes every slice; it tells the server it steers them every
+#: this many slices (RefinementOptions.steering_interval = this x the slice interval).
+DEFAULT_STEERING_SLICES = 2
 
 
 def run_spec_for(scenario: DemoScenario, *, lmax: int = DEFAULT_LMAX, name: str = "invented-bl-inspiral",
-                 regrid_interval: float | None = None) -> "ps.RunSpec":
+                 steering_interval: float | None = None) -> "ps.RunSpec":
     """The run spec the evolution opens: variable set, the two bodies (units of M), finder
-    settings, and the refinement policy (regrid interval in M; default
-    ``DEFAULT_REGRID_SLICES`` slice intervals, the rest the shim's defaults)."""
+    settings, and the refinement policy (steering interval in M; default
+    ``DEFAULT_STEERING_SLICES`` slice intervals, the rest the shim's defaults)."""
     bodies = tuple(ps.Body(label=b["label"], position=b["position"], mass=b["mass"]) for b in scenario.bodies())
-    if regrid_interval is None:
-        regrid_interval = DEFAULT_REGRID_SLICES * scenario.slice_interval
+    if steering_interval is None:
+        steering_interval = DEFAULT_STEERING_SLICES * scenario.slice_interval
     return ps.RunSpec(
         variable_set=VARIABLE_SET,
         bodies=bodies,
         name=name,
         finder=ps.FinderOptions(lmax=lmax, tolerance=1e-8, max_iterations=40),
         backlog=ps.BacklogOptions(queue_depth=4, policy="keep_newest"),
-        refinement=ps.RefinementOptions(regrid_interval=float(regrid_interval)),
+        refinement=ps.RefinementOptions(steering_interval=float(steering_interval)),
+        shift_gauge="moving_puncture",  # the invented shift carries the punctures (puncture tracks)
     )
 
 
@@ -163,17 +164,17 @@ def _stats(run) -> dict:
 
 
 def evolve(*, server: str, run_id_file: Path | None, seconds_per_slice: float, max_slices: int | None,
-           lmax: int, crop: bool = True, control: bool = False, regrid_interval: float | None = None,
+           lmax: int, crop: bool = True, control: bool = False, steering_interval: float | None = None,
            stats_file: Path | None = None, scenario: DemoScenario | None = None, drain_timeout_s: float = 120.0,
            out=sys.stdout) -> int:
     """Send the scenario's slices; see the module docstring. Returns 0 when the runs were closed."""
     scenario = scenario or DemoScenario()
     client = ps.connect(server)
-    spec = run_spec_for(scenario, lmax=lmax, regrid_interval=regrid_interval)
+    spec = run_spec_for(scenario, lmax=lmax, steering_interval=steering_interval)
     run = client.open_run(spec, crop_to_windows=crop)
     twin = None
     if control:
-        twin = client.open_run(run_spec_for(scenario, lmax=lmax, regrid_interval=regrid_interval,
+        twin = client.open_run(run_spec_for(scenario, lmax=lmax, steering_interval=steering_interval,
                                             name=spec.name + "-control-whole"), crop_to_windows=False)
     body_labels = {b["label"] for b in scenario.bodies()}
     if run_id_file is not None:
@@ -224,7 +225,7 @@ def evolve(*, server: str, run_id_file: Path | None, seconds_per_slice: float, m
     final_guidance = run.latest_guidance(refresh=True)
     record = {
         "run_id": run.run_id, "control_run_id": twin.run_id if twin else None, "crop": crop,
-        "regrid_interval": spec.refinement.regrid_interval, "slices_sent": sent,
+        "steering_interval": spec.refinement.steering_interval, "slices_sent": sent,
         "stats": _stats(run), "acks": _acks(tickets),
         "control_stats": _stats(twin) if twin else None, "control_acks": _acks(twin_tickets) if twin else None,
         "final_guidance": guidance_line(final_guidance),
@@ -257,8 +258,8 @@ def main(argv: list[str] | None = None) -> int:
                              f"{DEFAULT_SECONDS_PER_SLICE_WITH_CONTROL} with --control)")
     parser.add_argument("--max-slices", type=int, default=None, help="stop after this many slices")
     parser.add_argument("--lmax", type=int, default=DEFAULT_LMAX, help=f"finder l_max (default {DEFAULT_LMAX})")
-    parser.add_argument("--regrid-interval", type=float, default=None,
-                        help=f"regrid interval told to the server, M (default {DEFAULT_REGRID_SLICES} slice intervals)")
+    parser.add_argument("--steering-interval", type=float, default=None,
+                        help=f"steering interval told to the server, M (default {DEFAULT_STEERING_SLICES} slice intervals)")
     parser.add_argument("--no-crop", dest="crop", action="store_false",
                         help="send slices whole instead of cropped to the server's data windows")
     parser.add_argument("--control", action="store_true",
@@ -269,7 +270,7 @@ def main(argv: list[str] | None = None) -> int:
         pace = DEFAULT_SECONDS_PER_SLICE_WITH_CONTROL if args.control else DEFAULT_SECONDS_PER_SLICE
     return evolve(server=args.server, run_id_file=args.run_id_file, seconds_per_slice=pace,
                   max_slices=args.max_slices, lmax=args.lmax, crop=args.crop, control=args.control,
-                  regrid_interval=args.regrid_interval, stats_file=args.stats_file)
+                  steering_interval=args.steering_interval, stats_file=args.stats_file)
 
 
 if __name__ == "__main__":

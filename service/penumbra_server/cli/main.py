@@ -103,8 +103,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-slices", type=_positive_int, default=None,
                    help="stop the evolution after this many slices (default: the whole track)")
     p.add_argument("--lmax", type=_positive_int, default=None, help="finder l_max (default: the demo's)")
-    p.add_argument("--regrid-interval", type=_positive_float, default=None,
-                   help="regrid interval the evolution states in its run spec, M (default: two slice intervals)")
+    p.add_argument("--steering-interval", type=_positive_float, default=None,
+                   help="steering interval the evolution states in its run spec, M (default: two slice intervals)")
     p.add_argument("--no-crop", dest="crop", action="store_false",
                    help="send slices whole instead of cropped to the server's data windows")
     p.add_argument("--no-control", dest="control", action="store_false",
@@ -231,7 +231,7 @@ def _cmd_demo(args) -> int:
 
     return run_demo(workdir=args.workdir, workers=args.workers, seconds_per_slice=args.seconds_per_slice,
                     max_slices=args.max_slices, lmax=args.lmax, crop=args.crop, control=args.control,
-                    regrid_interval=args.regrid_interval)
+                    steering_interval=args.steering_interval)
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -1,6 +1,7 @@
 """Penumbra's numerics core: slices, geometry at points, surfaces, the expansion, the finder,
 measurements and reference spacetimes. Pure functions on numpy arrays; no grpc, no zarr."""
 
+from .excision import EXCISION_MASK_FIELD, ExcisedDataError, ExcisedSphere
 from .finder import STATUS_MESSAGES, FinderSettings, FindResult, expansion_of, find_surface
 from .geometry import PointGeometry
 from .guesses import SphereScan, guess_from_previous, scan_spheres, sphere_scan_profile
@@ -10,6 +11,9 @@ from .slices import Patch, Slice, SliceError, VariableSet, optional_fields, requ
 from .surfaces import Surface, angular_grid
 
 __all__ = [
+    "EXCISION_MASK_FIELD",
+    "ExcisedDataError",
+    "ExcisedSphere",
     "STATUS_MESSAGES",
     "FinderSettings",
     "FindResult",

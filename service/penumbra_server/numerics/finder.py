@@ -16,6 +16,11 @@ Two methods behind one function, :func:`find_surface`:
   Slow but robust; the fallback when Newton fails, and the benchmark baseline.
 
 Not converging is a result: ``FindResult.status`` from :data:`STATUS_MESSAGES`.
+
+Excised regions (:mod:`.excision`): a surface whose stencils would read excised data cannot be
+evaluated. A Newton or flow step landing there is shortened (halved, up to
+``_MAX_SHORTENINGS`` times); only when no shortened step is usable, or the guess itself needs
+excised data, does the solve end with status ``NEEDS_EXCISED_DATA``.
 """
 
 from __future__ import annotations
@@ -25,6 +30,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .excision import ExcisedDataError
 from .expansion import expansion_at
 from .geometry import PointGeometry
 from .slices import Slice
@@ -52,6 +58,7 @@ __all__ = [
     "UNRESOLVED",
     "TOO_FEW_POINTS",
     "INVALID_GEOMETRY",
+    "NEEDS_EXCISED_DATA",
     "find_surface",
     "expansion_of",
 ]
@@ -65,6 +72,10 @@ LINE_SEARCH_FAILED = 5
 UNRESOLVED = 6
 TOO_FEW_POINTS = 7
 INVALID_GEOMETRY = 8
+NEEDS_EXCISED_DATA = 9
+
+#: Halvings of a step that lands where the data are excised, before the solve gives up.
+_MAX_SHORTENINGS = 10
 
 #: Status code -> meaning. ``success`` is True exactly for codes 0 and 1.
 STATUS_MESSAGES: dict[int, str] = {
@@ -83,6 +94,7 @@ STATUS_MESSAGES: dict[int, str] = {
     ),
     TOO_FEW_POINTS: "not accepted: the surface spans too few grid points across to be resolved by the data",
     INVALID_GEOMETRY: "not converged: the metric is not positive definite (or Theta not finite) on the surface",
+    NEEDS_EXCISED_DATA: "not converged: the surface needs data inside an excised region",
 }
 _SUCCESS = (CONVERGED, CONVERGED_AT_TRUNCATION)
 _METHODS = ("newton", "flow")
@@ -188,6 +200,7 @@ class _Run:
     rms_hist: list[float] = field(default_factory=list)
     uncovered_note: str = ""
     invalid_note: str = ""
+    excised_note: str = ""
     last_failure: int = OUTSIDE_DATA  # why the latest _evaluate returned None
 
 
@@ -205,7 +218,12 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
     """Theta at the nodes of ``surface``; None (with a note) when data is missing there."""
     rd = surface.on_grid(run.grid)
     pts = surface.points(rd)
-    geo = run.source(pts)
+    try:
+        geo = run.source(pts)
+    except ExcisedDataError as exc:
+        run.last_failure = NEEDS_EXCISED_DATA
+        run.excised_note = str(exc)
+        return None
     if not geo.covered.all():
         bad = ~geo.covered
         t, p = run.grid.theta[bad], run.grid.phi[bad]
@@ -238,7 +256,10 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     # h: moves the point too, so the fields are re-interpolated (the one extra evaluation).
     eps_h = 1e-7 * scale
     n, _, _ = unit_vectors(rd.theta, rd.phi)
-    geo_h = run.source(ev.points + eps_h * n)
+    try:
+        geo_h = run.source(ev.points + eps_h * n)
+    except ExcisedDataError:
+        geo_h = geo  # at an excision boundary: as at the data edge
     if not geo_h.covered.all():
         geo_h = geo  # at the data edge: drop the field variation rather than fail
     d_h = (expansion_at(rd.replace(h=rd.h + eps_h), geo_h).theta - ev.theta) / eps_h
@@ -292,14 +313,21 @@ def _newton(run: _Run, guess: Surface, settings: FinderSettings) -> tuple[int, _
         # node residual also holds the part beyond l_max, which no step can remove.
         lam = 1.0
         accepted = None
-        for _ in range(10):
+        rejected_as_excised = False
+        for _ in range(_MAX_SHORTENINGS):
             trial = Surface(ev.surface.centre, ev.surface.lmax, ev.surface.coefficients + lam * step)
             if _diverged(trial, run, limit):
+                rejected_as_excised = False
                 lam *= 0.5
                 continue
             cand = _evaluate(run, trial)
+            if cand is None and run.last_failure == NEEDS_EXCISED_DATA:
+                rejected_as_excised = True  # the step reached into an excised region: shorten it
+                lam *= 0.5
+                continue
             if cand is None:
                 return run.last_failure, ev, it, proj
+            rejected_as_excised = False
             cand_proj = _projected_rms(run, cand.theta)
             if cand_proj < (1.0 - 1e-4 * lam) * proj or cand_proj <= settings.tolerance:
                 accepted = cand
@@ -309,7 +337,7 @@ def _newton(run: _Run, guess: Surface, settings: FinderSettings) -> tuple[int, _
             run.rms_hist.pop()
             lam *= 0.5
         if accepted is None:
-            return LINE_SEARCH_FAILED, ev, it, proj
+            return (NEEDS_EXCISED_DATA if rejected_as_excised else LINE_SEARCH_FAILED), ev, it, proj
         ev = accepted
         proj = cand_proj
     if run.max_hist[-1] <= settings.tolerance:
@@ -328,13 +356,11 @@ def _flow(run: _Run, guess: Surface, settings: FinderSettings, tolerance: float)
     B = beta / alpha
     gain = A / (1.0 + B * ell * (ell + 1))
     limit = settings.max_radius_factor * guess.mean_radius
-    surface = guess
-    ev = None
     proj = float("nan")
+    ev = _evaluate(run, guess)
+    if ev is None:
+        return run.last_failure, None, 0, proj
     for it in range(settings.flow_iterations + 1):
-        ev = _evaluate(run, surface)
-        if ev is None:
-            return run.last_failure, None, it, proj
         rho = ev.rd.h**2 / ev.u
         weighted = rho * ev.theta
         proj = _projected_rms(run, weighted) / float(np.mean(rho))
@@ -344,9 +370,21 @@ def _flow(run: _Run, guess: Surface, settings: FinderSettings, tolerance: float)
             return CONVERGED_AT_TRUNCATION, ev, it, proj
         if it == settings.flow_iterations:
             break
-        surface = Surface(surface.centre, lmax, surface.coefficients - gain * run.grid.project(weighted))
-        if _diverged(surface, run, limit):
-            return DIVERGED, ev, it, proj
+        step = -gain * run.grid.project(weighted)
+        factor = 1.0
+        for _ in range(_MAX_SHORTENINGS):
+            surface = Surface(ev.surface.centre, lmax, ev.surface.coefficients + factor * step)
+            if _diverged(surface, run, limit):
+                return DIVERGED, ev, it, proj
+            following = _evaluate(run, surface)
+            if following is not None or run.last_failure != NEEDS_EXCISED_DATA:
+                break
+            factor *= 0.5  # the step reached into an excised region: shorten it
+        if following is None:
+            if run.last_failure == NEEDS_EXCISED_DATA:
+                return NEEDS_EXCISED_DATA, ev, it + 1, proj
+            return run.last_failure, None, it + 1, proj
+        ev = following
     return MAX_ITERATIONS, ev, settings.flow_iterations, proj
 
 
@@ -364,7 +402,8 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
         :class:`FindResult`; failure to converge is reported there, not raised.
 
     Raises:
-        SliceError: the data a surface needs holds NaN or infinity.
+        SliceError: the data a surface needs holds NaN or infinity outside the declared excised
+            regions (inside them: status ``NEEDS_EXCISED_DATA``, never an exception).
     """
     start = time.perf_counter()
     source = as_tracked_source(data, order=settings.interpolation_order)
@@ -404,6 +443,8 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
         message = f"{message}: {run.uncovered_note}"
     if status == INVALID_GEOMETRY:
         message = f"{message}: {run.invalid_note}"
+    if status == NEEDS_EXCISED_DATA and run.excised_note:
+        message = f"{message}: {run.excised_note}"
     if run.max_hist:
         message = (
             f"{message} (max |Theta| = {run.max_hist[-1]:.3e} / M at the nodes, {between:.3e} / M between "
@@ -436,10 +477,13 @@ def _points_across(slice_: Slice, ev: _Evaluated) -> float:
 
 def _residual_between_nodes(source: TrackedSource, surface: Surface) -> float:
     """max |Theta| on the nodes of a grid for l_max + 5 (shared with the collocation nodes only
-    by accident); NaN where the data does not cover them."""
+    by accident); NaN where the data does not cover them or they need excised data."""
     check = angular_grid(surface.lmax + 5)
     rd = surface.derivatives(harmonic_basis(surface.lmax, check.theta, check.phi), check.theta, check.phi)
-    geo = source(surface.points(rd))
+    try:
+        geo = source(surface.points(rd))
+    except ExcisedDataError:
+        return float("nan")
     if not geo.covered.all():
         return float("nan")
     return float(np.max(np.abs(expansion_at(rd, geo).theta)))
@@ -454,5 +498,6 @@ def expansion_of(data, surface: Surface, *, order: int = 4) -> np.ndarray:
     run = _Run(source, angular_grid(surface.lmax))
     ev = _evaluate(run, surface)
     if ev is None:
-        raise ValueError(f"surface: {run.uncovered_note}")
+        note = run.excised_note if run.last_failure == NEEDS_EXCISED_DATA else run.uncovered_note
+        raise ValueError(f"surface: {note}")
     return ev.theta

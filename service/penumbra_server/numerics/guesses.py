@@ -7,6 +7,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .excision import ExcisedDataError
 from .expansion import expansion_at
 from .sources import as_tracked_source
 from .surfaces import Surface, angular_grid
@@ -21,7 +22,7 @@ class SphereScan:
     Attributes:
         radii: (n,) sphere radii sampled, units of M.
         mean_expansion: (n,) solid-angle mean of Theta on each sphere, 1/M (NaN where the
-            sphere left the data).
+            sphere left the data or needs data inside an excised region).
         min_expansion: (n,) smallest nodal Theta on each sphere, 1/M.
         candidates: outermost first: where the mean expansion changes sign, and the outer
             barrier (the radius beyond which every sphere is untrapped, min Theta > 0), each
@@ -37,10 +38,14 @@ class SphereScan:
 
 
 def _sphere_expansion(source, grid, centre, radius) -> tuple[float, float]:
-    """(mean, min) of Theta over a coordinate sphere; NaN where the sphere leaves the data."""
+    """(mean, min) of Theta over a coordinate sphere; NaN where the sphere leaves the data or
+    needs excised data."""
     sphere = Surface.sphere(centre, radius, grid.lmax)
     rd = sphere.on_grid(grid)
-    geo = source(sphere.points(rd))
+    try:
+        geo = source(sphere.points(rd))
+    except ExcisedDataError:
+        return float("nan"), float("nan")
     if not geo.covered.all():
         return float("nan"), float("nan")
     theta = expansion_at(rd, geo).theta

@@ -10,6 +10,11 @@ Only a sub-box of each patch (the region a surface needs plus the stencils) is t
 
 ``order`` is the number of interpolation nodes per axis (even): order 4 means cubic Lagrange
 interpolation (error O(dx^4)) with fourth-order centred differences.
+
+Excised regions (:mod:`.excision`): the excised nodes of each sub-box, widened by the difference
+stencil's half-width along each axis (the derivatives there read excised values), are marked
+unusable; a point whose interpolation stencil touches one raises :class:`ExcisedDataError`.
+Without declared excision nothing is marked and the results are those of plain data.
 """
 
 from __future__ import annotations
@@ -18,6 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .excision import ExcisedDataError, widen_along_axes
 from .geometry import PointGeometry, physical_from_conformal, symmetric_from_components
 from .slices import Slice, SliceError, VariableSet, symmetric_field_names
 
@@ -28,6 +34,7 @@ __all__ = [
     "describe_uncovered",
     "centred_difference_weights",
     "lagrange_weights",
+    "ExcisedDataError",
 ]
 
 SUPPORTED_ORDERS = (2, 4, 6, 8)
@@ -75,6 +82,7 @@ class _Block:
 
     ``values`` has shape (n_values, bx, by, bz): the differentiated fields, then their x, y, z
     derivatives (field-major), then the plain fields. ``origin`` is the position of node [0,0,0].
+    ``unusable`` (bx, by, bz) marks nodes whose values read excised data (None: no excision).
     """
 
     patch_index: int
@@ -82,6 +90,7 @@ class _Block:
     origin: np.ndarray
     spacing: np.ndarray
     values: np.ndarray
+    unusable: np.ndarray | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -133,6 +142,10 @@ class GridGeometry:
             I = (b[:, 0, None] + off)[:, :, None, None]
             J = (b[:, 1, None] + off)[:, None, :, None]
             K = (b[:, 2, None] + off)[:, None, None, :]
+            if block.unusable is not None:
+                touches = block.unusable[I, J, K].reshape(sel.size, -1).any(axis=1)
+                if touches.any():
+                    self._raise_excised(block, points[sel][touches])
             stencil = block.values[:, I, J, K]  # (nv, m, p, p, p)
             bad = ~np.isfinite(stencil).reshape(nv, sel.size, -1).all(axis=2)
             if bad.any():
@@ -141,6 +154,14 @@ class GridGeometry:
             source[sel] = block.patch_index
             todo[sel] = False
         return self._to_physical(values, source)
+
+    def _raise_excised(self, block: _Block, pts: np.ndarray) -> None:
+        x = pts[0]
+        raise ExcisedDataError(
+            f"{len(pts)} point(s) need data inside an excised region of patches[{block.patch_index}] (level "
+            f"{block.level}), e.g. ({x[0]:.6g}, {x[1]:.6g}, {x[2]:.6g}): the interpolation stencil ({self.order} "
+            f"nodes per axis) or the derivatives' difference stencils reach excised nodes"
+        )
 
     def _raise_nonfinite(self, block: _Block, bad: np.ndarray, pts: np.ndarray) -> None:
         # Row v of the value stack -> the field it was made from (derivative rows included).
@@ -213,7 +234,12 @@ def _prepare_block(slice_: Slice, index: int, lower, upper, order, differentiate
         for f, name in enumerate(plain):
             values[4 * nd + f] = np.asarray(patch.fields[name][window], dtype=float)[inner]
     origin = patch.origin + (lo_idx + g) * patch.spacing
-    return _Block(index, patch.level, origin, patch.spacing.copy(), values)
+    excised = slice_.excised_mask(index, window)
+    unusable = None
+    if excised is not None and excised.any():
+        # Derivatives at a node read g nodes either side along each axis.
+        unusable = widen_along_axes(excised, g)[inner]
+    return _Block(index, patch.level, origin, patch.spacing.copy(), values, unusable)
 
 
 def grid_geometry(slice_: Slice, lower, upper, *, order: int = 4) -> GridGeometry:

@@ -8,6 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .excision import ExcisedDataError
 from .expansion import level_set_derivatives
 from .sources import TrackedSource, as_tracked_source
 from .surfaces import Surface, angular_grid, harmonic_basis, unit_vectors
@@ -153,7 +154,10 @@ def proper_length_closed(points: np.ndarray, geometry_source) -> float:
     if n % 2 == 0:
         k[n // 2] = 0.0  # the Nyquist mode has no odd derivative
     tangent = np.real(np.fft.ifft(1j * k[:, None] * np.fft.fft(points, axis=0), axis=0))
-    geo = geometry_source(points)
+    try:
+        geo = geometry_source(points)
+    except ExcisedDataError:
+        return float("nan")  # the cut passes where the data are excised, as off the data
     if not geo.covered.all():
         return float("nan")
     speed = np.sqrt(np.einsum("ni,nij,nj->n", tangent, geo.gamma, tangent))

@@ -26,6 +26,7 @@ from typing import Mapping
 
 import numpy as np
 
+from .excision import ExcisedSphere
 from .slices import Patch, Slice, SliceError
 
 __all__ = ["field_parity", "mirror_patch_through_z0", "mirror_slice_through_z0"]
@@ -114,12 +115,19 @@ def mirror_slice_through_z0(
 
     Returns:
         A new :class:`Slice` with the same time, iteration and variable set; patches in the
-        input order, each replaced by its mirrored form.
+        input order, each replaced by its mirrored form; the excised spheres with their mirror
+        images (an ``excision_mask`` field is mirrored as an even scalar).
     """
     if not isinstance(slice_, Slice):
         raise SliceError(f"slice: expected a Slice, got {type(slice_).__name__}")
     patches: list[Patch] = []
     for index, patch in enumerate(slice_.patches):
         patches.extend(mirror_patch_through_z0(patch, parity_overrides=parity_overrides, index=index))
+    # An excised sphere off the plane has a mirror image, excised as well.
+    spheres = list(slice_.excised_spheres)
+    for sphere in slice_.excised_spheres:
+        image = ExcisedSphere((sphere.centre[0], sphere.centre[1], -sphere.centre[2]), sphere.radius, sphere.body)
+        if image not in spheres:
+            spheres.append(image)
     return Slice(time=slice_.time, iteration=slice_.iteration, variable_set=slice_.variable_set,
-                 patches=tuple(patches))
+                 patches=tuple(patches), excised_spheres=tuple(spheres))

@@ -9,6 +9,8 @@ Conventions (geometric units G = c = 1, lengths in the run's mass scale M):
   ``memory_order`` records how a flat buffer was laid out ("C": k fastest, "F": i fastest)
   and matters only when a patch is built from flat buffers (:meth:`Patch.from_flat`).
 * Where patches overlap, data from the highest refinement ``level`` wins.
+* Excised regions (``Slice.excised_spheres`` and a patch's ``excision_mask`` field, see
+  :mod:`penumbra_server.numerics.excision`) hold no data: NaN is allowed there and nothing reads it.
 
 Field names are spelled after the symbols (see :data:`ADM_FIELDS`, :func:`required_fields`).
 """
@@ -20,6 +22,8 @@ from dataclasses import dataclass, field
 from typing import Mapping, Sequence
 
 import numpy as np
+
+from .excision import EXCISION_MASK_FIELD, ExcisedSphere, excised_node_mask
 
 __all__ = [
     "SliceError",
@@ -216,12 +220,15 @@ class Slice:
         iteration: the evolution's iteration number (an identifier, not a time).
         variable_set: which fields the patches carry (:class:`VariableSet`).
         patches: tuple of :class:`Patch`; every patch carries all required fields.
+        excised_spheres: the run's declared :class:`ExcisedSphere` s (units of M); with the
+            patches' ``excision_mask`` fields they mark the nodes that hold no data.
     """
 
     time: float
     iteration: int
     variable_set: VariableSet
     patches: tuple[Patch, ...] = field(default_factory=tuple)
+    excised_spheres: tuple[ExcisedSphere, ...] = ()
 
     def __post_init__(self) -> None:
         vs = VariableSet.parse(self.variable_set)
@@ -244,6 +251,18 @@ class Slice:
                     f"{vs.value!r}"
                 )
         object.__setattr__(self, "patches", patches)
+        spheres = tuple(self.excised_spheres)
+        for index, sphere in enumerate(spheres):
+            if not isinstance(sphere, ExcisedSphere):
+                raise SliceError(f"excised_spheres[{index}]: expected an ExcisedSphere, got {type(sphere).__name__}")
+        object.__setattr__(self, "excised_spheres", spheres)
+
+    def excised_mask(self, index: int, window: tuple[slice, slice, slice] | None = None) -> np.ndarray | None:
+        """Boolean mask of the excised nodes of ``patches[index]`` (of its sub-box ``window``
+        when given), or None when neither spheres nor that patch's mask are declared."""
+        patch = self.patches[index]
+        return excised_node_mask(patch.origin, patch.spacing, patch.shape, self.excised_spheres,
+                                 patch.fields.get(EXCISION_MASK_FIELD), window)
 
     def patch_order(self) -> list[int]:
         """Patch indices, finest level first (ties keep the given order)."""
@@ -260,11 +279,18 @@ class Slice:
         return int(sum(a.nbytes for p in self.patches for a in p.fields.values()))
 
     def check_finite(self, names: Sequence[str] | None = None) -> None:
-        """Raise :class:`SliceError` naming the first field and node holding NaN or infinity."""
+        """Raise :class:`SliceError` naming the first field and node holding NaN or infinity
+        outside the declared excised regions (the ``excision_mask`` itself must be finite)."""
         for index, patch in enumerate(self.patches):
+            excised = None
             for name in names or patch.fields.keys():
                 arr = patch.fields[name]
                 bad = ~np.isfinite(arr)
+                if bad.any() and name != EXCISION_MASK_FIELD:
+                    if excised is None:  # only built when needed: most slices are finite throughout
+                        excised = self.excised_mask(index)
+                        excised = np.zeros(patch.shape, bool) if excised is None else excised
+                    bad &= ~excised
                 if bad.any():
                     where = tuple(int(v) for v in np.argwhere(bad)[0])
                     raise SliceError(

@@ -34,6 +34,7 @@ _REASON_TEXT = {
     pb.SurfaceNotFound.REASON_OUTSIDE_DATA: "the surface needs data the slice does not provide",
     pb.SurfaceNotFound.REASON_WORKER_FAILED: "the worker failed",
     pb.SurfaceNotFound.REASON_NOT_SEARCHED: "not searched: lost inside the common horizon after the merger",
+    pb.SurfaceNotFound.REASON_NEEDS_EXCISED_DATA: "the surface needs data inside an excised region",
 }
 
 

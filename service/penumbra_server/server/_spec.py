@@ -12,6 +12,7 @@ from dataclasses import dataclass
 
 from penumbra_shim._wire import horizons_pb2 as pb
 
+from ..numerics.excision import ExcisedSphere
 from ..numerics.slices import VariableSet
 from ..tracking.guidance import RefinementPolicy
 from .errors import ServiceError
@@ -27,6 +28,10 @@ __all__ = [
     "DEFAULT_REFINEMENT",
     "refinement_from_wire",
     "refinement_to_wire",
+    "symmetry_from_wire",
+    "shift_gauge_from_wire",
+    "excised_spheres_from_wire",
+    "excised_spheres_to_wire",
     "variable_set_from_wire",
     "variable_set_to_wire",
 ]
@@ -45,7 +50,8 @@ MAX_PART_DEADLINE_S = 86400.0
 MAX_LMAX = 32
 MAX_BODIES = 16
 MAX_QUEUE_DEPTH = 1024
-MAX_LEVELS = 16
+MAX_NESTING_DEPTH = 16
+MAX_EXCISED_SPHERES = 64
 #: The refinement policy's defaults (common practice; see tracking.guidance.RefinementPolicy).
 DEFAULT_REFINEMENT = RefinementPolicy()
 
@@ -74,6 +80,64 @@ def variable_set_to_wire(value: VariableSet) -> int:
     return _VARIABLE_SETS_BACK[VariableSet.parse(value)]
 
 
+_SYMMETRIES = {
+    pb.RunSpec.SYMMETRY_UNSPECIFIED: "none",
+    pb.RunSpec.SYMMETRY_NONE: "none",
+    pb.RunSpec.SYMMETRY_BITANT: "bitant",
+}
+_SYMMETRIES_BACK = {"none": pb.RunSpec.SYMMETRY_NONE, "bitant": pb.RunSpec.SYMMETRY_BITANT}
+
+
+def symmetry_from_wire(value: int, field: str = "spec.symmetry") -> str:
+    """"none" or "bitant" from the wire enum (unspecified is none); INVALID_ARGUMENT naming ``field``."""
+    try:
+        return _SYMMETRIES[value]
+    except KeyError:
+        raise ServiceError.invalid(f"{field}: unknown symmetry {value}; expected SYMMETRY_NONE or "
+                                   f"SYMMETRY_BITANT") from None
+
+
+_SHIFT_GAUGES = {
+    pb.RunSpec.SHIFT_GAUGE_UNSPECIFIED: "unspecified",
+    pb.RunSpec.SHIFT_GAUGE_MOVING_PUNCTURE: "moving_puncture",
+    pb.RunSpec.SHIFT_GAUGE_OTHER: "other",
+}
+_SHIFT_GAUGES_BACK = {v: k for k, v in _SHIFT_GAUGES.items()}
+
+
+def shift_gauge_from_wire(value: int, field: str = "spec.shift_gauge") -> str:
+    """"unspecified", "moving_puncture" or "other"; INVALID_ARGUMENT naming ``field`` otherwise."""
+    try:
+        return _SHIFT_GAUGES[value]
+    except KeyError:
+        raise ServiceError.invalid(f"{field}: unknown shift gauge {value}; expected SHIFT_GAUGE_MOVING_PUNCTURE, "
+                                   f"SHIFT_GAUGE_OTHER or unset") from None
+
+
+def excised_spheres_from_wire(spheres, field: str = "spec.excised_spheres") -> tuple[ExcisedSphere, ...]:
+    """The declared excised spheres; INVALID_ARGUMENT naming the sphere and field at fault."""
+    if len(spheres) > MAX_EXCISED_SPHERES:
+        raise ServiceError.invalid(f"{field}: at most {MAX_EXCISED_SPHERES} spheres, got {len(spheres)}")
+    result = []
+    for index, sphere in enumerate(spheres):
+        where = f"{field}[{index}]"
+        c = sphere.centre_m
+        centre = tuple(_finite(v, f"{where}.centre_m") for v in (c.x, c.y, c.z))
+        radius = _finite(sphere.radius_m, f"{where}.radius_m")
+        if radius <= 0:
+            raise ServiceError.invalid(f"{where}.radius_m: expected a radius > 0 in M, got {radius}")
+        if sphere.body and not _LABEL.match(sphere.body):
+            raise ServiceError.invalid(f"{where}.body: expected empty or 1-32 letters, digits, '-' or '_', "
+                                       f"got {sphere.body!r}")
+        result.append(ExcisedSphere(centre, radius, sphere.body))
+    return tuple(result)
+
+
+def excised_spheres_to_wire(spheres) -> list[pb.ExcisedSphere]:
+    return [pb.ExcisedSphere(centre_m=pb.Vector3(x=s.centre[0], y=s.centre[1], z=s.centre[2]), radius_m=s.radius,
+                             body=s.body) for s in spheres]
+
+
 def _finite(value: float, field: str) -> float:
     if not math.isfinite(value):
         raise ServiceError.invalid(f"{field}: expected a finite number, got {value}")
@@ -87,9 +151,10 @@ def refinement_from_wire(policy: pb.RefinementPolicy, field: str = "spec.refinem
     if points <= 0:
         raise ServiceError.invalid(f"{field}.points_across_horizon: expected > 0 (0 for the default "
                                    f"{d.points_across_horizon:g}), got {points}")
-    levels = int(policy.levels) or d.levels
-    if not 1 <= levels <= MAX_LEVELS:
-        raise ServiceError.invalid(f"{field}.levels: expected 1..{MAX_LEVELS} (0 for the default {d.levels}), got {levels}")
+    depth = int(policy.nesting_depth) or d.nesting_depth
+    if not 1 <= depth <= MAX_NESTING_DEPTH:
+        raise ServiceError.invalid(f"{field}.nesting_depth: expected 1..{MAX_NESTING_DEPTH} (0 for the default "
+                                   f"{d.nesting_depth}), got {depth}")
     ratio = _finite(policy.level_ratio, f"{field}.level_ratio") or d.level_ratio
     if ratio <= 1:
         raise ServiceError.invalid(f"{field}.level_ratio: expected > 1 (0 for the default {d.level_ratio:g}), got {ratio}")
@@ -97,38 +162,45 @@ def refinement_from_wire(policy: pb.RefinementPolicy, field: str = "spec.refinem
     if factor < 1:
         raise ServiceError.invalid(f"{field}.finest_radius_factor: expected >= 1 so the region holds the horizon "
                                    f"(0 for the default {d.finest_radius_factor:g}), got {factor}")
-    interval = _finite(policy.regrid_interval_m, f"{field}.regrid_interval_m") or d.regrid_interval
+    interval = _finite(policy.steering_interval_m, f"{field}.steering_interval_m") or d.steering_interval
     if interval <= 0:
-        raise ServiceError.invalid(f"{field}.regrid_interval_m: expected a time > 0 in M (0 for the default "
-                                   f"{d.regrid_interval:g}), got {interval}")
-    buffer = int(policy.buffer_points) if policy.HasField("buffer_points") else d.buffer_points
-    if not 0 <= buffer <= 1000:
-        raise ServiceError.invalid(f"{field}.buffer_points: expected 0..1000 (unset for the default "
-                                   f"{d.buffer_points}), got {buffer}")
-    return RefinementPolicy(points_across_horizon=float(points), levels=levels, level_ratio=float(ratio),
-                            finest_radius_factor=float(factor), regrid_interval=float(interval),
-                            buffer_points=buffer)
+        raise ServiceError.invalid(f"{field}.steering_interval_m: expected a time > 0 in M (0 for the default "
+                                   f"{d.steering_interval:g}), got {interval}")
+    guard = int(policy.guard_points) if policy.HasField("guard_points") else d.guard_points
+    if not 0 <= guard <= 1000:
+        raise ServiceError.invalid(f"{field}.guard_points: expected 0..1000 (unset for the default "
+                                   f"{d.guard_points}), got {guard}")
+    return RefinementPolicy(points_across_horizon=float(points), nesting_depth=depth, level_ratio=float(ratio),
+                            finest_radius_factor=float(factor), steering_interval=float(interval),
+                            guard_points=guard)
 
 
 def refinement_to_wire(policy: RefinementPolicy) -> pb.RefinementPolicy:
-    return pb.RefinementPolicy(points_across_horizon=policy.points_across_horizon, levels=policy.levels,
+    return pb.RefinementPolicy(points_across_horizon=policy.points_across_horizon, nesting_depth=policy.nesting_depth,
                                level_ratio=policy.level_ratio, finest_radius_factor=policy.finest_radius_factor,
-                               regrid_interval_m=policy.regrid_interval, buffer_points=policy.buffer_points)
+                               steering_interval_m=policy.steering_interval, guard_points=policy.guard_points)
 
 
 def _refinement_to_dict(policy: RefinementPolicy) -> dict:
-    return {"points_across_horizon": policy.points_across_horizon, "levels": policy.levels,
+    return {"points_across_horizon": policy.points_across_horizon, "nesting_depth": policy.nesting_depth,
             "level_ratio": policy.level_ratio, "finest_radius_factor": policy.finest_radius_factor,
-            "regrid_interval": policy.regrid_interval, "buffer_points": policy.buffer_points}
+            "steering_interval": policy.steering_interval, "guard_points": policy.guard_points}
 
 
 def _refinement_from_dict(data: dict | None) -> RefinementPolicy:
     if not data:  # archives written before the policy existed
         return DEFAULT_REFINEMENT
-    return RefinementPolicy(points_across_horizon=float(data["points_across_horizon"]), levels=int(data["levels"]),
+
+    def value(name: str, earlier_name: str):
+        # Archives written before the policy's fields were renamed hold the earlier names.
+        return data[name] if name in data else data[earlier_name]
+
+    return RefinementPolicy(points_across_horizon=float(data["points_across_horizon"]),
+                            nesting_depth=int(value("nesting_depth", "levels")),
                             level_ratio=float(data["level_ratio"]),
                             finest_radius_factor=float(data["finest_radius_factor"]),
-                            regrid_interval=float(data["regrid_interval"]), buffer_points=int(data["buffer_points"]))
+                            steering_interval=float(value("steering_interval", "regrid_interval")),
+                            guard_points=int(value("guard_points", "buffer_points")))
 
 
 @dataclass(frozen=True)
@@ -158,10 +230,25 @@ class RunSettings:
     lmax_common: int = 0
     #: Policy of the refinement guidance (tracking.guidance.RefinementPolicy).
     refinement: RefinementPolicy = DEFAULT_REFINEMENT
-    #: Slices carry z >= 0 only and are mirrored through z = 0 at ingest.
-    reflection_z: bool = False
     #: Seconds from the first part of a slice sent in parts until the server processes what arrived.
     part_deadline_s: float = DEFAULT_PART_DEADLINE_S
+    #: The run's symmetry: "none", or "bitant" (slices carry z >= 0 only and are mirrored
+    #: through z = 0 at ingest).
+    symmetry: str = "none"
+    #: Regions whose values are not data (numerics.excision.ExcisedSphere), units of M.
+    excised_spheres: tuple[ExcisedSphere, ...] = ()
+    #: "moving_puncture" (puncture tracks are integrated from the shift), "other" or
+    #: "unspecified" (both: the shift is not used for tracking).
+    shift_gauge: str = "unspecified"
+
+    @property
+    def bitant(self) -> bool:
+        return self.symmetry == "bitant"
+
+    @property
+    def tracks_punctures(self) -> bool:
+        """Whether puncture tracks are integrated from the shift (a moving-puncture gauge)."""
+        return self.shift_gauge == "moving_puncture"
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -240,8 +327,10 @@ class RunSettings:
             queue_depth=int(depth),
             lmax_common=int(lmax_common),
             refinement=refinement_from_wire(spec.refinement),
-            reflection_z=bool(spec.reflection_z),
             part_deadline_s=float(part_deadline),
+            symmetry=symmetry_from_wire(spec.symmetry),
+            excised_spheres=excised_spheres_from_wire(spec.excised_spheres),
+            shift_gauge=shift_gauge_from_wire(spec.shift_gauge),
         )
 
     def to_wire(self) -> pb.RunSpec:
@@ -261,8 +350,10 @@ class RunSettings:
                                      lmax_common=self.common_lmax),
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.queue_depth),
             refinement=refinement_to_wire(self.refinement),
-            reflection_z=self.reflection_z,
             part_deadline_s=self.part_deadline_s,
+            symmetry=_SYMMETRIES_BACK[self.symmetry],
+            excised_spheres=excised_spheres_to_wire(self.excised_spheres),
+            shift_gauge=_SHIFT_GAUGES_BACK[self.shift_gauge],
         )
 
     # -- archive attributes -----------------------------------------------------------------
@@ -278,8 +369,11 @@ class RunSettings:
                        "lmax_common": self.common_lmax},
             "backlog": {"queue_depth": self.queue_depth, "policy": self.backlog_policy},
             "refinement": _refinement_to_dict(self.refinement),
-            "reflection_z": self.reflection_z,
             "part_deadline_s": self.part_deadline_s,
+            "symmetry": self.symmetry,
+            "excised_spheres": [{"centre": list(s.centre), "radius": s.radius, "body": s.body}
+                                for s in self.excised_spheres],
+            "shift_gauge": self.shift_gauge,
         }
 
     @classmethod
@@ -297,6 +391,11 @@ class RunSettings:
             lmax_common=int(data["finder"].get("lmax_common", 0)),
             backlog_policy=data["backlog"].get("policy", "keep_newest"),
             refinement=_refinement_from_dict(data.get("refinement")),
-            reflection_z=bool(data.get("reflection_z", False)),
             part_deadline_s=float(data.get("part_deadline_s", DEFAULT_PART_DEADLINE_S)),
+            # Archives written before the symmetry choice hold the bool reflection_z.
+            symmetry=data.get("symmetry") or ("bitant" if data.get("reflection_z") else "none"),
+            excised_spheres=tuple(ExcisedSphere(tuple(s["centre"]), float(s["radius"]), s.get("body", ""))
+                                  for s in data.get("excised_spheres", ())),
+            # Archives written before the gauge was declared integrated tracks from any shift.
+            shift_gauge=data.get("shift_gauge", "moving_puncture"),
         )

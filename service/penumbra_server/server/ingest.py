@@ -16,6 +16,7 @@ import numpy as np
 
 from penumbra_shim._wire import horizons_pb2 as pb
 
+from ..numerics.excision import EXCISION_MASK_FIELD, ExcisedSphere, excised_node_mask
 from ..numerics.reflection import mirror_slice_through_z0
 from ..numerics.slices import Patch, Slice, SliceError, VariableSet, optional_fields, required_fields
 from ._spec import variable_set_from_wire
@@ -70,11 +71,14 @@ class SliceAssembler:
         limits: size limits.
         allow_empty: accept a header without patches (a part of a slice sent in parts); then
             only :meth:`finish_patches` may be called.
+        excised_spheres: the run's excised spheres: non-finite values are accepted inside them
+            (and where a patch's ``excision_mask`` is nonzero), refused elsewhere.
     """
 
     def __init__(self, header: pb.SliceHeader, run_variable_set: VariableSet, limits: IngestLimits, *,
-                 allow_empty: bool = False) -> None:
+                 allow_empty: bool = False, excised_spheres: tuple[ExcisedSphere, ...] = ()) -> None:
         self.limits = limits
+        self.excised_spheres = tuple(excised_spheres)
         self.run_id = header.run_id
         self.iteration = int(header.iteration)
         if not math.isfinite(header.time_m):
@@ -91,7 +95,7 @@ class SliceAssembler:
         if len(header.patches) > MAX_PATCHES:
             raise ServiceError.invalid(f"header.patches: at most {MAX_PATCHES} patches, got {len(header.patches)}")
         required = required_fields(self.variable_set)
-        allowed = set(required) | set(optional_fields(self.variable_set))
+        allowed = set(required) | set(optional_fields(self.variable_set)) | {EXCISION_MASK_FIELD}
         declared_total = 0
         self._patches: list[_PatchPlan] = []
         for index, ph in enumerate(header.patches):
@@ -124,7 +128,7 @@ class SliceAssembler:
                 raise ServiceError.invalid(
                     f"{where}.field_names: unknown field {', '.join(map(repr, unknown))} for variable set "
                     f"{self.variable_set.value}; expected {', '.join(required)} and optionally "
-                    f"{', '.join(optional_fields(self.variable_set))}"
+                    f"{', '.join(optional_fields(self.variable_set) + (EXCISION_MASK_FIELD,))}"
                 )
             dtype = _DTYPES[ph.dtype]
             field_bytes = int(np.prod(shape)) * dtype.itemsize
@@ -204,7 +208,7 @@ class SliceAssembler:
         """
         try:
             return Slice(time=self.time, iteration=self.iteration, variable_set=self.variable_set,
-                         patches=self.finish_patches())
+                         patches=self.finish_patches(), excised_spheres=self.excised_spheres)
         except SliceError as exc:
             raise ServiceError.invalid(str(exc)) from None
 
@@ -219,19 +223,36 @@ class SliceAssembler:
         patches = []
         for index, plan in enumerate(self._patches):
             fields = {}
-            for name, buf in plan.fields.items():
+            excised = None  # built only when a field holds a non-finite value
+            # The mask first: it says where the other fields may hold non-finite values.
+            for name in sorted(plan.fields, key=lambda n: n != EXCISION_MASK_FIELD):
+                buf = plan.fields[name]
                 flat = buf.buffer.view(plan.dtype)
                 if plan.dtype != np.float64:
                     flat = flat.astype(np.float64)
                 arr = flat.reshape(plan.shape, order=plan.memory_order)
                 finite = np.isfinite(arr)
+                if not finite.all() and name != EXCISION_MASK_FIELD:
+                    if excised is None:
+                        excised = excised_node_mask(plan.origin, plan.spacing, plan.shape, self.excised_spheres,
+                                                    fields.get(EXCISION_MASK_FIELD))
+                        if excised is None:
+                            excised = np.zeros(plan.shape, bool)
+                    finite |= excised
                 if not finite.all():
                     node = [int(v) for v in np.argwhere(~finite)[0]]
+                    if name == EXCISION_MASK_FIELD:
+                        where = "(the mask itself must be finite)"
+                    elif self.excised_spheres or EXCISION_MASK_FIELD in plan.fields:
+                        where = "inside no excised region (spec.excised_spheres, excision_mask)"
+                    else:
+                        where = ""
                     raise ServiceError.invalid(
-                        f"patches[{index}] field {name!r}: {int((~finite).sum())} non-finite value(s), first at node "
-                        f"[i, j, k] = {node}; expected finite numbers"
+                        f"patches[{index}] field {name!r}: {int((~finite).sum())} non-finite value(s)"
+                        f"{' ' + where if where else ''}, first at node [i, j, k] = {node}; expected finite numbers"
                     )
                 fields[name] = arr
+            fields = {name: fields[name] for name in plan.fields}  # the header's order
             try:
                 patches.append(
                     Patch(origin=plan.origin, spacing=plan.spacing, shape=plan.shape, level=plan.level,
@@ -243,7 +264,7 @@ class SliceAssembler:
 
 
 def mirror_through_z0(slice_: Slice) -> Slice:
-    """The full slice of a run with reflection symmetry through z = 0 (``reflection_z``).
+    """The full slice of a run with bitant symmetry (mirror symmetry through z = 0).
 
     INVALID_ARGUMENT when a patch reaches below z = 0 or its lowest node lies strictly between
     the plane and one spacing above it (see :mod:`penumbra_server.numerics.reflection`).
@@ -251,4 +272,4 @@ def mirror_through_z0(slice_: Slice) -> Slice:
     try:
         return mirror_slice_through_z0(slice_)
     except SliceError as exc:
-        raise ServiceError.invalid(f"header.patches: the run has reflection_z set: {exc}") from None
+        raise ServiceError.invalid(f"header.patches: the run has symmetry SYMMETRY_BITANT: {exc}") from None

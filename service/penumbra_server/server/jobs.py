@@ -23,6 +23,7 @@ __all__ = [
     "REASON_OUTSIDE_DATA",
     "REASON_WORKER_FAILED",
     "REASON_NOT_SEARCHED",
+    "REASON_NEEDS_EXCISED_DATA",
     "SurfaceJob",
     "SurfaceOutcome",
     "crop_slice",
@@ -37,6 +38,7 @@ REASON_NO_CANDIDATE = 2
 REASON_OUTSIDE_DATA = 3
 REASON_WORKER_FAILED = 4
 REASON_NOT_SEARCHED = 5
+REASON_NEEDS_EXCISED_DATA = 6
 
 
 def crop_slice(slice_: Slice, lower, upper, *, ghost_nodes: int) -> Slice | None:
@@ -72,7 +74,8 @@ def crop_slice(slice_: Slice, lower, upper, *, ghost_nodes: int) -> Slice | None
         )
     if not patches:
         return None
-    return Slice(time=slice_.time, iteration=slice_.iteration, variable_set=slice_.variable_set, patches=tuple(patches))
+    return Slice(time=slice_.time, iteration=slice_.iteration, variable_set=slice_.variable_set, patches=tuple(patches),
+                 excised_spheres=slice_.excised_spheres)
 
 
 @dataclass(frozen=True, eq=False)
@@ -172,7 +175,7 @@ def run_surface_job(job: SurfaceJob) -> SurfaceOutcome:
 
 
 def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
-    from ..numerics.finder import OUTSIDE_DATA, FinderSettings, find_surface
+    from ..numerics.finder import NEEDS_EXCISED_DATA, OUTSIDE_DATA, FinderSettings, find_surface
     from ..numerics.guesses import scan_spheres
     from ..numerics.measures import measure_surface
 
@@ -242,7 +245,8 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
             wall_time_s=elapsed, guess="scan",
         )
     kind, result = last
-    reason = REASON_OUTSIDE_DATA if result.status == OUTSIDE_DATA else REASON_NOT_CONVERGED
+    reason = {OUTSIDE_DATA: REASON_OUTSIDE_DATA, NEEDS_EXCISED_DATA: REASON_NEEDS_EXCISED_DATA}.get(
+        result.status, REASON_NOT_CONVERGED)
     return SurfaceOutcome(
         label=job.label, found=False, reason=reason, status=result.status,
         message=f"{len(attempts)} guess(es) tried, last from {kind}: {result.message}",

@@ -132,21 +132,21 @@ class ReceivedPart:
             object.__setattr__(self, "patch_bytes", tuple(_patch_bytes((p,)) for p in self.patches))
 
 
-def prepare_part(assembler: SliceAssembler, label: PartLabel, *, reflection_z: bool) -> ReceivedPart:
+def prepare_part(assembler: SliceAssembler, label: PartLabel, *, bitant: bool) -> ReceivedPart:
     """The checked patches of one part stream (run on a worker thread: it reads every value).
 
-    DATA_LOSS / INVALID_ARGUMENT as :meth:`SliceAssembler.finish`; with ``reflection_z`` each
+    DATA_LOSS / INVALID_ARGUMENT as :meth:`SliceAssembler.finish`; with ``bitant`` symmetry each
     patch is mirrored through z = 0. A patch the part carries twice is kept once if its data are
     identical, else ALREADY_EXISTS.
     """
     patches = assembler.finish_patches()
-    if reflection_z:
+    if bitant:
         mirrored = []
         for index, patch in enumerate(patches):
             try:
                 mirrored.extend(mirror_patch_through_z0(patch, index=index))
             except SliceError as exc:
-                raise ServiceError.invalid(f"header.patches: the run has reflection_z set: {exc}") from None
+                raise ServiceError.invalid(f"header.patches: the run has symmetry SYMMETRY_BITANT: {exc}") from None
         patches = tuple(mirrored)
     seen: dict[tuple, Patch] = {}
     kept, keys = [], []
@@ -196,10 +196,11 @@ class _Pending:
     patch_bytes: int = 0
     timer: asyncio.TimerHandle | None = None
 
-    def merged(self) -> Slice:
+    def merged(self, excised_spheres: tuple = ()) -> Slice:
         """The slice of every patch received, in part order (one pass; no pairwise checks)."""
         patches = tuple(p for index in sorted(self.parts) for p in self.parts[index])
-        return Slice(time=self.time, iteration=self.iteration, variable_set=self.variable_set, patches=patches)
+        return Slice(time=self.time, iteration=self.iteration, variable_set=self.variable_set, patches=patches,
+                     excised_spheres=excised_spheres)
 
 
 class PartAssembly:
@@ -209,14 +210,17 @@ class PartAssembly:
         sink: the run (see :class:`PartSink`).
         run_id: for messages.
         deadline_s: seconds from an iteration's first part until what arrived is handed on.
+        excised_spheres: the run's excised spheres, carried by every merged slice.
     """
 
-    def __init__(self, sink: PartSink, *, run_id: str, deadline_s: float) -> None:
+    def __init__(self, sink: PartSink, *, run_id: str, deadline_s: float, excised_spheres: tuple = ()) -> None:
         if not (math.isfinite(deadline_s) and deadline_s > 0):
             raise ValueError(f"deadline_s: expected a finite number of seconds > 0, got {deadline_s}")
         self.sink = sink
         self.run_id = run_id
         self.deadline_s = float(deadline_s)
+        #: The run's excised spheres, carried by every merged slice (numerics.excision).
+        self.excised_spheres = tuple(excised_spheres)
         self._pending: dict[int, _Pending] = {}
         #: Iterations given up (no patch arrived before the deadline): later parts are refused.
         self.given_up: set[int] = set()
@@ -347,7 +351,7 @@ class PartAssembly:
         """Give the run what arrived (complete when ``missing`` is empty); a report when incomplete or empty."""
         has_patches = any(pending.parts.values())
         if not missing and has_patches:
-            return self.sink.accept_assembled(pending.merged(), pending.nbytes, None)
+            return self.sink.accept_assembled(pending.merged(self.excised_spheres), pending.nbytes, None)
         received = sum(len(p) for p in pending.parts.values())
         if not has_patches:
             self.given_up.add(pending.iteration)
@@ -363,7 +367,8 @@ class PartAssembly:
             missing_part_indices=missing, patches_received=received, message=text,
             disposition=(pb.SlicePartsMissing.DISPOSITION_PROCESSED if has_patches
                          else pb.SlicePartsMissing.DISPOSITION_GIVEN_UP))
-        return self.sink.accept_assembled(pending.merged() if has_patches else None, pending.nbytes, report)
+        merged = pending.merged(self.excised_spheres) if has_patches else None
+        return self.sink.accept_assembled(merged, pending.nbytes, report)
 
     def _hand_on_incomplete(self, pending: _Pending, why: str) -> None:
         missing = [i for i in range(pending.count) if i not in pending.parts]

@@ -45,11 +45,11 @@ log = logging.getLogger("penumbra.server")
 
 
 def software_version() -> str:
-    """The installed penumbra distribution's version (recorded in every archive)."""
+    """The installed penumbra-horizons distribution's version (recorded in every archive)."""
     from importlib import metadata
 
     try:
-        return metadata.version("penumbra")
+        return metadata.version("penumbra-horizons")
     except metadata.PackageNotFoundError:
         return "unknown"
 
@@ -137,7 +137,8 @@ class RunRecord:
         #: Slices sent in parts and processed with parts missing.
         self.slices_incomplete = 0
         #: Slices arriving in parts, per iteration, until complete or past the part deadline.
-        self.parts = PartAssembly(self, run_id=run_id, deadline_s=settings.part_deadline_s)
+        self.parts = PartAssembly(self, run_id=run_id, deadline_s=settings.part_deadline_s,
+                                  excised_spheres=settings.excised_spheres)
         #: (iteration, time) of the newest slice accepted; the lag of a watcher's view.
         self.last_received: tuple[int, float] = (-1, float("nan"))
         self.state_events: list[dict] = list(writer.attrs.get("state_events", []))

@@ -114,7 +114,8 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                 if not label.is_part and run.is_duplicate(header.iteration):
                     # Idempotent resend: answer at once, without reading the data again.
                     return run.duplicate_response(header.iteration, 0)
-                assembler = SliceAssembler(header, run.settings.variable_set, self.limits, allow_empty=label.is_part)
+                assembler = SliceAssembler(header, run.settings.variable_set, self.limits, allow_empty=label.is_part,
+                                           excised_spheres=run.settings.excised_spheres)
                 if run.parts.check(assembler.iteration, assembler.time, label):
                     return run.parts.duplicate_response(assembler.iteration, label)
             elif part == "chunk":
@@ -124,11 +125,11 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
         if assembler is None:
             raise ServiceError.invalid("header: the stream ended without a header")
         if label.is_part:
-            part = await asyncio.to_thread(prepare_part, assembler, label, reflection_z=run.settings.reflection_z)
+            part = await asyncio.to_thread(prepare_part, assembler, label, bitant=run.settings.bitant)
             return await run.parts.receive(part, max_bytes=self.limits.max_slice_bytes)
         # The finiteness check walks every value: keep it off the event loop.
         slice_ = await asyncio.to_thread(assembler.finish)
-        if run.settings.reflection_z:
+        if run.settings.bitant:
             slice_ = await asyncio.to_thread(mirror_through_z0, slice_)
         item = QueuedSlice(slice_=slice_, nbytes=assembler.received_bytes, arrival_unix_s=time.time())
         run.parts.check(slice_.iteration, slice_.time, label)  # parts of this iteration may have begun meanwhile

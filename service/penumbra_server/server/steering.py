@@ -12,8 +12,11 @@ What is kept per surface label (bodies, and the common surface of a pair):
 
 * the horizon track: the area-weighted centroid of every surface found
   (:class:`~penumbra_server.tracking.tracks.Track`, source "horizon");
-* the puncture track, when slices carry shift_x/y/z: started at the first horizon centroid found
-  in a slice with a shift and advanced between consecutive such slices by
+* the puncture track, when the run declares a moving-puncture shift gauge
+  (``RunSettings.tracks_punctures``; any other shift, e.g. a Kerr-Schild one, does not follow a
+  puncture and is ignored for tracking, with one warning when no gauge was declared) and slices
+  carry shift_x/y/z: started at the first horizon centroid found in a slice with a shift and
+  advanced between consecutive such slices by
   :func:`~penumbra_server.tracking.tracks.advance_puncture_track` (d x^i / dt = -beta^i;
   Campanelli et al., PRL 96, 111101 (2006); Baker et al., PRL 96, 111102 (2006)). The shift is
   interpolated in space by 4th-order Lagrange interpolation (error O(h^4)) from the finest patch
@@ -293,6 +296,8 @@ class RunSteering:
             total = sum(b.mass for b in settings.bodies)
             self.histories[self.common_label] = SurfaceHistory(self.common_label, total, Track.empty(self.common_label))
         self.common_searching = False
+        #: Whether the run was told once that its shift is ignored for tracking (no gauge declared).
+        self.shift_ignored_told = False
         self.common_formed: tuple[float, int] | None = None
         self.latest_windows: list[DataWindow] = []
         self.latest_windows_valid: tuple[float, float] = (math.nan, math.nan)
@@ -533,6 +538,15 @@ class RunSteering:
         carries_shift = any(all(n in p.fields for n in _SHIFT_NAMES) for p in slice_.patches)
         points: dict[str, dict] = {}
         warnings: list[Notice] = []
+        if carries_shift and not self.settings.tracks_punctures:
+            if self.settings.shift_gauge == "unspecified" and not self.shift_ignored_told:
+                self.shift_ignored_told = True
+                text = ("the slices carry the shift, but the run spec declares no shift gauge: puncture tracks are "
+                        "integrated only for a moving-puncture shift (SHIFT_GAUGE_MOVING_PUNCTURE); the shift is "
+                        "not used for tracking")
+                warnings.append(Notice("warning", pb.RunWarning(kind=pb.RunWarning.KIND_TRACKING, label="",
+                                                                message=text), label="", message=text))
+            carries_shift = False  # e.g. a Kerr-Schild shift: it does not follow a puncture
         for label in self.body_labels:
             h = self.histories[label]
             if not carries_shift:
@@ -663,7 +677,7 @@ class RunSteering:
                 "required_spacing": b.required_spacing, "finest_lower": b.lower[-1], "finest_upper": b.upper[-1],
                 "horizon_max_radius": size.max_radius, "horizon_min_diameter": size.min_diameter,
                 "margin_horizon": b.margins["horizon"], "margin_motion": b.margins["motion"],
-                "margin_uncertainty": b.margins["uncertainty"], "margin_buffer": b.margins["buffer"],
+                "margin_uncertainty": b.margins["uncertainty"], "margin_guard": b.margins["guard"],
                 "reasons": json.dumps(dict(b.reasons), sort_keys=True),
             })
         for index, regions in enumerate(g.levels):
@@ -676,7 +690,7 @@ class RunSteering:
                                     "lower": r.lower, "upper": r.upper, "reason": r.reason})
         finest = min(b.finest_spacing for b in g.bodies)
         update_row = {"iteration": it, "time": t, "valid_from": g.valid_from, "valid_until": g.valid_until,
-                      "post_merger": g.post_merger, "levels": g.policy.levels, "finest_spacing": finest,
+                      "post_merger": g.post_merger, "nesting_depth": g.policy.nesting_depth, "finest_spacing": finest,
                       "reasons": json.dumps(dict(g.reasons), sort_keys=True)}
         regions_text = ", ".join(f"{'+'.join(r.bodies)} r={r.radius:.3g}" for r in g.finest_regions)
         text = (f"guidance valid {g.valid_from:.6g}..{g.valid_until:.6g} M, finest spacing {finest:.4g} M, "

@@ -4,12 +4,12 @@ Advisory only: the evolution code decides what to do with it.
 
 Units: geometric (G = c = 1), lengths and times in the run's mass scale M.
 
-Levels are numbered 1 (coarsest of the nested levels around the bodies) to ``policy.levels``
-(finest); level l has the grid spacing h_fine x level_ratio^(levels - l), one spacing per level
+Levels are numbered 1 (coarsest of the nested levels around the bodies) to ``policy.nesting_depth``
+(finest); level l has the grid spacing h_fine x level_ratio^(nesting_depth - l), one spacing per level
 for the whole run as in nested (Berger-Oliger style) mesh refinement. h_fine is set by the body
 needing the finest spacing: smallest coordinate diameter / points_across_horizon. A body whose
 horizon is level_ratio^n times larger needs n fewer levels; it gets its own finest level
-``finest_level`` (< levels), whose spacing still meets the requested points across it.
+``finest_level`` (< nesting_depth), whose spacing still meets the requested points across it.
 
 Per body (``BodyGuidance``), with r_max the horizon's largest coordinate radius:
 
@@ -17,7 +17,7 @@ Per body (``BodyGuidance``), with r_max the horizon's largest coordinate radius:
 * finest radius = finest_radius_factor x r_max  (the horizon and a shell around it)
                 + motion  (largest distance from the centre to the forecast path)
                 + uncertainty  (largest forecast uncertainty over the interval)
-                + buffer_points x the finest spacing  (buffer zones of the refined grid);
+                + guard_points x the finest spacing  (the guard zone around the refined grid);
 * each coarser level's radius is level_ratio times the next finer one;
 * box form: the forecast path's bounding box grown by the same non-motion margins on the finest
   level, and each coarser box level_ratio times wider about the same centre.
@@ -61,43 +61,45 @@ class RefinementPolicy:
     Attributes:
         points_across_horizon: grid points across the horizon's smallest coordinate diameter on
             its finest level (default 30; common practice: 20-40, references.md).
-        levels: nested refinement levels around the bodies (default 6).
+        nesting_depth: depth of the nest of refinement levels around the bodies (default 6).
         level_ratio: spacing and radius ratio between neighbouring levels (default 2,
             common practice).
         finest_radius_factor: finest-level radius in units of the horizon's largest coordinate
             radius, before margins (default 1.5; common practice: 1.2-2, references.md).
-        regrid_interval: coordinate time between the evolution's regrids, units of M (default
+        steering_interval: coordinate time between the evolution's steering steps (where it moves
+            its refined regions), units of M (default
             4 M, a choice of ours: the forecast interval the guidance must cover).
-        buffer_points: buffer-zone width in grid points of the finest spacing (default 4).
+        guard_points: guard width around the finest region, in grid points of the finest spacing
+            (default 4).
         unknown_motion_factor: margin, in units of r_max, used in place of the forecast
             uncertainty when the forecast cannot estimate it (a single sample).
     """
 
     points_across_horizon: float = 30.0
-    levels: int = 6
+    nesting_depth: int = 6
     level_ratio: float = 2.0
     finest_radius_factor: float = 1.5
-    regrid_interval: float = 4.0
-    buffer_points: int = 4
+    steering_interval: float = 4.0
+    guard_points: int = 4
     unknown_motion_factor: float = 1.0
 
     def __post_init__(self) -> None:
         checks = {
             "points_across_horizon": self.points_across_horizon > 0,
-            "levels": isinstance(self.levels, (int, np.integer)) and self.levels >= 1,
+            "nesting_depth": isinstance(self.nesting_depth, (int, np.integer)) and self.nesting_depth >= 1,
             "level_ratio": self.level_ratio > 1,
             "finest_radius_factor": self.finest_radius_factor >= 1,
-            "regrid_interval": self.regrid_interval > 0,
-            "buffer_points": isinstance(self.buffer_points, (int, np.integer)) and self.buffer_points >= 0,
+            "steering_interval": self.steering_interval > 0,
+            "guard_points": isinstance(self.guard_points, (int, np.integer)) and self.guard_points >= 0,
             "unknown_motion_factor": self.unknown_motion_factor >= 0,
         }
         expected = {
             "points_across_horizon": "a positive number",
-            "levels": "an integer >= 1",
+            "nesting_depth": "an integer >= 1",
             "level_ratio": "a number > 1",
             "finest_radius_factor": "a number >= 1 (the region must hold the horizon)",
-            "regrid_interval": "a positive time in M",
-            "buffer_points": "an integer >= 0",
+            "steering_interval": "a positive time in M",
+            "guard_points": "an integer >= 0",
             "unknown_motion_factor": "a number >= 0",
         }
         for name, ok in checks.items():
@@ -135,13 +137,13 @@ class BodyGuidance:
     Attributes:
         body: body name.
         centre: (3,) recommended centre, units of M.
-        finest_level: this body's finest level (<= policy.levels).
+        finest_level: this body's finest level (<= policy.nesting_depth).
         radii: (finest_level,) sphere radius per level, index l - 1 for level l, units of M.
         lower, upper: (finest_level, 3) box corners per level, units of M.
         spacings: (finest_level,) grid spacing per level, units of M.
         required_spacing: smallest coordinate diameter / points_across_horizon, units of M.
         finest_spacing: spacing of ``finest_level`` (<= required_spacing), units of M.
-        margins: the terms of the finest radius (horizon, motion, uncertainty, buffer), M.
+        margins: the terms of the finest radius (horizon, motion, uncertainty, guard), M.
         reasons: name of each number -> why it has its value.
     """
 
@@ -173,7 +175,7 @@ class LevelRegion:
     """One refined region on one level, sphere and box forms.
 
     Attributes:
-        level: level number (1 coarsest .. policy.levels finest).
+        level: level number (1 coarsest .. policy.nesting_depth finest).
         spacing: grid spacing on this level, units of M.
         bodies: the bodies this region covers (two or more when merged).
         centre, radius: sphere form, units of M.
@@ -258,10 +260,10 @@ class RefinementGuidance:
 
 
 def guidance_times(now: float, *, policy: RefinementPolicy, samples: int = 9) -> np.ndarray:
-    """The forecast times a guidance needs: ``samples`` times from ``now`` to now + regrid_interval."""
+    """The forecast times a guidance needs: ``samples`` times from ``now`` to now + steering_interval."""
     if int(samples) < 2:
         raise GuidanceError(f"samples: expected at least 2, got {samples!r}")
-    return np.linspace(float(now), float(now) + policy.regrid_interval, int(samples))
+    return np.linspace(float(now), float(now) + policy.steering_interval, int(samples))
 
 
 def _spheres_overlap(a: dict, b: dict) -> bool:
@@ -316,7 +318,7 @@ def refinement_guidance(
             f"post_merger: expected a forecast of the single remnant, got bodies {list(forecast.bodies)}"
         )
     ratio = float(policy.level_ratio)
-    n_levels = int(policy.levels)
+    n_levels = int(policy.nesting_depth)
     required = {b: sizes[b].min_diameter / policy.points_across_horizon for b in forecast.bodies}
     h_fine = min(required.values())
     span = float(forecast.times[-1] - forecast.times[0])
@@ -324,9 +326,9 @@ def refinement_guidance(
         "valid": (f"valid from t = {forecast.times[0]:.6g} M to {forecast.times[-1]:.6g} M, the forecast "
                   f"interval ({forecast.model} model: {forecast.reason})"),
     }
-    if span < policy.regrid_interval * (1 - 1e-9):
-        reasons["valid_short"] = (f"the forecast covers {span:.4g} M, less than the regrid interval "
-                                  f"{policy.regrid_interval:.4g} M: regrid again before it expires")
+    if span < policy.steering_interval * (1 - 1e-9):
+        reasons["valid_short"] = (f"the forecast covers {span:.4g} M, less than the steering interval "
+                                  f"{policy.steering_interval:.4g} M: steer again before it expires")
     if post_merger:
         reasons["post_merger"] = "common horizon formed: a single region around the remnant"
 
@@ -352,11 +354,11 @@ def refinement_guidance(
             unc_margin = policy.unknown_motion_factor * size.max_radius
             unc_reason = (f"{unc_margin:.4g} M: the forecast has no uncertainty estimate, so "
                           f"unknown_motion_factor {policy.unknown_motion_factor:g} x r_max is used")
-        buffer = policy.buffer_points * h_body
-        finest_radius = horizon_margin + motion + unc_margin + buffer
+        guard = policy.guard_points * h_body
+        finest_radius = horizon_margin + motion + unc_margin + guard
         steps = finest_level - np.arange(1, finest_level + 1)
         radii = finest_radius * ratio**steps
-        half_box = 0.5 * (hi_path - lo_path) + (horizon_margin + unc_margin + buffer)
+        half_box = 0.5 * (hi_path - lo_path) + (horizon_margin + unc_margin + guard)
         half_boxes = half_box[None, :] * (ratio**steps)[:, None]
         body_reasons = {
             "centre": ("centre of the bounding box of the forecast path over the interval, so the "
@@ -374,17 +376,17 @@ def refinement_guidance(
                         f"largest coordinate radius {size.max_radius:.4g} M"),
             "motion": f"{motion:.4g} M: largest distance from the centre to the forecast path",
             "uncertainty": unc_reason,
-            "buffer": f"{buffer:.4g} M = buffer_points {policy.buffer_points} x finest spacing {h_body:.4g} M",
-            "finest_radius": (f"{finest_radius:.4g} M = horizon + motion + uncertainty + buffer margins"),
+            "guard": f"{guard:.4g} M = guard_points {policy.guard_points} x finest spacing {h_body:.4g} M",
+            "finest_radius": (f"{finest_radius:.4g} M = horizon + motion + uncertainty + guard margins"),
             "coarser_radii": f"each coarser level's radius and box are level_ratio {ratio:g} times larger",
             "box": ("box form: the forecast path's bounding box grown by the horizon, uncertainty and "
-                    "buffer margins on the finest level"),
+                    "guard margins on the finest level"),
         }
         body_guidance.append(BodyGuidance(
             body=body, centre=centre, finest_level=finest_level, radii=radii,
             lower=centre - half_boxes, upper=centre + half_boxes, spacings=spacings,
             required_spacing=required[body], finest_spacing=h_body,
-            margins={"horizon": horizon_margin, "motion": motion, "uncertainty": unc_margin, "buffer": buffer},
+            margins={"horizon": horizon_margin, "motion": motion, "uncertainty": unc_margin, "guard": guard},
             reasons=body_reasons,
         ))
 

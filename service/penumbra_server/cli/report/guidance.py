@@ -52,7 +52,7 @@ class GuidanceUpdate:
     valid_from: float
     valid_until: float
     post_merger: bool
-    levels: int
+    nesting_depth: int
     bodies: tuple[BodyRegion, ...]
 
     @property
@@ -94,6 +94,8 @@ def guidance_updates(record: ArchivedRun) -> tuple[GuidanceUpdate, ...]:
         return ()
     region_seq = np.asarray(regions.get("event_seq", np.zeros(0, int)))
     body_seq = np.asarray(bodies.get("event_seq", np.zeros(0, int)))
+    # Archives written before the policy's fields were renamed call the column "levels".
+    depth = updates["nesting_depth"] if "nesting_depth" in updates else updates["levels"]
     result = []
     for u in np.argsort(np.asarray(updates["time"], dtype=float), kind="stable"):
         seq = int(updates["event_seq"][u])
@@ -119,7 +121,7 @@ def guidance_updates(record: ArchivedRun) -> tuple[GuidanceUpdate, ...]:
         result.append(GuidanceUpdate(
             event_seq=seq, time=float(updates["time"][u]), iteration=int(updates["iteration"][u]),
             valid_from=float(updates["valid_from"][u]), valid_until=float(updates["valid_until"][u]),
-            post_merger=bool(updates["post_merger"][u]), levels=int(updates["levels"][u]), bodies=tuple(entries)))
+            post_merger=bool(updates["post_merger"][u]), nesting_depth=int(depth[u]), bodies=tuple(entries)))
     return tuple(result)
 
 

@@ -92,7 +92,7 @@ def _tracking_lines(summary: RunSummary) -> list[str]:
     g = summary.guidance
     if g is not None:
         lines += ["", f"refinement guidance (advisory: the evolution decides): {g.updates} updates, "
-                      f"t = {g.first_time:.3f} .. {g.last_time:.3f} M, {g.final.levels} levels"]
+                      f"t = {g.first_time:.3f} .. {g.last_time:.3f} M, nesting depth {g.final.nesting_depth}"]
         if g.merged_spans:
             spans = ", ".join(f"{a:.3f}" if a == b else f"{a:.3f}-{b:.3f}" for a, b in g.merged_spans)
             lines.append(f"  finest regions of the bodies merged into one region at t = {spans} M "

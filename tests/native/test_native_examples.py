@@ -3,7 +3,7 @@ and the examples built with make, run as real processes against a real server on
 
 * The C example (two refinement levels around a Brill-Lindquist pair) finds both horizons; the
   server's run, read back through the Python shim, agrees with what the C structs held, and each
-  hole's irreducible mass is m_i (1 + m_j / (2 d)) to leading order (references.md item 7:
+  hole's irreducible mass is m_i (1 + m_j / (2 d)) to leading order (docs/references.md item 7:
   Brill & Lindquist, Phys. Rev. 131, 471 (1963); the leading-order mass from the conformal factor).
 * The same in Fortran (Fortran-ordered arrays passed with c_loc), where gfortran exists.
 * A connect to an address nobody serves returns a non-OK status and a message, within its timeout.
@@ -112,7 +112,7 @@ def _check_example_run(server, stdout: str) -> ps.SurfaceState:
     found = {label: surfaces[label].latest_found for label in ("A", "B")}
     assert all(f is not None and f.iteration == 5 for f in found.values()), surfaces
     separation = float(np.linalg.norm(found["A"].centroid - found["B"].centroid))
-    # Leading order from the conformal factor near each hole (references.md item 7); the
+    # Leading order from the conformal factor near each hole (docs/references.md item 7); the
     # corrections are O((m/d)^2) ~ 1e-2 relative at d ~ 2.8, well inside 2 %.
     expected = MASS * (1 + MASS / (2 * separation))
     for label, report in found.items():

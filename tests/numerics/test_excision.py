@@ -37,7 +37,7 @@ def kerr_schild_slices():
 
 
 def test_horizon_area_with_the_interior_excised_equals_the_whole_data(kerr_schild_slices):
-    # Area 16 pi M^2 (Matzner, Huq & Shoemaker, PRD 59, 024015 (1999); references.md item 2),
+    # Area 16 pi M^2 (Matzner, Huq & Shoemaker, PRD 59, 024015 (1999); docs/references.md item 2),
     # to the grid accuracy the whole data give (same grid and tolerance as the published check
     # in test_published_checks: rel 2e-5).
     whole, excised, nan_nodes = kerr_schild_slices

@@ -2,7 +2,7 @@
 
 * An excision-code run (Kerr-Schild Schwarzschild, r < 1.5 M filled with NaN, the region declared
   by spheres in the spec or by an excision_mask per patch) finds the horizon: area 16 pi M^2
-  (Matzner, Huq & Shoemaker, PRD 59, 024015 (1999); references.md item 2).
+  (Matzner, Huq & Shoemaker, PRD 59, 024015 (1999); docs/references.md item 2).
 * NaN outside the declared region is refused with INVALID_ARGUMENT naming field, patch and node.
 * A Kerr-Schild shift is not a moving-puncture shift: without SHIFT_GAUGE_MOVING_PUNCTURE it gives
   no puncture track points (one warning says why); declared, the shift is integrated.

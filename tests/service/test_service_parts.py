@@ -157,7 +157,7 @@ def test_seven_of_eight_parts_are_processed_after_the_deadline_and_the_missing_p
     assert outcomes["A"].found
     assert not outcomes["B"].found  # B's boxes were in the missing part
     (m, other), d = (m1, m2), float(np.linalg.norm(np.subtract(p1, p2)))
-    # Brill & Lindquist, Phys. Rev. 131, 471 (1963), leading order in m/d (references.md item 7).
+    # Brill & Lindquist, Phys. Rev. 131, 471 (1963), leading order in m/d (docs/references.md item 7).
     assert outcomes["A"].irreducible_mass == pytest.approx(m * (1 + other / (2 * d)), rel=5e-3)
     info = run.describe()
     assert info.slices_incomplete == 1 and info.slices_received == 1
@@ -182,7 +182,7 @@ def test_closing_hands_on_a_pending_slice_keeping_one_copy_of_a_shared_patch(cli
     assert report[0].raw.slice_parts_missing.patches_received == 1
     found = [e.surface for e in events if e.kind == "surface_found"]
     assert len(found) == 1 and found[0].iteration == 3
-    # A lone puncture's horizon: area 16 pi m^2 (references.md item 1; any GR text).
+    # A lone puncture's horizon: area 16 pi m^2 (docs/references.md item 1; any GR text).
     assert found[0].area == pytest.approx(16 * np.pi, rel=1e-3)
 
 
@@ -283,7 +283,7 @@ def test_refused_parts_leave_the_stored_ones_pending_and_the_slice_completes(stu
     events = _events_until(client, run_id, _processed(10, 11))
     found = {e.iteration: e.surface for e in events if e.kind == "surface_found"}
     assert set(found) == {10, 11}
-    assert found[10].area == pytest.approx(16 * np.pi, rel=1e-3)  # references.md item 1
+    assert found[10].area == pytest.approx(16 * np.pi, rel=1e-3)  # docs/references.md item 1
     assert found[10].area == found[11].area  # the same data, once in parts, once whole
     info = client.get_run(run_id)
     assert (info.slices_received, info.slices_incomplete) == (2, 0)
@@ -361,7 +361,7 @@ def test_parts_of_a_half_grid_are_mirrored_through_z0_each(client, stub):
     events = _events_until(client, run.run_id, _processed(0))
     found = [e.surface for e in events if e.kind == "surface_found"]
     assert len(found) == 1
-    # Area 16 pi m^2 (references.md item 1); the centroid on the plane by symmetry.
+    # Area 16 pi m^2 (docs/references.md item 1); the centroid on the plane by symmetry.
     assert found[0].area == pytest.approx(16 * np.pi, rel=1e-3)
     assert abs(found[0].centroid[2]) < 1e-6
     run.close()

@@ -126,7 +126,7 @@ def test_eight_rank_processes_give_the_surfaces_of_the_whole_slice(server):
             assert a.area == pytest.approx(b.area, rel=1e-12, abs=0.0), key
             np.testing.assert_allclose(a.centroid, b.centroid, rtol=0, atol=1e-12, err_msg=str(key))
         # And they are the pair's horizons: Brill & Lindquist, Phys. Rev. 131, 471 (1963), leading
-        # order in m/d (references.md item 7): M_irr ~ m_i (1 + m_j / (2 d)).
+        # order in m/d (docs/references.md item 7): M_irr ~ m_i (1 + m_j / (2 d)).
         (m1, m2), (p1, p2) = support.MASSES, support.POSITIONS
         d = float(np.linalg.norm(np.subtract(p1, p2)))
         for (iteration, label), surface in from_parts.items():

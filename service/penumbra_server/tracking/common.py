@@ -9,7 +9,7 @@ horizons' largest coordinate radii.
 Why ``factor`` = 3 by default: for two equal Brill-Lindquist masses m a common horizon exists
 below a coordinate separation of about 1.53 m (Cadez, Ann. Phys. 83, 449 (1974); Bishop,
 GRG 14, 717 (1982); docs/references.md item 7, values from memory there), while each individual
-horizon has a coordinate radius close to m/2 (its isotropic Schwarzschild value, references.md
+horizon has a coordinate radius close to m/2 (its isotropic Schwarzschild value, docs/references.md
 item 7), so d / (r_A + r_B) is about 1.5 when the common horizon forms. Evolved slices in
 moving-puncture gauges have other coordinate radii and separations than initial data, and the
 forecast separation carries an error, so the search starts at twice that ratio: it costs one

@@ -60,12 +60,12 @@ class RefinementPolicy:
 
     Attributes:
         points_across_horizon: grid points across the horizon's smallest coordinate diameter on
-            its finest level (default 30; common practice: 20-40, references.md).
+            its finest level (default 30; common practice: 20-40, docs/references.md item 15).
         nesting_depth: depth of the nest of refinement levels around the bodies (default 6).
         level_ratio: spacing and radius ratio between neighbouring levels (default 2,
             common practice).
         finest_radius_factor: finest-level radius in units of the horizon's largest coordinate
-            radius, before margins (default 1.5; common practice: 1.2-2, references.md).
+            radius, before margins (default 1.5; common practice: 1.2-2, docs/references.md item 15).
         steering_interval: coordinate time between the evolution's steering steps (where it moves
             its refined regions), units of M (default
             4 M, a choice of ours: the forecast interval the guidance must cover).

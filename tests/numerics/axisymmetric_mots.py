@@ -27,7 +27,7 @@ import math
 
 import numpy as np
 from scipy.integrate import solve_ivp
-from scipy.optimize import brentq, minimize_scalar, newton
+from scipy.optimize import brentq, minimize_scalar, newton, root
 
 START_ARCLENGTH = 1e-5
 RTOL, ATOL = 1e-11, 1e-13
@@ -194,20 +194,21 @@ def assemble(pair: Pair, z_top: float, z_bottom: float, z_match: float, samples:
     return AxisymmetricMots(z_top, z_bottom, z_match, top.area + bottom.area, curve)
 
 
-def _scan_top(pair, z_match, bottom_range, top_range, count):
+def _scan_top(pair, z_match, bottom_range, top_range, count, mirror=None):
     zs = np.linspace(*top_range, count)
-    out = []
-    for z in zs:
-        out.append(angle_mismatch(pair, z, z_match, bottom_range)[0])
+    out = [angle_mismatch(pair, z, z_match, bottom_range, None if mirror is None else mirror(z))[0] for z in zs]
     return zs, np.array(out)
 
 
-def _roots(pair, zm, rng, zs, f):
+def _roots(pair, zm, rng, zs, f, mirror=None):
+    def mismatch(z):
+        return angle_mismatch(pair, z, zm, rng, None if mirror is None else mirror(z))[0]
+
     roots = []
     for i in range(len(zs) - 1):
         # a sign change of a continuous mismatch (not a jump across the wrap or a gap)
         if np.isfinite(f[i]) and np.isfinite(f[i + 1]) and f[i] * f[i + 1] < 0 and abs(f[i] - f[i + 1]) < 1.0:
-            roots.append(brentq(lambda z: angle_mismatch(pair, z, zm, rng)[0], zs[i], zs[i + 1], xtol=1e-13, rtol=1e-13))
+            roots.append(brentq(mismatch, zs[i], zs[i + 1], xtol=1e-13, rtol=1e-13))
     return roots
 
 
@@ -272,33 +273,47 @@ def fold_gap(pair: Pair, *, top_range=None, count: int = 60) -> tuple[float, flo
     return _deepest(pair, zm, rng, top_range or _default_top_range(pair), count)[2:][::-1]
 
 
-def critical_separation(m1: float, m2: float, d_low: float, d_high: float) -> float:
-    """Largest coordinate separation d at which a common MOTS exists (bare-mass units), by Brent's
-    method on the fold gap between ``d_low`` (common MOTSs exist) and ``d_high`` (none). After
-    one full scan at ``d_low`` each gap is searched in a window about the previous minimum."""
-    _, z_star = fold_gap(Pair(m1, m2, d_low))
-    window = 0.05 * (m1 + m2)
+def critical_separation(m1: float, m2: float, d_low: float, *, step: float | None = None) -> float:
+    """Largest coordinate separation d at which a common MOTS exists (bare-mass units).
 
-    def gap(d):
-        nonlocal z_star
-        shift = d - d_low  # the start heights move with the punctures
-        value, where = fold_gap(Pair(m1, m2, d), top_range=(z_star + shift / 2 - window, z_star + shift / 2 + window), count=11)
-        return value
+    ``d_low`` must have common MOTSs. Steps of ``step`` (default 0.02 (m1 + m2)) bracket the
+    fold, then Brent's method finds where the fold gap vanishes. After one full scan at
+    ``d_low`` each gap is searched in a window about the previous minimum (the fold moves
+    continuously with d; its start height roughly with the upper puncture, d / 2).
+    """
+    total = m1 + m2
+    step = step or 0.02 * total
+    gap_low, z_star = fold_gap(Pair(m1, m2, d_low))
+    if not gap_low < 0:
+        raise ValueError(f"d_low: no common MOTS at d = {d_low} (fold gap {gap_low:.3g})")
+    window = 0.05 * total
 
-    return float(brentq(gap, d_low, d_high, xtol=1e-8, rtol=1e-12))
+    def windowed(d, centre):
+        return fold_gap(Pair(m1, m2, d), top_range=(centre - window, centre + window), count=11)
+
+    d, centre = d_low, z_star
+    while True:
+        g, where = windowed(d + step, centre + step / 2)
+        if g > 0:
+            break
+        d, centre = d + step, where
+    return float(brentq(lambda x: windowed(x, centre + (x - d) / 2)[0], d, d + step, xtol=1e-9, rtol=1e-12))
 
 
 def individual_mots(pair: Pair, which: int) -> AxisymmetricMots:
-    """The MOTS about puncture ``which`` (0: m1 above, 1: m2 below), matched at its height."""
-    z_p = pair.heights[which]
-    m = pair.masses[which]
-    zm = z_p
-    if which == 0:
-        top_range, rng = (z_p + 0.05 * m, z_p + 2 * m), (-pair.d / 2 + 1e-3, z_p - 0.02 * m)
-    else:
-        top_range, rng = (z_p + 0.02 * m, pair.d / 2 - 1e-3), (z_p - 2 * m, z_p - 0.05 * m)
-    zs, f = _scan_top(pair, zm, rng, top_range, 30)
-    roots = _roots(pair, zm, rng, zs, f)
-    if not roots:
-        raise ValueError(f"no individual MOTS found about puncture {which} of {pair}")
-    return assemble(pair, roots[0], angle_mismatch(pair, roots[0], zm, rng)[1], zm)
+    """The MOTS about puncture ``which`` (0: m1 above, 1: m2 below), matched at its height by
+    Powell's hybrid method on (rho, direction) mismatch in the two start heights, from the
+    isotropic-Schwarzschild guess z_p +- m / 2 (good while the companion is not too close)."""
+    z_p, m = pair.heights[which], pair.masses[which]
+
+    def residual(starts):
+        top = shoot(pair, starts[0], z_p, samples=2)
+        bottom = shoot(pair, starts[1], z_p, downward=False, samples=2)
+        if top is None or bottom is None:
+            return [1.0, 1.0]
+        return [top.rho - bottom.rho, _wrap(top.angle + bottom.angle - np.pi)]
+
+    sol = root(residual, [z_p + m / 2, z_p - m / 2], method="hybr", options={"xtol": 1e-13})
+    if not sol.success or np.max(np.abs(sol.fun)) > 1e-10:
+        raise ValueError(f"no individual MOTS found about puncture {which} of {pair}: {sol.message}")
+    return assemble(pair, float(sol.x[0]), float(sol.x[1]), z_p)

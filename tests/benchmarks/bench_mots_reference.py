@@ -55,12 +55,13 @@ def eigenvalues_near_fold(d_c_per_m, offsets, lmax):
             found = find_surface(pair, seed, settings=FinderSettings(lmax=lmax, fallback_to_flow=False))
             if found.success:
                 spec = stability_spectrum(found.surface, pair, lmax=lmax)
-                area, lam, between = surface_area(found.surface, pair), spec.principal_eigenvalue, found.residual_max_between_nodes
+                area, lam = surface_area(found.surface, pair), spec.principal_eigenvalue
+                between = found.residual_max_between_nodes
             else:
                 area, lam, between = float("nan"), float("nan"), float("nan")
                 print(f"   finder did not converge on the {name} MOTS: {found.message}")
-            print(f"  {d:.5f}  {delta:.0e}  {name:6s}  {mots.area:12.6f}  {area:12.6f}  {between:9.2e}  {lam:+.6e}  {fit.principal_eigenvalue:+.6e}",
-                  flush=True)
+            print(f"  {d:.5f}  {delta:.0e}  {name:6s}  {mots.area:12.6f}  {area:12.6f}  {between:9.2e}  "
+                  f"{lam:+.6e}  {fit.principal_eigenvalue:+.6e}", flush=True)
 
 
 def main():

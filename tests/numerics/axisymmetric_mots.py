@@ -109,7 +109,8 @@ def shoot(pair: Pair, z_start: float, z_match: float, *, downward: bool = True, 
         return y[0] - 0.5 * s0
 
     axis.terminal, axis.direction = True, -1
-    sol = solve_ivp(_rhs, (s0, 200.0), y0, args=(pair.m1, heights[0], pair.m2, heights[1]), method="DOP853", rtol=RTOL, atol=ATOL,
+    sol = solve_ivp(_rhs, (s0, 200.0), y0, args=(pair.m1, heights[0], pair.m2, heights[1]), method="DOP853",
+                    rtol=RTOL, atol=ATOL,
                     events=[level, axis], dense_output=True)
     if sol.t_events[0].size == 0:
         return None

@@ -20,12 +20,19 @@ def _expansion_at_angles(surface, data, theta, phi):
     return expansion_at(rd, data.geometry(surface.points(rd)))
 
 
+def _tangents(rd, theta, phi):
+    """(N, 2, 3) coordinate tangents d x / d theta and d x / d phi of the surface."""
+    n, et, ep = unit_vectors(theta, phi)
+    x_t = rd.h_t[:, None] * n + rd.h[:, None] * et
+    x_p = rd.h_p[:, None] * n + (rd.h * np.sin(theta))[:, None] * ep
+    return np.stack([x_t, x_p], 1)
+
+
 def area_density(surface: Surface, data, theta, phi):
     """(N,) proper area per solid angle, sqrt(det q) / sin(theta), at the given angles."""
     rd = surface.at(theta, phi)
     geo = data.geometry(surface.points(rd))
-    n, et, ep = unit_vectors(theta, phi)
-    X = np.stack([rd.h_t[:, None] * n + rd.h[:, None] * et, rd.h_p[:, None] * n + (rd.h * np.sin(theta))[:, None] * ep], 1)
+    X = _tangents(rd, theta, phi)
     q = np.einsum("nAi,nij,nBj->nAB", X, geo.gamma, X)
     return np.sqrt(np.linalg.det(q)) / np.sin(theta)
 
@@ -45,7 +52,7 @@ def normal_variation_of_expansion(surface: Surface, data, psi_coefficients, thet
     rd = surface.at(theta, phi)
     geo = data.geometry(surface.points(rd))
     n, et, ep = unit_vectors(theta, phi)
-    X = np.stack([rd.h_t[:, None] * n + rd.h[:, None] * et, rd.h_p[:, None] * n + (rd.h * np.sin(theta))[:, None] * ep], 1)
+    X = _tangents(rd, theta, phi)
     q = np.einsum("nAi,nij,nBj->nAB", X, geo.gamma, X)
     here = _expansion_at_angles(surface, data, theta, phi)
     psi = harmonic_basis(psi_lmax, theta, phi).Y @ psi_coefficients

@@ -5,7 +5,7 @@ MOTSs near the fold, found by the project's finder from the shooting solutions."
 import numpy as np
 import pytest
 
-from axisymmetric_mots import Pair, angle_mismatch, common_mots, critical_separation, individual_mots
+from axisymmetric_mots import Pair, angle_mismatch, common_mots, critical_separation, fold_gap, individual_mots
 from axisymmetric_seed import harmonic_fit
 from penumbra_server.numerics.finder import FinderSettings, find_surface
 from penumbra_server.numerics.measures import measure_surface, surface_area
@@ -125,3 +125,17 @@ def test_stability_signs_at_the_fold(equal_mass_critical_separation):
     # both like sqrt(d_c - d) near the fold
     for name in ("outer", "inner"):
         assert abs(eigen[name, 2e-3] / eigen[name, 1e-2]) == pytest.approx(np.sqrt(0.2), rel=0.2)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("q, d_c", [(2, 0.74663), (4, 0.69872)])
+def test_unequal_mass_folds(q, d_c):
+    # Regression: critical separations (units of the total bare mass M = m1 + m2) computed with
+    # this solver by tests/benchmarks/bench_mots_reference.py (5 digits); no published value
+    # is relied on here.
+    m1, m2 = q / (1 + q), 1 / (1 + q)
+    below = common_mots(Pair(m1, m2, d_c - 1e-3))
+    assert set(below) == {"outer", "inner"}
+    assert below["inner"].area > below["outer"].area
+    assert below["inner"].area == pytest.approx(below["outer"].area, rel=2e-3)
+    assert fold_gap(Pair(m1, m2, d_c + 1e-3))[0] > 0

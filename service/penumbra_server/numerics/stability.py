@@ -158,7 +158,8 @@ def stability_matrices(
     pts = surface.points(rd)
     geo = source(pts)
     if not geo.covered.all():
-        raise ValueError(f"surface: {int((~geo.covered).sum())} of {pts.shape[0]} quadrature points lie outside the data")
+        missing = int((~geo.covered).sum())
+        raise ValueError(f"surface: {missing} of {pts.shape[0]} quadrature points lie outside the data")
     step = curvature_step if curvature_step is not None else 1e-4 * surface.mean_radius
     curv = spatial_ricci(pts, geo, source, step)
 

@@ -11,8 +11,10 @@ evolution still receives cropped slices.
 * Speed bound: per body, the largest coordinate speed along the forecast path plus the largest
   growth rate of the forecast's stated uncertainty (the true position can leave the forecast
   path no faster than that), times :data:`SPEED_SAFETY` (an inspiral speeds up past the
-  forecast interval). A body with no usable forecast (one sample, infinite uncertainty, or none)
-  counts at :data:`UNKNOWN_SPEED`. The result is at least :data:`MIN_SPEED_BOUND`: on the wire 0
+  forecast interval). The uncertainty of a fit to few samples can grow faster than any body
+  moves; the truth cannot, so the uncertainty's part never lifts a body's bound above the speed
+  of light or :data:`SPEED_SAFETY` times its forecast speed, whichever is larger. A body with
+  no usable forecast (one sample, infinite uncertainty, or none) counts at :data:`UNKNOWN_SPEED`. The result is at least :data:`MIN_SPEED_BOUND`: on the wire 0
   means "not stated" (an older server), and the shim then sends expired slices whole.
 * Growth cap (a bound pair only): the bodies of an inspiral stay inside the disc their orbit has
   swept about the pair's centre of mass, so no body ends up further than that disc's diameter
@@ -39,15 +41,18 @@ __all__ = [
     "orbit_growth_cap",
     "SPEED_SAFETY",
     "UNKNOWN_SPEED",
+    "LIGHT_SPEED",
     "MIN_SPEED_BOUND",
     "CAP_SAFETY",
 ]
 
 #: Factor on the forecast's speed plus uncertainty growth (an inspiral accelerates).
 SPEED_SAFETY = 1.5
-#: Speed assumed for a body without a usable forecast, M per M: the speed of light (common
-#: practice as a bound; puncture coordinate speeds stay well below it in the usual gauges).
-UNKNOWN_SPEED = 1.0
+#: The speed of light, M per M: the speed assumed for a body without a usable forecast and the
+#: most the forecast's uncertainty growth may add (common practice as a bound; puncture
+#: coordinate speeds stay well below it in the usual gauges).
+LIGHT_SPEED = 1.0
+UNKNOWN_SPEED = LIGHT_SPEED
 #: Smallest stated bound, M per M (0 on the wire means "not stated").
 MIN_SPEED_BOUND = 0.01
 #: Factor on the largest distance of a body from the pair's centre seen so far.
@@ -103,7 +108,7 @@ def forecast_speed_bound(forecast: Forecast | None, *, safety: float = SPEED_SAF
         step = np.linalg.norm(np.diff(forecast.positions[index], axis=0), axis=1)
         speed = float(np.max(step / dt))
         spread = float(max(0.0, np.max(np.diff(unc) / dt)))
-        best = max(best, safety * (speed + spread))
+        best = max(best, min(safety * (speed + spread), max(LIGHT_SPEED, safety * speed)))
     return max(MIN_SPEED_BOUND, best)
 
 

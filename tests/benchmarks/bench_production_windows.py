@@ -63,7 +63,7 @@ MASSES = (0.5, 0.5)
 POSITIONS = ((5.0, 0.0, 0.0), (-5.0, 0.0, 0.0))
 SEPARATION = 10.0
 SLICE_INTERVAL = 1.0   # M between slices
-CROPPED_SLICES = 4     # slices after the first, sent cropped (and whole to the other run)
+CROPPED_SLICES = 6     # slices after the first, sent cropped (and whole to the other run)
 LAG = 2.0              # M past the windows' validity, for the "server lagging" figure
 VARIABLE_SET = "conformal_w"
 
@@ -207,7 +207,8 @@ def main(argv=None) -> int:
         print(f"  level {level}: spacing {mine[0].spacing:g} M, {len(mine)} ranks, "
               f"{sum(b.nodes for b in mine) / 1e6:.3f} M nodes")
 
-    options = ServerOptions(workers=args.workers)
+    # A whole slice of this layout is above the server's default limit of 2 GiB per slice.
+    options = ServerOptions(workers=args.workers, max_slice_bytes=4 * 1024**3)
     with tempfile.TemporaryDirectory(prefix="penumbra-bench-windows-") as root, \
             BackgroundServer("127.0.0.1:0", archive_root=root, workers=args.workers, options=options) as server, \
             ps.connect(server.address, deadline_s=120.0) as client:

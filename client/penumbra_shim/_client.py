@@ -27,6 +27,7 @@ import grpc
 
 from ._errors import PenumbraError, error_from_rpc
 from ._slices import DEFAULT_CHUNK_BYTES, OutgoingSlice, build_slice, crop_outgoing_slice
+from .cropping import worth_cropping
 from ._types import DataWindows, Event, Guidance, RunInfo, RunSpec, SliceAck, SurfaceState
 from ._wire import horizons_pb2 as pb
 from ._wire import horizons_pb2_grpc as pb_grpc
@@ -327,9 +328,15 @@ class SenderStats:
     #: Slices sent cropped to the server's data windows, and what they would have cost whole.
     cropped: int = 0
     bytes_uncropped: int = 0
-    #: Slices that asked for cropping but went whole (no windows yet, windows not valid at the
-    #: slice's time, or windows that miss every patch).
+    #: Slices that asked for cropping but went whole (no windows yet, expired windows without a
+    #: speed bound, grown windows keeping nearly everything, or windows that miss every patch).
     sent_whole: int = 0
+    #: Of ``cropped``: slices later than their windows' validity, cropped to the windows grown by
+    #: the server's speed bound times the lag (the server lagged behind the evolution).
+    grown: int = 0
+    #: Of ``sent_whole``: no windows held yet; grown windows that would keep nearly all the bytes.
+    whole_without_windows: int = 0
+    whole_nearly_all: int = 0
 
 
 @dataclass(eq=False)
@@ -463,7 +470,8 @@ class RunHandle:
                     self._cond.notify_all()
 
     def _windows_for(self, slice_: OutgoingSlice) -> DataWindows | None:
-        """The windows to crop ``slice_`` to: the cached ones, or (no follower) asked for now."""
+        """The windows to crop ``slice_`` to: the cached ones, or (no follower) asked for now;
+        None when the server has issued none (expired ones are grown by :meth:`_cropped`)."""
         if self._follower is not None:
             with self._latest_lock:
                 windows = self._latest_windows
@@ -472,20 +480,33 @@ class RunHandle:
                 windows = self._client.latest_windows(self.run_id)
             except PenumbraError:
                 windows = None
-        return windows if windows is not None and windows.covers(slice_.time) else None
+        return windows if windows is not None and windows.windows else None
 
     def _cropped(self, pending: _Pending) -> tuple[OutgoingSlice, bool]:
+        """The slice cut to the windows, grown when the slice is later than their validity
+        (cropping.grow_expired_windows); whole without windows or when the cut saves too little."""
         slice_ = pending.slice_
         if not pending.crop:
             return slice_, False
         windows = self._windows_for(slice_)
+        if windows is None:
+            self.stats.sent_whole += 1
+            self.stats.whole_without_windows += 1
+            return slice_, False
         try:
-            cut = crop_outgoing_slice(slice_, windows.bounds(), extra_nodes=windows.extra_nodes) if windows else None
+            growth = windows.grown_bounds(slice_.time)
+            cut = (crop_outgoing_slice(slice_, growth.bounds, extra_nodes=windows.extra_nodes)
+                   if growth is not None else None)
         except ValueError:  # malformed windows must not stop the sender: send the slice whole
-            cut = None
+            growth, cut = None, None
         if cut is None:  # a part the windows miss is not None: it goes as an empty part
             self.stats.sent_whole += 1
             return slice_, False
+        if growth.grown and not worth_cropping(cut.nbytes, slice_.nbytes):
+            self.stats.sent_whole += 1
+            self.stats.whole_nearly_all += 1
+            return slice_, False
+        self.stats.grown += int(growth.grown)
         return cut, True
 
     def _send(self, pending: _Pending) -> None:

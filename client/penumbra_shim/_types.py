@@ -707,7 +707,10 @@ class DataWindow:
 @dataclass(frozen=True, eq=False)
 class DataWindows:
     """The windows wanted for the next slice, valid for slices with times in
-    [valid_from, valid_until] (M); crops keep ``extra_nodes`` nodes of each patch around a cut."""
+    [valid_from, valid_until] (M); crops keep ``extra_nodes`` nodes of each patch around a cut.
+    A later slice is cropped to the windows grown by ``speed_bound`` (M per M; 0: not stated)
+    times its lag behind ``valid_until``, at most ``growth_cap`` (M; 0: no cap): see
+    :meth:`grown_bounds`."""
 
     time: float
     iteration: int
@@ -715,13 +718,26 @@ class DataWindows:
     valid_until: float
     extra_nodes: int
     windows: tuple[DataWindow, ...]
+    speed_bound: float = 0.0
+    growth_cap: float = 0.0
 
     @classmethod
     def from_wire(cls, w: pb.DataWindowsWanted) -> "DataWindows":
         return cls(time=w.time_m, iteration=w.iteration, valid_from=w.valid_from_m, valid_until=w.valid_until_m,
                    extra_nodes=w.extra_nodes,
                    windows=tuple(DataWindow(x.name, _triple(x.lower_m), _triple(x.upper_m), x.reason, x.growth)
-                                 for x in w.windows))
+                                 for x in w.windows),
+                   speed_bound=w.speed_bound, growth_cap=w.growth_cap_m)
+
+    def grown_bounds(self, time: float):
+        """The windows for a slice at ``time``: :func:`penumbra_shim.cropping.grow_expired_windows`
+        (a :class:`~penumbra_shim.cropping.WindowGrowth`), or None when they expired and no speed
+        bound was stated."""
+        from .cropping import grow_expired_windows  # numpy only
+
+        return grow_expired_windows(self.bounds(), time=time, valid_from=self.valid_from,
+                                    valid_until=self.valid_until, speed_bound=self.speed_bound,
+                                    growth_cap=self.growth_cap)
 
     def covers(self, time: float) -> bool:
         """Whether a slice at ``time`` may be cropped to these windows."""

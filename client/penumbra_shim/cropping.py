@@ -8,6 +8,13 @@ enclose the window (the last node at or below the window's lower corner and the 
 above its upper corner), plus ``extra_nodes`` more on every side, clipped to the patch. Field
 values are copied unchanged.
 
+Windows are valid for slices with times in [valid_from, valid_until]. A slice sent after they
+expired (the server lags behind the evolution) is cropped to the windows grown by
+:func:`grow_expired_windows`: each window widened on every side by the distance the bodies can
+have moved since, ``min(speed_bound * (t - valid_until), growth_cap)`` with the speed bound and
+cap the server states with its windows. It goes whole only when the grown crop would keep
+nearly all of it (:data:`NEARLY_WHOLE_FRACTION` of the bytes, see :func:`worth_cropping`).
+
 This module needs numpy and the shim's error classes only, so an evolution code can crop without
 the server installed.
 """
@@ -21,7 +28,12 @@ import numpy as np
 
 from ._errors import CropError
 
-__all__ = ["CropError", "CroppedPatch", "crop_index_box", "crop_patches"]
+__all__ = ["CropError", "CroppedPatch", "WindowGrowth", "crop_index_box", "crop_patches", "grow_expired_windows",
+           "worth_cropping", "NEARLY_WHOLE_FRACTION"]
+
+#: A crop to grown windows that keeps at least this fraction of the slice's bytes is not worth
+#: it: the slice goes whole (the server then also gets everything around the windows).
+NEARLY_WHOLE_FRACTION = 0.9
 
 
 @dataclass(frozen=True, eq=False)
@@ -206,3 +218,82 @@ def crop_patches(patches: Sequence, windows, *, extra_nodes: int = 0) -> list[Cr
                 memory_order=memory_order,
             ))
     return out
+
+
+@dataclass(frozen=True, eq=False)
+class WindowGrowth:
+    """Windows grown for a slice later (or earlier) than their validity.
+
+    Attributes:
+        bounds: (m, 2, 3) grown (lower, upper) per window, units of M.
+        lag: how far the slice's time lies outside [valid_from, valid_until], M (0: inside).
+        growth: distance added on every side of every window, M.
+        capped: whether the server's growth cap limited ``growth``.
+    """
+
+    bounds: np.ndarray
+    lag: float
+    growth: float
+    capped: bool
+
+    @property
+    def grown(self) -> bool:
+        return self.growth > 0
+
+
+def grow_expired_windows(windows, *, time: float, valid_from: float, valid_until: float, speed_bound: float,
+                         growth_cap: float = 0.0) -> WindowGrowth | None:
+    """Windows made for [valid_from, valid_until] grown to serve a slice at ``time``.
+
+    Every window is widened on each side by ``growth = speed_bound * lag``, at most
+    ``growth_cap`` when that is > 0, where ``lag`` is how far ``time`` lies outside the validity
+    interval (0 inside it: the windows are returned unchanged). The stencil nodes are added by
+    the crop itself (``extra_nodes``).
+
+    Args:
+        windows: as :func:`crop_patches` takes them (units of M).
+        time: the slice's coordinate time, M.
+        valid_from, valid_until: the windows' validity, M.
+        speed_bound: the bodies' coordinate speed bound, M per M (0: not stated by the server).
+        growth_cap: largest growth, M (0: no cap).
+
+    Returns:
+        The grown windows, or None when they expired and the server stated no speed bound
+        (the slice must then go whole).
+    """
+    wins = _windows(windows)
+    values = {"time": time, "valid_from": valid_from, "valid_until": valid_until, "speed_bound": speed_bound,
+              "growth_cap": growth_cap}
+    for name, value in values.items():
+        if not np.isfinite(float(value)):
+            raise CropError(f"{name}: expected a finite number, got {value!r}")
+    if float(valid_from) > float(valid_until):
+        raise CropError(f"valid_from, valid_until: expected valid_from <= valid_until, got {valid_from!r} and "
+                        f"{valid_until!r}")
+    if float(speed_bound) < 0 or float(growth_cap) < 0:
+        raise CropError(f"speed_bound, growth_cap: expected numbers >= 0, got {speed_bound!r} and {growth_cap!r}")
+    # Relative slack so that a slice exactly at valid_until (times rounded on the way) counts as inside.
+    slack = 1e-9 * max(1.0, abs(float(valid_until)))
+    t = float(time)
+    lag = max(0.0, t - float(valid_until) - slack, float(valid_from) - slack - t)
+    if lag == 0.0:
+        return WindowGrowth(bounds=wins.copy(), lag=0.0, growth=0.0, capped=False)
+    if float(speed_bound) <= 0:
+        return None
+    growth = float(speed_bound) * lag
+    capped = float(growth_cap) > 0 and growth > float(growth_cap)
+    if capped:
+        growth = float(growth_cap)
+    grown = wins.copy()
+    grown[:, 0] -= growth
+    grown[:, 1] += growth
+    return WindowGrowth(bounds=grown, lag=lag, growth=growth, capped=capped)
+
+
+def worth_cropping(cropped_bytes: int, whole_bytes: int, *, fraction: float = NEARLY_WHOLE_FRACTION) -> bool:
+    """Whether a crop keeping ``cropped_bytes`` of ``whole_bytes`` saves enough to send it."""
+    if not 0 < float(fraction) <= 1:
+        raise CropError(f"fraction: expected a number in (0, 1], got {fraction!r}")
+    if int(whole_bytes) < 0 or int(cropped_bytes) < 0:
+        raise CropError(f"cropped_bytes, whole_bytes: expected numbers >= 0, got {cropped_bytes!r} and {whole_bytes!r}")
+    return int(cropped_bytes) < float(fraction) * int(whole_bytes)

@@ -255,3 +255,27 @@ def test_pair_forecasts_seed_each_body_within_their_stated_uncertainty(full_and_
         # no seed in the first slice (scan), static from one point, then polynomial, then the orbit fit
         assert models[label][:2] == [0, 1] and models[label][-1] == 3
         assert models[label][8:] == [3] * (SLICES - 8)
+
+
+def test_windows_state_a_speed_bound_above_the_bodies_true_speed_and_a_cap_on_their_travel(full_and_cropped_runs):
+    """Every data-window event states a speed bound (M per M) at least the invented punctures'
+    true coordinate speed over the windows' validity, and, once the pair has a forecast, a growth
+    cap no smaller than how far either puncture travels from then to the end of the track."""
+    runs = full_and_cropped_runs
+    track = runs["scenario"].track
+    events = [e.windows for e in runs["full_events"] if e.kind == "data_windows_wanted"]
+    assert len(events) == SLICES
+    capped = 0
+    for w in events:
+        assert w.speed_bound > 0
+        t = np.linspace(w.valid_from, w.valid_until, 101)
+        path = np.stack([track.positions(v) for v in t])  # (k, 2, 3)
+        speed = np.linalg.norm(np.diff(path, axis=0), axis=2) / np.diff(t)[:, None]
+        assert speed.max() <= w.speed_bound, (w.iteration, speed.max(), w.speed_bound)
+        if w.growth_cap > 0:
+            capped += 1
+            later = np.stack([track.positions(v) for v in np.linspace(w.time, track.duration, 201)])
+            travel = np.linalg.norm(later - later[0], axis=2).max()
+            assert travel <= w.growth_cap, (w.iteration, travel, w.growth_cap)
+    # The cap needs both bodies' forecasts with a finite uncertainty (from the third slice on).
+    assert capped >= SLICES - 3

@@ -743,20 +743,24 @@ class DataWindow(_message.Message):
     def __init__(self, name: _Optional[str] = ..., lower_m: _Optional[_Union[Vector3, _Mapping]] = ..., upper_m: _Optional[_Union[Vector3, _Mapping]] = ..., reason: _Optional[str] = ..., growth: _Optional[int] = ...) -> None: ...
 
 class DataWindowsWanted(_message.Message):
-    __slots__ = ("time_m", "iteration", "valid_from_m", "valid_until_m", "extra_nodes", "windows")
+    __slots__ = ("time_m", "iteration", "valid_from_m", "valid_until_m", "extra_nodes", "windows", "speed_bound", "growth_cap_m")
     TIME_M_FIELD_NUMBER: _ClassVar[int]
     ITERATION_FIELD_NUMBER: _ClassVar[int]
     VALID_FROM_M_FIELD_NUMBER: _ClassVar[int]
     VALID_UNTIL_M_FIELD_NUMBER: _ClassVar[int]
     EXTRA_NODES_FIELD_NUMBER: _ClassVar[int]
     WINDOWS_FIELD_NUMBER: _ClassVar[int]
+    SPEED_BOUND_FIELD_NUMBER: _ClassVar[int]
+    GROWTH_CAP_M_FIELD_NUMBER: _ClassVar[int]
     time_m: float
     iteration: int
     valid_from_m: float
     valid_until_m: float
     extra_nodes: int
     windows: _containers.RepeatedCompositeFieldContainer[DataWindow]
-    def __init__(self, time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., valid_from_m: _Optional[float] = ..., valid_until_m: _Optional[float] = ..., extra_nodes: _Optional[int] = ..., windows: _Optional[_Iterable[_Union[DataWindow, _Mapping]]] = ...) -> None: ...
+    speed_bound: float
+    growth_cap_m: float
+    def __init__(self, time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., valid_from_m: _Optional[float] = ..., valid_until_m: _Optional[float] = ..., extra_nodes: _Optional[int] = ..., windows: _Optional[_Iterable[_Union[DataWindow, _Mapping]]] = ..., speed_bound: _Optional[float] = ..., growth_cap_m: _Optional[float] = ...) -> None: ...
 
 class RunWarning(_message.Message):
     __slots__ = ("kind", "label", "message")

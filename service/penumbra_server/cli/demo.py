@@ -141,9 +141,17 @@ def byte_lines(stats: dict) -> list[str]:
         return [f"data windows: slices sent whole (--no-crop): {_mib(sent)} in {s.get('sent', 0)} slices"]
     acks = [a for a in stats.get("acks", ()) if a.get("accepted")]
     cropped = [a for a in acks if a.get("cropped")]
-    lines = [f"data windows: {len(cropped)} of {len(acks)} slices sent cropped to the server's windows "
-             f"({len(acks) - len(cropped)} whole: no valid windows yet when sent); bytes sent {_mib(sent)} of "
-             f"{_mib(whole)} whole: ratio {sent / whole:.3f}" if whole else "data windows: nothing sent"]
+    reasons = []
+    for key, text in (("whole_without_windows", "no windows yet"),
+                      ("whole_nearly_all", "expired windows grown to nearly all of it")):
+        if int(s.get(key, 0)):
+            reasons.append(f"{int(s[key])} {text}")
+    grown = int(s.get("grown", 0))
+    lines = [f"data windows: {len(cropped)} of {len(acks)} slices sent cropped to the server's windows"
+             + (f" ({grown} to windows grown after they expired)" if grown else "")
+             + f", {len(acks) - len(cropped)} whole" + (f" ({'; '.join(reasons)})" if reasons else "")
+             + f"; bytes sent {_mib(sent)} of {_mib(whole)} whole: ratio {sent / whole:.3f}"
+             if whole else "data windows: nothing sent"]
     if cropped:
         mean_sent = sum(a["bytes_sent"] for a in cropped) / len(cropped)
         mean_whole = sum(a["bytes_whole"] for a in cropped) / len(cropped)

@@ -9,7 +9,19 @@ after the server first reports a common horizon, wait until the server has dealt
 slice, close the run.
 
 Slices go to the run cropped to the data windows the server asks for
-(``submit(..., crop_to_windows=True)``; ``--no-crop`` sends them whole). With ``--control``
+(``submit(..., crop_to_windows=True)``; ``--no-crop`` sends them whole); when the server lags
+behind and the windows have expired, the shim grows them by the server's speed bound times the
+lag. So that the demo shows the same thing on any machine, the pretend evolution never runs
+more than :data:`LEAD_SLICES` slices ahead of the windows the server has issued (for the run
+and its control): before sending slice k it waits, if need be, until the shim holds windows
+made from slice k - LEAD_SLICES or later. A real evolution would not wait (it would send whole
+or widely grown slices meanwhile); this demo's grid reaches only 3 M, so windows grown over a
+long lag would cover nearly all of it and go whole. With the bound the server's queue never
+overflows (no slice is skipped, so both runs see the same history), the first slice alone goes
+whole, and every later one goes cropped within its windows' validity. (This grid is too small
+to show growth: the first windows, made before any forecast, already cover much of it, and
+grown a little they would keep nearly all of it, which goes whole; the service tests and
+tests/benchmarks/bench_production_windows.py show growth.) With ``--control``
 (the demo's default) every slice also goes whole to a second run, the control, so that the
 demo can show that the cropped sends found the same surfaces; it doubles the server's work.
 
@@ -53,6 +65,10 @@ DEFAULT_LMAX = 10
 #: The pretend evolution moves its fine boxes every slice; it tells the server it steers them every
 #: this many slices (RefinementOptions.steering_interval = this x the slice interval).
 DEFAULT_STEERING_SLICES = 2
+#: Slices the pretend evolution may run ahead of the server's latest windows (module docstring):
+#: with windows valid for DEFAULT_STEERING_SLICES slices, every slice lies within its windows'
+#: validity (no growth needed), and at most two slices wait in the server's queue (depth 4).
+LEAD_SLICES = 2
 
 
 def run_spec_for(scenario: DemoScenario, *, lmax: int = DEFAULT_LMAX, name: str = "invented-bl-inspiral",
@@ -122,6 +138,20 @@ def _common_found(states: dict, body_labels: set[str]):
     return min(found, key=lambda s: s.iteration) if found else None
 
 
+def _await_windows(handles, iteration: int, timeout_s: float) -> float:
+    """Wait until every handle's cache holds data windows made from ``iteration`` or later
+    (module docstring); return the seconds waited, raise TimeoutError after ``timeout_s``."""
+    started = time.monotonic()
+    while True:
+        held = [h.latest_windows() for h in handles]
+        if all(w is not None and w.iteration >= iteration for w in held):
+            return time.monotonic() - started
+        if time.monotonic() - started > timeout_s:
+            raise TimeoutError(f"no data windows from iteration {iteration} within {timeout_s:g} s; "
+                               f"the shim holds {[None if w is None else w.iteration for w in held]}")
+        time.sleep(0.05)
+
+
 def _write_atomic(path: Path, text: str) -> None:
     tmp = path.with_name(path.name + f".tmp{os.getpid()}")
     tmp.write_text(text)
@@ -159,7 +189,9 @@ def _acks(tickets) -> list[dict]:
 def _stats(run) -> dict:
     s = run.stats
     return {"submitted": s.submitted, "sent": s.sent, "bytes_sent": s.bytes_sent, "bytes_uncropped": s.bytes_uncropped,
-            "cropped": s.cropped, "sent_whole": s.sent_whole, "dropped_locally": s.dropped_locally,
+            "cropped": s.cropped, "sent_whole": s.sent_whole, "grown": s.grown,
+            "whole_without_windows": s.whole_without_windows, "whole_nearly_all": s.whole_nearly_all,
+            "dropped_locally": s.dropped_locally,
             "refused": s.refused}
 
 
@@ -186,7 +218,16 @@ def evolve(*, server: str, run_id_file: Path | None, seconds_per_slice: float, m
     sent = 0
     blocked_max = 0.0
     tickets, twin_tickets = [], []
+    waited_s = 0.0
     for index in range(limit):
+        if index > 0:
+            waited = _await_windows([h for h in (run, twin) if h is not None],
+                                    scenario.iteration_of(max(0, index - LEAD_SLICES)), drain_timeout_s)
+            waited_s += waited
+            if index == 1:
+                windows = run.latest_windows()
+                print(f"evolution: first data windows (from iteration {windows.iteration}) held after {waited:.1f} s; "
+                      f"bodies move at most {windows.speed_bound:.3g} M/M", file=out, flush=True)
         step_started = time.monotonic()
         arrays = slice_arrays(scenario, index)
         t_build = time.perf_counter()
@@ -230,6 +271,7 @@ def evolve(*, server: str, run_id_file: Path | None, seconds_per_slice: float, m
         "control_stats": _stats(twin) if twin else None, "control_acks": _acks(twin_tickets) if twin else None,
         "final_guidance": guidance_line(final_guidance),
         "submit_blocked_max_ms": round(1e3 * blocked_max, 2),
+        "waited_for_windows_s": round(waited_s, 2), "lead_slices": LEAD_SLICES,
     }
     print(f"evolution: latest guidance (advisory) {record['final_guidance']}", file=out, flush=True)
     for handle in (run, twin):

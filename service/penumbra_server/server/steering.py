@@ -51,6 +51,7 @@ from ..numerics.surfaces import Surface, degree_of_index, harmonic_values
 from ..tracking.common import CommonSearchAdvice, common_horizon_watch
 from ..tracking.forecast import Forecast, forecast_pair, forecast_polynomial
 from ..tracking.guidance import HorizonSize, RefinementGuidance, guidance_times, refinement_guidance
+from ..tracking.motion import SPEED_SAFETY, UNKNOWN_SPEED, MotionBound, forecast_speed_bound, orbit_growth_cap
 from ..tracking.tracks import ShiftSample, Track, TrackError, advance_puncture_track
 from ..tracking.windows import DataWindow, merge_overlapping_windows, window_coverage
 from ._convert import vector
@@ -461,7 +462,7 @@ class RunSteering:
             result.append(self._guidance_notice(guidance, t, it))
         windows = self._windows(slice_, times, body_fc, guidance)
         if windows:
-            result.append(self._windows_notice(windows, times, t, it))
+            result.append(self._windows_notice(windows, times, t, it, self._motion(times, body_fc)))
         return result
 
     def _record_found(self, h: SurfaceHistory, outcome: SurfaceOutcome, t: float, it: int) -> dict:
@@ -762,11 +763,40 @@ class RunSteering:
                                 f"{WINDOW_SLACK_POINTS} x {spacing:.4g} M"), growth=common.growth))
         return merge_overlapping_windows(windows)
 
-    def _windows_notice(self, windows: list[DataWindow], times: np.ndarray, t: float, it: int) -> Notice:
+    def _motion(self, times: np.ndarray, body_fc: Forecast | None) -> MotionBound:
+        """How fast, and at most how far, the surfaces the windows serve can move (tracking.motion)."""
+        if self.common_formed is not None:
+            fc = self.forecast_label(self.common_label, times)
+            return MotionBound(forecast_speed_bound(fc), 0.0, "the common surface's forecast")
+        speeds = [forecast_speed_bound(body_fc)] if body_fc is not None else []
+        for label in self.body_labels:
+            h = self.histories[label]
+            if h.retired_at is not None:
+                continue
+            if body_fc is None or label not in body_fc.bodies:
+                speeds.append(UNKNOWN_SPEED)  # never found: no track to bound its motion
+            elif h.lost:
+                speeds.append(SPEED_SAFETY * h.speed())  # its forecast failed: its last measured speed
+        speed = max(speeds) if speeds else UNKNOWN_SPEED
+        cap = 0.0
+        pair = [self.histories[label] for label in self.body_labels]
+        if (len(pair) == 2 and body_fc is not None and all(label in body_fc.bodies for label in self.body_labels)
+                and not any(h.lost for h in pair)):
+            unc = np.asarray(body_fc.uncertainty)
+            if np.all(np.isfinite(unc)):
+                paths = [np.concatenate([h.track.positions, body_fc.positions_of(h.label)]) for h in pair]
+                cap = orbit_growth_cap(paths, self.body_masses(self.body_labels), uncertainty=float(np.max(unc)))
+        reason = (f"bodies' forecast ({body_fc.model})" if body_fc is not None else "no forecast yet") + (
+            "; cap: the disc the pair's orbit swept" if cap > 0 else "")
+        return MotionBound(speed, cap, reason)
+
+    def _windows_notice(self, windows: list[DataWindow], times: np.ndarray, t: float, it: int,
+                        motion: MotionBound) -> Notice:
         valid_from, valid_until = float(times[0]), float(times[-1])
         extra = self.order + 2  # the ghost nodes of the server's own crop (runs.RunRecord._find)
         payload = pb.DataWindowsWanted(time_m=t, iteration=it, valid_from_m=valid_from, valid_until_m=valid_until,
-                                       extra_nodes=extra)
+                                       extra_nodes=extra, speed_bound=motion.speed_bound,
+                                       growth_cap_m=motion.growth_cap)
         rows = []
         for w in windows:
             payload.windows.add(name=w.name, lower_m=vector(w.lower), upper_m=vector(w.upper), reason=w.reason,
@@ -777,7 +807,9 @@ class RunSteering:
         self.latest_windows = list(windows)
         self.latest_windows_valid = (valid_from, valid_until)
         volume = sum(float(np.prod(w.upper - w.lower)) for w in windows)
-        text = f"{len(windows)} data window(s) for the next slice, {volume:.4g} M^3 in all"
+        text = (f"{len(windows)} data window(s) for the next slice, {volume:.4g} M^3 in all; bodies move at most "
+                f"{motion.speed_bound:.3g} M/M" + (f", {motion.growth_cap:.3g} M in all" if motion.growth_cap > 0 else "")
+                + f" ({motion.reason})")
         return Notice("data_windows_wanted", payload, message=text, group_rows={layout.WINDOWS_GROUP: rows})
 
     # -- restart ------------------------------------------------------------------------------------------

@@ -1,6 +1,8 @@
 """The `penumbra` command: serve, demo, runs, watch, report.
 
-    penumbra serve  [--listen HOST:PORT] [--archive-root DIR] [--workers N]
+    penumbra serve  [--config FILE] [--listen HOST:PORT] [--archive-root DIR] [--workers N]
+                    [--tls-cert PEM --tls-key PEM [--tls-client-ca PEM]] [--token-file TOML]
+                    [--trusted-network] [--option KEY=VALUE] [--print-config]
     penumbra demo   [--workdir DIR] [--no-crop] [--no-control]
     penumbra runs   [--server HOST:PORT]
     penumbra watch  RUN_ID [--server HOST:PORT] [--once] [--interval S]
@@ -77,19 +79,34 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("serve", help="run a Penumbra server", description=(
         "Run the server until SIGINT/SIGTERM. Binds 127.0.0.1 unless told otherwise: give the node's "
-        "address reachable from the evolution's nodes with --listen."))
-    p.add_argument("--listen", type=parse_address, default=DEFAULT_LISTEN,
+        "address reachable from the evolution's nodes with --listen; beyond loopback the server wants TLS "
+        "and tokens (or --trusted-network). Options override the --config file, which overrides the defaults."))
+    # Every default is None here: only options actually given override the config file.
+    p.add_argument("--config", type=Path, default=None, help="TOML configuration file (see --print-config)")
+    p.add_argument("--print-config", action="store_true",
+                   help="print the effective configuration as TOML and exit")
+    p.add_argument("--listen", type=parse_address, default=None,
                    help=f"HOST:PORT to bind (default {DEFAULT_LISTEN}; port 0 picks a free one)")
-    p.add_argument("--archive-root", type=Path, default=Path("penumbra-archive"),
+    p.add_argument("--archive-root", type=Path, default=None,
                    help="directory holding one <run_id>.zarr per run (default ./penumbra-archive)")
-    p.add_argument("--workers", type=_positive_int, default=max(1, (os.cpu_count() or 2) - 1),
+    p.add_argument("--workers", type=_positive_int, default=None,
                    help="finder worker processes (default: cores - 1, at least 1)")
     p.add_argument("--ready-file", type=Path, default=None,
                    help="write the bound HOST:PORT to this file once serving (for scripts)")
-    p.add_argument("--grace", type=_positive_float, default=5.0,
+    p.add_argument("--grace", type=_positive_float, default=None,
                    help="seconds in-flight calls get to finish on shutdown (default 5)")
-    p.add_argument("--no-common-horizon", dest="common_horizon", action="store_false",
+    p.add_argument("--no-common-horizon", dest="common_horizon", action="store_const", const=False, default=None,
                    help="look for each expected body only, never for a common surface of a pair")
+    p.add_argument("--tls-cert", type=Path, default=None, help="server certificate (PEM); enables TLS")
+    p.add_argument("--tls-key", type=Path, default=None, help="private key of --tls-cert (PEM)")
+    p.add_argument("--tls-client-ca", type=Path, default=None,
+                   help="CA (PEM) that must have signed every client's certificate (mutual TLS)")
+    p.add_argument("--token-file", type=Path, action="append", default=None,
+                   help="TOML file of [[token]] tables (name, role admin|reader|opener, sha256); repeatable")
+    p.add_argument("--trusted-network", action="store_const", const=True, default=None,
+                   help="allow listening beyond loopback without TLS and tokens (only trusted hosts reach it)")
+    p.add_argument("--option", action="append", default=None, metavar="KEY=VALUE",
+                   help="a server option of the config's [options] table, e.g. max_slice_bytes=1073741824")
     p.set_defaults(handler=_cmd_serve)
 
     p = sub.add_parser("demo", help="run the invented binary-black-hole demo end to end", description=(
@@ -115,6 +132,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("runs", help="list runs on a server")
     p.add_argument("--server", type=parse_address, default=_default_server(),
                    help="server HOST:PORT (default $PENUMBRA_SERVER or 127.0.0.1:50717)")
+    _add_client_security(p)
     p.add_argument("--timeout", type=_positive_float, default=5.0,
                    help="seconds to keep trying an unreachable server (default 5)")
     p.set_defaults(handler=_cmd_runs)
@@ -125,6 +143,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("run_id", help="the run to follow (see `penumbra runs`)")
     p.add_argument("--server", type=parse_address, default=_default_server(),
                    help="server HOST:PORT (default $PENUMBRA_SERVER or 127.0.0.1:50717)")
+    _add_client_security(p)
     p.add_argument("--once", action="store_true", help="print one frame and exit")
     p.add_argument("--interval", type=_positive_float, default=1.0, help="seconds between frames (default 1)")
     p.add_argument("--timeout", type=_positive_float, default=5.0,
@@ -147,24 +166,88 @@ def _fail(message: str, code: int = 2) -> int:
     return code
 
 
+def _add_client_security(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--token-file", type=Path, default=_env_path("PENUMBRA_TOKEN_FILE"),
+                   help="file holding a reader or admin token (default $PENUMBRA_TOKEN_FILE)")
+    p.add_argument("--tls-ca", type=Path, default=_env_path("PENUMBRA_TLS_CA"),
+                   help="connect with TLS, trusting this CA certificate (PEM; default $PENUMBRA_TLS_CA)")
+
+
+def _env_path(name: str) -> Path | None:
+    value = os.environ.get(name)
+    return Path(value) if value else None
+
+
+def serve_config_from_args(args):
+    """The effective configuration of `penumbra serve`: defaults, the --config file, then options."""
+    from penumbra_server.server.config import default_config, load_config_file, merge, option_fields
+
+    config = default_config()
+    if args.config is not None:
+        config = load_config_file(args.config, config)
+    given = {
+        "server": {"listen": args.listen, "archive_root": args.archive_root, "workers": args.workers,
+                   "ready_file": args.ready_file, "grace_s": args.grace, "trusted_network": args.trusted_network},
+        "tls": {"certificate": args.tls_cert, "private_key": args.tls_key, "client_ca": args.tls_client_ca},
+        "auth": {"token_files": args.token_file},
+        "options": {"common_horizon": args.common_horizon},
+    }
+    kinds = option_fields()
+    for item in args.option or ():
+        key, sep, text = item.partition("=")
+        if not sep or key not in kinds:
+            raise ValueError(f"--option: expected KEY=VALUE with KEY one of {', '.join(kinds)}, got {item!r}")
+        given["options"][key] = _option_value(key, kinds[key], text)
+    given = {section: {k: v for k, v in values.items() if v is not None} for section, values in given.items()}
+    return merge(config, given, base=Path.cwd(), source="command line")
+
+
+def _option_value(key: str, kind: type, text: str):
+    try:
+        if kind is bool:
+            if text.lower() not in ("true", "false"):
+                raise ValueError
+            return text.lower() == "true"
+        return kind(float(text)) if kind is int and "e" in text.lower() else kind(text)
+    except ValueError:
+        raise ValueError(f"--option {key}: expected {kind.__name__}, got {text!r}") from None
+
+
 def _cmd_serve(args) -> int:
-    from penumbra_server.cli.serve import serve
+    from penumbra_server.cli.serve import serve_config
+    from penumbra_server.server.config import format_toml
 
-    return serve(listen=args.listen, archive_root=args.archive_root, workers=args.workers,
-                 ready_file=args.ready_file, grace_s=args.grace, common_horizon=args.common_horizon)
+    try:
+        config = serve_config_from_args(args)
+    except ValueError as err:  # ConfigError included: the message names the setting
+        return _fail(str(err))
+    if args.print_config:
+        print(format_toml(config), end="")
+        return 0
+    return serve_config(config)
 
 
-def _connect(address: str, timeout_s: float):
+def _connect(address: str, timeout_s: float, args=None):
     import penumbra_shim as ps
 
-    # A person at a terminal: give up on an unreachable server after a few seconds, not 30.
-    return ps.connect(address, deadline_s=max(timeout_s, 1.0), retry_budget_s=timeout_s)
+    token = None
+    token_file = getattr(args, "token_file", None)
+    try:
+        if token_file is not None:
+            token = Path(token_file).read_text().strip()
+        # A person at a terminal: give up on an unreachable server after a few seconds, not 30.
+        return ps.connect(address, deadline_s=max(timeout_s, 1.0), retry_budget_s=timeout_s, token=token,
+                          root_certificates=getattr(args, "tls_ca", None))
+    except OSError as err:
+        raise SystemExit(_fail(f"--token-file: cannot read {token_file}: {err.strerror}"))
+    except ValueError as err:
+        raise SystemExit(_fail(str(err)))
 
 
 def _cmd_runs(args) -> int:
     import penumbra_shim as ps
 
-    client = _connect(args.server, args.timeout)
+    client = _connect(args.server, args.timeout, args)
     try:
         runs = client.list_runs()
     except ps.PenumbraError as err:
@@ -201,7 +284,7 @@ def _cmd_watch(args) -> int:
 
     from penumbra_server.cli.watch import watch_run
 
-    client = _connect(args.server, args.timeout)
+    client = _connect(args.server, args.timeout, args)
     try:
         return watch_run(client, args.run_id, once=args.once, interval_s=args.interval, server=args.server)
     except ps.RunNotFoundError:

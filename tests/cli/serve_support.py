@@ -26,6 +26,12 @@ def start_serve(tmp_path: Path, *args: str, archive: Path | None = None, ready: 
     return process, ready
 
 
+def start_serve_args(args: list[str]) -> subprocess.Popen:
+    """Popen `penumbra serve` with exactly ``args``."""
+    return subprocess.Popen(SERVE + list(args), stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
+                            env=serve_env())
+
+
 def wait_for_ready(path: Path, process: subprocess.Popen, timeout_s: float = 60.0) -> str:
     """The address written to the ready file; fails loudly if serve exits or takes too long."""
     deadline = time.monotonic() + timeout_s

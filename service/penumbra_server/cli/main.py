@@ -259,18 +259,20 @@ def _cmd_runs(args) -> int:
 
 
 def format_runs(runs) -> str:
-    """A table of the shim's ``RunInfo`` objects."""
+    """A table of the shim's ``RunInfo`` objects (names and every other cell made terminal-safe)."""
     import time
+
+    from penumbra_server.cli.safe_text import terminal_safe
 
     columns = ["run id", "name", "state", "created", "received", "processed", "skipped", "archive"]
     rows = []
     for r in runs:
         created = getattr(r, "created_unix_s", None)
-        rows.append([
-            str(r.run_id), str(r.name), str(r.state),
+        rows.append([terminal_safe(cell) for cell in (
+            r.run_id, r.name, r.state,
             time.strftime("%Y-%m-%d %H:%M", time.localtime(created)) if created else "-",
-            str(r.slices_received), str(r.slices_processed), str(r.slices_skipped), str(r.archive_path or "-"),
-        ])
+            r.slices_received, r.slices_processed, r.slices_skipped, r.archive_path or "-",
+        )])
     if not rows:
         return "no runs"
     widths = [max(len(columns[i]), *(len(row[i]) for row in rows)) for i in range(len(columns))]

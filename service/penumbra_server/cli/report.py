@@ -31,6 +31,7 @@ import numpy as np
 
 from penumbra_server.cli.cross_sections import PLANES, cross_section
 from penumbra_server.cli.progress import Progress
+from penumbra_server.cli.safe_text import terminal_safe
 
 __all__ = [
     "RunRecord",
@@ -539,7 +540,7 @@ def _fmt(value, spec: str = ".6f") -> str:
 def summary_text(summary: RunSummary) -> str:
     """A plain-text account of the run (units: M for lengths, times and masses, M^2 for areas)."""
     lines = [
-        f"run {summary.run_id}  name {summary.name!r}  state {summary.state}",
+        f"run {summary.run_id}  name {terminal_safe(summary.name)!r}  state {summary.state}",
         f"slices: {summary.slices_total} final ({summary.slices_processed} processed, "
         f"{summary.slices_skipped} skipped, {summary.slices_failed} failed)"
         + (f"; time {summary.time_range[0]:.3f} .. {summary.time_range[1]:.3f} M" if summary.time_range else ""),
@@ -571,7 +572,8 @@ def summary_text(summary: RunSummary) -> str:
     lines.append("")
     lines.append("areas and masses: last found value of each surface; M_irr = sqrt(A / 16 pi).")
     lines.extend(_tracking_lines(summary))
-    return "\n".join(lines) + "\n"
+    # The run's display name comes from whoever opened it: nothing in it may drive a terminal.
+    return "\n".join(terminal_safe(line) for line in lines) + "\n"
 
 
 def _vec_text(values, spec: str = "+.3f") -> str:
@@ -696,7 +698,7 @@ def plot_areas_masses(record: RunRecord, summary: RunSummary, path: Path) -> Pat
     axes[0, 0].set_ylabel("area  [M$^2$]")
     axes[1, 0].set_ylabel("irreducible mass  [M]")
     axes[1, 0].set_xlabel("coordinate time  [M]")
-    axes[0, 0].set_title(f"{record.name or record.run_id}: horizon areas and masses")
+    axes[0, 0].set_title(f"{terminal_safe(record.name or record.run_id)}: horizon areas and masses")
     if any(_found_rows(record.surfaces[l]).size for l in record.labels):
         axes[0, 0].legend(loc="best", fontsize="small")
     fig.savefig(path)

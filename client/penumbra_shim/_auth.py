@@ -1,15 +1,14 @@
 """Bearer tokens on every call, and TLS root certificates.
 
-A :class:`BearerTokens` channel interceptor adds ``authorization: Bearer <token>`` to each
-call: the writer token of the run the call names, if this client holds it (returned by
-OpenRun, or given to ``attach_run``), else the token given to ``connect`` (a reader or admin
-token), else nothing. It works on plaintext channels too (gRPC's own call credentials demand
+:class:`BearerTokens` wraps the stub so that each call carries ``authorization: Bearer
+<token>``: the writer token of the run the call names, if this client holds it (returned by
+OpenRun, or given to ``attach_run``), else the token given to ``connect`` (a reader, opener or
+admin token), else nothing. It works on plaintext channels too (gRPC's own call credentials demand
 TLS), which a loopback or trusted-network server with tokens needs.
 """
 
 from __future__ import annotations
 
-import collections
 import itertools
 import os
 import threading
@@ -18,12 +17,6 @@ from pathlib import Path
 import grpc
 
 __all__ = ["BearerTokens", "channel_credentials"]
-
-
-class _CallDetails(collections.namedtuple("_CallDetails", ("method", "timeout", "metadata", "credentials",
-                                                           "wait_for_ready", "compression")),
-                   grpc.ClientCallDetails):
-    pass
 
 
 def _run_id_of(message) -> str:
@@ -40,12 +33,11 @@ def _run_id_of(message) -> str:
     return ""
 
 
-class BearerTokens(grpc.UnaryUnaryClientInterceptor, grpc.UnaryStreamClientInterceptor,
-                   grpc.StreamUnaryClientInterceptor, grpc.StreamStreamClientInterceptor):
+class BearerTokens:
     """The client's tokens: a default one and one writer token per run (thread-safe)."""
 
     def __init__(self, token: str | None = None) -> None:
-        if token is not None and (not isinstance(token, str) or not token.strip() or "\n" in token):
+        if token is not None and (not isinstance(token, str) or not token.strip() or "\n" in token.strip()):
             raise ValueError("token: expected a non-empty single-line string")
         self.token = token.strip() if token else None
         self._writers: dict[str, str] = {}
@@ -60,31 +52,41 @@ class BearerTokens(grpc.UnaryUnaryClientInterceptor, grpc.UnaryStreamClientInter
         with self._lock:
             return self._writers.get(run_id)
 
-    def _details(self, details, run_id: str):
-        token = self.writer_token(run_id) if run_id else None
-        token = token or self.token
-        if not token:
-            return details
-        metadata = [m for m in (details.metadata or ()) if m[0] != "authorization"]
-        metadata.append(("authorization", f"Bearer {token}"))
-        return _CallDetails(details.method, details.timeout, metadata, details.credentials,
-                            details.wait_for_ready, details.compression)
+    def metadata_for(self, run_id: str) -> tuple[tuple[str, str], ...]:
+        token = (self.writer_token(run_id) if run_id else None) or self.token
+        return (("authorization", f"Bearer {token}"),) if token else ()
 
-    def intercept_unary_unary(self, continuation, details, request):
-        return continuation(self._details(details, _run_id_of(request)), request)
+    def wrap(self, stub, service_descriptor) -> "_StubWithTokens":
+        """``stub`` whose calls carry the right token (same call signatures and errors)."""
+        return _StubWithTokens(stub, service_descriptor, self)
 
-    def intercept_unary_stream(self, continuation, details, request):
-        return continuation(self._details(details, _run_id_of(request)), request)
 
-    def intercept_stream_unary(self, continuation, details, request_iterator):
-        # The first message (a slice header) names the run; peek at it, then send it first.
-        first = next(request_iterator, None)
-        rest = request_iterator if first is None else itertools.chain((first,), request_iterator)
-        run_id = "" if first is None else _run_id_of(first)
-        return continuation(self._details(details, run_id), rest)
+class _StubWithTokens:
+    """A stub's methods, each adding ``authorization`` metadata. Wrapping the stub rather than
+    intercepting the channel keeps gRPC's own behaviour intact (a closed channel raises at the
+    call, not later while iterating a stream)."""
 
-    def intercept_stream_stream(self, continuation, details, request_iterator):
-        return continuation(self._details(details, ""), request_iterator)
+    def __init__(self, stub, service_descriptor, tokens: BearerTokens) -> None:
+        self._stub = stub
+        self._streaming = {m.name for m in service_descriptor.methods if m.client_streaming}
+        self._tokens = tokens
+
+    def __getattr__(self, name: str):
+        method = getattr(self._stub, name)
+        tokens = self._tokens
+        if name in self._streaming:
+            def call(request_iterator, *args, metadata=None, **kwargs):
+                # The first message (a slice header) names the run: peek at it, then send it first.
+                request_iterator = iter(request_iterator)
+                first = next(request_iterator, None)
+                requests = request_iterator if first is None else itertools.chain((first,), request_iterator)
+                extra = tokens.metadata_for("" if first is None else _run_id_of(first))
+                return method(requests, *args, metadata=tuple(metadata or ()) + extra, **kwargs)
+        else:
+            def call(request, *args, metadata=None, **kwargs):
+                extra = tokens.metadata_for(_run_id_of(request))
+                return method(request, *args, metadata=tuple(metadata or ()) + extra, **kwargs)
+        return call
 
 
 def _pem(value, what: str) -> bytes:

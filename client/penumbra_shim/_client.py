@@ -93,13 +93,13 @@ class Client:
         ]
         if credentials is None and root_certificates is not None:
             credentials = channel_credentials(root_certificates)
-        self._tokens = BearerTokens(token)
         if credentials is None:
-            channel = grpc.insecure_channel(target, options=options)
+            self._channel = grpc.insecure_channel(target, options=options)
         else:
-            channel = grpc.secure_channel(target, credentials, options=options)
-        self._channel = grpc.intercept_channel(channel, self._tokens)
-        self._stub = pb_grpc.HorizonServiceStub(self._channel)
+            self._channel = grpc.secure_channel(target, credentials, options=options)
+        self._tokens = BearerTokens(token)
+        self._stub = self._tokens.wrap(pb_grpc.HorizonServiceStub(self._channel),
+                                       pb.DESCRIPTOR.services_by_name["HorizonService"])
         self._handles: list[RunHandle] = []
         self._closed = False
 

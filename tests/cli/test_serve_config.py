@@ -98,3 +98,29 @@ def test_serve_refuses_a_wildcard_bind_without_tls_and_tokens(tmp_path):
     assert process.returncode == 2, out
     assert "refusing to serve on 0.0.0.0:0" in out and "TLS" in out and "--trusted-network" in out
     assert "tokens (--token-file)" not in out  # tokens were given: only TLS is missing
+
+
+def test_token_command_appends_a_digest_the_server_reads(tmp_path, capsys):
+    path = tmp_path / "tokens.toml"
+    assert main(["token", "--role", "reader", "--name", "alice", "--token-file", str(path)]) == 0
+    first = capsys.readouterr().out.strip()
+    assert main(["token", "--role", "admin", "--name", "ops", "--token-file", str(path)]) == 0
+    second = capsys.readouterr().out.strip()
+    assert first != second and len(first) >= 40
+    assert first not in path.read_text() and second not in path.read_text()
+    assert oct(path.stat().st_mode & 0o777) == oct(0o600)
+    book = TokenBook.from_file(path)
+    assert (book.lookup(first).name, book.lookup(first).role) == ("alice", "reader")
+    assert book.lookup(second).role == "admin"
+    assert main(["token", "--role", "reader", "--name", "bad name!", "--token-file", str(path)]) == 2
+    assert "--name" in capsys.readouterr().err
+
+
+def test_the_deploy_config_names_tls_and_tokens(capsys):
+    from pathlib import Path
+
+    deploy = Path(__file__).resolve().parents[2] / "deploy"
+    config = _print_config(capsys, "--config", str(deploy / "penumbra.toml"))
+    assert config["server"]["listen"].startswith("0.0.0.0:") and config["server"]["trusted_network"] is False
+    assert config["tls"]["certificate"] == str(deploy / "secrets" / "server.crt")
+    assert config["auth"]["token_files"] == [str(deploy / "secrets" / "tokens.toml")]

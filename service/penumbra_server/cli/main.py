@@ -4,7 +4,8 @@
                     [--tls-cert PEM --tls-key PEM [--tls-client-ca PEM]] [--token-file TOML]
                     [--trusted-network] [--option KEY=VALUE] [--print-config]
     penumbra demo   [--workdir DIR] [--no-crop] [--no-control]
-    penumbra runs   [--server HOST:PORT]
+    penumbra token  --role admin|reader|opener --name NAME [--token-file TOML]
+    penumbra runs   [--server HOST:PORT] [--token-file FILE] [--tls-ca PEM]
     penumbra watch  RUN_ID [--server HOST:PORT] [--once] [--interval S]
     penumbra report ARCHIVE [--output DIR] [--times T,T,...] [--plane xy|xz|yz]
 
@@ -129,6 +130,16 @@ def build_parser() -> argparse.ArgumentParser:
                         "the summary then cannot say whether cropping changed the surfaces)")
     p.set_defaults(handler=_cmd_demo)
 
+    p = sub.add_parser("token", help="make a bearer token and record its digest in a token file", description=(
+        "Print a new random token (256 bits) and append its SHA-256 with NAME and ROLE to the token file "
+        "that `penumbra serve --token-file` reads. Roles: admin (list runs, everything but writing), reader "
+        "(describe and watch runs), opener (open runs; each run's writer token comes back from OpenRun)."))
+    p.add_argument("--role", required=True, choices=("admin", "reader", "opener"), help="what the token may do")
+    p.add_argument("--name", required=True, help="who holds it (shown in refusals, never the token)")
+    p.add_argument("--token-file", type=Path, default=None,
+                   help="append the digest here (created with mode 0600); without it, only print the token")
+    p.set_defaults(handler=_cmd_token)
+
     p = sub.add_parser("runs", help="list runs on a server")
     p.add_argument("--server", type=parse_address, default=_default_server(),
                    help="server HOST:PORT (default $PENUMBRA_SERVER or 127.0.0.1:50717)")
@@ -211,6 +222,17 @@ def _option_value(key: str, kind: type, text: str):
         return kind(float(text)) if kind is int and "e" in text.lower() else kind(text)
     except ValueError:
         raise ValueError(f"--option {key}: expected {kind.__name__}, got {text!r}") from None
+
+
+def _cmd_token(args) -> int:
+    from penumbra_server.cli.token import make_token
+
+    try:
+        token = make_token(role=args.role, name=args.name, token_file=args.token_file)
+    except (OSError, ValueError) as err:
+        return _fail(str(err))
+    print(token)
+    return 0
 
 
 def _cmd_serve(args) -> int:

@@ -19,6 +19,7 @@ Units: G = c = 1; lengths, times and masses in units of the run's mass scale M. 
 advisory: the evolution decides what to do with them.
 """
 
+from ._auth import channel_credentials
 from ._client import Client, EventStream, RunHandle, SenderStats, SubmitTicket, connect
 from ._errors import (
     CropError,
@@ -96,6 +97,7 @@ __all__ = [
     "TrackUpdate",
     "UnknownWireValueError",
     "build_slice",
+    "channel_credentials",
     "crop_outgoing_slice",
     "connect",
     "optional_fields",

@@ -25,6 +25,7 @@ from typing import Iterator
 
 import grpc
 
+from ._auth import BearerTokens, channel_credentials
 from ._errors import PenumbraError, error_from_rpc
 from ._slices import DEFAULT_CHUNK_BYTES, OutgoingSlice, build_slice, crop_outgoing_slice
 from .cropping import worth_cropping
@@ -53,22 +54,28 @@ _SEND_BYTES_PER_S = 20e6
 
 
 def connect(target: str, *, deadline_s: float = 10.0, credentials: grpc.ChannelCredentials | None = None,
-            retry_budget_s: float = 30.0) -> "Client":
+            retry_budget_s: float = 30.0, token: str | None = None, root_certificates=None) -> "Client":
     """A client for the Penumbra server at ``target`` ("host:port"). The channel connects lazily.
 
     Args:
         deadline_s: deadline of each unary call, seconds.
-        credentials: TLS channel credentials (None: plaintext, for loopback and trusted networks).
+        credentials: TLS channel credentials (None: plaintext, for loopback and trusted networks,
+            unless ``root_certificates`` is given); for mutual TLS build them with
+            :func:`penumbra_shim.channel_credentials`.
         retry_budget_s: how long an idempotent call keeps retrying while the server is unreachable.
+        token: a reader, opener or admin token sent with every call (``authorization: Bearer``);
+            calls about a run whose writer token this client holds send that one instead.
+        root_certificates: TLS with this CA (PEM bytes or text, or a file path) as trust root.
     """
-    return Client(target, deadline_s=deadline_s, credentials=credentials, retry_budget_s=retry_budget_s)
+    return Client(target, deadline_s=deadline_s, credentials=credentials, retry_budget_s=retry_budget_s, token=token,
+                  root_certificates=root_certificates)
 
 
 class Client:
     """A connection to one Penumbra server (thread-safe)."""
 
     def __init__(self, target: str, *, deadline_s: float = 10.0, credentials: grpc.ChannelCredentials | None = None,
-                 retry_budget_s: float = 30.0) -> None:
+                 retry_budget_s: float = 30.0, token: str | None = None, root_certificates=None) -> None:
         if not isinstance(target, str) or ":" not in target:
             raise ValueError(f"target: expected 'host:port', got {target!r}")
         self.target = target
@@ -85,11 +92,15 @@ class Client:
             ("grpc.min_reconnect_backoff_ms", 100),
             ("grpc.max_reconnect_backoff_ms", 2_000),
         ]
+        if credentials is None and root_certificates is not None:
+            credentials = channel_credentials(root_certificates)
         if credentials is None:
             self._channel = grpc.insecure_channel(target, options=options)
         else:
             self._channel = grpc.secure_channel(target, credentials, options=options)
-        self._stub = pb_grpc.HorizonServiceStub(self._channel)
+        self._tokens = BearerTokens(token)
+        self._stub = self._tokens.wrap(pb_grpc.HorizonServiceStub(self._channel),
+                                       pb.DESCRIPTOR.services_by_name["HorizonService"])
         self._handles: list[RunHandle] = []
         self._closed = False
 
@@ -129,13 +140,22 @@ class Client:
         if not isinstance(spec, RunSpec):
             raise TypeError(f"spec: expected a RunSpec, got {type(spec).__name__}")
         request = pb.OpenRunRequest(spec=spec.to_wire(), request_id=uuid.uuid4().hex)
-        info = RunInfo.from_wire(self._call("OpenRun", request).run)
+        response = self._call("OpenRun", request)
+        info = RunInfo.from_wire(response.run)
+        self._tokens.remember_writer(info.run_id, response.writer_token)
         return self._handle(info, queue_depth=queue_depth or spec.backlog.queue_depth, chunk_bytes=chunk_bytes,
                             cache_results=cache_results, max_retry_s=max_retry_s, crop_to_windows=crop_to_windows)
 
     def attach_run(self, run_id: str, *, queue_depth: int | None = None, chunk_bytes: int = DEFAULT_CHUNK_BYTES,
-                   cache_results: bool = True, max_retry_s: float = 60.0, crop_to_windows: bool = False) -> "RunHandle":
-        """A handle on a run that is already open (e.g. after the evolution restarted)."""
+                   cache_results: bool = True, max_retry_s: float = 60.0, crop_to_windows: bool = False,
+                   writer_token: str | None = None) -> "RunHandle":
+        """A handle on a run that is already open (e.g. after the evolution restarted).
+
+        ``writer_token``: the run's :attr:`RunHandle.writer_token` (kept from when it was opened),
+        needed to send to or close the run on a server that checks tokens.
+        """
+        if writer_token:
+            self._tokens.remember_writer(run_id, writer_token)
         info = self.get_run(run_id)
         return self._handle(info, queue_depth=queue_depth or info.spec.backlog.queue_depth, chunk_bytes=chunk_bytes,
                             cache_results=cache_results, max_retry_s=max_retry_s, crop_to_windows=crop_to_windows)
@@ -618,6 +638,11 @@ class RunHandle:
     def events(self, *, from_seq: int = 1, timeout_s: float | None = None) -> EventStream:
         """The run's events from ``from_seq`` (see :meth:`Client.watch`)."""
         return self._client.watch(self.run_id, from_seq=from_seq, timeout_s=timeout_s)
+
+    @property
+    def writer_token(self) -> str | None:
+        """The run's writer token, if this client holds it (keep it to attach again after a restart)."""
+        return self._client._tokens.writer_token(self.run_id)
 
     def describe(self) -> RunInfo:
         """The run as the server describes it now."""

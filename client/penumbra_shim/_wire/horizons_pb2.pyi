@@ -184,10 +184,12 @@ class OpenRunRequest(_message.Message):
     def __init__(self, spec: _Optional[_Union[RunSpec, _Mapping]] = ..., request_id: _Optional[str] = ...) -> None: ...
 
 class OpenRunResponse(_message.Message):
-    __slots__ = ("run",)
+    __slots__ = ("run", "writer_token")
     RUN_FIELD_NUMBER: _ClassVar[int]
+    WRITER_TOKEN_FIELD_NUMBER: _ClassVar[int]
     run: Run
-    def __init__(self, run: _Optional[_Union[Run, _Mapping]] = ...) -> None: ...
+    writer_token: str
+    def __init__(self, run: _Optional[_Union[Run, _Mapping]] = ..., writer_token: _Optional[str] = ...) -> None: ...
 
 class GetRunRequest(_message.Message):
     __slots__ = ("run_id",)

@@ -25,6 +25,7 @@ import time
 from pathlib import Path
 
 from penumbra_server.cli.progress import Progress
+from penumbra_server.cli.safe_text import terminal_safe
 
 __all__ = ["run_demo", "start_server_process", "stop_process", "byte_lines", "comparison_line", "guidance_lines"]
 
@@ -107,7 +108,7 @@ class _EventFollower:
                     self.progress.show(f"server: common horizon {c.label!r} formed at t = {c.time:.2f} M "
                                        f"(bodies {c.separation:.3f} M apart, M_irr {c.irreducible_mass:.4f} M)")
                 elif kind == "warning":
-                    self.progress.show(f"server warning ({event.state}, {event.label}): {event.reason}")
+                    self.progress.show(terminal_safe(f"server warning ({event.state}, {event.label}): {event.reason}"))
                 if kind in ("surface_found", "surface_not_found") and event.surface is not None:
                     s = event.surface
                     self.latest[s.label] = s

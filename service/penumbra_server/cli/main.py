@@ -1,8 +1,11 @@
 """The `penumbra` command: serve, demo, runs, watch, report.
 
-    penumbra serve  [--listen HOST:PORT] [--archive-root DIR] [--workers N]
+    penumbra serve  [--config FILE] [--listen HOST:PORT] [--archive-root DIR] [--workers N]
+                    [--tls-cert PEM --tls-key PEM [--tls-client-ca PEM]] [--token-file TOML]
+                    [--trusted-network] [--option KEY=VALUE] [--print-config]
     penumbra demo   [--workdir DIR] [--no-crop] [--no-control]
-    penumbra runs   [--server HOST:PORT]
+    penumbra token  --role admin|reader|opener --name NAME [--token-file TOML]
+    penumbra runs   [--server HOST:PORT] [--token-file FILE] [--tls-ca PEM]
     penumbra watch  RUN_ID [--server HOST:PORT] [--once] [--interval S]
     penumbra report ARCHIVE [--output DIR] [--times T,T,...] [--plane xy|xz|yz]
 
@@ -77,19 +80,34 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("serve", help="run a Penumbra server", description=(
         "Run the server until SIGINT/SIGTERM. Binds 127.0.0.1 unless told otherwise: give the node's "
-        "address reachable from the evolution's nodes with --listen."))
-    p.add_argument("--listen", type=parse_address, default=DEFAULT_LISTEN,
+        "address reachable from the evolution's nodes with --listen; beyond loopback the server wants TLS "
+        "and tokens (or --trusted-network). Options override the --config file, which overrides the defaults."))
+    # Every default is None here: only options actually given override the config file.
+    p.add_argument("--config", type=Path, default=None, help="TOML configuration file (see --print-config)")
+    p.add_argument("--print-config", action="store_true",
+                   help="print the effective configuration as TOML and exit")
+    p.add_argument("--listen", type=parse_address, default=None,
                    help=f"HOST:PORT to bind (default {DEFAULT_LISTEN}; port 0 picks a free one)")
-    p.add_argument("--archive-root", type=Path, default=Path("penumbra-archive"),
+    p.add_argument("--archive-root", type=Path, default=None,
                    help="directory holding one <run_id>.zarr per run (default ./penumbra-archive)")
-    p.add_argument("--workers", type=_positive_int, default=max(1, (os.cpu_count() or 2) - 1),
+    p.add_argument("--workers", type=_positive_int, default=None,
                    help="finder worker processes (default: cores - 1, at least 1)")
     p.add_argument("--ready-file", type=Path, default=None,
                    help="write the bound HOST:PORT to this file once serving (for scripts)")
-    p.add_argument("--grace", type=_positive_float, default=5.0,
+    p.add_argument("--grace", type=_positive_float, default=None,
                    help="seconds in-flight calls get to finish on shutdown (default 5)")
-    p.add_argument("--no-common-horizon", dest="common_horizon", action="store_false",
+    p.add_argument("--no-common-horizon", dest="common_horizon", action="store_const", const=False, default=None,
                    help="look for each expected body only, never for a common surface of a pair")
+    p.add_argument("--tls-cert", type=Path, default=None, help="server certificate (PEM); enables TLS")
+    p.add_argument("--tls-key", type=Path, default=None, help="private key of --tls-cert (PEM)")
+    p.add_argument("--tls-client-ca", type=Path, default=None,
+                   help="CA (PEM) that must have signed every client's certificate (mutual TLS)")
+    p.add_argument("--token-file", type=Path, action="append", default=None,
+                   help="TOML file of [[token]] tables (name, role admin|reader|opener, sha256); repeatable")
+    p.add_argument("--trusted-network", action="store_const", const=True, default=None,
+                   help="allow listening beyond loopback without TLS and tokens (only trusted hosts reach it)")
+    p.add_argument("--option", action="append", default=None, metavar="KEY=VALUE",
+                   help="a server option of the config's [options] table, e.g. max_slice_bytes=1073741824")
     p.set_defaults(handler=_cmd_serve)
 
     p = sub.add_parser("demo", help="run the invented binary-black-hole demo end to end", description=(
@@ -112,9 +130,20 @@ def build_parser() -> argparse.ArgumentParser:
                         "the summary then cannot say whether cropping changed the surfaces)")
     p.set_defaults(handler=_cmd_demo)
 
+    p = sub.add_parser("token", help="make a bearer token and record its digest in a token file", description=(
+        "Print a new random token (256 bits) and append its SHA-256 with NAME and ROLE to the token file "
+        "that `penumbra serve --token-file` reads. Roles: admin (list runs, everything but writing), reader "
+        "(describe and watch runs), opener (open runs; each run's writer token comes back from OpenRun)."))
+    p.add_argument("--role", required=True, choices=("admin", "reader", "opener"), help="what the token may do")
+    p.add_argument("--name", required=True, help="who holds it (shown in refusals, never the token)")
+    p.add_argument("--token-file", type=Path, default=None,
+                   help="append the digest here (created with mode 0600); without it, only print the token")
+    p.set_defaults(handler=_cmd_token)
+
     p = sub.add_parser("runs", help="list runs on a server")
     p.add_argument("--server", type=parse_address, default=_default_server(),
                    help="server HOST:PORT (default $PENUMBRA_SERVER or 127.0.0.1:50717)")
+    _add_client_security(p)
     p.add_argument("--timeout", type=_positive_float, default=5.0,
                    help="seconds to keep trying an unreachable server (default 5)")
     p.set_defaults(handler=_cmd_runs)
@@ -125,6 +154,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("run_id", help="the run to follow (see `penumbra runs`)")
     p.add_argument("--server", type=parse_address, default=_default_server(),
                    help="server HOST:PORT (default $PENUMBRA_SERVER or 127.0.0.1:50717)")
+    _add_client_security(p)
     p.add_argument("--once", action="store_true", help="print one frame and exit")
     p.add_argument("--interval", type=_positive_float, default=1.0, help="seconds between frames (default 1)")
     p.add_argument("--timeout", type=_positive_float, default=5.0,
@@ -147,24 +177,99 @@ def _fail(message: str, code: int = 2) -> int:
     return code
 
 
+def _add_client_security(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--token-file", type=Path, default=_env_path("PENUMBRA_TOKEN_FILE"),
+                   help="file holding a reader or admin token (default $PENUMBRA_TOKEN_FILE)")
+    p.add_argument("--tls-ca", type=Path, default=_env_path("PENUMBRA_TLS_CA"),
+                   help="connect with TLS, trusting this CA certificate (PEM; default $PENUMBRA_TLS_CA)")
+
+
+def _env_path(name: str) -> Path | None:
+    value = os.environ.get(name)
+    return Path(value) if value else None
+
+
+def serve_config_from_args(args):
+    """The effective configuration of `penumbra serve`: defaults, the --config file, then options."""
+    from penumbra_server.server.config import default_config, load_config_file, merge, option_fields
+
+    config = default_config()
+    if args.config is not None:
+        config = load_config_file(args.config, config)
+    given = {
+        "server": {"listen": args.listen, "archive_root": args.archive_root, "workers": args.workers,
+                   "ready_file": args.ready_file, "grace_s": args.grace, "trusted_network": args.trusted_network},
+        "tls": {"certificate": args.tls_cert, "private_key": args.tls_key, "client_ca": args.tls_client_ca},
+        "auth": {"token_files": args.token_file},
+        "options": {"common_horizon": args.common_horizon},
+    }
+    kinds = option_fields()
+    for item in args.option or ():
+        key, sep, text = item.partition("=")
+        if not sep or key not in kinds:
+            raise ValueError(f"--option: expected KEY=VALUE with KEY one of {', '.join(kinds)}, got {item!r}")
+        given["options"][key] = _option_value(key, kinds[key], text)
+    given = {section: {k: v for k, v in values.items() if v is not None} for section, values in given.items()}
+    return merge(config, given, base=Path.cwd(), source="command line")
+
+
+def _option_value(key: str, kind: type, text: str):
+    try:
+        if kind is bool:
+            if text.lower() not in ("true", "false"):
+                raise ValueError
+            return text.lower() == "true"
+        return kind(float(text)) if kind is int and "e" in text.lower() else kind(text)
+    except ValueError:
+        raise ValueError(f"--option {key}: expected {kind.__name__}, got {text!r}") from None
+
+
+def _cmd_token(args) -> int:
+    from penumbra_server.cli.token import make_token
+
+    try:
+        token = make_token(role=args.role, name=args.name, token_file=args.token_file)
+    except (OSError, ValueError) as err:
+        return _fail(str(err))
+    print(token)
+    return 0
+
+
 def _cmd_serve(args) -> int:
-    from penumbra_server.cli.serve import serve
+    from penumbra_server.cli.serve import serve_config
+    from penumbra_server.server.config import format_toml
 
-    return serve(listen=args.listen, archive_root=args.archive_root, workers=args.workers,
-                 ready_file=args.ready_file, grace_s=args.grace, common_horizon=args.common_horizon)
+    try:
+        config = serve_config_from_args(args)
+    except ValueError as err:  # ConfigError included: the message names the setting
+        return _fail(str(err))
+    if args.print_config:
+        print(format_toml(config), end="")
+        return 0
+    return serve_config(config)
 
 
-def _connect(address: str, timeout_s: float):
+def _connect(address: str, timeout_s: float, args=None):
     import penumbra_shim as ps
 
-    # A person at a terminal: give up on an unreachable server after a few seconds, not 30.
-    return ps.connect(address, deadline_s=max(timeout_s, 1.0), retry_budget_s=timeout_s)
+    token = None
+    token_file = getattr(args, "token_file", None)
+    try:
+        if token_file is not None:
+            token = Path(token_file).read_text().strip()
+        # A person at a terminal: give up on an unreachable server after a few seconds, not 30.
+        return ps.connect(address, deadline_s=max(timeout_s, 1.0), retry_budget_s=timeout_s, token=token,
+                          root_certificates=getattr(args, "tls_ca", None))
+    except OSError as err:
+        raise SystemExit(_fail(f"--token-file: cannot read {token_file}: {err.strerror}"))
+    except ValueError as err:
+        raise SystemExit(_fail(str(err)))
 
 
 def _cmd_runs(args) -> int:
     import penumbra_shim as ps
 
-    client = _connect(args.server, args.timeout)
+    client = _connect(args.server, args.timeout, args)
     try:
         runs = client.list_runs()
     except ps.PenumbraError as err:
@@ -176,18 +281,20 @@ def _cmd_runs(args) -> int:
 
 
 def format_runs(runs) -> str:
-    """A table of the shim's ``RunInfo`` objects."""
+    """A table of the shim's ``RunInfo`` objects (names and every other cell made terminal-safe)."""
     import time
+
+    from penumbra_server.cli.safe_text import terminal_safe
 
     columns = ["run id", "name", "state", "created", "received", "processed", "skipped", "archive"]
     rows = []
     for r in runs:
         created = getattr(r, "created_unix_s", None)
-        rows.append([
-            str(r.run_id), str(r.name), str(r.state),
+        rows.append([terminal_safe(cell) for cell in (
+            r.run_id, r.name, r.state,
             time.strftime("%Y-%m-%d %H:%M", time.localtime(created)) if created else "-",
-            str(r.slices_received), str(r.slices_processed), str(r.slices_skipped), str(r.archive_path or "-"),
-        ])
+            r.slices_received, r.slices_processed, r.slices_skipped, r.archive_path or "-",
+        )])
     if not rows:
         return "no runs"
     widths = [max(len(columns[i]), *(len(row[i]) for row in rows)) for i in range(len(columns))]
@@ -201,7 +308,7 @@ def _cmd_watch(args) -> int:
 
     from penumbra_server.cli.watch import watch_run
 
-    client = _connect(args.server, args.timeout)
+    client = _connect(args.server, args.timeout, args)
     try:
         return watch_run(client, args.run_id, once=args.once, interval_s=args.interval, server=args.server)
     except ps.RunNotFoundError:

@@ -8,7 +8,7 @@ import signal
 import sys
 from pathlib import Path
 
-__all__ = ["serve", "write_ready_file"]
+__all__ = ["serve", "serve_config", "write_ready_file"]
 
 
 def write_ready_file(path: Path, address: str) -> None:
@@ -20,23 +20,42 @@ def write_ready_file(path: Path, address: str) -> None:
     os.replace(tmp, path)
 
 
-async def _serve(*, listen: str, archive_root: Path, workers: int, ready_file: Path | None, grace_s: float,
-                 common_horizon: bool) -> int:
-    from penumbra_server.server import ServerOptions, create_server
+async def _serve(config) -> int:
+    from penumbra_server.server import create_server
+    from penumbra_server.server.auth import ExposureError
+    from penumbra_server.server.config import ConfigError, server_credentials, server_options, token_book
 
-    # The server's default planner (server/planning.py) seeds each body at its forecast and, for a
-    # pair, looks for the common horizon once the bodies are close.
-    options = ServerOptions(common_horizon=common_horizon)
-
+    settings = config["server"]
+    listen, archive_root, workers = settings["listen"], Path(settings["archive_root"]), settings["workers"]
+    ready_file, grace_s = settings["ready_file"], settings["grace_s"]
+    try:
+        # The server's default planner (server/planning.py) seeds each body at its forecast and, for a
+        # pair, looks for the common horizon once the bodies are close.
+        options = server_options(config)
+        credentials = server_credentials(config)
+        tokens = token_book(config)
+    except ConfigError as err:
+        print(f"penumbra: {err}", file=sys.stderr)
+        return 2
+    archive_root.mkdir(parents=True, exist_ok=True)
     # The worker pool starts inside create_server, before the gRPC server (grpc and fork do not mix).
     try:
-        server = await create_server(listen, archive_root=Path(archive_root), workers=workers, options=options)
+        server = await create_server(listen, archive_root=archive_root, workers=workers, options=options,
+                                     server_credentials=credentials, token_book=tokens,
+                                     trusted_network=settings["trusted_network"])
+    except ExposureError as err:
+        print(f"penumbra: refusing to serve on {listen}: {err}", file=sys.stderr)
+        return 2
     except (OSError, RuntimeError) as err:
         # grpc.aio reports a failed bind as RuntimeError("Failed to bind to address ...").
         print(f"penumbra: cannot serve on {listen}: {err}", file=sys.stderr)
         return 1
     await server.start()
-    print(f"penumbra: serving on {server.address} (archive {Path(archive_root).resolve()}, workers: {workers})",
+    security = ", ".join(filter(None, [
+        "TLS" + (" with client certificates" if config["tls"]["client_ca"] else "") if credentials else "no TLS",
+        f"{len(tokens)} tokens" if tokens else "no tokens (open)",
+    ]))
+    print(f"penumbra: serving on {server.address} (archive {archive_root.resolve()}, workers: {workers}; {security})",
           flush=True)
     if ready_file is not None:
         write_ready_file(ready_file, server.address)
@@ -58,13 +77,21 @@ async def _serve(*, listen: str, archive_root: Path, workers: int, ready_file: P
     return 0
 
 
+def serve_config(config) -> int:
+    """Run the server of an effective configuration (server/config.py); return the exit status."""
+    return asyncio.run(_serve(config))
+
+
 def serve(*, listen: str, archive_root: Path, workers: int, ready_file: Path | None = None, grace_s: float = 5.0,
           common_horizon: bool = True) -> int:
-    """Run the server; return the process exit status.
+    """Run the server with these settings and the defaults for the rest; return the exit status.
 
     ``common_horizon``: look for a common surface in two-body runs
     (:class:`penumbra_server.server.SteeringPlanner`, the server's default planner).
     """
-    Path(archive_root).mkdir(parents=True, exist_ok=True)
-    return asyncio.run(_serve(listen=listen, archive_root=Path(archive_root), workers=workers,
-                              ready_file=ready_file, grace_s=grace_s, common_horizon=common_horizon))
+    from penumbra_server.server.config import default_config, merge
+
+    overrides = {"server": {"listen": listen, "archive_root": str(archive_root), "workers": workers,
+                            "ready_file": "" if ready_file is None else str(ready_file), "grace_s": grace_s},
+                 "options": {"common_horizon": common_horizon}}
+    return serve_config(merge(default_config(), overrides, base=Path.cwd(), source="serve()"))

@@ -26,6 +26,8 @@ import time
 from dataclasses import dataclass, field
 from typing import Mapping, TextIO
 
+from penumbra_server.cli.safe_text import terminal_safe, terminal_safe_lines
+
 __all__ = ["RunProgress", "render_frame", "surface_rows", "guidance_rows", "read_progress", "find_common_formed",
            "watch_run"]
 
@@ -204,7 +206,7 @@ def render_frame(info, states: Mapping[str, object], progress: RunProgress | Non
     # The evolution's position as the server knows it: newest received, else newest processed.
     evolution_time = received_time if math.isfinite(received_time) else progress.newest_time
     lines = [
-        f"penumbra watch  {getattr(info, 'run_id', '?')}  {getattr(info, 'name', '')!r}  "
+        f"penumbra watch  {getattr(info, 'run_id', '?')}  {terminal_safe(getattr(info, 'name', ''))!r}  "
         f"state {getattr(info, 'state', '?')}  {server}".rstrip(),
         time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(now))
         + f"  slices: received {received}, processed {processed}, skipped {skipped}, queued {queued}"
@@ -237,7 +239,9 @@ def render_frame(info, states: Mapping[str, object], progress: RunProgress | Non
     lines.append("")
     lines.append("lag: newest slice received minus the time the surface was last found [M] / "
                  "arrival-to-archived wall time [s]. Results and guidance are advisory.")
-    return "\n".join(lines) + "\n"
+    # Names, labels and reasons come from the run's opener and the server: nothing in them may
+    # drive the terminal.
+    return "\n".join(terminal_safe(line) for line in lines) + "\n"
 
 
 def read_progress(client, run_id: str, last_seq: int, *, window: int = 512, timeout_s: float = 5.0) -> RunProgress:
@@ -334,6 +338,7 @@ def watch_run(client, run_id: str, *, once: bool = False, interval_s: float = 1.
                 frame = (f"penumbra watch  {run_id}  {server}\nserver unreachable for "
                          f"{time.time() - unreachable_since:.0f} s ({err}); retrying every {interval_s:g} s\n")
                 info = None
+            frame = terminal_safe_lines(frame)
             stream.write((_CLEAR + frame) if tty else (frame + "\n"))
             stream.flush()
             frames += 1

@@ -23,11 +23,13 @@ from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
 from ._spec import RunSettings
+from .auth import AuthInterceptor, check_exposure
 from .executors import FinderExecutor, ProcessPoolFinderExecutor
 from .ingest import IngestLimits
 from .runs import ManagerOptions, RunManager
 from .scheduler import SurfacePlanner
 from .service import HorizonServicer
+from .tokens import TokenBook, WriterTokens
 
 __all__ = ["SERVICE_NAME", "ServerOptions", "PenumbraServer", "create_server", "BackgroundServer"]
 
@@ -123,6 +125,8 @@ async def create_server(
     executor: FinderExecutor | None = None,
     options: ServerOptions | None = None,
     server_credentials: grpc.ServerCredentials | None = None,
+    token_book: TokenBook | None = None,
+    trusted_network: bool = False,
 ) -> PenumbraServer:
     """Start the worker pool, then build and bind the gRPC server (call ``await server.start()``).
 
@@ -134,11 +138,17 @@ async def create_server(
             by :meth:`PenumbraServer.stop`).
         options: further :class:`ServerOptions` (``options.workers`` is overridden by ``workers``).
         server_credentials: TLS credentials; None listens without TLS.
+        token_book: the configured bearer tokens and their roles (server/auth.py); None or
+            empty: every call is allowed (loopback or a trusted network only).
+        trusted_network: allow listening beyond loopback without TLS and tokens.
 
     Raises:
         OSError: the address could not be bound (gRPC reports that as port 0).
+        ExposureError: a non-loopback address without TLS and tokens, not declared trusted.
     """
     host = _split_address(address)
+    token_book = token_book or TokenBook()
+    check_exposure(host, tls=server_credentials is not None, tokens=bool(token_book), trusted_network=trusted_network)
     options = options or ServerOptions()
     archive_root = Path(archive_root)
     archive_root.mkdir(parents=True, exist_ok=True)
@@ -160,6 +170,7 @@ async def create_server(
             slice_observer_factory=options.slice_observer_factory,
         )
         grpc_server = grpc.aio.server(
+            interceptors=[AuthInterceptor(token_book, WriterTokens(archive_root))],
             options=[
                 # A second server on the same port would silently share it without this.
                 ("grpc.so_reuseport", 0),
@@ -208,8 +219,12 @@ class BackgroundServer:
     """
 
     def __init__(self, address: str = "127.0.0.1:0", *, archive_root: str | Path, workers: int = 2,
-                 options: ServerOptions | None = None, start_timeout_s: float = 60.0) -> None:
+                 options: ServerOptions | None = None, start_timeout_s: float = 60.0,
+                 server_credentials: grpc.ServerCredentials | None = None, token_book: TokenBook | None = None,
+                 trusted_network: bool = False) -> None:
         self._address = address
+        self._security = dict(server_credentials=server_credentials, token_book=token_book,
+                              trusted_network=trusted_network)
         self._archive_root = archive_root
         self._workers = workers
         self._options = options
@@ -255,7 +270,7 @@ class BackgroundServer:
         self._stop_requested = asyncio.Event()
         try:
             self.server = await create_server(self._address, archive_root=self._archive_root, workers=self._workers,
-                                              options=self._options)
+                                              options=self._options, **self._security)
             await self.server.start()
         except BaseException as exc:
             self._error = exc

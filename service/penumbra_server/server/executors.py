@@ -19,6 +19,7 @@ from concurrent.futures.process import BrokenProcessPool
 from typing import Iterator, Protocol, runtime_checkable
 
 from .jobs import SurfaceJob, SurfaceOutcome, run_surface_job, warm_up
+from .lifeline import watch_parent
 
 __all__ = ["FinderExecutor", "ProcessPoolFinderExecutor", "BLAS_THREAD_VARIABLES"]
 
@@ -69,7 +70,7 @@ class ProcessPoolFinderExecutor:
 
     Create with :meth:`start`, which launches every worker and waits until each has imported
     the numerics. A pool broken by a dying worker is replaced; the job that was running
-    returns a REASON_WORKER_FAILED outcome.
+    returns a REASON_WORKER_FAILED outcome. Workers exit by themselves when this process dies.
     """
 
     def __init__(self, workers: int, *, start_method: str = "spawn") -> None:
@@ -92,7 +93,9 @@ class ProcessPoolFinderExecutor:
     async def _launch(self) -> None:
         context = multiprocessing.get_context(self._start_method)
         with _single_threaded_blas_env():
-            pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=context)
+            # Each worker watches this process and exits when it dies (server/lifeline.py).
+            pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=context, initializer=watch_parent,
+                                       initargs=(os.getpid(),))
             # ProcessPoolExecutor starts workers on demand; one slow warm-up task per worker,
             # submitted together, makes it start all of them now.
             futures = [pool.submit(warm_up, 0.2) for _ in range(self.workers)]

@@ -23,6 +23,7 @@ from pathlib import Path
 import numpy as np
 
 from penumbra_server.cli.cross_sections import PLANES, cross_section
+from penumbra_server.cli.safe_text import terminal_safe
 
 from .guidance import guidance_updates
 from .loading import TRACK_SOURCE_HORIZON, TRACK_SOURCE_PUNCTURE, ArchivedRun, found_rows, track_labels, track_points
@@ -90,7 +91,7 @@ def plot_areas_masses(record: ArchivedRun, summary: RunSummary, path: Path) -> P
     axes[0, 0].set_ylabel("area  [M$^2$]")
     axes[1, 0].set_ylabel("irreducible mass  [M]")
     axes[1, 0].set_xlabel("coordinate time  [M]")
-    axes[0, 0].set_title(f"{record.name or record.run_id}: horizon areas and masses")
+    axes[0, 0].set_title(f"{terminal_safe(record.name or record.run_id)}: horizon areas and masses")
     if any(found_rows(record.surfaces[l]).size for l in record.labels):
         axes[0, 0].legend(loc="best", fontsize="small")
     fig.savefig(path)

@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import math
 
+from penumbra_server.cli.safe_text import terminal_safe
+
 from .numbers import RunSummary
 
 __all__ = ["summary_text"]
@@ -25,7 +27,7 @@ def _fmt(value, spec: str = ".6f") -> str:
 def summary_text(summary: RunSummary) -> str:
     """A plain-text account of the run (units: M for lengths, times and masses, M^2 for areas)."""
     lines = [
-        f"run {summary.run_id}  name {summary.name!r}  state {summary.state}",
+        f"run {summary.run_id}  name {terminal_safe(summary.name)!r}  state {summary.state}",
         f"slices: {summary.slices_total} final ({summary.slices_processed} processed, "
         f"{summary.slices_skipped} skipped, {summary.slices_failed} failed)"
         + (f"; time {summary.time_range[0]:.3f} .. {summary.time_range[1]:.3f} M" if summary.time_range else ""),
@@ -57,7 +59,8 @@ def summary_text(summary: RunSummary) -> str:
     lines.append("")
     lines.append("areas and masses: last found value of each surface; M_irr = sqrt(A / 16 pi).")
     lines.extend(_tracking_lines(summary))
-    return "\n".join(lines) + "\n"
+    # The run's display name comes from whoever opened it: nothing in it may drive a terminal.
+    return "\n".join(terminal_safe(line) for line in lines) + "\n"
 
 
 def _vec_text(values, spec: str = "+.3f") -> str:

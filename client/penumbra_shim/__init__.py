@@ -19,8 +19,18 @@ Units: G = c = 1; lengths, times and masses in units of the run's mass scale M. 
 advisory: the evolution decides what to do with them.
 """
 
-from ._client import Client, EventStream, RunHandle, SenderStats, SubmitTicket, connect
+from ._client import (
+    DEFAULT_IDLE_TIMEOUT_S,
+    DEFAULT_OPEN_TIMEOUT_S,
+    Client,
+    EventStream,
+    RunHandle,
+    SenderStats,
+    SubmitTicket,
+    connect,
+)
 from ._errors import PenumbraError, RunNotFoundError, SliceValidationError
+from ._link import DROP_REASONS, ClientGap, DroppedRange, DroppedSlice
 from ._fields import VARIABLE_SETS, optional_fields, required_fields
 from ._slices import DEFAULT_CHUNK_BYTES, OutgoingPatch, OutgoingSlice, PatchData, build_slice, crop_outgoing_slice
 from ._types import (
@@ -48,6 +58,12 @@ from ._types import (
 
 __all__ = [
     "DEFAULT_CHUNK_BYTES",
+    "DEFAULT_IDLE_TIMEOUT_S",
+    "DEFAULT_OPEN_TIMEOUT_S",
+    "DROP_REASONS",
+    "ClientGap",
+    "DroppedRange",
+    "DroppedSlice",
     "EVENT_KINDS",
     "VARIABLE_SETS",
     "BacklogOptions",

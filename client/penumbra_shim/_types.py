@@ -11,6 +11,7 @@ from typing import Sequence
 import numpy as np
 
 from ._fields import check_variable_set
+from ._link import ClientGap
 from ._wire import horizons_pb2 as pb
 
 __all__ = [
@@ -61,7 +62,8 @@ _WARNING_NAMES = {pb.RunWarning.KIND_MISSING_DATA: "missing_data", pb.RunWarning
 
 #: Event kinds the shim names (others arrive as kind "other" with the message in ``raw``).
 EVENT_KINDS = ("surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed",
-               "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning")
+               "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning",
+               "slice_rejected", "client_gap_recorded")
 
 
 def _triple(v: pb.Vector3) -> np.ndarray:
@@ -273,6 +275,8 @@ class SliceAck:
     ``skipped_locally``: dropped from the shim's own queue (keep-newest) before sending.
     ``skipped_iterations``: older slices the server skipped to make room for this one.
     ``cropped``: sent cut to the server's data windows (``bytes_sent`` of ``uncropped_bytes``).
+    ``drop_reason``: for a slice skipped locally, why, in words (see
+    :data:`penumbra_shim.DROP_REASONS`), e.g. "link down: server unreachable".
     """
 
     iteration: int
@@ -285,6 +289,7 @@ class SliceAck:
     attempts: int = 0
     cropped: bool = False
     uncropped_bytes: int = 0
+    drop_reason: str = ""
 
     @classmethod
     def from_wire(cls, response: pb.SendSliceResponse, *, attempts: int, cropped: bool = False,
@@ -415,6 +420,10 @@ class Event:
         windows: for data_windows_wanted.
         For warning: ``state`` is the warning kind ("missing_data", "tracking") and ``reason``
         its text.
+        For slice_rejected: ``iteration`` / ``time`` of the refused slice (time NaN if the header
+        had none finite), ``state`` the status code name (e.g. "INVALID_ARGUMENT"), ``reason``
+        the server's message.
+        gap: for client_gap_recorded, the outage the client recorded (:class:`ClientGap`).
         raw: the wire message (penumbra.v1.RunEvent).
     """
 
@@ -437,6 +446,7 @@ class Event:
     common: "CommonHorizon | None" = None
     guidance: "Guidance | None" = None
     windows: "DataWindows | None" = None
+    gap: ClientGap | None = None
     raw: pb.RunEvent | None = None
 
     @classmethod
@@ -474,6 +484,12 @@ class Event:
             w = e.warning
             return cls(kind=kind, label=w.label, state=_WARNING_NAMES.get(w.kind, str(w.kind)), reason=w.message,
                        **base)
+        if kind == "slice_rejected":
+            r = e.slice_rejected
+            base.update(time=r.time_m, iteration=r.iteration)
+            return cls(kind=kind, state=r.status_code, reason=r.message, **base)
+        if kind == "client_gap_recorded":
+            return cls(kind=kind, gap=ClientGap.from_event(e.client_gap_recorded, event_seq=e.seq), **base)
         return cls(kind="other", **base)
 
 

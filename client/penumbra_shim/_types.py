@@ -238,6 +238,8 @@ class RunInfo:
 
     ``last_received_iteration`` / ``last_received_time`` (M): the newest slice the server accepted
     (-1 / NaN before the first): a watcher's lag is that time minus a surface's time.
+    ``client_gaps_recorded``: outages of the client's link recorded on the run;
+    ``slices_rejected``: slices refused after their header named the run.
     """
 
     run_id: str
@@ -254,6 +256,8 @@ class RunInfo:
     archive_path: str
     last_received_iteration: int = -1
     last_received_time: float = _NAN
+    client_gaps_recorded: int = 0
+    slices_rejected: int = 0
 
     @classmethod
     def from_wire(cls, run: pb.Run) -> "RunInfo":
@@ -264,6 +268,7 @@ class RunInfo:
             slices_processed=run.slices_processed, slices_skipped=run.slices_skipped,
             slices_duplicate=run.slices_duplicate, last_seq=run.last_event_seq, archive_path=run.archive_path,
             last_received_iteration=run.last_received_iteration, last_received_time=run.last_received_time_m,
+            client_gaps_recorded=run.client_gaps_recorded, slices_rejected=run.slices_rejected,
         )
 
 

@@ -57,6 +57,16 @@ class RunProgress:
             self.warnings.append(f"warning at iteration {getattr(event, 'iteration', -1)} "
                                  f"({getattr(event, 'label', '')}): {str(getattr(event, 'reason', ''))[:160]}")
             del self.warnings[:-3]
+        elif kind == "slice_rejected":
+            self.warnings.append(f"slice refused at iteration {getattr(event, 'iteration', -1)} "
+                                 f"({getattr(event, 'state', '')}): {str(getattr(event, 'reason', ''))[:160]}")
+            del self.warnings[:-3]
+        elif kind == "client_gap_recorded" and getattr(event, "gap", None) is not None:
+            gap = event.gap
+            spans = ", ".join(f"{r.iteration_first}-{r.iteration_last} ({r.count}, {r.reason})" for r in gap.ranges)
+            self.warnings.append(f"client link down {gap.end_unix_s - gap.start_unix_s:.1f} s, "
+                                 f"{gap.slices_dropped} slices dropped: {spans or 'none'}")
+            del self.warnings[:-3]
         if kind in ("slice_processed", "slice_skipped"):
             it = int(getattr(event, "iteration", -1))
             if it > self.newest_iteration and kind == "slice_processed":

@@ -15,6 +15,12 @@ Depends on grpcio, protobuf and numpy only. Typical use from an evolution code::
     guidance = run.latest_guidance()      # ... and where the finest levels should sit (advisory)
     run.close()
 
+The link never stalls the evolution: ``open_run`` waits at most ``open_timeout_s`` (5 s by
+default) and otherwise returns a *pending* handle that opens the run in the background;
+``submit`` never waits on the network. Slices dropped while the server is unreachable are
+counted with their reason (``run.dropped_by_reason``) and, once the link is back, recorded on
+the server as a gap of the run (``run.gaps``; the event ``client_gap_recorded``).
+
 Units: G = c = 1; lengths, times and masses in units of the run's mass scale M. Results are
 advisory: the evolution decides what to do with them.
 """

@@ -34,7 +34,7 @@ from typing import Iterator
 import grpc
 
 from ._errors import PenumbraError, error_from_rpc
-from ._link import DROP_REASONS, ClientGap, DroppedSlice, LinkLedger
+from ._link import ClientGap, DroppedSlice, LinkLedger
 from ._slices import DEFAULT_CHUNK_BYTES, OutgoingSlice, build_slice, crop_outgoing_slice
 from ._types import DataWindows, Event, Guidance, RunInfo, RunSpec, SliceAck, SurfaceState
 from ._wire import horizons_pb2 as pb

@@ -716,9 +716,10 @@ class RunManager:
                 writer = await loop.run_in_executor(self.archive_thread, ArchiveWriter.open_existing, summary.path)
                 attrs = writer.attrs
                 settings = RunSettings.from_dict(attrs["run_spec"])
+                # Read before the run is registered: no slice may reach it half restored.
+                rows = await loop.run_in_executor(self.archive_thread, RunRecord.read_archive, summary.path)
                 run = self._make_record(summary.run_id, settings, writer, float(attrs["created_unix_s"]),
                                         next_seq=int(attrs.get("next_event_seq", 1)))
-                rows = await loop.run_in_executor(self.archive_thread, RunRecord.read_archive, summary.path)
                 run.restore_from_archive(*rows)
                 if attrs.get("open_request_id"):
                     self._request_ids[str(attrs["open_request_id"])] = summary.run_id

@@ -19,6 +19,7 @@ import pytest
 
 import penumbra_shim as ps
 from penumbra_shim._wire import horizons_pb2 as pb
+from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 from penumbra_server.archive import open_archive
 from penumbra_server.server import BackgroundServer, ServerOptions
 
@@ -130,14 +131,22 @@ def test_a_run_opened_before_its_server_exists_records_both_outages(tmp_path):
         _wait_for(lambda: not run.link_up, "the sender noticing the outage")
         tickets = {i: run.submit(lone_hole_slice(i)) for i in (8, 9, 10, 11)}
         # Keep newest: 8 and 9 give way to 10 and 11; 7, retried while newer slices wait, too.
+        # (Whichever of 7 or 8 the sender holds when its attempt fails, the same three go.)
         for i in (8, 9):
-            assert tickets[i].result(0).drop_reason == LINK_DOWN
+            assert tickets[i].result(120).drop_reason == LINK_DOWN
         assert _wait_for(lambda: ticket_7.done(), "slice 7 given up", timeout_s=120)
         assert ticket_7.result(0).skipped_locally and ticket_7.result(0).drop_reason == LINK_DOWN
         assert not tickets[11].done()
 
         servers.append(BackgroundServer(address, archive_root=tmp_path, workers=1, options=options).start())
         assert tickets[10].result(120).accepted and tickets[11].result(120).accepted
+        # A late retry of the handle's OpenRun, after the restart, still finds the same run.
+        channel = grpc.insecure_channel(address)
+        try:
+            retried = pb_grpc.HorizonServiceStub(channel).OpenRun(run._open_request, timeout=60)
+        finally:
+            channel.close()
+        assert retried.run.run_id == run.run_id
         _wait_for(lambda: len(run.gaps) == 2, "the second outage recorded on the server")
         second_gap = run.gaps[1]
         assert _same_ranges(second_gap.ranges, [_link_down_range(7, 9, 3)]) and second_gap.gap_index == 1

@@ -313,7 +313,7 @@ def watch_run(client, run_id: str, *, once: bool = False, interval_s: float = 1.
         stream.flush()
         return 0
 
-    events = client.watch(run_id, from_seq=progress.last_seq + 1)
+    events = client.watch(run_id, from_seq=progress.last_seq + 1, idle_timeout_s=None)  # quiet runs too
 
     def follow() -> None:
         try:

@@ -641,7 +641,8 @@ class RunHandle:
         """Count a slice the server will never receive, with its reason, and resolve its ticket."""
         drop = self._ledger.drop(pending.slice_.iteration, pending.slice_.time, pending.order, reason,
                                  link_pending=self._state == "pending")
-        self.stats.dropped_locally += 1
+        with self._cond:
+            self.stats.dropped_locally += 1
         pending.ticket._resolve(SliceAck(iteration=pending.slice_.iteration, accepted=False, skipped_locally=True,
                                          attempts=attempts, drop_reason=drop.reason_text))
 

@@ -15,12 +15,27 @@ Depends on grpcio, protobuf and numpy only. Typical use from an evolution code::
     guidance = run.latest_guidance()      # ... and where the finest levels should sit (advisory)
     run.close()
 
+The link never stalls the evolution: ``open_run`` waits at most ``open_timeout_s`` (5 s by
+default) and otherwise returns a *pending* handle that opens the run in the background;
+``submit`` never waits on the network. Slices dropped while the server is unreachable are
+counted with their reason (``run.dropped_by_reason``) and, once the link is back, recorded on
+the server as a gap of the run (``run.gaps``; the event ``client_gap_recorded``).
+
 Units: G = c = 1; lengths, times and masses in units of the run's mass scale M. Results are
 advisory: the evolution decides what to do with them.
 """
 
 from ._auth import channel_credentials
-from ._client import Client, EventStream, RunHandle, SenderStats, SubmitTicket, connect
+from ._client import (
+    DEFAULT_IDLE_TIMEOUT_S,
+    DEFAULT_OPEN_TIMEOUT_S,
+    Client,
+    EventStream,
+    RunHandle,
+    SenderStats,
+    SubmitTicket,
+    connect,
+)
 from ._errors import (
     CropError,
     InvalidArgumentError,
@@ -31,6 +46,7 @@ from ._errors import (
     UnknownWireValueError,
 )
 from ._excision import EXCISION_MASK_FIELD, ExcisedSphere
+from ._link import DROP_REASONS, ClientGap, DroppedRange, DroppedSlice
 from ._fields import VARIABLE_SETS, optional_fields, required_fields
 from ._slices import DEFAULT_CHUNK_BYTES, OutgoingPatch, OutgoingSlice, PatchData, build_slice, crop_outgoing_slice
 from ._types import (
@@ -58,6 +74,12 @@ from ._types import (
 
 __all__ = [
     "DEFAULT_CHUNK_BYTES",
+    "DEFAULT_IDLE_TIMEOUT_S",
+    "DEFAULT_OPEN_TIMEOUT_S",
+    "DROP_REASONS",
+    "ClientGap",
+    "DroppedRange",
+    "DroppedSlice",
     "EVENT_KINDS",
     "EXCISION_MASK_FIELD",
     "VARIABLE_SETS",

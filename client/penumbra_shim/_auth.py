@@ -74,19 +74,34 @@ class _StubWithTokens:
     def __getattr__(self, name: str):
         method = getattr(self._stub, name)
         tokens = self._tokens
-        if name in self._streaming:
-            def call(request_iterator, *args, metadata=None, **kwargs):
-                # The first message (a slice header) names the run: peek at it, then send it first.
-                request_iterator = iter(request_iterator)
-                first = next(request_iterator, None)
-                requests = request_iterator if first is None else itertools.chain((first,), request_iterator)
-                extra = tokens.metadata_for("" if first is None else _run_id_of(first))
-                return method(requests, *args, metadata=tuple(metadata or ()) + extra, **kwargs)
-        else:
-            def call(request, *args, metadata=None, **kwargs):
-                extra = tokens.metadata_for(_run_id_of(request))
-                return method(request, *args, metadata=tuple(metadata or ()) + extra, **kwargs)
+        if name not in self._streaming:
+            return _UnaryWithTokens(method, tokens)
+
+        def call(request_iterator, *args, metadata=None, **kwargs):
+            # The first message (a slice header) names the run: peek at it, then send it first.
+            request_iterator = iter(request_iterator)
+            first = next(request_iterator, None)
+            requests = request_iterator if first is None else itertools.chain((first,), request_iterator)
+            extra = tokens.metadata_for("" if first is None else _run_id_of(first))
+            return method(requests, *args, metadata=tuple(metadata or ()) + extra, **kwargs)
         return call
+
+
+class _UnaryWithTokens:
+    """A unary stub method adding the token, both as a call and as ``.future(...)``."""
+
+    def __init__(self, method, tokens: BearerTokens) -> None:
+        self._method = method
+        self._tokens = tokens
+
+    def _metadata(self, request, metadata):
+        return tuple(metadata or ()) + self._tokens.metadata_for(_run_id_of(request))
+
+    def __call__(self, request, *args, metadata=None, **kwargs):
+        return self._method(request, *args, metadata=self._metadata(request, metadata), **kwargs)
+
+    def future(self, request, *args, metadata=None, **kwargs):
+        return self._method.future(request, *args, metadata=self._metadata(request, metadata), **kwargs)
 
 
 def _pem(value, what: str) -> bytes:

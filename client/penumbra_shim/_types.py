@@ -12,6 +12,7 @@ import numpy as np
 
 from ._excision import ExcisedSphere
 from ._fields import VARIABLE_SET_WIRE, check_variable_set, variable_set_from_wire
+from ._link import ClientGap
 from ._wire import horizons_pb2 as pb
 
 __all__ = [
@@ -59,7 +60,7 @@ _DISPOSITION_NAMES = {pb.SlicePartsMissing.DISPOSITION_PROCESSED: "processed",
 #: Event kinds the shim names (others arrive as kind "other" with the message in ``raw``).
 EVENT_KINDS = ("surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed",
                "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning",
-               "slice_parts_missing")
+               "slice_parts_missing", "slice_rejected", "client_gap_recorded")
 
 
 def _triple(v: pb.Vector3) -> np.ndarray:
@@ -271,6 +272,8 @@ class RunInfo:
     ``last_received_iteration`` / ``last_received_time`` (M): the newest slice the server accepted
     (-1 / NaN before the first): a watcher's lag is that time minus a surface's time.
     ``slices_incomplete``: slices sent in parts that were processed with parts missing.
+    ``client_gaps_recorded``: outages of the client's link recorded on the run;
+    ``slices_rejected``: slices refused after their header named the run.
     """
 
     run_id: str
@@ -288,6 +291,8 @@ class RunInfo:
     last_received_iteration: int = -1
     last_received_time: float = _NAN
     slices_incomplete: int = 0
+    client_gaps_recorded: int = 0
+    slices_rejected: int = 0
 
     @classmethod
     def from_wire(cls, run: pb.Run) -> "RunInfo":
@@ -299,6 +304,7 @@ class RunInfo:
             slices_duplicate=run.slices_duplicate, last_seq=run.last_event_seq, archive_path=run.archive_path,
             last_received_iteration=run.last_received_iteration, last_received_time=run.last_received_time_m,
             slices_incomplete=run.slices_incomplete,
+            client_gaps_recorded=run.client_gaps_recorded, slices_rejected=run.slices_rejected,
         )
 
 
@@ -315,6 +321,8 @@ class SliceAck:
     stored; ``waiting_for_parts`` that the slice still waits for other parts (else this part
     completed it and it was queued); ``parts_received`` counts the parts the server holds.
     ``duplicate``: the server held this part already.
+    ``drop_reason``: for a slice skipped locally, why, in words (see
+    :data:`penumbra_shim.DROP_REASONS`), e.g. "link down: server unreachable".
     """
 
     iteration: int
@@ -331,6 +339,7 @@ class SliceAck:
     waiting_for_parts: bool = False
     parts_received: int = 1
     parts_expected: int = 1
+    drop_reason: str = ""
 
     @classmethod
     def from_wire(cls, response: pb.SendSliceResponse, *, attempts: int, cropped: bool = False,
@@ -468,6 +477,10 @@ class Event:
         its text.
         For slice_parts_missing: ``missing_parts`` (indices), ``parts_expected``, ``state``
         ("processed" with what arrived, or "given_up") and ``reason`` (the server's text).
+        For slice_rejected: ``iteration`` / ``time`` of the refused slice (time NaN if the header
+        had none finite), ``state`` the status code name (e.g. "INVALID_ARGUMENT"), ``reason``
+        the server's message.
+        gap: for client_gap_recorded, the outage the client recorded (:class:`ClientGap`).
         raw: the wire message (penumbra.v1.RunEvent).
     """
 
@@ -492,6 +505,7 @@ class Event:
     windows: "DataWindows | None" = None
     missing_parts: tuple[int, ...] = ()
     parts_expected: int = 0
+    gap: ClientGap | None = None
     raw: pb.RunEvent | None = None
 
     @classmethod
@@ -533,6 +547,12 @@ class Event:
             m = e.slice_parts_missing
             return cls(kind=kind, missing_parts=tuple(m.missing_part_indices), parts_expected=m.parts_expected,
                        state=_DISPOSITION_NAMES.get(m.disposition, str(m.disposition)), reason=m.message, **base)
+        if kind == "slice_rejected":
+            r = e.slice_rejected
+            base.update(time=r.time_m, iteration=r.iteration)
+            return cls(kind=kind, state=r.status_code, reason=r.message, **base)
+        if kind == "client_gap_recorded":
+            return cls(kind=kind, gap=ClientGap.from_event(e.client_gap_recorded, event_seq=e.seq), **base)
         return cls(kind="other", **base)
 
 

@@ -15,11 +15,24 @@ class VariableSet(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     VARIABLE_SET_CONFORMAL_CHI: _ClassVar[VariableSet]
     VARIABLE_SET_CONFORMAL_W: _ClassVar[VariableSet]
     VARIABLE_SET_CONFORMAL_PHI: _ClassVar[VariableSet]
+
+class ClientDropReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    CLIENT_DROP_REASON_UNSPECIFIED: _ClassVar[ClientDropReason]
+    CLIENT_DROP_REASON_LINK_DOWN: _ClassVar[ClientDropReason]
+    CLIENT_DROP_REASON_QUEUE_FULL: _ClassVar[ClientDropReason]
+    CLIENT_DROP_REASON_RETRY_TIME_EXCEEDED: _ClassVar[ClientDropReason]
+    CLIENT_DROP_REASON_HANDLE_CLOSED: _ClassVar[ClientDropReason]
 VARIABLE_SET_UNSPECIFIED: VariableSet
 VARIABLE_SET_ADM: VariableSet
 VARIABLE_SET_CONFORMAL_CHI: VariableSet
 VARIABLE_SET_CONFORMAL_W: VariableSet
 VARIABLE_SET_CONFORMAL_PHI: VariableSet
+CLIENT_DROP_REASON_UNSPECIFIED: ClientDropReason
+CLIENT_DROP_REASON_LINK_DOWN: ClientDropReason
+CLIENT_DROP_REASON_QUEUE_FULL: ClientDropReason
+CLIENT_DROP_REASON_RETRY_TIME_EXCEEDED: ClientDropReason
+CLIENT_DROP_REASON_HANDLE_CLOSED: ClientDropReason
 
 class Vector3(_message.Message):
     __slots__ = ("x", "y", "z")
@@ -136,7 +149,7 @@ class RefinementPolicy(_message.Message):
     def __init__(self, points_across_horizon: _Optional[float] = ..., nesting_depth: _Optional[int] = ..., level_ratio: _Optional[float] = ..., finest_radius_factor: _Optional[float] = ..., steering_interval_m: _Optional[float] = ..., guard_points: _Optional[int] = ...) -> None: ...
 
 class Run(_message.Message):
-    __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m", "slices_incomplete")
+    __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m", "slices_incomplete", "client_gaps_recorded", "slices_rejected")
     class State(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         STATE_UNSPECIFIED: _ClassVar[Run.State]
@@ -159,6 +172,8 @@ class Run(_message.Message):
     LAST_RECEIVED_ITERATION_FIELD_NUMBER: _ClassVar[int]
     LAST_RECEIVED_TIME_M_FIELD_NUMBER: _ClassVar[int]
     SLICES_INCOMPLETE_FIELD_NUMBER: _ClassVar[int]
+    CLIENT_GAPS_RECORDED_FIELD_NUMBER: _ClassVar[int]
+    SLICES_REJECTED_FIELD_NUMBER: _ClassVar[int]
     run_id: str
     spec: RunSpec
     state: Run.State
@@ -173,7 +188,9 @@ class Run(_message.Message):
     last_received_iteration: int
     last_received_time_m: float
     slices_incomplete: int
-    def __init__(self, run_id: _Optional[str] = ..., spec: _Optional[_Union[RunSpec, _Mapping]] = ..., state: _Optional[_Union[Run.State, str]] = ..., create_time_unix_s: _Optional[float] = ..., close_time_unix_s: _Optional[float] = ..., slices_received: _Optional[int] = ..., slices_processed: _Optional[int] = ..., slices_skipped: _Optional[int] = ..., slices_duplicate: _Optional[int] = ..., last_event_seq: _Optional[int] = ..., archive_path: _Optional[str] = ..., last_received_iteration: _Optional[int] = ..., last_received_time_m: _Optional[float] = ..., slices_incomplete: _Optional[int] = ...) -> None: ...
+    client_gaps_recorded: int
+    slices_rejected: int
+    def __init__(self, run_id: _Optional[str] = ..., spec: _Optional[_Union[RunSpec, _Mapping]] = ..., state: _Optional[_Union[Run.State, str]] = ..., create_time_unix_s: _Optional[float] = ..., close_time_unix_s: _Optional[float] = ..., slices_received: _Optional[int] = ..., slices_processed: _Optional[int] = ..., slices_skipped: _Optional[int] = ..., slices_duplicate: _Optional[int] = ..., last_event_seq: _Optional[int] = ..., archive_path: _Optional[str] = ..., last_received_iteration: _Optional[int] = ..., last_received_time_m: _Optional[float] = ..., slices_incomplete: _Optional[int] = ..., client_gaps_recorded: _Optional[int] = ..., slices_rejected: _Optional[int] = ...) -> None: ...
 
 class OpenRunRequest(_message.Message):
     __slots__ = ("spec", "request_id")
@@ -510,7 +527,7 @@ class RunStateChanged(_message.Message):
     def __init__(self, state: _Optional[_Union[Run.State, str]] = ..., reason: _Optional[str] = ...) -> None: ...
 
 class RunEvent(_message.Message):
-    __slots__ = ("seq", "run_id", "emit_time_unix_s", "time_m", "iteration", "surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed", "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning", "slice_parts_missing")
+    __slots__ = ("seq", "run_id", "emit_time_unix_s", "time_m", "iteration", "surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed", "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning", "slice_parts_missing", "slice_rejected", "client_gap_recorded")
     SEQ_FIELD_NUMBER: _ClassVar[int]
     RUN_ID_FIELD_NUMBER: _ClassVar[int]
     EMIT_TIME_UNIX_S_FIELD_NUMBER: _ClassVar[int]
@@ -527,6 +544,8 @@ class RunEvent(_message.Message):
     DATA_WINDOWS_WANTED_FIELD_NUMBER: _ClassVar[int]
     WARNING_FIELD_NUMBER: _ClassVar[int]
     SLICE_PARTS_MISSING_FIELD_NUMBER: _ClassVar[int]
+    SLICE_REJECTED_FIELD_NUMBER: _ClassVar[int]
+    CLIENT_GAP_RECORDED_FIELD_NUMBER: _ClassVar[int]
     seq: int
     run_id: str
     emit_time_unix_s: float
@@ -543,7 +562,9 @@ class RunEvent(_message.Message):
     data_windows_wanted: DataWindowsWanted
     warning: RunWarning
     slice_parts_missing: SlicePartsMissing
-    def __init__(self, seq: _Optional[int] = ..., run_id: _Optional[str] = ..., emit_time_unix_s: _Optional[float] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., surface_found: _Optional[_Union[SurfaceFound, _Mapping]] = ..., surface_not_found: _Optional[_Union[SurfaceNotFound, _Mapping]] = ..., slice_skipped: _Optional[_Union[SliceSkipped, _Mapping]] = ..., run_state_changed: _Optional[_Union[RunStateChanged, _Mapping]] = ..., slice_processed: _Optional[_Union[SliceProcessed, _Mapping]] = ..., track_updated: _Optional[_Union[TrackUpdated, _Mapping]] = ..., common_horizon_formed: _Optional[_Union[CommonHorizonFormed, _Mapping]] = ..., refinement_guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., data_windows_wanted: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., warning: _Optional[_Union[RunWarning, _Mapping]] = ..., slice_parts_missing: _Optional[_Union[SlicePartsMissing, _Mapping]] = ...) -> None: ...
+    slice_rejected: SliceRejected
+    client_gap_recorded: ClientGapRecorded
+    def __init__(self, seq: _Optional[int] = ..., run_id: _Optional[str] = ..., emit_time_unix_s: _Optional[float] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., surface_found: _Optional[_Union[SurfaceFound, _Mapping]] = ..., surface_not_found: _Optional[_Union[SurfaceNotFound, _Mapping]] = ..., slice_skipped: _Optional[_Union[SliceSkipped, _Mapping]] = ..., run_state_changed: _Optional[_Union[RunStateChanged, _Mapping]] = ..., slice_processed: _Optional[_Union[SliceProcessed, _Mapping]] = ..., track_updated: _Optional[_Union[TrackUpdated, _Mapping]] = ..., common_horizon_formed: _Optional[_Union[CommonHorizonFormed, _Mapping]] = ..., refinement_guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., data_windows_wanted: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., warning: _Optional[_Union[RunWarning, _Mapping]] = ..., slice_parts_missing: _Optional[_Union[SlicePartsMissing, _Mapping]] = ..., slice_rejected: _Optional[_Union[SliceRejected, _Mapping]] = ..., client_gap_recorded: _Optional[_Union[ClientGapRecorded, _Mapping]] = ...) -> None: ...
 
 class TrackPoint(_message.Message):
     __slots__ = ("time_m", "iteration", "position_m", "source", "uncertainty_m")
@@ -827,3 +848,73 @@ class GetLatestGuidanceResponse(_message.Message):
     windows: DataWindowsWanted
     last_event_seq: int
     def __init__(self, guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., windows: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., last_event_seq: _Optional[int] = ...) -> None: ...
+
+class SliceRejected(_message.Message):
+    __slots__ = ("iteration", "time_m", "status_code", "message")
+    ITERATION_FIELD_NUMBER: _ClassVar[int]
+    TIME_M_FIELD_NUMBER: _ClassVar[int]
+    STATUS_CODE_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    iteration: int
+    time_m: float
+    status_code: str
+    message: str
+    def __init__(self, iteration: _Optional[int] = ..., time_m: _Optional[float] = ..., status_code: _Optional[str] = ..., message: _Optional[str] = ...) -> None: ...
+
+class DroppedRange(_message.Message):
+    __slots__ = ("iteration_first", "iteration_last", "count", "reason", "time_first_m", "time_last_m")
+    ITERATION_FIRST_FIELD_NUMBER: _ClassVar[int]
+    ITERATION_LAST_FIELD_NUMBER: _ClassVar[int]
+    COUNT_FIELD_NUMBER: _ClassVar[int]
+    REASON_FIELD_NUMBER: _ClassVar[int]
+    TIME_FIRST_M_FIELD_NUMBER: _ClassVar[int]
+    TIME_LAST_M_FIELD_NUMBER: _ClassVar[int]
+    iteration_first: int
+    iteration_last: int
+    count: int
+    reason: ClientDropReason
+    time_first_m: float
+    time_last_m: float
+    def __init__(self, iteration_first: _Optional[int] = ..., iteration_last: _Optional[int] = ..., count: _Optional[int] = ..., reason: _Optional[_Union[ClientDropReason, str]] = ..., time_first_m: _Optional[float] = ..., time_last_m: _Optional[float] = ...) -> None: ...
+
+class RecordClientGapRequest(_message.Message):
+    __slots__ = ("run_id", "gap_id", "start_unix_s", "end_unix_s", "ranges", "cause")
+    RUN_ID_FIELD_NUMBER: _ClassVar[int]
+    GAP_ID_FIELD_NUMBER: _ClassVar[int]
+    START_UNIX_S_FIELD_NUMBER: _ClassVar[int]
+    END_UNIX_S_FIELD_NUMBER: _ClassVar[int]
+    RANGES_FIELD_NUMBER: _ClassVar[int]
+    CAUSE_FIELD_NUMBER: _ClassVar[int]
+    run_id: str
+    gap_id: str
+    start_unix_s: float
+    end_unix_s: float
+    ranges: _containers.RepeatedCompositeFieldContainer[DroppedRange]
+    cause: str
+    def __init__(self, run_id: _Optional[str] = ..., gap_id: _Optional[str] = ..., start_unix_s: _Optional[float] = ..., end_unix_s: _Optional[float] = ..., ranges: _Optional[_Iterable[_Union[DroppedRange, _Mapping]]] = ..., cause: _Optional[str] = ...) -> None: ...
+
+class RecordClientGapResponse(_message.Message):
+    __slots__ = ("event_seq", "gap_index", "duplicate")
+    EVENT_SEQ_FIELD_NUMBER: _ClassVar[int]
+    GAP_INDEX_FIELD_NUMBER: _ClassVar[int]
+    DUPLICATE_FIELD_NUMBER: _ClassVar[int]
+    event_seq: int
+    gap_index: int
+    duplicate: bool
+    def __init__(self, event_seq: _Optional[int] = ..., gap_index: _Optional[int] = ..., duplicate: _Optional[bool] = ...) -> None: ...
+
+class ClientGapRecorded(_message.Message):
+    __slots__ = ("gap_index", "start_unix_s", "end_unix_s", "ranges", "slices_dropped", "cause")
+    GAP_INDEX_FIELD_NUMBER: _ClassVar[int]
+    START_UNIX_S_FIELD_NUMBER: _ClassVar[int]
+    END_UNIX_S_FIELD_NUMBER: _ClassVar[int]
+    RANGES_FIELD_NUMBER: _ClassVar[int]
+    SLICES_DROPPED_FIELD_NUMBER: _ClassVar[int]
+    CAUSE_FIELD_NUMBER: _ClassVar[int]
+    gap_index: int
+    start_unix_s: float
+    end_unix_s: float
+    ranges: _containers.RepeatedCompositeFieldContainer[DroppedRange]
+    slices_dropped: int
+    cause: str
+    def __init__(self, gap_index: _Optional[int] = ..., start_unix_s: _Optional[float] = ..., end_unix_s: _Optional[float] = ..., ranges: _Optional[_Iterable[_Union[DroppedRange, _Mapping]]] = ..., slices_dropped: _Optional[int] = ..., cause: _Optional[str] = ...) -> None: ...

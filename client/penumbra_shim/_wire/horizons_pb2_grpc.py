@@ -76,6 +76,11 @@ class HorizonServiceStub:
                 request_serializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceRequest.SerializeToString,
                 response_deserializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceResponse.FromString,
                 _registered_method=True)
+        self.RecordClientGap = channel.unary_unary(
+                '/penumbra.v1.HorizonService/RecordClientGap',
+                request_serializer=penumbra_dot_v1_dot_horizons__pb2.RecordClientGapRequest.SerializeToString,
+                response_deserializer=penumbra_dot_v1_dot_horizons__pb2.RecordClientGapResponse.FromString,
+                _registered_method=True)
 
 
 class HorizonServiceServicer:
@@ -177,6 +182,23 @@ class HorizonServiceServicer:
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
+    def RecordClientGap(self, request, context):
+        """Records an outage of the link from the client to a run: the client's wall-clock period
+        during which it could not deliver slices (the server unreachable, the run not yet open)
+        and the slices it dropped meanwhile, so that a reader of the run sees an outage, not a
+        silent hole. The gap is archived (`client_gaps/`) and announced as a ClientGapRecorded
+        event. Retrying with the same `gap_id` returns the gap the first call stored (safe to
+        retry). Status codes:
+        NOT_FOUND            unknown run_id.
+        FAILED_PRECONDITION  the run is closed.
+        INVALID_ARGUMENT     gap_id longer than 64 characters, times not finite or end before
+        start, a range with iteration_last < iteration_first, a count
+        < 1, or an unspecified reason (the message names the field).
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
 
 def add_HorizonServiceServicer_to_server(servicer, server):
     rpc_method_handlers = {
@@ -219,6 +241,11 @@ def add_HorizonServiceServicer_to_server(servicer, server):
                     servicer.GetLatestGuidance,
                     request_deserializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceRequest.FromString,
                     response_serializer=penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceResponse.SerializeToString,
+            ),
+            'RecordClientGap': grpc.unary_unary_rpc_method_handler(
+                    servicer.RecordClientGap,
+                    request_deserializer=penumbra_dot_v1_dot_horizons__pb2.RecordClientGapRequest.FromString,
+                    response_serializer=penumbra_dot_v1_dot_horizons__pb2.RecordClientGapResponse.SerializeToString,
             ),
     }
     generic_handler = grpc.method_handlers_generic_handler(
@@ -438,6 +465,33 @@ class HorizonService:
             '/penumbra.v1.HorizonService/GetLatestGuidance',
             penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceRequest.SerializeToString,
             penumbra_dot_v1_dot_horizons__pb2.GetLatestGuidanceResponse.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def RecordClientGap(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/penumbra.v1.HorizonService/RecordClientGap',
+            penumbra_dot_v1_dot_horizons__pb2.RecordClientGapRequest.SerializeToString,
+            penumbra_dot_v1_dot_horizons__pb2.RecordClientGapResponse.FromString,
             options,
             channel_credentials,
             insecure,

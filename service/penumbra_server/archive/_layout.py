@@ -13,8 +13,10 @@ One zarr v3 group per run at ``<archive_root>/<run_id>.zarr``::
         guidance/regions/      one row per merged region per level of a guidance; "region"
         windows/               one row per data window wanted; "window"
         events/                one row per tracking/guidance event, with its wire form; "event"
+        client_gaps/           one row per range of slices the client dropped during an outage
+                               of its link (a gap without drops: one row, count 0); "range"
 
-The tracking groups are created by the first commit that writes to them.
+The tracking groups and ``client_gaps/`` are created by the first commit that writes to them.
 
 Every array grows along axis 0 and sets ``dimension_names`` so that ``xarray.open_zarr``
 opens each group. Rows become visible to readers only when the root attribute
@@ -52,6 +54,8 @@ __all__ = [
     "GUIDANCE_REGIONS_GROUP",
     "WINDOWS_GROUP",
     "EVENTS_GROUP",
+    "CLIENT_GAPS_GROUP",
+    "CLIENT_DROP_REASONS",
     "group_columns",
 ]
 
@@ -300,7 +304,7 @@ WINDOW_COLUMNS: tuple[Column, ...] = (
 EVENT_COLUMNS: tuple[Column, ...] = (
     Column("seq", "int64", description="sequence number of the event"),
     Column("kind", "str", description="track_updated, common_horizon_formed, refinement_guidance, "
-                                      "data_windows_wanted or warning"),
+                                      "data_windows_wanted, warning, slice_rejected or client_gap_recorded"),
     Column("iteration", "int64"),
     Column("time", "float64", unit="M"),
     Column("label", "str", description="surface or body concerned ('' for guidance and windows)"),
@@ -309,17 +313,43 @@ EVENT_COLUMNS: tuple[Column, ...] = (
     Column("archived_unix_s", "float64", unit="s"),
 )
 
+# -- outages of the client's link --------------------------------------------------------------
+
+CLIENT_GAPS_GROUP = "client_gaps"
+#: ``client_gaps/reason`` values (the wire's ClientDropReason numbers); 0: a gap without drops.
+CLIENT_DROP_REASONS: dict[str, int] = {"": 0, "link_down": 1, "queue_full": 2, "retry_time_exceeded": 3,
+                                       "handle_closed": 4}
+
+CLIENT_GAP_COLUMNS: tuple[Column, ...] = (
+    Column("gap_index", "int64", description="index of the gap in the run's gaps, from 0 (rows of one gap share it)"),
+    Column("gap_id", "str", description="the client's token of the gap ('' if none)"),
+    Column("iteration_first", "int64", description="iteration of the first dropped slice of the range"),
+    Column("iteration_last", "int64", description="iteration of the last dropped slice of the range"),
+    Column("count", "int64", description="slices dropped in the range; 0 for a gap without drops"),
+    Column("reason", "int8", description="1 link down, 2 queue full, 3 retry time exceeded, 4 handle closed "
+                                         "(CLIENT_DROP_REASONS); 0 for a gap without drops"),
+    Column("time_first", "float64", unit="M", description="coordinate time of the first dropped slice"),
+    Column("time_last", "float64", unit="M", description="coordinate time of the last dropped slice"),
+    Column("start_unix_s", "float64", unit="s", description="client wall clock when the link went down"),
+    Column("end_unix_s", "float64", unit="s", description="client wall clock when the link came back"),
+    Column("cause", "str", description="the last error the client saw during the outage"),
+    Column("archived_unix_s", "float64", unit="s", description="server wall clock of the commit"),
+    Column("event_seq", "int64", description="seq of the client_gap_recorded event"),
+)
+
 _FIXED_GROUPS: dict[str, tuple[tuple[Column, ...], str]] = {
     GUIDANCE_UPDATES_GROUP: (GUIDANCE_UPDATE_COLUMNS, "update"),
     GUIDANCE_BODIES_GROUP: (GUIDANCE_BODY_COLUMNS, "entry"),
     GUIDANCE_REGIONS_GROUP: (GUIDANCE_REGION_COLUMNS, "region"),
     WINDOWS_GROUP: (WINDOW_COLUMNS, "window"),
     EVENTS_GROUP: (EVENT_COLUMNS, "event"),
+    CLIENT_GAPS_GROUP: (CLIENT_GAP_COLUMNS, "range"),
 }
 
 
 def group_columns(group_path: str) -> tuple[tuple[Column, ...], str]:
-    """(columns, row dimension) of a tracking group path, e.g. ``tracks/A`` or ``windows``.
+    """(columns, row dimension) of a tracking group path, e.g. ``tracks/A``, ``windows`` or
+    ``client_gaps``.
 
     Raises KeyError for a path that is not a tracking group.
     """

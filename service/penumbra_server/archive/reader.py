@@ -183,6 +183,36 @@ class ArchiveView:
         message, wire, archived_unix_s); warnings and "common horizon formed" live only here."""
         return self.group(layout.EVENTS_GROUP)
 
+    def client_gaps(self) -> dict[str, np.ndarray]:
+        """``client_gaps``: one row per range of slices the client dropped while its link was
+        down (gap_index, gap_id, iteration_first, iteration_last, count, reason code, time_first,
+        time_last (M), start_unix_s, end_unix_s (client wall clock), cause, archived_unix_s,
+        event_seq). Rows of one outage share ``gap_index``; an outage without drops is one row
+        with count 0. Empty columns when the client never recorded a gap."""
+        return self.group(layout.CLIENT_GAPS_GROUP)
+
+    def client_gap_list(self) -> list[dict]:
+        """The gaps as one dict per outage: gap_index, gap_id, start_unix_s, end_unix_s, cause,
+        event_seq, slices_dropped and ``ranges`` (dicts with iteration_first, iteration_last,
+        count, reason (a name of CLIENT_DROP_REASONS), time_first, time_last)."""
+        cols = self.client_gaps()
+        names = {code: name for name, code in layout.CLIENT_DROP_REASONS.items()}
+        gaps: dict[int, dict] = {}
+        for i in range(len(cols["gap_index"])):
+            index = int(cols["gap_index"][i])
+            gap = gaps.setdefault(index, {
+                "gap_index": index, "gap_id": str(cols["gap_id"][i]), "start_unix_s": float(cols["start_unix_s"][i]),
+                "end_unix_s": float(cols["end_unix_s"][i]), "cause": str(cols["cause"][i]),
+                "event_seq": int(cols["event_seq"][i]), "slices_dropped": 0, "ranges": []})
+            count = int(cols["count"][i])
+            if count > 0:
+                gap["slices_dropped"] += count
+                gap["ranges"].append({
+                    "iteration_first": int(cols["iteration_first"][i]), "iteration_last": int(cols["iteration_last"][i]),
+                    "count": count, "reason": names.get(int(cols["reason"][i]), str(int(cols["reason"][i]))),
+                    "time_first": float(cols["time_first"][i]), "time_last": float(cols["time_last"][i])})
+        return [gaps[k] for k in sorted(gaps)]
+
     def group_dataset(self, group_path: str, row_dimension: str | None = None):
         """Any committed group as an :class:`xarray.Dataset` (e.g. ``tracks/A``, ``windows``)."""
         if group_path not in self.committed_rows:

@@ -193,7 +193,7 @@ class ArchiveWriter:
             surface_rows: label -> rows for ``surfaces/<label>``.
             group_rows: tracking group path (``tracks/<label>``, ``forecasts/<label>``,
                 ``guidance/updates``, ``guidance/bodies``, ``guidance/regions``, ``windows``,
-                ``events``) -> rows; a group is created by the first commit that writes to it.
+                ``events``, ``client_gaps``) -> rows; a group is created by the first commit that writes to it.
             attrs: root attributes to set in the same final write.
         Returns:
             The new committed row counts.

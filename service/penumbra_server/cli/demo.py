@@ -101,7 +101,7 @@ class _EventFollower:
 
     def _follow(self) -> None:
         try:
-            for event in self.client.watch(self.run_id, from_seq=1):
+            for event in self.client.watch(self.run_id, from_seq=1, idle_timeout_s=None):
                 kind = event.kind
                 if kind == "common_horizon_formed" and event.common is not None:
                     c = event.common

@@ -209,6 +209,13 @@ def evolve(*, server: str, run_id_file: Path | None, seconds_per_slice: float, m
         twin = client.open_run(run_spec_for(scenario, lmax=lmax, steering_interval=steering_interval,
                                             name=spec.name + "-control-whole"), crop_to_windows=False)
     body_labels = {b["label"] for b in scenario.bodies()}
+    # The demo's watcher needs the run id: wait for the runs to open (open_run waited 5 s at most).
+    for handle in (run, twin):
+        if handle is not None and not handle.wait_open(drain_timeout_s):
+            print(f"evolution: no run opened on {server} within {drain_timeout_s:g} s: {handle.errors}", file=out,
+                  flush=True)
+            client.close()
+            return 1
     if run_id_file is not None:
         _write_atomic(run_id_file, run.run_id + "\n")
     print(f"evolution: opened run {run.run_id} on {server} (slices {'cropped to the data windows' if crop else 'whole'})"

@@ -62,6 +62,15 @@ class RunProgress:
         elif kind == "slice_parts_missing":
             self.warnings.append(f"parts missing at iteration {getattr(event, 'iteration', -1)}: "
                                  f"{str(getattr(event, 'reason', ''))[:160]}")
+        elif kind == "slice_rejected":
+            self.warnings.append(f"slice refused at iteration {getattr(event, 'iteration', -1)} "
+                                 f"({getattr(event, 'state', '')}): {str(getattr(event, 'reason', ''))[:160]}")
+            del self.warnings[:-3]
+        elif kind == "client_gap_recorded" and getattr(event, "gap", None) is not None:
+            gap = event.gap
+            spans = ", ".join(f"{r.iteration_first}-{r.iteration_last} ({r.count}, {r.reason})" for r in gap.ranges)
+            self.warnings.append(f"client link down {gap.end_unix_s - gap.start_unix_s:.1f} s, "
+                                 f"{gap.slices_dropped} slices dropped: {spans or 'none'}")
             del self.warnings[:-3]
         if kind in ("slice_processed", "slice_skipped"):
             it = int(getattr(event, "iteration", -1))
@@ -311,7 +320,7 @@ def watch_run(client, run_id: str, *, once: bool = False, interval_s: float = 1.
         stream.flush()
         return 0
 
-    events = client.watch(run_id, from_seq=progress.last_seq + 1)
+    events = client.watch(run_id, from_seq=progress.last_seq + 1, idle_timeout_s=None)  # quiet runs too
 
     def follow() -> None:
         try:

@@ -3,7 +3,8 @@
 
 Order matters: the worker processes start before the gRPC server exists (grpc and fork do not
 mix; the workers use spawn anyway), then the server binds, then runs left open in the archive
-root are re-opened.
+root are re-opened, then the server starts answering (a client retrying a slice of a re-opened
+run meanwhile sees UNAVAILABLE and retries, never NOT_FOUND).
 """
 
 from __future__ import annotations
@@ -87,9 +88,9 @@ class PenumbraServer:
         return f"{self.host}:{self.port}"
 
     async def start(self) -> None:
-        await self.grpc_server.start()
         if self._restore_runs:
             self.restored_run_ids = await self.manager.restore()
+        await self.grpc_server.start()
         await self._health.set(SERVICE_NAME, health_pb2.HealthCheckResponse.SERVING)
         await self._health.set("", health_pb2.HealthCheckResponse.SERVING)
         log.info("penumbra server listening on %s (%d workers)", self.address, self.executor.workers)

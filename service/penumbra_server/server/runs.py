@@ -34,6 +34,7 @@ from .events import EventLog
 from .executors import FinderExecutor
 from ..archive import _layout as layout
 from .parts import PartAssembly
+from .link_records import LinkRecords
 from .jobs import REASON_NOT_CONVERGED, REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceJob, SurfaceOutcome, crop_slice
 from .planning import steering_planner_factory
 from .scheduler import SurfacePlan, SurfacePlanner, SurfaceTrack
@@ -143,6 +144,8 @@ class RunRecord:
         self.last_received: tuple[int, float] = (-1, float("nan"))
         self.state_events: list[dict] = list(writer.attrs.get("state_events", []))
         self.failed_reason = ""
+        #: Rejected slices and the client's recorded outages (link_records.py).
+        self.link = LinkRecords()
         #: Called after each processed slice with (run, queued slice, outcomes): a hook for
         #: tracking and guidance (issue 4). Exceptions are logged, never raised into the run.
         self.slice_observers: list[Callable[["RunRecord", QueuedSlice, list[SurfaceOutcome]], None]] = []
@@ -181,6 +184,8 @@ class RunRecord:
             last_received_iteration=self.last_received[0],
             last_received_time_m=self.last_received[1],
             slices_incomplete=self.slices_incomplete,
+            client_gaps_recorded=self.link.gaps_recorded,
+            slices_rejected=self.link.slices_rejected,
         )
 
     def latest_surfaces(self) -> pb.GetLatestSurfacesResponse:
@@ -470,17 +475,19 @@ class RunRecord:
         return _Emission(build, None)
 
     def publish(self, fill: Callable[[pb.RunEvent], None], *, time_m: float = 0.0, iteration: int = 0,
-                attrs: dict | None = None) -> asyncio.Future:
+                attrs: dict | None = None,
+                rows: Callable[[int, float, pb.RunEvent], dict[str, list[dict]]] | None = None) -> asyncio.Future:
         """Emit an event of another kind (the hook for tracking and guidance, issue 4).
 
         ``fill(event)`` sets the event's kind (e.g. a guidance message); the event gets the next
-        seq and is announced after the commit that also writes ``attrs`` to the archive root.
+        seq and is announced after the commit that also writes ``attrs`` to the archive root and
+        ``rows(seq, archived_unix_s, event)`` (group path -> rows), if given.
         Returns a future resolving to the announced event. Call on the event loop thread.
         """
         def build(seq: int, now: float):
             event = pb.RunEvent(seq=seq, run_id=self.run_id, time_m=time_m, iteration=iteration)
             fill(event)
-            return event, [], {}, dict(attrs or {})
+            return event, [], {}, dict(attrs or {}), (rows(seq, now, event) if rows is not None else {})
 
         return self._submit(_Emission(build, None)).done
 
@@ -659,6 +666,7 @@ class RunRecord:
                 else:
                     self.parts.given_up.add(int(event.iteration))
         self.steering.restore(surfaces, tracking_events)
+        self.link.restore(view.client_gaps(), tracking_events)
         for entry in self.state_events:
             event = pb.RunEvent(seq=int(entry["seq"]), run_id=self.run_id, emit_time_unix_s=float(entry["unix_s"]))
             event.run_state_changed.CopyFrom(
@@ -698,6 +706,11 @@ class RunManager:
         if len(request_id) > 64:
             raise ServiceError.invalid(f"request_id: at most 64 characters, got {len(request_id)}")
         settings = RunSettings.from_wire(spec, default_queue_depth=self.options.default_queue_depth)
+        # Shielded: a caller whose deadline passes mid-way must not leave an archive without its
+        # run; its retry with the same request id finds the run this call goes on to make.
+        return await asyncio.shield(self._open_run(settings, request_id))
+
+    async def _open_run(self, settings: RunSettings, request_id: str) -> RunRecord:
         async with self._open_lock:  # a retried OpenRun must find the run its first call made
             if request_id and request_id in self._request_ids:
                 return self.get(self._request_ids[request_id])
@@ -714,6 +727,9 @@ class RunManager:
                     created_unix_s=created,
                 ),
             )
+            if request_id:  # kept in the archive: a retry after a server restart finds the run too
+                await loop.run_in_executor(self.archive_thread,
+                                           lambda: writer.commit(attrs={"open_request_id": request_id}))
             run = self._make_record(run_id, settings, writer, created, next_seq=1)
             if request_id:
                 self._request_ids[request_id] = run_id
@@ -744,10 +760,13 @@ class RunManager:
                 writer = await loop.run_in_executor(self.archive_thread, ArchiveWriter.open_existing, summary.path)
                 attrs = writer.attrs
                 settings = RunSettings.from_dict(attrs["run_spec"])
+                # Read before the run is registered: no slice may reach it half restored.
+                rows = await loop.run_in_executor(self.archive_thread, RunRecord.read_archive, summary.path)
                 run = self._make_record(summary.run_id, settings, writer, float(attrs["created_unix_s"]),
                                         next_seq=int(attrs.get("next_event_seq", 1)))
-                rows = await loop.run_in_executor(self.archive_thread, RunRecord.read_archive, summary.path)
                 run.restore_from_archive(*rows)
+                if attrs.get("open_request_id"):
+                    self._request_ids[str(attrs["open_request_id"])] = summary.run_id
             except Exception:
                 log.exception("could not load run archive %s", summary.path)
                 self.runs.pop(summary.run_id, None)

@@ -20,6 +20,7 @@ from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 from .errors import ServiceError
 from .ingest import IngestLimits, SliceAssembler, mirror_through_z0
 from .parts import PartLabel, part_of, prepare_part
+from .link_records import record_client_gap, record_rejection
 from .runs import QueuedSlice, RunManager
 
 __all__ = ["HorizonServicer"]
@@ -98,6 +99,15 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
 
     @_translating_errors
     async def SendSlice(self, request_iterator, context) -> pb.SendSliceResponse:
+        known: list = []  # (run, header) once the header named a known run
+        try:
+            return await self._receive_slice(request_iterator, known)
+        except ServiceError as exc:
+            if known:  # the run's event stream shows the refusal too
+                await record_rejection(*known, exc)
+            raise
+
+    async def _receive_slice(self, request_iterator, known: list) -> pb.SendSliceResponse:
         assembler: SliceAssembler | None = None
         run = None
         label = PartLabel(0, 1)
@@ -109,6 +119,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                                                f"header, got {part or 'an empty message'}")
                 header = request.header
                 run = self.manager.get(header.run_id)
+                known[:] = [run, header]
                 run.check_accepting()
                 label = part_of(header)
                 if not label.is_part and run.is_duplicate(header.iteration):
@@ -163,6 +174,10 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                 )
         finally:
             run.log.unsubscribe(subscriber)
+
+    @_translating_errors
+    async def RecordClientGap(self, request: pb.RecordClientGapRequest, context) -> pb.RecordClientGapResponse:
+        return await record_client_gap(self.manager.get(request.run_id), request)
 
     @_translating_errors
     async def GetLatestSurfaces(self, request: pb.GetLatestSurfacesRequest, context) -> pb.GetLatestSurfacesResponse:

@@ -140,19 +140,30 @@ def with_time(part: ps.OutgoingSlice, *, time_m: float, iteration: int) -> ps.Ou
 
 
 def send_parts(run: ps.RunHandle, parts: list[ps.OutgoingSlice], *, time_m: float, iteration: int) -> ps.SliceAck:
-    """Send the ranks' parts of one slice, combined into one slice.
-
-    Multi-part slices: replace the body with one submit per rank, e.g.
-    ``for index, part in enumerate(parts): run.submit(build_slice(..., part_index=index,
-    part_count=len(parts)))`` (each rank in its own process would pass its own patches), and
-    wait for every part's ticket. Nothing else in this benchmark changes.
-    """
+    """Send one slice combined into a single stream (what one sender holding everything does)."""
     combined = ps.OutgoingSlice(time=time_m, iteration=iteration, variable_set=VARIABLE_SET,
                                 patches=tuple(p for part in parts for p in part.patches))
     ack = run.submit(combined).result(600)
     if not ack.accepted:
         raise RuntimeError(f"slice {iteration} was not accepted: {ack}")
     return ack
+
+
+def send_rank_parts(run: ps.RunHandle, cuts: list[ps.OutgoingSlice | None], *, time_m: float,
+                    iteration: int) -> None:
+    """Every rank sends its own part of the slice (part_index = rank), an empty part where its
+    boxes meet no window; the server assembles the slice when all parts are in. In a real run
+    each rank does this from its own process; here one handle sends them all in turn."""
+    tickets = []
+    for rank, cut in enumerate(cuts):
+        part = ps.OutgoingSlice(time=time_m, iteration=iteration, variable_set=VARIABLE_SET,
+                                patches=cut.patches if cut is not None else (), part_index=rank,
+                                part_count=len(cuts))
+        tickets.append(run.submit(part))
+    acks = [ticket.result(600) for ticket in tickets]
+    refused = [a for a in acks if not a.accepted]
+    if refused:
+        raise RuntimeError(f"slice {iteration}: {len(refused)} parts were not accepted, e.g. {refused[0]}")
 
 
 def crop_ranks(parts: list[ps.OutgoingSlice], windows: ps.DataWindows, bounds=None) -> list[ps.OutgoingSlice | None]:
@@ -213,7 +224,8 @@ def main(argv=None) -> int:
             BackgroundServer("127.0.0.1:0", archive_root=root, workers=args.workers, options=options) as server, \
             ps.connect(server.address, deadline_s=120.0) as client:
         whole_run = client.open_run(spec("production layout, whole"))
-        cropped_run = client.open_run(spec("production layout, cropped"))
+        # One handle sends every rank's part here: its local queue must hold a whole slice of parts.
+        cropped_run = client.open_run(spec("production layout, cropped"), queue_depth=len(parts) + 1)
         for run in (whole_run, cropped_run):
             send_parts(run, parts, time_m=0.0, iteration=0)
             wait_for_windows(run, 0)
@@ -240,7 +252,7 @@ def main(argv=None) -> int:
                   f"{windows.speed_bound:.3g} M/M, cap {windows.growth_cap:.3g} M); ranks sending data: "
                   f"{len(sending)} of {len(parts)}; {_mib(sent_bytes)} cropped against {_mib(whole_bytes)} whole "
                   f"(ratio {whole_bytes / sent_bytes:.1f}); all ranks' crops took {crop_s:.2f} s")
-            send_parts(cropped_run, sending, time_m=t, iteration=index)
+            send_rank_parts(cropped_run, cuts, time_m=t, iteration=index)
             send_parts(whole_run, stamped, time_m=t, iteration=index)
             wait_for_windows(whole_run, index)
             del stamped, cuts, sending

@@ -20,7 +20,7 @@ simulation:
 
 The quoted error is ``safety_factor * sqrt(d_l^2 + ((dx / r) d_o)^2)`` (root-sum-square: the two
 sources are independent) plus a round-off floor of ``1e-12`` times the quantity's scale. The
-safety factor (default 8) and the scaling are our choice, calibrated on Kerr and Brill-Lindquist
+safety factor (default 10) and the scaling are our choice, calibrated on Kerr and Brill-Lindquist
 grid data with known answers and checked on other configurations in
 tests/numerics/test_error_bars.py (figures in notes/quote.md); neither is a published
 prescription. The bars are deliberately conservative for integrated quantities (area, masses,
@@ -181,7 +181,7 @@ def quote_horizon(
     order: int = 4,
     lower_lmax: int | None = None,
     n_max: int = 8,
-    safety_factor: float = 8.0,
+    safety_factor: float = 10.0,
     samples: int = 128,
 ) -> QuotedHorizon:
     """Quantities of a found ``surface`` in ``data`` with error estimates (module docstring).

@@ -71,12 +71,12 @@ def test_rows_written_are_read_back_with_units_and_dimensions(tmp_path):
     # every array names its dimensions, so xarray opens each group as it is on disk
     xr = pytest.importorskip("xarray")
     ds = xr.open_zarr(str(view.path), group="surfaces/A", consolidated=False)
-    assert ds["coefficients"].dims == ("sample", "harmonic")
-    assert ds["centre"].dims == ("sample", "xyz")
+    assert ds["coefficients"].dims == ("time", "harmonic")
+    assert ds["centre"].dims == ("time", "xyz")
     assert float(ds["area"][0]) == pytest.approx(16 * np.pi)
     assert ds["area"].attrs["units"] == "M^2"
     assert view.surface_dataset("A")["iteration"].values.tolist() == [3]
-    assert xr.open_zarr(str(view.path), group="slices", consolidated=False).sizes["slice"] == 2
+    assert xr.open_zarr(str(view.path), group="slices", consolidated=False).sizes["time"] == 2
 
 
 def test_reader_ignores_rows_beyond_the_committed_count(tmp_path):

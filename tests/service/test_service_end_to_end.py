@@ -82,7 +82,7 @@ def test_lone_hole_area_is_16_pi_m2_and_every_result_is_archived(client, archive
     xr = pytest.importorskip("xarray")
     ds = xr.open_zarr(str(view.path), group="surfaces/A", consolidated=False)
     np.testing.assert_array_equal(ds["area"].values, rows["area"])
-    assert ds["coefficients"].dims == ("sample", "harmonic")
+    assert ds["coefficients"].dims == ("time", "harmonic")
 
 
 def test_two_punctures_far_apart_have_the_leading_order_irreducible_masses(client, archive_root):

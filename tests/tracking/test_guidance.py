@@ -198,3 +198,76 @@ def test_bad_policy_and_input_name_the_field():
         refinement_guidance(static_forecast([[0, 0, 0]], bodies=("A",)), {})
     with pytest.raises(GuidanceError, match="level"):
         refinement_guidance(static_forecast([[0, 0, 0]], bodies=("A",)), {"A": HorizonSize(0.5, 0.9)}).regions_at(0)
+
+
+# --- Hysteresis of merging ------------------------------------------------------------------------
+
+
+def _finest_merged(g) -> bool:
+    """Whether A and B share a region on the finest level."""
+    return len(g.finest_regions) == 1
+
+
+def _merged_states(separations, *, with_previous: bool, policy=RefinementPolicy()):
+    size = HorizonSize(max_radius=0.5, min_diameter=0.9)
+    states, previous = [], None
+    for d in separations:
+        g = refinement_guidance(static_forecast([[0.5 * d, 0, 0], [-0.5 * d, 0, 0]]), {"A": size, "B": size},
+                                policy=policy, previous=previous if with_previous else None)
+        states.append(_finest_merged(g))
+        previous = g
+    return states
+
+
+def _switches(states) -> int:
+    return sum(a != b for a, b in zip(states, states[1:]))
+
+
+def _finest_threshold(policy=RefinementPolicy()) -> float:
+    """Separation at which the two finest spheres just touch (sum of the finest radii)."""
+    size = HorizonSize(max_radius=0.5, min_diameter=0.9)
+    g = refinement_guidance(static_forecast([[50, 0, 0], [-50, 0, 0]]), {"A": size, "B": size}, policy=policy)
+    return 2 * float(g.body("A").radii[-1])
+
+
+def test_a_slowly_approaching_pair_merges_once():
+    d_c = _finest_threshold()
+    # Approach through the threshold with a small wobble on top (noisy forecasts), 400 guidances.
+    t = np.arange(400)
+    separations = d_c * (1.6 - 0.8 * t / t[-1]) + 0.03 * d_c * np.sin(0.7 * t)
+    states = _merged_states(separations, with_previous=True)
+    assert states[0] is False and states[-1] is True
+    assert _switches(states) == 1
+    assert _switches(_merged_states(separations, with_previous=False)) > 1  # the test can fail
+
+
+def test_a_separation_oscillating_about_the_threshold_switches_at_most_once():
+    policy = RefinementPolicy()
+    d_c = _finest_threshold(policy)
+    t = np.arange(300)
+    # +-10 % about the touching separation: inside the 25 % separation margin.
+    separations = d_c * (1 + 0.1 * np.sin(0.37 * t))
+    with_previous = _merged_states(separations, with_previous=True, policy=policy)
+    assert _switches(with_previous) <= 1
+    assert _switches(_merged_states(separations, with_previous=False, policy=policy)) > 10
+
+
+def test_merged_regions_separate_when_clear_by_the_margin_and_say_why():
+    policy = RefinementPolicy(separation_margin=0.25)
+    d_c = _finest_threshold(policy)
+    size = HorizonSize(max_radius=0.5, min_diameter=0.9)
+
+    def guidance(d, previous):
+        return refinement_guidance(static_forecast([[0.5 * d, 0, 0], [-0.5 * d, 0, 0]]), {"A": size, "B": size},
+                                   policy=policy, previous=previous)
+
+    merged = guidance(0.9 * d_c, None)
+    assert _finest_merged(merged)
+    held = guidance(1.2 * d_c, merged)
+    assert _finest_merged(held) and "hysteresis" in held.finest_regions[0].reason
+    assert not _finest_merged(guidance(1.2 * d_c, None))  # without the previous state: separate
+    assert not _finest_merged(guidance(1.3 * d_c, held))  # clear by more than 25 %: separate
+    with pytest.raises(GuidanceError, match="separation_margin"):
+        RefinementPolicy(separation_margin=-0.1)
+    with pytest.raises(GuidanceError, match="previous"):
+        guidance(d_c, previous="merged")

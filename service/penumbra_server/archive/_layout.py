@@ -4,8 +4,8 @@ One zarr v3 group per run at ``<archive_root>/<run_id>.zarr``::
 
     <run_id>.zarr/             root attributes: run_id, name, state, run_spec, units,
                                software_version, committed_rows, surface_labels, ...
-        slices/                one row per slice whose fate is final; dimension "slice"
-        surfaces/<label>/      one row per attempt on a surface; dimension "sample"
+        slices/                one row per slice whose fate is final; dimension "time"
+        surfaces/<label>/      one row per attempt on a surface; dimension "time"
         tracks/<label>/        one row per track point (horizon centroid or puncture); "point"
         forecasts/<label>/     one row per forecast issued; dimensions "forecast", "lead"
         guidance/updates/      one row per refinement guidance; "update"
@@ -19,7 +19,11 @@ One zarr v3 group per run at ``<archive_root>/<run_id>.zarr``::
 The tracking groups and ``client_gaps/`` are created by the first commit that writes to them.
 
 Every array grows along axis 0 and sets ``dimension_names`` so that ``xarray.open_zarr``
-opens each group. Rows become visible to readers only when the root attribute
+opens each group. The time-series groups (slices, surfaces) name their row dimension ``time``,
+so their ``time`` column is the dimension coordinate when xarray opens them (archives written
+before this used "slice" and "sample"; the reader handles both). The writer consolidates the
+metadata after every commit, so ``xarray.open_zarr`` opens a group without a warning and sees
+the rows of the last completed commit. Rows become visible to readers only when the root attribute
 ``committed_rows`` counts them: the writer writes rows first and bumps the counter last.
 """
 
@@ -37,6 +41,7 @@ __all__ = [
     "SLICE_COLUMNS",
     "SLICES_GROUP",
     "SURFACES_GROUP",
+    "TIME_DIMENSION",
     "SLICE_OUTCOME_PROCESSED",
     "SLICE_OUTCOME_SKIPPED",
     "SLICE_OUTCOME_FAILED",
@@ -65,6 +70,8 @@ ARCHIVE_FORMAT_VERSION = 1
 ARCHIVE_SUFFIX = ".zarr"
 SLICES_GROUP = "slices"
 SURFACES_GROUP = "surfaces"
+#: Row dimension of ``slices/`` and ``surfaces/<label>`` (older archives: "slice", "sample").
+TIME_DIMENSION = "time"
 
 #: ``slices/outcome`` values.
 SLICE_OUTCOME_PROCESSED = 1

@@ -25,7 +25,8 @@ def _open_root(path: Path, *, attempts: int = 5) -> zarr.Group:
     # file; a retry covers the rare case of a directory listed before its metadata exists.
     for attempt in range(attempts):
         try:
-            return zarr.open_group(str(path), mode="r", zarr_format=3)
+            # Not the consolidated copy: it may lag the committed counts by one commit.
+            return zarr.open_group(str(path), mode="r", zarr_format=3, use_consolidated=False)
         except (FileNotFoundError, json.JSONDecodeError, KeyError):
             if attempt == attempts - 1:
                 raise
@@ -106,7 +107,14 @@ class ArchiveView:
         for name, arr in sorted(group.arrays()):
             dims = tuple(arr.metadata.dimension_names or ())
             variables[name] = xr.Variable(dims, _plain(arr[:rows]), attrs=dict(arr.attrs))
-        return xr.Dataset(variables, attrs={"run_id": self.run_id, "group": group_path, "row_dimension": row_dimension})
+        ds = xr.Dataset(variables, attrs={"run_id": self.run_id, "group": group_path, "row_dimension": row_dimension})
+        if "time" in ds.variables and len(ds["time"].dims) == 1 and "time" not in ds.coords:
+            row = ds["time"].dims[0]
+            ds = ds.set_coords("time")
+            if row in (layout.TIME_DIMENSION, "slice", "sample"):  # time series written before the rename
+                ds = ds.swap_dims({row: "time"})
+            ds.attrs["row_dimension"] = ds["time"].dims[0]
+        return ds
 
     # -- tracking, guidance and windows ----------------------------------------------------------
 
@@ -225,13 +233,14 @@ class ArchiveView:
         return self._dataset(group_path, row_dimension)
 
     def surface_dataset(self, label: str):
-        """``surfaces/<label>`` as an :class:`xarray.Dataset` over dimension ``sample``."""
+        """``surfaces/<label>`` as an :class:`xarray.Dataset` over dimension ``time`` (its
+        coordinate: the slice times), also for archives written with the older name "sample"."""
         self.surface(label)  # validates the label
-        return self._dataset(layout.surface_group(label), "sample")
+        return self._dataset(layout.surface_group(label), layout.TIME_DIMENSION)
 
     def slices_dataset(self):
-        """``slices/`` as an :class:`xarray.Dataset` over dimension ``slice``."""
-        return self._dataset(layout.SLICES_GROUP, "slice")
+        """``slices/`` as an :class:`xarray.Dataset` over dimension ``time`` (older archives: "slice")."""
+        return self._dataset(layout.SLICES_GROUP, layout.TIME_DIMENSION)
 
 
 def _plain(values) -> np.ndarray:

@@ -8,6 +8,7 @@ committed count, and a second writer would overwrite them.
 from __future__ import annotations
 
 import time
+import warnings
 from pathlib import Path
 from typing import Mapping, Sequence
 
@@ -82,12 +83,12 @@ class ArchiveWriter:
             raise ArchiveError(f"{path}: an archive for run {run_id!r} already exists")
         path.parent.mkdir(parents=True, exist_ok=True)
         group = zarr.open_group(str(path), mode="w-", zarr_format=3)
-        _create_columns(group.create_group(layout.SLICES_GROUP), layout.SLICE_COLUMNS, "slice")
+        _create_columns(group.create_group(layout.SLICES_GROUP), layout.SLICE_COLUMNS, layout.TIME_DIMENSION)
         surfaces = group.create_group(layout.SURFACES_GROUP)
         columns = layout.surface_columns(lmax)
         for label in surface_labels:
             sub = surfaces.create_group(label)
-            _create_columns(sub, columns, "sample")
+            _create_columns(sub, columns, layout.TIME_DIMENSION)
             sub.update_attributes({"label": label, "lmax": int(lmax)})
         committed = {layout.SLICES_GROUP: 0}
         committed.update({layout.surface_group(label): 0 for label in surface_labels})
@@ -110,6 +111,7 @@ class ArchiveWriter:
                 "committed_rows": committed,
             }
         )
+        _consolidate(group)
         return cls(group, path)
 
     @classmethod
@@ -140,7 +142,12 @@ class ArchiveWriter:
             except KeyError:
                 # A column added to the layout after this archive was created: made now, with
                 # fill values for the rows already there.
-                arr = _create_column(self._group[group_path], column, row_dimension)
+                group = self._group[group_path]
+                # Keep the group's own row dimension (older archives: "slice", "sample").
+                existing = next((a for _, a in group.arrays()), None)
+                if existing is not None and existing.metadata.dimension_names:
+                    row_dimension = existing.metadata.dimension_names[0]
+                arr = _create_column(group, column, row_dimension)
                 rows = self._committed.get(group_path, 0)
                 if rows:
                     arr.resize((rows,) + arr.shape[1:])
@@ -160,7 +167,7 @@ class ArchiveWriter:
             return
         lmax = int(lmax or self.lmax)
         sub = self._group.require_group(layout.SURFACES_GROUP).create_group(label)
-        _create_columns(sub, layout.surface_columns(lmax), "sample")
+        _create_columns(sub, layout.surface_columns(lmax), layout.TIME_DIMENSION)
         sub.update_attributes({"label": label, "lmax": lmax})
         committed = dict(self._committed)
         committed[group_path] = 0
@@ -173,6 +180,7 @@ class ArchiveWriter:
         self._group.update_attributes(new_attrs)
         self._attrs = new_attrs
         self._committed = committed
+        _consolidate(self._group)
 
     def commit(
         self,
@@ -200,7 +208,7 @@ class ArchiveWriter:
         """
         pending: list[tuple[str, Sequence[Mapping], tuple[layout.Column, ...], str, str]] = []
         if slice_rows:
-            pending.append((layout.SLICES_GROUP, slice_rows, layout.SLICE_COLUMNS, "slice", "slice"))
+            pending.append((layout.SLICES_GROUP, slice_rows, layout.SLICE_COLUMNS, "slice", layout.TIME_DIMENSION))
         for label, rows in (surface_rows or {}).items():
             group_path = layout.surface_group(label)
             if group_path not in self._committed:
@@ -208,7 +216,7 @@ class ArchiveWriter:
                                    f"{', '.join(self._attrs['surface_labels'])}")
             if rows:
                 columns = layout.surface_columns(self.surface_lmax.get(label, self.lmax))
-                pending.append((group_path, rows, columns, f"surface {label!r}", "sample"))
+                pending.append((group_path, rows, columns, f"surface {label!r}", layout.TIME_DIMENSION))
         for group_path, rows in (group_rows or {}).items():
             try:
                 cols, row_dimension = layout.group_columns(group_path)
@@ -236,7 +244,19 @@ class ArchiveWriter:
         self._group.update_attributes(new_attrs)
         self._attrs = new_attrs
         self._committed = committed
+        _consolidate(self._group)
         return dict(committed)
+
+
+def _consolidate(group: zarr.Group) -> None:
+    """Write the consolidated metadata (after the committed counts): ``xarray.open_zarr`` then
+    opens any group without a fallback warning and sees exactly the last commit's rows.
+    The archive's own reader ignores it and trusts ``committed_rows``."""
+    with warnings.catch_warnings():
+        # zarr notes that consolidated metadata is not yet part of the v3 specification; the
+        # archive stays readable without it (every zarr.json is still written).
+        warnings.filterwarnings("ignore", message="Consolidated metadata is currently not part")
+        zarr.consolidate_metadata(group.store)
 
 
 def _create_column(group: zarr.Group, column: layout.Column, row_dimension: str) -> zarr.Array:

@@ -25,6 +25,13 @@ Per body (``BodyGuidance``), with r_max the horizon's largest coordinate radius:
 Per level (``LevelRegion``): bodies whose spheres on that level overlap get one merged region
 (the smallest sphere enclosing both spheres; the union of their boxes). After merger the
 caller passes the remnant's forecast (``post_merger=True``): a single region around it.
+
+Hysteresis: regions merge as soon as their spheres overlap (d < r1 + r2) but separate again only
+when they are clear by a margin, d > (1 + policy.separation_margin) (r1 + r2). Whether two
+bodies were merged on a level is read from the previous guidance, passed explicitly
+(``previous=``); without it the plain overlap rule applies. So a pair approaching slowly, or one
+whose separation wobbles around the threshold, changes its merged state at most once instead of
+switching back and forth.
 """
 
 from __future__ import annotations
@@ -73,6 +80,9 @@ class RefinementPolicy:
             (default 4).
         unknown_motion_factor: margin, in units of r_max, used in place of the forecast
             uncertainty when the forecast cannot estimate it (a single sample).
+        separation_margin: hysteresis of merging (dimensionless, default 0.25, our choice):
+            regions merged in the previous guidance stay merged until the distance of their
+            centres exceeds (1 + separation_margin) times the sum of their radii.
     """
 
     points_across_horizon: float = 30.0
@@ -82,6 +92,7 @@ class RefinementPolicy:
     steering_interval: float = 4.0
     guard_points: int = 4
     unknown_motion_factor: float = 1.0
+    separation_margin: float = 0.25
 
     def __post_init__(self) -> None:
         checks = {
@@ -92,6 +103,7 @@ class RefinementPolicy:
             "steering_interval": self.steering_interval > 0,
             "guard_points": isinstance(self.guard_points, (int, np.integer)) and self.guard_points >= 0,
             "unknown_motion_factor": self.unknown_motion_factor >= 0,
+            "separation_margin": self.separation_margin >= 0,
         }
         expected = {
             "points_across_horizon": "a positive number",
@@ -101,6 +113,7 @@ class RefinementPolicy:
             "steering_interval": "a positive time in M",
             "guard_points": "an integer >= 0",
             "unknown_motion_factor": "a number >= 0",
+            "separation_margin": "a number >= 0 (a fraction of the summed radii)",
         }
         for name, ok in checks.items():
             value = getattr(self, name)
@@ -270,11 +283,44 @@ def _spheres_overlap(a: dict, b: dict) -> bool:
     return bool(np.linalg.norm(a["centre"] - b["centre"]) < a["radius"] + b["radius"])
 
 
+def _previously_merged_pairs(previous: "RefinementGuidance | None", level: int) -> set[frozenset[str]]:
+    """Pairs of bodies that shared a region on ``level`` in the previous guidance."""
+    if previous is None or level > len(previous.levels):
+        return set()
+    pairs = set()
+    for region in previous.regions_at(level):
+        for i, a in enumerate(region.bodies):
+            for b in region.bodies[i + 1:]:
+                pairs.add(frozenset((a, b)))
+    return pairs
+
+
+def _sticky_overlap(merged_pairs: set[frozenset[str]], margin: float):
+    """Overlap test with hysteresis: groups holding a previously merged pair stay merged until
+    they are clear by ``margin`` times the summed radii."""
+
+    def overlaps(a: dict, b: dict) -> bool:
+        d = float(np.linalg.norm(a["centre"] - b["centre"]))
+        reach = a["radius"] + b["radius"]
+        if d < reach:
+            return True
+        were_merged = any(frozenset((x, y)) in merged_pairs for x in a["bodies"] for y in b["bodies"])
+        return were_merged and d <= (1.0 + margin) * reach
+
+    return overlaps
+
+
 def _merge_groups(a: dict, b: dict) -> dict:
     """One region from two overlapping ones: the smallest sphere enclosing both, the union box."""
     centre, radius = _merge_spheres(a["centre"], a["radius"], b["centre"], b["radius"])
     return dict(bodies=a["bodies"] + b["bodies"], centre=centre, radius=radius,
                 lower=np.minimum(a["lower"], b["lower"]), upper=np.maximum(a["upper"], b["upper"]))
+
+
+def _member_spheres(group: dict, bodies, level: int):
+    """Pairs of the level's body spheres within a merged group."""
+    own = [dict(centre=b.centre, radius=float(b.radii[level - 1])) for b in bodies if b.body in group["bodies"]]
+    return [(own[i], own[j]) for i in range(len(own)) for j in range(i + 1, len(own))]
 
 
 def _merge_spheres(c1, r1, c2, r2):
@@ -295,6 +341,7 @@ def refinement_guidance(
     *,
     policy: RefinementPolicy = RefinementPolicy(),
     post_merger: bool = False,
+    previous: RefinementGuidance | None = None,
 ) -> RefinementGuidance:
     """Recommend nested refinement regions per body for the forecast interval.
 
@@ -304,6 +351,9 @@ def refinement_guidance(
         sizes: body name -> :class:`HorizonSize` from the latest surfaces found.
         policy: the run's :class:`RefinementPolicy`.
         post_merger: the forecast is of the remnant after a common horizon formed.
+        previous: the guidance issued before this one (None for the first): its merged regions
+            are kept merged until clear by ``policy.separation_margin`` (module docstring). It
+            is the only state the hysteresis uses.
 
     Returns:
         :class:`RefinementGuidance` valid over the forecast's times.
@@ -313,6 +363,8 @@ def refinement_guidance(
     missing = [b for b in forecast.bodies if b not in sizes]
     if missing:
         raise GuidanceError(f"sizes: no HorizonSize for body/bodies {missing}")
+    if previous is not None and not isinstance(previous, RefinementGuidance):
+        raise GuidanceError(f"previous: expected a RefinementGuidance or None, got {type(previous).__name__}")
     if post_merger and len(forecast.bodies) != 1:
         raise GuidanceError(
             f"post_merger: expected a forecast of the single remnant, got bodies {list(forecast.bodies)}"
@@ -400,13 +452,17 @@ def refinement_guidance(
                  lower=b.lower[level - 1].copy(), upper=b.upper[level - 1].copy())
             for b in body_guidance if b.finest_level >= level
         ]
-        groups = merge_until_disjoint(groups, _spheres_overlap, _merge_groups)
+        kept = _previously_merged_pairs(previous, level)
+        groups = merge_until_disjoint(groups, _sticky_overlap(kept, policy.separation_margin), _merge_groups)
         regions = []
         for g in groups:
             if len(g["bodies"]) > 1:
                 merged_any = True
-                why = (f"merged: the level-{level} spheres of {', '.join(g['bodies'])} overlap; the smallest "
-                       f"sphere enclosing them and the union of their boxes")
+                held = not any(_spheres_overlap(a, b) for a, b in _member_spheres(g, body_guidance, level))
+                why = (f"merged: the level-{level} spheres of {', '.join(g['bodies'])} "
+                       + ("no longer overlap but were merged before and are not yet clear by the separation "
+                          f"margin {policy.separation_margin:g} (hysteresis)" if held else "overlap")
+                       + "; the smallest sphere enclosing them and the union of their boxes")
             elif post_merger:
                 why = f"the remnant's level-{level} region after merger"
             else:

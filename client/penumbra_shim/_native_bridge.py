@@ -61,7 +61,7 @@ class BridgeError(Exception):
 def _translate(exc: BaseException) -> BridgeError:
     if isinstance(exc, BridgeError):
         return exc
-    if isinstance(exc, PenumbraError):
+    if isinstance(exc, PenumbraError) and exc.code is not None:  # the server's refusal
         return BridgeError(_GRPC_STATUS.get(exc.code, "REFUSED"), str(exc))
     if isinstance(exc, (SliceValidationError, ValueError, TypeError)):
         return BridgeError("INVALID_ARGUMENT", str(exc))

@@ -1,14 +1,6 @@
-import numpy as np
 import pytest
 
-
-def cube_box(centre, half_width, spacing, level=0, offset=0.37):
-    """A vertex-centred cubic box about ``centre``; ``offset`` (in spacings) keeps nodes off the
-    centre, where a puncture would make the data infinite."""
-    centre = np.asarray(centre, dtype=float)
-    n = int(np.ceil(2 * half_width / spacing)) + 1
-    origin = centre - half_width + offset * spacing
-    return dict(origin=origin, spacing=[spacing] * 3, shape=[n] * 3, level=level)
+from numerics_grids import cube_box
 
 
 @pytest.fixture

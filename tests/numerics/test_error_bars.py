@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from scipy.special import ellipe
 
-from conftest import cube_box
+from numerics_grids import cube_box
 from test_spin import kerr_horizon_multipoles
 
 from penumbra_server.numerics.error_bars import Quoted, direction_angle, quote_horizon

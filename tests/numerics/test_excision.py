@@ -22,7 +22,7 @@ EXCISION_RADIUS = 1.5  # the evolution's excised interior, r < 1.5 M (horizon at
 def kerr_schild_slices():
     """Kerr-Schild Schwarzschild (M = 1) on one h = 0.1 M box: whole, and with r < 1.5 M filled
     with NaN and declared excised (the sphere on the slice)."""
-    from conftest import cube_box
+    from numerics_grids import cube_box
 
     hole = SchwarzschildKerrSchild(mass=1.0, centre=np.zeros(3))
     whole = sample_slice(hole, [cube_box([0, 0, 0], 2.8, 0.1)], variable_set="adm")

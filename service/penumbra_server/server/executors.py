@@ -101,7 +101,11 @@ class ProcessPoolFinderExecutor:
             futures = [pool.submit(warm_up, 0.2) for _ in range(self.workers)]
         started = await asyncio.gather(*(asyncio.wrap_future(f) for f in futures))
         self._pool = pool
-        self.worker_pids = tuple(sorted({pid for pid, _ in started}))
+        # Every submit above spawned a process, but on a busy machine one worker may run both
+        # warm-ups before the other is up: take the pids from the pool itself, not from who ran
+        # the tasks (``_processes`` is private but has been stable since Python 3.2).
+        spawned = getattr(pool, "_processes", None) or {}
+        self.worker_pids = tuple(sorted(set(spawned) | {pid for pid, _ in started}))
         self.worker_thread_settings = started[0][1]
         self.pools_started += 1
 

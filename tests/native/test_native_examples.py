@@ -39,7 +39,7 @@ def server(tmp_path_factory):
         yield bg
 
 
-def _check_examplerun(server, stdout: str) -> ps.SurfaceState:
+def _check_example_run(server, stdout: str) -> ps.SurfaceState:
     """The server's own record of the example's run: both horizons found in the last slice, at
     the punctures' last positions, with the Brill-Lindquist irreducible masses, and equal to
     what the example read through the C structs."""
@@ -47,10 +47,12 @@ def _check_examplerun(server, stdout: str) -> ps.SurfaceState:
     printed = {m[1]: m for m in re.finditer(
         r"^surface (\w+): .*found at iteration (\d+): area\s+([\d.]+) M\^2, irreducible mass\s+([\d.]+) M", stdout, re.M)}
     with ps.connect(server.address, deadline_s=20.0) as client:
-        info = client.getrun(run_id)
+        info = client.get_run(run_id)
         surfaces = client.latest_surfaces(run_id)
         guidance = client.latest_guidance(run_id)
     assert info.state == "closed" and info.slices_received == 6, info
+    # queue_depth = 6 in the examples' spec: every slice reached the server, as the link counted.
+    assert "link: 6 submitted, 6 sent, 0 dropped locally, 0 refused" in stdout, stdout
     found = {label: surfaces[label].latest_found for label in ("A", "B")}
     assert all(f is not None and f.iteration == 5 for f in found.values()), surfaces
     separation = float(np.linalg.norm(found["A"].centroid - found["B"].centroid))
@@ -81,7 +83,7 @@ def test_c_example_finds_both_horizons(build, server):
     result = run([build / "bl_pair_evolution_c", server.address])
     assert result.returncode == 0, f"C example failed ({result.returncode}):\n{result.stdout}\n{result.stderr}"
     assert "both horizons found in the last slice" in result.stdout
-    _check_examplerun(server, result.stdout)
+    _check_example_run(server, result.stdout)
     print(re.search(r"^submit blocking: .*$", result.stdout, re.M)[0])
 
 
@@ -93,7 +95,7 @@ def test_fortran_example_finds_both_horizons(build, server):
     result = run([build / "bl_pair_evolution_f", server.address])
     assert result.returncode == 0, f"Fortran example failed ({result.returncode}):\n{result.stdout}\n{result.stderr}"
     assert "both horizons found in the last slice" in result.stdout
-    _check_examplerun(server, result.stdout)
+    _check_example_run(server, result.stdout)
 
 
 def test_example_without_a_server_address_says_how_to_give_one(build):

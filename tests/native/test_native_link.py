@@ -145,7 +145,8 @@ def test_a_pending_run_opens_when_the_server_comes_up_on_its_port(build, tmp_pat
     _check(cases, "open_run", "PNL_PENDING")
     assert links["pending"]["state"] == "0" and links["pending"]["queued"] == "2", links["pending"]
     assert links["opened"]["state"] == "1", links["opened"]
-    for case in ("open_submit", "flush", "wait_surfaces", "surfaces", "run_id", "run_close", "disconnect"):
+    for case in ("flush_queued", "open_submit", "flush", "wait_surfaces", "surfaces", "run_id", "run_close",
+                 "disconnect"):
         _check(cases, case, "PNL_OK")
     # Sent: the two newest pending slices (2, 3) and the two after opening (10, 11); dropped: 0, 1.
     final = links["final"]

@@ -34,6 +34,7 @@ program bl_pair_evolution
   type(pnl_run) :: run
   type(pnl_surface) :: surfaces(8)
   type(pnl_guidance_info) :: info
+  type(pnl_link_report) :: link
   type(pnl_body_guidance) :: guided(holes)
   character(len=256) :: target
   character(len=1024) :: options
@@ -101,6 +102,9 @@ program bl_pair_evolution
   status = pnl_run_id(run, run_id)
   call check("pnl_run_id", status)
   write (*, '(2a)') "run_id: ", trim(run_id)
+  call check("pnl_link_stats", pnl_link_stats(run, link))
+  write (*, '(a, 4(i0, a))') "link: ", link%submitted, " submitted, ", link%sent, " sent, ", link%dropped, &
+       " dropped locally, ", link%refused, " refused"
   call check("pnl_wait_surfaces", pnl_wait_surfaces(run, last, 600d0))
   status = pnl_latest_surfaces(run, .true., surfaces, count)
   call check("pnl_latest_surfaces", status)

@@ -14,7 +14,7 @@
  *
  *     a call FAILED  if and only if  status != PNL_OK && status != PNL_PENDING
  *
- * (the macro PNL_FAILED(status) says exactly that). PNL_PENDING is not a failure: the handle
+ * (pnl_failed(status), or the macro PNL_FAILED(status), says exactly that). PNL_PENDING is not a failure: the handle
  * or connection made is usable, only the server has not answered yet (see "Never blocking"
  * below). After a failure, and after PNL_PENDING, pnl_last_error() gives a message naming the
  * argument or field at fault, or what is still awaited. Nothing here aborts or exits the
@@ -86,8 +86,10 @@ enum pnl_status {
     PNL_PERMISSION_DENIED = 13   /* the token sent does not grant this call (message: which is needed) */
 };
 
-/* 1 if the status is a failure (anything but PNL_OK and PNL_PENDING), else 0. */
-#define PNL_FAILED(status) ((status) != PNL_OK && (status) != PNL_PENDING)
+/* 1 if the status is a failure (anything but PNL_OK and PNL_PENDING), else 0. A function, so
+ * that PNL_FAILED(pnl_open_run(...)) makes the call once. */
+static inline int pnl_failed(int status) { return status != PNL_OK && status != PNL_PENDING; }
+#define PNL_FAILED(status) pnl_failed(status)
 
 /* State of a run handle (pnl_link_report.state). */
 enum pnl_run_state {

@@ -14,11 +14,11 @@
  *
  *     a call FAILED  if and only if  status != PNL_OK && status != PNL_PENDING
  *
- * (pnl_failed(status), or the macro PNL_FAILED(status), says exactly that). PNL_PENDING is not a failure: the handle
- * or connection made is usable, only the server has not answered yet (see "Never blocking"
- * below). After a failure, and after PNL_PENDING, pnl_last_error() gives a message naming the
- * argument or field at fault, or what is still awaited. Nothing here aborts or exits the
- * caller's process: Python exceptions become status codes.
+ * (pnl_failed(status), or the macro PNL_FAILED(status), says exactly that). PNL_PENDING is
+ * not a failure: the handle or connection made is usable, only the server has not answered
+ * yet (see "Never blocking" below). After a failure, and after PNL_PENDING, pnl_last_error()
+ * gives a message naming the argument or field at fault, or what is still awaited. Nothing
+ * here aborts or exits the caller's process: Python exceptions become status codes.
  *
  * Never blocking the evolution: connecting and opening a run never block past the timeout the
  * caller stated. When the server is unreachable (or slow) the calls return PNL_PENDING with a
@@ -185,8 +185,8 @@ typedef struct pnl_link_report {
 
 /* ---- errors ---------------------------------------------------------------------------- */
 
-/* Message of the last failed call on this thread ("" after a successful one). Valid until
- * this thread's next call into the library. */
+/* Message of the last failed call on this thread, or of the last PNL_PENDING (what is awaited);
+ * "" after a PNL_OK. Valid until this thread's next call into the library. */
 const char *pnl_last_error(void);
 /* Copy the last message into buf (NUL-terminated, truncated to capacity); returns its full
  * length. For Fortran and other callers that want their own buffer. */

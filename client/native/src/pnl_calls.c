@@ -33,23 +33,24 @@ static int take_pending_reply(const char *call, PyObject *reply, PyObject **obje
 
 int pnl_connect_with(const char *target, double timeout_s, const char *options, pnl_connection **out)
 {
+    const char *call = options != NULL ? "pnl_connect_with" : "pnl_connect";
     pnl_clear_error();
     if (out == NULL)
-        return pnl_fail(PNL_INVALID_ARGUMENT, "pnl_connect: out: expected a pointer to a pnl_connection*, got NULL");
+        return pnl_fail(PNL_INVALID_ARGUMENT, "%s: out: expected a pointer to a pnl_connection*, got NULL", call);
     *out = NULL;
     if (target == NULL || target[0] == '\0')
-        return pnl_fail(PNL_INVALID_ARGUMENT, "pnl_connect: target: expected \"host:port\", got %s",
+        return pnl_fail(PNL_INVALID_ARGUMENT, "%s: target: expected \"host:port\", got %s", call,
                         target == NULL ? "NULL" : "an empty string");
-    int status = bad_timeout("pnl_connect", timeout_s);
+    int status = bad_timeout(call, timeout_s);
     if (status != PNL_OK || (status = pnl_ensure_started()) != PNL_OK)
         return status;
     pnl_connection *connection = calloc(1, sizeof *connection);
     if (connection == NULL)
-        return pnl_fail(PNL_INTERNAL, "pnl_connect: out of memory");
+        return pnl_fail(PNL_INTERNAL, "%s: out of memory", call);
     PyGILState_STATE gil = PyGILState_Ensure();
     PyObject *reply = PyObject_CallMethod(pnl_bridge_module(), "connect", "sds", target, timeout_s,
                                           options != NULL ? options : "");
-    status = take_pending_reply("pnl_connect", reply, &connection->bridge);
+    status = take_pending_reply(call, reply, &connection->bridge);
     Py_XDECREF(reply);
     PyGILState_Release(gil);
     if (PNL_FAILED(status))

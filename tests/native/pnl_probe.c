@@ -5,7 +5,6 @@
  * abort, no exit from the library); the statuses are the test's business.
  *
  *   pnl_probe init                         pnl_init() alone (PENUMBRA_PYTHON decides)
- *   pnl_probe unreachable HOST:PORT SECONDS  pnl_connect to an address nobody serves
  *   pnl_probe bad-input HOST:PORT          bad specs, bad patches, bad ranks on a real server
  */
 #define _POSIX_C_SOURCE 200809L
@@ -70,6 +69,14 @@ static int bad_input(const char *target)
     report("spec_no_variable_set", pnl_open_run(connection, body, &run), 0);
     report("spec_null", pnl_open_run(connection, NULL, &run), 0);
     report("attach_unknown_run", pnl_attach_run(connection, "run-does-not-exist", &run), 0);
+    report("attach_null_token", pnl_attach_run_with_token(connection, "run-does-not-exist", NULL, &run), 0);
+    pnl_connection *other = NULL;
+    report("options_unknown_key", pnl_connect_with(target, 30.0, "tls=0; tokn=abc", &other), 0);
+    report("options_cert_without_key", pnl_connect_with(target, 30.0, "tls_cert=/nonexistent/client.crt", &other), 0);
+    report("options_missing_token_file",
+           pnl_connect_with(target, 30.0, "token_file=/nonexistent/penumbra.token", &other), 0);
+    report("options_token_twice", pnl_connect_with(target, 30.0, "token=abc;token_file=/etc/hostname", &other), 0);
+    printf("other_is_null=%d\n", other == NULL);
     snprintf(spec, sizeof spec, "variable_set=adm; name=probe; lmax=4; %s", body);
     status = pnl_open_run(connection, spec, &run);
     report("open_run", status, 0);
@@ -123,6 +130,14 @@ static int bad_input(const char *target)
     report("flush_after_overwrite", pnl_flush(run, 120.0), 0);
     char run_id[PNL_RUN_ID_CAPACITY];
     report("run_id_small_buffer", pnl_run_id(run, run_id, 4), 0);
+    char token[PNL_WRITER_TOKEN_CAPACITY];
+    report("writer_token", pnl_writer_token(run, token, sizeof token), 0);
+    printf("writer_token_length=%d\n", (int)strlen(token));
+    report("link_stats_null", pnl_link_stats(run, NULL), 0);
+    pnl_link_report link;
+    report("link_stats", pnl_link_stats(run, &link), 0);
+    printf("link state=%d submitted=%lld sent=%lld refused=%lld dropped=%lld queued=%lld\n", link.state,
+           link.submitted, link.sent, link.refused, link.dropped, link.queued);
     status = pnl_run_id(run, run_id, sizeof run_id);
     printf("run_id: %s\n", status == PNL_OK ? run_id : "?");
     report("run_close", pnl_run_close(run, 1, 120.0), 0);
@@ -139,18 +154,8 @@ int main(int argc, char **argv)
         report("init", status, now_s() - started);
         return 0;
     }
-    if (argc >= 4 && strcmp(argv[1], "unreachable") == 0) {
-        int status = pnl_init();
-        report("init", status, 0);
-        pnl_connection *connection = NULL;
-        double started = now_s();
-        status = pnl_connect(argv[2], atof(argv[3]), &connection);
-        report("connect", status, now_s() - started);
-        printf("connection_is_null=%d\n", connection == NULL);
-        return 0;
-    }
     if (argc >= 3 && strcmp(argv[1], "bad-input") == 0)
         return bad_input(argv[2]);
-    fprintf(stderr, "usage: pnl_probe init | unreachable HOST:PORT SECONDS | bad-input HOST:PORT\n");
+    fprintf(stderr, "usage: pnl_probe init | bad-input HOST:PORT\n");
     return 1;
 }

@@ -148,9 +148,13 @@ int main(int argc, char **argv)
 
     pnl_connection *connection = NULL;
     pnl_run *run = NULL;
-    int status = pnl_connect(target, 20.0, &connection);
-    if (status != PNL_OK)
+    /* TLS and tokens, if the server wants them: e.g. PENUMBRA_LINK_OPTIONS="tls_ca=server.crt;
+     * token_file=opener.token" (see pnl_connect_with in penumbra_link.h). */
+    int status = pnl_connect_with(target, 20.0, getenv("PENUMBRA_LINK_OPTIONS"), &connection);
+    if (PNL_FAILED(status))
         return failed("pnl_connect", status);
+    if (status == PNL_PENDING) /* not a failure: the connection keeps trying while we evolve */
+        printf("%s\n", pnl_last_error());
     char spec[512];
     double a[3], b[3];
     puncture(0, 0, a);
@@ -159,11 +163,10 @@ int main(int argc, char **argv)
              "variable_set=adm; name=Brill-Lindquist pair (C example); lmax=8; queue_depth=%d;"
              "body=%s,%g,%g,%g,%g; body=%s,%g,%g,%g,%g",
              SLICES, labels[0], a[0], a[1], a[2], masses[0], labels[1], b[0], b[1], b[2], masses[1]);
-    if ((status = pnl_open_run(connection, spec, &run)) != PNL_OK)
+    if (PNL_FAILED(status = pnl_open_run(connection, spec, &run)))
         return failed("pnl_open_run", status);
-    char run_id[PNL_RUN_ID_CAPACITY];
-    pnl_run_id(run, run_id, sizeof run_id);
-    printf("run_id: %s\n", run_id);
+    if (status == PNL_PENDING) /* slices queue (keep newest) until the run opens */
+        printf("%s\n", pnl_last_error());
 
     double blocked[SLICES];
     for (int n = 0; n < SLICES; ++n) {
@@ -188,6 +191,15 @@ int main(int argc, char **argv)
     const int last = SLICES - 1;
     if ((status = pnl_flush(run, 300.0)) != PNL_OK)
         return failed("pnl_flush", status);
+    /* Flushed, so the run is open and has its id (keep it to attach again after a restart). */
+    char run_id[PNL_RUN_ID_CAPACITY];
+    if ((status = pnl_run_id(run, run_id, sizeof run_id)) != PNL_OK)
+        return failed("pnl_run_id", status);
+    printf("run_id: %s\n", run_id);
+    pnl_link_report link;
+    if ((status = pnl_link_stats(run, &link)) == PNL_OK)
+        printf("link: %lld submitted, %lld sent, %lld dropped locally, %lld refused\n", link.submitted, link.sent,
+               link.dropped, link.refused);
     if ((status = pnl_wait_surfaces(run, last, 600.0)) != PNL_OK)
         return failed("pnl_wait_surfaces", status);
     pnl_surface surfaces[8];

@@ -34,8 +34,10 @@ program bl_pair_evolution
   type(pnl_run) :: run
   type(pnl_surface) :: surfaces(8)
   type(pnl_guidance_info) :: info
+  type(pnl_link_report) :: link
   type(pnl_body_guidance) :: guided(holes)
   character(len=256) :: target
+  character(len=1024) :: options
   character(len=512) :: spec
   character(len=PNL_RUN_ID_CAPACITY) :: run_id
   real(c_double) :: a(3), b(3), give_up, blocked(slices)
@@ -69,16 +71,16 @@ program bl_pair_evolution
      patches(p)%level = boxes(p)%level
   end do
 
-  status = pnl_connect(trim(target), 20d0, connection)
-  call check("pnl_connect", status)
+  ! TLS and tokens, if the server wants them: e.g. PENUMBRA_LINK_OPTIONS="tls_ca=server.crt;
+  ! token_file=opener.token" (see pnl_connect_with in penumbra_link.h).
+  call get_environment_variable("PENUMBRA_LINK_OPTIONS", options)
+  status = pnl_connect_with(trim(target), 20d0, trim(options), connection)
+  call check("pnl_connect", status)   ! PNL_PENDING is no failure: the connection keeps trying
   write (spec, '(a, i0, a, 2(a, "=", a, ",", 3(g0, ","), g0, ";"))') &
        "variable_set=adm; name=Brill-Lindquist pair (Fortran example); lmax=8; queue_depth=", slices, ";", &
        "body", labels(1), a, masses(1), "body", labels(2), b, masses(2)
   status = pnl_open_run(connection, trim(spec), run)
-  call check("pnl_open_run", status)
-  status = pnl_run_id(run, run_id)
-  call check("pnl_run_id", status)
-  write (*, '(2a)') "run_id: ", trim(run_id)
+  call check("pnl_open_run", status)  ! pending: slices queue (keep newest) until the run opens
 
   call system_clock(count_rate=rate)
   do n = 0, slices - 1
@@ -96,6 +98,13 @@ program bl_pair_evolution
 
   last = slices - 1
   call check("pnl_flush", pnl_flush(run, 300d0))
+  ! Flushed, so the run is open and has its id (keep it to attach again after a restart).
+  status = pnl_run_id(run, run_id)
+  call check("pnl_run_id", status)
+  write (*, '(2a)') "run_id: ", trim(run_id)
+  call check("pnl_link_stats", pnl_link_stats(run, link))
+  write (*, '(a, 4(i0, a))') "link: ", link%submitted, " submitted, ", link%sent, " sent, ", link%dropped, &
+       " dropped locally, ", link%refused, " refused"
   call check("pnl_wait_surfaces", pnl_wait_surfaces(run, last, 600d0))
   status = pnl_latest_surfaces(run, .true., surfaces, count)
   call check("pnl_latest_surfaces", status)
@@ -144,9 +153,11 @@ contains
   subroutine check(what, status)
     character(len=*), intent(in) :: what
     integer, intent(in) :: status
-    if (status /= PNL_OK) then
+    if (pnl_failed(status)) then
        write (0, '(5a)') "bl_pair_evolution_f: ", what, " failed: ", pnl_status_name(status), ": " // pnl_last_error()
        stop 2
+    else if (status == PNL_PENDING) then
+       write (*, '(2a)') what, ": " // pnl_last_error()
     end if
   end subroutine check
 

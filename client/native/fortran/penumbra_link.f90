@@ -2,8 +2,11 @@
 ! C library libpenumbra_link (include/penumbra_link.h). Compile this file with your own
 ! compiler (.mod files are compiler-specific) and link with `penumbra-link-config --libs`.
 !
-! Every function returns an integer status: PNL_OK (0) or one of the PNL_* codes below;
-! pnl_last_error() then gives the message (per thread). Nothing here stops the program.
+! Every function returns an integer status, one of the PNL_* codes below. A call failed if and
+! only if pnl_failed(status), i.e. status is neither PNL_OK nor PNL_PENDING: PNL_PENDING means the
+! connection or run handle is usable but the server has not answered yet (it keeps trying in the
+! background; slices queue, keep newest, and drops are counted: pnl_link_stats). After a failure
+! or PNL_PENDING, pnl_last_error() gives the message (per thread). Nothing here stops the program.
 !
 ! Arrays: a field u(nx, ny, nz) indexed (i, j, k) along (x, y, z) is passed as c_loc(u) with no
 ! copy on the caller's side (u needs the TARGET attribute and must be contiguous); pnl_submit
@@ -17,9 +20,12 @@ module penumbra_link
 
   integer(c_int), parameter, public :: PNL_OK = 0, PNL_INVALID_ARGUMENT = 1, PNL_UNAVAILABLE = 2, &
        PNL_TIMEOUT = 3, PNL_NOT_FOUND = 4, PNL_FAILED_PRECONDITION = 5, PNL_RESOURCE_EXHAUSTED = 6, &
-       PNL_REFUSED = 7, PNL_UNIMPLEMENTED = 8, PNL_PYTHON_ERROR = 9, PNL_INTERNAL = 10
+       PNL_REFUSED = 7, PNL_UNIMPLEMENTED = 8, PNL_PYTHON_ERROR = 9, PNL_INTERNAL = 10, PNL_PENDING = 11, &
+       PNL_UNAUTHENTICATED = 12, PNL_PERMISSION_DENIED = 13
+  integer(c_int), parameter, public :: PNL_RUN_PENDING = 0, PNL_RUN_OPEN = 1, PNL_RUN_FAILED = 2, PNL_RUN_CLOSED = 3
   integer(c_int), parameter, public :: PNL_ORDER_C = 0, PNL_ORDER_FORTRAN = 1
-  integer, parameter, public :: PNL_LABEL_CAPACITY = 33, PNL_MAX_LEVELS = 16, PNL_RUN_ID_CAPACITY = 64
+  integer, parameter, public :: PNL_LABEL_CAPACITY = 33, PNL_MAX_LEVELS = 16, PNL_RUN_ID_CAPACITY = 64, &
+       PNL_WRITER_TOKEN_CAPACITY = 128
 
   !> Handles (opaque; made by pnl_connect / pnl_open_run / pnl_attach_run).
   type, public :: pnl_connection
@@ -73,9 +79,18 @@ module penumbra_link
      real(c_double) :: found_time, centroid(3), area, irreducible_mass, radius_mean
   end type pnl_surface
 
-  public :: pnl_init, pnl_connect, pnl_disconnect, pnl_open_run, pnl_attach_run, pnl_run_id, pnl_run_close, &
+  !> The link of one run handle (pnl_link_stats; fields as in penumbra_link.h).
+  type, bind(C), public :: pnl_link_report
+     integer(c_int) :: state, link_up
+     integer(c_long_long) :: submitted, sent, dropped, refused, queued
+     integer(c_long_long) :: dropped_link_down, dropped_queue_full, dropped_retry_time_exceeded, dropped_handle_closed
+     integer(c_long_long) :: outages, gaps_recorded
+  end type pnl_link_report
+
+  public :: pnl_init, pnl_connect, pnl_connect_with, pnl_disconnect, pnl_open_run, pnl_attach_run, &
+       pnl_attach_run_with_token, pnl_run_id, pnl_writer_token, pnl_link_stats, pnl_run_close, &
        pnl_submit, pnl_flush, pnl_wait_surfaces, pnl_latest_surfaces, pnl_latest_guidance, pnl_last_error, &
-       pnl_status_name, pnl_label
+       pnl_status_name, pnl_label, pnl_failed
 
   interface
      integer(c_int) function c_init() bind(C, name="pnl_init")
@@ -87,6 +102,12 @@ module penumbra_link
        real(c_double), value :: timeout_s
        type(c_ptr), intent(out) :: out
      end function c_connect
+     integer(c_int) function c_connect_with(target, timeout_s, options, out) bind(C, name="pnl_connect_with")
+       import :: c_int, c_char, c_double, c_ptr
+       character(kind=c_char), intent(in) :: target(*), options(*)
+       real(c_double), value :: timeout_s
+       type(c_ptr), intent(out) :: out
+     end function c_connect_with
      integer(c_int) function c_disconnect(connection) bind(C, name="pnl_disconnect")
        import :: c_int, c_ptr
        type(c_ptr), value :: connection
@@ -103,6 +124,24 @@ module penumbra_link
        character(kind=c_char), intent(in) :: run_id(*)
        type(c_ptr), intent(out) :: out
      end function c_attach_run
+     integer(c_int) function c_attach_run_with_token(connection, run_id, writer_token, out) &
+          bind(C, name="pnl_attach_run_with_token")
+       import :: c_int, c_char, c_ptr
+       type(c_ptr), value :: connection
+       character(kind=c_char), intent(in) :: run_id(*), writer_token(*)
+       type(c_ptr), intent(out) :: out
+     end function c_attach_run_with_token
+     integer(c_int) function c_writer_token(run, buf, capacity) bind(C, name="pnl_writer_token")
+       import :: c_int, c_char, c_ptr
+       type(c_ptr), value :: run
+       character(kind=c_char), intent(out) :: buf(*)
+       integer(c_int), value :: capacity
+     end function c_writer_token
+     integer(c_int) function c_link_stats(run, out) bind(C, name="pnl_link_stats")
+       import :: c_int, c_ptr, pnl_link_report
+       type(c_ptr), value :: run
+       type(pnl_link_report), intent(out) :: out
+     end function c_link_stats
      integer(c_int) function c_run_id(run, buf, capacity) bind(C, name="pnl_run_id")
        import :: c_int, c_char, c_ptr
        type(c_ptr), value :: run
@@ -203,13 +242,29 @@ contains
     status = c_init()
   end function pnl_init
 
-  !> Connect to target ("host:port"), waiting at most timeout_s seconds for the server to answer.
+  !> .true. if status is a failure: neither PNL_OK nor PNL_PENDING.
+  elemental logical function pnl_failed(status)
+    integer, intent(in) :: status
+    pnl_failed = status /= PNL_OK .and. status /= PNL_PENDING
+  end function pnl_failed
+
+  !> Connect to target ("host:port"), waiting at most timeout_s seconds for the server to answer
+  !> (PNL_PENDING if it did not: the connection is usable and keeps trying).
   integer function pnl_connect(target, timeout_s, connection) result(status)
     character(len=*), intent(in) :: target
     real(c_double), intent(in) :: timeout_s
     type(pnl_connection), intent(out) :: connection
     status = c_connect(c_string(target), timeout_s, connection%handle)
   end function pnl_connect
+
+  !> pnl_connect with TLS and tokens: options "token=...; token_file=PATH; tls=1; tls_ca=PATH;
+  !> tls_cert=PATH; tls_key=PATH" (see penumbra_link.h; "" for none).
+  integer function pnl_connect_with(target, timeout_s, options, connection) result(status)
+    character(len=*), intent(in) :: target, options
+    real(c_double), intent(in) :: timeout_s
+    type(pnl_connection), intent(out) :: connection
+    status = c_connect_with(c_string(target), timeout_s, c_string(options), connection%handle)
+  end function pnl_connect_with
 
   integer function pnl_disconnect(connection) result(status)
     type(pnl_connection), intent(inout) :: connection
@@ -232,6 +287,32 @@ contains
     status = c_attach_run(connection%handle, c_string(run_id), run%handle)
   end function pnl_attach_run
 
+  !> Attach holding the run's writer token (from pnl_writer_token on the rank that opened it).
+  integer function pnl_attach_run_with_token(connection, run_id, writer_token, run) result(status)
+    type(pnl_connection), intent(in) :: connection
+    character(len=*), intent(in) :: run_id, writer_token
+    type(pnl_run), intent(out) :: run
+    status = c_attach_run_with_token(connection%handle, c_string(run_id), c_string(writer_token), run%handle)
+  end function pnl_attach_run_with_token
+
+  !> The run's writer token ("" and PNL_PENDING while the run is not open yet). A secret.
+  integer function pnl_writer_token(run, token) result(status)
+    type(pnl_run), intent(in) :: run
+    character(len=*), intent(out) :: token
+    character(kind=c_char) :: buf(PNL_WRITER_TOKEN_CAPACITY)
+    status = c_writer_token(run%handle, buf, int(PNL_WRITER_TOKEN_CAPACITY, c_int))
+    token = ""
+    if (status == PNL_OK) token = pnl_label(buf)
+  end function pnl_writer_token
+
+  !> State of the handle's link (PNL_RUN_PENDING, ...) and its slice counts; never waits.
+  integer function pnl_link_stats(run, report) result(status)
+    type(pnl_run), intent(in) :: run
+    type(pnl_link_report), intent(out) :: report
+    status = c_link_stats(run%handle, report)
+  end function pnl_link_stats
+
+  !> The run's id ("" and PNL_PENDING while a run being opened is not open yet).
   integer function pnl_run_id(run, run_id) result(status)
     type(pnl_run), intent(in) :: run
     character(len=*), intent(out) :: run_id

@@ -15,38 +15,54 @@ static int bad_timeout(const char *call, double timeout_s)
     return PNL_OK;
 }
 
-static void copy_text(char *dest, size_t capacity, const char *src)
+/* With the GIL held: split the bridge's (object, note) reply. A new reference to the object
+ * into *object; PNL_OK for an empty note, else PNL_PENDING with the note as the message. */
+static int take_pending_reply(const char *call, PyObject *reply, PyObject **object)
 {
-    snprintf(dest, capacity, "%s", src != NULL ? src : "");
+    PyObject *item = NULL;
+    const char *note = NULL;
+    *object = NULL;
+    if (reply == NULL || !PyArg_ParseTuple(reply, "Os", &item, &note))
+        return pnl_fail_from_python(call);
+    Py_INCREF(item);
+    *object = item;
+    return note[0] == '\0' ? PNL_OK : pnl_fail(PNL_PENDING, "%s: %s", call, note);
 }
 
 /* ---- connection ------------------------------------------------------------------------ */
 
-int pnl_connect(const char *target, double timeout_s, pnl_connection **out)
+int pnl_connect_with(const char *target, double timeout_s, const char *options, pnl_connection **out)
 {
+    const char *call = options != NULL ? "pnl_connect_with" : "pnl_connect";
     pnl_clear_error();
     if (out == NULL)
-        return pnl_fail(PNL_INVALID_ARGUMENT, "pnl_connect: out: expected a pointer to a pnl_connection*, got NULL");
+        return pnl_fail(PNL_INVALID_ARGUMENT, "%s: out: expected a pointer to a pnl_connection*, got NULL", call);
     *out = NULL;
     if (target == NULL || target[0] == '\0')
-        return pnl_fail(PNL_INVALID_ARGUMENT, "pnl_connect: target: expected \"host:port\", got %s",
+        return pnl_fail(PNL_INVALID_ARGUMENT, "%s: target: expected \"host:port\", got %s", call,
                         target == NULL ? "NULL" : "an empty string");
-    int status = bad_timeout("pnl_connect", timeout_s);
+    int status = bad_timeout(call, timeout_s);
     if (status != PNL_OK || (status = pnl_ensure_started()) != PNL_OK)
         return status;
     pnl_connection *connection = calloc(1, sizeof *connection);
     if (connection == NULL)
-        return pnl_fail(PNL_INTERNAL, "pnl_connect: out of memory");
+        return pnl_fail(PNL_INTERNAL, "%s: out of memory", call);
     PyGILState_STATE gil = PyGILState_Ensure();
-    connection->bridge = PyObject_CallMethod(pnl_bridge_module(), "connect", "sd", target, timeout_s);
-    if (connection->bridge == NULL)
-        status = pnl_fail_from_python("pnl_connect");
+    PyObject *reply = PyObject_CallMethod(pnl_bridge_module(), "connect", "sds", target, timeout_s,
+                                          options != NULL ? options : "");
+    status = take_pending_reply(call, reply, &connection->bridge);
+    Py_XDECREF(reply);
     PyGILState_Release(gil);
-    if (status != PNL_OK)
+    if (PNL_FAILED(status))
         free(connection);
     else
         *out = connection;
     return status;
+}
+
+int pnl_connect(const char *target, double timeout_s, pnl_connection **out)
+{
+    return pnl_connect_with(target, timeout_s, NULL, out);
 }
 
 int pnl_disconnect(pnl_connection *connection)
@@ -68,8 +84,9 @@ int pnl_disconnect(pnl_connection *connection)
 
 /* ---- runs ------------------------------------------------------------------------------- */
 
+/* Open or attach: the bridge method with one or two string arguments (token NULL: one). */
 static int make_run(const char *call, pnl_connection *connection, const char *method, const char *argument,
-                    const char *argument_name, pnl_run **out)
+                    const char *argument_name, const char *token, pnl_run **out)
 {
     pnl_clear_error();
     if (out == NULL)
@@ -82,20 +99,13 @@ static int make_run(const char *call, pnl_connection *connection, const char *me
     pnl_run *run = calloc(1, sizeof *run);
     if (run == NULL)
         return pnl_fail(PNL_INTERNAL, "%s: out of memory", call);
-    int status = PNL_OK;
     PyGILState_STATE gil = PyGILState_Ensure();
-    run->bridge = PyObject_CallMethod(connection->bridge, method, "s", argument);
-    PyObject *run_id = run->bridge != NULL ? PyObject_GetAttrString(run->bridge, "run_id") : NULL;
-    const char *utf8 = run_id != NULL ? PyUnicode_AsUTF8(run_id) : NULL;
-    if (utf8 == NULL)
-        status = pnl_fail_from_python(call);
-    else
-        copy_text(run->run_id, sizeof run->run_id, utf8);
-    Py_XDECREF(run_id);
-    if (status != PNL_OK)
-        Py_CLEAR(run->bridge);
+    PyObject *reply = token != NULL ? PyObject_CallMethod(connection->bridge, method, "ss", argument, token)
+                                    : PyObject_CallMethod(connection->bridge, method, "s", argument);
+    int status = take_pending_reply(call, reply, &run->bridge);
+    Py_XDECREF(reply);
     PyGILState_Release(gil);
-    if (status != PNL_OK)
+    if (PNL_FAILED(status))
         free(run);
     else
         *out = run;
@@ -104,24 +114,87 @@ static int make_run(const char *call, pnl_connection *connection, const char *me
 
 int pnl_open_run(pnl_connection *connection, const char *spec, pnl_run **out)
 {
-    return make_run("pnl_open_run", connection, "open_run", spec, "spec", out);
+    return make_run("pnl_open_run", connection, "open_run", spec, "spec", NULL, out);
 }
 
 int pnl_attach_run(pnl_connection *connection, const char *run_id, pnl_run **out)
 {
-    return make_run("pnl_attach_run", connection, "attach_run", run_id, "run_id", out);
+    return make_run("pnl_attach_run", connection, "attach_run", run_id, "run_id", NULL, out);
+}
+
+int pnl_attach_run_with_token(pnl_connection *connection, const char *run_id, const char *writer_token,
+                              pnl_run **out)
+{
+    if (writer_token == NULL || writer_token[0] == '\0') {
+        pnl_clear_error();
+        if (out != NULL)
+            *out = NULL;
+        return pnl_fail(PNL_INVALID_ARGUMENT, "pnl_attach_run_with_token: writer_token: expected the run's writer "
+                                              "token, got %s", writer_token == NULL ? "NULL" : "an empty string");
+    }
+    return make_run("pnl_attach_run_with_token", connection, "attach_run", run_id, "run_id", writer_token, out);
+}
+
+/* A string the bridge method returns into buf; "" means not known yet: PNL_PENDING. */
+static int copy_text_reply(const char *call, pnl_run *run, const char *method, const char *what, char *buf,
+                           int capacity)
+{
+    pnl_clear_error();
+    if (run == NULL || buf == NULL)
+        return pnl_fail(PNL_INVALID_ARGUMENT, "%s: %s: got NULL", call, run == NULL ? "run" : "buf");
+    if (capacity < 1)
+        return pnl_fail(PNL_INVALID_ARGUMENT, "%s: capacity: expected at least 1, got %d", call, capacity);
+    buf[0] = '\0';
+    int status = PNL_OK;
+    PyGILState_STATE gil = PyGILState_Ensure();
+    PyObject *reply = PyObject_CallMethod(run->bridge, method, NULL);
+    const char *utf8 = reply != NULL ? PyUnicode_AsUTF8(reply) : NULL;
+    if (utf8 == NULL) {
+        status = pnl_fail_from_python(call);
+    } else {
+        int needed = (int)strlen(utf8) + 1;
+        if (capacity < needed)
+            status = pnl_fail(PNL_INVALID_ARGUMENT, "%s: capacity: the %s needs %d bytes, got %d", call, what, needed,
+                              capacity);
+        else if (needed == 1)
+            status = pnl_fail(PNL_PENDING, "%s: the run is not open yet; its %s is known once it opens "
+                                           "(pnl_link_stats tells when)", call, what);
+        else
+            memcpy(buf, utf8, (size_t)needed);
+    }
+    Py_XDECREF(reply);
+    PyGILState_Release(gil);
+    return status;
 }
 
 int pnl_run_id(pnl_run *run, char *buf, int capacity)
 {
+    return copy_text_reply("pnl_run_id", run, "run_id", "id", buf, capacity);
+}
+
+int pnl_writer_token(pnl_run *run, char *buf, int capacity)
+{
+    return copy_text_reply("pnl_writer_token", run, "writer_token", "writer token", buf, capacity);
+}
+
+int pnl_link_stats(pnl_run *run, pnl_link_report *out)
+{
     pnl_clear_error();
-    if (run == NULL || buf == NULL)
-        return pnl_fail(PNL_INVALID_ARGUMENT, "pnl_run_id: %s: got NULL", run == NULL ? "run" : "buf");
-    int needed = (int)strlen(run->run_id) + 1;
-    if (capacity < needed)
-        return pnl_fail(PNL_INVALID_ARGUMENT, "pnl_run_id: capacity: the id needs %d bytes, got %d", needed, capacity);
-    memcpy(buf, run->run_id, (size_t)needed);
-    return PNL_OK;
+    if (run == NULL || out == NULL)
+        return pnl_fail(PNL_INVALID_ARGUMENT, "pnl_link_stats: %s: got NULL", run == NULL ? "run" : "out");
+    memset(out, 0, sizeof *out);
+    int status = PNL_OK;
+    PyGILState_STATE gil = PyGILState_Ensure();
+    PyObject *reply = PyObject_CallMethod(run->bridge, "link_stats", NULL);
+    if (reply == NULL ||
+        !PyArg_ParseTuple(reply, "iiLLLLLLLLLLL", &out->state, &out->link_up, &out->submitted, &out->sent,
+                          &out->dropped, &out->refused, &out->queued, &out->dropped_link_down,
+                          &out->dropped_queue_full, &out->dropped_retry_time_exceeded, &out->dropped_handle_closed,
+                          &out->outages, &out->gaps_recorded))
+        status = pnl_fail_from_python("pnl_link_stats");
+    Py_XDECREF(reply);
+    PyGILState_Release(gil);
+    return status;
 }
 
 /* Call a bridge method returning None; status. */

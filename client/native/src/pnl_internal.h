@@ -13,9 +13,11 @@ struct pnl_connection {
 };
 
 struct pnl_run {
-    PyObject *bridge; /* penumbra_shim._native_bridge.Run */
-    char run_id[PNL_RUN_ID_CAPACITY];
+    PyObject *bridge; /* penumbra_shim._native_bridge.Run (asked for the run id: it may come later) */
 };
+
+/* The highest value of enum pnl_status (the table of names in pnl_runtime.c ends there). */
+#define PNL_STATUS_LAST PNL_PERMISSION_DENIED
 
 /* Record status and a printf-style message as this thread's last error; returns status. */
 int pnl_fail(int status, const char *format, ...) __attribute__((format(printf, 2, 3)));

@@ -24,12 +24,14 @@ static PyObject *bridge_module = NULL; /* owned for the life of the process */
 static const char *const status_names[] = {
     "PNL_OK", "PNL_INVALID_ARGUMENT", "PNL_UNAVAILABLE", "PNL_TIMEOUT", "PNL_NOT_FOUND",
     "PNL_FAILED_PRECONDITION", "PNL_RESOURCE_EXHAUSTED", "PNL_REFUSED", "PNL_UNIMPLEMENTED",
-    "PNL_PYTHON_ERROR", "PNL_INTERNAL",
+    "PNL_PYTHON_ERROR", "PNL_INTERNAL", "PNL_PENDING", "PNL_UNAUTHENTICATED", "PNL_PERMISSION_DENIED",
 };
+_Static_assert(sizeof status_names / sizeof status_names[0] == PNL_STATUS_LAST + 1,
+               "one name per pnl_status value");
 
 const char *pnl_status_name(int status)
 {
-    if (status < 0 || status > PNL_INTERNAL)
+    if (status < 0 || status > PNL_STATUS_LAST)
         return "PNL_UNKNOWN_STATUS";
     return status_names[status];
 }
@@ -84,7 +86,7 @@ int pnl_fail_from_python(const char *call)
     PyObject *code = value != NULL ? PyObject_GetAttrString(value, "status") : NULL;
     if (code != NULL && PyLong_Check(code)) {
         long v = PyLong_AsLong(code);
-        if (v > PNL_OK && v <= PNL_INTERNAL)
+        if (v > PNL_OK && v <= PNL_STATUS_LAST && v != PNL_PENDING) /* PENDING is never an error */
             status = (int)v;
     }
     PyErr_Clear(); /* a missing attribute is not an error here */

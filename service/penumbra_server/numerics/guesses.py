@@ -9,6 +9,7 @@ import numpy as np
 
 from .excision import ExcisedDataError
 from .expansion import expansion_at
+from .interpolation import DEFAULT_ORDER
 from .sources import as_tracked_source
 from .surfaces import Surface, angular_grid
 
@@ -67,7 +68,7 @@ def _bisect(f, lo: float, hi: float, f_lo: float) -> float:
 
 
 def sphere_scan_profile(
-    data, centre, r_min: float, r_max: float, *, samples: int = 48, lmax: int = 4, order: int = 4
+    data, centre, r_min: float, r_max: float, *, samples: int = 48, lmax: int = 4, order: int = DEFAULT_ORDER
 ) -> SphereScan:
     """Scan spheres of radius r_min..r_max (geometric spacing) about ``centre``.
 
@@ -100,7 +101,7 @@ def sphere_scan_profile(
     return SphereScan(radii, mean, minimum, tuple(candidates))
 
 
-def scan_spheres(data, centre, r_min: float, r_max: float, *, samples: int = 48, lmax: int = 4, order: int = 4) -> tuple[float, ...]:
+def scan_spheres(data, centre, r_min: float, r_max: float, *, samples: int = 48, lmax: int = 4, order: int = DEFAULT_ORDER) -> tuple[float, ...]:
     """Candidate radii (outermost first) where the mean expansion of coordinate spheres about
     ``centre`` changes sign: seeds for Newton where nothing is known yet."""
     return sphere_scan_profile(data, centre, r_min, r_max, samples=samples, lmax=lmax, order=order).candidates

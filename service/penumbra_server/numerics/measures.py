@@ -10,6 +10,7 @@ import numpy as np
 
 from .excision import ExcisedDataError
 from .expansion import level_set_derivatives
+from .interpolation import DEFAULT_ORDER
 from .sources import TrackedSource, as_tracked_source
 from .surfaces import Surface, angular_grid, harmonic_basis, unit_vectors
 
@@ -87,7 +88,7 @@ def _angular_momentum(weights, density, points, geo, rd, centroid) -> np.ndarray
     return np.sum((weights * density)[:, None] * np.cross(rel, K_s), axis=0) / (8 * np.pi)
 
 
-def surface_area(surface: Surface, data, *, order: int = 4) -> float:
+def surface_area(surface: Surface, data, *, order: int = DEFAULT_ORDER) -> float:
     """Proper area (M^2) by the node quadrature of ``angular_grid(2 lmax)``."""
     source = as_tracked_source(data, order=order)
     grid = angular_grid(2 * surface.lmax)
@@ -164,7 +165,7 @@ def proper_length_closed(points: np.ndarray, geometry_source) -> float:
     return float(np.sum(speed) * 2 * np.pi / n)
 
 
-def measure_surface(surface: Surface, data, *, order: int = 4, cut_samples: int = 128) -> SurfaceQuantities:
+def measure_surface(surface: Surface, data, *, order: int = DEFAULT_ORDER, cut_samples: int = 128) -> SurfaceQuantities:
     """Measure ``surface`` in ``data`` (a Slice, a reference spacetime or a geometry source).
 
     Quadratures use ``angular_grid(2 lmax)`` (exact for the products that appear when the

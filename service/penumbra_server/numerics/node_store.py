@@ -1,0 +1,222 @@
+"""Field values and centred differences at the nodes of one patch, computed on first touch.
+
+A :class:`NodeStore` maps a patch node (flat index, C order over the patch shape) to a row of a
+contiguous component-last array: the differentiated fields, their x, y, z derivatives
+(field-major) and the plain fields. A node's row is computed the first time an interpolation
+stencil reaches it, from the raw patch arrays at the node and its difference stencil (a cross of
+half-width order/2); the patch arrays are read in place, never copied.
+
+The store is a cache of a pure function of the slice (the same node always gets the same row);
+it lives as long as the :class:`~.interpolation.GridGeometry` that owns it, i.e. one find or
+measurement.
+
+ADM data are decomposed at the nodes (see :mod:`.interpolation`): rows hold chi, gamma_tilde_ij,
+their derivatives, A_tilde_ij and trace K for every variable set except that the conformal sets
+keep their own conformal factor (chi, W or phi).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .excision import EXCISION_MASK_FIELD
+from .slices import Slice, VariableSet, symmetric_field_names
+
+__all__ = ["NodeStore", "centred_difference_weights", "field_layout"]
+
+# Centred first-derivative weights for offsets -g..g (g = order / 2).
+_CENTRED = {
+    2: np.array([-1 / 2, 0.0, 1 / 2]),
+    4: np.array([1 / 12, -2 / 3, 0.0, 2 / 3, -1 / 12]),
+    6: np.array([-1 / 60, 3 / 20, -3 / 4, 0.0, 3 / 4, -3 / 20, 1 / 60]),
+    8: np.array([1 / 280, -4 / 105, 1 / 5, -4 / 5, 0.0, 4 / 5, -1 / 5, 4 / 105, -1 / 280]),
+}
+
+_ADM_DIFFERENTIATED = ("chi",) + symmetric_field_names("gamma_tilde")
+_PLAIN = symmetric_field_names("A_tilde") + ("trace_K",)
+
+
+def centred_difference_weights(order: int) -> np.ndarray:
+    """Weights of the centred first derivative of the given (even) order, offsets -g..g."""
+    if order not in _CENTRED:
+        raise ValueError(f"order: expected one of {tuple(_CENTRED)}, got {order}")
+    return _CENTRED[order]
+
+
+def field_layout(variable_set: VariableSet) -> tuple[tuple[str, ...], tuple[str, ...]]:
+    """(fields that get derivatives, fields that do not), in row order. For ADM these are the
+    conformal fields made at the nodes."""
+    if variable_set is VariableSet.ADM:
+        return _ADM_DIFFERENTIATED, _PLAIN
+    return (variable_set.conformal_factor_name,) + symmetric_field_names("gamma_tilde"), _PLAIN
+
+
+def _flat_view(arr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(1-D view of a C- or F-contiguous array, element strides per axis); copies only a
+    non-contiguous array."""
+    if not (arr.flags.c_contiguous or arr.flags.f_contiguous):
+        arr = np.ascontiguousarray(arr)
+    order = "C" if arr.flags.c_contiguous else "F"
+    return arr.reshape(-1, order=order), np.asarray(arr.strides) // arr.itemsize
+
+
+def _adm_to_conformal(gamma: np.ndarray, K: np.ndarray | None):
+    """gamma (6, ...) and K (6, ...) components -> chi, gamma_tilde (6, ...), A_tilde (6, ...),
+    trace K. K may be None (only chi and gamma_tilde wanted)."""
+    xx, xy, xz, yy, yz, zz = gamma
+    cof = np.array([yy * zz - yz * yz, xz * yz - xy * zz, xy * yz - xz * yy,
+                    xx * zz - xz * xz, xy * xz - xx * yz, xx * yy - xy * xy])  # adjugate, same order
+    det = xx * cof[0] + xy * cof[1] + xz * cof[2]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        chi = np.cbrt(1.0 / det)
+        gamma_tilde = gamma * chi
+        if K is None:
+            return chi, gamma_tilde, None, None
+        inv = cof / det
+        mult = np.array([1.0, 2.0, 2.0, 1.0, 2.0, 1.0]).reshape((6,) + (1,) * (K.ndim - 1))
+        trace_K = np.sum(mult * inv * K, axis=0)
+        A_tilde = chi * (K - gamma * (trace_K / 3.0))
+    return chi, gamma_tilde, A_tilde, trace_K
+
+
+class NodeStore:
+    """Rows of values at the nodes of one patch, filled on first touch (see the module doc)."""
+
+    EXCISED = np.uint8(1)  # the node or its difference stencil reads excised data
+    NON_FINITE = np.uint8(2)  # a value of the row is NaN or infinite
+
+    def __init__(self, slice_: Slice, index: int, order: int):
+        patch = slice_.patches[index]
+        self.patch_index = index
+        self.level = patch.level
+        self.origin = patch.origin
+        self.spacing = patch.spacing
+        self.shape = tuple(int(n) for n in patch.shape)
+        self.shape_array = np.asarray(self.shape)
+        self.order = order
+        self.reach = order // 2  # nodes within this distance of a face have no centred difference
+        self.variable_set = slice_.variable_set
+        self._spheres = slice_.excised_spheres
+        self._mask = patch.fields.get(EXCISION_MASK_FIELD)
+        vs = slice_.variable_set
+        if vs is VariableSet.ADM:
+            self._raw_differentiated = symmetric_field_names("gamma")
+            self._raw_plain = symmetric_field_names("K")
+        else:
+            self._raw_differentiated = (vs.conformal_factor_name,) + symmetric_field_names("gamma_tilde")
+            self._raw_plain = _PLAIN
+        self._raw = {name: _flat_view(patch.fields[name]) for name in self._raw_differentiated + self._raw_plain}
+        self.n_differentiated = 7
+        self.n_values = 4 * 7 + 7
+        self._slot = np.full(int(np.prod(self.shape)), -1, dtype=np.int32)  # flat node -> row
+        self.values = np.empty((0, self.n_values))
+        self.flags = np.empty(0, dtype=np.uint8)
+        self.count = 0
+
+    @classmethod
+    def for_patch(cls, slice_: Slice, index: int, order: int) -> "NodeStore":
+        return cls(slice_, index, order)
+
+    def slots(self, flat: np.ndarray) -> np.ndarray:
+        """Rows of the nodes ``flat`` (any shape of flat C-order node indices), computing the
+        missing ones first. The nodes must have a full difference stencil inside the patch."""
+        slots = self._slot[flat]
+        missing = slots < 0
+        if missing.any():
+            self._fill(np.unique(flat[missing]))
+            slots = self._slot[flat]
+        return slots
+
+    def _grow(self, extra: int) -> None:
+        need = self.count + extra
+        if need <= self.values.shape[0]:
+            return
+        capacity = max(need, 2 * self.values.shape[0], 4096)
+        values = np.empty((capacity, self.n_values))
+        values[: self.count] = self.values[: self.count]
+        flags = np.zeros(capacity, dtype=np.uint8)
+        flags[: self.count] = self.flags[: self.count]
+        self.values, self.flags = values, flags
+
+    def _offsets(self, nodes_ijk: np.ndarray, strides: np.ndarray, taps: np.ndarray) -> np.ndarray:
+        """(n_taps, q) flat offsets into a raw array of the taps (n_taps, 3) about each node."""
+        return (taps @ strides)[:, None] + (nodes_ijk @ strides)[None, :]
+
+    def _taps(self) -> np.ndarray:
+        """(1 + 6 g, 3) node offsets of the difference cross: the centre, then axis by axis
+        -g..g without 0."""
+        g = self.reach
+        taps = [np.zeros(3, int)]
+        for axis in range(3):
+            for k in range(-g, g + 1):
+                if k:
+                    t = np.zeros(3, int)
+                    t[axis] = k
+                    taps.append(t)
+        return np.array(taps)
+
+    def _read(self, name: str, nodes_ijk: np.ndarray, taps: np.ndarray) -> np.ndarray:
+        flat, strides = self._raw[name]
+        return np.take(flat, self._offsets(nodes_ijk, strides, taps)).astype(float, copy=False)
+
+    def _fill(self, flat_nodes: np.ndarray) -> None:
+        q = flat_nodes.size
+        ijk = np.stack(np.unravel_index(flat_nodes, self.shape), axis=1)
+        taps = self._taps()
+        centre = taps[:1]
+        g = self.reach
+        weights = centred_difference_weights(self.order)
+        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+            cross = np.array([self._read(n, ijk, taps) for n in self._raw_differentiated])  # (7 or 6, taps, q)
+            plain = np.array([self._read(n, ijk, centre)[0] for n in self._raw_plain])  # (6 or 7, q)
+            if self.variable_set is VariableSet.ADM:
+                chi, gamma_tilde, _, _ = _adm_to_conformal(cross, None)
+                diff_fields = np.concatenate([chi[None], gamma_tilde])  # (7, taps, q)
+                _, _, A_tilde, trace_K = _adm_to_conformal(cross[:, 0], plain)
+                plain = np.concatenate([A_tilde, trace_K[None]])
+            else:
+                diff_fields = cross
+            rows = np.empty((q, self.n_values))
+            rows[:, :7] = diff_fields[:, 0].T
+            for axis in range(3):
+                # taps 1 + axis*2g .. : offsets -g..-1, 1..g along this axis
+                start = 1 + axis * 2 * g
+                w = np.concatenate([weights[:g], weights[g + 1:]])
+                d = np.einsum("t,ftq->fq", w, diff_fields[:, start:start + 2 * g]) / self.spacing[axis]
+                rows[:, 7 + axis: 28: 3] = d.T
+            rows[:, 28:] = plain.T
+        flags = np.where(np.isfinite(rows).all(axis=1), 0, self.NON_FINITE).astype(np.uint8)
+        excised = self._excised(ijk, taps)
+        if excised is not None:
+            flags[excised] = self.EXCISED
+        self._grow(q)
+        self.values[self.count: self.count + q] = rows
+        self.flags[self.count: self.count + q] = flags
+        self._slot[flat_nodes] = np.arange(self.count, self.count + q, dtype=np.int32)
+        self.count += q
+
+    def _excised(self, ijk: np.ndarray, taps: np.ndarray) -> np.ndarray | None:
+        """(q,) whether a node's difference cross reaches an excised node (None: none declared)."""
+        if not self._spheres and self._mask is None:
+            return None
+        where = ijk[None, :, :] + taps[:, None, :]  # (taps, q, 3)
+        hit = np.zeros(where.shape[:2], dtype=bool)
+        if self._mask is not None:
+            hit |= self._mask[where[..., 0], where[..., 1], where[..., 2]] != 0  # NaN counts as excised
+        if self._spheres:
+            x = self.origin + where * self.spacing
+            for sphere in self._spheres:
+                hit |= np.sum((x - np.asarray(sphere.centre)) ** 2, axis=-1) <= sphere.radius**2
+        return hit.any(axis=0)
+
+    def non_finite_field(self, flat_node: int) -> str:
+        """Name of the first raw field holding NaN or infinity where the node's row reads."""
+        ijk = np.array(np.unravel_index(flat_node, self.shape)).reshape(1, 3)
+        taps = self._taps()
+        for name in self._raw_differentiated:
+            if not np.isfinite(self._read(name, ijk, taps)).all():
+                return name
+        for name in self._raw_plain:
+            if not np.isfinite(self._read(name, ijk, taps[:1])).all():
+                return name
+        return self._raw_differentiated[0]  # finite inputs, non-finite result (e.g. det <= 0)

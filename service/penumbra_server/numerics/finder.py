@@ -15,16 +15,27 @@ Two methods behind one function, :func:`find_surface`:
   angular operator for conformally flat data) are from memory, not re-read in the paper.
   Slow but robust; the fallback when Newton fails, and the benchmark baseline.
 
-Not converging is a result: ``FindResult.status`` from :data:`STATUS_MESSAGES`.
+Not converging is a result: ``FindResult.status`` from :data:`STATUS_MESSAGES`; no exception
+leaves a solve for a reason the data or a step caused.
 
-Excised regions (:mod:`.excision`): a surface whose stencils would read excised data cannot be
-evaluated. A Newton or flow step landing there is shortened (halved, up to
-``_MAX_SHORTENINGS`` times); only when no shortened step is usable, or the guess itself needs
-excised data, does the solve end with status ``NEEDS_EXCISED_DATA``.
+A trial step can fail in several ways: the radius turns non-positive or runs away, a point leaves
+the data, a stencil needs excised data (:mod:`.excision`), the data there is not finite, the
+metric is not positive definite or Theta is not finite. Every one of them shortens the step
+(halved, up to ``_MAX_SHORTENINGS`` times); only when no shortened step is usable does the Newton
+solve end, with the status of the last failure, and the flow is then tried from the guess.
+
+Where the residual comes from: after the solve, max |Theta| on a second, finer node set (between
+the collocation nodes) is compared with an estimate of the interpolation floor of the data (the
+difference of Theta from two interpolation orders there). A residual at the floor is a success
+of its own (status 10); a larger one is truncation of the surface expansion, which the finder
+answers by moving the expansion centre to the surface's centroid (when that lowers it) and by
+raising l_max up to ``FinderSettings.lmax_cap``; what remains at the cap is status 1 (accepted)
+or 6 (not resolved).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from dataclasses import dataclass, field
 
@@ -33,7 +44,9 @@ import numpy as np
 from .excision import ExcisedDataError
 from .expansion import expansion_at
 from .geometry import PointGeometry
-from .slices import Slice
+from .interpolation import DEFAULT_ORDER, SUPPORTED_ORDERS
+from .resolution import interpolation_floor, recentred_surface, residual_between_nodes
+from .slices import Slice, SliceError
 from .sources import TrackedSource, as_tracked_source
 from .surfaces import (
     AngularGrid,
@@ -41,7 +54,6 @@ from .surfaces import (
     Surface,
     angular_grid,
     degree_of_index,
-    harmonic_basis,
     unit_vectors,
 )
 
@@ -59,6 +71,9 @@ __all__ = [
     "TOO_FEW_POINTS",
     "INVALID_GEOMETRY",
     "NEEDS_EXCISED_DATA",
+    "CONVERGED_AT_INTERPOLATION_FLOOR",
+    "NON_FINITE_DATA",
+    "SUCCESS_STATUSES",
     "find_surface",
     "expansion_of",
 ]
@@ -73,30 +88,45 @@ UNRESOLVED = 6
 TOO_FEW_POINTS = 7
 INVALID_GEOMETRY = 8
 NEEDS_EXCISED_DATA = 9
+CONVERGED_AT_INTERPOLATION_FLOOR = 10
+NON_FINITE_DATA = 11
 
 #: Halvings of a step that lands where the data are excised, before the solve gives up.
 _MAX_SHORTENINGS = 10
 
-#: Status code -> meaning. ``success`` is True exactly for codes 0 and 1.
+#: Status code -> meaning. ``success`` is True exactly for codes 0, 1 and 10.
 STATUS_MESSAGES: dict[int, str] = {
     CONVERGED: "converged: max |Theta| at the nodes and between them is below the tolerance",
     CONVERGED_AT_TRUNCATION: (
-        "converged in the truncated expansion: the projected residual is below the tolerance, the "
-        "residual at or between the nodes is not, and only a larger l_max reduces it"
+        "converged at the l_max cap: the projected residual is below the tolerance; the residual "
+        "between the nodes is above it and above the data's interpolation floor, so truncation of the "
+        "surface expansion limits it, but it is within the truncation tolerance"
     ),
     MAX_ITERATIONS: "not converged: iteration cap reached",
     DIVERGED: "diverged: the radius became non-positive or ran away from the guess",
     OUTSIDE_DATA: "not converged: the surface needs data no patch provides",
     LINE_SEARCH_FAILED: "not converged: no damped step reduced the residual",
     UNRESOLVED: (
-        "not accepted: the projected residual vanished but max |Theta| times the mean radius exceeds "
-        "the truncation tolerance, so the data or l_max do not resolve this surface"
+        "not resolved at the l_max cap: the projected residual vanished but max |Theta| times the mean "
+        "radius exceeds the truncation tolerance and the data's interpolation floor"
     ),
     TOO_FEW_POINTS: "not accepted: the surface spans too few grid points across to be resolved by the data",
     INVALID_GEOMETRY: "not converged: the metric is not positive definite (or Theta not finite) on the surface",
     NEEDS_EXCISED_DATA: "not converged: the surface needs data inside an excised region",
+    CONVERGED_AT_INTERPOLATION_FLOOR: (
+        "converged to the data's interpolation floor: the projected residual is below the tolerance and "
+        "the residual left at and between the nodes is at the level of the data's interpolation error, "
+        "which no l_max removes"
+    ),
+    NON_FINITE_DATA: "not converged: the data the surface needs holds NaN or infinity outside any excised region",
 }
-_SUCCESS = (CONVERGED, CONVERGED_AT_TRUNCATION)
+SUCCESS_STATUSES = (CONVERGED, CONVERGED_AT_TRUNCATION, CONVERGED_AT_INTERPOLATION_FLOOR)
+_SUCCESS = SUCCESS_STATUSES
+#: A residual between the nodes up to this multiple of the estimated interpolation floor counts
+#: as at the floor (the estimate is itself a difference of two approximations; our choice).
+_FLOOR_FACTOR = 3.0
+#: Recentre when the centroid sits farther than this fraction of the mean radius from the centre.
+_RECENTRE_FRACTION = 0.02
 _METHODS = ("newton", "flow")
 
 
@@ -110,7 +140,10 @@ class FinderSettings:
         tolerance: max |Theta| to reach, units 1/M (common practice: 1e-8 to 1e-10).
         max_iterations: Newton iterations (flow iterations are ``flow_iterations``).
         method: "newton" or "flow".
-        interpolation_order: interpolation nodes per axis for grid data (even).
+        interpolation_order: interpolation nodes per axis for grid data (even; default 6, chosen
+            by measurement: notes/finder.md).
+        lmax_cap: highest l_max the finder may raise to on its own when the residual between
+            the nodes says the surface is not resolved (None: ``lmax``, no raising).
         fallback_to_flow: on a failed Newton solve, run the flow from the guess and polish.
         flow_iterations: cap on flow iterations.
         flow_alpha, flow_beta: fast-flow parameters (Gundlach 1998; defaults from memory).
@@ -129,7 +162,8 @@ class FinderSettings:
     tolerance: float = 1e-9
     max_iterations: int = 40
     method: str = "newton"
-    interpolation_order: int = 4
+    interpolation_order: int = DEFAULT_ORDER
+    lmax_cap: int | None = None
     fallback_to_flow: bool = True
     flow_iterations: int = 600
     flow_alpha: float = 1.0
@@ -147,6 +181,14 @@ class FinderSettings:
             raise ValueError(f"tolerance: expected a positive number, got {self.tolerance}")
         if self.max_iterations < 1 or self.flow_iterations < 1:
             raise ValueError("max_iterations and flow_iterations: expected integers >= 1")
+        if self.interpolation_order not in SUPPORTED_ORDERS:
+            raise ValueError(f"interpolation_order: expected one of {SUPPORTED_ORDERS}, got {self.interpolation_order}")
+        if self.lmax_cap is not None and self.lmax_cap < self.lmax:
+            raise ValueError(f"lmax_cap: expected None or an integer >= lmax ({self.lmax}), got {self.lmax_cap}")
+
+    @property
+    def effective_lmax_cap(self) -> int:
+        return self.lmax if self.lmax_cap is None else int(self.lmax_cap)
 
 
 @dataclass(frozen=True)
@@ -169,6 +211,13 @@ class FindResult:
         residual_max_between_nodes: max |Theta| (1/M) of the last iterate on a second, finer
             node set. The collocation nodes can hide truncation error (for a symmetric surface
             the projection conditions pin Theta to zero at every node); this one does not.
+        interpolation_floor: estimated max |Theta| error (1/M) from interpolating the data, on
+            the same finer node set: the largest difference of Theta computed with the settings'
+            interpolation order and the next supported one (order + 2, or order - 2 at the top;
+            the latter over-estimates). 0 for exact data, NaN when not estimated.
+        recentred: the expansion centre was moved to the surface's centroid during the find.
+        geometry: the geometry source the find used (grid nodes already prepared); pass it to
+            :func:`~.measures.measure_surface` as ``data`` to reuse them.
     """
 
     surface: Surface | None
@@ -183,6 +232,9 @@ class FindResult:
     method: str
     projected_residual: float = float("nan")
     residual_max_between_nodes: float = float("nan")
+    interpolation_floor: float = float("nan")
+    recentred: bool = False
+    geometry: TrackedSource | None = field(default=None, repr=False, compare=False)
 
     @property
     def residual_max(self) -> float:
@@ -201,6 +253,7 @@ class _Run:
     uncovered_note: str = ""
     invalid_note: str = ""
     excised_note: str = ""
+    non_finite_note: str = ""
     last_failure: int = OUTSIDE_DATA  # why the latest _evaluate returned None
 
 
@@ -218,11 +271,18 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
     """Theta at the nodes of ``surface``; None (with a note) when data is missing there."""
     rd = surface.on_grid(run.grid)
     pts = surface.points(rd)
+    if not np.all(np.isfinite(pts)):
+        run.last_failure = DIVERGED
+        return None
     try:
         geo = run.source(pts)
     except ExcisedDataError as exc:
         run.last_failure = NEEDS_EXCISED_DATA
         run.excised_note = str(exc)
+        return None
+    except SliceError as exc:
+        run.last_failure = NON_FINITE_DATA
+        run.non_finite_note = str(exc)
         return None
     if not geo.covered.all():
         bad = ~geo.covered
@@ -234,7 +294,13 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
             f"{np.degrees(p.min()):.0f}..{np.degrees(p.max()):.0f} deg); {run.source.describe_uncovered(pts[bad])}"
         )
         return None
-    terms = expansion_at(rd, geo)
+    try:
+        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+            terms = expansion_at(rd, geo)
+    except np.linalg.LinAlgError:  # a singular metric at some point
+        run.last_failure = INVALID_GEOMETRY
+        run.invalid_note = "the metric is singular at some surface points"
+        return None
     th = terms.theta
     if not np.all(np.isfinite(th)):
         run.last_failure = INVALID_GEOMETRY
@@ -258,22 +324,23 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     n, _, _ = unit_vectors(rd.theta, rd.phi)
     try:
         geo_h = run.source(ev.points + eps_h * n)
-    except ExcisedDataError:
-        geo_h = geo  # at an excision boundary: as at the data edge
+    except (ExcisedDataError, SliceError):
+        geo_h = geo  # at an excision boundary or next to bad data: as at the data edge
     if not geo_h.covered.all():
         geo_h = geo  # at the data edge: drop the field variation rather than fail
-    d_h = (expansion_at(rd.replace(h=rd.h + eps_h), geo_h).theta - ev.theta) / eps_h
-    cols = {}
-    # First derivatives enter nonlinearly: central differences at fixed fields.
-    for name in ("h_t", "h_p"):
-        eps = 1e-5 * scale
-        plus = expansion_at(rd.replace(**{name: getattr(rd, name) + eps}), geo).theta
-        minus = expansion_at(rd.replace(**{name: getattr(rd, name) - eps}), geo).theta
-        cols[name] = (plus - minus) / (2 * eps)
-    # Second derivatives enter linearly: a unit one-sided difference is exact up to round-off.
-    for name in ("h_tt", "h_tp", "h_pp"):
-        eps = scale
-        cols[name] = (expansion_at(rd.replace(**{name: getattr(rd, name) + eps}), geo).theta - ev.theta) / eps
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        d_h = (expansion_at(rd.replace(h=rd.h + eps_h), geo_h).theta - ev.theta) / eps_h
+        cols = {}
+        # First derivatives enter nonlinearly: central differences at fixed fields.
+        for name in ("h_t", "h_p"):
+            eps = 1e-5 * scale
+            plus = expansion_at(rd.replace(**{name: getattr(rd, name) + eps}), geo).theta
+            minus = expansion_at(rd.replace(**{name: getattr(rd, name) - eps}), geo).theta
+            cols[name] = (plus - minus) / (2 * eps)
+        # Second derivatives enter linearly: a unit one-sided difference is exact up to round-off.
+        for name in ("h_tt", "h_tp", "h_pp"):
+            eps = scale
+            cols[name] = (expansion_at(rd.replace(**{name: getattr(rd, name) + eps}), geo).theta - ev.theta) / eps
     B = run.grid.basis
     J_nodes = (
         d_h[:, None] * B.Y
@@ -288,12 +355,27 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
 
 def _diverged(surface: Surface, run: _Run, limit: float) -> bool:
     h = surface.on_grid(run.grid).h
-    return bool(np.min(h) <= 0 or np.max(h) > limit or not np.all(np.isfinite(h)))
+    return bool(not np.all(np.isfinite(h)) or np.min(h) <= 0 or np.max(h) > limit)
+
+
+def _newton_step(run: _Run, ev: _Evaluated) -> np.ndarray | None:
+    """The Newton step in the coefficients, None when the linearisation is not finite."""
+    J = _jacobian(run, ev)
+    rhs = run.grid.project(ev.theta)
+    if not (np.all(np.isfinite(J)) and np.all(np.isfinite(rhs))):
+        return None
+    try:
+        step = np.linalg.solve(J, -rhs)
+    except np.linalg.LinAlgError:
+        step = np.linalg.lstsq(J, -rhs, rcond=None)[0]
+    return step if np.all(np.isfinite(step)) else None
 
 
 def _newton(run: _Run, guess: Surface, settings: FinderSettings) -> tuple[int, _Evaluated | None, int, float]:
     """(status, last evaluated iterate, iterations, projected residual)."""
     limit = settings.max_radius_factor * max(guess.mean_radius, 1e-300)
+    if _diverged(guess, run, limit):
+        return DIVERGED, None, 0, float("nan")
     ev = _evaluate(run, guess)
     if ev is None:
         return run.last_failure, None, 0, float("nan")
@@ -303,41 +385,37 @@ def _newton(run: _Run, guess: Surface, settings: FinderSettings) -> tuple[int, _
             return CONVERGED, ev, it - 1, proj
         if proj <= settings.tolerance:
             return CONVERGED_AT_TRUNCATION, ev, it - 1, proj
-        J = _jacobian(run, ev)
-        rhs = run.grid.project(ev.theta)
-        try:
-            step = np.linalg.solve(J, -rhs)
-        except np.linalg.LinAlgError:
-            step = np.linalg.lstsq(J, -rhs, rcond=None)[0]
+        step = _newton_step(run, ev)
+        if step is None:
+            return INVALID_GEOMETRY, ev, it, proj
         # Backtrack on the projected residual: it is what the Galerkin Newton step reduces; the
-        # node residual also holds the part beyond l_max, which no step can remove.
+        # node residual also holds the part beyond l_max, which no step can remove. A trial that
+        # cannot be evaluated at all (any reason) is shortened like one that does not reduce it.
         lam = 1.0
         accepted = None
-        rejected_as_excised = False
+        failure = LINE_SEARCH_FAILED
         for _ in range(_MAX_SHORTENINGS):
             trial = Surface(ev.surface.centre, ev.surface.lmax, ev.surface.coefficients + lam * step)
             if _diverged(trial, run, limit):
-                rejected_as_excised = False
+                failure = DIVERGED
                 lam *= 0.5
                 continue
             cand = _evaluate(run, trial)
-            if cand is None and run.last_failure == NEEDS_EXCISED_DATA:
-                rejected_as_excised = True  # the step reached into an excised region: shorten it
+            if cand is None:
+                failure = run.last_failure
                 lam *= 0.5
                 continue
-            if cand is None:
-                return run.last_failure, ev, it, proj
-            rejected_as_excised = False
             cand_proj = _projected_rms(run, cand.theta)
             if cand_proj < (1.0 - 1e-4 * lam) * proj or cand_proj <= settings.tolerance:
                 accepted = cand
                 break
             # Rejected trial: drop its history entry so the history follows accepted iterates.
+            failure = LINE_SEARCH_FAILED
             run.max_hist.pop()
             run.rms_hist.pop()
             lam *= 0.5
         if accepted is None:
-            return (NEEDS_EXCISED_DATA if rejected_as_excised else LINE_SEARCH_FAILED), ev, it, proj
+            return failure, ev, it, proj
         ev = accepted
         proj = cand_proj
     if run.max_hist[-1] <= settings.tolerance:
@@ -357,11 +435,14 @@ def _flow(run: _Run, guess: Surface, settings: FinderSettings, tolerance: float)
     gain = A / (1.0 + B * ell * (ell + 1))
     limit = settings.max_radius_factor * guess.mean_radius
     proj = float("nan")
+    if _diverged(guess, run, limit):
+        return DIVERGED, None, 0, proj
     ev = _evaluate(run, guess)
     if ev is None:
         return run.last_failure, None, 0, proj
     for it in range(settings.flow_iterations + 1):
-        rho = ev.rd.h**2 / ev.u
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rho = ev.rd.h**2 / ev.u
         weighted = rho * ev.theta
         proj = _projected_rms(run, weighted) / float(np.mean(rho))
         if run.max_hist[-1] <= tolerance:
@@ -371,84 +452,85 @@ def _flow(run: _Run, guess: Surface, settings: FinderSettings, tolerance: float)
         if it == settings.flow_iterations:
             break
         step = -gain * run.grid.project(weighted)
+        if not np.all(np.isfinite(step)):
+            return INVALID_GEOMETRY, ev, it, proj
         factor = 1.0
+        following, failure = None, DIVERGED
         for _ in range(_MAX_SHORTENINGS):
             surface = Surface(ev.surface.centre, lmax, ev.surface.coefficients + factor * step)
-            if _diverged(surface, run, limit):
-                return DIVERGED, ev, it, proj
-            following = _evaluate(run, surface)
-            if following is not None or run.last_failure != NEEDS_EXCISED_DATA:
-                break
-            factor *= 0.5  # the step reached into an excised region: shorten it
+            if not _diverged(surface, run, limit):
+                following = _evaluate(run, surface)
+                if following is not None:
+                    break
+                failure = run.last_failure
+            factor *= 0.5  # any failed trial is shortened
         if following is None:
-            if run.last_failure == NEEDS_EXCISED_DATA:
-                return NEEDS_EXCISED_DATA, ev, it + 1, proj
-            return run.last_failure, None, it + 1, proj
+            return failure, ev, it + 1, proj
         ev = following
     return MAX_ITERATIONS, ev, settings.flow_iterations, proj
+
+
+def _solve(run: _Run, guess: Surface, settings: FinderSettings):
+    """Newton (or flow) from ``guess``, the flow fallback on any Newton failure.
+    Returns (status, evaluated iterate or None, iterations, projected residual, method)."""
+    if settings.method == "flow":
+        status, ev, nit, proj = _flow(run, guess, settings, settings.tolerance)
+        return status, ev, nit, proj, "flow"
+    status, ev, nit, proj = _newton(run, guess, settings)
+    if status not in _SUCCESS and settings.fallback_to_flow:
+        # Flow to a loose residual from the original guess, then let Newton finish.
+        flow_status, flow_ev, flow_nit, _ = _flow(run, guess, settings, max(settings.tolerance, 1e-4))
+        nit += flow_nit
+        if flow_ev is not None and flow_status in _SUCCESS + (MAX_ITERATIONS,):
+            status2, ev2, nit2, proj2 = _newton(run, flow_ev.surface, settings)
+            if ev2 is not None or ev is None:
+                status, ev, proj = status2, ev2 or flow_ev, proj2
+            nit += nit2
+            return status, ev, nit, proj, "newton+flow"
+    return status, ev, nit, proj, "newton"
 
 
 def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSettings()) -> FindResult:
     """Find a MOTS near ``guess``.
 
     Args:
-        data: a :class:`Slice` (grid data; only sub-boxes around the surface are touched), a
-            reference spacetime (anything with ``.geometry(points)``), or a callable
-            ``points (N, 3) -> PointGeometry``.
+        data: a :class:`Slice` (grid data; only nodes the surface's stencils reach are
+            prepared), a prepared geometry (``FindResult.geometry`` of an earlier find on the same
+            slice, a :class:`~.interpolation.GridGeometry`), a reference spacetime (anything with
+            ``.geometry(points)``), or a callable ``points (N, 3) -> PointGeometry``.
         guess: starting surface; re-expanded to ``settings.lmax``.
         settings: :class:`FinderSettings`.
 
     Returns:
         :class:`FindResult`; failure to converge is reported there, not raised.
-
-    Raises:
-        SliceError: the data a surface needs holds NaN or infinity outside the declared excised
-            regions (inside them: status ``NEEDS_EXCISED_DATA``, never an exception).
     """
     start = time.perf_counter()
     source = as_tracked_source(data, order=settings.interpolation_order)
-    grid = angular_grid(settings.lmax)
-    run = _Run(source, grid)
-    guess = guess.with_lmax(settings.lmax)
-    if settings.method == "flow":
-        status, ev, nit, proj = _flow(run, guess, settings, settings.tolerance)
-        method = "flow"
-    else:
-        status, ev, nit, proj = _newton(run, guess, settings)
-        method = "newton"
-        if status not in _SUCCESS + (OUTSIDE_DATA, INVALID_GEOMETRY) and settings.fallback_to_flow:
-            # Flow to a loose residual from the original guess, then let Newton finish.
-            flow_status, flow_ev, flow_nit, _ = _flow(run, guess, settings, max(settings.tolerance, 1e-4))
-            if flow_ev is not None and flow_status in _SUCCESS + (MAX_ITERATIONS,):
-                status, ev2, nit2, proj = _newton(run, flow_ev.surface, settings)
-                ev = ev2 or flow_ev
-                nit = nit + flow_nit + nit2
-                method = "newton+flow"
-    between = float("nan")
+    run = _Run(source, angular_grid(settings.lmax))
+    status, ev, nit, proj, method = _solve(run, guess.with_lmax(settings.lmax), settings)
+    between = floor = float("nan")
+    recentred = False
     if ev is not None:
-        between = _residual_between_nodes(source, ev.surface)
-        if status == CONVERGED and not between <= settings.tolerance:
-            status = CONVERGED_AT_TRUNCATION  # zero at the nodes only: l_max limits accuracy
-        if status == CONVERGED_AT_TRUNCATION:
-            worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
-            if worst * ev.surface.mean_radius > settings.truncation_tolerance:
-                status = UNRESOLVED
+        between = residual_between_nodes(source, ev.surface)
+        if status in _SUCCESS:
+            status, ev, nit, proj, between, floor, recentred, run = _improve(
+                source, run, settings, status, ev, nit, proj, between)
+        elif status == CONVERGED and not between <= settings.tolerance:
+            status = CONVERGED_AT_TRUNCATION
         if status in _SUCCESS and source.slice_ is not None:
             across = _points_across(source.slice_, ev)
             if across < settings.min_points_across:
                 status = TOO_FEW_POINTS
                 run.uncovered_note = f"{across:.1f} grid spacings across, fewer than {settings.min_points_across}"
     message = STATUS_MESSAGES[status]
-    if status in (OUTSIDE_DATA, TOO_FEW_POINTS) and run.uncovered_note:
-        message = f"{message}: {run.uncovered_note}"
-    if status == INVALID_GEOMETRY:
-        message = f"{message}: {run.invalid_note}"
-    if status == NEEDS_EXCISED_DATA and run.excised_note:
-        message = f"{message}: {run.excised_note}"
+    note = {OUTSIDE_DATA: run.uncovered_note, TOO_FEW_POINTS: run.uncovered_note, INVALID_GEOMETRY: run.invalid_note,
+            NEEDS_EXCISED_DATA: run.excised_note, NON_FINITE_DATA: run.non_finite_note}.get(status, "")
+    if note:
+        message = f"{message}: {note}"
     if run.max_hist:
         message = (
             f"{message} (max |Theta| = {run.max_hist[-1]:.3e} / M at the nodes, {between:.3e} / M between "
-            f"them, after {nit} iterations)"
+            f"them, interpolation floor {floor:.1e} / M, l_max {run.grid.lmax}, after {nit} iterations)"
         )
     return FindResult(
         surface=ev.surface if ev is not None else None,
@@ -463,7 +545,53 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
         method=method,
         projected_residual=proj,
         residual_max_between_nodes=between,
+        interpolation_floor=floor,
+        recentred=recentred,
+        geometry=source,
     )
+
+
+def _improve(source, run, settings, status, ev, nit, proj, between):
+    """Tell interpolation floor from truncation; against truncation, recentre and raise l_max.
+    Returns the updated (status, ev, nit, proj, between, floor, recentred, run)."""
+    recentred = False
+    floor = interpolation_floor(source, ev.surface, settings.interpolation_order)
+    tried_recentre = False
+    while True:
+        worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
+        if worst <= settings.tolerance:
+            return CONVERGED, ev, nit, proj, between, floor, recentred, run
+        if np.isfinite(floor) and worst <= max(_FLOOR_FACTOR * floor, settings.tolerance):
+            return CONVERGED_AT_INTERPOLATION_FLOOR, ev, nit, proj, between, floor, recentred, run
+        candidates = []
+        if not tried_recentre:
+            tried_recentre = True
+            moved = recentred_surface(ev.surface, _RECENTRE_FRACTION)
+            if moved is not None:
+                candidates.append((moved, True))
+        if ev.surface.lmax < settings.effective_lmax_cap:
+            lmax = min(settings.effective_lmax_cap, ev.surface.lmax + 4)
+            candidates.append((ev.surface.with_lmax(lmax), False))
+        better = None
+        for surface, is_recentre in candidates:
+            trial_run = _Run(source, angular_grid(surface.lmax))
+            st, ev2, nit2, proj2, _ = _solve(trial_run, surface, dataclasses.replace(settings, lmax=surface.lmax))
+            nit += nit2
+            if st not in _SUCCESS or ev2 is None:
+                continue
+            between2 = residual_between_nodes(source, ev2.surface)
+            if np.isfinite(between2) and between2 < 0.7 * worst:
+                better = (ev2, proj2, between2, trial_run, is_recentre)
+                break
+        if better is None:
+            break
+        ev, proj, between, run, is_recentre = better
+        recentred |= is_recentre
+        floor = interpolation_floor(source, ev.surface, settings.interpolation_order)
+    worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
+    if worst * ev.surface.mean_radius > settings.truncation_tolerance:
+        return UNRESOLVED, ev, nit, proj, between, floor, recentred, run
+    return CONVERGED_AT_TRUNCATION, ev, nit, proj, between, floor, recentred, run
 
 
 def _points_across(slice_: Slice, ev: _Evaluated) -> float:
@@ -475,21 +603,7 @@ def _points_across(slice_: Slice, ev: _Evaluated) -> float:
     return float(np.min(np.ptp(ev.points, axis=0))) / spacing
 
 
-def _residual_between_nodes(source: TrackedSource, surface: Surface) -> float:
-    """max |Theta| on the nodes of a grid for l_max + 5 (shared with the collocation nodes only
-    by accident); NaN where the data does not cover them or they need excised data."""
-    check = angular_grid(surface.lmax + 5)
-    rd = surface.derivatives(harmonic_basis(surface.lmax, check.theta, check.phi), check.theta, check.phi)
-    try:
-        geo = source(surface.points(rd))
-    except ExcisedDataError:
-        return float("nan")
-    if not geo.covered.all():
-        return float("nan")
-    return float(np.max(np.abs(expansion_at(rd, geo).theta)))
-
-
-def expansion_of(data, surface: Surface, *, order: int = 4) -> np.ndarray:
+def expansion_of(data, surface: Surface, *, order: int = DEFAULT_ORDER) -> np.ndarray:
     """Theta (1/M) at the collocation nodes of ``surface`` (``angular_grid(surface.lmax)``).
 
     Raises ValueError if the data does not cover every node.
@@ -498,6 +612,7 @@ def expansion_of(data, surface: Surface, *, order: int = 4) -> np.ndarray:
     run = _Run(source, angular_grid(surface.lmax))
     ev = _evaluate(run, surface)
     if ev is None:
-        note = run.excised_note if run.last_failure == NEEDS_EXCISED_DATA else run.uncovered_note
+        note = {NEEDS_EXCISED_DATA: run.excised_note, NON_FINITE_DATA: run.non_finite_note,
+                INVALID_GEOMETRY: run.invalid_note}.get(run.last_failure, run.uncovered_note)
         raise ValueError(f"surface: {note}")
     return ev.theta

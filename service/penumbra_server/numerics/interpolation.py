@@ -16,12 +16,13 @@ interpolation (error O(dx^4)) with fourth-order centred differences. The default
 about 20 points per horizon radius it reaches the area accuracy of a tensor-product cubic spline
 of the fields, which order 4 misses by a factor of about 15.
 
-ADM input is decomposed at the nodes, before interpolation, into chi = psi^-4 = det(gamma)^(-1/3),
-the unit-determinant gamma_tilde_ij = chi gamma_ij, A_tilde_ij = chi (K_ij - gamma_ij K / 3) and
+ADM input is decomposed at the nodes, before interpolation, into W = psi^-2 = det(gamma)^(-1/6),
+the unit-determinant gamma_tilde_ij = W^2 gamma_ij, A_tilde_ij = W^2 (K_ij - gamma_ij K / 3) and
 K = gamma^ij K_ij, and converted back at the points like the conformal variable sets. Near a
-puncture gamma_ij ~ psi^4 ~ r^-4 is what a polynomial interpolates worst, while chi ~ r^4 and
-gamma_tilde_ij, chi K_ij are smooth; away from punctures the decomposition changes nothing
-measurable (notes/finder.md).
+puncture gamma_ij ~ psi^4 ~ r^-4 is what a polynomial interpolates worst; W ~ r^2 there, and
+gamma_tilde_ij and W^2 K_ij stay bounded. W rather than chi = W^2 because it varies less steeply
+around the horizon: on Brill-Lindquist data at dx = M/32 the area error from chi was 15 times
+that from W (notes/finder.md). Away from punctures the decomposition changes little.
 
 Excised regions (:mod:`.excision`): a node whose difference stencil (half-width order/2 along each
 axis) reaches an excised node is unusable; a point whose interpolation stencil touches one raises
@@ -142,10 +143,10 @@ class GridGeometry:
         source = np.full(n, -1, dtype=int)
         for store, sel, flat, weights in self.stencils(points):
             slots = store.slots(flat)
-            flags = store.flags[slots]
+            flags = np.take(store.flags, slots)
             if flags.any():
                 self._raise_bad(store, flags, flat, points[sel])
-            rows = store.values[slots]  # (m, p^3, nv), one contiguous row per node
+            rows = np.take(store.values, slots, axis=0)  # (m, p^3, nv), one contiguous row per node
             values[sel] = np.matmul(weights[:, None, :], rows)[:, 0, :]
             source[sel] = store.patch_index
         return self._to_physical(values, source)
@@ -175,9 +176,9 @@ class GridGeometry:
         plain = values[:, 4 * nd :]
         covered = source >= 0
         factor, dfactor = base[:, 0], deriv[:, 0, :]
-        if self.variable_set in (VariableSet.CONFORMAL_CHI, VariableSet.ADM):  # ADM: chi made at the nodes
+        if self.variable_set is VariableSet.CONFORMAL_CHI:
             chi, dchi = factor, dfactor
-        elif self.variable_set is VariableSet.CONFORMAL_W:
+        elif self.variable_set in (VariableSet.CONFORMAL_W, VariableSet.ADM):  # ADM: W made at the nodes
             chi, dchi = factor**2, 2.0 * factor[:, None] * dfactor
         else:  # phi: chi = exp(-4 phi)
             chi = np.exp(-4.0 * factor)

@@ -10,9 +10,9 @@ The store is a cache of a pure function of the slice (the same node always gets 
 it lives as long as the :class:`~.interpolation.GridGeometry` that owns it, i.e. one find or
 measurement.
 
-ADM data are decomposed at the nodes (see :mod:`.interpolation`): rows hold chi, gamma_tilde_ij,
-their derivatives, A_tilde_ij and trace K for every variable set except that the conformal sets
-keep their own conformal factor (chi, W or phi).
+ADM data are decomposed at the nodes (see :mod:`.interpolation`): rows hold W = psi^-2,
+gamma_tilde_ij, their derivatives, A_tilde_ij and trace K; the conformal sets keep their own
+conformal factor (chi, W or phi).
 """
 
 from __future__ import annotations
@@ -32,7 +32,7 @@ _CENTRED = {
     8: np.array([1 / 280, -4 / 105, 1 / 5, -4 / 5, 0.0, 4 / 5, -1 / 5, 4 / 105, -1 / 280]),
 }
 
-_ADM_DIFFERENTIATED = ("chi",) + symmetric_field_names("gamma_tilde")
+_ADM_DIFFERENTIATED = ("W",) + symmetric_field_names("gamma_tilde")
 _PLAIN = symmetric_field_names("A_tilde") + ("trace_K",)
 
 
@@ -60,23 +60,34 @@ def _flat_view(arr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return arr.reshape(-1, order=order), np.asarray(arr.strides) // arr.itemsize
 
 
+def _distinct(values: np.ndarray, scratch: np.ndarray) -> np.ndarray:
+    """The distinct entries of ``values`` (1-D node indices), without sorting: ``scratch`` (an
+    int32 array over all nodes, entries for ``values`` overwritten) marks one representative of
+    each. O(n) where np.unique sorts or hashes."""
+    order = np.arange(values.size, dtype=np.int32)
+    scratch[values] = order  # repeated indices: one of the writes wins
+    return values[scratch[values] == order]
+
+
 def _adm_to_conformal(gamma: np.ndarray, K: np.ndarray | None):
-    """gamma (6, ...) and K (6, ...) components -> chi, gamma_tilde (6, ...), A_tilde (6, ...),
-    trace K. K may be None (only chi and gamma_tilde wanted)."""
+    """gamma (6, ...) and K (6, ...) components -> W = psi^-2 = det^(-1/6), gamma_tilde (6, ...)
+    = W^2 gamma, A_tilde (6, ...) = W^2 (K - gamma K / 3), trace K. K may be None (only W and
+    gamma_tilde wanted)."""
     xx, xy, xz, yy, yz, zz = gamma
     cof = np.array([yy * zz - yz * yz, xz * yz - xy * zz, xy * yz - xz * yy,
                     xx * zz - xz * xz, xy * xz - xx * yz, xx * yy - xy * xy])  # adjugate, same order
     det = xx * cof[0] + xy * cof[1] + xz * cof[2]
     with np.errstate(divide="ignore", invalid="ignore"):
         chi = np.cbrt(1.0 / det)
+        W = np.sqrt(chi)
         gamma_tilde = gamma * chi
         if K is None:
-            return chi, gamma_tilde, None, None
+            return W, gamma_tilde, None, None
         inv = cof / det
         mult = np.array([1.0, 2.0, 2.0, 1.0, 2.0, 1.0]).reshape((6,) + (1,) * (K.ndim - 1))
         trace_K = np.sum(mult * inv * K, axis=0)
         A_tilde = chi * (K - gamma * (trace_K / 3.0))
-    return chi, gamma_tilde, A_tilde, trace_K
+    return W, gamma_tilde, A_tilde, trace_K
 
 
 class NodeStore:
@@ -109,6 +120,11 @@ class NodeStore:
         self.n_differentiated = 7
         self.n_values = 4 * 7 + 7
         self._slot = np.full(int(np.prod(self.shape)), -1, dtype=np.int32)  # flat node -> row
+        # The differentiated fields themselves (conformal, for ADM: decomposed once per node, not
+        # once per stencil that reads it), on first touch by a difference stencil.
+        self._base_slot = np.full(int(np.prod(self.shape)), -1, dtype=np.int32)
+        self._base = np.empty((0, 7))
+        self._base_count = 0
         self.values = np.empty((0, self.n_values))
         self.flags = np.empty(0, dtype=np.uint8)
         self.count = 0
@@ -120,11 +136,11 @@ class NodeStore:
     def slots(self, flat: np.ndarray) -> np.ndarray:
         """Rows of the nodes ``flat`` (any shape of flat C-order node indices), computing the
         missing ones first. The nodes must have a full difference stencil inside the patch."""
-        slots = self._slot[flat]
+        slots = np.take(self._slot, flat)
         missing = slots < 0
         if missing.any():
-            self._fill(np.unique(flat[missing]))
-            slots = self._slot[flat]
+            self._fill(_distinct(flat[missing], self._slot))
+            slots = np.take(self._slot, flat)
         return slots
 
     def _grow(self, extra: int) -> None:
@@ -155,6 +171,32 @@ class NodeStore:
                     taps.append(t)
         return np.array(taps)
 
+    def _base_rows(self, flat_taps: np.ndarray) -> np.ndarray:
+        """(n, 7) differentiated fields (chi or the conformal factor, gamma_tilde) at flat node
+        indices, decomposing ADM data once per node."""
+        slots = np.take(self._base_slot, flat_taps)
+        missing = slots < 0
+        if missing.any():
+            new = _distinct(flat_taps[missing], self._base_slot)
+            ijk = np.stack(np.unravel_index(new, self.shape), axis=1)
+            zero = np.zeros((1, 3), int)
+            raw = np.empty((len(self._raw_differentiated), new.size))
+            for f, name in enumerate(self._raw_differentiated):
+                raw[f] = self._read(name, ijk, zero)[0]
+            if self.variable_set is VariableSet.ADM:
+                W, gamma_tilde, _, _ = _adm_to_conformal(raw, None)
+                raw = np.concatenate([W[None], gamma_tilde])
+            need = self._base_count + new.size
+            if need > self._base.shape[0]:
+                grown = np.empty((max(need, 2 * self._base.shape[0], 8192), 7))
+                grown[: self._base_count] = self._base[: self._base_count]
+                self._base = grown
+            self._base[self._base_count: need] = raw.T
+            self._base_slot[new] = np.arange(self._base_count, need, dtype=np.int32)
+            self._base_count = need
+            slots = np.take(self._base_slot, flat_taps)
+        return np.take(self._base, slots, axis=0)
+
     def _read(self, name: str, nodes_ijk: np.ndarray, taps: np.ndarray) -> np.ndarray:
         flat, strides = self._raw[name]
         return np.take(flat, self._offsets(nodes_ijk, strides, taps)).astype(float, copy=False)
@@ -167,15 +209,14 @@ class NodeStore:
         g = self.reach
         weights = centred_difference_weights(self.order)
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-            cross = np.array([self._read(n, ijk, taps) for n in self._raw_differentiated])  # (7 or 6, taps, q)
+            shape_strides = np.array([self.shape[1] * self.shape[2], self.shape[2], 1])
+            flat_taps = self._offsets(ijk, shape_strides, taps)  # (taps, q) C-order node indices
+            diff_fields = np.moveaxis(self._base_rows(flat_taps), -1, 0)  # (7, taps, q)
             plain = np.array([self._read(n, ijk, centre)[0] for n in self._raw_plain])  # (6 or 7, q)
             if self.variable_set is VariableSet.ADM:
-                chi, gamma_tilde, _, _ = _adm_to_conformal(cross, None)
-                diff_fields = np.concatenate([chi[None], gamma_tilde])  # (7, taps, q)
-                _, _, A_tilde, trace_K = _adm_to_conformal(cross[:, 0], plain)
+                gamma = np.array([self._read(n, ijk, centre)[0] for n in self._raw_differentiated])
+                _, _, A_tilde, trace_K = _adm_to_conformal(gamma, plain)
                 plain = np.concatenate([A_tilde, trace_K[None]])
-            else:
-                diff_fields = cross
             rows = np.empty((q, self.n_values))
             rows[:, :7] = diff_fields[:, 0].T
             for axis in range(3):

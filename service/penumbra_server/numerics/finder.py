@@ -265,6 +265,8 @@ class _Evaluated:
     geometry: PointGeometry
     theta: np.ndarray
     u: np.ndarray
+    shift: float  # radial shift (M) of the points for the Jacobian's h column
+    shifted: object  # () -> PointGeometry at the points moved out by ``shift``
 
 
 def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
@@ -274,8 +276,9 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
     if not np.all(np.isfinite(pts)):
         run.last_failure = DIVERGED
         return None
+    shift = 1e-7 * float(np.mean(rd.h))
     try:
-        geo = run.source(pts)
+        geo, shifted = run.source.evaluate(pts, shift * unit_vectors(rd.theta, rd.phi)[0])
     except ExcisedDataError as exc:
         run.last_failure = NEEDS_EXCISED_DATA
         run.excised_note = str(exc)
@@ -308,47 +311,60 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     run.max_hist.append(float(np.max(np.abs(th))))
     run.rms_hist.append(float(np.sqrt(np.sum(run.grid.weights * th**2) / (4 * np.pi))))
-    return _Evaluated(surface, rd, pts, geo, th, terms.u)
+    return _Evaluated(surface, rd, pts, geo, th, terms.u, shift, shifted)
 
 
 def _projected_rms(run: _Run, values: np.ndarray) -> float:
     return float(np.linalg.norm(run.grid.project(values)) / np.sqrt(4 * np.pi))
 
 
+def _stacked(geometries: list[PointGeometry]) -> PointGeometry:
+    return PointGeometry(*(np.concatenate([getattr(g, name) for g in geometries])
+                           for name in ("gamma", "dgamma", "K", "covered", "source_patch")))
+
+
 def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
-    """d(projected Theta)/d(coefficients), square ((lmax+1)^2)."""
+    """d(projected Theta)/d(coefficients), square ((lmax+1)^2).
+
+    Theta at a node depends on h, its first and second angular derivatives there and on the
+    fields there; the eight perturbed evaluations (h with the fields moved along, central
+    differences in h_t and h_p, unit steps in the second derivatives, which enter linearly)
+    go through one batched call of the expansion.
+    """
     rd, geo = ev.rd, ev.geometry
     scale = float(np.mean(rd.h))
-    # h: moves the point too, so the fields are re-interpolated (the one extra evaluation).
-    eps_h = 1e-7 * scale
-    n, _, _ = unit_vectors(rd.theta, rd.phi)
+    # h: moves the point too, so the fields come from the interpolant shifted along n.
     try:
-        geo_h = run.source(ev.points + eps_h * n)
+        geo_h = ev.shifted()
     except (ExcisedDataError, SliceError):
         geo_h = geo  # at an excision boundary or next to bad data: as at the data edge
     if not geo_h.covered.all():
         geo_h = geo  # at the data edge: drop the field variation rather than fail
+    eps_first, eps_second = 1e-5 * scale, scale
+    variants = [("h", ev.shift), ("h_t", eps_first), ("h_t", -eps_first), ("h_p", eps_first), ("h_p", -eps_first),
+                ("h_tt", eps_second), ("h_tp", eps_second), ("h_pp", eps_second)]
+    names = ("theta", "phi", "h", "h_t", "h_p", "h_tt", "h_tp", "h_pp")
+    columns = {name: [] for name in names}
+    for changed, eps in variants:
+        for name in names:
+            value = getattr(rd, name)
+            columns[name].append(value + eps if name == changed else value)
+    batched = RadiusDerivatives(**{name: np.concatenate(v) for name, v in columns.items()})
+    geometry = _stacked([geo_h] + [geo] * (len(variants) - 1))
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        d_h = (expansion_at(rd.replace(h=rd.h + eps_h), geo_h).theta - ev.theta) / eps_h
-        cols = {}
-        # First derivatives enter nonlinearly: central differences at fixed fields.
-        for name in ("h_t", "h_p"):
-            eps = 1e-5 * scale
-            plus = expansion_at(rd.replace(**{name: getattr(rd, name) + eps}), geo).theta
-            minus = expansion_at(rd.replace(**{name: getattr(rd, name) - eps}), geo).theta
-            cols[name] = (plus - minus) / (2 * eps)
-        # Second derivatives enter linearly: a unit one-sided difference is exact up to round-off.
-        for name in ("h_tt", "h_tp", "h_pp"):
-            eps = scale
-            cols[name] = (expansion_at(rd.replace(**{name: getattr(rd, name) + eps}), geo).theta - ev.theta) / eps
+        theta = expansion_at(batched, geometry).theta.reshape(len(variants), -1)
+    d_h = (theta[0] - ev.theta) / ev.shift
+    d_t = (theta[1] - theta[2]) / (2 * eps_first)  # first derivatives enter nonlinearly
+    d_p = (theta[3] - theta[4]) / (2 * eps_first)
+    d_tt, d_tp, d_pp = ((theta[k] - ev.theta) / eps_second for k in (5, 6, 7))  # linear: exact
     B = run.grid.basis
     J_nodes = (
         d_h[:, None] * B.Y
-        + cols["h_t"][:, None] * B.d_theta
-        + cols["h_p"][:, None] * B.d_phi
-        + cols["h_tt"][:, None] * B.d_theta_theta
-        + cols["h_tp"][:, None] * B.d_theta_phi
-        + cols["h_pp"][:, None] * B.d_phi_phi
+        + d_t[:, None] * B.d_theta
+        + d_p[:, None] * B.d_phi
+        + d_tt[:, None] * B.d_theta_theta
+        + d_tp[:, None] * B.d_theta_phi
+        + d_pp[:, None] * B.d_phi_phi
     )
     return B.Y.T @ (run.grid.weights[:, None] * J_nodes)
 

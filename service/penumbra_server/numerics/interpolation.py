@@ -35,7 +35,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .excision import ExcisedDataError
+from .excision import EXCISION_MASK_FIELD, ExcisedDataError
 from .geometry import PointGeometry, physical_from_conformal, symmetric_from_components
 from .node_store import NodeStore, centred_difference_weights, field_layout
 from .slices import Slice, SliceError, VariableSet
@@ -68,6 +68,23 @@ def lagrange_weights(s: np.ndarray, nodes: int) -> np.ndarray:
     return w
 
 
+def lagrange_weight_derivatives(s: np.ndarray, nodes: int) -> np.ndarray:
+    """(N, nodes) d/ds of :func:`lagrange_weights` at s (N,)."""
+    s = np.asarray(s, dtype=float)
+    out = np.zeros(s.shape + (nodes,))
+    for a in range(nodes):
+        others = [b for b in range(nodes) if b != a]
+        denominator = np.prod([a - b for b in others], dtype=float)
+        for skip in others:  # product rule: drop one factor at a time
+            term = np.ones_like(s)
+            for b in others:
+                if b != skip:
+                    term = term * (s - b)
+            out[..., a] += term
+        out[..., a] /= denominator
+    return out
+
+
 def stencil_weights(s: np.ndarray, nodes: int) -> np.ndarray:
     """(N, nodes^3) tensor-product Lagrange weights at local coordinates s (N, 3), x slowest."""
     wx, wy, wz = (lagrange_weights(s[:, a], nodes) for a in range(3))
@@ -85,6 +102,11 @@ class GridGeometry:
 
     The node stores are caches of pure functions of the slice: calling the same instance twice
     with the same points gives the same values.
+
+    Next to excised regions (declared on the slice) a point whose stencils reach excised nodes
+    is served by ``next_lower``, the same interpolation of order - 2 (down to 4), whose stencils
+    are narrower; only when the lowest one still reaches excised data does the call raise
+    :class:`ExcisedDataError`.
     """
 
     variable_set: VariableSet
@@ -96,6 +118,7 @@ class GridGeometry:
     differentiated: tuple[str, ...]
     plain: tuple[str, ...]
     slice_: Slice | None = None
+    next_lower: "GridGeometry | None" = None
 
     def contains(self, points: np.ndarray) -> bool:
         """Whether every point lies inside the region given at preparation."""
@@ -106,9 +129,11 @@ class GridGeometry:
         """Nodes whose values have been computed so far (all patches)."""
         return sum(b.count for b in self.blocks)
 
-    def stencils(self, points: np.ndarray) -> list[tuple[NodeStore, np.ndarray, np.ndarray, np.ndarray]]:
+    def stencils(self, points: np.ndarray, shift: np.ndarray | None = None):
         """For each patch serving some points (finest first): (store, point indices, flat node
-        indices (m, order^3), weights (m, order^3)). Points no patch serves are left out."""
+        indices (m, order^3), weights (m, order^3), shift weights (m, order^3) or None). Points no
+        patch serves are left out. With ``shift`` (N, 3), the shift weights give the derivative
+        of the interpolant along each point's shift vector (units: per unit shift)."""
         points = np.asarray(points, dtype=float).reshape(-1, 3)
         todo = np.ones(points.shape[0], dtype=bool)
         p = self.order
@@ -131,25 +156,62 @@ class GridGeometry:
             J = (b[:, 1, None] + off)[:, None, :, None]
             K = (b[:, 2, None] + off)[:, None, None, :]
             flat = ((I * store.shape[1] + J) * store.shape[2] + K).reshape(sel.size, -1)
-            out.append((store, sel, flat, stencil_weights(s, p)))
+            w = [lagrange_weights(s[:, a], p) for a in range(3)]
+            weights = (w[0][:, :, None, None] * w[1][:, None, :, None] * w[2][:, None, None, :]).reshape(sel.size, -1)
+            shift_weights = None
+            if shift is not None:
+                ds = shift[sel] / store.spacing  # shift in node units
+                dw = [lagrange_weight_derivatives(s[:, a], p) * ds[:, a, None] for a in range(3)]
+                shift_weights = (dw[0][:, :, None, None] * w[1][:, None, :, None] * w[2][:, None, None, :]
+                                 + w[0][:, :, None, None] * dw[1][:, None, :, None] * w[2][:, None, None, :]
+                                 + w[0][:, :, None, None] * w[1][:, None, :, None] * dw[2][:, None, None, :]
+                                 ).reshape(sel.size, -1)
+            out.append((store, sel, flat, weights, shift_weights))
             todo[sel] = False
         return out
 
     def __call__(self, points: np.ndarray) -> PointGeometry:
+        return self.evaluate(points)[0]
+
+    def evaluate(self, points: np.ndarray, shift: np.ndarray | None = None):
+        """(geometry at ``points``, geometry at ``points + shift`` to first order in the shift,
+        or None without ``shift``). The second comes from the derivative of the same
+        interpolant along the shift, on the stencil values already gathered: no second gather.
+        ``shift`` (N, 3) in M; meant for small shifts (a Jacobian's perturbation)."""
         points = np.asarray(points, dtype=float).reshape(-1, 3)
         n = points.shape[0]
         nv = len(self.differentiated) * 4 + len(self.plain)
         values = np.full((n, nv), np.nan)
+        dvalues = None if shift is None else np.full((n, nv), np.nan)
         source = np.full(n, -1, dtype=int)
-        for store, sel, flat, weights in self.stencils(points):
+        lower = np.zeros(n, dtype=bool)  # points handed to the next lower order
+        for store, sel, flat, weights, shift_weights in self.stencils(points, shift):
             slots = store.slots(flat)
             flags = np.take(store.flags, slots)
             if flags.any():
-                self._raise_bad(store, flags, flat, points[sel])
+                excised = (flags & NodeStore.EXCISED).any(axis=1)
+                if self.next_lower is not None and excised.any() and not (flags[~excised] != 0).any():
+                    lower[sel[excised]] = True
+                    keep = ~excised
+                    sel, flat, weights, slots = sel[keep], flat[keep], weights[keep], slots[keep]
+                    shift_weights = None if shift_weights is None else shift_weights[keep]
+                else:
+                    self._raise_bad(store, flags, flat, points[sel])
             rows = np.take(store.values, slots, axis=0)  # (m, p^3, nv), one contiguous row per node
-            values[sel] = np.matmul(weights[:, None, :], rows)[:, 0, :]
+            if shift_weights is None:
+                values[sel] = np.matmul(weights[:, None, :], rows)[:, 0, :]
+            else:
+                both = np.matmul(np.stack([weights, shift_weights], axis=1), rows)  # (m, 2, nv)
+                values[sel], dvalues[sel] = both[:, 0, :], both[:, 1, :]
             source[sel] = store.patch_index
-        return self._to_physical(values, source)
+        geometry = self._to_physical(values, source)
+        moved = None if shift is None else self._to_physical(values + dvalues, source)
+        if lower.any():
+            idx = np.nonzero(lower)[0]
+            sub, sub_moved = self.next_lower.evaluate(points[idx], None if shift is None else shift[idx])
+            geometry = _merged(geometry, idx, sub)
+            moved = None if shift is None else _merged(moved, idx, sub_moved)
+        return geometry, moved
 
     def _raise_bad(self, store: NodeStore, flags: np.ndarray, flat: np.ndarray, pts: np.ndarray) -> None:
         excised = (flags & NodeStore.EXCISED).any(axis=1)
@@ -191,6 +253,20 @@ class GridGeometry:
         return PointGeometry(gamma, dgamma, K, covered, source)
 
 
+def _merged(geometry: PointGeometry, idx: np.ndarray, part: PointGeometry) -> PointGeometry:
+    """``geometry`` with the points ``idx`` replaced by ``part``."""
+    arrays = {}
+    for name in ("gamma", "dgamma", "K", "covered", "source_patch"):
+        whole = getattr(geometry, name).copy()
+        whole[idx] = getattr(part, name)
+        arrays[name] = whole
+    return PointGeometry(**arrays)
+
+
+def _declares_excision(slice_: Slice) -> bool:
+    return bool(slice_.excised_spheres) or any(EXCISION_MASK_FIELD in p.fields for p in slice_.patches)
+
+
 def grid_geometry(slice_: Slice, lower=None, upper=None, *, order: int = DEFAULT_ORDER) -> GridGeometry:
     """Prepare interpolation of the slice's geometry (nothing is computed until points come).
 
@@ -214,7 +290,11 @@ def grid_geometry(slice_: Slice, lower=None, upper=None, *, order: int = DEFAULT
     boxes = tuple(
         (p.origin + reach * p.spacing, p.upper - reach * p.spacing, i) for i, p in enumerate(slice_.patches)
     )
-    return GridGeometry(slice_.variable_set, order, lower, upper, blocks, boxes, differentiated, plain, slice_)
+    next_lower = None
+    if order > 4 and _declares_excision(slice_):
+        next_lower = grid_geometry(slice_, lower, upper, order=order - 2)
+    return GridGeometry(slice_.variable_set, order, lower, upper, blocks, boxes, differentiated, plain, slice_,
+                        next_lower)
 
 
 def describe_uncovered(geometry: GridGeometry, points: np.ndarray) -> str:

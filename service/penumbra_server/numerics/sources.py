@@ -32,15 +32,33 @@ class TrackedSource:
     evaluations: int = 0
     _grid: GridGeometry | None = field(default=None, repr=False)
 
-    def __call__(self, points: np.ndarray) -> PointGeometry:
-        self.evaluations += 1
-        if self.exact is not None:
-            return self.exact(points)
+    def _prepared(self, points: np.ndarray) -> GridGeometry:
         if self._grid is None:
             lo, hi = points.min(axis=0), points.max(axis=0)
             pad = self.margin_fraction * np.max(hi - lo) + 1e-12
             self._grid = grid_geometry(self.slice_, lo - pad, hi + pad, order=self.order)
-        return self._grid(points)
+        return self._grid
+
+    def __call__(self, points: np.ndarray) -> PointGeometry:
+        self.evaluations += 1
+        if self.exact is not None:
+            return self.exact(points)
+        return self._prepared(points)(points)
+
+    def evaluate(self, points: np.ndarray, shift: np.ndarray):
+        """(geometry at ``points``, a callable giving the geometry at ``points + shift``). For
+        grid data the second is the first-order shift of the same interpolant, made on the
+        stencil values already gathered (one gather for both); for exact sources the callable
+        evaluates again (counted when called)."""
+        self.evaluations += 1
+        if self.exact is not None:
+            def shifted():
+                self.evaluations += 1
+                return self.exact(points + shift)
+
+            return self.exact(points), shifted
+        geometry, moved = self._prepared(points).evaluate(points, shift)
+        return geometry, lambda: moved
 
     @property
     def grid(self) -> GridGeometry | None:

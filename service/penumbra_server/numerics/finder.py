@@ -433,12 +433,13 @@ def _improve(source, run, settings, status, ev, nit, proj, between):
     """Tell interpolation floor from truncation; against truncation, recentre and raise l_max.
     Returns the updated (status, ev, nit, proj, between, floor, recentred, run)."""
     recentred = False
-    floor = interpolation_floor(source, ev.surface, settings.interpolation_order)
+    floor = float("nan")  # estimated only when the residual is above the tolerance
     tried_recentre = False
     while True:
         worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
         if worst <= settings.tolerance:
             return CONVERGED, ev, nit, proj, between, floor, recentred, run
+        floor = interpolation_floor(source, ev.surface, settings.interpolation_order)
         if np.isfinite(floor) and worst <= max(_FLOOR_FACTOR * floor, settings.tolerance):
             return CONVERGED_AT_INTERPOLATION_FLOOR, ev, nit, proj, between, floor, recentred, run
         candidates = []
@@ -465,7 +466,6 @@ def _improve(source, run, settings, status, ev, nit, proj, between):
             break
         ev, proj, between, run, is_recentre = better
         recentred |= is_recentre
-        floor = interpolation_floor(source, ev.surface, settings.interpolation_order)
     worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
     if worst * ev.surface.mean_radius > settings.truncation_tolerance:
         return UNRESOLVED, ev, nit, proj, between, floor, recentred, run

@@ -131,7 +131,8 @@ class GridGeometry:
 
     def stencils(self, points: np.ndarray, shift: np.ndarray | None = None):
         """For each patch serving some points (finest first): (store, point indices, flat node
-        indices (m, order^3), weights (m, order^3), shift weights (m, order^3) or None). Points no
+        indices (m, order^3), weights (m, order^3), shift weights (m, order^3) or None, stencil
+        corners (m, 3): node indices of each stencil's node [0, 0, 0]). Points no
         patch serves are left out. With ``shift`` (N, 3), the shift weights give the derivative
         of the interpolant along each point's shift vector (units: per unit shift)."""
         points = np.asarray(points, dtype=float).reshape(-1, 3)
@@ -166,7 +167,7 @@ class GridGeometry:
                                  + w[0][:, :, None, None] * dw[1][:, None, :, None] * w[2][:, None, None, :]
                                  + w[0][:, :, None, None] * w[1][:, None, :, None] * dw[2][:, None, None, :]
                                  ).reshape(sel.size, -1)
-            out.append((store, sel, flat, weights, shift_weights))
+            out.append((store, sel, flat, weights, shift_weights, b))
             todo[sel] = False
         return out
 
@@ -185,7 +186,7 @@ class GridGeometry:
         dvalues = None if shift is None else np.full((n, nv), np.nan)
         source = np.full(n, -1, dtype=int)
         lower = np.zeros(n, dtype=bool)  # points handed to the next lower order
-        for store, sel, flat, weights, shift_weights in self.stencils(points, shift):
+        for store, sel, flat, weights, shift_weights, corners in self.stencils(points, shift):
             slots = store.slots(flat)
             flags = np.take(store.flags, slots)
             if flags.any():

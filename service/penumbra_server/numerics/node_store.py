@@ -147,12 +147,11 @@ class NodeStore:
         need = self.count + extra
         if need <= self.values.shape[0]:
             return
-        capacity = max(need, 2 * self.values.shape[0], 4096)
-        values = np.empty((capacity, self.n_values))
-        values[: self.count] = self.values[: self.count]
-        flags = np.zeros(capacity, dtype=np.uint8)
-        flags[: self.count] = self.flags[: self.count]
-        self.values, self.flags = values, flags
+        capacity = max(need + need // 4, 4096)  # growth is cheap (remapped), zero-filling is not
+        # In-place reallocation: large blocks are remapped by the allocator, not copied. The store
+        # hands out copies only (np.take), so no view of the old block can exist.
+        self.values.resize((capacity, self.n_values), refcheck=False)
+        self.flags.resize(capacity, refcheck=False)
 
     def _offsets(self, nodes_ijk: np.ndarray, strides: np.ndarray, taps: np.ndarray) -> np.ndarray:
         """(n_taps, q) flat offsets into a raw array of the taps (n_taps, 3) about each node."""
@@ -177,7 +176,7 @@ class NodeStore:
         slots = np.take(self._base_slot, flat_taps)
         missing = slots < 0
         if missing.any():
-            new = _distinct(flat_taps[missing], self._base_slot)
+            new = np.sort(_distinct(flat_taps[missing], self._base_slot))
             ijk = np.stack(np.unravel_index(new, self.shape), axis=1)
             zero = np.zeros((1, 3), int)
             raw = np.empty((len(self._raw_differentiated), new.size))
@@ -188,9 +187,7 @@ class NodeStore:
                 raw = np.concatenate([W[None], gamma_tilde])
             need = self._base_count + new.size
             if need > self._base.shape[0]:
-                grown = np.empty((max(need, 2 * self._base.shape[0], 8192), 7))
-                grown[: self._base_count] = self._base[: self._base_count]
-                self._base = grown
+                self._base.resize((max(need, 2 * self._base.shape[0], 8192), 7), refcheck=False)
             self._base[self._base_count: need] = raw.T
             self._base_slot[new] = np.arange(self._base_count, need, dtype=np.int32)
             self._base_count = need
@@ -201,36 +198,52 @@ class NodeStore:
         flat, strides = self._raw[name]
         return np.take(flat, self._offsets(nodes_ijk, strides, taps)).astype(float, copy=False)
 
+    #: Nodes filled per chunk: bounds the temporaries (taps x chunk x fields) to a few MiB.
+    _CHUNK = 8192
+
+    def _difference_matrix(self, taps: np.ndarray) -> np.ndarray:
+        """(4, n_taps): the centre value, then d/dx, d/dy, d/dz by centred differences."""
+        weights = centred_difference_weights(self.order)
+        D = np.zeros((4, len(taps)))
+        D[0, 0] = 1.0
+        for t, tap in enumerate(taps[1:], start=1):
+            axis = int(np.nonzero(tap)[0][0])
+            D[1 + axis, t] = weights[self.reach + int(tap[axis])] / self.spacing[axis]
+        return D
+
     def _fill(self, flat_nodes: np.ndarray) -> None:
+        self._grow(flat_nodes.size)
+        flat_nodes = np.sort(flat_nodes)  # neighbouring nodes read neighbouring memory
+        taps = self._taps()
+        D = self._difference_matrix(taps)
+        for start in range(0, flat_nodes.size, self._CHUNK):
+            self._fill_chunk(flat_nodes[start: start + self._CHUNK], taps, D)
+
+    def _fill_chunk(self, flat_nodes: np.ndarray, taps: np.ndarray, D: np.ndarray) -> None:
         q = flat_nodes.size
         ijk = np.stack(np.unravel_index(flat_nodes, self.shape), axis=1)
-        taps = self._taps()
         centre = taps[:1]
-        g = self.reach
-        weights = centred_difference_weights(self.order)
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-            shape_strides = np.array([self.shape[1] * self.shape[2], self.shape[2], 1])
-            flat_taps = self._offsets(ijk, shape_strides, taps)  # (taps, q) C-order node indices
-            diff_fields = np.moveaxis(self._base_rows(flat_taps), -1, 0)  # (7, taps, q)
+            if self.variable_set is VariableSet.ADM:
+                shape_strides = np.array([self.shape[1] * self.shape[2], self.shape[2], 1])
+                flat_taps = self._offsets(ijk, shape_strides, taps)  # (taps, q) C-order node indices
+                diff_fields = np.moveaxis(self._base_rows(flat_taps), -1, 0)  # (7, taps, q)
+            else:  # conformal data: the stencils read the patch arrays directly
+                diff_fields = np.array([self._read(n, ijk, taps) for n in self._raw_differentiated])
             plain = np.array([self._read(n, ijk, centre)[0] for n in self._raw_plain])  # (6 or 7, q)
             if self.variable_set is VariableSet.ADM:
                 gamma = np.array([self._read(n, ijk, centre)[0] for n in self._raw_differentiated])
                 _, _, A_tilde, trace_K = _adm_to_conformal(gamma, plain)
                 plain = np.concatenate([A_tilde, trace_K[None]])
+            values_and_derivatives = np.einsum("at,ftq->qfa", D, diff_fields)  # (q, 7, 4)
             rows = np.empty((q, self.n_values))
-            rows[:, :7] = diff_fields[:, 0].T
-            for axis in range(3):
-                # taps 1 + axis*2g .. : offsets -g..-1, 1..g along this axis
-                start = 1 + axis * 2 * g
-                w = np.concatenate([weights[:g], weights[g + 1:]])
-                d = np.einsum("t,ftq->fq", w, diff_fields[:, start:start + 2 * g]) / self.spacing[axis]
-                rows[:, 7 + axis: 28: 3] = d.T
+            rows[:, :7] = values_and_derivatives[:, :, 0]
+            rows[:, 7:28] = values_and_derivatives[:, :, 1:].reshape(q, 21)  # field-major, then x, y, z
             rows[:, 28:] = plain.T
         flags = np.where(np.isfinite(rows).all(axis=1), 0, self.NON_FINITE).astype(np.uint8)
         excised = self._excised(ijk, taps)
         if excised is not None:
             flags[excised] = self.EXCISED
-        self._grow(q)
         self.values[self.count: self.count + q] = rows
         self.flags[self.count: self.count + q] = flags
         self._slot[flat_nodes] = np.arange(self.count, self.count + q, dtype=np.int32)

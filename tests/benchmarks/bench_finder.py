@@ -179,22 +179,30 @@ def peer_comparison() -> None:
 
 def iteration_cost() -> None:
     """One Newton iteration at l_max 12 against one vectorised gather of the same fields at the
-    same nodes. The iteration is the difference of two finds that stop after 3 and after 1
-    iterations (same guess, no fallback), halved, so set-up and final checks cancel."""
+    same nodes. The iteration is the finder's own steps (evaluate the iterate, assemble the
+    Jacobian, solve, evaluate the trial step) on a prepared geometry, best of many, at the
+    solution: the steady state of a find, where the data's nodes are already prepared."""
+    from penumbra_server.numerics import finder as finder_module
+    from penumbra_server.numerics.sources import as_tracked_source
+
     print("\n6. one Newton iteration against the gather floor (l_max 12)")
     pair = BrillLindquist(masses=np.array([0.6, 0.4]), positions=np.array([[0.55, 0.1, 0.0], [-0.8, -0.15, 0.0]]))
     centre = pair.positions[0]
     sl = sample_slice(pair, [cube(centre, 0.8, 0.025)], variable_set="conformal_w")
     lmax = 12
-    guess = Surface.sphere(centre + [0.03, 0.0, 0.0], 0.4, lmax)
+    found = find_surface(sl, Surface.sphere(centre + [0.03, 0.0, 0.0], 0.4, lmax),
+                         settings=settings_of(lmax=lmax, lmax_cap=lmax)).surface
+    source = as_tracked_source(sl, order=settings_of().interpolation_order)
+    run = finder_module._Run(source, angular_grid(lmax))
 
-    def find(iterations):
-        return find_surface(sl, guess, settings=settings_of(lmax=lmax, lmax_cap=lmax, tolerance=1e-15,
-                                                            max_iterations=iterations, fallback_to_flow=False))
+    def one_iteration():
+        ev = finder_module._evaluate(run, found)
+        J = finder_module._jacobian(run, ev)
+        step = np.linalg.solve(J, -run.grid.project(ev.theta))
+        return finder_module._evaluate(run, Surface(found.centre, lmax, found.coefficients + step))
 
-    t1, r1 = best_of(lambda: find(1), 5)
-    t3, r3 = best_of(lambda: find(3), 5)
-    per_iteration = (t3 - t1) / 2
+    one_iteration()  # prepares the nodes
+    guess = found
     order = settings_of().interpolation_order
     patch = sl.patches[0]
     names = list(patch.fields)
@@ -210,10 +218,13 @@ def iteration_cost() -> None:
     j = (base[:, 1, None] + off)[:, None, :, None]
     k = (base[:, 2, None] + off)[:, None, None, :]
     flat = np.ravel_multi_index((i, j, k), patch.shape).reshape(len(pts), -1)
-    t_gather, _ = best_of(lambda: np.take(rows, flat, axis=0), 20)
+    # Interleaved, fastest of many: both see the same moments of a shared machine's load.
+    t_gather = per_iteration = float("inf")
+    for _ in range(40):
+        t_gather = min(t_gather, best_of(lambda: np.take(rows, flat, axis=0), 1)[0])
+        per_iteration = min(per_iteration, best_of(one_iteration, 1)[0])
     print(f"   {grid.size} nodes, {order}^3 stencil, {n_values} values per node: gather {t_gather * 1e3:.2f} ms, "
-          f"Newton iteration {per_iteration * 1e3:.2f} ms (finds of 1 and 3 iterations: {t1 * 1e3:.0f} and "
-          f"{t3 * 1e3:.0f} ms, nit {r1.nit} and {r3.nit})")
+          f"Newton iteration {per_iteration * 1e3:.2f} ms")
     print(f"iteration cost / gather floor: {per_iteration / t_gather:.1f}")
 
 
@@ -230,7 +241,7 @@ def _scaling_case(points_per_radius: float) -> dict:
     res = find_surface(sl, guess, settings=settings)
     peak = tracemalloc.get_traced_memory()[1]
     tracemalloc.stop()
-    t, res = best_of(lambda: find_surface(sl, guess, settings=settings), 3)
+    t, res = best_of(lambda: find_surface(sl, guess, settings=settings), 5)
     return dict(time=t, peak_mib=peak / 2**20, status=res.status, nodes=sl.patches[0].shape[0],
                 data_mib=sl.nbytes() / 2**20)
 
@@ -240,10 +251,14 @@ def resolution_scaling() -> None:
     measured by tracemalloc, the slice's own arrays excluded)."""
     print("\n7. the same hole at two resolutions (r = horizon radius)")
     out = {}
+    for _ in range(2):  # two alternating rounds, the faster of each: the machine is shared
+        for ppr in (12.5, 50.0):
+            proc = subprocess.run([sys.executable, __file__, "--scaling-case", str(ppr)], capture_output=True,
+                                  text=True, check=True, cwd=Path(__file__).parent)
+            case = json.loads(proc.stdout.strip().splitlines()[-1])
+            if ppr not in out or case["time"] < out[ppr]["time"]:
+                out[ppr] = case
     for ppr in (12.5, 50.0):
-        proc = subprocess.run([sys.executable, __file__, "--scaling-case", str(ppr)], capture_output=True, text=True,
-                              check=True, cwd=Path(__file__).parent)
-        out[ppr] = json.loads(proc.stdout.strip().splitlines()[-1])
         c = out[ppr]
         print(f"   r/dx = {ppr:4.1f}: {c['nodes']}^3 nodes ({c['data_mib']:.0f} MiB of fields), find "
               f"{c['time'] * 1e3:.0f} ms, status {c['status']}, peak {c['peak_mib']:.1f} MiB during the find")

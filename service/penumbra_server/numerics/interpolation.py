@@ -68,21 +68,20 @@ def lagrange_weights(s: np.ndarray, nodes: int) -> np.ndarray:
     return w
 
 
+def _lagrange_derivative_coefficients(nodes: int) -> np.ndarray:
+    """(nodes - 1, nodes) C with d/ds L_a(s) = sum_k C[k, a] s^k for the Lagrange basis on
+    0..nodes-1 (coefficients from the inverse Vandermonde matrix)."""
+    vandermonde = np.vander(np.arange(nodes, dtype=float), nodes, increasing=True)
+    coefficients = np.linalg.inv(vandermonde)  # row k: coefficient of s^k in each L_a
+    return coefficients[1:] * np.arange(1, nodes)[:, None]
+
+
 def lagrange_weight_derivatives(s: np.ndarray, nodes: int) -> np.ndarray:
-    """(N, nodes) d/ds of :func:`lagrange_weights` at s (N,)."""
+    """(N, nodes) d/ds of :func:`lagrange_weights` at s (N,) (monomial form: round-off about
+    1e-13 relative, ample for a Jacobian's field variation)."""
     s = np.asarray(s, dtype=float)
-    out = np.zeros(s.shape + (nodes,))
-    for a in range(nodes):
-        others = [b for b in range(nodes) if b != a]
-        denominator = np.prod([a - b for b in others], dtype=float)
-        for skip in others:  # product rule: drop one factor at a time
-            term = np.ones_like(s)
-            for b in others:
-                if b != skip:
-                    term = term * (s - b)
-            out[..., a] += term
-        out[..., a] /= denominator
-    return out
+    powers = s[..., None] ** np.arange(nodes - 1)
+    return powers @ _lagrange_derivative_coefficients(nodes)
 
 
 def stencil_weights(s: np.ndarray, nodes: int) -> np.ndarray:
@@ -153,12 +152,11 @@ class GridGeometry:
             sel = idx[inside]
             b = base[inside]
             s = rel[inside] - b
-            I = (b[:, 0, None] + off)[:, :, None, None]
-            J = (b[:, 1, None] + off)[:, None, :, None]
-            K = (b[:, 2, None] + off)[:, None, None, :]
-            flat = ((I * store.shape[1] + J) * store.shape[2] + K).reshape(sel.size, -1)
+            strides = np.array([store.shape[1] * store.shape[2], store.shape[2], 1])
+            offsets = ((off[:, None, None] * strides[0] + off[None, :, None] * strides[1]) + off[None, None, :]).ravel()
+            flat = (b @ strides)[:, None] + offsets[None, :]
             w = [lagrange_weights(s[:, a], p) for a in range(3)]
-            weights = (w[0][:, :, None, None] * w[1][:, None, :, None] * w[2][:, None, None, :]).reshape(sel.size, -1)
+            weights = np.einsum("ma,mb,mc->mabc", w[0], w[1], w[2]).reshape(sel.size, -1)
             shift_weights = None
             if shift is not None:
                 ds = shift[sel] / store.spacing  # shift in node units
@@ -175,9 +173,10 @@ class GridGeometry:
         return self.evaluate(points)[0]
 
     def evaluate(self, points: np.ndarray, shift: np.ndarray | None = None):
-        """(geometry at ``points``, geometry at ``points + shift`` to first order in the shift,
-        or None without ``shift``). The second comes from the derivative of the same
-        interpolant along the shift, on the stencil values already gathered: no second gather.
+        """(geometry at ``points``, a callable giving the geometry at ``points + shift`` to first
+        order in the shift, or None without ``shift``). The second comes from the derivative of
+        the same interpolant along the shift, on the stencil values already gathered: no second
+        gather.
         ``shift`` (N, 3) in M; meant for small shifts (a Jacobian's perturbation)."""
         points = np.asarray(points, dtype=float).reshape(-1, 3)
         n = points.shape[0]
@@ -185,11 +184,12 @@ class GridGeometry:
         values = np.full((n, nv), np.nan)
         dvalues = None if shift is None else np.full((n, nv), np.nan)
         source = np.full(n, -1, dtype=int)
+        pending = []  # (points, shift weights, stencil rows) for the shifted geometry
         lower = np.zeros(n, dtype=bool)  # points handed to the next lower order
         for store, sel, flat, weights, shift_weights, corners in self.stencils(points, shift):
             slots = store.slots(flat)
-            flags = np.take(store.flags, slots)
-            if flags.any():
+            flags = np.take(store.flags, slots) if store.any_flagged else None
+            if flags is not None and flags.any():
                 excised = (flags & NodeStore.EXCISED).any(axis=1)
                 if self.next_lower is not None and excised.any() and not (flags[~excised] != 0).any():
                     lower[sel[excised]] = True
@@ -199,19 +199,26 @@ class GridGeometry:
                 else:
                     self._raise_bad(store, flags, flat, points[sel])
             rows = np.take(store.values, slots, axis=0)  # (m, p^3, nv), one contiguous row per node
-            if shift_weights is None:
-                values[sel] = np.matmul(weights[:, None, :], rows)[:, 0, :]
-            else:
-                both = np.matmul(np.stack([weights, shift_weights], axis=1), rows)  # (m, 2, nv)
-                values[sel], dvalues[sel] = both[:, 0, :], both[:, 1, :]
+            values[sel] = np.einsum("mk,mkv->mv", weights, rows)
+            if shift_weights is not None:
+                pending.append((sel, shift_weights, rows))
             source[sel] = store.patch_index
         geometry = self._to_physical(values, source)
-        moved = None if shift is None else self._to_physical(values + dvalues, source)
+        sub = sub_moved = None
         if lower.any():
             idx = np.nonzero(lower)[0]
             sub, sub_moved = self.next_lower.evaluate(points[idx], None if shift is None else shift[idx])
             geometry = _merged(geometry, idx, sub)
-            moved = None if shift is None else _merged(moved, idx, sub_moved)
+        if shift is None:
+            return geometry, None
+
+        def moved() -> PointGeometry:
+            # Made on demand: a rejected trial step never needs it.
+            for sel, shift_weights, rows in pending:
+                dvalues[sel] = np.einsum("mk,mkv->mv", shift_weights, rows)
+            shifted = self._to_physical(values + dvalues, source)
+            return shifted if sub is None else _merged(shifted, idx, sub_moved())
+
         return geometry, moved
 
     def _raise_bad(self, store: NodeStore, flags: np.ndarray, flat: np.ndarray, pts: np.ndarray) -> None:

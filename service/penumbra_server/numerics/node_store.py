@@ -128,6 +128,7 @@ class NodeStore:
         self.values = np.empty((0, self.n_values))
         self.flags = np.empty(0, dtype=np.uint8)
         self.count = 0
+        self.any_flagged = False  # some row is excised or not finite (else the check is skipped)
 
     @classmethod
     def for_patch(cls, slice_: Slice, index: int, order: int) -> "NodeStore":
@@ -246,6 +247,7 @@ class NodeStore:
             flags[excised] = self.EXCISED
         self.values[self.count: self.count + q] = rows
         self.flags[self.count: self.count + q] = flags
+        self.any_flagged |= bool(flags.any())
         self._slot[flat_nodes] = np.arange(self.count, self.count + q, dtype=np.int32)
         self.count += q
 

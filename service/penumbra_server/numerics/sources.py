@@ -57,8 +57,7 @@ class TrackedSource:
                 return self.exact(points + shift)
 
             return self.exact(points), shifted
-        geometry, moved = self._prepared(points).evaluate(points, shift)
-        return geometry, lambda: moved
+        return self._prepared(points).evaluate(points, shift)
 
     @property
     def grid(self) -> GridGeometry | None:

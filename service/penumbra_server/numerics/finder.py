@@ -464,7 +464,10 @@ def _improve(source, run, settings, status, ev, nit, proj, between):
                 break
         if better is None:
             break
-        ev, proj, between, run, is_recentre = better
+        ev, proj, between, trial_run, is_recentre = better
+        trial_run.max_hist[:0] = run.max_hist  # the histories run on through the re-solves
+        trial_run.rms_hist[:0] = run.rms_hist
+        run = trial_run
         recentred |= is_recentre
     worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
     if worst * ev.surface.mean_radius > settings.truncation_tolerance:

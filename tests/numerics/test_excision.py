@@ -18,6 +18,12 @@ AREA_SCHWARZSCHILD = 16 * np.pi  # M = 1
 EXCISION_RADIUS = 1.5  # the evolution's excised interior, r < 1.5 M (horizon at r = 2 M)
 
 
+#: These tests are about excision itself: order 4, whose stencils (reach 4 nodes = 0.4 M) keep the
+#: horizon at r = 2 M clear of the excised r < 1.5 M. Higher orders fall back to lower ones next
+#: to excision (test_higher_orders_fall_back_next_to_excision).
+ORDER = 4
+
+
 @pytest.fixture(scope="module")
 def kerr_schild_slices():
     """Kerr-Schild Schwarzschild (M = 1) on one h = 0.1 M box: whole, and with r < 1.5 M filled
@@ -42,24 +48,24 @@ def test_horizon_area_with_the_interior_excised_equals_the_whole_data(kerr_schil
     # in test_published_checks: rel 2e-5).
     whole, excised, nan_nodes = kerr_schild_slices
     assert nan_nodes > 10_000  # the interior really is NaN
-    settings = FinderSettings(lmax=6)
+    settings = FinderSettings(lmax=6, interpolation_order=ORDER)
     guess = Surface.sphere([0, 0, 0], 2.2, 6)
     reference = find_surface(whole, guess, settings=settings)
     result = find_surface(excised, guess, settings=settings)
     assert reference.success and result.success, result.message
-    area = measure_surface(result.surface, excised).area
+    area = measure_surface(result.surface, excised, order=ORDER).area
     print(f"\nKerr-Schild, r < 1.5 M excised: area / 16 pi = {area / AREA_SCHWARZSCHILD:.9f}, "
           f"{result.nit} iterations (whole data: {reference.nit})")
     assert area == pytest.approx(AREA_SCHWARZSCHILD, rel=2e-5)
     # No stencil of the horizon reaches the excised nodes: the same surface as without excision.
     np.testing.assert_array_equal(result.surface.coefficients, reference.surface.coefficients)
-    assert area == measure_surface(reference.surface, whole).area
+    assert area == measure_surface(reference.surface, whole, order=ORDER).area
 
 
 @pytest.mark.parametrize("radius", [1.2, 1.7])
 def test_a_guess_needing_excised_data_ends_with_the_excision_status(kerr_schild_slices, radius):
     _, excised, _ = kerr_schild_slices
-    result = find_surface(excised, Surface.sphere([0, 0, 0], radius, 6), settings=FinderSettings(lmax=6))
+    result = find_surface(excised, Surface.sphere([0, 0, 0], radius, 6), settings=FinderSettings(lmax=6, interpolation_order=ORDER))
     assert not result.success and result.status == NEEDS_EXCISED_DATA
     assert result.message.startswith(STATUS_MESSAGES[NEEDS_EXCISED_DATA])
     assert "excised region of patches[0]" in result.message and result.nit == 0
@@ -77,14 +83,14 @@ def test_a_newton_step_into_the_excision_is_shortened_and_the_horizon_still_foun
         return source(points)
 
     guess = Surface.sphere([0, 0, 0], 2.3, 6)
-    result = find_surface(recorded, guess, settings=FinderSettings(lmax=6, fallback_to_flow=False))
-    reference = find_surface(whole, guess, settings=FinderSettings(lmax=6, fallback_to_flow=False))
+    result = find_surface(recorded, guess, settings=FinderSettings(lmax=6, fallback_to_flow=False, interpolation_order=ORDER))
+    reference = find_surface(whole, guess, settings=FinderSettings(lmax=6, fallback_to_flow=False, interpolation_order=ORDER))
     assert result.success and reference.success, result.message
     assert result.method == "newton"
     assert min(nearest) < 1.95  # a trial step reached towards the excision ...
     # ... and was shortened, not fatal: the second iterate differs from the unrestricted one.
     assert result.residual_max_history[1] != reference.residual_max_history[1]
-    assert measure_surface(result.surface, excised).area == pytest.approx(AREA_SCHWARZSCHILD, rel=2e-5)
+    assert measure_surface(result.surface, excised, order=ORDER).area == pytest.approx(AREA_SCHWARZSCHILD, rel=2e-5)
     np.testing.assert_allclose(result.surface.coefficients, reference.surface.coefficients, atol=1e-6)
 
 
@@ -109,7 +115,7 @@ def test_both_methods_shorten_a_step_into_the_excision(method, guess_radius):
     # Unrestricted, Newton from r = 3 M first tries r = 0.5 M and the flow from 4 M first moves
     # to r = 1.9 M; with everything inside r = 1.95 M unusable, both still reach r = 2 M.
     source, reached = _kerr_schild_excised_inside(1.95)
-    settings = FinderSettings(lmax=6, method=method, fallback_to_flow=False)
+    settings = FinderSettings(lmax=6, method=method, fallback_to_flow=False, interpolation_order=ORDER)
     result = find_surface(source, Surface.sphere([0, 0, 0], guess_radius, 6), settings=settings)
     assert result.success, result.message
     assert min(reached) < 1.95
@@ -120,7 +126,7 @@ def test_both_methods_shorten_a_step_into_the_excision(method, guess_radius):
 def test_when_shortening_cannot_help_the_solve_ends_with_the_excision_status():
     # Everything inside r = 2.05 M unusable: the horizon itself cannot be evaluated.
     source, _ = _kerr_schild_excised_inside(2.05)
-    result = find_surface(source, Surface.sphere([0, 0, 0], 2.6, 6), settings=FinderSettings(lmax=6))
+    result = find_surface(source, Surface.sphere([0, 0, 0], 2.6, 6), settings=FinderSettings(lmax=6, interpolation_order=ORDER))
     assert not result.success and result.status == NEEDS_EXCISED_DATA
     assert "inside r = 2.05 M" in result.message
     assert result.surface is not None  # the last usable iterate is kept
@@ -128,13 +134,13 @@ def test_when_shortening_cannot_help_the_solve_ends_with_the_excision_status():
 
 def test_the_scan_skips_spheres_needing_excised_data(kerr_schild_slices):
     _, excised, _ = kerr_schild_slices
-    radii = scan_spheres(excised, np.zeros(3), 1.0, 2.4)
+    radii = scan_spheres(excised, np.zeros(3), 1.0, 2.4, order=ORDER)
     assert radii and abs(radii[0] - 2.0) < 0.05
 
 
 def test_interpolation_refuses_points_whose_stencils_reach_excised_nodes(kerr_schild_slices):
     _, excised, _ = kerr_schild_slices
-    geometry = grid_geometry(excised, np.full(3, -2.4), np.full(3, 2.4))
+    geometry = grid_geometry(excised, np.full(3, -2.4), np.full(3, 2.4), order=ORDER)
     assert geometry(np.array([[2.0, 0.0, 0.0]])).covered.all()
     with pytest.raises(ExcisedDataError, match=r"excised region of patches\[0\]"):
         geometry(np.array([[1.75, 0.0, 0.0]]))  # its derivatives read nodes at r < 1.5 M
@@ -186,3 +192,19 @@ def test_bitant_mirroring_excises_the_image_of_an_off_plane_sphere():
     full = mirror_slice_through_z0(Slice(time=0.0, iteration=0, variable_set="adm", patches=half.patches,
                                          excised_spheres=(on_plane, above)))
     assert full.excised_spheres == (on_plane, above, ExcisedSphere((0.0, 0.0, -0.6), 0.4, "A"))
+
+
+def test_higher_orders_fall_back_next_to_excision(kerr_schild_slices):
+    # At order 6 the horizon's stencils (reach 6 nodes = 0.6 M) would read r < 1.5 M; the points
+    # concerned are served by order 4, and the horizon is found to the same accuracy
+    # (docs/references.md item 2: area 16 pi M^2).
+    whole, excised, _ = kerr_schild_slices
+    geometry = grid_geometry(excised, np.full(3, -2.4), np.full(3, 2.4), order=6)
+    near = np.array([[2.0, 0.0, 0.0]])
+    np.testing.assert_array_equal(geometry(near).gamma,
+                                  grid_geometry(excised, near[0] - 1, near[0] + 1, order=4)(near).gamma)
+    with pytest.raises(ExcisedDataError):
+        geometry(np.array([[1.75, 0.0, 0.0]]))  # even order 4 reads excised nodes here
+    result = find_surface(excised, Surface.sphere([0, 0, 0], 2.2, 6), settings=FinderSettings(lmax=6))
+    assert result.success, result.message
+    assert measure_surface(result.surface, result.geometry).area == pytest.approx(AREA_SCHWARZSCHILD, rel=2e-5)

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .geometry import PointGeometry
+from .geometry import PointGeometry, inverse_3x3
 from .surfaces import RadiusDerivatives, unit_vectors
 
 __all__ = ["LevelSetDerivatives", "level_set_derivatives", "ExpansionTerms", "expansion_at"]
@@ -89,7 +89,7 @@ def expansion_at(rd: RadiusDerivatives, geometry: PointGeometry) -> ExpansionTer
     """
     ls = level_set_derivatives(rd)
     g = geometry.gamma
-    ginv = np.linalg.inv(g)
+    ginv = inverse_3x3(g)
     dg = geometry.dgamma  # [n, k, i, j] = d_k gamma_ij
     F = ls.dF
     F_up = np.einsum("nij,nj->ni", ginv, F)

@@ -15,16 +15,27 @@ Two methods behind one function, :func:`find_surface`:
   angular operator for conformally flat data) are from memory, not re-read in the paper.
   Slow but robust; the fallback when Newton fails, and the benchmark baseline.
 
-Not converging is a result: ``FindResult.status`` from :data:`STATUS_MESSAGES`.
+Not converging is a result: ``FindResult.status`` from :data:`STATUS_MESSAGES`; no exception
+leaves a solve for a reason the data or a step caused.
 
-Excised regions (:mod:`.excision`): a surface whose stencils would read excised data cannot be
-evaluated. A Newton or flow step landing there is shortened (halved, up to
-``_MAX_SHORTENINGS`` times); only when no shortened step is usable, or the guess itself needs
-excised data, does the solve end with status ``NEEDS_EXCISED_DATA``.
+A trial step can fail in several ways: the radius turns non-positive or runs away, a point leaves
+the data, a stencil needs excised data (:mod:`.excision`), the data there is not finite, the
+metric is not positive definite or Theta is not finite. Every one of them shortens the step
+(halved, up to ``_MAX_SHORTENINGS`` times); only when no shortened step is usable does the Newton
+solve end, with the status of the last failure, and the flow is then tried from the guess.
+
+Where the residual comes from: after the solve, max |Theta| on a second, finer node set (between
+the collocation nodes) is compared with an estimate of the interpolation floor of the data (the
+difference of Theta from two interpolation orders there). A residual at the floor is a success
+of its own (status 10); a larger one is truncation of the surface expansion, which the finder
+answers by moving the expansion centre to the surface's centroid (when that lowers it) and by
+raising l_max up to ``FinderSettings.lmax_cap``; what remains at the cap is status 1 (accepted)
+or 6 (not resolved).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from dataclasses import dataclass, field
 
@@ -32,8 +43,28 @@ import numpy as np
 
 from .excision import ExcisedDataError
 from .expansion import expansion_at
+from .find_results import (  # noqa: F401  (re-exported: the finder's public names)
+    CONVERGED,
+    CONVERGED_AT_INTERPOLATION_FLOOR,
+    CONVERGED_AT_TRUNCATION,
+    DIVERGED,
+    INVALID_GEOMETRY,
+    LINE_SEARCH_FAILED,
+    MAX_ITERATIONS,
+    NEEDS_EXCISED_DATA,
+    NON_FINITE_DATA,
+    OUTSIDE_DATA,
+    STATUS_MESSAGES,
+    SUCCESS_STATUSES,
+    TOO_FEW_POINTS,
+    UNRESOLVED,
+    FinderSettings,
+    FindResult,
+)
 from .geometry import PointGeometry
-from .slices import Slice
+from .interpolation import DEFAULT_ORDER
+from .resolution import interpolation_floor, recentred_surface, residual_between_nodes
+from .slices import Slice, SliceError
 from .sources import TrackedSource, as_tracked_source
 from .surfaces import (
     AngularGrid,
@@ -41,7 +72,6 @@ from .surfaces import (
     Surface,
     angular_grid,
     degree_of_index,
-    harmonic_basis,
     unit_vectors,
 )
 
@@ -59,135 +89,21 @@ __all__ = [
     "TOO_FEW_POINTS",
     "INVALID_GEOMETRY",
     "NEEDS_EXCISED_DATA",
+    "CONVERGED_AT_INTERPOLATION_FLOOR",
+    "NON_FINITE_DATA",
+    "SUCCESS_STATUSES",
     "find_surface",
     "expansion_of",
 ]
 
-CONVERGED = 0
-CONVERGED_AT_TRUNCATION = 1
-MAX_ITERATIONS = 2
-DIVERGED = 3
-OUTSIDE_DATA = 4
-LINE_SEARCH_FAILED = 5
-UNRESOLVED = 6
-TOO_FEW_POINTS = 7
-INVALID_GEOMETRY = 8
-NEEDS_EXCISED_DATA = 9
-
-#: Halvings of a step that lands where the data are excised, before the solve gives up.
+#: Halvings of a failed trial step before the solve gives up.
 _MAX_SHORTENINGS = 10
-
-#: Status code -> meaning. ``success`` is True exactly for codes 0 and 1.
-STATUS_MESSAGES: dict[int, str] = {
-    CONVERGED: "converged: max |Theta| at the nodes and between them is below the tolerance",
-    CONVERGED_AT_TRUNCATION: (
-        "converged in the truncated expansion: the projected residual is below the tolerance, the "
-        "residual at or between the nodes is not, and only a larger l_max reduces it"
-    ),
-    MAX_ITERATIONS: "not converged: iteration cap reached",
-    DIVERGED: "diverged: the radius became non-positive or ran away from the guess",
-    OUTSIDE_DATA: "not converged: the surface needs data no patch provides",
-    LINE_SEARCH_FAILED: "not converged: no damped step reduced the residual",
-    UNRESOLVED: (
-        "not accepted: the projected residual vanished but max |Theta| times the mean radius exceeds "
-        "the truncation tolerance, so the data or l_max do not resolve this surface"
-    ),
-    TOO_FEW_POINTS: "not accepted: the surface spans too few grid points across to be resolved by the data",
-    INVALID_GEOMETRY: "not converged: the metric is not positive definite (or Theta not finite) on the surface",
-    NEEDS_EXCISED_DATA: "not converged: the surface needs data inside an excised region",
-}
-_SUCCESS = (CONVERGED, CONVERGED_AT_TRUNCATION)
-_METHODS = ("newton", "flow")
-
-
-@dataclass(frozen=True)
-class FinderSettings:
-    """Options of :func:`find_surface`.
-
-    Attributes:
-        lmax: highest harmonic degree of the surface (common practice: 8-16 for individual
-            horizons, more for a freshly formed common horizon).
-        tolerance: max |Theta| to reach, units 1/M (common practice: 1e-8 to 1e-10).
-        max_iterations: Newton iterations (flow iterations are ``flow_iterations``).
-        method: "newton" or "flow".
-        interpolation_order: interpolation nodes per axis for grid data (even).
-        fallback_to_flow: on a failed Newton solve, run the flow from the guess and polish.
-        flow_iterations: cap on flow iterations.
-        flow_alpha, flow_beta: fast-flow parameters (Gundlach 1998; defaults from memory).
-        max_radius_factor: a surface whose largest radius exceeds this multiple of the guess's
-            mean radius counts as diverged.
-        truncation_tolerance: a surface converged only in the projection (status 1) is accepted
-            while max |Theta| (at and between the nodes) times its mean radius stays below this
-            (dimensionless; roughly the relative error of the surface position). Our choice, not
-            a published value.
-        min_points_across: on grid data, the smallest coordinate diameter must span at least
-            this many spacings of the patches serving the surface (common practice asks for
-            tens across a horizon; this is a floor that rejects grid artefacts).
-    """
-
-    lmax: int = 10
-    tolerance: float = 1e-9
-    max_iterations: int = 40
-    method: str = "newton"
-    interpolation_order: int = 4
-    fallback_to_flow: bool = True
-    flow_iterations: int = 600
-    flow_alpha: float = 1.0
-    flow_beta: float = 0.5
-    max_radius_factor: float = 20.0
-    truncation_tolerance: float = 1e-2
-    min_points_across: float = 4.0
-
-    def __post_init__(self) -> None:
-        if self.method not in _METHODS:
-            raise ValueError(f"method: expected one of {_METHODS}, got {self.method!r}")
-        if self.lmax < 1:
-            raise ValueError(f"lmax: expected an integer >= 1, got {self.lmax}")
-        if not self.tolerance > 0:
-            raise ValueError(f"tolerance: expected a positive number, got {self.tolerance}")
-        if self.max_iterations < 1 or self.flow_iterations < 1:
-            raise ValueError("max_iterations and flow_iterations: expected integers >= 1")
-
-
-@dataclass(frozen=True)
-class FindResult:
-    """Outcome of one find.
-
-    Attributes:
-        surface: the last iterate (the MOTS when ``success``), or None if no iterate could be
-            evaluated.
-        success: True for status 0 or 1.
-        status: a key of :data:`STATUS_MESSAGES`.
-        message: the status meaning plus specifics.
-        nit: iterations taken.
-        residual_max_history, residual_rms_history: max and rms of Theta (1/M) at the nodes,
-            one entry per evaluated iterate.
-        geometry_evaluations: how many times fields were interpolated at a point set.
-        wall_time_s: seconds spent.
-        method: "newton", "flow" or "newton+flow" (Newton failed, flow then Newton polish).
-        projected_residual: rms of the Galerkin-projected Theta (1/M) at the last iterate.
-        residual_max_between_nodes: max |Theta| (1/M) of the last iterate on a second, finer
-            node set. The collocation nodes can hide truncation error (for a symmetric surface
-            the projection conditions pin Theta to zero at every node); this one does not.
-    """
-
-    surface: Surface | None
-    success: bool
-    status: int
-    message: str
-    nit: int
-    residual_max_history: tuple[float, ...]
-    residual_rms_history: tuple[float, ...]
-    geometry_evaluations: int
-    wall_time_s: float
-    method: str
-    projected_residual: float = float("nan")
-    residual_max_between_nodes: float = float("nan")
-
-    @property
-    def residual_max(self) -> float:
-        """Last max |Theta| (1/M), NaN if nothing was evaluated."""
-        return self.residual_max_history[-1] if self.residual_max_history else float("nan")
+#: A residual between the nodes up to this multiple of the estimated interpolation floor counts
+#: as at the floor (the estimate is itself a difference of two approximations; our choice).
+_FLOOR_FACTOR = 3.0
+#: Recentre when the centroid sits farther than this fraction of the mean radius from the centre.
+_RECENTRE_FRACTION = 0.02
+_SUCCESS = SUCCESS_STATUSES
 
 
 @dataclass
@@ -201,6 +117,7 @@ class _Run:
     uncovered_note: str = ""
     invalid_note: str = ""
     excised_note: str = ""
+    non_finite_note: str = ""
     last_failure: int = OUTSIDE_DATA  # why the latest _evaluate returned None
 
 
@@ -212,17 +129,27 @@ class _Evaluated:
     geometry: PointGeometry
     theta: np.ndarray
     u: np.ndarray
+    shift: float  # radial shift (M) of the points for the Jacobian's h column
+    shifted: object  # () -> PointGeometry at the points moved out by ``shift``
 
 
 def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
     """Theta at the nodes of ``surface``; None (with a note) when data is missing there."""
     rd = surface.on_grid(run.grid)
     pts = surface.points(rd)
+    if not np.all(np.isfinite(pts)):
+        run.last_failure = DIVERGED
+        return None
+    shift = 1e-7 * float(np.mean(rd.h))
     try:
-        geo = run.source(pts)
+        geo, shifted = run.source.evaluate(pts, shift * unit_vectors(rd.theta, rd.phi)[0])
     except ExcisedDataError as exc:
         run.last_failure = NEEDS_EXCISED_DATA
         run.excised_note = str(exc)
+        return None
+    except SliceError as exc:
+        run.last_failure = NON_FINITE_DATA
+        run.non_finite_note = str(exc)
         return None
     if not geo.covered.all():
         bad = ~geo.covered
@@ -234,7 +161,13 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
             f"{np.degrees(p.min()):.0f}..{np.degrees(p.max()):.0f} deg); {run.source.describe_uncovered(pts[bad])}"
         )
         return None
-    terms = expansion_at(rd, geo)
+    try:
+        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+            terms = expansion_at(rd, geo)
+    except np.linalg.LinAlgError:  # a singular metric at some point
+        run.last_failure = INVALID_GEOMETRY
+        run.invalid_note = "the metric is singular at some surface points"
+        return None
     th = terms.theta
     if not np.all(np.isfinite(th)):
         run.last_failure = INVALID_GEOMETRY
@@ -242,58 +175,87 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     run.max_hist.append(float(np.max(np.abs(th))))
     run.rms_hist.append(float(np.sqrt(np.sum(run.grid.weights * th**2) / (4 * np.pi))))
-    return _Evaluated(surface, rd, pts, geo, th, terms.u)
+    return _Evaluated(surface, rd, pts, geo, th, terms.u, shift, shifted)
 
 
 def _projected_rms(run: _Run, values: np.ndarray) -> float:
     return float(np.linalg.norm(run.grid.project(values)) / np.sqrt(4 * np.pi))
 
 
+def _stacked(geometries: list[PointGeometry]) -> PointGeometry:
+    return PointGeometry(*(np.concatenate([getattr(g, name) for g in geometries])
+                           for name in ("gamma", "dgamma", "K", "covered", "source_patch")))
+
+
 def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
-    """d(projected Theta)/d(coefficients), square ((lmax+1)^2)."""
+    """d(projected Theta)/d(coefficients), square ((lmax+1)^2).
+
+    Theta at a node depends on h, its first and second angular derivatives there and on the
+    fields there; the eight perturbed evaluations (h with the fields moved along, central
+    differences in h_t and h_p, unit steps in the second derivatives, which enter linearly)
+    go through one batched call of the expansion.
+    """
     rd, geo = ev.rd, ev.geometry
     scale = float(np.mean(rd.h))
-    # h: moves the point too, so the fields are re-interpolated (the one extra evaluation).
-    eps_h = 1e-7 * scale
-    n, _, _ = unit_vectors(rd.theta, rd.phi)
+    # h: moves the point too, so the fields come from the interpolant shifted along n.
     try:
-        geo_h = run.source(ev.points + eps_h * n)
-    except ExcisedDataError:
-        geo_h = geo  # at an excision boundary: as at the data edge
+        geo_h = ev.shifted()
+    except (ExcisedDataError, SliceError):
+        geo_h = geo  # at an excision boundary or next to bad data: as at the data edge
     if not geo_h.covered.all():
         geo_h = geo  # at the data edge: drop the field variation rather than fail
-    d_h = (expansion_at(rd.replace(h=rd.h + eps_h), geo_h).theta - ev.theta) / eps_h
-    cols = {}
-    # First derivatives enter nonlinearly: central differences at fixed fields.
-    for name in ("h_t", "h_p"):
-        eps = 1e-5 * scale
-        plus = expansion_at(rd.replace(**{name: getattr(rd, name) + eps}), geo).theta
-        minus = expansion_at(rd.replace(**{name: getattr(rd, name) - eps}), geo).theta
-        cols[name] = (plus - minus) / (2 * eps)
-    # Second derivatives enter linearly: a unit one-sided difference is exact up to round-off.
-    for name in ("h_tt", "h_tp", "h_pp"):
-        eps = scale
-        cols[name] = (expansion_at(rd.replace(**{name: getattr(rd, name) + eps}), geo).theta - ev.theta) / eps
+    eps_first, eps_second = 1e-5 * scale, scale
+    variants = [("h", ev.shift), ("h_t", eps_first), ("h_t", -eps_first), ("h_p", eps_first), ("h_p", -eps_first),
+                ("h_tt", eps_second), ("h_tp", eps_second), ("h_pp", eps_second)]
+    names = ("theta", "phi", "h", "h_t", "h_p", "h_tt", "h_tp", "h_pp")
+    columns = {name: [] for name in names}
+    for changed, eps in variants:
+        for name in names:
+            value = getattr(rd, name)
+            columns[name].append(value + eps if name == changed else value)
+    batched = RadiusDerivatives(**{name: np.concatenate(v) for name, v in columns.items()})
+    geometry = _stacked([geo_h] + [geo] * (len(variants) - 1))
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        theta = expansion_at(batched, geometry).theta.reshape(len(variants), -1)
+    d_h = (theta[0] - ev.theta) / ev.shift
+    d_t = (theta[1] - theta[2]) / (2 * eps_first)  # first derivatives enter nonlinearly
+    d_p = (theta[3] - theta[4]) / (2 * eps_first)
+    d_tt, d_tp, d_pp = ((theta[k] - ev.theta) / eps_second for k in (5, 6, 7))  # linear: exact
     B = run.grid.basis
     J_nodes = (
         d_h[:, None] * B.Y
-        + cols["h_t"][:, None] * B.d_theta
-        + cols["h_p"][:, None] * B.d_phi
-        + cols["h_tt"][:, None] * B.d_theta_theta
-        + cols["h_tp"][:, None] * B.d_theta_phi
-        + cols["h_pp"][:, None] * B.d_phi_phi
+        + d_t[:, None] * B.d_theta
+        + d_p[:, None] * B.d_phi
+        + d_tt[:, None] * B.d_theta_theta
+        + d_tp[:, None] * B.d_theta_phi
+        + d_pp[:, None] * B.d_phi_phi
     )
     return B.Y.T @ (run.grid.weights[:, None] * J_nodes)
 
 
 def _diverged(surface: Surface, run: _Run, limit: float) -> bool:
     h = surface.on_grid(run.grid).h
-    return bool(np.min(h) <= 0 or np.max(h) > limit or not np.all(np.isfinite(h)))
+    return bool(not np.all(np.isfinite(h)) or np.min(h) <= 0 or np.max(h) > limit)
+
+
+def _newton_step(run: _Run, ev: _Evaluated) -> np.ndarray | None:
+    """The Newton step in the coefficients, None when the linearisation is not finite."""
+    J = _jacobian(run, ev)
+    rhs = run.grid.project(ev.theta)
+    if not (np.all(np.isfinite(J)) and np.all(np.isfinite(rhs))):
+        return None
+    try:
+        step = np.linalg.solve(J, -rhs)
+    except np.linalg.LinAlgError:
+        step = np.linalg.lstsq(J, -rhs, rcond=None)[0]
+    return step if np.all(np.isfinite(step)) else None
 
 
 def _newton(run: _Run, guess: Surface, settings: FinderSettings) -> tuple[int, _Evaluated | None, int, float]:
     """(status, last evaluated iterate, iterations, projected residual)."""
     limit = settings.max_radius_factor * max(guess.mean_radius, 1e-300)
+    if _diverged(guess, run, limit):
+        return DIVERGED, None, 0, float("nan")
     ev = _evaluate(run, guess)
     if ev is None:
         return run.last_failure, None, 0, float("nan")
@@ -303,41 +265,37 @@ def _newton(run: _Run, guess: Surface, settings: FinderSettings) -> tuple[int, _
             return CONVERGED, ev, it - 1, proj
         if proj <= settings.tolerance:
             return CONVERGED_AT_TRUNCATION, ev, it - 1, proj
-        J = _jacobian(run, ev)
-        rhs = run.grid.project(ev.theta)
-        try:
-            step = np.linalg.solve(J, -rhs)
-        except np.linalg.LinAlgError:
-            step = np.linalg.lstsq(J, -rhs, rcond=None)[0]
+        step = _newton_step(run, ev)
+        if step is None:
+            return INVALID_GEOMETRY, ev, it, proj
         # Backtrack on the projected residual: it is what the Galerkin Newton step reduces; the
-        # node residual also holds the part beyond l_max, which no step can remove.
+        # node residual also holds the part beyond l_max, which no step can remove. A trial that
+        # cannot be evaluated at all (any reason) is shortened like one that does not reduce it.
         lam = 1.0
         accepted = None
-        rejected_as_excised = False
+        failure = LINE_SEARCH_FAILED
         for _ in range(_MAX_SHORTENINGS):
             trial = Surface(ev.surface.centre, ev.surface.lmax, ev.surface.coefficients + lam * step)
             if _diverged(trial, run, limit):
-                rejected_as_excised = False
+                failure = DIVERGED
                 lam *= 0.5
                 continue
             cand = _evaluate(run, trial)
-            if cand is None and run.last_failure == NEEDS_EXCISED_DATA:
-                rejected_as_excised = True  # the step reached into an excised region: shorten it
+            if cand is None:
+                failure = run.last_failure
                 lam *= 0.5
                 continue
-            if cand is None:
-                return run.last_failure, ev, it, proj
-            rejected_as_excised = False
             cand_proj = _projected_rms(run, cand.theta)
             if cand_proj < (1.0 - 1e-4 * lam) * proj or cand_proj <= settings.tolerance:
                 accepted = cand
                 break
             # Rejected trial: drop its history entry so the history follows accepted iterates.
+            failure = LINE_SEARCH_FAILED
             run.max_hist.pop()
             run.rms_hist.pop()
             lam *= 0.5
         if accepted is None:
-            return (NEEDS_EXCISED_DATA if rejected_as_excised else LINE_SEARCH_FAILED), ev, it, proj
+            return failure, ev, it, proj
         ev = accepted
         proj = cand_proj
     if run.max_hist[-1] <= settings.tolerance:
@@ -357,11 +315,14 @@ def _flow(run: _Run, guess: Surface, settings: FinderSettings, tolerance: float)
     gain = A / (1.0 + B * ell * (ell + 1))
     limit = settings.max_radius_factor * guess.mean_radius
     proj = float("nan")
+    if _diverged(guess, run, limit):
+        return DIVERGED, None, 0, proj
     ev = _evaluate(run, guess)
     if ev is None:
         return run.last_failure, None, 0, proj
     for it in range(settings.flow_iterations + 1):
-        rho = ev.rd.h**2 / ev.u
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rho = ev.rd.h**2 / ev.u
         weighted = rho * ev.theta
         proj = _projected_rms(run, weighted) / float(np.mean(rho))
         if run.max_hist[-1] <= tolerance:
@@ -371,84 +332,83 @@ def _flow(run: _Run, guess: Surface, settings: FinderSettings, tolerance: float)
         if it == settings.flow_iterations:
             break
         step = -gain * run.grid.project(weighted)
+        if not np.all(np.isfinite(step)):
+            return INVALID_GEOMETRY, ev, it, proj
         factor = 1.0
+        following, failure = None, DIVERGED
         for _ in range(_MAX_SHORTENINGS):
             surface = Surface(ev.surface.centre, lmax, ev.surface.coefficients + factor * step)
-            if _diverged(surface, run, limit):
-                return DIVERGED, ev, it, proj
-            following = _evaluate(run, surface)
-            if following is not None or run.last_failure != NEEDS_EXCISED_DATA:
-                break
-            factor *= 0.5  # the step reached into an excised region: shorten it
+            if not _diverged(surface, run, limit):
+                following = _evaluate(run, surface)
+                if following is not None:
+                    break
+                failure = run.last_failure
+            factor *= 0.5  # any failed trial is shortened
         if following is None:
-            if run.last_failure == NEEDS_EXCISED_DATA:
-                return NEEDS_EXCISED_DATA, ev, it + 1, proj
-            return run.last_failure, None, it + 1, proj
+            return failure, ev, it + 1, proj
         ev = following
     return MAX_ITERATIONS, ev, settings.flow_iterations, proj
+
+
+def _solve(run: _Run, guess: Surface, settings: FinderSettings):
+    """Newton (or flow) from ``guess``, the flow fallback on any Newton failure.
+    Returns (status, evaluated iterate or None, iterations, projected residual, method)."""
+    if settings.method == "flow":
+        status, ev, nit, proj = _flow(run, guess, settings, settings.tolerance)
+        return status, ev, nit, proj, "flow"
+    status, ev, nit, proj = _newton(run, guess, settings)
+    if status not in _SUCCESS and settings.fallback_to_flow:
+        # Flow to a loose residual from the original guess, then let Newton finish.
+        flow_status, flow_ev, flow_nit, _ = _flow(run, guess, settings, max(settings.tolerance, 1e-4))
+        nit += flow_nit
+        if flow_ev is not None and flow_status in _SUCCESS + (MAX_ITERATIONS,):
+            status2, ev2, nit2, proj2 = _newton(run, flow_ev.surface, settings)
+            if ev2 is not None or ev is None:
+                status, ev, proj = status2, ev2 or flow_ev, proj2
+            nit += nit2
+            return status, ev, nit, proj, "newton+flow"
+    return status, ev, nit, proj, "newton"
 
 
 def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSettings()) -> FindResult:
     """Find a MOTS near ``guess``.
 
     Args:
-        data: a :class:`Slice` (grid data; only sub-boxes around the surface are touched), a
-            reference spacetime (anything with ``.geometry(points)``), or a callable
-            ``points (N, 3) -> PointGeometry``.
+        data: a :class:`Slice` (grid data; only nodes the surface's stencils reach are
+            prepared), a prepared geometry (``FindResult.geometry`` of an earlier find on the same
+            slice, a :class:`~.interpolation.GridGeometry`), a reference spacetime (anything with
+            ``.geometry(points)``), or a callable ``points (N, 3) -> PointGeometry``.
         guess: starting surface; re-expanded to ``settings.lmax``.
         settings: :class:`FinderSettings`.
 
     Returns:
         :class:`FindResult`; failure to converge is reported there, not raised.
-
-    Raises:
-        SliceError: the data a surface needs holds NaN or infinity outside the declared excised
-            regions (inside them: status ``NEEDS_EXCISED_DATA``, never an exception).
     """
     start = time.perf_counter()
     source = as_tracked_source(data, order=settings.interpolation_order)
-    grid = angular_grid(settings.lmax)
-    run = _Run(source, grid)
-    guess = guess.with_lmax(settings.lmax)
-    if settings.method == "flow":
-        status, ev, nit, proj = _flow(run, guess, settings, settings.tolerance)
-        method = "flow"
-    else:
-        status, ev, nit, proj = _newton(run, guess, settings)
-        method = "newton"
-        if status not in _SUCCESS + (OUTSIDE_DATA, INVALID_GEOMETRY) and settings.fallback_to_flow:
-            # Flow to a loose residual from the original guess, then let Newton finish.
-            flow_status, flow_ev, flow_nit, _ = _flow(run, guess, settings, max(settings.tolerance, 1e-4))
-            if flow_ev is not None and flow_status in _SUCCESS + (MAX_ITERATIONS,):
-                status, ev2, nit2, proj = _newton(run, flow_ev.surface, settings)
-                ev = ev2 or flow_ev
-                nit = nit + flow_nit + nit2
-                method = "newton+flow"
-    between = float("nan")
+    run = _Run(source, angular_grid(settings.lmax))
+    status, ev, nit, proj, method = _solve(run, guess.with_lmax(settings.lmax), settings)
+    between = floor = float("nan")
+    recentred = False
     if ev is not None:
-        between = _residual_between_nodes(source, ev.surface)
-        if status == CONVERGED and not between <= settings.tolerance:
-            status = CONVERGED_AT_TRUNCATION  # zero at the nodes only: l_max limits accuracy
-        if status == CONVERGED_AT_TRUNCATION:
-            worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
-            if worst * ev.surface.mean_radius > settings.truncation_tolerance:
-                status = UNRESOLVED
+        between = residual_between_nodes(source, ev.surface)
+        if status in _SUCCESS:
+            status, ev, nit, proj, between, floor, recentred, run = _improve(
+                source, run, settings, status, ev, nit, proj, between)
         if status in _SUCCESS and source.slice_ is not None:
             across = _points_across(source.slice_, ev)
             if across < settings.min_points_across:
                 status = TOO_FEW_POINTS
                 run.uncovered_note = f"{across:.1f} grid spacings across, fewer than {settings.min_points_across}"
     message = STATUS_MESSAGES[status]
-    if status in (OUTSIDE_DATA, TOO_FEW_POINTS) and run.uncovered_note:
-        message = f"{message}: {run.uncovered_note}"
-    if status == INVALID_GEOMETRY:
-        message = f"{message}: {run.invalid_note}"
-    if status == NEEDS_EXCISED_DATA and run.excised_note:
-        message = f"{message}: {run.excised_note}"
+    note = {OUTSIDE_DATA: run.uncovered_note, TOO_FEW_POINTS: run.uncovered_note, INVALID_GEOMETRY: run.invalid_note,
+            NEEDS_EXCISED_DATA: run.excised_note, NON_FINITE_DATA: run.non_finite_note}.get(status, "")
+    if note:
+        message = f"{message}: {note}"
     if run.max_hist:
         message = (
             f"{message} (max |Theta| = {run.max_hist[-1]:.3e} / M at the nodes, {between:.3e} / M between "
-            f"them, after {nit} iterations)"
+            f"them, interpolation floor {floor:.1e} / M, l_max {run.grid.lmax}, after {nit} iterations)"
         )
     return FindResult(
         surface=ev.surface if ev is not None else None,
@@ -463,7 +423,56 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
         method=method,
         projected_residual=proj,
         residual_max_between_nodes=between,
+        interpolation_floor=floor,
+        recentred=recentred,
+        geometry=source,
     )
+
+
+def _improve(source, run, settings, status, ev, nit, proj, between):
+    """Tell interpolation floor from truncation; against truncation, recentre and raise l_max.
+    Returns the updated (status, ev, nit, proj, between, floor, recentred, run)."""
+    recentred = False
+    floor = float("nan")  # estimated only when the residual is above the tolerance
+    tried_recentre = False
+    while True:
+        worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
+        if worst <= settings.tolerance:
+            return CONVERGED, ev, nit, proj, between, floor, recentred, run
+        floor = interpolation_floor(source, ev.surface, settings.interpolation_order)
+        if np.isfinite(floor) and worst <= max(_FLOOR_FACTOR * floor, settings.tolerance):
+            return CONVERGED_AT_INTERPOLATION_FLOOR, ev, nit, proj, between, floor, recentred, run
+        candidates = []
+        if not tried_recentre:
+            tried_recentre = True
+            moved = recentred_surface(ev.surface, _RECENTRE_FRACTION)
+            if moved is not None:
+                candidates.append((moved, True))
+        if ev.surface.lmax < settings.effective_lmax_cap:
+            lmax = min(settings.effective_lmax_cap, ev.surface.lmax + 4)
+            candidates.append((ev.surface.with_lmax(lmax), False))
+        better = None
+        for surface, is_recentre in candidates:
+            trial_run = _Run(source, angular_grid(surface.lmax))
+            st, ev2, nit2, proj2, _ = _solve(trial_run, surface, dataclasses.replace(settings, lmax=surface.lmax))
+            nit += nit2
+            if st not in _SUCCESS or ev2 is None:
+                continue
+            between2 = residual_between_nodes(source, ev2.surface)
+            if np.isfinite(between2) and between2 < 0.7 * worst:
+                better = (ev2, proj2, between2, trial_run, is_recentre)
+                break
+        if better is None:
+            break
+        ev, proj, between, trial_run, is_recentre = better
+        trial_run.max_hist[:0] = run.max_hist  # the histories run on through the re-solves
+        trial_run.rms_hist[:0] = run.rms_hist
+        run = trial_run
+        recentred |= is_recentre
+    worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
+    if worst * ev.surface.mean_radius > settings.truncation_tolerance:
+        return UNRESOLVED, ev, nit, proj, between, floor, recentred, run
+    return CONVERGED_AT_TRUNCATION, ev, nit, proj, between, floor, recentred, run
 
 
 def _points_across(slice_: Slice, ev: _Evaluated) -> float:
@@ -475,21 +484,7 @@ def _points_across(slice_: Slice, ev: _Evaluated) -> float:
     return float(np.min(np.ptp(ev.points, axis=0))) / spacing
 
 
-def _residual_between_nodes(source: TrackedSource, surface: Surface) -> float:
-    """max |Theta| on the nodes of a grid for l_max + 5 (shared with the collocation nodes only
-    by accident); NaN where the data does not cover them or they need excised data."""
-    check = angular_grid(surface.lmax + 5)
-    rd = surface.derivatives(harmonic_basis(surface.lmax, check.theta, check.phi), check.theta, check.phi)
-    try:
-        geo = source(surface.points(rd))
-    except ExcisedDataError:
-        return float("nan")
-    if not geo.covered.all():
-        return float("nan")
-    return float(np.max(np.abs(expansion_at(rd, geo).theta)))
-
-
-def expansion_of(data, surface: Surface, *, order: int = 4) -> np.ndarray:
+def expansion_of(data, surface: Surface, *, order: int = DEFAULT_ORDER) -> np.ndarray:
     """Theta (1/M) at the collocation nodes of ``surface`` (``angular_grid(surface.lmax)``).
 
     Raises ValueError if the data does not cover every node.
@@ -498,6 +493,7 @@ def expansion_of(data, surface: Surface, *, order: int = 4) -> np.ndarray:
     run = _Run(source, angular_grid(surface.lmax))
     ev = _evaluate(run, surface)
     if ev is None:
-        note = run.excised_note if run.last_failure == NEEDS_EXCISED_DATA else run.uncovered_note
+        note = {NEEDS_EXCISED_DATA: run.excised_note, NON_FINITE_DATA: run.non_finite_note,
+                INVALID_GEOMETRY: run.invalid_note}.get(run.last_failure, run.uncovered_note)
         raise ValueError(f"surface: {note}")
     return ev.theta

@@ -9,10 +9,12 @@ import numpy as np
 
 from .excision import ExcisedDataError
 from .expansion import expansion_at
+from .interpolation import DEFAULT_ORDER
+from .slices import SliceError
 from .sources import as_tracked_source
 from .surfaces import Surface, angular_grid
 
-__all__ = ["SphereScan", "scan_spheres", "sphere_scan_profile", "guess_from_previous"]
+__all__ = ["NO_TRAPPED_SURFACE_YET", "SphereScan", "scan_spheres", "sphere_scan_profile", "guess_from_previous"]
 
 
 @dataclass(frozen=True)
@@ -29,12 +31,41 @@ class SphereScan:
             refined by bisection. Spheres about a non-spherical horizon (a binary, a spinning
             hole in Kerr-Schild coordinates) can have a positive mean everywhere; the barrier
             still gives a starting sphere that encloses the horizon.
+        message: what the scan saw, for reports: the candidates, or why there are none:
+            :data:`NO_TRAPPED_SURFACE_YET` (every sphere was evaluated and none brackets a
+            horizon) as distinct from spheres that left the data or needed excised data.
     """
 
     radii: np.ndarray
     mean_expansion: np.ndarray
     min_expansion: np.ndarray
     candidates: tuple[float, ...]
+    message: str = ""
+
+    @property
+    def no_trapped_surface_yet(self) -> bool:
+        """No candidate although every sampled sphere could be evaluated."""
+        return not self.candidates and bool(np.all(np.isfinite(self.mean_expansion)))
+
+
+#: Start of :attr:`SphereScan.message` when the data was there but nothing is trapped yet.
+NO_TRAPPED_SURFACE_YET = "no trapped surface here yet"
+
+
+def _scan_message(centre, radii, mean, candidates) -> str:
+    where = f"coordinate spheres about ({centre[0]:.4g}, {centre[1]:.4g}, {centre[2]:.4g})"
+    if candidates:
+        return f"{len(candidates)} candidate radius(es) from {where}: " + ", ".join(f"{r:.6g}" for r in candidates) + " M"
+    ok = np.isfinite(mean)
+    if ok.all():
+        return (f"{NO_TRAPPED_SURFACE_YET}: no sign change of the expansion of {where} with radii "
+                f"{radii[0]:.4g}..{radii[-1]:.4g} M (all of them evaluated)")
+    if not ok.any():
+        return (f"no candidate: every one of the {where} with radii {radii[0]:.4g}..{radii[-1]:.4g} M leaves the "
+                f"data or needs excised data")
+    return (f"no candidate: no sign change of the expansion of {where} where the data covers them "
+            f"(radii {radii[ok].min():.4g}..{radii[ok].max():.4g} M of {radii[0]:.4g}..{radii[-1]:.4g} M); the "
+            f"others leave the data or need excised data")
 
 
 def _sphere_expansion(source, grid, centre, radius) -> tuple[float, float]:
@@ -44,11 +75,14 @@ def _sphere_expansion(source, grid, centre, radius) -> tuple[float, float]:
     rd = sphere.on_grid(grid)
     try:
         geo = source(sphere.points(rd))
-    except ExcisedDataError:
+    except (ExcisedDataError, SliceError):
         return float("nan"), float("nan")
     if not geo.covered.all():
         return float("nan"), float("nan")
-    theta = expansion_at(rd, geo).theta
+    with np.errstate(invalid="ignore", divide="ignore"):
+        theta = expansion_at(rd, geo).theta
+    if not np.all(np.isfinite(theta)):
+        return float("nan"), float("nan")
     return float(np.sum(grid.weights * theta) / (4 * np.pi)), float(theta.min())
 
 
@@ -67,7 +101,7 @@ def _bisect(f, lo: float, hi: float, f_lo: float) -> float:
 
 
 def sphere_scan_profile(
-    data, centre, r_min: float, r_max: float, *, samples: int = 48, lmax: int = 4, order: int = 4
+    data, centre, r_min: float, r_max: float, *, samples: int = 48, lmax: int = 4, order: int = DEFAULT_ORDER
 ) -> SphereScan:
     """Scan spheres of radius r_min..r_max (geometric spacing) about ``centre``.
 
@@ -97,10 +131,10 @@ def sphere_scan_profile(
     for r in sorted(found, reverse=True):
         if not candidates or candidates[-1] - r > 1e-6 * candidates[-1]:  # same radius twice
             candidates.append(r)
-    return SphereScan(radii, mean, minimum, tuple(candidates))
+    return SphereScan(radii, mean, minimum, tuple(candidates), _scan_message(centre, radii, mean, candidates))
 
 
-def scan_spheres(data, centre, r_min: float, r_max: float, *, samples: int = 48, lmax: int = 4, order: int = 4) -> tuple[float, ...]:
+def scan_spheres(data, centre, r_min: float, r_max: float, *, samples: int = 48, lmax: int = 4, order: int = DEFAULT_ORDER) -> tuple[float, ...]:
     """Candidate radii (outermost first) where the mean expansion of coordinate spheres about
     ``centre`` changes sign: seeds for Newton where nothing is known yet."""
     return sphere_scan_profile(data, centre, r_min, r_max, samples=samples, lmax=lmax, order=order).candidates

@@ -1,20 +1,32 @@
-"""Geometry at arbitrary points from patch data: finite differences on a sub-box, then Lagrange
-interpolation of fields and derivatives.
+"""Geometry at arbitrary points from patch data: finite differences at the grid nodes a surface's
+stencils reach, then Lagrange interpolation of fields and derivatives.
 
 Why finite-difference first: differentiating a piecewise interpolant gives derivatives that jump
 between cells, so the expansion would jump as the surface moves and Newton would stall. Here the
 derivative fields are made on the grid (centred differences of the same order as the
 interpolation) and interpolated like any other field, so Theta is continuous in the surface shape.
 
-Only a sub-box of each patch (the region a surface needs plus the stencils) is touched.
+Nodes are prepared on first touch (:mod:`.node_store`): the values at a node (fields and their
+centred differences) are computed the first time an interpolation stencil reaches it and kept in
+a contiguous component-last store, so memory and time follow the surface, not the volume.
 
 ``order`` is the number of interpolation nodes per axis (even): order 4 means cubic Lagrange
-interpolation (error O(dx^4)) with fourth-order centred differences.
+interpolation (error O(dx^4)) with fourth-order centred differences. The default,
+:data:`DEFAULT_ORDER` = 6, was chosen by measurement (notes/finder.md): on Kerr-Schild data at
+about 20 points per horizon radius it reaches the area accuracy of a tensor-product cubic spline
+of the fields, which order 4 misses by a factor of about 15.
 
-Excised regions (:mod:`.excision`): the excised nodes of each sub-box, widened by the difference
-stencil's half-width along each axis (the derivatives there read excised values), are marked
-unusable; a point whose interpolation stencil touches one raises :class:`ExcisedDataError`.
-Without declared excision nothing is marked and the results are those of plain data.
+ADM input is decomposed at the nodes, before interpolation, into W = psi^-2 = det(gamma)^(-1/6),
+the unit-determinant gamma_tilde_ij = W^2 gamma_ij, A_tilde_ij = W^2 (K_ij - gamma_ij K / 3) and
+K = gamma^ij K_ij, and converted back at the points like the conformal variable sets. Near a
+puncture gamma_ij ~ psi^4 ~ r^-4 is what a polynomial interpolates worst; W ~ r^2 there, and
+gamma_tilde_ij and W^2 K_ij stay bounded. W rather than chi = W^2 because it varies less steeply
+around the horizon: on Brill-Lindquist data at dx = M/32 the area error from chi was 15 times
+that from W (notes/finder.md). Away from punctures the decomposition changes little.
+
+Excised regions (:mod:`.excision`): a node whose difference stencil (half-width order/2 along each
+axis) reaches an excised node is unusable; a point whose interpolation stencil touches one raises
+:class:`ExcisedDataError`. Without declared excision nothing is marked.
 """
 
 from __future__ import annotations
@@ -23,36 +35,26 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .excision import ExcisedDataError, widen_along_axes
+from .excision import EXCISION_MASK_FIELD, ExcisedDataError
 from .geometry import PointGeometry, physical_from_conformal, symmetric_from_components
-from .slices import Slice, SliceError, VariableSet, symmetric_field_names
+from .node_store import NodeStore, centred_difference_weights, field_layout
+from .slices import Slice, SliceError, VariableSet
 
 __all__ = [
     "SUPPORTED_ORDERS",
+    "DEFAULT_ORDER",
     "GridGeometry",
     "grid_geometry",
     "describe_uncovered",
     "centred_difference_weights",
     "lagrange_weights",
+    "stencil_weights",
     "ExcisedDataError",
 ]
 
 SUPPORTED_ORDERS = (2, 4, 6, 8)
-
-# Centred first-derivative weights for offsets -g..g (g = order / 2).
-_CENTRED = {
-    2: np.array([-1 / 2, 0.0, 1 / 2]),
-    4: np.array([1 / 12, -2 / 3, 0.0, 2 / 3, -1 / 12]),
-    6: np.array([-1 / 60, 3 / 20, -3 / 4, 0.0, 3 / 4, -3 / 20, 1 / 60]),
-    8: np.array([1 / 280, -4 / 105, 1 / 5, -4 / 5, 0.0, 4 / 5, -1 / 5, 4 / 105, -1 / 280]),
-}
-
-
-def centred_difference_weights(order: int) -> np.ndarray:
-    """Weights of the centred first derivative of the given (even) order, offsets -g..g."""
-    if order not in _CENTRED:
-        raise ValueError(f"order: expected one of {SUPPORTED_ORDERS}, got {order}")
-    return _CENTRED[order]
+#: Interpolation nodes per axis used unless a caller says otherwise (see the module docstring).
+DEFAULT_ORDER = 6
 
 
 def lagrange_weights(s: np.ndarray, nodes: int) -> np.ndarray:
@@ -66,129 +68,187 @@ def lagrange_weights(s: np.ndarray, nodes: int) -> np.ndarray:
     return w
 
 
-def _field_layout(variable_set: VariableSet) -> tuple[tuple[str, ...], tuple[str, ...]]:
-    """(fields that need derivatives, fields that do not), in stacking order."""
-    if variable_set is VariableSet.ADM:
-        return symmetric_field_names("gamma"), symmetric_field_names("K")
-    return (
-        (variable_set.conformal_factor_name,) + symmetric_field_names("gamma_tilde"),
-        symmetric_field_names("A_tilde") + ("trace_K",),
-    )
+def _lagrange_derivative_coefficients(nodes: int) -> np.ndarray:
+    """(nodes - 1, nodes) C with d/ds L_a(s) = sum_k C[k, a] s^k for the Lagrange basis on
+    0..nodes-1 (coefficients from the inverse Vandermonde matrix)."""
+    vandermonde = np.vander(np.arange(nodes, dtype=float), nodes, increasing=True)
+    coefficients = np.linalg.inv(vandermonde)  # row k: coefficient of s^k in each L_a
+    return coefficients[1:] * np.arange(1, nodes)[:, None]
 
 
-@dataclass(frozen=True, eq=False)
-class _Block:
-    """Fields and derivatives of one patch on the nodes of a sub-box.
+def lagrange_weight_derivatives(s: np.ndarray, nodes: int) -> np.ndarray:
+    """(N, nodes) d/ds of :func:`lagrange_weights` at s (N,) (monomial form: round-off about
+    1e-13 relative, ample for a Jacobian's field variation)."""
+    s = np.asarray(s, dtype=float)
+    powers = s[..., None] ** np.arange(nodes - 1)
+    return powers @ _lagrange_derivative_coefficients(nodes)
 
-    ``values`` has shape (n_values, bx, by, bz): the differentiated fields, then their x, y, z
-    derivatives (field-major), then the plain fields. ``origin`` is the position of node [0,0,0].
-    ``unusable`` (bx, by, bz) marks nodes whose values read excised data (None: no excision).
-    """
 
-    patch_index: int
-    level: int
-    origin: np.ndarray
-    spacing: np.ndarray
-    values: np.ndarray
-    unusable: np.ndarray | None = None
+def stencil_weights(s: np.ndarray, nodes: int) -> np.ndarray:
+    """(N, nodes^3) tensor-product Lagrange weights at local coordinates s (N, 3), x slowest."""
+    wx, wy, wz = (lagrange_weights(s[:, a], nodes) for a in range(3))
+    return (wx[:, :, None, None] * wy[:, None, :, None] * wz[:, None, None, :]).reshape(len(s), -1)
 
 
 @dataclass(frozen=True, eq=False)
 class GridGeometry:
-    """A geometry source for points inside the box it was prepared for.
+    """A geometry source over a slice's patches.
 
-    Call it with points (N, 3) to get :class:`PointGeometry`; points no prepared block covers come
-    back with ``covered = False`` and NaN fields. ``lower`` and ``upper`` bound the prepared
-    region (points outside it may still be covered by a stencil's reach, but no promise).
+    Call it with points (N, 3) to get :class:`PointGeometry`; points no patch covers (with a full
+    interpolation stencil of nodes that have centred differences) come back with
+    ``covered = False`` and NaN fields. ``lower`` and ``upper`` record the region the caller
+    expected to use; points elsewhere are served too (nodes are prepared on first touch).
+
+    The node stores are caches of pure functions of the slice: calling the same instance twice
+    with the same points gives the same values.
+
+    Next to excised regions (declared on the slice) a point whose stencils reach excised nodes
+    is served by ``next_lower``, the same interpolation of order - 2 (down to 4), whose stencils
+    are narrower; only when the lowest one still reaches excised data does the call raise
+    :class:`ExcisedDataError`.
     """
 
     variable_set: VariableSet
     order: int
     lower: np.ndarray
     upper: np.ndarray
-    blocks: tuple[_Block, ...]
+    blocks: tuple[NodeStore, ...]
     patch_boxes: tuple[tuple[np.ndarray, np.ndarray, int], ...]
     differentiated: tuple[str, ...]
     plain: tuple[str, ...]
+    slice_: Slice | None = None
+    next_lower: "GridGeometry | None" = None
 
     def contains(self, points: np.ndarray) -> bool:
-        """Whether every point lies inside the prepared region."""
+        """Whether every point lies inside the region given at preparation."""
         return bool(np.all(points >= self.lower) and np.all(points <= self.upper))
 
-    def __call__(self, points: np.ndarray) -> PointGeometry:
+    @property
+    def prepared_nodes(self) -> int:
+        """Nodes whose values have been computed so far (all patches)."""
+        return sum(b.count for b in self.blocks)
+
+    def stencils(self, points: np.ndarray, shift: np.ndarray | None = None):
+        """For each patch serving some points (finest first): (store, point indices, flat node
+        indices (m, order^3), weights (m, order^3), shift weights (m, order^3) or None, stencil
+        corners (m, 3): node indices of each stencil's node [0, 0, 0]). Points no
+        patch serves are left out. With ``shift`` (N, 3), the shift weights give the derivative
+        of the interpolant along each point's shift vector (units: per unit shift)."""
         points = np.asarray(points, dtype=float).reshape(-1, 3)
-        n = points.shape[0]
-        nd = len(self.differentiated)
-        nv = nd * 4 + len(self.plain)
-        values = np.full((nv, n), np.nan)
-        source = np.full(n, -1, dtype=int)
-        todo = np.ones(n, dtype=bool)
+        todo = np.ones(points.shape[0], dtype=bool)
         p = self.order
-        for block in self.blocks:
+        off = np.arange(p)
+        out = []
+        for store in self.blocks:
             if not todo.any():
                 break
             idx = np.nonzero(todo)[0]
-            rel = (points[idx] - block.origin) / block.spacing
-            base = np.floor(rel).astype(int) - (p // 2 - 1)
-            shape = np.asarray(block.values.shape[1:])
-            inside = np.all((base >= 0) & (base + p - 1 <= shape - 1), axis=1)
+            rel = (points[idx] - store.origin) / store.spacing
+            with np.errstate(invalid="ignore"):
+                base = np.floor(rel).astype(int) - (p // 2 - 1)
+            inside = np.all((base >= store.reach) & (base + p - 1 <= store.shape_array - 1 - store.reach), axis=1)
             if not inside.any():
                 continue
             sel = idx[inside]
             b = base[inside]
             s = rel[inside] - b
-            wx, wy, wz = (lagrange_weights(s[:, a], p) for a in range(3))
-            off = np.arange(p)
-            I = (b[:, 0, None] + off)[:, :, None, None]
-            J = (b[:, 1, None] + off)[:, None, :, None]
-            K = (b[:, 2, None] + off)[:, None, None, :]
-            if block.unusable is not None:
-                touches = block.unusable[I, J, K].reshape(sel.size, -1).any(axis=1)
-                if touches.any():
-                    self._raise_excised(block, points[sel][touches])
-            stencil = block.values[:, I, J, K]  # (nv, m, p, p, p)
-            bad = ~np.isfinite(stencil).reshape(nv, sel.size, -1).all(axis=2)
-            if bad.any():
-                self._raise_nonfinite(block, bad, points[sel])
-            values[:, sel] = np.einsum("vmabc,ma,mb,mc->vm", stencil, wx, wy, wz, optimize=True)
-            source[sel] = block.patch_index
+            strides = np.array([store.shape[1] * store.shape[2], store.shape[2], 1])
+            offsets = ((off[:, None, None] * strides[0] + off[None, :, None] * strides[1]) + off[None, None, :]).ravel()
+            flat = (b @ strides)[:, None] + offsets[None, :]
+            w = [lagrange_weights(s[:, a], p) for a in range(3)]
+            weights = np.einsum("ma,mb,mc->mabc", w[0], w[1], w[2]).reshape(sel.size, -1)
+            shift_weights = None
+            if shift is not None:
+                ds = shift[sel] / store.spacing  # shift in node units
+                dw = [lagrange_weight_derivatives(s[:, a], p) * ds[:, a, None] for a in range(3)]
+                shift_weights = (dw[0][:, :, None, None] * w[1][:, None, :, None] * w[2][:, None, None, :]
+                                 + w[0][:, :, None, None] * dw[1][:, None, :, None] * w[2][:, None, None, :]
+                                 + w[0][:, :, None, None] * w[1][:, None, :, None] * dw[2][:, None, None, :]
+                                 ).reshape(sel.size, -1)
+            out.append((store, sel, flat, weights, shift_weights, b))
             todo[sel] = False
-        return self._to_physical(values, source)
+        return out
 
-    def _raise_excised(self, block: _Block, pts: np.ndarray) -> None:
-        x = pts[0]
-        raise ExcisedDataError(
-            f"{len(pts)} point(s) need data inside an excised region of patches[{block.patch_index}] (level "
-            f"{block.level}), e.g. ({x[0]:.6g}, {x[1]:.6g}, {x[2]:.6g}): the interpolation stencil ({self.order} "
-            f"nodes per axis) or the derivatives' difference stencils reach excised nodes"
-        )
+    def __call__(self, points: np.ndarray) -> PointGeometry:
+        return self.evaluate(points)[0]
 
-    def _raise_nonfinite(self, block: _Block, bad: np.ndarray, pts: np.ndarray) -> None:
-        # Row v of the value stack -> the field it was made from (derivative rows included).
-        names = list(self.differentiated) + [f for f in self.differentiated for _ in range(3)] + list(self.plain)
-        v, m = np.argwhere(bad)[0]
+    def evaluate(self, points: np.ndarray, shift: np.ndarray | None = None):
+        """(geometry at ``points``, a callable giving the geometry at ``points + shift`` to first
+        order in the shift, or None without ``shift``). The second comes from the derivative of
+        the same interpolant along the shift, on the stencil values already gathered: no second
+        gather.
+        ``shift`` (N, 3) in M; meant for small shifts (a Jacobian's perturbation)."""
+        points = np.asarray(points, dtype=float).reshape(-1, 3)
+        n = points.shape[0]
+        nv = len(self.differentiated) * 4 + len(self.plain)
+        values = np.full((n, nv), np.nan)
+        dvalues = None if shift is None else np.full((n, nv), np.nan)
+        source = np.full(n, -1, dtype=int)
+        pending = []  # (points, shift weights, stencil rows) for the shifted geometry
+        lower = np.zeros(n, dtype=bool)  # points handed to the next lower order
+        for store, sel, flat, weights, shift_weights, corners in self.stencils(points, shift):
+            slots = store.slots(flat)
+            flags = np.take(store.flags, slots) if store.any_flagged else None
+            if flags is not None and flags.any():
+                excised = (flags & NodeStore.EXCISED).any(axis=1)
+                if self.next_lower is not None and excised.any() and not (flags[~excised] != 0).any():
+                    lower[sel[excised]] = True
+                    keep = ~excised
+                    sel, flat, weights, slots = sel[keep], flat[keep], weights[keep], slots[keep]
+                    shift_weights = None if shift_weights is None else shift_weights[keep]
+                else:
+                    self._raise_bad(store, flags, flat, points[sel])
+            rows = np.take(store.values, slots, axis=0)  # (m, p^3, nv), one contiguous row per node
+            values[sel] = np.einsum("mk,mkv->mv", weights, rows)
+            if shift_weights is not None:
+                pending.append((sel, shift_weights, rows))
+            source[sel] = store.patch_index
+        geometry = self._to_physical(values, source)
+        sub = sub_moved = None
+        if lower.any():
+            idx = np.nonzero(lower)[0]
+            sub, sub_moved = self.next_lower.evaluate(points[idx], None if shift is None else shift[idx])
+            geometry = _merged(geometry, idx, sub)
+        if shift is None:
+            return geometry, None
+
+        def moved() -> PointGeometry:
+            # Made on demand: a rejected trial step never needs it.
+            for sel, shift_weights, rows in pending:
+                dvalues[sel] = np.einsum("mk,mkv->mv", shift_weights, rows)
+            shifted = self._to_physical(values + dvalues, source)
+            return shifted if sub is None else _merged(shifted, idx, sub_moved())
+
+        return geometry, moved
+
+    def _raise_bad(self, store: NodeStore, flags: np.ndarray, flat: np.ndarray, pts: np.ndarray) -> None:
+        excised = (flags & NodeStore.EXCISED).any(axis=1)
+        if excised.any():
+            x = pts[excised][0]
+            raise ExcisedDataError(
+                f"{int(excised.sum())} point(s) need data inside an excised region of patches[{store.patch_index}] "
+                f"(level {store.level}), e.g. ({x[0]:.6g}, {x[1]:.6g}, {x[2]:.6g}): the interpolation stencil "
+                f"({self.order} nodes per axis) or the derivatives' difference stencils reach excised nodes"
+            )
+        m, k = np.argwhere(flags & NodeStore.NON_FINITE)[0]
         x = pts[m]
         raise SliceError(
-            f"field {names[v]!r} on patches[{block.patch_index}] (level {block.level}): non-finite values at "
-            f"nodes needed for the surface point ({x[0]:.6g}, {x[1]:.6g}, {x[2]:.6g}); expected finite numbers"
+            f"field {store.non_finite_field(int(flat[m, k]))!r} on patches[{store.patch_index}] (level {store.level}): "
+            f"non-finite values at nodes needed for the surface point ({x[0]:.6g}, {x[1]:.6g}, {x[2]:.6g}); "
+            f"expected finite numbers"
         )
 
     def _to_physical(self, values: np.ndarray, source: np.ndarray) -> PointGeometry:
         nd = len(self.differentiated)
-        n = values.shape[1]
-        base = values[:nd].T  # (n, nd)
-        deriv = values[nd : 4 * nd].T.reshape(n, nd, 3)  # [n, field, k]
-        plain = values[4 * nd :].T
+        n = values.shape[0]
+        base = values[:, :nd]
+        deriv = values[:, nd : 4 * nd].reshape(n, nd, 3)  # [n, field, k]
+        plain = values[:, 4 * nd :]
         covered = source >= 0
-        if self.variable_set is VariableSet.ADM:
-            gamma = symmetric_from_components(base)
-            dgamma = symmetric_from_components(np.transpose(deriv, (0, 2, 1)))  # [n, k, i, j]
-            K = symmetric_from_components(plain)
-            return PointGeometry(gamma, dgamma, K, covered, source)
         factor, dfactor = base[:, 0], deriv[:, 0, :]
         if self.variable_set is VariableSet.CONFORMAL_CHI:
             chi, dchi = factor, dfactor
-        elif self.variable_set is VariableSet.CONFORMAL_W:
+        elif self.variable_set in (VariableSet.CONFORMAL_W, VariableSet.ADM):  # ADM: W made at the nodes
             chi, dchi = factor**2, 2.0 * factor[:, None] * dfactor
         else:  # phi: chi = exp(-4 phi)
             chi = np.exp(-4.0 * factor)
@@ -201,74 +261,48 @@ class GridGeometry:
         return PointGeometry(gamma, dgamma, K, covered, source)
 
 
-def _prepare_block(slice_: Slice, index: int, lower, upper, order, differentiated, plain) -> _Block | None:
-    patch = slice_.patches[index]
-    g = order // 2
-    pad = order + g
-    n = np.asarray(patch.shape)
-    lo_idx = np.floor((lower - patch.origin) / patch.spacing).astype(int) - pad
-    hi_idx = np.ceil((upper - patch.origin) / patch.spacing).astype(int) + pad
-    lo_idx = np.maximum(lo_idx, 0)
-    hi_idx = np.minimum(hi_idx, n - 1)
-    if np.any(hi_idx - lo_idx < 2 * g + order - 1):
-        return None  # the region misses this patch, or too few nodes for a stencil
-    window = tuple(slice(int(a), int(b) + 1) for a, b in zip(lo_idx, hi_idx))
-    inner = tuple(slice(g, (b - a + 1) - g) for a, b in zip(lo_idx, hi_idx))
-    shape_inner = tuple(int(b - a + 1 - 2 * g) for a, b in zip(lo_idx, hi_idx))
-    weights = centred_difference_weights(order)
-    nd = len(differentiated)
-    values = np.empty((4 * nd + len(plain),) + shape_inner)
-    with np.errstate(invalid="ignore", over="ignore"):
-        for f, name in enumerate(differentiated):
-            raw = np.asarray(patch.fields[name][window], dtype=float)
-            values[f] = raw[inner]
-            for axis in range(3):
-                acc = np.zeros(shape_inner)
-                for k, w in enumerate(weights):
-                    if w == 0.0:
-                        continue
-                    sl = list(inner)
-                    sl[axis] = slice(k, k + shape_inner[axis])
-                    acc += w * raw[tuple(sl)]
-                values[nd + 3 * f + axis] = acc / patch.spacing[axis]
-        for f, name in enumerate(plain):
-            values[4 * nd + f] = np.asarray(patch.fields[name][window], dtype=float)[inner]
-    origin = patch.origin + (lo_idx + g) * patch.spacing
-    excised = slice_.excised_mask(index, window)
-    unusable = None
-    if excised is not None and excised.any():
-        # Derivatives at a node read g nodes either side along each axis.
-        unusable = widen_along_axes(excised, g)[inner]
-    return _Block(index, patch.level, origin, patch.spacing.copy(), values, unusable)
+def _merged(geometry: PointGeometry, idx: np.ndarray, part: PointGeometry) -> PointGeometry:
+    """``geometry`` with the points ``idx`` replaced by ``part``."""
+    arrays = {}
+    for name in ("gamma", "dgamma", "K", "covered", "source_patch"):
+        whole = getattr(geometry, name).copy()
+        whole[idx] = getattr(part, name)
+        arrays[name] = whole
+    return PointGeometry(**arrays)
 
 
-def grid_geometry(slice_: Slice, lower, upper, *, order: int = 4) -> GridGeometry:
-    """Prepare interpolation of the slice's geometry for points inside the box [lower, upper].
+def _declares_excision(slice_: Slice) -> bool:
+    return bool(slice_.excised_spheres) or any(EXCISION_MASK_FIELD in p.fields for p in slice_.patches)
+
+
+def grid_geometry(slice_: Slice, lower=None, upper=None, *, order: int = DEFAULT_ORDER) -> GridGeometry:
+    """Prepare interpolation of the slice's geometry (nothing is computed until points come).
 
     Args:
         slice_: the slice.
-        lower, upper: (3,) corners of the region surfaces will be evaluated in, units of M.
+        lower, upper: (3,) corners of the region surfaces are expected in, units of M (default:
+            the slice's bounds); recorded for :meth:`GridGeometry.contains`, not a limit.
         order: interpolation nodes per axis (even, one of :data:`SUPPORTED_ORDERS`).
     """
     if order not in SUPPORTED_ORDERS:
         raise ValueError(f"order: expected one of {SUPPORTED_ORDERS}, got {order}")
-    lower = np.asarray(lower, dtype=float).reshape(3)
-    upper = np.asarray(upper, dtype=float).reshape(3)
+    lo_default, hi_default = slice_.bounds()
+    lower = np.asarray(lo_default if lower is None else lower, dtype=float).reshape(3)
+    upper = np.asarray(hi_default if upper is None else upper, dtype=float).reshape(3)
     if np.any(upper <= lower):
         raise ValueError(f"region: upper {upper.tolist()} must exceed lower {lower.tolist()} on every axis")
-    differentiated, plain = _field_layout(slice_.variable_set)
-    blocks = []
-    for index in slice_.patch_order():
-        block = _prepare_block(slice_, index, lower, upper, order, differentiated, plain)
-        if block is not None:
-            blocks.append(block)
+    differentiated, plain = field_layout(slice_.variable_set)
+    blocks = tuple(NodeStore.for_patch(slice_, index, order) for index in slice_.patch_order())
     # Usable box of every patch (where a full stencil fits), for "nearest patch" messages.
-    g = order // 2
-    reach = g + order // 2
+    reach = order // 2 + order // 2
     boxes = tuple(
         (p.origin + reach * p.spacing, p.upper - reach * p.spacing, i) for i, p in enumerate(slice_.patches)
     )
-    return GridGeometry(slice_.variable_set, order, lower, upper, tuple(blocks), boxes, differentiated, plain)
+    next_lower = None
+    if order > 4 and _declares_excision(slice_):
+        next_lower = grid_geometry(slice_, lower, upper, order=order - 2)
+    return GridGeometry(slice_.variable_set, order, lower, upper, blocks, boxes, differentiated, plain, slice_,
+                        next_lower)
 
 
 def describe_uncovered(geometry: GridGeometry, points: np.ndarray) -> str:

@@ -10,8 +10,9 @@ import numpy as np
 
 from .excision import ExcisedDataError
 from .expansion import level_set_derivatives
+from .interpolation import DEFAULT_ORDER
 from .sources import TrackedSource, as_tracked_source
-from .surfaces import Surface, angular_grid, harmonic_basis, unit_vectors
+from .surfaces import Surface, angular_grid, basis_on_grid, unit_vectors
 
 __all__ = ["SurfaceQuantities", "measure_surface", "surface_area", "plane_cut", "plane_cut_spanned", "proper_length_closed"]
 
@@ -87,11 +88,11 @@ def _angular_momentum(weights, density, points, geo, rd, centroid) -> np.ndarray
     return np.sum((weights * density)[:, None] * np.cross(rel, K_s), axis=0) / (8 * np.pi)
 
 
-def surface_area(surface: Surface, data, *, order: int = 4) -> float:
+def surface_area(surface: Surface, data, *, order: int = DEFAULT_ORDER) -> float:
     """Proper area (M^2) by the node quadrature of ``angular_grid(2 lmax)``."""
     source = as_tracked_source(data, order=order)
     grid = angular_grid(2 * surface.lmax)
-    dens = _area_density(surface, grid.theta, grid.phi, harmonic_basis(surface.lmax, grid.theta, grid.phi), source)[0]
+    dens = _area_density(surface, grid.theta, grid.phi, basis_on_grid(surface.lmax, grid.lmax), source)[0]
     return float(np.sum(grid.weights * dens))
 
 
@@ -164,15 +165,17 @@ def proper_length_closed(points: np.ndarray, geometry_source) -> float:
     return float(np.sum(speed) * 2 * np.pi / n)
 
 
-def measure_surface(surface: Surface, data, *, order: int = 4, cut_samples: int = 128) -> SurfaceQuantities:
-    """Measure ``surface`` in ``data`` (a Slice, a reference spacetime or a geometry source).
+def measure_surface(surface: Surface, data, *, order: int = DEFAULT_ORDER, cut_samples: int = 128) -> SurfaceQuantities:
+    """Measure ``surface`` in ``data``: a Slice, a reference spacetime, a geometry source, or the
+    ``geometry`` of the :class:`~.finder.FindResult` that found it (its prepared grid nodes are
+    reused, so measuring costs little beyond the new points' stencils).
 
     Quadratures use ``angular_grid(2 lmax)`` (exact for the products that appear when the
     metric is smooth), so the area converges with the surface, not with the node count.
     """
     source: TrackedSource = as_tracked_source(data, order=order)
     grid = angular_grid(2 * surface.lmax)
-    basis = harmonic_basis(surface.lmax, grid.theta, grid.phi)
+    basis = basis_on_grid(surface.lmax, grid.lmax)
     dens, pts, geo, rd = _area_density(surface, grid.theta, grid.phi, basis, source)
     area = float(np.sum(grid.weights * dens))
     centroid = np.sum((grid.weights * dens)[:, None] * pts, axis=0) / area

@@ -31,6 +31,7 @@ __all__ = [
     "harmonic_values",
     "AngularGrid",
     "angular_grid",
+    "basis_on_grid",
     "RadiusDerivatives",
     "Surface",
     "unit_vectors",
@@ -172,6 +173,17 @@ def angular_grid(lmax: int, n_theta: int | None = None, n_phi: int | None = None
     for arr in (theta, phi, weights):
         arr.setflags(write=False)
     return AngularGrid(lmax, n_theta, n_phi, theta, phi, weights, harmonic_basis(lmax, theta, phi))
+
+
+@functools.lru_cache(maxsize=32)
+def basis_on_grid(lmax: int, grid_lmax: int) -> HarmonicBasis:
+    """Harmonics up to ``lmax`` at the nodes of ``angular_grid(grid_lmax)`` (memoised: a pure
+    function of its arguments; the finder's checks between nodes and the measurements reuse it)."""
+    grid = angular_grid(grid_lmax)
+    basis = harmonic_basis(lmax, grid.theta, grid.phi)
+    for name in ("Y", "d_theta", "d_phi", "d_theta_theta", "d_theta_phi", "d_phi_phi"):
+        getattr(basis, name).setflags(write=False)
+    return basis
 
 
 def unit_vectors(theta: np.ndarray, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

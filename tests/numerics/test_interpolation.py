@@ -145,3 +145,26 @@ def test_puncture_inside_the_box_does_not_poison_a_surface_around_it(cube):
     pts = 0.5 * np.eye(3)
     geo = grid_geometry(sl, [-0.7] * 3, [0.7] * 3, order=4)(pts)
     np.testing.assert_allclose(geo.gamma[:, 0, 0], bl.geometry(pts).gamma[:, 0, 0], rtol=1e-3)
+
+
+def test_points_between_two_patches_narrower_than_the_stencils_fall_back_to_a_lower_order():
+    """Two boxes of one level sharing only nine node planes (as two ranks' boxes with few ghost
+    nodes do): an order-6 stencil with its difference stencils does not fit in either box near
+    the seam, so those points are served at order 4 instead of being "outside the data". The
+    horizon of a lone puncture is still found, with area 16 pi m^2 (docs/references.md item 1)."""
+    from penumbra_server.numerics.finder import FinderSettings, find_surface
+    from penumbra_server.numerics.measures import measure_surface
+    from penumbra_server.numerics.surfaces import Surface
+
+    centre = np.array([0.013, -0.021, 0.017])
+    hole = BrillLindquist(masses=(1.0,), positions=(tuple(centre),))
+    h = 2.4 / 32
+    slabs = [{"origin": (centre[0] - 1.2 + first * h, centre[1] - 1.2, centre[2] - 1.2), "spacing": (h, h, h),
+              "shape": (last - first + 1, 33, 33)} for first, last in ((0, 20), (12, 32))]
+    data = sample_slice(hole, slabs, variable_set="conformal_chi")
+    geometry = grid_geometry(data, order=6)
+    seam = np.array([[centre[0] - 1.2 + 16 * h, centre[1], centre[2]]])
+    assert np.all(np.isfinite(geometry(seam).gamma))
+    result = find_surface(data, Surface.sphere(centre, 0.45, 8), settings=FinderSettings(lmax=8, interpolation_order=6))
+    assert result.success, result.message
+    assert measure_surface(result.surface, data, order=6).area == pytest.approx(16 * np.pi, rel=1e-4)

@@ -19,6 +19,7 @@ import pytest
 
 import penumbra_shim as ps
 from penumbra_server.archive import open_archive
+from penumbra_server.server.jobs import SERVICE_INTERPOLATION_ORDER
 
 from service_support import LONE_CENTRE, lone_hole_slice, lone_spec
 from tracking_support import demo_like_scenario, scenario_bodies, scenario_slice, surface_points, wait_for_windows
@@ -198,7 +199,7 @@ def test_cropped_sends_find_the_same_surfaces_at_a_fraction_of_the_bytes(full_an
     view = open_archive(runs["archive_root"], runs["cropped"].run_id)
     windows = view.windows()
     assert set(windows["iteration"].tolist()) == {runs["scenario"].iteration_of(i) for i in range(SLICES)}
-    assert np.all(windows["extra_nodes"] == 6)  # the server's own crop ghost nodes (order 4 + 2)
+    assert np.all(windows["extra_nodes"] == SERVICE_INTERPOLATION_ORDER + 2)  # the server's own crop ghost nodes (order + 2)
     received = view.slices()["bytes"]
     assert received[0] > received[1:].max()
 

@@ -35,7 +35,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .excision import EXCISION_MASK_FIELD, ExcisedDataError
+from .excision import ExcisedDataError
 from .geometry import PointGeometry, physical_from_conformal, symmetric_from_components
 from .node_store import NodeStore, centred_difference_weights, field_layout
 from .slices import Slice, SliceError, VariableSet
@@ -102,10 +102,12 @@ class GridGeometry:
     The node stores are caches of pure functions of the slice: calling the same instance twice
     with the same points gives the same values.
 
-    Next to excised regions (declared on the slice) a point whose stencils reach excised nodes
-    is served by ``next_lower``, the same interpolation of order - 2 (down to 4), whose stencils
-    are narrower; only when the lowest one still reaches excised data does the call raise
-    :class:`ExcisedDataError`.
+    A point that no patch serves at this order (its stencils do not fit in one patch, e.g. near
+    the seam between two ranks' boxes with few ghost nodes), and next to excised regions
+    (declared on the slice) a point whose stencils reach excised nodes, is served by
+    ``next_lower``, the same interpolation of order - 2 (down to 4), whose stencils are
+    narrower; only when the lowest one still reaches excised data does the call raise
+    :class:`ExcisedDataError`, and a point no order serves is left uncovered (NaN).
     """
 
     variable_set: VariableSet
@@ -203,6 +205,8 @@ class GridGeometry:
             if shift_weights is not None:
                 pending.append((sel, shift_weights, rows))
             source[sel] = store.patch_index
+        if self.next_lower is not None:
+            lower |= source < 0  # narrower stencils may fit where these do not
         geometry = self._to_physical(values, source)
         sub = sub_moved = None
         if lower.any():
@@ -271,10 +275,6 @@ def _merged(geometry: PointGeometry, idx: np.ndarray, part: PointGeometry) -> Po
     return PointGeometry(**arrays)
 
 
-def _declares_excision(slice_: Slice) -> bool:
-    return bool(slice_.excised_spheres) or any(EXCISION_MASK_FIELD in p.fields for p in slice_.patches)
-
-
 def grid_geometry(slice_: Slice, lower=None, upper=None, *, order: int = DEFAULT_ORDER) -> GridGeometry:
     """Prepare interpolation of the slice's geometry (nothing is computed until points come).
 
@@ -298,9 +298,8 @@ def grid_geometry(slice_: Slice, lower=None, upper=None, *, order: int = DEFAULT
     boxes = tuple(
         (p.origin + reach * p.spacing, p.upper - reach * p.spacing, i) for i, p in enumerate(slice_.patches)
     )
-    next_lower = None
-    if order > 4 and _declares_excision(slice_):
-        next_lower = grid_geometry(slice_, lower, upper, order=order - 2)
+    # Lazily prepared like this one: costs nothing until a point needs it.
+    next_lower = grid_geometry(slice_, lower, upper, order=order - 2) if order > 4 else None
     return GridGeometry(slice_.variable_set, order, lower, upper, blocks, boxes, differentiated, plain, slice_,
                         next_lower)
 

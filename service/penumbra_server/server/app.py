@@ -26,6 +26,7 @@ from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 from ._spec import RunSettings
 from .auth import AuthInterceptor, check_exposure
 from .executors import FinderExecutor, ProcessPoolFinderExecutor
+from .jobs import SERVICE_INTERPOLATION_ORDER
 from .ingest import IngestLimits
 from .runs import ManagerOptions, RunManager
 from .scheduler import SurfacePlanner
@@ -53,7 +54,7 @@ class ServerOptions:
     max_slice_bytes: int = 2 * 1024**3
     event_log_limit: int = 100_000
     subscriber_queue_size: int = 1024
-    interpolation_order: int = 4
+    interpolation_order: int = SERVICE_INTERPOLATION_ORDER
     restore_runs: bool = True
     #: Look for the common horizon of two-body runs (the default planner; `serve --no-common-horizon`).
     common_horizon: bool = True

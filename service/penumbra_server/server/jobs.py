@@ -40,6 +40,13 @@ REASON_WORKER_FAILED = 4
 REASON_NOT_SEARCHED = 5
 REASON_NEEDS_EXCISED_DATA = 6
 
+#: Interpolation order of the service's finds. Not the finder's more accurate default (6):
+#: order-6 stencils with their difference stencils need about 13 shared node planes where two
+#: boxes of one level meet (e.g. two ranks' boxes), and at narrower seams the points fall back
+#: to order 4, whose different truncation error there spoils Newton's convergence. Order 4
+#: needs 9. Runs whose boxes overlap widely can ask for 6 (ServerOptions.interpolation_order).
+SERVICE_INTERPOLATION_ORDER = 4
+
 
 def crop_slice(slice_: Slice, lower, upper, *, ghost_nodes: int) -> Slice | None:
     """The part of ``slice_`` inside the box [lower, upper], widened by ``ghost_nodes`` per side.
@@ -103,7 +110,7 @@ class SurfaceJob:
     lmax: int
     tolerance: float
     max_iterations: int
-    interpolation_order: int = 4
+    interpolation_order: int = SERVICE_INTERPOLATION_ORDER
     seed: Surface | None = None
     extra_seeds: tuple[Surface, ...] = ()
     scan_centre: np.ndarray | None = None
@@ -212,7 +219,9 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
         if result.success:
             surface = result.surface
             try:
-                quantities = _quantities_dict(measure_surface(surface, job.data, order=job.interpolation_order))
+                # The find's prepared grid nodes serve the measurement too (numerics.measures).
+                measured_in = result.geometry if result.geometry is not None else job.data
+                quantities = _quantities_dict(measure_surface(surface, measured_in, order=job.interpolation_order))
                 message = result.message
             except ValueError as exc:
                 quantities = {}

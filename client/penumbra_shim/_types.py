@@ -596,7 +596,7 @@ class PositionForecast:
     def from_wire(cls, f: pb.PositionForecast) -> "PositionForecast":
         return cls(model=_MODEL_NAMES.get(f.model, "unspecified"), reason=f.reason,
                    times=np.asarray(f.times_m, float), positions=_vectors(f.positions_m),
-                   uncertainty=np.asarray(f.uncertainty_m, float), fit_window=(f.fit_from_m, f.fit_until_m))
+                   uncertainty=np.asarray(f.uncertainties_m, float), fit_window=(f.fit_from_m, f.fit_until_m))
 
     def at(self, time: float) -> tuple[np.ndarray, float]:
         """(position (3,), uncertainty) at ``time``, linear between the forecast times."""
@@ -708,7 +708,7 @@ class BodyRefinement:
     def from_wire(cls, b: pb.BodyRefinement) -> "BodyRefinement":
         return cls(label=b.label, centre=_triple(b.centre_m), finest_level=b.finest_level,
                    radii=np.asarray(b.radii_m, float), spacings=np.asarray(b.spacings_m, float),
-                   lower=_vectors(b.lower_m), upper=_vectors(b.upper_m), required_spacing=b.required_spacing_m,
+                   lower=_vectors(b.lowers_m), upper=_vectors(b.uppers_m), required_spacing=b.required_spacing_m,
                    finest_spacing=b.finest_spacing_m, margins=dict(b.margins_m), reasons=dict(b.reasons),
                    horizon_max_radius=b.horizon_max_radius_m, horizon_min_diameter=b.horizon_min_diameter_m)
 

@@ -1,4 +1,4 @@
-"""The hooks tracking and guidance (issue 4) will use: a planner that adds a surface the spec did
+"""The hooks for custom tracking: a planner that adds a surface the spec did
 not name, and a slice observer that publishes its own events in sequence."""
 
 from __future__ import annotations

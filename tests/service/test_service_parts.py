@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 import penumbra_shim as ps
+from penumbra_shim._errors import error_from_rpc
 from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
@@ -61,7 +62,7 @@ def _refused(stub, requests) -> grpc.RpcError:
 
 def _assert_refusal(err: grpc.RpcError, code: grpc.StatusCode, token: str, *fragments: str) -> None:
     assert err.code() == code, err.details()
-    assert err.details().startswith(f"[{token}] "), err.details()
+    assert error_from_rpc(err).reason == token.upper(), err.details()
     for fragment in fragments:
         assert fragment in err.details(), err.details()
 
@@ -140,7 +141,7 @@ def test_seven_of_eight_parts_are_processed_after_the_deadline_and_the_missing_p
             # Only a part that came after the deadline may be refused, and then as too late (no
             # timing is assumed: on a loaded machine the deadline may pass between two sends).
             assert index > 0 and error.code == grpc.StatusCode.FAILED_PRECONDITION, error
-            assert error.details.startswith("[part_after_assembly]"), error.details
+            assert error.reason == "PART_AFTER_ASSEMBLY", error.details
             late.add(index)
     events = _events_until(client, run.run_id, _processed(0))
     kinds = [e.kind for e in events]

@@ -21,11 +21,12 @@ import time as _time
 import grpc
 import numpy as np
 
-from ._client import Client, RunHandle
+from ._client import Client
+from ._run_handle import RunHandle
 from ._errors import PenumbraError, SliceValidationError
 from ._fields import VARIABLE_SETS
 from ._slices import PatchData
-from ._types import BacklogOptions, Body, FinderOptions, RefinementOptions, RunSpec
+from ._spec_types import BacklogOptions, Body, FinderOptions, RefinementOptions, RunSpec
 
 __all__ = ["BridgeError", "STATUS", "connect", "parse_spec", "Connection", "Run"]
 
@@ -61,9 +62,9 @@ class BridgeError(Exception):
 def _translate(exc: BaseException) -> BridgeError:
     if isinstance(exc, BridgeError):
         return exc
-    if isinstance(exc, PenumbraError):
+    if isinstance(exc, PenumbraError) and exc.code is not None:  # the server refused
         return BridgeError(_GRPC_STATUS.get(exc.code, "REFUSED"), str(exc))
-    if isinstance(exc, (SliceValidationError, ValueError, TypeError)):
+    if isinstance(exc, (SliceValidationError, ValueError, TypeError)):  # found before sending
         return BridgeError("INVALID_ARGUMENT", str(exc))
     if isinstance(exc, RuntimeError) and "closed" in str(exc):
         return BridgeError("FAILED_PRECONDITION", str(exc))

@@ -26,16 +26,8 @@ advisory: the evolution decides what to do with them.
 """
 
 from ._auth import channel_credentials
-from ._client import (
-    DEFAULT_IDLE_TIMEOUT_S,
-    DEFAULT_OPEN_TIMEOUT_S,
-    Client,
-    EventStream,
-    RunHandle,
-    SenderStats,
-    SubmitTicket,
-    connect,
-)
+from ._client import DEFAULT_OPEN_TIMEOUT_S, Client, connect
+from ._event_stream import DEFAULT_IDLE_TIMEOUT_S, EventStream
 from ._errors import (
     CropError,
     InvalidArgumentError,
@@ -49,28 +41,39 @@ from ._excision import EXCISION_MASK_FIELD, ExcisedSphere
 from ._link import DROP_REASONS, ClientGap, DroppedRange, DroppedSlice
 from ._fields import VARIABLE_SETS, optional_fields, required_fields
 from ._slices import DEFAULT_CHUNK_BYTES, OutgoingPatch, OutgoingSlice, PatchData, build_slice, crop_outgoing_slice
-from ._types import (
+from ._events import (
     EVENT_KINDS,
-    BacklogOptions,
-    Body,
+    ClientGapRecordedEvent,
+    CommonHorizonFormedEvent,
+    DataWindowsEvent,
+    Event,
+    GuidanceEvent,
+    OtherEvent,
+    RunStateChangedEvent,
+    SliceProcessedEvent,
+    SlicePartsMissingEvent,
+    SliceRejectedEvent,
+    SliceSkippedEvent,
+    SurfaceFoundEvent,
+    SurfaceNotFoundEvent,
+    TrackUpdatedEvent,
+    WarningEvent,
+)
+from ._guidance_types import (
     BodyRefinement,
     CommonHorizon,
     DataWindow,
     DataWindows,
-    Event,
-    FinderOptions,
     Guidance,
     PositionForecast,
     RefinedRegion,
-    RefinementOptions,
-    RunInfo,
-    RunSpec,
-    SliceAck,
-    SurfaceReport,
-    SurfaceState,
     TrackPoint,
     TrackUpdate,
 )
+from ._results import RunInfo, SliceAck, SurfaceReport, SurfaceState
+from ._run_handle import RunHandle
+from ._sender import SenderStats, SubmitTicket
+from ._spec_types import BacklogOptions, Body, FinderOptions, RefinementOptions, RunSpec
 
 __all__ = [
     "DEFAULT_CHUNK_BYTES",
@@ -92,6 +95,20 @@ __all__ = [
     "DataWindow",
     "DataWindows",
     "Event",
+    "ClientGapRecordedEvent",
+    "CommonHorizonFormedEvent",
+    "DataWindowsEvent",
+    "GuidanceEvent",
+    "OtherEvent",
+    "RunStateChangedEvent",
+    "SliceProcessedEvent",
+    "SlicePartsMissingEvent",
+    "SliceRejectedEvent",
+    "SliceSkippedEvent",
+    "SurfaceFoundEvent",
+    "SurfaceNotFoundEvent",
+    "TrackUpdatedEvent",
+    "WarningEvent",
     "EventStream",
     "ExcisedSphere",
     "FinderOptions",

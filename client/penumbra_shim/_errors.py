@@ -11,7 +11,8 @@ Each member also subclasses the built-in error it resembles, so callers may catc
             RunNotFoundError(LookupError)           ... NOT_FOUND: no run with that id
 
 This module imports nothing beyond the standard library (grpc only for type names), so that
-:mod:`penumbra_shim.cropping` stays usable with numpy alone.
+:mod:`penumbra_shim.cropping` stays usable with numpy alone; the server's reason and field are
+read from the call's trailer by :mod:`penumbra_shim._rich_status` (protobuf) when a call fails.
 """
 
 from __future__ import annotations
@@ -62,12 +63,21 @@ class UnknownWireValueError(PenumbraError, ValueError):
 
 
 class ServerError(PenumbraError, RuntimeError):
-    """The server refused a call or could not be reached."""
+    """The server refused a call or could not be reached.
 
-    def __init__(self, code: grpc.StatusCode, details: str, *, method: str = "") -> None:
+    Attributes:
+        reason: the server's machine-readable reason (UPPER_SNAKE, e.g. "RUN_NOT_FOUND",
+            "PART_INDEX_OUT_OF_RANGE"); "" when the server sent none (e.g. unreachable).
+        field: the request field at fault (e.g. "header.part_index"); "" when none.
+    """
+
+    def __init__(self, code: grpc.StatusCode, details: str, *, method: str = "", reason: str = "",
+                 field: str = "") -> None:
         self.code = code
         self.details = details
         self.method = method
+        self.reason = reason
+        self.field = field
         where = f"{method}: " if method else ""
         super().__init__(f"{where}{code.name}: {details}")
 
@@ -91,7 +101,10 @@ def error_from_rpc(exc: grpc.RpcError, method: str = "") -> ServerError:
     """The shim's error for a failed call: its class chosen by the status code."""
     import grpc
 
+    from ._rich_status import error_details
+
     code = exc.code() if hasattr(exc, "code") else grpc.StatusCode.UNKNOWN
     details = exc.details() if hasattr(exc, "details") else str(exc)
+    info = error_details(exc.trailing_metadata() if hasattr(exc, "trailing_metadata") else ())
     cls = _CLASS_OF_CODE.get(code.name, ServerError)
-    return cls(code, details or "", method=method)
+    return cls(code, details or "", method=method, reason=info.reason, field=info.field)

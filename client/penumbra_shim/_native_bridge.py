@@ -26,12 +26,13 @@ import time as _time
 import grpc
 import numpy as np
 
-from ._client import Client, RunHandle
+from ._client import Client
+from ._run_handle import RunHandle
 from ._errors import PenumbraError, SliceValidationError
 from ._fields import VARIABLE_SETS, required_fields
 from ._native_input import RUN_STATES, STATUS, BridgeError, parse_options, parse_spec
 from ._slices import PatchData, build_slice
-from ._types import RunSpec
+from ._spec_types import RunSpec
 
 __all__ = ["BridgeError", "STATUS", "RUN_STATES", "connect", "parse_spec", "parse_options", "Connection", "Run"]
 

@@ -12,7 +12,7 @@ from pathlib import Path
 
 from ._auth import channel_credentials
 from ._fields import VARIABLE_SETS
-from ._types import BacklogOptions, Body, FinderOptions, RefinementOptions, RunSpec
+from ._spec_types import BacklogOptions, Body, FinderOptions, RefinementOptions, RunSpec
 
 __all__ = ["BridgeError", "STATUS", "RUN_STATES", "OPTION_KEYS", "parse_spec", "parse_options"]
 

@@ -170,10 +170,11 @@ def test_frame_shows_the_common_horizon_and_the_latest_guidance():
                           policy=ps.RefinementOptions(nesting_depth=2), reasons={},
                           bodies=(_body("common", (0.01, 0, 0), 1.1),),
                           levels=((_region(1, ("common",), (0.01, 0, 0), 2.2),), (_region(2, ("common",), (0.01, 0, 0), 1.1),)))
-    progress.absorb(ps.Event(seq=91, run_id=info.run_id, kind="common_horizon_formed", time=7.75, iteration=77,
-                             emitted_unix_s=0.0,
-                             common=ps.CommonHorizon(label="common", time=7.75, iteration=77, body_labels=("A", "B"),
-                                                     separation=0.74, irreducible_mass=0.99, area=49.3)))
+    progress.absorb(ps.CommonHorizonFormedEvent(seq=91, run_id=info.run_id, kind="common_horizon_formed", time=7.75, iteration=77,
+                                                emitted_unix_s=0.0, label="common",
+                                                common=ps.CommonHorizon(label="common", time=7.75, iteration=77,
+                                                                        body_labels=("A", "B"), separation=0.74,
+                                                                        irreducible_mass=0.99, area=49.3)))
     frame = render_frame(info, {}, progress, guidance=remnant, now_unix_s=0.0)
     assert ("common horizon: formed at t = 7.750 M (iteration 77), surface 'common', bodies 0.740 M apart, "
             "M_irr 0.9900 M") in frame

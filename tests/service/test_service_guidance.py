@@ -220,8 +220,8 @@ def test_a_slice_lacking_data_is_reported_and_the_next_window_grows(client):
     events = list(client.watch(run.run_id, timeout_s=30))
     warnings = [e for e in events if e.kind == "warning"]
     assert len(warnings) == 1 and warnings[0].iteration == 1
-    assert warnings[0].label == "A" and warnings[0].state == "missing_data"
-    assert "lacked data surface 'A'" in warnings[0].reason and "covered" in warnings[0].reason
+    assert warnings[0].label == "A" and warnings[0].warning_kind == "missing_data"
+    assert "lacked data surface 'A'" in warnings[0].message and "covered" in warnings[0].message
     missed = [e for e in events if e.kind == "surface_not_found" and e.iteration == 1]
     assert missed and missed[0].surface.reason == "outside_data"
     (grown,) = after.windows

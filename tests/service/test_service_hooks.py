@@ -1,4 +1,4 @@
-"""The hooks tracking and guidance (issue 4) will use: a planner that adds a surface the spec did
+"""The hooks for custom tracking: a planner that adds a surface the spec did
 not name, and a slice observer that publishes its own events in sequence."""
 
 from __future__ import annotations
@@ -82,7 +82,7 @@ def test_a_failing_planner_marks_the_slice_failed_and_the_run_goes_on(tmp_path):
             run.close()
             events = list(client.watch(run.run_id, timeout_s=30))
     processed = {e.iteration: e for e in events if e.kind == "slice_processed"}
-    assert "ZeroDivisionError: planner bug" in processed[0].reason and processed[0].surfaces_attempted == 0
-    assert processed[1].reason == "" and processed[1].surfaces_found == 1
+    assert "ZeroDivisionError: planner bug" in processed[0].error and processed[0].surfaces_attempted == 0
+    assert processed[1].error == "" and processed[1].surfaces_found == 1
     outcome = open_archive(tmp_path, run.run_id).slices()["outcome"].tolist()
     assert outcome == [3, 1]  # failed, processed

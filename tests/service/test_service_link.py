@@ -247,10 +247,10 @@ def test_rejected_slices_appear_in_the_run_events(server, client, stub):
     reader.join()
     assert info.slices_rejected == 3
     rejected = reader.of_kind("slice_rejected")
-    assert [(e.iteration, e.state) for e in rejected] == [
+    assert [(e.iteration, e.status_code) for e in rejected] == [
         (7, "INVALID_ARGUMENT"), (8, "INVALID_ARGUMENT"), (9, "DATA_LOSS")]
-    assert "gamma_yy" in rejected[0].reason and rejected[0].time == pytest.approx(0.7)
-    assert rejected[0].reason == error.details and refused.value.details() == rejected[1].reason
+    assert "gamma_yy" in rejected[0].message and rejected[0].time == pytest.approx(0.7)
+    assert rejected[0].message == error.details and refused.value.details() == rejected[1].message
     events = open_archive(info.archive_path).tracking_events()
     kinds = [str(k) for k in events["kind"]]
     assert kinds.count("slice_rejected") == 3
@@ -339,11 +339,12 @@ def test_the_watch_view_shows_refusals_and_outages():
     from penumbra_server.cli.watch import RunProgress
 
     progress = RunProgress()
-    progress.absorb(ps.Event(seq=5, run_id="run-x", kind="slice_rejected", time=0.7, iteration=7, emitted_unix_s=0.0,
-                             state="INVALID_ARGUMENT", reason="patches[0].fields['gamma_yy']: non-finite value"))
+    progress.absorb(ps.SliceRejectedEvent(seq=5, run_id="run-x", kind="slice_rejected", time=0.7, iteration=7,
+                                          emitted_unix_s=0.0, status_code="INVALID_ARGUMENT",
+                                          message="patches[0].fields['gamma_yy']: non-finite value"))
     gap = ps.ClientGap("g", 100.0, 112.5, (ps.DroppedRange(0, 3, 4, "link_down", 0.0, 0.3),), "OpenRun: no answer")
-    progress.absorb(ps.Event(seq=6, run_id="run-x", kind="client_gap_recorded", time=0.0, iteration=0,
-                             emitted_unix_s=0.0, gap=gap))
+    progress.absorb(ps.ClientGapRecordedEvent(seq=6, run_id="run-x", kind="client_gap_recorded", time=0.0,
+                                              iteration=0, emitted_unix_s=0.0, gap=gap))
     assert progress.warnings == [
         "slice refused at iteration 7 (INVALID_ARGUMENT): patches[0].fields['gamma_yy']: non-finite value",
         "client link down 12.5 s, 4 slices dropped: 0-3 (4, link_down)"]

@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 import penumbra_shim as ps
+from penumbra_shim._errors import error_from_rpc
 from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
@@ -61,7 +62,7 @@ def _refused(stub, requests) -> grpc.RpcError:
 
 def _assert_refusal(err: grpc.RpcError, code: grpc.StatusCode, token: str, *fragments: str) -> None:
     assert err.code() == code, err.details()
-    assert err.details().startswith(f"[{token}] "), err.details()
+    assert error_from_rpc(err).reason == token.upper(), err.details()
     for fragment in fragments:
         assert fragment in err.details(), err.details()
 
@@ -140,7 +141,7 @@ def test_seven_of_eight_parts_are_processed_after_the_deadline_and_the_missing_p
             # Only a part that came after the deadline may be refused, and then as too late (no
             # timing is assumed: on a loaded machine the deadline may pass between two sends).
             assert index > 0 and error.code == grpc.StatusCode.FAILED_PRECONDITION, error
-            assert error.details.startswith("[part_after_assembly]"), error.details
+            assert error.reason == "PART_AFTER_ASSEMBLY", error.details
             late.add(index)
     events = _events_until(client, run.run_id, _processed(0))
     kinds = [e.kind for e in events]
@@ -149,11 +150,12 @@ def test_seven_of_eight_parts_are_processed_after_the_deadline_and_the_missing_p
     report = missing[0]
     assert report.iteration == 0 and report.parts_expected == support.RANKS
     assert report.missing_parts == tuple(sorted({7} | late))
-    assert report.state == "processed" and "7" in report.reason and "part_deadline_s = 3 s" in report.reason
+    assert report.disposition == "processed" and "7" in report.message and "part_deadline_s = 3 s" in report.message
     assert report.raw.slice_parts_missing.patches_received == len(a_side)
     # Announced before any result of the slice; then each surface as its data allow.
     assert kinds.index("slice_parts_missing") < kinds.index("surface_found")
-    outcomes = {e.surface.label: e.surface for e in events if e.surface is not None and e.iteration == 0}
+    outcomes = {e.surface.label: e.surface for e in events
+                if isinstance(e, (ps.SurfaceFoundEvent, ps.SurfaceNotFoundEvent)) and e.iteration == 0}
     assert outcomes["A"].found
     assert not outcomes["B"].found  # B's boxes were in the missing part
     (m, other), d = (m1, m2), float(np.linalg.norm(np.subtract(p1, p2)))
@@ -177,8 +179,8 @@ def test_closing_hands_on_a_pending_slice_keeping_one_copy_of_a_shared_patch(cli
     assert info.slices_incomplete == 1 and info.slices_received == 1 and info.slices_processed == 1
     events = list(client.watch(run.run_id, from_seq=1, timeout_s=POLL_S))
     report = [e for e in events if e.kind == "slice_parts_missing"]
-    assert len(report) == 1 and report[0].missing_parts == (2,) and report[0].state == "processed"
-    assert "closed" in report[0].reason
+    assert len(report) == 1 and report[0].missing_parts == (2,) and report[0].disposition == "processed"
+    assert "closed" in report[0].message
     assert report[0].raw.slice_parts_missing.patches_received == 1
     found = [e.surface for e in events if e.kind == "surface_found"]
     assert len(found) == 1 and found[0].iteration == 3
@@ -193,8 +195,8 @@ def test_a_slice_whose_parts_carried_no_patch_is_given_up_and_a_late_part_is_ref
     assert response.outcome == pb.SendSliceResponse.OUTCOME_PART_ACCEPTED and response.received_bytes == 0
     events = _events_until(client, run.run_id, lambda ev: any(e.kind == "slice_parts_missing" for e in ev))
     report = events[-1]
-    assert report.iteration == 4 and report.missing_parts == (1,) and report.state == "given_up"
-    assert "given up" in report.reason
+    assert report.iteration == 4 and report.missing_parts == (1,) and report.disposition == "given_up"
+    assert "given up" in report.message
     err = _refused(stub, list(_part(4, [_lone_patch()], 1, 2).requests(run.run_id)))
     _assert_refusal(err, grpc.StatusCode.FAILED_PRECONDITION, "part_after_give_up", "header.iteration",
                     "iteration 4", "given up")
@@ -320,7 +322,7 @@ def test_a_restarted_server_remembers_incomplete_and_given_up_slices(tmp_path):
             info = client.get_run(run_id)
             assert (info.slices_received, info.slices_incomplete) == (1, 1)
             reports = [e for e in client.watch(run_id, from_seq=1, timeout_s=5) if e.kind == "slice_parts_missing"]
-            assert [(e.iteration, e.state, e.missing_parts) for e in reports] == [(0, "given_up", (1,)),
+            assert [(e.iteration, e.disposition, e.missing_parts) for e in reports] == [(0, "given_up", (1,)),
                                                                                 (1, "processed", (1,))]
             assert [e.seq for e in reports] == [e.seq for e in before if e.kind == "slice_parts_missing"]
             channel = grpc.insecure_channel(address)

@@ -1,7 +1,6 @@
 """The default planner and the run's steering state without a server: seeds at the forecast, a
 lost body held at its last centroid with a scan widened by the gap, individual surfaces retired
-after the merger, the smallest diameter and the shift interpolation; and the new spec fields
-and the GetLatestGuidance call on a real server."""
+after the merger; and the new spec fields and the GetLatestGuidance call on a real server."""
 
 from __future__ import annotations
 
@@ -12,11 +11,12 @@ import pytest
 import penumbra_shim as ps
 from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_server.numerics.slices import Patch, Slice, VariableSet
-from penumbra_server.numerics.surfaces import Surface, angular_grid
+from penumbra_server.numerics.surfaces import Surface
 from penumbra_server.server._spec import BodySpec, RunSettings
 from penumbra_server.server.jobs import REASON_NOT_CONVERGED, SurfaceOutcome
 from penumbra_server.server.planning import SteeringPlanner
-from penumbra_server.server.steering import RunSteering, shift_field, smallest_diameter
+from penumbra_server.server.steering import RunSteering
+from penumbra_server.server.surface_state import record_outcome
 
 
 def _settings(*bodies) -> RunSettings:
@@ -44,10 +44,17 @@ def _missed(label: str) -> SurfaceOutcome:
     return SurfaceOutcome(label=label, found=False, reason=REASON_NOT_CONVERGED, status=2, message="missed")
 
 
+def _observe_slice(steering, sl, plans, outcomes):
+    """What the run does with a processed slice: record each outcome, then let the steering decide."""
+    for outcome in outcomes:
+        record_outcome(steering.states[outcome.label], outcome, time=sl.time, iteration=sl.iteration)
+    return steering.observe(sl, plans, outcomes)
+
+
 def _observe(steering, planner, settings, time, outcomes):
     sl = _slice(time)
     plans = planner.plan(settings, {}, sl)
-    return plans, steering.observe(sl, plans, outcomes)
+    return plans, _observe_slice(steering, sl, plans, outcomes)
 
 
 def test_seed_at_the_forecast_then_a_lost_body_is_held_and_its_scan_widens_with_the_gap():
@@ -96,53 +103,18 @@ def test_common_search_starts_when_close_and_individuals_retire_after_merger():
     # The guess encloses both horizons where the forecast puts them at the slice's time.
     for body in plans[:2]:
         assert np.linalg.norm(body.seed_position - common.seed.centre) + 0.25 < common.seed.mean_radius
-    notices = steering.observe(_slice(3.0), plans, [_found("A", (0.4, 0, 0), 0.25), _missed("B"),
+    notices = _observe_slice(steering, _slice(3.0), plans, [_found("A", (0.4, 0, 0), 0.25), _missed("B"),
                                                      _found("common", (0.0, 0, 0), 0.7)])
     kinds = [n.kind for n in notices]
     assert kinds.count("common_horizon_formed") == 1 and steering.common_formed == (3.0, 30)
-    notices = steering.observe(_slice(4.0), planner.plan(settings, {}, _slice(4.0)),
-                               [_found("A", (0.4, 0, 0), 0.25), _missed("B"), _found("common", (0.0, 0, 0), 0.7)])
+    notices = _observe_slice(steering, _slice(4.0), planner.plan(settings, {}, _slice(4.0)),
+                             [_found("A", (0.4, 0, 0), 0.25), _missed("B"), _found("common", (0.0, 0, 0), 0.7)])
     assert "common_horizon_formed" not in [n.kind for n in notices]  # once only
     plans = {p.label: p for p in planner.plan(settings, {}, _slice(5.0))}
     assert plans["A"].search and plans["common"].search
     assert not plans["B"].search and "inside the common horizon" in plans["B"].note
     guidance = [n for n in notices if n.kind == "refinement_guidance"][0].payload
     assert guidance.post_merger and [b.label for b in guidance.bodies] == ["common"]
-
-
-def test_smallest_diameter_of_a_spheroid():
-    a, c = 0.3, 0.5  # prolate along z: the smallest diameter is the equatorial 2 a
-    grid = angular_grid(16)
-    h = 1.0 / np.sqrt(np.sin(grid.theta) ** 2 / a**2 + np.cos(grid.theta) ** 2 / c**2)
-    surface = Surface((1.0, 2.0, 3.0), 16, grid.project(h))
-    # l_max 16 truncation and the direction sampling leave ~2e-4 relative
-    assert smallest_diameter(surface) == pytest.approx(2 * a, rel=1e-3)
-    assert smallest_diameter(Surface.sphere((0, 0, 0), 0.7, 8)) == pytest.approx(1.4, rel=1e-12)
-
-
-def test_shift_field_interpolates_the_finest_patch_and_reports_uncovered_points():
-    axes = [np.linspace(-1, 1, 9)] * 3
-    x, y, z = np.meshgrid(*axes, indexing="ij")
-    coarse = {n: np.ones((9, 9, 9)) for n in ps.required_fields("adm")}
-    coarse.update(shift_x=0.1 + 0.2 * x - 0.3 * y, shift_y=0.5 * z * x, shift_z=np.zeros_like(x))
-    fine_axes = [np.linspace(-0.5, 0.5, 9)] * 3
-    fx, fy, fz = np.meshgrid(*fine_axes, indexing="ij")
-    fine = {n: np.ones((9, 9, 9)) for n in ps.required_fields("adm")}
-    fine.update(shift_x=0.1 + 0.2 * fx - 0.3 * fy, shift_y=0.5 * fz * fx, shift_z=np.full_like(fx, 7.0))
-    sl = Slice(time=0.0, iteration=0, variable_set="adm", patches=(
-        Patch(origin=(-1, -1, -1), spacing=(0.25,) * 3, shape=(9, 9, 9), level=0, fields=coarse),
-        Patch(origin=(-0.5, -0.5, -0.5), spacing=(0.125,) * 3, shape=(9, 9, 9), level=1, fields=fine)))
-    beta = shift_field(sl, (-1, -1, -1), (1, 1, 1))
-    points = np.array([[0.03, -0.02, 0.01], [0.6, 0.1, -0.2], [5.0, 0.0, 0.0]])
-    values = beta(points)
-    # 4th-order Lagrange interpolation is exact for these polynomials; the fine patch (shift_z = 7)
-    # serves the first point, the coarse one (shift_z = 0) the second, none the third.
-    for i in range(2):
-        p = points[i]
-        np.testing.assert_allclose(values[i, :2], [0.1 + 0.2 * p[0] - 0.3 * p[1], 0.5 * p[2] * p[0]], atol=1e-13)
-    assert values[0, 2] == pytest.approx(7.0, rel=1e-13) and values[1, 2] == 0.0
-    assert np.all(np.isnan(values[2]))
-    assert shift_field(_slice(0.0), (-1, -1, -1), (1, 1, 1)) is None  # no shift in the slice
 
 
 def test_refinement_policy_is_validated_and_echoed(stub):

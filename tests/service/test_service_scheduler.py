@@ -41,7 +41,7 @@ def test_seed_is_recentred_on_the_centroid_moved_at_its_velocity():
     offset = Surface.sphere((0, 0, 0), 0.5, 4)
     for time, x in ((1.0, 0.0), (2.0, 0.2)):
         shape = Surface(offset.centre + [x - 0.05, 0, 0], 4, offset.coefficients)
-        track.record_found(shape, (x, 0, 0), 0.5, None, iteration=int(time), time=time)
+        track.record_found(shape, (x, 0, 0), 0.5, iteration=int(time), time=time)
     np.testing.assert_allclose(track.velocity, (0.2, 0, 0))
     plan, = ExpectedBodiesPlanner().plan(_settings(), {"A": track}, _slice(3.0))
     np.testing.assert_allclose(plan.seed.centre, (0.4, 0, 0))

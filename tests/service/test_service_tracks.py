@@ -116,8 +116,10 @@ def test_tracking_state_survives_a_restart(tmp_path):
             for index in range(3):
                 run.submit(_slice(index))
             assert run.flush(60)
-            deadline = time.monotonic() + 60
-            while c.get_run(run.run_id).slices_processed < 3 and time.monotonic() < deadline:
+            deadline = time.monotonic() + 120
+            while c.get_run(run.run_id).slices_processed < 3:
+                if time.monotonic() > deadline:
+                    pytest.fail("the three slices were not processed within 120 s")
                 time.sleep(0.05)
             before = c.latest_guidance(run.run_id)
             run_id = run.run_id

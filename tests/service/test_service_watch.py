@@ -17,6 +17,7 @@ from penumbra_server.server import BackgroundServer, ServerOptions
 from penumbra_server.server.errors import ServiceError
 from penumbra_server.server.events import EventLog
 
+from held_executor import HeldExecutor
 from service_support import lone_hole_slice, lone_spec
 
 
@@ -90,8 +91,19 @@ def test_event_log_overflow_keeps_a_gap_free_prefix_and_trimming_is_reported():
 
 
 def test_a_watcher_that_falls_behind_is_told_and_the_shim_resumes_without_gaps(tmp_path):
+    # Deterministic, whatever the machine's speed: the finds are held until all 40 slices were
+    # accepted (so the server must skip), and every processed slice commits its data windows and
+    # slice_processed together, a burst of two events that a queue of one cannot hold.
     options = ServerOptions(workers=1, subscriber_queue_size=1)
-    with BackgroundServer(archive_root=tmp_path, workers=1, options=options) as bg:
+    held = HeldExecutor.start(1)
+    try:
+        _overflow_scenario(tmp_path, options, held)
+    finally:
+        held.close_pool()
+
+
+def _overflow_scenario(tmp_path, options, held):
+    with BackgroundServer(archive_root=tmp_path, workers=1, options=options, executor=held) as bg:
         with ps.connect(bg.address, deadline_s=20) as client:
             spec = ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),), name="burst",
                               backlog=ps.BacklogOptions(queue_depth=1))
@@ -103,11 +115,14 @@ def test_a_watcher_that_falls_behind_is_told_and_the_shim_resumes_without_gaps(t
             live_events: list[ps.Event] = []
             reader = threading.Thread(target=lambda: live_events.extend(live))
             reader.start()
-            for i in range(40):  # much faster than the worker: skip events come in bursts
+            for i in range(40):
                 run.submit(_flat_slice(i))
-            assert run.flush(60)
+            assert run.flush(60)  # all accepted while the first find is held
+            held.wait_until_held(1)
+            held.release()  # the raw watcher reads nothing meanwhile
             run.close()
             reader.join(60)
+            assert not reader.is_alive(), "the prompt watcher did not see the run close"
             # Even a prompt reader overflows a queue of one in a burst; the shim resumed each time.
             assert live.reconnects >= 1
             assert [e.seq for e in live_events] == list(range(1, len(live_events) + 1))

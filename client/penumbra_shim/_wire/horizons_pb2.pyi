@@ -589,7 +589,7 @@ class TrackPoint(_message.Message):
     def __init__(self, time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., position_m: _Optional[_Union[Vector3, _Mapping]] = ..., source: _Optional[_Union[TrackPoint.Source, str]] = ..., uncertainty_m: _Optional[float] = ...) -> None: ...
 
 class PositionForecast(_message.Message):
-    __slots__ = ("model", "reason", "times_m", "positions_m", "uncertainty_m", "fit_from_m", "fit_until_m")
+    __slots__ = ("model", "reason", "times_m", "positions_m", "uncertainties_m", "fit_from_m", "fit_until_m")
     class Model(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         MODEL_UNSPECIFIED: _ClassVar[PositionForecast.Model]
@@ -604,17 +604,17 @@ class PositionForecast(_message.Message):
     REASON_FIELD_NUMBER: _ClassVar[int]
     TIMES_M_FIELD_NUMBER: _ClassVar[int]
     POSITIONS_M_FIELD_NUMBER: _ClassVar[int]
-    UNCERTAINTY_M_FIELD_NUMBER: _ClassVar[int]
+    UNCERTAINTIES_M_FIELD_NUMBER: _ClassVar[int]
     FIT_FROM_M_FIELD_NUMBER: _ClassVar[int]
     FIT_UNTIL_M_FIELD_NUMBER: _ClassVar[int]
     model: PositionForecast.Model
     reason: str
     times_m: _containers.RepeatedScalarFieldContainer[float]
     positions_m: _containers.RepeatedCompositeFieldContainer[Vector3]
-    uncertainty_m: _containers.RepeatedScalarFieldContainer[float]
+    uncertainties_m: _containers.RepeatedScalarFieldContainer[float]
     fit_from_m: float
     fit_until_m: float
-    def __init__(self, model: _Optional[_Union[PositionForecast.Model, str]] = ..., reason: _Optional[str] = ..., times_m: _Optional[_Iterable[float]] = ..., positions_m: _Optional[_Iterable[_Union[Vector3, _Mapping]]] = ..., uncertainty_m: _Optional[_Iterable[float]] = ..., fit_from_m: _Optional[float] = ..., fit_until_m: _Optional[float] = ...) -> None: ...
+    def __init__(self, model: _Optional[_Union[PositionForecast.Model, str]] = ..., reason: _Optional[str] = ..., times_m: _Optional[_Iterable[float]] = ..., positions_m: _Optional[_Iterable[_Union[Vector3, _Mapping]]] = ..., uncertainties_m: _Optional[_Iterable[float]] = ..., fit_from_m: _Optional[float] = ..., fit_until_m: _Optional[float] = ...) -> None: ...
 
 class TrackUpdated(_message.Message):
     __slots__ = ("label", "horizon", "puncture", "puncture_method", "puncture_order", "horizon_points", "forecast")
@@ -679,7 +679,7 @@ class RefinementLevel(_message.Message):
     def __init__(self, level: _Optional[int] = ..., spacing_m: _Optional[float] = ..., regions: _Optional[_Iterable[_Union[RefinedRegion, _Mapping]]] = ...) -> None: ...
 
 class BodyRefinement(_message.Message):
-    __slots__ = ("label", "centre_m", "finest_level", "radii_m", "spacings_m", "lower_m", "upper_m", "required_spacing_m", "finest_spacing_m", "margins_m", "reasons", "horizon_max_radius_m", "horizon_min_diameter_m")
+    __slots__ = ("label", "centre_m", "finest_level", "radii_m", "spacings_m", "lowers_m", "uppers_m", "required_spacing_m", "finest_spacing_m", "margins_m", "reasons", "horizon_max_radius_m", "horizon_min_diameter_m")
     class MarginsMEntry(_message.Message):
         __slots__ = ("key", "value")
         KEY_FIELD_NUMBER: _ClassVar[int]
@@ -699,8 +699,8 @@ class BodyRefinement(_message.Message):
     FINEST_LEVEL_FIELD_NUMBER: _ClassVar[int]
     RADII_M_FIELD_NUMBER: _ClassVar[int]
     SPACINGS_M_FIELD_NUMBER: _ClassVar[int]
-    LOWER_M_FIELD_NUMBER: _ClassVar[int]
-    UPPER_M_FIELD_NUMBER: _ClassVar[int]
+    LOWERS_M_FIELD_NUMBER: _ClassVar[int]
+    UPPERS_M_FIELD_NUMBER: _ClassVar[int]
     REQUIRED_SPACING_M_FIELD_NUMBER: _ClassVar[int]
     FINEST_SPACING_M_FIELD_NUMBER: _ClassVar[int]
     MARGINS_M_FIELD_NUMBER: _ClassVar[int]
@@ -712,15 +712,15 @@ class BodyRefinement(_message.Message):
     finest_level: int
     radii_m: _containers.RepeatedScalarFieldContainer[float]
     spacings_m: _containers.RepeatedScalarFieldContainer[float]
-    lower_m: _containers.RepeatedCompositeFieldContainer[Vector3]
-    upper_m: _containers.RepeatedCompositeFieldContainer[Vector3]
+    lowers_m: _containers.RepeatedCompositeFieldContainer[Vector3]
+    uppers_m: _containers.RepeatedCompositeFieldContainer[Vector3]
     required_spacing_m: float
     finest_spacing_m: float
     margins_m: _containers.ScalarMap[str, float]
     reasons: _containers.ScalarMap[str, str]
     horizon_max_radius_m: float
     horizon_min_diameter_m: float
-    def __init__(self, label: _Optional[str] = ..., centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., finest_level: _Optional[int] = ..., radii_m: _Optional[_Iterable[float]] = ..., spacings_m: _Optional[_Iterable[float]] = ..., lower_m: _Optional[_Iterable[_Union[Vector3, _Mapping]]] = ..., upper_m: _Optional[_Iterable[_Union[Vector3, _Mapping]]] = ..., required_spacing_m: _Optional[float] = ..., finest_spacing_m: _Optional[float] = ..., margins_m: _Optional[_Mapping[str, float]] = ..., reasons: _Optional[_Mapping[str, str]] = ..., horizon_max_radius_m: _Optional[float] = ..., horizon_min_diameter_m: _Optional[float] = ...) -> None: ...
+    def __init__(self, label: _Optional[str] = ..., centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., finest_level: _Optional[int] = ..., radii_m: _Optional[_Iterable[float]] = ..., spacings_m: _Optional[_Iterable[float]] = ..., lowers_m: _Optional[_Iterable[_Union[Vector3, _Mapping]]] = ..., uppers_m: _Optional[_Iterable[_Union[Vector3, _Mapping]]] = ..., required_spacing_m: _Optional[float] = ..., finest_spacing_m: _Optional[float] = ..., margins_m: _Optional[_Mapping[str, float]] = ..., reasons: _Optional[_Mapping[str, str]] = ..., horizon_max_radius_m: _Optional[float] = ..., horizon_min_diameter_m: _Optional[float] = ...) -> None: ...
 
 class RefinementGuidance(_message.Message):
     __slots__ = ("time_m", "iteration", "valid_from_m", "valid_until_m", "post_merger", "policy", "bodies", "levels", "reasons")

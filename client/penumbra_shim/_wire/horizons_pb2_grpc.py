@@ -126,8 +126,9 @@ class HorizonServiceServicer:
         same run and iteration, or a part with the same run, iteration and part_index, is
         idempotent: the reply has outcome OUTCOME_DUPLICATE and status OK, and the slice is
         archived once. A refused part leaves the parts already stored pending.
-        Status codes (messages of part refusals start with a reason token in brackets, e.g.
-        "[part_index_out_of_range]"):
+        Status codes (every refusal also carries a google.rpc.Status with a google.rpc.ErrorInfo in
+        the `grpc-status-details-bin` trailer: reason, e.g. PART_INDEX_OUT_OF_RANGE, domain
+        "penumbra", metadata {"field": the request field at fault}):
         NOT_FOUND            unknown run_id.
         FAILED_PRECONDITION  the run is closed; a part whose time_m or part_count differs from
         the parts of its iteration stored before; a part of an iteration

@@ -108,7 +108,7 @@ class _EventFollower:
                     self.progress.show(f"server: common horizon {c.label!r} formed at t = {c.time:.2f} M "
                                        f"(bodies {c.separation:.3f} M apart, M_irr {c.irreducible_mass:.4f} M)")
                 elif kind == "warning":
-                    self.progress.show(terminal_safe(f"server warning ({event.state}, {event.label}): {event.reason}"))
+                    self.progress.show(terminal_safe(f"server warning ({event.warning_kind}, {event.label}): {event.message}"))
                 if kind in ("surface_found", "surface_not_found") and event.surface is not None:
                     s = event.surface
                     self.latest[s.label] = s

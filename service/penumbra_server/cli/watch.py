@@ -57,14 +57,14 @@ class RunProgress:
                 self.common_formed = event.common
         elif kind == "warning":
             self.warnings.append(f"warning at iteration {getattr(event, 'iteration', -1)} "
-                                 f"({getattr(event, 'label', '')}): {str(getattr(event, 'reason', ''))[:160]}")
+                                 f"({getattr(event, 'label', '')}): {str(getattr(event, 'message', ''))[:160]}")
             del self.warnings[:-3]
         elif kind == "slice_parts_missing":
             self.warnings.append(f"parts missing at iteration {getattr(event, 'iteration', -1)}: "
-                                 f"{str(getattr(event, 'reason', ''))[:160]}")
+                                 f"{str(getattr(event, 'message', ''))[:160]}")
         elif kind == "slice_rejected":
             self.warnings.append(f"slice refused at iteration {getattr(event, 'iteration', -1)} "
-                                 f"({getattr(event, 'state', '')}): {str(getattr(event, 'reason', ''))[:160]}")
+                                 f"({getattr(event, 'status_code', '')}): {str(getattr(event, 'message', ''))[:160]}")
             del self.warnings[:-3]
         elif kind == "client_gap_recorded" and getattr(event, "gap", None) is not None:
             gap = event.gap

@@ -7,6 +7,7 @@ from .app import SERVICE_NAME, BackgroundServer, PenumbraServer, ServerOptions, 
 from .executors import FinderExecutor, ProcessPoolFinderExecutor
 from .planning import SteeringPlanner, steering_planner_factory
 from .scheduler import ExpectedBodiesPlanner, SurfacePlan, SurfacePlanner, SurfaceTrack
+from .surface_state import SurfaceState
 from .steering import COMMON_LABEL, RunSteering, common_label_for
 
 __all__ = [
@@ -24,6 +25,7 @@ __all__ = [
     "ServerOptions",
     "SurfacePlan",
     "SurfacePlanner",
+    "SurfaceState",
     "SurfaceTrack",
     "create_server",
 ]

@@ -88,13 +88,17 @@ _SYMMETRIES = {
 _SYMMETRIES_BACK = {"none": pb.RunSpec.SYMMETRY_NONE, "bitant": pb.RunSpec.SYMMETRY_BITANT}
 
 
+def _enum_from_wire(table: dict, value: int, field: str, what: str, expected: str):
+    """``table[value]``; INVALID_ARGUMENT naming ``field`` for a value the table lacks."""
+    try:
+        return table[value]
+    except KeyError:
+        raise ServiceError.invalid(f"{field}: unknown {what} {value}; expected {expected}") from None
+
+
 def symmetry_from_wire(value: int, field: str = "spec.symmetry") -> str:
     """"none" or "bitant" from the wire enum (unspecified is none); INVALID_ARGUMENT naming ``field``."""
-    try:
-        return _SYMMETRIES[value]
-    except KeyError:
-        raise ServiceError.invalid(f"{field}: unknown symmetry {value}; expected SYMMETRY_NONE or "
-                                   f"SYMMETRY_BITANT") from None
+    return _enum_from_wire(_SYMMETRIES, value, field, "symmetry", "SYMMETRY_NONE or SYMMETRY_BITANT")
 
 
 _SHIFT_GAUGES = {
@@ -107,11 +111,8 @@ _SHIFT_GAUGES_BACK = {v: k for k, v in _SHIFT_GAUGES.items()}
 
 def shift_gauge_from_wire(value: int, field: str = "spec.shift_gauge") -> str:
     """"unspecified", "moving_puncture" or "other"; INVALID_ARGUMENT naming ``field`` otherwise."""
-    try:
-        return _SHIFT_GAUGES[value]
-    except KeyError:
-        raise ServiceError.invalid(f"{field}: unknown shift gauge {value}; expected SHIFT_GAUGE_MOVING_PUNCTURE, "
-                                   f"SHIFT_GAUGE_OTHER or unset") from None
+    return _enum_from_wire(_SHIFT_GAUGES, value, field, "shift gauge",
+                           "SHIFT_GAUGE_MOVING_PUNCTURE, SHIFT_GAUGE_OTHER or unset")
 
 
 def excised_spheres_from_wire(spheres, field: str = "spec.excised_spheres") -> tuple[ExcisedSphere, ...]:

@@ -28,7 +28,8 @@ from .auth import AuthInterceptor, check_exposure
 from .executors import FinderExecutor, ProcessPoolFinderExecutor
 from .jobs import SERVICE_INTERPOLATION_ORDER
 from .ingest import IngestLimits
-from .runs import ManagerOptions, RunManager
+from .run_manager import RunManager
+from .runs import ManagerOptions
 from .scheduler import SurfacePlanner
 from .service import HorizonServicer
 from .tokens import TokenBook, WriterTokens
@@ -62,8 +63,8 @@ class ServerOptions:
     #: :class:`~penumbra_server.server.planning.SteeringPlanner` (forecast seeds, common horizon).
     #: A planner with an ``attach(steering)`` method is handed the run's tracking state.
     planner_factory: Callable[[RunSettings], SurfacePlanner] | None = field(default=None, compare=False)
-    #: Per run, callbacks ``(run, queued_slice, outcomes)`` after each processed slice (tracking
-    #: and guidance hook, issue 4); they may call ``run.publish(...)`` to emit events.
+    #: Per run, callbacks ``(run, queued_slice, outcomes)`` after each processed slice (a hook for
+    #: custom tracking); they may call ``run.publish(...)`` to emit events.
     slice_observer_factory: Callable[[RunSettings], Sequence[Callable]] | None = field(default=None, compare=False)
 
 
@@ -223,10 +224,11 @@ class BackgroundServer:
     def __init__(self, address: str = "127.0.0.1:0", *, archive_root: str | Path, workers: int = 2,
                  options: ServerOptions | None = None, start_timeout_s: float = 60.0,
                  server_credentials: grpc.ServerCredentials | None = None, token_book: TokenBook | None = None,
-                 trusted_network: bool = False) -> None:
+                 trusted_network: bool = False, executor: FinderExecutor | None = None) -> None:
         self._address = address
-        self._security = dict(server_credentials=server_credentials, token_book=token_book,
-                              trusted_network=trusted_network)
+        # ``executor``: as create_server's (not closed on stop; e.g. a test's executor that holds jobs).
+        self._server_kwargs = dict(server_credentials=server_credentials, token_book=token_book,
+                              trusted_network=trusted_network, executor=executor)
         self._archive_root = archive_root
         self._workers = workers
         self._options = options
@@ -272,7 +274,7 @@ class BackgroundServer:
         self._stop_requested = asyncio.Event()
         try:
             self.server = await create_server(self._address, archive_root=self._archive_root, workers=self._workers,
-                                              options=self._options, **self._security)
+                                              options=self._options, **self._server_kwargs)
             await self.server.start()
         except BaseException as exc:
             self._error = exc

@@ -32,6 +32,7 @@ import grpc
 
 from penumbra_shim._wire import horizons_pb2 as pb
 
+from .errors import DEFAULT_REASONS, PenumbraServerError, status_trailer
 from .tokens import TokenBook, TokenEntry, WriterTokens
 
 __all__ = ["AuthInterceptor", "ExposureError", "check_exposure", "is_loopback_host", "METHOD_ACCESS"]
@@ -58,7 +59,7 @@ _OPEN_RUN = f"/{_SERVICE}/OpenRun"
 _HOW = "send metadata 'authorization: Bearer <token>'"
 
 
-class ExposureError(ValueError):
+class ExposureError(PenumbraServerError, ValueError):
     """A server would listen beyond loopback without TLS and tokens, and was not told the
     network is trusted."""
 
@@ -177,7 +178,8 @@ def _denying(handler, code: grpc.StatusCode, message: str):
     """A handler of the same kind as ``handler`` that aborts at once with ``code``."""
 
     async def deny(request_or_iterator, context):
-        await context.abort(code, message)
+        await context.abort(code, message,
+                            trailing_metadata=status_trailer(code, message, DEFAULT_REASONS[code], "authorization"))
 
     return handler._replace(**{_kind(handler): deny})
 
@@ -206,7 +208,9 @@ def _run_checking(handler, allowed, message_for):
     async def check(context, request) -> None:
         run_id = _run_id_of(request)
         if not allowed(run_id):
-            await context.abort(grpc.StatusCode.PERMISSION_DENIED, message_for(run_id))
+            message = message_for(run_id)
+            await context.abort(grpc.StatusCode.PERMISSION_DENIED, message, trailing_metadata=status_trailer(
+                grpc.StatusCode.PERMISSION_DENIED, message, "TOKEN_NOT_ALLOWED", "authorization"))
 
     if not handler.request_streaming:
         if inspect.isasyncgenfunction(behaviour):

@@ -113,11 +113,13 @@ class EventLog:
                 grpc.StatusCode.OUT_OF_RANGE,
                 f"start_seq: events before seq {self._first_held} are no longer held by this server; "
                 f"read them from the run's archive and watch from start_seq={self._first_held}",
+                reason="EVENTS_TRIMMED",
             )
         if start_seq > self.next_seq:
             raise ServiceError(
                 grpc.StatusCode.OUT_OF_RANGE,
                 f"start_seq: {start_seq} is beyond the next event (seq {self.next_seq})",
+                reason="START_SEQ_BEYOND_NEXT",
             )
         held = list(self._events)[start_seq - self._first_held:]
         subscriber = Subscriber(self.subscriber_capacity)

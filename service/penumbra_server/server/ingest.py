@@ -137,6 +137,7 @@ class SliceAssembler:
                 raise ServiceError(
                     grpc.StatusCode.RESOURCE_EXHAUSTED,
                     f"header.patches: the slice holds more than the server's limit of {limits.max_slice_bytes} bytes",
+                    reason="SLICE_TOO_LARGE",
                 )
             self._patches.append(
                 _PatchPlan(origin, spacing, shape, int(ph.level), dtype, _ORDERS[ph.memory_order], field_bytes,
@@ -164,6 +165,7 @@ class SliceAssembler:
                 grpc.StatusCode.RESOURCE_EXHAUSTED,
                 f"chunk.data: {size} bytes is over the server's limit of {self.limits.max_chunk_bytes} bytes "
                 f"per chunk; send chunks of about 1 MiB",
+                reason="CHUNK_TOO_LARGE",
             )
         if not 0 <= chunk.patch_index < len(self._patches):
             raise ServiceError.invalid(
@@ -219,6 +221,7 @@ class SliceAssembler:
                 grpc.StatusCode.DATA_LOSS,
                 f"stream ended after {self.received_bytes} of the {self.total_bytes} bytes the header declared: "
                 f"{self.missing_description()}",
+                reason="STREAM_INCOMPLETE", field="chunk",
             )
         patches = []
         for index, plan in enumerate(self._patches):

@@ -21,7 +21,7 @@ from penumbra_shim._wire import horizons_pb2 as pb
 
 from ..archive import _layout as layout
 from .errors import ServiceError
-from .steering import encode_wire
+from .run_events import event_row
 
 if TYPE_CHECKING:
     from .runs import RunRecord
@@ -70,11 +70,6 @@ class LinkRecords:
                 self._gap_ids[gap_id] = _KnownGap(index, None, int(gaps["event_seq"][i]))
 
 
-def _event_row(seq: int, now: float, event: pb.RunEvent, kind: str, message: str) -> dict:
-    return {"seq": seq, "kind": kind, "iteration": event.iteration, "time": event.time_m, "label": "",
-            "message": message, "wire": encode_wire(event), "archived_unix_s": now}
-
-
 async def record_rejection(run: "RunRecord", header: pb.SliceHeader, error: ServiceError) -> None:
     """Announce a refused slice of an open run as a SliceRejected event (other refusals: nothing).
 
@@ -90,7 +85,7 @@ async def record_rejection(run: "RunRecord", header: pb.SliceHeader, error: Serv
     announced = run.publish(
         lambda event: event.slice_rejected.CopyFrom(payload),
         time_m=time_m if math.isfinite(time_m) else 0.0, iteration=header.iteration,
-        rows=lambda seq, now, event: {layout.EVENTS_GROUP: [_event_row(seq, now, event, "slice_rejected", summary)]})
+        rows=lambda seq, now, event: {layout.EVENTS_GROUP: [event_row(seq, now, event, "slice_rejected", "", summary)]})
     try:
         await asyncio.wait_for(asyncio.shield(announced), _REJECTION_ANNOUNCE_WAIT_S)
     except asyncio.CancelledError:
@@ -149,7 +144,7 @@ async def record_client_gap(run: "RunRecord", request: pb.RecordClientGapRequest
 
     def rows(seq: int, now: float, event: pb.RunEvent) -> dict:
         return {layout.CLIENT_GAPS_GROUP: _gap_rows(request, index, seq, now),
-                layout.EVENTS_GROUP: [_event_row(seq, now, event, "client_gap_recorded", summary)]}
+                layout.EVENTS_GROUP: [event_row(seq, now, event, "client_gap_recorded", "", summary)]}
 
     announced = run.publish(lambda event: event.client_gap_recorded.CopyFrom(payload),
                             time_m=first.time_first_m if first is not None else 0.0,

@@ -9,8 +9,9 @@ to the run like a whole slice (queue, duplicate check and processing unchanged).
 part deadline passes first, the patches that arrived are handed on with a ``SlicePartsMissing``
 report, or the slice is given up when no part carried a patch.
 
-Refusals are :class:`ServiceError` whose message starts with a reason token in brackets (see
-:data:`REASONS`) followed by the field at fault and what was expected. A refused part changes
+Refusals are :class:`ServiceError` whose reason is one of :data:`REASONS` (upper-cased: the
+ErrorInfo reason the client reads) and whose message names the field at fault and what was
+expected. A refused part changes
 nothing: the parts stored before stay pending.
 
 Cost on the event loop: dictionary look-ups per patch. The one data comparison (a patch that two
@@ -43,7 +44,7 @@ log = logging.getLogger("penumbra.server")
 #: Most parts one slice may be sent in (one per MPI rank; large machines run ~1e5 ranks).
 MAX_PART_COUNT = 1 << 20
 
-#: Reason tokens at the start of every refusal message of this module, by status code.
+#: Reasons of the refusals of this module (upper-cased on the wire), with their status codes.
 REASONS: dict[str, grpc.StatusCode] = {
     "part_count_negative": grpc.StatusCode.INVALID_ARGUMENT,
     "part_count_too_large": grpc.StatusCode.INVALID_ARGUMENT,
@@ -59,7 +60,7 @@ REASONS: dict[str, grpc.StatusCode] = {
 
 
 def _refusal(reason: str, text: str) -> ServiceError:
-    return ServiceError(REASONS[reason], f"[{reason}] {text}")
+    return ServiceError(REASONS[reason], text, reason=reason.upper())
 
 
 @dataclass(frozen=True)

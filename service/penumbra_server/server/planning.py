@@ -10,7 +10,7 @@ Per expected body, in each slice at coordinate time t:
   polynomial; its expected error is archived with the surface row), the data region its
   largest radius times 1.6 plus the forecast uncertainty, and a scan about the forecast position
   inside that region as the fallback;
-* lost (missed :data:`~penumbra_server.server.steering.LOST_AFTER_MISSES` times in a row): the
+* lost (missed :data:`~penumbra_server.server.surface_state.LOST_AFTER_MISSES` times in a row): the
   seed as above, and the scan held at the last centroid with its outer radius widened by the
   body's last speed times the time since it was found (an old velocity carried over a long gap
   drifts off the orbit; holding and widening brings the body back);
@@ -33,8 +33,9 @@ This planner replaces the linear extrapolation of
 :class:`~penumbra_server.server.scheduler.ExpectedBodiesPlanner` (kept for custom planners that
 wrap it) as the server's default (``ServerOptions.planner_factory`` unset).
 
-A data region grown after a slice lacked data (:data:`~penumbra_server.server.steering.GROWTH_FACTOR`)
-is grown in the data windows too, so a cropped slice always holds what the next search crops.
+Data regions follow the window rule of :mod:`penumbra_server.tracking.data_windows`; a region grown
+after a slice lacked data is grown in the data windows too, so a cropped slice always holds what
+the next search crops.
 """
 
 from __future__ import annotations
@@ -46,13 +47,12 @@ import numpy as np
 from ..numerics.slices import Slice
 from ..numerics.surfaces import Surface
 from ._spec import RunSettings
-from .scheduler import SCAN_RADIUS_FACTORS, SurfacePlan, SurfaceTrack, recentred
-from .steering import SEARCH_BOX_FACTOR, RunSteering, SurfaceHistory
+from ..tracking.data_windows import SCAN_BOX_FACTOR, search_reach
+from .scheduler import SCAN_RADIUS_FACTORS, SurfacePlan, recentred
+from .steering import RunSteering
+from .surface_state import SurfaceState
 
 __all__ = ["SteeringPlanner", "steering_planner_factory"]
-
-# Region cropped around a scan: the largest scan radius times this (as the scheduler).
-_SCAN_BOX_FACTOR = 1.25
 
 
 class SteeringPlanner:
@@ -65,7 +65,7 @@ class SteeringPlanner:
         """Called by the run with its steering state before the first slice."""
         self.steering = steering
 
-    def plan(self, settings: RunSettings, tracks: Mapping[str, SurfaceTrack], slice_: Slice) -> list[SurfacePlan]:
+    def plan(self, settings: RunSettings, tracks: Mapping[str, SurfaceState], slice_: Slice) -> list[SurfacePlan]:
         if self.steering is None:
             self.steering = RunSteering(settings)
         steering = self.steering
@@ -88,7 +88,7 @@ class SteeringPlanner:
         if not h.ever_found:
             centre = np.asarray(body.position, float)
             radii = (lo_factor * body.mass, hi_factor * body.mass)
-            reach = _SCAN_BOX_FACTOR * radii[1]
+            reach = SCAN_BOX_FACTOR * radii[1]
             return SurfacePlan(body.label, None, centre, radii, centre - reach, centre + reach)
         forecast = steering.seed_forecast(body.label, t)
         if forecast is None:  # cannot happen once found; kept for safety
@@ -100,12 +100,12 @@ class SteeringPlanner:
         lower, upper = position - reach, position + reach
         if h.lost:
             scan_centre, scan_radii = steering.lost_scan(body.label, t)
-            half = _SCAN_BOX_FACTOR * scan_radii[1]
+            half = SCAN_BOX_FACTOR * scan_radii[1]
             lower = np.minimum(lower, scan_centre - half)
             upper = np.maximum(upper, scan_centre + half)
         else:
             scan_centre = position
-            scan_radii = (lo_factor * body.mass, max(reach / _SCAN_BOX_FACTOR, 2.0 * lo_factor * body.mass))
+            scan_radii = (lo_factor * body.mass, max(reach / SCAN_BOX_FACTOR, 2.0 * lo_factor * body.mass))
         return SurfacePlan(body.label, seed, np.asarray(scan_centre, float), scan_radii, lower, upper,
                            seed_position=position, seed_uncertainty=uncertainty, seed_model=model)
 
@@ -116,7 +116,7 @@ class SteeringPlanner:
         advice = steering.common_advice(t)
         if advice is None or not advice.search:
             return None
-        common: SurfaceHistory = steering.history(label)
+        common: SurfaceState = steering.history(label)
         lmax = settings.common_lmax
         fresh = Surface.sphere(advice.centre, advice.radius, lmax)
         seeds: list[Surface] = []
@@ -133,10 +133,10 @@ class SteeringPlanner:
         if position is not None:  # found before: its own region, as for a body
             reach = steering.reach(label, uncertainty)
             if len(seeds) > 1:  # and the fresh sphere's (a miss last slice)
-                reach = max(reach, common.growth_factor * SEARCH_BOX_FACTOR * radius
+                reach = max(reach, search_reach(radius, growth=common.growth)
                             + float(np.max(np.abs(fresh.centre - centre))))
         else:
-            reach = common.growth_factor * SEARCH_BOX_FACTOR * radius
+            reach = search_reach(radius, growth=common.growth)
         # Before the common horizon formed the search runs every slice for a surface that may not
         # exist yet: Newton only (the flow's hundreds of iterations would dominate every slice),
         # and no second try on a wider region when the iterates run off the data.

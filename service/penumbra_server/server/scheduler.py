@@ -12,85 +12,27 @@ the common horizon of a pair); this one stays for custom planners that wrap it.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from typing import Mapping, Protocol, Sequence
 
 import numpy as np
 
 from ..numerics.slices import Slice
 from ..numerics.surfaces import Surface
+from ..tracking.data_windows import BOX_FACTOR, SCAN_BOX_FACTOR
 from ._spec import RunSettings
+from .surface_state import SurfaceState
 
 __all__ = ["SurfaceTrack", "SurfacePlan", "SurfacePlanner", "ExpectedBodiesPlanner", "SCAN_RADIUS_FACTORS", "recentred"]
 
 #: Scan radii with no prior, as multiples of the body's approximate mass (see module docstring).
 SCAN_RADIUS_FACTORS = (0.1, 2.0)
-# Region cropped around a seeded surface: its largest radius times this, plus its motion.
-_SEEDED_BOX_FACTOR = 1.6
-# Region cropped around a scan: the largest scan radius times this.
-_SCAN_BOX_FACTOR = 1.25
 # After this many misses in a row the seed is dropped and the wide scan runs again.
 _MISSES_BEFORE_WIDE_SCAN = 2
 
 
-@dataclass
-class SurfaceTrack:
-    """What the run knows about one surface (mutated only by the run, on the event loop).
-
-    Attributes:
-        label: the surface's label.
-        surface: the latest surface found (None if never found).
-        centroid: its area-weighted centroid (3,), or None.
-        found_time: coordinate time of that slice, M.
-        radius_max: its largest coordinate radius, M, or NaN.
-        velocity: (3,) centroid velocity between the last two finds, per unit coordinate time
-            (zero with fewer than two finds or no time between them).
-        displacement: (3,) centroid change between the last two finds (zero with fewer).
-        latest_found: wire message of the latest found surface (for GetLatestSurfaces).
-        latest_attempt_found, latest_attempt_iteration, latest_attempt_message: the latest try.
-        consecutive_misses: attempts since the last find.
-    """
-
-    label: str
-    surface: Surface | None = None
-    centroid: np.ndarray | None = None
-    found_time: float = 0.0
-    radius_max: float = float("nan")
-    velocity: np.ndarray = field(default_factory=lambda: np.zeros(3))
-    displacement: np.ndarray = field(default_factory=lambda: np.zeros(3))
-    latest_found: object | None = None
-    latest_attempt_found: bool = False
-    latest_attempt_iteration: int = -1
-    latest_attempt_message: str = ""
-    consecutive_misses: int = 0
-
-    def record_found(self, surface: Surface, centroid, radius_max: float, message, *, iteration: int,
-                     time: float) -> None:
-        centroid = np.asarray(centroid, dtype=float)
-        if self.centroid is not None:
-            self.displacement = centroid - self.centroid
-            if time > self.found_time:
-                self.velocity = self.displacement / (time - self.found_time)
-        self.surface = surface
-        self.centroid = centroid
-        self.found_time = float(time)
-        self.radius_max = float(radius_max)
-        self.latest_found = message
-        self.latest_attempt_found = True
-        self.latest_attempt_iteration = int(iteration)
-        self.latest_attempt_message = "found"
-        self.consecutive_misses = 0
-
-    def record_miss(self, text: str, iteration: int) -> None:
-        self.latest_attempt_found = False
-        self.latest_attempt_iteration = int(iteration)
-        self.latest_attempt_message = text
-        self.consecutive_misses += 1
-
-    def predicted_centroid(self, time: float) -> np.ndarray:
-        """The centroid moved on at the last velocity to coordinate time ``time`` (linear; the
-        orbit-aware forecast of issue 4 can replace this through a planner)."""
-        return self.centroid + self.velocity * (float(time) - self.found_time)
+#: The planners' view of one surface: what the run knows about it (server/surface_state.py).
+SurfaceTrack = SurfaceState
 
 
 def recentred(surface: Surface, centre) -> Surface:
@@ -189,9 +131,9 @@ class ExpectedBodiesPlanner:
                 scan_centre = centre
                 motion = float(np.linalg.norm(centre - track.centroid))
                 # Tight region: the surface, a margin for its growth, and its motion.
-                reach = _SEEDED_BOX_FACTOR * track.radius_max + motion
+                reach = BOX_FACTOR * track.radius_max + motion
                 # The fallback scan stays inside that region.
-                scan_radii = (wide[0], max(reach / _SCAN_BOX_FACTOR, 2.0 * wide[0]))
+                scan_radii = (wide[0], max(reach / SCAN_BOX_FACTOR, 2.0 * wide[0]))
                 middle = centre
             else:
                 seed = None
@@ -201,7 +143,7 @@ class ExpectedBodiesPlanner:
                     scan_centre = track.predicted_centroid(slice_.time)
                 scan_radii = wide
                 middle = scan_centre
-                reach = _SCAN_BOX_FACTOR * scan_radii[1]
+                reach = SCAN_BOX_FACTOR * scan_radii[1]
             plans.append(
                 SurfacePlan(
                     label=body.label,

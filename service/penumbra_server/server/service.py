@@ -1,7 +1,8 @@
 """The gRPC servicer: unpack the request, call the run manager, build the reply.
 
-Every refusal is a :class:`ServiceError` turned into an aborted call with its status code and
-message; anything else is a bug, logged and answered with INTERNAL.
+Every refusal is a :class:`ServiceError` turned into an aborted call with its status code,
+message and rich error details (errors.py: reason and field); anything else is a bug, logged and
+answered with INTERNAL.
 """
 
 from __future__ import annotations
@@ -17,11 +18,12 @@ import grpc
 from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
-from .errors import ServiceError
+from .errors import ServiceError, status_trailer
 from .ingest import IngestLimits, SliceAssembler, mirror_through_z0
 from .parts import PartLabel, part_of, prepare_part
 from .link_records import record_client_gap, record_rejection
-from .runs import QueuedSlice, RunManager
+from .run_manager import RunManager
+from .runs import QueuedSlice
 
 __all__ = ["HorizonServicer"]
 
@@ -36,12 +38,14 @@ def _translating_errors(method):
         try:
             return await method(self, request, context)
         except ServiceError as exc:
-            await context.abort(exc.code, exc.message)
+            await context.abort(exc.code, exc.message, trailing_metadata=exc.trailing_metadata())
         except (asyncio.CancelledError, grpc.aio.AbortError):
             raise
         except Exception as exc:
             log.exception("%s failed", method.__name__)
-            await context.abort(grpc.StatusCode.INTERNAL, f"{method.__name__}: internal error {type(exc).__name__}: {exc}")
+            message = f"{method.__name__}: internal error {type(exc).__name__}: {exc}"
+            await context.abort(grpc.StatusCode.INTERNAL, message,
+                                trailing_metadata=status_trailer(grpc.StatusCode.INTERNAL, message, "INTERNAL", ""))
 
     return wrapper
 
@@ -165,12 +169,14 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                 last = event.seq
             if subscriber.server_stopping:
                 raise ServiceError(grpc.StatusCode.UNAVAILABLE,
-                                   f"server is shutting down; reconnect with start_seq={last + 1}")
+                                   f"server is shutting down; reconnect with start_seq={last + 1}",
+                                   reason="SERVER_STOPPING", field="start_seq")
             if subscriber.overflowed:
                 raise ServiceError(
                     grpc.StatusCode.RESOURCE_EXHAUSTED,
                     f"watcher fell behind: more than {subscriber.capacity} events waited for it; "
                     f"resume with start_seq={last + 1}",
+                    reason="WATCHER_FELL_BEHIND", field="start_seq",
                 )
         finally:
             run.log.unsubscribe(subscriber)

@@ -40,12 +40,8 @@ from .tracks import (
     integrate_puncture,
 )
 from .windows import (
-    DEFAULT_MARGIN_POINTS,
     DataWindow,
     WindowError,
-    WindowSet,
-    data_windows,
-    grow_windows,
     merge_overlapping_windows,
     window_coverage,
 )
@@ -84,11 +80,7 @@ __all__ = [
     "guidance_times",
     # windows
     "DataWindow",
-    "WindowSet",
     "WindowError",
-    "data_windows",
-    "grow_windows",
     "merge_overlapping_windows",
     "window_coverage",
-    "DEFAULT_MARGIN_POINTS",
 ]

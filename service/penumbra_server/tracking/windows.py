@@ -2,16 +2,9 @@
 
 Units: geometric (G = c = 1), lengths in the run's mass scale M.
 
-Around each forecast surface the window is the bounding box of the forecast path over the
-interval, grown by the horizon's largest coordinate radius, the largest forecast uncertainty
-and a stencil margin of ``margin_points`` grid points of the finest spacing near the body
-(default 8: a 4th-order interpolation stencil reaches 2-3 nodes beyond a point and the
-4th-order centred first differences taken on the grid before interpolating reach 2 more; the
-rest is slack for the surface moving during the finder's iterations). A pending
-common-surface search adds the box around its guess sphere with the same margin. Windows that
-overlap are merged into their bounding box, so no node travels twice.
-
-When a slice lacked data a surface needed, :func:`grow_windows` widens the windows concerned;
+The box itself (:class:`DataWindow`); how large the server makes each one is the rule of
+:mod:`penumbra_server.tracking.data_windows`. Windows that overlap are merged into their
+bounding box (:func:`merge_overlapping_windows`), so no node travels twice;
 :func:`window_coverage` measures how much of a window a set of patches covers.
 
 The shim crops slices to these windows with :func:`penumbra_shim.cropping.crop_patches`
@@ -21,29 +14,19 @@ package (which carries the gRPC client).
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
-from typing import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Mapping, Sequence
 
 import numpy as np
 
 from ._arrays import frozen_float_array, merge_until_disjoint
 
-from .common import CommonSearchAdvice
-from .forecast import Forecast
-
 __all__ = [
     "merge_overlapping_windows",
     "WindowError",
     "DataWindow",
-    "WindowSet",
-    "data_windows",
-    "grow_windows",
     "window_coverage",
-    "DEFAULT_MARGIN_POINTS",
 ]
-
-#: Default stencil margin, in grid points of the finest spacing near the surface (module doc).
-DEFAULT_MARGIN_POINTS = 8
 
 
 class WindowError(ValueError):
@@ -91,32 +74,6 @@ class DataWindow:
         return np.all((p >= self.lower) & (p <= self.upper), axis=1)
 
 
-@dataclass(frozen=True, eq=False)
-class WindowSet:
-    """The windows wanted for the next slice.
-
-    Attributes:
-        windows: the boxes (non-overlapping after merging).
-        valid_from, valid_until: the forecast interval they were built for, units of M.
-        margin_points: the stencil margin used, in grid points.
-    """
-
-    windows: tuple[DataWindow, ...]
-    valid_from: float
-    valid_until: float
-    margin_points: int
-
-    def bounds(self) -> np.ndarray:
-        """(m, 2, 3) array of (lower, upper) per window, the form the shim's crop accepts."""
-        return np.array([[w.lower, w.upper] for w in self.windows], dtype=float).reshape(-1, 2, 3)
-
-    def names(self) -> tuple[str, ...]:
-        return tuple(w.name for w in self.windows)
-
-    def volume(self) -> float:
-        return float(sum(np.prod(w.upper - w.lower) for w in self.windows))
-
-
 def _overlap(a: DataWindow, b: DataWindow) -> bool:
     return bool(np.all(a.lower <= b.upper) and np.all(b.lower <= a.upper))
 
@@ -135,103 +92,6 @@ def merge_overlapping_windows(windows) -> list[DataWindow]:
         )
 
     return merge_until_disjoint(windows, _overlap, merge)
-
-
-def _per_body(value, bodies: Sequence[str], name: str) -> dict[str, float]:
-    if isinstance(value, Mapping):
-        missing = [b for b in bodies if b not in value]
-        if missing:
-            raise WindowError(f"{name}: no value for body/bodies {missing}")
-        out = {b: float(value[b]) for b in bodies}
-    else:
-        out = {b: float(value) for b in bodies}
-    for b, v in out.items():
-        if not (np.isfinite(v) and v > 0):
-            raise WindowError(f"{name}[{b!r}]: expected a positive number, got {v!r}")
-    return out
-
-
-def data_windows(
-    forecast: Forecast,
-    *,
-    radii: Mapping[str, float],
-    spacing: float | Mapping[str, float],
-    margin_points: int = DEFAULT_MARGIN_POINTS,
-    common: CommonSearchAdvice | None = None,
-    merge_overlapping: bool = True,
-) -> WindowSet:
-    """Windows around each forecast surface and any pending common-surface search.
-
-    Args:
-        forecast: the bodies' forecast over the interval until the next guidance.
-        radii: body -> horizon's largest coordinate radius, units of M.
-        spacing: finest grid spacing near each surface (one number or body -> number), M.
-        margin_points: stencil margin in grid points of that spacing.
-        common: the common-horizon advice; a window is added when ``common.search``.
-        merge_overlapping: merge overlapping windows into their bounding box.
-    """
-    if not isinstance(forecast, Forecast):
-        raise WindowError(f"forecast: expected a Forecast, got {type(forecast).__name__}")
-    if int(margin_points) < 0:
-        raise WindowError(f"margin_points: expected an integer >= 0, got {margin_points!r}")
-    margin_points = int(margin_points)
-    r = _per_body(radii, forecast.bodies, "radii")
-    h = _per_body(spacing, forecast.bodies, "spacing")
-    windows = []
-    for index, body in enumerate(forecast.bodies):
-        path = forecast.positions[index]
-        unc = forecast.uncertainty[index]
-        # No estimate (single sample): allow one more horizon radius of motion.
-        u = float(np.max(unc)) if np.all(np.isfinite(unc)) else r[body]
-        grow = r[body] + u + margin_points * h[body]
-        windows.append(DataWindow(
-            name=body, lower=path.min(axis=0) - grow, upper=path.max(axis=0) + grow,
-            reason=(f"forecast path of {body} grown by r_max {r[body]:.4g} + uncertainty {u:.4g} + "
-                    f"{margin_points} x {h[body]:.4g} M stencil margin"),
-        ))
-    if common is not None and common.search:
-        h_min = min(h.values())
-        grow = common.radius + margin_points * h_min
-        windows.append(DataWindow(
-            name="common", lower=common.centre - grow, upper=common.centre + grow,
-            reason=(f"common-surface guess radius {common.radius:.4g} M + {margin_points} x {h_min:.4g} M "
-                    f"stencil margin"),
-        ))
-    if merge_overlapping:
-        windows = merge_overlapping_windows(windows)
-    return WindowSet(windows=tuple(windows), valid_from=float(forecast.times[0]),
-                     valid_until=float(forecast.times[-1]), margin_points=margin_points)
-
-
-def grow_windows(window_set: WindowSet, *, lacking: Iterable[str], factor: float = 1.5) -> WindowSet:
-    """Widen the named windows (their half-widths times ``factor`` about their centres).
-
-    Args:
-        window_set: the windows sent for the slice that lacked data.
-        lacking: names of the windows whose surfaces lacked data (a merged window is named
-            by any of its parts, e.g. "A" finds "A+B").
-        factor: growth of the half-width (> 1).
-
-    Returns:
-        A new :class:`WindowSet` (re-merged where grown windows now overlap).
-    """
-    factor = float(factor)
-    if not (np.isfinite(factor) and factor > 1):
-        raise WindowError(f"factor: expected a number > 1, got {factor!r}")
-    lacking = list(lacking)
-    names = {w.name: set(w.name.split("+")) for w in window_set.windows}
-    unknown = [n for n in lacking if not any(n == full or n in parts for full, parts in names.items())]
-    if unknown:
-        raise WindowError(f"lacking: no window named {unknown}; windows are {list(names)}")
-    out = []
-    for w in window_set.windows:
-        if any(n == w.name or n in names[w.name] for n in lacking):
-            half = w.half_width * factor
-            out.append(replace(w, lower=w.centre - half, upper=w.centre + half, growth=w.growth + 1,
-                               reason=f"{w.reason}; grown x{factor:g} after missing data"))
-        else:
-            out.append(w)
-    return replace(window_set, windows=tuple(merge_overlapping_windows(out)))
 
 
 def window_coverage(window: DataWindow, patches: Sequence, *, samples_per_axis: int = 9) -> float:

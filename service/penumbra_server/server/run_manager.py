@@ -1,0 +1,152 @@
+"""All runs of one server: open (idempotent by request id), look up, list, restore after a
+restart, stop. Each run is a :class:`~penumbra_server.server.runs.RunRecord`."""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import secrets
+import time
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+from typing import Callable, Sequence
+
+from penumbra_shim._wire import horizons_pb2 as pb
+
+from ..archive import ArchiveWriter, archive_path, list_archives
+from ._spec import RunSettings
+from .errors import ServiceError
+from .executors import FinderExecutor
+from .planning import steering_planner_factory
+from .restore import read_archive, restore_run
+from .runs import ManagerOptions, RunRecord
+from .scheduler import SurfacePlanner
+
+__all__ = ["RunManager", "software_version"]
+
+log = logging.getLogger("penumbra.server")
+
+
+def software_version() -> str:
+    """The installed penumbra-horizons distribution's version (recorded in every archive)."""
+    from importlib import metadata
+
+    try:
+        return metadata.version("penumbra-horizons")
+    except metadata.PackageNotFoundError:
+        return "unknown"
+
+
+def _new_run_id() -> str:
+    return f"run-{secrets.token_hex(6)}"
+
+
+class RunManager:
+    """All runs of one server."""
+
+    def __init__(self, *, archive_root: Path, executor: FinderExecutor, options: ManagerOptions,
+                 planner_factory: Callable[[RunSettings], SurfacePlanner] | None = None,
+                 slice_observer_factory: Callable[[RunSettings], Sequence[Callable]] | None = None) -> None:
+        self.archive_root = Path(archive_root)
+        self.executor = executor
+        self.options = options
+        self.planner_factory = planner_factory or steering_planner_factory
+        self.slice_observer_factory = slice_observer_factory
+        self.archive_thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix="penumbra-archive")
+        self.runs: dict[str, RunRecord] = {}
+        self._request_ids: dict[str, str] = {}
+        self._open_lock = asyncio.Lock()
+
+    def get(self, run_id: str) -> RunRecord:
+        try:
+            return self.runs[run_id]
+        except KeyError:
+            shown = run_id if run_id else "(empty)"
+            raise ServiceError.not_found(f"run_id: no run {shown} on this server") from None
+
+    async def open_run(self, spec: pb.RunSpec, request_id: str = "") -> RunRecord:
+        if len(request_id) > 64:
+            raise ServiceError.invalid(f"request_id: at most 64 characters, got {len(request_id)}")
+        settings = RunSettings.from_wire(spec, default_queue_depth=self.options.default_queue_depth)
+        # Shielded: a caller whose deadline passes mid-way must not leave an archive without its
+        # run; its retry with the same request id finds the run this call goes on to make.
+        return await asyncio.shield(self._open_run(settings, request_id))
+
+    async def _open_run(self, settings: RunSettings, request_id: str) -> RunRecord:
+        async with self._open_lock:  # a retried OpenRun must find the run its first call made
+            if request_id and request_id in self._request_ids:
+                return self.get(self._request_ids[request_id])
+            run_id = _new_run_id()
+            while run_id in self.runs or archive_path(self.archive_root, run_id).exists():
+                run_id = _new_run_id()
+            created = time.time()
+            loop = asyncio.get_running_loop()
+            writer = await loop.run_in_executor(
+                self.archive_thread,
+                lambda: ArchiveWriter.create(
+                    self.archive_root, run_id, name=settings.display_name, run_spec=settings.to_dict(),
+                    surface_labels=settings.labels, lmax=settings.lmax, software_version=software_version(),
+                    created_unix_s=created,
+                ),
+            )
+            if request_id:  # kept in the archive: a retry after a server restart finds the run too
+                await loop.run_in_executor(self.archive_thread,
+                                           lambda: writer.commit(attrs={"open_request_id": request_id}))
+            run = self._make_record(run_id, settings, writer, created, next_seq=1)
+            if request_id:
+                self._request_ids[request_id] = run_id
+        await run.announce_state(pb.Run.STATE_OPEN, "opened")
+        return run
+
+    def _make_record(self, run_id, settings, writer, created, *, next_seq: int) -> RunRecord:
+        run = RunRecord(
+            run_id=run_id, settings=settings, writer=writer, executor=self.executor,
+            archive_thread=self.archive_thread, options=self.options,
+            planner=self.planner_factory(settings), created_unix_s=created, next_seq=next_seq,
+        )
+        if self.slice_observer_factory is not None:
+            run.slice_observers.extend(self.slice_observer_factory(settings))
+        self.runs[run_id] = run
+        return run
+
+    async def restore(self) -> list[str]:
+        """Load the runs of the archive root (a restarted server): open runs are re-opened and
+        take slices again; closed ones are listed and watchable. Returns the re-opened ids."""
+        loop = asyncio.get_running_loop()
+        reopened = []
+        summaries = await loop.run_in_executor(self.archive_thread, list_archives, self.archive_root)
+        for summary in summaries:
+            if summary.run_id in self.runs or summary.state not in ("open", "closed"):
+                continue
+            try:
+                writer = await loop.run_in_executor(self.archive_thread, ArchiveWriter.open_existing, summary.path)
+                attrs = writer.attrs
+                settings = RunSettings.from_dict(attrs["run_spec"])
+                # Read before the run is registered: no slice may reach it half restored.
+                archived = await loop.run_in_executor(self.archive_thread, read_archive, summary.path)
+                run = self._make_record(summary.run_id, settings, writer, float(attrs["created_unix_s"]),
+                                        next_seq=int(attrs.get("next_event_seq", 1)))
+                restore_run(run, archived)
+                if attrs.get("open_request_id"):
+                    self._request_ids[str(attrs["open_request_id"])] = summary.run_id
+            except Exception:
+                log.exception("could not load run archive %s", summary.path)
+                self.runs.pop(summary.run_id, None)
+                continue
+            if summary.state == "closed":
+                run.mark_closed(float(attrs.get("closed_unix_s") or 0.0))
+                continue
+            await run.announce_state(pb.Run.STATE_OPEN, "re-opened from its archive after a server restart")
+            reopened.append(summary.run_id)
+        return reopened
+
+    def list_runs(self) -> list[RunRecord]:
+        return sorted(self.runs.values(), key=lambda r: (-r.created_unix_s, r.run_id))
+
+    def stop_watchers(self) -> None:
+        for run in self.runs.values():
+            run.log.stop_watchers()
+
+    async def shutdown(self) -> None:
+        await asyncio.gather(*(run.shutdown() for run in self.runs.values()), return_exceptions=True)
+        self.archive_thread.shutdown(wait=True)

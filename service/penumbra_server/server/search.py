@@ -1,0 +1,70 @@
+"""One planned search in one slice: crop the slice to the plan's region, run the finder job on
+the executor, retry once on a wider region when the crop cut what the surface needs, and refuse a
+surface that does not hold the points it must enclose. Units of M.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..numerics.slices import Slice
+from ..numerics.surfaces import Surface
+from ._spec import RunSettings
+from .executors import FinderExecutor
+from .jobs import REASON_NOT_CONVERGED, REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceJob, SurfaceOutcome, crop_slice
+from .scheduler import SurfacePlan
+
+__all__ = ["search_plan", "crop_ghost_nodes"]
+
+
+def crop_ghost_nodes(interpolation_order: int) -> int:
+    """Nodes the server's crop keeps beyond a search region (the finder's stencils)."""
+    return int(interpolation_order) + 2
+
+
+async def search_plan(plan: SurfacePlan, slice_: Slice, *, executor: FinderExecutor, settings: RunSettings,
+                      interpolation_order: int) -> SurfaceOutcome:
+    """The outcome of ``plan`` in ``slice_`` (a plan with ``search`` False: "not searched")."""
+    if not plan.search:
+        return SurfaceOutcome(label=plan.label, found=False, reason=REASON_NOT_SEARCHED, status=-1,
+                              message=plan.note or "not searched in this slice")
+    outcome = await _find(plan, slice_, executor, settings, interpolation_order)
+    if outcome.reason == REASON_OUTSIDE_DATA and plan.retry_wider:
+        # The crop may have cut what the surface needs: once more on twice the region.
+        outcome = await _find(plan.widened(2.0), slice_, executor, settings, interpolation_order)
+    if outcome.found and plan.must_enclose:
+        outside = plan.points_outside(Surface(outcome.centre, outcome.lmax, outcome.coefficients))
+        if outside:
+            where = ", ".join(str(np.round(p, 4).tolist()) for p in outside)
+            outcome = SurfaceOutcome(
+                label=plan.label, found=False, reason=REASON_NOT_CONVERGED, status=outcome.status,
+                message=f"the surface found does not enclose {where}, which it must hold inside: not accepted",
+                method=outcome.method, residual_max=outcome.residual_max, iterations=outcome.iterations,
+                wall_time_s=outcome.wall_time_s)
+    return outcome
+
+
+async def _find(plan: SurfacePlan, slice_: Slice, executor: FinderExecutor, settings: RunSettings,
+                order: int) -> SurfaceOutcome:
+    data = crop_slice(slice_, plan.box_lower, plan.box_upper, ghost_nodes=crop_ghost_nodes(order))
+    if data is None:
+        lo, hi = plan.box_lower, plan.box_upper
+        return SurfaceOutcome(
+            label=plan.label, found=False, reason=REASON_OUTSIDE_DATA, status=-1,
+            message=(f"no patch of the slice overlaps the region around {plan.label!r} "
+                     f"({np.round(lo, 3).tolist()} .. {np.round(hi, 3).tolist()})"),
+        )
+    job = SurfaceJob(
+        label=plan.label,
+        data=data,
+        lmax=plan.lmax or settings.lmax,
+        tolerance=settings.tolerance,
+        max_iterations=settings.max_iterations,
+        interpolation_order=order,
+        fallback_to_flow=plan.fallback_to_flow,
+        seed=plan.seed,
+        extra_seeds=tuple(plan.extra_seeds),
+        scan_centre=plan.scan_centre,
+        scan_radii=plan.scan_radii,
+    )
+    return await executor.run(job)

@@ -171,11 +171,14 @@ class EngineSettings:
 
     def describe(self) -> str:
         """A few words for the server's start-up line."""
+        def processes(n: int) -> str:
+            return f"{n} worker process" + ("" if n == 1 else "es")
+
         if self.engine == "process":
-            return f"{self.workers} worker processes"
+            return processes(self.workers)
         if self.dask_scheduler:
             return f"dask scheduler {self.dask_scheduler}"
-        return f"dask local cluster of {self.dask_local_workers} worker processes"
+        return f"dask local cluster of {processes(self.dask_local_workers)}"
 
 
 async def start_executor(settings: EngineSettings, *,

@@ -8,8 +8,8 @@ docs/references.md item 1).
 
 from __future__ import annotations
 
-import os
 import signal
+import time
 
 import numpy as np
 import pytest
@@ -61,8 +61,11 @@ def test_a_server_on_the_dask_engine_finds_a_lone_hole(tmp_path):
         out, _ = process.communicate(timeout=60)
         assert process.returncode == 0, out
         assert "finder: dask local cluster of 1 worker process;" in out and "stopped" in out
+        deadline = time.monotonic() + 30.0  # children notice their parent's exit within a moment
+        while alive(workers) and time.monotonic() < deadline:
+            time.sleep(0.05)
         leftover = alive(workers)
-        assert not leftover, f"dask worker processes {sorted(leftover)} outlived the server"
+        assert not leftover, f"processes {sorted(leftover)} of the dask engine outlived the server by 30 s"
     finally:
         kill_all(workers)
         if process.poll() is None:

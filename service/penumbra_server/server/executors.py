@@ -71,6 +71,18 @@ def single_threaded_blas_env() -> Iterator[None]:
                 os.environ[name] = value
 
 
+#: Seconds a starting worker waits for the others before the pool is given up as broken.
+WORKER_START_TIMEOUT_S = 300.0
+
+
+def _start_worker(parent_pid: int, all_started) -> None:
+    """Pool initializer: exit with the server (server/lifeline.py), import the numerics, wait
+    until every worker of the pool has done the same."""
+    watch_parent(parent_pid)
+    warm_up()
+    all_started.wait(WORKER_START_TIMEOUT_S)
+
+
 class ProcessPoolFinderExecutor:
     """Finder jobs in local worker processes (spawn start method).
 
@@ -104,16 +116,18 @@ class ProcessPoolFinderExecutor:
 
     async def _launch(self) -> None:
         context = multiprocessing.get_context(self._start_method)
+        # Every worker imports the numerics in its initializer, then waits for the others: once
+        # any warm-up task has run, all workers are up (however slowly a loaded machine starts them).
+        all_started = context.Barrier(self.workers)
         with single_threaded_blas_env():
-            # Each worker watches this process and exits when it dies (server/lifeline.py).
-            pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=context, initializer=watch_parent,
-                                       initargs=(os.getpid(),))
-            # ProcessPoolExecutor starts workers on demand; one slow warm-up task per worker,
-            # submitted together, makes it start all of them now.
-            futures = [pool.submit(warm_up, 0.2) for _ in range(self.workers)]
+            pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=context, initializer=_start_worker,
+                                       initargs=(os.getpid(), all_started))
+            # ProcessPoolExecutor starts a worker per submitted task while none is idle: one
+            # warm-up task per worker, submitted together, starts all of them now.
+            futures = [pool.submit(warm_up) for _ in range(self.workers)]
         started = await asyncio.gather(*(asyncio.wrap_future(f) for f in futures))
         self._pool = pool
-        self.worker_pids = tuple(sorted({pid for pid, _ in started}))
+        self.worker_pids = tuple(sorted(pool._processes))  # every worker, whichever ran the warm-ups
         self.worker_thread_settings = started[0][1]
         self.pools_started += 1
 

@@ -1,6 +1,7 @@
 """The `penumbra` command: serve, demo, runs, watch, report.
 
     penumbra serve  [--config FILE] [--listen HOST:PORT] [--archive-root DIR] [--workers N]
+                    [--engine process|dask] [--dask-scheduler ADDRESS | --dask-local-workers N]
                     [--tls-cert PEM --tls-key PEM [--tls-client-ca PEM]] [--token-file TOML]
                     [--trusted-network] [--option KEY=VALUE] [--print-config]
     penumbra demo   [--workdir DIR] [--no-crop] [--no-control]
@@ -92,6 +93,12 @@ def build_parser() -> argparse.ArgumentParser:
                    help="directory holding one <run_id>.zarr per run (default ./penumbra-archive)")
     p.add_argument("--workers", type=_positive_int, default=None,
                    help="finder worker processes (default: cores - 1, at least 1)")
+    p.add_argument("--engine", choices=("process", "dask"), default=None,
+                   help="where finder jobs run: local worker processes (default) or a Dask cluster")
+    p.add_argument("--dask-scheduler", default=None, metavar="ADDRESS",
+                   help="with --engine dask: a running Dask scheduler, e.g. tcp://node17:8786")
+    p.add_argument("--dask-local-workers", type=_positive_int, default=None, metavar="N",
+                   help="with --engine dask: start a local Dask cluster of N worker processes instead")
     p.add_argument("--ready-file", type=Path, default=None,
                    help="write the bound HOST:PORT to this file once serving (for scripts)")
     p.add_argument("--grace", type=_positive_float, default=None,
@@ -198,11 +205,20 @@ def serve_config_from_args(args):
         config = load_config_file(args.config, config)
     given = {
         "server": {"listen": args.listen, "archive_root": args.archive_root, "workers": args.workers,
-                   "ready_file": args.ready_file, "grace_s": args.grace, "trusted_network": args.trusted_network},
+                   "engine": args.engine, "ready_file": args.ready_file, "grace_s": args.grace,
+                   "trusted_network": args.trusted_network},
+        "dask": {"scheduler": args.dask_scheduler, "local_workers": args.dask_local_workers},
         "tls": {"certificate": args.tls_cert, "private_key": args.tls_key, "client_ca": args.tls_client_ca},
         "auth": {"token_files": args.token_file},
         "options": {"common_horizon": args.common_horizon},
     }
+    if args.dask_scheduler is not None and args.dask_local_workers is not None:
+        raise ValueError("--dask-scheduler, --dask-local-workers: give one of them, not both")
+    # One of them on the command line replaces the other from the config file.
+    if args.dask_scheduler is not None:
+        given["dask"]["local_workers"] = 0
+    elif args.dask_local_workers is not None:
+        given["dask"]["scheduler"] = ""
     kinds = option_fields()
     for item in args.option or ():
         key, sep, text = item.partition("=")

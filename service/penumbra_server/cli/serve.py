@@ -21,12 +21,13 @@ def write_ready_file(path: Path, address: str) -> None:
 
 
 async def _serve(config) -> int:
-    from penumbra_server.server import create_server
-    from penumbra_server.server.auth import ExposureError
-    from penumbra_server.server.config import ConfigError, server_credentials, server_options, token_book
+    from penumbra_server.server.config import (ConfigError, engine_settings, server_credentials, server_options,
+                                               token_book)
+    from penumbra_server.server.auth import ExposureError, check_exposure
+    from penumbra_server.server.executors import start_executor
 
     settings = config["server"]
-    listen, archive_root, workers = settings["listen"], Path(settings["archive_root"]), settings["workers"]
+    listen, archive_root = settings["listen"], Path(settings["archive_root"])
     ready_file, grace_s = settings["ready_file"], settings["grace_s"]
     try:
         # The server's default planner (server/planning.py) seeds each body at its forecast and, for a
@@ -34,15 +35,40 @@ async def _serve(config) -> int:
         options = server_options(config)
         credentials = server_credentials(config)
         tokens = token_book(config)
+        engine = engine_settings(config)
     except ConfigError as err:
         print(f"penumbra: {err}", file=sys.stderr)
         return 2
-    archive_root.mkdir(parents=True, exist_ok=True)
-    # The worker pool starts inside create_server, before the gRPC server (grpc and fork do not mix).
     try:
-        server = await create_server(listen, archive_root=archive_root, workers=workers, options=options,
+        # Refuse an unsafe address before starting any worker (create_server checks it again).
+        check_exposure(listen.rpartition(":")[0].strip("[]") or "127.0.0.1", tls=credentials is not None,
+                       tokens=bool(tokens), trusted_network=settings["trusted_network"])
+    except ExposureError as err:
+        print(f"penumbra: refusing to serve on {listen}: {err}", file=sys.stderr)
+        return 2
+    archive_root.mkdir(parents=True, exist_ok=True)
+    # The workers start before the gRPC server (grpc and fork do not mix).
+    try:
+        executor = await start_executor(engine)
+    except (OSError, RuntimeError, ValueError) as err:
+        print(f"penumbra: cannot start the {engine.engine} engine ({engine.describe()}): {err}", file=sys.stderr)
+        return 1
+    try:
+        return await _serve_with(config, executor, engine.describe(), listen, archive_root, options, credentials,
+                                 tokens, ready_file, grace_s)
+    finally:
+        await executor.close()
+
+
+async def _serve_with(config, executor, engine_text, listen, archive_root, options, credentials, tokens, ready_file,
+                      grace_s) -> int:
+    from penumbra_server.server import create_server
+    from penumbra_server.server.auth import ExposureError
+
+    try:
+        server = await create_server(listen, archive_root=archive_root, executor=executor, options=options,
                                      server_credentials=credentials, token_book=tokens,
-                                     trusted_network=settings["trusted_network"])
+                                     trusted_network=config["server"]["trusted_network"])
     except ExposureError as err:
         print(f"penumbra: refusing to serve on {listen}: {err}", file=sys.stderr)
         return 2
@@ -55,7 +81,7 @@ async def _serve(config) -> int:
         "TLS" + (" with client certificates" if config["tls"]["client_ca"] else "") if credentials else "no TLS",
         f"{len(tokens)} tokens" if tokens else "no tokens (open)",
     ]))
-    print(f"penumbra: serving on {server.address} (archive {archive_root.resolve()}, workers: {workers}; {security})",
+    print(f"penumbra: serving on {server.address} (archive {archive_root.resolve()}, finder: {engine_text}; {security})",
           flush=True)
     if ready_file is not None:
         write_ready_file(ready_file, server.address)

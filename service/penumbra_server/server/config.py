@@ -7,7 +7,8 @@ command line, to the working directory. ``penumbra serve --print-config`` prints
     [server]
     listen = "10.1.2.3:50717"          # HOST:PORT
     archive_root = "/shared/penumbra"
-    workers = 7
+    workers = 7                        # worker processes of the process engine
+    engine = "process"                 # or "dask": finder jobs on a Dask cluster ([dask])
     ready_file = "/shared/penumbra/server-address"
     grace_s = 5.0
     trusted_network = false            # true: allow a non-loopback bind without TLS and tokens
@@ -19,6 +20,12 @@ command line, to the working directory. ``penumbra serve --print-config`` prints
 
     [auth]
     token_files = ["tokens.toml"]      # [[token]] tables: name, role, sha256 (server/tokens.py)
+
+    [dask]                             # with engine = "dask": exactly one of the first two
+    scheduler = "tcp://node17:8786"    # a running Dask scheduler (deploy/penumbra-dask.sbatch)
+    local_workers = 0                  # or: a LocalCluster of this many worker processes here
+    task_retries = 1                   # reruns of a task that raised
+    resubmissions = 2                  # submissions again after the job's worker was lost
 
     [options]                          # every scalar field of ServerOptions (server/app.py)
     max_slice_bytes = 2147483648
@@ -33,15 +40,16 @@ from pathlib import Path
 from typing import Any, Mapping
 
 from .app import ServerOptions
+from .errors import PenumbraServerError
 
 __all__ = ["SECTIONS", "ConfigError", "default_config", "load_config_file", "merge", "format_toml",
            "option_fields", "server_options", "server_credentials", "token_book", "default_workers",
-           "DEFAULT_LISTEN"]
+           "engine_settings", "DEFAULT_LISTEN"]
 
 DEFAULT_LISTEN = "127.0.0.1:50717"
 
 
-class ConfigError(ValueError):
+class ConfigError(PenumbraServerError, ValueError):
     """A configuration value is missing, unknown or of the wrong kind; the message names it."""
 
 
@@ -59,10 +67,11 @@ def option_fields() -> dict[str, type]:
     return found
 
 
-# Kinds: str, int, float, bool, "path", "path?" (may be unset), "paths" (a list).
+# Kinds: str, "str?" (may be unset), int, float, bool, "path", "path?" (may be unset), "paths" (a list).
 SECTIONS: dict[str, dict[str, Any]] = {
-    "server": {"listen": str, "archive_root": "path", "workers": int, "ready_file": "path?", "grace_s": float,
-               "trusted_network": bool},
+    "server": {"listen": str, "archive_root": "path", "workers": int, "engine": str, "ready_file": "path?",
+               "grace_s": float, "trusted_network": bool},
+    "dask": {"scheduler": "str?", "local_workers": int, "task_retries": int, "resubmissions": int},
     "tls": {"certificate": "path?", "private_key": "path?", "client_ca": "path?"},
     "auth": {"token_files": "paths"},
 }
@@ -77,7 +86,9 @@ def default_config() -> dict[str, dict[str, Any]]:
     options = ServerOptions()
     return {
         "server": {"listen": DEFAULT_LISTEN, "archive_root": Path("penumbra-archive").resolve(),
-                   "workers": default_workers(), "ready_file": None, "grace_s": 5.0, "trusted_network": False},
+                   "workers": default_workers(), "engine": "process", "ready_file": None, "grace_s": 5.0,
+                   "trusted_network": False},
+        "dask": {"scheduler": None, "local_workers": 0, "task_retries": 1, "resubmissions": 2},
         "tls": {"certificate": None, "private_key": None, "client_ca": None},
         "auth": {"token_files": []},
         "options": {name: getattr(options, name) for name in option_fields()},
@@ -95,6 +106,10 @@ def _coerce(where: str, kind, value, base: Path):
         return path(value)
     if kind == "path?":
         return None if value in (None, "") else path(value)
+    if kind == "str?":
+        if value in (None, ""):
+            return None
+        kind = str
     if kind == "paths":
         if not isinstance(value, (list, tuple)):
             raise ConfigError(f"{where}: expected a list of paths, got {value!r}")
@@ -150,6 +165,46 @@ def load_config_file(path: str | Path, config: Mapping[str, Mapping[str, Any]] |
 def server_options(config: Mapping[str, Mapping[str, Any]], **fixed) -> ServerOptions:
     """The :class:`ServerOptions` of a configuration (``fixed``: fields given in code)."""
     return ServerOptions(workers=config["server"]["workers"], **config["options"], **fixed)
+
+
+def engine_settings(config: Mapping[str, Mapping[str, Any]]):
+    """The :class:`~penumbra_server.server.executors.EngineSettings` of [server] and [dask], checked."""
+    from .executors import ENGINES, EngineSettings
+
+    engine = config["server"]["engine"]
+    dask = config["dask"]
+    if engine not in ENGINES:
+        raise ConfigError(f"server.engine: expected one of {', '.join(ENGINES)}, got {engine!r}")
+    for key in ("local_workers", "task_retries", "resubmissions"):
+        if dask[key] < 0:
+            raise ConfigError(f"dask.{key}: expected 0 or more, got {dask[key]}")
+    scheduler, local = dask["scheduler"], dask["local_workers"]
+    if engine == "process":
+        if scheduler is not None or local:
+            given = "dask.scheduler" if scheduler is not None else "dask.local_workers"
+            raise ConfigError(f"{given}: set, but server.engine is \"process\"; choose engine \"dask\" "
+                              "(--engine dask) to use a Dask cluster")
+    elif (scheduler is None) == (local == 0):
+        raise ConfigError("dask.scheduler, dask.local_workers: engine \"dask\" needs exactly one of them "
+                          "(--dask-scheduler tcp://HOST:8786 for a running scheduler, or --dask-local-workers N)")
+    elif scheduler is not None:
+        _check_scheduler_address(scheduler)
+    return EngineSettings(engine=engine, workers=config["server"]["workers"], dask_scheduler=scheduler,
+                          dask_local_workers=local, task_retries=dask["task_retries"],
+                          resubmissions=dask["resubmissions"])
+
+
+_SCHEDULER_PROTOCOLS = ("tcp", "tls", "ucx", "ws", "wss")
+
+
+def _check_scheduler_address(address: str) -> None:
+    protocol, sep, rest = address.partition("://")
+    if not sep:
+        protocol, rest = "tcp", address
+    host, colon, port = rest.rpartition(":")
+    if protocol not in _SCHEDULER_PROTOCOLS or not colon or not host or not port.isdigit():
+        raise ConfigError(f"dask.scheduler: expected PROTOCOL://HOST:PORT with PROTOCOL one of "
+                          f"{', '.join(_SCHEDULER_PROTOCOLS)} (e.g. tcp://node17:8786), got {address!r}")
 
 
 def _toml_value(value) -> str:

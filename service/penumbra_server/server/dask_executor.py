@@ -1,0 +1,194 @@
+"""Finder jobs on a Dask cluster (``dask.distributed``): the engine beyond one machine.
+
+:class:`DaskFinderExecutor` implements :class:`~penumbra_server.server.executors.FinderExecutor`
+with a ``distributed.Client`` running on the server's event loop (``asynchronous=True``). It
+either connects to a scheduler started elsewhere (``dask scheduler`` / ``dask worker`` on other
+nodes, deploy/penumbra-dask.sbatch) or starts a ``LocalCluster`` of worker processes on this
+machine. This module imports ``distributed`` at the top: import it only when that engine is
+configured (:func:`~penumbra_server.server.executors.start_executor` does).
+
+Each job goes to the cluster as the task's argument (a cropped sub-box, small), not scattered
+first: the scheduler then holds the whole task, so a task whose worker dies is simply run again
+elsewhere, which it could not be if its input had lived only in the dead worker's memory.
+
+Losing a worker mid-task: the scheduler itself reruns the task on another worker (up to its
+``distributed.scheduler.allowed-failures``); if it gives up (``KilledWorker``) or forgets the task
+(the client lost its scheduler connection), this executor submits the job again, at most
+``resubmissions`` times. ``task_retries`` is Dask's ``retries=``: reruns of a task that raised.
+Whatever happens, :meth:`DaskFinderExecutor.run` returns an outcome (REASON_WORKER_FAILED with
+the reasons on final failure), never an exception, except when the awaiting task is cancelled.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import concurrent.futures
+import contextlib
+import logging
+import re
+import time
+import uuid
+from typing import Callable
+
+import dask
+from distributed import Client, LocalCluster
+from distributed.comm.core import CommClosedError
+from distributed.scheduler import KilledWorker
+
+from .executors import BLAS_THREAD_VARIABLES, single_threaded_blas_env
+from .jobs import SurfaceJob, SurfaceOutcome, run_surface_job, warm_up
+
+__all__ = ["DaskFinderExecutor", "LOST_WORKER_ERRORS"]
+
+log = logging.getLogger("penumbra.server.dask")
+
+#: Errors of a Dask future that mean "the work was lost, not done": submit it again. KilledWorker:
+#: the scheduler gave up after workers died running it; concurrent.futures.CancelledError (not
+#: asyncio's): the scheduler forgot the task; CommClosedError: the connection dropped meanwhile.
+LOST_WORKER_ERRORS = (KilledWorker, concurrent.futures.CancelledError, CommClosedError)
+
+
+def _task_key(label: str) -> str:
+    safe = re.sub(r"[^A-Za-z0-9_.-]", "_", label)[:40]
+    return f"penumbra-find-{safe}-{uuid.uuid4().hex}"
+
+
+class DaskFinderExecutor:
+    """Finder jobs on a Dask cluster. Create with :meth:`start`; :meth:`close` when done.
+
+    Attributes:
+        workers: workers connected when the executor started (a cluster may grow or shrink).
+        scheduler_address: the scheduler's address (for a local cluster, a loopback one).
+        worker_pids: worker process ids at start ({worker address: pid}).
+        worker_thread_settings: BLAS/OpenMP thread variables as one worker saw them.
+        resubmitted: jobs submitted again by this executor after a lost-worker error.
+    """
+
+    def __init__(self, client: Client, cluster: LocalCluster | None, *, task_retries: int, resubmissions: int,
+                 job_function: Callable[[SurfaceJob], SurfaceOutcome]) -> None:
+        if task_retries < 0 or resubmissions < 0:
+            raise ValueError(f"task_retries, resubmissions: expected >= 0, got {task_retries}, {resubmissions}")
+        self._client: Client | None = client
+        self._cluster = cluster
+        self.task_retries = int(task_retries)
+        self.resubmissions = int(resubmissions)
+        self._job_function = job_function
+        self.scheduler_address: str = client.scheduler.address
+        self.workers = 0
+        self.worker_pids: dict[str, int] = {}
+        self.worker_thread_settings: dict[str, str | None] = {}
+        self.resubmitted = 0
+
+    @classmethod
+    async def start(cls, *, scheduler_address: str | None = None, local_workers: int = 0, task_retries: int = 1,
+                    resubmissions: int = 2, connect_timeout_s: float = 30.0,
+                    job_function: Callable[[SurfaceJob], SurfaceOutcome] = run_surface_job) -> "DaskFinderExecutor":
+        """Connect to ``scheduler_address`` or start a LocalCluster of ``local_workers`` processes
+        (one thread each, BLAS single-threaded); import the numerics on every worker.
+
+        ``job_function``: what a task runs (default :func:`run_surface_job`; tests pass a
+        deliberately slow or failing one). It must be importable on the workers.
+
+        Raises:
+            ValueError: neither or both of ``scheduler_address`` and ``local_workers``.
+            OSError: the scheduler could not be reached within ``connect_timeout_s``.
+            RuntimeError: the workers could not import the numerics (penumbra-horizons missing
+                or a different version there).
+        """
+        if (scheduler_address is None) == (local_workers < 1):
+            raise ValueError("dask engine: give either a scheduler address or a number of local workers "
+                             f"(got scheduler_address={scheduler_address!r}, local_workers={local_workers})")
+        # Inputs travel inside the task on purpose (module docstring): no warning about it.
+        dask.config.set({"distributed.admin.large-graph-warning-threshold": "1GiB"})
+        cluster = None
+        try:
+            if scheduler_address is None:
+                cluster = await _local_cluster(local_workers)
+                client = await Client(cluster, asynchronous=True)
+            else:
+                client = await Client(scheduler_address, asynchronous=True, timeout=connect_timeout_s)
+        except BaseException:
+            if cluster is not None:
+                await cluster.close()
+            raise
+        executor = cls(client, cluster, task_retries=task_retries, resubmissions=resubmissions,
+                       job_function=job_function)
+        try:
+            await executor._warm_up()
+        except BaseException:
+            await executor.close()
+            raise
+        return executor
+
+    async def _warm_up(self) -> None:
+        try:
+            started = await self._client.run(warm_up)
+        except Exception as exc:
+            raise RuntimeError(f"dask workers at {self.scheduler_address} cannot run the finder "
+                               f"(is penumbra-horizons installed there?): {type(exc).__name__}: {exc}") from exc
+        self.workers = len(started)
+        self.worker_pids = {address: pid for address, (pid, _) in started.items()}
+        if started:
+            self.worker_thread_settings = next(iter(started.values()))[1]
+        else:
+            log.warning("dask scheduler %s has no workers yet: jobs wait until some connect", self.scheduler_address)
+
+    async def run(self, job: SurfaceJob) -> SurfaceOutcome:
+        """Run one job on the cluster; an outcome always (see the module docstring)."""
+        client = self._client
+        if client is None:
+            raise RuntimeError("executor is closed")
+        started = time.perf_counter()
+        lost: list[str] = []
+        for attempt in range(1 + self.resubmissions):
+            if attempt:
+                self.resubmitted += 1
+                log.warning("surface %r: submitting again after a lost worker (%s)", job.label, lost[-1])
+            try:
+                future = client.submit(self._job_function, job, key=_task_key(job.label), pure=False,
+                                       retries=self.task_retries)
+            except Exception as exc:  # the client is closing or cannot serialise the job
+                return SurfaceOutcome.failed(job.label, f"could not submit to dask: {type(exc).__name__}: {exc}",
+                                             wall_time_s=time.perf_counter() - started)
+            try:
+                return await future
+            except asyncio.CancelledError:
+                with contextlib.suppress(Exception):
+                    await client.cancel([future])
+                raise
+            except LOST_WORKER_ERRORS as exc:
+                lost.append(f"{type(exc).__name__}: {exc}")
+            except Exception as exc:  # the task raised on every one of its retries
+                return SurfaceOutcome.failed(
+                    job.label, f"dask task raised {type(exc).__name__}: {exc} (tried {1 + self.task_retries} times)",
+                    wall_time_s=time.perf_counter() - started)
+            finally:
+                future.release()
+            if self._client is None:
+                break
+        return SurfaceOutcome.failed(
+            job.label, f"dask worker lost while finding the surface, {len(lost)} attempt(s): {'; '.join(lost)}",
+            wall_time_s=time.perf_counter() - started)
+
+    async def close(self) -> None:
+        """Disconnect; a local cluster's workers and scheduler stop (remote workers keep running)."""
+        client, self._client = self._client, None
+        cluster, self._cluster = self._cluster, None
+        if client is not None:
+            with contextlib.suppress(Exception):
+                await client.close()
+        if cluster is not None:
+            await cluster.close()
+
+
+async def _local_cluster(workers: int) -> LocalCluster:
+    """A LocalCluster of ``workers`` processes on loopback, one thread and one BLAS thread each."""
+    blas = {name: "1" for name in BLAS_THREAD_VARIABLES}
+    pre_spawn = {**dask.config.get("distributed.nanny.pre-spawn-environ", {}), **blas}
+    # Spawned workers copy the environment at start; the nanny also re-applies these to a
+    # worker it restarts after a crash.
+    with single_threaded_blas_env(), dask.config.set({"distributed.nanny.pre-spawn-environ": pre_spawn}):
+        # No dashboard; the scheduler's small HTTP server (health, metrics) on a free loopback port.
+        return await LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, asynchronous=True,
+                                  host="127.0.0.1", scheduler_port=0, dashboard_address=None, env=blas,
+                                  scheduler_kwargs={"dashboard": False, "dashboard_address": "127.0.0.1:0"})

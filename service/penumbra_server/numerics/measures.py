@@ -11,6 +11,7 @@ import numpy as np
 from .excision import ExcisedDataError
 from .expansion import level_set_derivatives
 from .interpolation import DEFAULT_ORDER
+from .rays import ray_crossings
 from .sources import TrackedSource, as_tracked_source
 from .surfaces import Surface, angular_grid, basis_on_grid, unit_vectors
 
@@ -112,39 +113,10 @@ def plane_cut_spanned(surface: Surface, origin: np.ndarray, e1: np.ndarray, e2: 
     from e1 towards e2 about ``origin``. None as for :func:`plane_cut`."""
     psi = 2 * np.pi * np.arange(samples) / samples
     d = np.cos(psi)[:, None] * np.asarray(e1, dtype=float) + np.sin(psi)[:, None] * np.asarray(e2, dtype=float)
-    c = surface.centre
-
-    def level(rho):
-        x = origin + rho[:, None] * d - c
-        r = np.linalg.norm(x, axis=1)
-        th = np.arccos(np.clip(x[:, 2] / r, -1.0, 1.0))
-        ph = np.arctan2(x[:, 1], x[:, 0])
-        return r - surface.radius(th, ph)
-
-    # Bracket the crossing on each ray (F < 0 inside, > 0 outside), then the Illinois variant of
-    # regula falsi: bracketing keeps it safe, superlinear convergence keeps it cheap.
-    lo = np.zeros(samples)
-    f_lo = level(lo + 1e-12)
-    if np.any(f_lo >= 0):
+    rho = ray_crossings(surface, origin, d)
+    if rho is None:
         return None
-    hi = np.full(samples, 2.0 * surface.on_grid(angular_grid(surface.lmax)).h.max() + np.linalg.norm(origin - c))
-    f_hi = level(hi)
-    if np.any(f_hi <= 0):
-        return None
-    side = np.zeros(samples)
-    for _ in range(60):
-        mid = (lo * f_hi - hi * f_lo) / (f_hi - f_lo)
-        f_mid = level(mid)
-        inside = f_mid < 0
-        lo, f_lo = np.where(inside, mid, lo), np.where(inside, f_mid, f_lo)
-        hi, f_hi = np.where(inside, hi, mid), np.where(inside, f_hi, f_mid)
-        # Illinois: halve the stale end's value when the same end moved twice in a row.
-        f_hi = np.where(inside & (side > 0), 0.5 * f_hi, f_hi)
-        f_lo = np.where(~inside & (side < 0), 0.5 * f_lo, f_lo)
-        side = np.where(inside, 1.0, -1.0)
-        if np.max(np.abs(f_mid)) < 1e-14 * max(1.0, float(np.max(hi))):
-            break
-    return origin + mid[:, None] * d
+    return origin + rho[:, None] * d
 
 
 def proper_length_closed(points: np.ndarray, geometry_source) -> float:

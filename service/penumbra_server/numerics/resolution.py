@@ -18,6 +18,7 @@ import numpy as np
 from .excision import ExcisedDataError
 from .expansion import expansion_at
 from .interpolation import SUPPORTED_ORDERS, grid_geometry
+from .rays import ray_crossings
 from .slices import SliceError
 from .sources import TrackedSource
 from .surfaces import Surface, angular_grid, basis_on_grid, unit_vectors
@@ -83,39 +84,10 @@ def reexpanded(surface: Surface, new_centre, lmax: int | None = None) -> Surface
     new_centre = np.asarray(new_centre, dtype=float).reshape(3)
     grid = angular_grid(lmax)
     n, _, _ = unit_vectors(grid.theta, grid.phi)
-    c = surface.centre
-
-    def level(rho):
-        x = new_centre + rho[:, None] * n - c
-        r = np.linalg.norm(x, axis=1)
-        th = np.arccos(np.clip(x[:, 2] / np.maximum(r, 1e-300), -1.0, 1.0))
-        ph = np.arctan2(x[:, 1], x[:, 0])
-        return r - surface.radius(th, ph)
-
-    lo = np.zeros(grid.size)
-    f_lo = level(lo)
-    if np.any(f_lo >= 0):
-        return None  # the new centre is not inside the surface
-    h_max = float(np.max(surface.on_grid(angular_grid(surface.lmax)).h))
-    hi = np.full(grid.size, 2.0 * h_max + np.linalg.norm(new_centre - c))
-    f_hi = level(hi)
-    if np.any(f_hi <= 0):
-        return None
-    # Illinois regula falsi on every ray at once (bracketing keeps it safe).
-    side = np.zeros(grid.size)
-    mid = lo
-    for _ in range(80):
-        mid = (lo * f_hi - hi * f_lo) / (f_hi - f_lo)
-        f_mid = level(mid)
-        inside = f_mid < 0
-        lo, f_lo = np.where(inside, mid, lo), np.where(inside, f_mid, f_lo)
-        hi, f_hi = np.where(inside, hi, mid), np.where(inside, f_hi, f_mid)
-        f_hi = np.where(inside & (side > 0), 0.5 * f_hi, f_hi)
-        f_lo = np.where(~inside & (side < 0), 0.5 * f_lo, f_lo)
-        side = np.where(inside, 1.0, -1.0)
-        if np.max(np.abs(f_mid)) < 1e-14 * max(1.0, h_max):
-            break
-    return Surface(new_centre, lmax, grid.project(mid))
+    rho = ray_crossings(surface, new_centre, n)
+    if rho is None:
+        return None  # the new centre is not inside, or a ray meets the surface more than once
+    return Surface(new_centre, lmax, grid.project(rho))
 
 
 def recentred_surface(surface: Surface, fraction: float) -> Surface | None:

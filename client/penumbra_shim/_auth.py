@@ -16,11 +16,14 @@ from pathlib import Path
 
 import grpc
 
-__all__ = ["BearerTokens", "channel_credentials"]
+__all__ = ["BearerTokens", "channel_credentials", "request_run_id"]
 
 
-def _run_id_of(message) -> str:
-    """The run a request names: its ``run_id``, or that of the oneof member set (a slice header)."""
+def request_run_id(message) -> str:
+    """The run a request names: its ``run_id``, or that of the oneof member set (a slice
+    header); "" for none. The server's token check reads requests with this same function."""
+    if message is None:
+        return ""
     run_id = getattr(message, "run_id", None)
     if isinstance(run_id, str):
         return run_id
@@ -82,7 +85,7 @@ class _StubWithTokens:
             request_iterator = iter(request_iterator)
             first = next(request_iterator, None)
             requests = request_iterator if first is None else itertools.chain((first,), request_iterator)
-            extra = tokens.metadata_for("" if first is None else _run_id_of(first))
+            extra = tokens.metadata_for("" if first is None else request_run_id(first))
             return method(requests, *args, metadata=tuple(metadata or ()) + extra, **kwargs)
         return call
 
@@ -95,7 +98,7 @@ class _UnaryWithTokens:
         self._tokens = tokens
 
     def _metadata(self, request, metadata):
-        return tuple(metadata or ()) + self._tokens.metadata_for(_run_id_of(request))
+        return tuple(metadata or ()) + self._tokens.metadata_for(request_run_id(request))
 
     def __call__(self, request, *args, metadata=None, **kwargs):
         return self._method(request, *args, metadata=self._metadata(request, metadata), **kwargs)

@@ -30,6 +30,7 @@ import logging
 
 import grpc
 
+from penumbra_shim._auth import request_run_id
 from penumbra_shim._wire import horizons_pb2 as pb
 
 from .errors import DEFAULT_REASONS, PenumbraServerError, status_trailer
@@ -184,29 +185,13 @@ def _denying(handler, code: grpc.StatusCode, message: str):
     return handler._replace(**{_kind(handler): deny})
 
 
-def _run_id_of(message) -> str:
-    """The run a request names: its ``run_id``, or that of the oneof member set (a SendSlice header)."""
-    if message is None:
-        return ""
-    run_id = getattr(message, "run_id", None)
-    if isinstance(run_id, str):
-        return run_id
-    for oneof in message.DESCRIPTOR.oneofs:
-        which = message.WhichOneof(oneof.name)
-        if which is not None:
-            inner = getattr(getattr(message, which), "run_id", None)
-            if isinstance(inner, str):
-                return inner
-    return ""
-
-
 def _run_checking(handler, allowed, message_for):
     """``handler`` preceded by a check of the run its (first) request names."""
     kind = _kind(handler)
     behaviour = getattr(handler, kind)
 
     async def check(context, request) -> None:
-        run_id = _run_id_of(request)
+        run_id = request_run_id(request)
         if not allowed(run_id):
             message = message_for(run_id)
             await context.abort(grpc.StatusCode.PERMISSION_DENIED, message, trailing_metadata=status_trailer(

@@ -6,7 +6,7 @@ the W variable set, an unequal pair for the shape-rich case, and Kerr-Schild Sch
 variables (docs/references.md item 2: area 16 pi M^2) for the comparison with an independent
 scipy finder (tests/benchmarks/peer_spline_finder.py).
 
-Sections 5-7 print the figures quoted in notes/finder.md, among them exactly the two lines
+Sections 5-7 print the figures quoted in DEVELOPERS.md, "The finder", among them exactly the two lines
 ``iteration cost / gather floor: <ratio>`` and ``find r/dx=50 over r/dx=12.5: <ratio>, peak MiB <n>``.
 Run one section alone with ``--only 5`` (or 6, 7).
 """

@@ -4,7 +4,7 @@ Kerr (Kerr-Schild, tilted and off-centre, a = 0.5 and 0.9; docs/references.md it
 the two individual horizons of a Brill-Lindquist pair (item 7; reference: the same surface found
 and measured on the exact evaluator at l_max 16), each sampled onto a grid at three spacings.
 Every quantity that has a true value is a case; the cases not generated are stated beside the
-list. The configurations differ from those the safety factor was calibrated on (notes/quote.md).
+list. The configurations differ from those the safety factor was calibrated on (README.md, "How accurate the numbers are").
 """
 
 from __future__ import annotations
@@ -124,7 +124,7 @@ def test_error_bars_cover_the_true_error():
         by_quantity.setdefault(c[2], []).append(ok)
     print("coverage by quantity:", {k: f"{np.mean(v):.2f} of {len(v)}" for k, v in by_quantity.items()})
     assert covered.mean() >= 0.95
-    # The 30x ceiling holds for the typical case, not every case (notes/quote.md): assert the median.
+    # The 30x ceiling holds for the typical case, not every case (README.md, "How accurate the numbers are"): assert the median.
     assert np.median(ratio) <= 30
 
 

@@ -33,7 +33,7 @@ from penumbra_server.numerics.surfaces import Surface, harmonic_basis
 AXIS = np.array([0.4, -0.55, 0.73]) / np.linalg.norm([0.4, -0.55, 0.73])  # off every coordinate axis
 CENTRE = np.array([0.7, -0.4, 0.25])
 ACROSS = np.cross(AXIS, [1.0, 0.0, 0.0]) / np.linalg.norm(np.cross(AXIS, [1.0, 0.0, 0.0]))
-#: l_max of the finds: enough for the tolerances below at each spin (measured in notes/spin.md).
+#: l_max of the finds: enough for the tolerances below at each spin (measured in README.md, "How accurate the numbers are").
 LMAX = {0.5: 12, 0.9: 16}
 
 
@@ -98,7 +98,7 @@ def test_boosted_kerr_spin(a, boost):
     # The horizon is a Killing horizon, so every cross-section has Kerr's intrinsic geometry and
     # its rotation one-form changes only by a gradient, which the divergence-free AKV does not
     # see: J = a M exactly (references items 4, 6b; Matzner, Huq & Shoemaker 1999). Required:
-    # 1e-3 and 0.1 degree; the method gives far better (notes/spin.md), asserted at 1e-6.
+    # 1e-3 and 0.1 degree; the method gives far better (README.md, "How accurate the numbers are"), asserted at 1e-6.
     velocity = 0.5 * (AXIS if boost == "along" else ACROSS)
     hole = BoostedKerrKerrSchild(1.0, a, axis=AXIS, velocity=velocity, centre=CENTRE)
     surface = find(hole, Surface.sphere(CENTRE, 1.8, LMAX[a]), LMAX[a])

@@ -40,7 +40,7 @@ def test_xarray_opens_a_served_archive_with_time_as_coordinate_and_exports(clien
     np.testing.assert_array_equal(ds["area"].values, view.surface("A")["area"])
     assert ds["centroid"].dims == ("time", "xyz") and "time" in slices.coords
     assert float(ds["area"].sel(time=0.1)) == view.surface("A")["area"][1]  # selection by time, no swap_dims
-    # The one-line exports of notes/quote.md.
+    # The one-line exports of README.md, "Reading results in a notebook".
     columns = ["area", "irreducible_mass", "christodoulou_mass", "residual_max"]
     ds[columns].to_dataframe().to_csv(tmp_path / "A.csv")
     table = np.genfromtxt(tmp_path / "A.csv", delimiter=",", names=True)

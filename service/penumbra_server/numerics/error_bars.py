@@ -22,7 +22,7 @@ The quoted error is ``safety_factor * sqrt(d_l^2 + ((dx / r) d_o)^2)`` (root-sum
 sources are independent) plus a round-off floor of ``1e-12`` times the quantity's scale. The
 safety factor (default 10) and the scaling are our choice, calibrated on Kerr and Brill-Lindquist
 grid data with known answers and checked on other configurations in
-tests/numerics/test_error_bars.py (figures in notes/quote.md); neither is a published
+tests/numerics/test_error_bars.py (figures in README.md, "How accurate the numbers are"); neither is a published
 prescription. The bars are deliberately conservative for integrated quantities (area, masses,
 circumferences: typically 10-100 times the true error) so that they still cover the
 shape-sensitive ones (centroid, direction, multipoles) in about 95 % of cases.

@@ -82,7 +82,7 @@ class FinderSettings:
         max_iterations: Newton iterations (flow iterations are ``flow_iterations``).
         method: "newton" or "flow".
         interpolation_order: interpolation nodes per axis for grid data (even; default 6, chosen
-            by measurement: notes/finder.md).
+            by measurement: DEVELOPERS.md, "The finder").
         lmax_cap: highest l_max the finder may raise to on its own when the residual between
             the nodes says the surface is not resolved (None: ``lmax``, no raising).
         fallback_to_flow: on a failed Newton solve, run the flow from the guess and polish.

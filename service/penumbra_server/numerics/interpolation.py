@@ -12,7 +12,7 @@ a contiguous component-last store, so memory and time follow the surface, not th
 
 ``order`` is the number of interpolation nodes per axis (even): order 4 means cubic Lagrange
 interpolation (error O(dx^4)) with fourth-order centred differences. The default,
-:data:`DEFAULT_ORDER` = 6, was chosen by measurement (notes/finder.md): on Kerr-Schild data at
+:data:`DEFAULT_ORDER` = 6, was chosen by measurement (DEVELOPERS.md, "The finder"): on Kerr-Schild data at
 about 20 points per horizon radius it reaches the area accuracy of a tensor-product cubic spline
 of the fields, which order 4 misses by a factor of about 15.
 
@@ -22,7 +22,7 @@ K = gamma^ij K_ij, and converted back at the points like the conformal variable 
 puncture gamma_ij ~ psi^4 ~ r^-4 is what a polynomial interpolates worst; W ~ r^2 there, and
 gamma_tilde_ij and W^2 K_ij stay bounded. W rather than chi = W^2 because it varies less steeply
 around the horizon: on Brill-Lindquist data at dx = M/32 the area error from chi was 15 times
-that from W (notes/finder.md). Away from punctures the decomposition changes little.
+that from W (DEVELOPERS.md, "The finder"). Away from punctures the decomposition changes little.
 
 Excised regions (:mod:`.excision`): a node whose difference stencil (half-width order/2 along each
 axis) reaches an excised node is unusable; a point whose interpolation stencil touches one raises

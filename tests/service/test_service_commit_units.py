@@ -29,12 +29,14 @@ def test_each_processed_slice_is_one_commit_with_all_its_rows(client, monkeypatc
     run.close()
     mine = [kwargs for path, kwargs in calls if path.endswith(f"{run.run_id}.zarr")]
     with_slices = [kwargs for kwargs in mine if kwargs.get("slice_rows")]
-    assert len(with_slices) == 3, f"expected one commit per slice, got {len(with_slices)} of {len(mine)} commits"
+    # Write-behind may put several slices in one commit; never a slice without its surfaces.
+    assert 1 <= len(with_slices) <= 3
+    assert sum(len(kwargs["slice_rows"]) for kwargs in with_slices) == 3
     for kwargs in with_slices:
-        (slice_row,) = kwargs["slice_rows"]
         surface_rows = [row for rows in kwargs["surface_rows"].values() for row in rows]
         assert surface_rows, "the slice's surface rows are not in its commit"
-        assert {int(row["iteration"]) for row in surface_rows} == {int(slice_row["iteration"])}
+        assert ({int(row["iteration"]) for row in surface_rows}
+                == {int(row["iteration"]) for row in kwargs["slice_rows"]})
     # The other commits (opening the run, its state events) carry no surface row of their own.
     others = [kwargs for kwargs in mine if not kwargs.get("slice_rows")]
     assert others and all(not kwargs.get("surface_rows") for kwargs in others)

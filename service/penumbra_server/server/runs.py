@@ -7,7 +7,9 @@ The order of one run's events is the order of its commits: a per-run committer t
 pending emission (run_events.py), assigns consecutive sequence numbers, writes their rows in one
 archive commit on the archive thread, and only then appends the events to the log (an event is
 announced as archived only after it is written). A processed slice hands all its events (surfaces,
-tracking notices, slice_processed) to the committer at once: one archive commit per slice. The run is made and restored by
+tracking notices, slice_processed) to the committer at once: one archive commit per slice; the
+processor records the outcomes in the decision state (surface states, steering) at once and
+goes on to the next slice while the commit is written (write-behind, a bounded lag). The run is made and restored by
 run_manager.py and restore.py; slices in parts and link records hang off it (parts.py,
 link_records.py).
 """
@@ -47,6 +49,17 @@ from .surface_state import SurfaceState, record_outcome
 __all__ = ["RunRecord", "QueuedSlice", "ManagerOptions"]
 
 log = logging.getLogger("penumbra.server")
+
+
+#: Processed slices whose commit may still be pending while the next slice is processed.
+_COMMITS_BEHIND = 2
+
+
+def _retrieve(future: asyncio.Future) -> None:
+    """Mark a write-behind commit's outcome as seen (a failure is already logged and kept in
+    the run's failed_reason by the committer)."""
+    if not future.cancelled():
+        future.exception()
 
 
 @dataclass(frozen=True)
@@ -142,6 +155,8 @@ class RunRecord:
         self._closing = False
         self._closed = asyncio.Event()
         self._pending: list[Emission] = []
+        #: Commits of processed slices not yet written (write-behind), oldest first.
+        self._behind: deque[asyncio.Future] = deque()
         self._pending_changed = asyncio.Event()
         self._committer_task = asyncio.create_task(self._committer(), name=f"{run_id}-committer")
         self._processor_task = asyncio.create_task(self._processor(), name=f"{run_id}-processor")
@@ -312,7 +327,15 @@ class RunRecord:
             self._submit(unit)
         for notice in notices:
             self._submit(notice_emission(self, item, notice))
-        await self._emit(slice_emission(self, item, attempted=len(searched), found=found, started=started))
+        # Write-behind: the next slice's plan needs only the decision state (updated above), so
+        # the processor goes on while this commit is written; its events are announced after it,
+        # in order. At most _COMMITS_BEHIND slices wait for their commit (bounded memory).
+        done = self._submit(slice_emission(self, item, attempted=len(searched), found=found, started=started)).done
+        done.add_done_callback(_retrieve)
+        self._behind.append(done)
+        while len(self._behind) > _COMMITS_BEHIND or (self._behind and self._behind[0].done()):
+            oldest = self._behind.popleft()
+            await asyncio.wait([oldest])
         for observer in self.slice_observers:
             try:
                 observer(self, item, list(outcomes))

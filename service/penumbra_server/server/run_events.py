@@ -10,6 +10,7 @@ the committer and the queue are :class:`~penumbra_server.server.runs.RunRecord`'
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Callable, Mapping, Sequence
 
@@ -22,12 +23,12 @@ from . import _convert as convert
 from ._tracking_convert import Notice, encode_wire
 from .jobs import SurfaceOutcome
 from .scheduler import SurfacePlan
-from .surface_state import record_outcome
+from .surface_state import SurfaceState
 
 if TYPE_CHECKING:
     from .runs import QueuedSlice, RunRecord
 
-__all__ = ["Committed", "Emission", "STATE_NAMES", "STATE_VALUES", "surface_emission", "notice_emission",
+__all__ = ["AnnouncedSurface", "announced_view", "Committed", "Emission", "STATE_NAMES", "STATE_VALUES", "surface_emission", "notice_emission",
            "parts_missing_emission", "slice_emission", "skip_emission", "state_emission", "event_row"]
 
 STATE_NAMES = {pb.Run.STATE_OPEN: "open", pb.Run.STATE_CLOSED: "closed"}
@@ -53,6 +54,23 @@ class Committed:
     group_rows: Mapping[str, Sequence[dict]] = field(default_factory=dict)
 
 
+@dataclass(frozen=True)
+class AnnouncedSurface:
+    """What GetLatestSurfaces shows of one surface (fields as in :class:`SurfaceState`)."""
+
+    latest_found: object | None
+    latest_attempt_found: bool
+    latest_attempt_iteration: int
+    latest_attempt_message: str
+    consecutive_misses: int
+
+
+def announced_view(state: SurfaceState) -> AnnouncedSurface:
+    """``state``'s GetLatestSurfaces fields now."""
+    return AnnouncedSurface(state.latest_found, state.latest_attempt_found, state.latest_attempt_iteration,
+                            state.latest_attempt_message, state.consecutive_misses)
+
+
 @dataclass(eq=False)
 class Emission:
     """One event to commit (module docstring)."""
@@ -69,9 +87,11 @@ def event_row(seq: int, now: float, event: pb.RunEvent, kind: str, label: str, m
 
 
 def surface_emission(run: "RunRecord", item: "QueuedSlice", outcome: SurfaceOutcome,
-                     plan: SurfacePlan | None = None) -> Emission:
-    """surface_found / surface_not_found with its surface row; committed, it is recorded in the
-    surface's state (surface_state.record_outcome)."""
+                     plan: SurfacePlan | None = None, *, view: AnnouncedSurface) -> Emission:
+    """surface_found / surface_not_found with its surface row. The outcome is already recorded
+    in the surface's state (surface_state.record_outcome); ``view`` is that state's
+    GetLatestSurfaces fields after it, shown once the commit is written (with the found
+    surface's wire message)."""
     slice_ = item.slice_
 
     def build(seq: int, now: float) -> Committed:
@@ -92,9 +112,9 @@ def surface_emission(run: "RunRecord", item: "QueuedSlice", outcome: SurfaceOutc
         return Committed(event, surface_rows={label: [row]})
 
     def apply(event: pb.RunEvent) -> None:
-        message = event.surface_found.surface if outcome.found else None
-        record_outcome(run.states[outcome.label], outcome, time=slice_.time, iteration=slice_.iteration,
-                       message=message)
+        previous = run.announced.get(outcome.label)
+        found = event.surface_found.surface if outcome.found else (previous.latest_found if previous else None)
+        run.announced[outcome.label] = dataclasses.replace(view, latest_found=found)
 
     return Emission(build, apply)
 

@@ -6,7 +6,10 @@ Everything on the event loop thread except the archive writes (one worker thread
 The order of one run's events is the order of its commits: a per-run committer takes every
 pending emission (run_events.py), assigns consecutive sequence numbers, writes their rows in one
 archive commit on the archive thread, and only then appends the events to the log (an event is
-announced as archived only after it is written). The run is made and restored by
+announced as archived only after it is written). A processed slice hands all its events (surfaces,
+tracking notices, slice_processed) to the committer at once: one archive commit per slice; the
+processor records the outcomes in the decision state (surface states, steering) at once and
+goes on to the next slice while the commit is written (write-behind, a bounded lag). The run is made and restored by
 run_manager.py and restore.py; slices in parts and link records hang off it (parts.py,
 link_records.py).
 """
@@ -36,16 +39,27 @@ from .executors import FinderExecutor
 from .jobs import SurfaceOutcome
 from .link_records import LinkRecords
 from .parts import PartAssembly
-from .run_events import (Committed, Emission, notice_emission, parts_missing_emission, skip_emission, slice_emission,
+from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, notice_emission, parts_missing_emission, skip_emission, slice_emission,
                          state_emission, surface_emission)
 from .scheduler import SurfacePlan, SurfacePlanner
 from .search import search_plan
 from .steering import RunSteering
-from .surface_state import SurfaceState
+from .surface_state import SurfaceState, record_outcome
 
 __all__ = ["RunRecord", "QueuedSlice", "ManagerOptions"]
 
 log = logging.getLogger("penumbra.server")
+
+
+#: Processed slices whose commit may still be pending while the next slice is processed.
+_COMMITS_BEHIND = 2
+
+
+def _retrieve(future: asyncio.Future) -> None:
+    """Mark a write-behind commit's outcome as seen (a failure is already logged and kept in
+    the run's failed_reason by the committer)."""
+    if not future.cancelled():
+        future.exception()
 
 
 @dataclass(frozen=True)
@@ -97,6 +111,10 @@ class RunRecord:
         self.planner = planner
         #: What the run knows about each surface (surface_state.py), shared with the steering.
         self.states: dict[str, SurfaceState] = {}
+        #: What GetLatestSurfaces shows of each surface: its state as of the last archived
+        #: commit (the states above run ahead while a slice's commit is pending). A label
+        #: absent here has nothing unarchived: its state is shown.
+        self.announced: dict[str, AnnouncedSurface] = {}
         #: The surfaces of the archive, in order: the expected bodies, then those planners added.
         self.surface_labels: list[str] = list(settings.labels)
         #: Tracks, forecasts, common-horizon watch, guidance and windows (steering.py).
@@ -137,6 +155,8 @@ class RunRecord:
         self._closing = False
         self._closed = asyncio.Event()
         self._pending: list[Emission] = []
+        #: Commits of processed slices not yet written (write-behind), oldest first.
+        self._behind: deque[asyncio.Future] = deque()
         self._pending_changed = asyncio.Event()
         self._committer_task = asyncio.create_task(self._committer(), name=f"{run_id}-committer")
         self._processor_task = asyncio.create_task(self._processor(), name=f"{run_id}-processor")
@@ -174,16 +194,16 @@ class RunRecord:
     def latest_surfaces(self) -> pb.GetLatestSurfacesResponse:
         response = pb.GetLatestSurfacesResponse(last_event_seq=self.log.last_seq)
         for label in self.surface_labels:
-            track = self.states[label]
+            view = self.announced.get(label) or announced_view(self.states[label])
             entry = response.surfaces.add(
                 label=label,
-                latest_attempt_found=track.latest_attempt_found,
-                latest_attempt_iteration=track.latest_attempt_iteration,
-                latest_attempt_message=track.latest_attempt_message,
-                consecutive_misses=track.consecutive_misses,
+                latest_attempt_found=view.latest_attempt_found,
+                latest_attempt_iteration=view.latest_attempt_iteration,
+                latest_attempt_message=view.latest_attempt_message,
+                consecutive_misses=view.consecutive_misses,
             )
-            if track.latest_found is not None:
-                entry.latest_found.CopyFrom(track.latest_found)
+            if view.latest_found is not None:
+                entry.latest_found.CopyFrom(view.latest_found)
         return response
 
     def latest_guidance(self) -> pb.GetLatestGuidanceResponse:
@@ -284,6 +304,14 @@ class RunRecord:
                 self.surface_labels.append(plan.label)
                 self.states.setdefault(plan.label, SurfaceState(plan.label))
         outcomes = list(await asyncio.gather(*(self._attempt(plan, item) for plan in plans)))
+        # The decision state (what the next plan and the steering see) takes the outcomes now;
+        # what GetLatestSurfaces shows moves only when the slice's commit is written.
+        surface_units = []
+        for plan, outcome in zip(plans, outcomes):
+            state = self.states[outcome.label]
+            self.announced.setdefault(outcome.label, announced_view(state))
+            record_outcome(state, outcome, time=item.slice_.time, iteration=item.iteration)
+            surface_units.append(surface_emission(self, item, outcome, plan, view=announced_view(state)))
         searched = [o for o, plan in zip(outcomes, plans) if plan.search]
         found = sum(1 for o in searched if o.found)
         try:
@@ -293,9 +321,21 @@ class RunRecord:
             log.exception("run %s: tracking iteration %d failed", self.run_id, item.iteration)
             text = f"tracking and guidance not updated for iteration {item.iteration}: {type(exc).__name__}: {exc}"
             notices = [warning_notice(pb.RunWarning.KIND_TRACKING, "", text)]
+        # Every row of the slice goes to the committer at once (no await in between): one
+        # archive commit per slice, its events announced together after it is written.
+        for unit in surface_units:
+            self._submit(unit)
         for notice in notices:
             self._submit(notice_emission(self, item, notice))
-        await self._emit(slice_emission(self, item, attempted=len(searched), found=found, started=started))
+        # Write-behind: the next slice's plan needs only the decision state (updated above), so
+        # the processor goes on while this commit is written; its events are announced after it,
+        # in order. At most _COMMITS_BEHIND slices wait for their commit (bounded memory).
+        done = self._submit(slice_emission(self, item, attempted=len(searched), found=found, started=started)).done
+        done.add_done_callback(_retrieve)
+        self._behind.append(done)
+        while len(self._behind) > _COMMITS_BEHIND or (self._behind and self._behind[0].done()):
+            oldest = self._behind.popleft()
+            await asyncio.wait([oldest])
         for observer in self.slice_observers:
             try:
                 observer(self, item, list(outcomes))
@@ -303,10 +343,8 @@ class RunRecord:
                 log.exception("run %s: slice observer failed", self.run_id)
 
     async def _attempt(self, plan: SurfacePlan, item: QueuedSlice) -> SurfaceOutcome:
-        outcome = await search_plan(plan, item.slice_, executor=self.executor, settings=self.settings,
-                                    interpolation_order=self.options.interpolation_order)
-        await self._emit(surface_emission(self, item, outcome, plan))
-        return outcome
+        return await search_plan(plan, item.slice_, executor=self.executor, settings=self.settings,
+                                 interpolation_order=self.options.interpolation_order)
 
     # -- commits ----------------------------------------------------------------------------------
 

@@ -203,8 +203,8 @@ class RunSteering:
     def observe(self, slice_: Slice, plans: Sequence, outcomes: Sequence[SurfaceOutcome]) -> list[Notice]:
         """Decide after one processed slice; return its events and archive rows.
 
-        The outcomes are already recorded in the surface states (the run records each when its
-        event is committed: surface_state.record_outcome). Safe to run on a worker thread (it
+        The outcomes are already recorded in the surface states (the run records each as its
+        find returns: surface_state.record_outcome). Safe to run on a worker thread (it
         touches only this object, the run's states of its tracked surfaces and the slice).
         """
         t, it = float(slice_.time), int(slice_.iteration)

@@ -2,8 +2,8 @@
 
 One :class:`SurfaceState` per surface label of a run (the expected bodies, the common surface of
 a pair, and any surface a custom planner adds). The run records every attempt's outcome with
-:func:`record_outcome` when its event is committed (and again from the archive after a
-restart); the planners read the state, and the run's steering
+:func:`record_outcome` as soon as the find returns, before the slice's commit (and again
+from the archive after a restart; GetLatestSurfaces shows the run's archived view instead); the planners read the state, and the run's steering
 (:class:`~penumbra_server.server.steering.RunSteering`) keeps its own decisions in it (window
 growth, retirement, the puncture track).
 

@@ -133,6 +133,8 @@ class SurfaceReport:
     (M), ``killing_quality`` (lowest AKV eigenvalue lambda R^2, 0 for an exact Killing field),
     circumferences about the spin axis (M) and their ratio polar / equatorial;
     ``mass_multipoles`` / ``spin_multipoles`` M_n / M^(n+1), J_n / M^(n+1), index n = 0..4.
+    ``<name>_error`` (same unit as ``<name>``): error estimates of area, irreducible_mass,
+    akv_christodoulou_mass, akv_angular_momentum, dimensionless_spin (NaN: not estimated).
     ``angular_momentum`` is the older coordinate-rotation estimate (3-vector, M^2).
     ``coefficients`` are real spherical-harmonic coefficients of the radius, index l*l + l + m.
     """
@@ -171,6 +173,11 @@ class SurfaceReport:
     spin_circumference_ratio: float = NAN
     mass_multipoles: np.ndarray = field(default_factory=lambda: np.zeros(0))
     spin_multipoles: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    area_error: float = NAN
+    irreducible_mass_error: float = NAN
+    akv_christodoulou_mass_error: float = NAN
+    akv_angular_momentum_error: float = NAN
+    dimensionless_spin_error: float = NAN
     iterations: int = 0
     wall_time_s: float = NAN
     latency_s: float = NAN
@@ -197,6 +204,10 @@ class SurfaceReport:
             spin_circumference_ratio=q.spin_circumference_ratio,
             mass_multipoles=np.asarray(q.mass_multipoles, dtype=float),
             spin_multipoles=np.asarray(q.spin_multipoles, dtype=float),
+            area_error=q.area_error_m2, irreducible_mass_error=q.irreducible_mass_error_m,
+            akv_christodoulou_mass_error=q.akv_christodoulou_mass_error_m,
+            akv_angular_momentum_error=q.akv_angular_momentum_error_m2,
+            dimensionless_spin_error=q.dimensionless_spin_error,
             iterations=s.iterations, wall_time_s=s.wall_time_s, latency_s=s.latency_s, method=s.method,
         )
 

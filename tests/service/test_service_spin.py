@@ -83,6 +83,16 @@ def test_kerr_spin_is_reported_and_archived(client, archive_root):
     # The coordinate-rotation estimate is kept.
     assert np.all(np.isfinite(s.angular_momentum))
 
+    # Error bars (numerics/error_bars.py): finite, positive, and covering the true error.
+    errors = {"akv_angular_momentum": SPIN_A * MASS, "dimensionless_spin": SPIN_A / MASS,
+              "akv_christodoulou_mass": MASS, "area": 8 * np.pi * MASS * R_PLUS,
+              "irreducible_mass": np.sqrt(MASS * R_PLUS / 2)}  # docs/references.md item 3
+    for name, exact in errors.items():
+        value, error = getattr(s, name), getattr(s, f"{name}_error")
+        print(f"{name}: {value:.8f} +- {error:.2e} (true error {abs(value - exact):.2e})")
+        assert 0 < error < 1e-2 * abs(exact), name
+        assert abs(value - exact) <= error, name
+
     # The archive holds the same numbers.
     view = open_archive(archive_root, run.run_id)
     rows = view.surface("A")
@@ -93,3 +103,5 @@ def test_kerr_spin_is_reported_and_archived(client, archive_root):
     assert np.array_equal(rows["spin_direction"][i], s.spin_direction)
     assert np.array_equal(rows["mass_multipoles"][i], s.mass_multipoles)
     assert np.array_equal(rows["spin_multipoles"][i], s.spin_multipoles)
+    for name in errors:
+        assert rows[f"{name}_error"][i] == getattr(s, f"{name}_error"), name

@@ -56,6 +56,11 @@ SPIN_SCALARS = {
     "spin_equatorial_circumference": "spin_equatorial_circumference_m",
     "spin_polar_circumference": "spin_polar_circumference_m",
     "spin_circumference_ratio": "spin_circumference_ratio",
+    "area_error": "area_error_m2",
+    "irreducible_mass_error": "irreducible_mass_error_m",
+    "akv_christodoulou_mass_error": "akv_christodoulou_mass_error_m",
+    "akv_angular_momentum_error": "akv_angular_momentum_error_m2",
+    "dimensionless_spin_error": "dimensionless_spin_error",
 }
 #: Multipoles carried, index n = 0 .. MULTIPOLE_COUNT - 1.
 MULTIPOLE_COUNT = 5

@@ -219,6 +219,32 @@ def _spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str
     return out, notes
 
 
+#: Quantity with an error bar (worker dict / archive name) -> QuotedHorizon attribute.
+ERROR_BAR_SOURCES = {
+    "area": "area",
+    "irreducible_mass": "irreducible_mass",
+    "akv_christodoulou_mass": "christodoulou_mass",
+    "akv_angular_momentum": "angular_momentum",
+    "dimensionless_spin": "dimensionless_spin",
+}
+
+
+def _error_bars(surface: Surface, data: Slice, order: int) -> tuple[dict, list[str]]:
+    """``<name>_error`` for the quantities of :data:`ERROR_BAR_SOURCES` (same units as the value),
+    from :func:`numerics.error_bars.quote_horizon` on the cropped slice; NaN and a note when it
+    cannot be estimated (e.g. l_max < 3)."""
+    from ..numerics.error_bars import quote_horizon
+
+    out = {f"{name}_error": _NAN for name in ERROR_BAR_SOURCES}
+    try:
+        quoted = quote_horizon(surface, data, order=order, n_max=MULTIPOLE_N_MAX)
+    except Exception as exc:  # an error bar that cannot be made must not lose the surface
+        return out, [f"error bars not estimated: {type(exc).__name__}: {exc}"]
+    for name, attribute in ERROR_BAR_SOURCES.items():
+        out[f"{name}_error"] = float(getattr(quoted, attribute).error)
+    return out, []
+
+
 def run_surface_job(job: SurfaceJob) -> SurfaceOutcome:
     """Look for one surface: the seed first, then scan candidates; measure what converges.
 
@@ -281,6 +307,9 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
                 message = f"{result.message}; not measured: {exc}"
             spin_quantities, notes = _spin_quantities(surface, measured_in, job.interpolation_order)
             quantities.update(spin_quantities)
+            errors, error_notes = _error_bars(surface, job.data, job.interpolation_order)
+            quantities.update(errors)
+            notes.extend(error_notes)
             if notes:
                 message = "; ".join([message, *notes])
             return SurfaceOutcome(

@@ -128,6 +128,14 @@ class SurfaceReport:
     """One attempt on a surface: found (with its shape and quantities) or not (with a reason).
 
     Lengths in M, area in M^2, residual in 1/M; NaN where not found or not measured.
+    Spin from the approximate Killing vector: ``akv_angular_momentum`` J (M^2) about the unit
+    vector ``spin_direction``, ``dimensionless_spin`` chi = J / M_chr^2, ``akv_christodoulou_mass``
+    (M), ``killing_quality`` (lowest AKV eigenvalue lambda R^2, 0 for an exact Killing field),
+    circumferences about the spin axis (M) and their ratio polar / equatorial;
+    ``mass_multipoles`` / ``spin_multipoles`` M_n / M^(n+1), J_n / M^(n+1), index n = 0..4.
+    ``<name>_error`` (same unit as ``<name>``): error estimates of area, irreducible_mass,
+    akv_christodoulou_mass, akv_angular_momentum, dimensionless_spin (NaN: not estimated).
+    ``angular_momentum`` is the older coordinate-rotation estimate (3-vector, M^2).
     ``coefficients`` are real spherical-harmonic coefficients of the radius, index l*l + l + m.
     """
 
@@ -155,6 +163,21 @@ class SurfaceReport:
     residual_max_between_nodes: float = NAN
     angular_momentum: np.ndarray = field(default_factory=lambda: np.full(3, NAN))
     christodoulou_mass: float = NAN
+    akv_angular_momentum: float = NAN
+    spin_direction: np.ndarray = field(default_factory=lambda: np.full(3, NAN))
+    dimensionless_spin: float = NAN
+    akv_christodoulou_mass: float = NAN
+    killing_quality: float = NAN
+    spin_equatorial_circumference: float = NAN
+    spin_polar_circumference: float = NAN
+    spin_circumference_ratio: float = NAN
+    mass_multipoles: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    spin_multipoles: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    area_error: float = NAN
+    irreducible_mass_error: float = NAN
+    akv_christodoulou_mass_error: float = NAN
+    akv_angular_momentum_error: float = NAN
+    dimensionless_spin_error: float = NAN
     iterations: int = 0
     wall_time_s: float = NAN
     latency_s: float = NAN
@@ -173,6 +196,18 @@ class SurfaceReport:
             resolution_indicator=q.resolution_indicator, residual_max=s.residual_max_per_m,
             residual_max_between_nodes=s.residual_max_between_nodes_per_m,
             angular_momentum=triple(q.angular_momentum_m2), christodoulou_mass=q.christodoulou_mass_m,
+            akv_angular_momentum=q.akv_angular_momentum_m2,
+            spin_direction=triple(q.spin_direction) if q.HasField("spin_direction") else np.full(3, NAN),
+            dimensionless_spin=q.dimensionless_spin, akv_christodoulou_mass=q.akv_christodoulou_mass_m,
+            killing_quality=q.killing_quality, spin_equatorial_circumference=q.spin_equatorial_circumference_m,
+            spin_polar_circumference=q.spin_polar_circumference_m,
+            spin_circumference_ratio=q.spin_circumference_ratio,
+            mass_multipoles=np.asarray(q.mass_multipoles, dtype=float),
+            spin_multipoles=np.asarray(q.spin_multipoles, dtype=float),
+            area_error=q.area_error_m2, irreducible_mass_error=q.irreducible_mass_error_m,
+            akv_christodoulou_mass_error=q.akv_christodoulou_mass_error_m,
+            akv_angular_momentum_error=q.akv_angular_momentum_error_m2,
+            dimensionless_spin_error=q.dimensionless_spin_error,
             iterations=s.iterations, wall_time_s=s.wall_time_s, latency_s=s.latency_s, method=s.method,
         )
 

@@ -243,3 +243,23 @@ def test_watch_once_on_a_finished_demo_run_shows_the_merger_and_the_remnant_guid
     body = guidance.body("common")
     row = next(l for l in frame.splitlines() if l.strip().startswith("common ") and l.rstrip().endswith("remnant"))
     assert f"{body.finest_radius:.4f}" in row and f"{body.finest_spacing:.5f}" in row
+
+
+def test_frame_shows_spin_and_masses_with_error_bars():
+    spec = ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),), name="spin")
+    info = ps.RunInfo(run_id="run-bbbbbbbbbbbb", name="spin", state="open", spec=spec, created_unix_s=0.0,
+                      closed_unix_s=math.nan, slices_received=1, slices_processed=1, slices_skipped=0,
+                      slices_duplicate=0, last_seq=3, archive_path="", last_received_iteration=0,
+                      last_received_time=0.0)
+    report = ps.SurfaceReport(label="A", time=0.0, iteration=0, found=True, status=0, area=45.2393,
+                              irreducible_mass=0.948687, irreducible_mass_error=1.2e-4, area_error=1.14e-2,
+                              akv_christodoulou_mass=1.0000036, akv_christodoulou_mass_error=1.04e-4,
+                              dimensionless_spin=0.5999994, dimensionless_spin_error=1.11e-4,
+                              spin_direction=np.array([0.0, 0.6, 0.8]), centroid=np.zeros(3), residual_max=1e-9,
+                              latency_s=0.25)
+    frame = render_frame(info, {"A": ps.SurfaceState("A", report, True, 0, "found", 0)}, None, now_unix_s=0.0)
+    row = next(l for l in frame.splitlines() if l.startswith("A "))
+    assert "chi" in frame and "M_chr [M]" in frame and "spin axis" in frame
+    assert "45.23930 +-1.1e-02" in row and "0.94869 +-1.2e-04" in row
+    assert "1.00000 +-1.0e-04" in row and "0.6000 +-1.1e-04" in row
+    assert "(+0.00, +0.60, +0.80)" in row

@@ -104,8 +104,15 @@ def _vec(values, spec: str = "+.3f") -> str:
     return "(" + ", ".join(format(v, spec) for v in parts) + ")"
 
 
-COLUMNS = ("surface", "latest attempt", "found at t [M]", "area [M^2]", "M_irr [M]", "centre (x, y, z) [M]",
-           "|Theta|max [1/M]", "lag [M] / [s]")
+def _pm(value, error, spec: str) -> str:
+    """``value +-error`` (the error in 2 significant digits), or the value alone without an error."""
+    text = _num(value, spec)
+    err = _num(error, ".1e")
+    return text if text == "-" or err == "-" else f"{text} +-{err}"
+
+
+COLUMNS = ("surface", "latest attempt", "found at t [M]", "area [M^2]", "M_irr [M]", "M_chr [M]", "chi",
+           "spin axis", "centre (x, y, z) [M]", "|Theta|max [1/M]", "lag [M] / [s]")
 
 
 def surface_rows(states: Mapping[str, object], *, body_labels=(), newest_time: float = _NAN) -> list[list[str]]:
@@ -128,7 +135,7 @@ def surface_rows(states: Mapping[str, object], *, body_labels=(), newest_time: f
             misses = int(getattr(state, "consecutive_misses", 0))
             status = f"NOT FOUND (it {attempted}, {misses} miss{'es' if misses != 1 else ''})"
         if found is None:
-            rows.append([label, status, "-", "-", "-", "-", "-", "-"])
+            rows.append([label, status] + ["-"] * (len(COLUMNS) - 2))
             continue
         t = float(found.time)
         behind = newest_time - t if math.isfinite(newest_time) else _NAN
@@ -136,8 +143,12 @@ def surface_rows(states: Mapping[str, object], *, body_labels=(), newest_time: f
             label,
             status,
             f"{_num(t, '.3f')} (it {found.iteration})",
-            _num(found.area, ".5f"),
-            _num(found.irreducible_mass, ".5f"),
+            _pm(found.area, getattr(found, "area_error", _NAN), ".5f"),
+            _pm(found.irreducible_mass, getattr(found, "irreducible_mass_error", _NAN), ".5f"),
+            _pm(getattr(found, "akv_christodoulou_mass", _NAN), getattr(found, "akv_christodoulou_mass_error", _NAN),
+                ".5f"),
+            _pm(getattr(found, "dimensionless_spin", _NAN), getattr(found, "dimensionless_spin_error", _NAN), ".4f"),
+            _vec(getattr(found, "spin_direction", ()), "+.2f"),
             _vec(found.centroid),
             _num(found.residual_max, ".1e"),
             f"{_num(behind, '.3f')} / {_num(found.latency_s, '.2f')}",
@@ -230,7 +241,7 @@ def render_frame(info, states: Mapping[str, object], progress: RunProgress | Non
     ]
     rows = surface_rows(states, body_labels=body_labels, newest_time=evolution_time)
     if not rows:
-        rows = [[label, "waiting", "-", "-", "-", "-", "-", "-"] for label in body_labels]
+        rows = [[label, "waiting"] + ["-"] * (len(COLUMNS) - 2) for label in body_labels]
     lines.extend(_table(COLUMNS, rows))
     lines.append("")
     lines.append(_common_line(progress, states, body_labels))
@@ -246,6 +257,7 @@ def render_frame(info, states: Mapping[str, object], progress: RunProgress | Non
         lines.extend(progress.skips[-5:])
         lines.extend(progress.warnings[-3:])
     lines.append("")
+    lines.append("+-: error estimates (numerics/error_bars.py); M_chr, chi, spin axis: approximate-Killing-vector spin.")
     lines.append("lag: newest slice received minus the time the surface was last found [M] / "
                  "arrival-to-archived wall time [s]. Results and guidance are advisory.")
     # Names, labels and reasons come from the run's opener and the server: nothing in them may

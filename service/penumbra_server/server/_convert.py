@@ -47,6 +47,47 @@ def _triple(v: pb.Vector3) -> list[float]:
     return [v.x, v.y, v.z]
 
 
+#: Spin-related quantity names (worker dict and archive columns) -> SurfaceQuantities field, for scalars.
+SPIN_SCALARS = {
+    "akv_angular_momentum": "akv_angular_momentum_m2",
+    "dimensionless_spin": "dimensionless_spin",
+    "akv_christodoulou_mass": "akv_christodoulou_mass_m",
+    "killing_quality": "killing_quality",
+    "spin_equatorial_circumference": "spin_equatorial_circumference_m",
+    "spin_polar_circumference": "spin_polar_circumference_m",
+    "spin_circumference_ratio": "spin_circumference_ratio",
+    "area_error": "area_error_m2",
+    "irreducible_mass_error": "irreducible_mass_error_m",
+    "akv_christodoulou_mass_error": "akv_christodoulou_mass_error_m",
+    "akv_angular_momentum_error": "akv_angular_momentum_error_m2",
+    "dimensionless_spin_error": "dimensionless_spin_error",
+}
+#: Multipoles carried, index n = 0 .. MULTIPOLE_COUNT - 1.
+MULTIPOLE_COUNT = 5
+
+
+def spin_fields(get) -> dict:
+    """SurfaceQuantities keyword arguments of the spin quantities; ``get(name, default)`` reads a
+    worker dict or an archive row (older archives lack these columns: NaN)."""
+    fields = {wire: float(get(name, _NAN)) for name, wire in SPIN_SCALARS.items()}
+    fields["spin_direction"] = vector(get("spin_direction", [_NAN] * 3))
+    for name in ("mass_multipoles", "spin_multipoles"):
+        fields[name] = [float(v) for v in get(name, [_NAN] * MULTIPOLE_COUNT)]
+    return fields
+
+
+def spin_row(q: pb.SurfaceQuantities) -> dict:
+    """Archive row values of the spin quantities of a SurfaceQuantities message."""
+    row = {name: getattr(q, wire) for name, wire in SPIN_SCALARS.items()}
+    row["spin_direction"] = _triple(q.spin_direction) if q.HasField("spin_direction") else np.full(3, _NAN)
+    for name in ("mass_multipoles", "spin_multipoles"):
+        values = np.full(MULTIPOLE_COUNT, _NAN)
+        got = np.asarray(getattr(q, name), dtype=float)[:MULTIPOLE_COUNT]
+        values[: got.size] = got
+        row[name] = values
+    return row
+
+
 def surface_result_from_outcome(outcome: SurfaceOutcome, *, time_m: float, iteration: int, latency_s: float) -> pb.SurfaceResult:
     q = outcome.quantities
     centroid = q.get("centroid", [_NAN] * 3)
@@ -70,6 +111,7 @@ def surface_result_from_outcome(outcome: SurfaceOutcome, *, time_m: float, itera
             resolution_indicator=q.get("resolution_indicator", _NAN),
             angular_momentum_m2=vector(q.get("angular_momentum", [_NAN] * 3)),
             christodoulou_mass_m=q.get("christodoulou_mass", _NAN),
+            **spin_fields(lambda name, default: q.get(name, default)),
         ),
         residual_max_per_m=outcome.residual_max,
         residual_max_between_nodes_per_m=outcome.residual_max_between_nodes,
@@ -109,6 +151,7 @@ def surface_row(event: pb.RunEvent, archived_unix_s: float) -> tuple[str, dict]:
             circumference_xy=q.circumference_xy_m, circumference_xz=q.circumference_xz_m,
             circumference_yz=q.circumference_yz_m, resolution_indicator=q.resolution_indicator,
             angular_momentum=_triple(q.angular_momentum_m2), christodoulou_mass=q.christodoulou_mass_m,
+            **spin_row(q),
             residual_max=s.residual_max_per_m, residual_max_between_nodes=s.residual_max_between_nodes_per_m,
             iterations=s.iterations, wall_time_s=s.wall_time_s,
             latency_s=s.latency_s, method=METHOD_CODES.get(s.method, -1),
@@ -175,6 +218,7 @@ def surface_event_from_row(run_id: str, label: str, row: dict, lmax: int) -> pb.
                     resolution_indicator=float(row["resolution_indicator"]),
                     angular_momentum_m2=vector(_row_value(row, "angular_momentum", [_NAN] * 3)),
                     christodoulou_mass_m=float(_row_value(row, "christodoulou_mass", _NAN)),
+                    **spin_fields(lambda name, default: _row_value(row, name, default)),
                 ),
                 residual_max_per_m=float(row["residual_max"]),
                 residual_max_between_nodes_per_m=float(_row_value(row, "residual_max_between_nodes", _NAN)),

@@ -166,6 +166,85 @@ def _quantities_dict(q) -> dict:
     }
 
 
+#: Highest multipole order reported (index n = 0 .. MULTIPOLE_N_MAX on the wire and in the archive).
+MULTIPOLE_N_MAX = 4
+
+_NAN = float("nan")
+
+
+def _spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str]]:
+    """AKV spin, circumferences about the spin axis and multipoles of a found surface.
+
+    Each part is guarded on its own: a failure leaves its quantities NaN and adds a note, so a
+    surface the finder converged to is never lost to a measurement of what a practitioner quotes.
+    Units as in SurfaceQuantities (J in M^2, masses and lengths in M, the rest dimensionless).
+    """
+    from ..numerics.circumferences import axis_circumferences
+    from ..numerics.killing import horizon_spin
+    from ..numerics.multipoles import horizon_multipoles
+
+    out: dict = {
+        "akv_angular_momentum": _NAN, "spin_direction": [_NAN] * 3, "dimensionless_spin": _NAN,
+        "akv_christodoulou_mass": _NAN, "killing_quality": _NAN,
+        "spin_equatorial_circumference": _NAN, "spin_polar_circumference": _NAN,
+        "spin_circumference_ratio": _NAN,
+        "mass_multipoles": [_NAN] * (MULTIPOLE_N_MAX + 1), "spin_multipoles": [_NAN] * (MULTIPOLE_N_MAX + 1),
+    }
+    notes: list[str] = []
+    try:
+        spin = horizon_spin(surface, data, order=order)
+    except Exception as exc:  # numerics raise ValueError/LinAlgError; either way the surface stays
+        notes.append(f"spin not measured: {type(exc).__name__}: {exc}")
+        return out, notes
+    out.update(
+        akv_angular_momentum=float(spin.angular_momentum),
+        spin_direction=[float(v) for v in spin.direction],
+        dimensionless_spin=float(spin.dimensionless_spin),
+        akv_christodoulou_mass=float(spin.christodoulou_mass),
+        killing_quality=float(spin.killing_eigenvalues[0]),
+    )
+    try:
+        circ = axis_circumferences(surface, data, spin.direction, spin.centroid, order=order)
+        polar = float(np.mean(circ.polar))
+        out.update(spin_equatorial_circumference=float(circ.equatorial), spin_polar_circumference=polar,
+                   spin_circumference_ratio=float(circ.ratio))
+    except Exception as exc:
+        notes.append(f"spin-axis circumferences not measured: {type(exc).__name__}: {exc}")
+    try:
+        moments = horizon_multipoles(surface, data, n_max=MULTIPOLE_N_MAX, spin=spin, order=order)
+        out.update(mass_multipoles=[float(v) for v in moments.mass_moments_dimensionless[: MULTIPOLE_N_MAX + 1]],
+                   spin_multipoles=[float(v) for v in moments.spin_moments_dimensionless[: MULTIPOLE_N_MAX + 1]])
+    except Exception as exc:
+        notes.append(f"multipoles not measured: {type(exc).__name__}: {exc}")
+    return out, notes
+
+
+#: Quantity with an error bar (worker dict / archive name) -> QuotedHorizon attribute.
+ERROR_BAR_SOURCES = {
+    "area": "area",
+    "irreducible_mass": "irreducible_mass",
+    "akv_christodoulou_mass": "christodoulou_mass",
+    "akv_angular_momentum": "angular_momentum",
+    "dimensionless_spin": "dimensionless_spin",
+}
+
+
+def _error_bars(surface: Surface, data: Slice, order: int) -> tuple[dict, list[str]]:
+    """``<name>_error`` for the quantities of :data:`ERROR_BAR_SOURCES` (same units as the value),
+    from :func:`numerics.error_bars.quote_horizon` on the cropped slice; NaN and a note when it
+    cannot be estimated (e.g. l_max < 3)."""
+    from ..numerics.error_bars import quote_horizon
+
+    out = {f"{name}_error": _NAN for name in ERROR_BAR_SOURCES}
+    try:
+        quoted = quote_horizon(surface, data, order=order, n_max=MULTIPOLE_N_MAX)
+    except Exception as exc:  # an error bar that cannot be made must not lose the surface
+        return out, [f"error bars not estimated: {type(exc).__name__}: {exc}"]
+    for name, attribute in ERROR_BAR_SOURCES.items():
+        out[f"{name}_error"] = float(getattr(quoted, attribute).error)
+    return out, []
+
+
 def run_surface_job(job: SurfaceJob) -> SurfaceOutcome:
     """Look for one surface: the seed first, then scan candidates; measure what converges.
 
@@ -218,14 +297,21 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
         last = (kind, result)
         if result.success:
             surface = result.surface
+            # The find's prepared grid nodes serve the measurement too (numerics.measures).
+            measured_in = result.geometry if result.geometry is not None else job.data
             try:
-                # The find's prepared grid nodes serve the measurement too (numerics.measures).
-                measured_in = result.geometry if result.geometry is not None else job.data
                 quantities = _quantities_dict(measure_surface(surface, measured_in, order=job.interpolation_order))
                 message = result.message
             except ValueError as exc:
                 quantities = {}
                 message = f"{result.message}; not measured: {exc}"
+            spin_quantities, notes = _spin_quantities(surface, measured_in, job.interpolation_order)
+            quantities.update(spin_quantities)
+            errors, error_notes = _error_bars(surface, job.data, job.interpolation_order)
+            quantities.update(errors)
+            notes.extend(error_notes)
+            if notes:
+                message = "; ".join([message, *notes])
             return SurfaceOutcome(
                 label=job.label,
                 found=True,

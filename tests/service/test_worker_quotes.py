@@ -1,0 +1,33 @@
+"""The worker's measurement of what a practitioner quotes never loses a found surface: a part that
+cannot be measured leaves NaN and a note (server/jobs.py)."""
+
+from __future__ import annotations
+
+import math
+
+from penumbra_server.numerics.spacetimes import KerrKerrSchild
+from penumbra_server.numerics.surfaces import Surface
+from penumbra_server.server import jobs
+
+
+def test_unmeasurable_parts_leave_nan_and_a_note():
+    kerr = KerrKerrSchild(mass=1.0, spin=0.6)
+    # l_max 0 cannot carry the AKV potential (horizon_spin needs l_max >= 1): all spin quantities NaN.
+    values, notes = jobs._spin_quantities(Surface.sphere((0.0, 0.0, 0.0), 1.85, 0), kerr, 4)
+    assert math.isnan(values["dimensionless_spin"]) and math.isnan(values["akv_angular_momentum"])
+    assert all(math.isnan(v) for v in values["mass_multipoles"])
+    assert len(notes) == 1 and notes[0].startswith("spin not measured: ValueError")
+    # Error bars need l_max >= 3 (compared with l_max - 2): NaN and a note.
+    errors, notes = jobs._error_bars(Surface.sphere((0.0, 0.0, 0.0), 1.85, 2), kerr, 4)
+    assert set(errors) == {f"{name}_error" for name in jobs.ERROR_BAR_SOURCES}
+    assert all(math.isnan(v) for v in errors.values())
+    assert len(notes) == 1 and "error bars not estimated" in notes[0] and "l_max >= 3" in notes[0]
+
+
+def test_measurable_parts_are_measured():
+    kerr = KerrKerrSchild(mass=1.0, spin=0.6)
+    # Exact data, a sphere near the horizon: every part measures (values finite, no note).
+    values, notes = jobs._spin_quantities(Surface.sphere((0.0, 0.0, 0.0), 1.85, 4), kerr, 4)
+    assert notes == []
+    assert all(math.isfinite(v) for k, v in values.items() if not isinstance(v, list))
+    assert len(values["mass_multipoles"]) == jobs.MULTIPOLE_N_MAX + 1

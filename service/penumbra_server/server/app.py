@@ -53,6 +53,13 @@ class ServerOptions:
     default_queue_depth: int = 4
     max_chunk_bytes: int = 4 * 1024 * 1024
     max_slice_bytes: int = 2 * 1024**3
+    #: Patches one slice header may declare (more: RESOURCE_EXHAUSTED, reason TOO_MANY_PATCHES).
+    max_patches_per_header: int = 4096
+    #: Field names one patch may declare (more: RESOURCE_EXHAUSTED, reason TOO_MANY_FIELDS).
+    max_fields_per_patch: int = 64
+    #: Seconds a SendSlice stream may stay silent before it is aborted (DEADLINE_EXCEEDED,
+    #: reason UPLOAD_IDLE); 0: no limit.
+    upload_idle_timeout_s: float = 300.0
     event_log_limit: int = 100_000
     subscriber_queue_size: int = 1024
     interpolation_order: int = SERVICE_INTERPOLATION_ORDER
@@ -185,7 +192,10 @@ async def create_server(
             ]
         )
         servicer = HorizonServicer(
-            manager, limits=IngestLimits(max_chunk_bytes=options.max_chunk_bytes, max_slice_bytes=options.max_slice_bytes)
+            manager, limits=IngestLimits(max_chunk_bytes=options.max_chunk_bytes, max_slice_bytes=options.max_slice_bytes,
+                                     max_patches_per_header=options.max_patches_per_header,
+                                     max_fields_per_patch=options.max_fields_per_patch),
+            upload_idle_timeout_s=options.upload_idle_timeout_s or None
         )
         pb_grpc.add_HorizonServiceServicer_to_server(servicer, grpc_server)
         health_servicer = health.aio.HealthServicer()

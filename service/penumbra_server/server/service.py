@@ -14,6 +14,7 @@ import logging
 import time
 
 import grpc
+from google.protobuf.message import DecodeError
 
 from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
@@ -28,6 +29,8 @@ from .runs import QueuedSlice
 __all__ = ["HorizonServicer"]
 
 log = logging.getLogger("penumbra.server")
+#: Field names a header may declare before its checks move off the event loop.
+_NAMES_CHECKED_ON_LOOP = 512
 
 
 def _translating_errors(method):
@@ -48,6 +51,32 @@ def _translating_errors(method):
                                 trailing_metadata=status_trailer(grpc.StatusCode.INTERNAL, message, "INTERNAL", ""))
 
     return wrapper
+
+
+async def _stream_messages(request_iterator, idle_timeout_s: float | None):
+    """The messages of a client stream; undecodable bytes become INVALID_ARGUMENT and a stream
+    silent for ``idle_timeout_s`` seconds DEADLINE_EXCEEDED (None: wait for ever)."""
+    iterator = request_iterator.__aiter__()
+    index = 0
+    while True:
+        try:
+            if idle_timeout_s is None:
+                message = await iterator.__anext__()
+            else:
+                message = await asyncio.wait_for(iterator.__anext__(), idle_timeout_s)
+        except StopAsyncIteration:
+            return
+        except DecodeError as exc:
+            raise ServiceError.invalid(
+                f"request: message {index} of the stream is not a valid {pb.SendSliceRequest.DESCRIPTOR.full_name} "
+                f"({exc})", reason="MALFORMED_MESSAGE") from None
+        except asyncio.TimeoutError:
+            raise ServiceError(
+                grpc.StatusCode.DEADLINE_EXCEEDED,
+                f"upload_idle_timeout_s: no message for {idle_timeout_s:g} s after message {index}; the server's "
+                f"limit is upload_idle_timeout_s = {idle_timeout_s:g}", reason="UPLOAD_IDLE") from None
+        index += 1
+        yield message
 
 
 def _page_token(offset: int) -> str:
@@ -71,9 +100,10 @@ def _page_offset(token: str) -> int:
 class HorizonServicer(pb_grpc.HorizonServiceServicer):
     """penumbra.v1.HorizonService on a :class:`RunManager`."""
 
-    def __init__(self, manager: RunManager, *, limits: IngestLimits) -> None:
+    def __init__(self, manager: RunManager, *, limits: IngestLimits, upload_idle_timeout_s: float | None = None) -> None:
         self.manager = manager
         self.limits = limits
+        self.upload_idle_timeout_s = upload_idle_timeout_s
 
     @_translating_errors
     async def OpenRun(self, request: pb.OpenRunRequest, context) -> pb.OpenRunResponse:
@@ -115,7 +145,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
         assembler: SliceAssembler | None = None
         run = None
         label = PartLabel(0, 1)
-        async for request in request_iterator:
+        async for request in _stream_messages(request_iterator, self.upload_idle_timeout_s):
             part = request.WhichOneof("part")
             if assembler is None:
                 if part != "header":
@@ -129,8 +159,14 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                 if not label.is_part and run.is_duplicate(header.iteration):
                     # Idempotent resend: answer at once, without reading the data again.
                     return run.duplicate_response(header.iteration, 0)
-                assembler = SliceAssembler(header, run.settings.variable_set, self.limits, allow_empty=label.is_part,
-                                           excised_spheres=run.settings.excised_spheres)
+                make = functools.partial(SliceAssembler, header, run.settings.variable_set, self.limits,
+                                         allow_empty=label.is_part, excised_spheres=run.settings.excised_spheres)
+                # Header checks are linear in the names declared; many names go to a thread so
+                # that the event loop keeps serving every other client meanwhile.
+                if sum(len(ph.field_names) for ph in header.patches) > _NAMES_CHECKED_ON_LOOP:
+                    assembler = await asyncio.to_thread(make)
+                else:
+                    assembler = make()
                 if run.parts.check(assembler.iteration, assembler.time, label):
                     return run.parts.duplicate_response(assembler.iteration, label)
             elif part == "chunk":

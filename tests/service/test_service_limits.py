@@ -164,3 +164,21 @@ def test_silent_upload_is_aborted_naming_the_idle_timeout(roomy_server):
             release.set()
     assert info.value.code() == grpc.StatusCode.DEADLINE_EXCEEDED, info.value.details()
     assert "upload_idle_timeout_s" in info.value.details()
+
+
+def test_slice_over_the_queued_bytes_budget_is_resource_exhausted_naming_the_budget(tmp_path):
+    """A budget smaller than one slice: the header is refused before any data is read."""
+    outgoing = lone_hole_slice(0)
+    options = ServerOptions(workers=1, max_queued_bytes=1024 * 1024)
+    with BackgroundServer("127.0.0.1:0", archive_root=tmp_path, workers=1, options=options) as bg:
+        with ps.connect(bg.address, deadline_s=30.0) as client:
+            run = client.open_run(lone_spec("budget"), cache_results=False)
+        requests = raw_requests(outgoing, run.run_id)
+        assert requests[0].header.total_bytes > options.max_queued_bytes
+        with grpc.insecure_channel(bg.address) as channel:
+            err = _refused(pb_grpc.HorizonServiceStub(channel), requests)
+            # The refused reservation was released: GetRun still works and nothing was queued.
+            info = pb_grpc.HorizonServiceStub(channel).GetRun(pb.GetRunRequest(run_id=run.run_id), timeout=30)
+    assert err.code() == grpc.StatusCode.RESOURCE_EXHAUSTED, err.details()
+    assert "max_queued_bytes" in err.details() and "header.total_bytes" in err.details()
+    assert info.run.slices_received == 0

@@ -60,6 +60,9 @@ class ServerOptions:
     #: Seconds a SendSlice stream may stay silent before it is aborted (DEADLINE_EXCEEDED,
     #: reason UPLOAD_IDLE); 0: no limit.
     upload_idle_timeout_s: float = 300.0
+    #: Server-wide budget of slice bytes queued in all runs plus those arriving (more:
+    #: RESOURCE_EXHAUSTED, reason QUEUED_BYTES_BUDGET); 0: no budget.
+    max_queued_bytes: int = 4 * 1024**3
     event_log_limit: int = 100_000
     subscriber_queue_size: int = 1024
     interpolation_order: int = SERVICE_INTERPOLATION_ORDER
@@ -195,7 +198,8 @@ async def create_server(
             manager, limits=IngestLimits(max_chunk_bytes=options.max_chunk_bytes, max_slice_bytes=options.max_slice_bytes,
                                      max_patches_per_header=options.max_patches_per_header,
                                      max_fields_per_patch=options.max_fields_per_patch),
-            upload_idle_timeout_s=options.upload_idle_timeout_s or None
+            upload_idle_timeout_s=options.upload_idle_timeout_s or None,
+            max_queued_bytes=options.max_queued_bytes or None,
         )
         pb_grpc.add_HorizonServiceServicer_to_server(servicer, grpc_server)
         health_servicer = health.aio.HealthServicer()

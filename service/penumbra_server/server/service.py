@@ -100,10 +100,30 @@ def _page_offset(token: str) -> int:
 class HorizonServicer(pb_grpc.HorizonServiceServicer):
     """penumbra.v1.HorizonService on a :class:`RunManager`."""
 
-    def __init__(self, manager: RunManager, *, limits: IngestLimits, upload_idle_timeout_s: float | None = None) -> None:
+    def __init__(self, manager: RunManager, *, limits: IngestLimits, upload_idle_timeout_s: float | None = None,
+                 max_queued_bytes: int | None = None) -> None:
         self.manager = manager
         self.limits = limits
         self.upload_idle_timeout_s = upload_idle_timeout_s
+        self.max_queued_bytes = max_queued_bytes
+        self._reserved_bytes = 0  # declared bytes of the slices being received now
+
+    def _reserve(self, nbytes: int) -> int:
+        """Reserve a slice's declared bytes under the server-wide budget of queued and arriving
+        slice bytes; refuses with RESOURCE_EXHAUSTED naming the budget. Returns the bytes reserved."""
+        if self.max_queued_bytes is None:
+            return 0
+        queued = sum(run.queued_bytes for run in self.manager.runs.values())
+        if queued + self._reserved_bytes + nbytes > self.max_queued_bytes:
+            raise ServiceError(
+                grpc.StatusCode.RESOURCE_EXHAUSTED,
+                f"header.total_bytes: {nbytes} more bytes would exceed the server's budget of "
+                f"{self.max_queued_bytes} bytes for queued and arriving slices (max_queued_bytes); "
+                f"{queued} bytes are queued and {self._reserved_bytes} arriving; retry once the queue drains",
+                reason="QUEUED_BYTES_BUDGET",
+            )
+        self._reserved_bytes += nbytes
+        return nbytes
 
     @_translating_errors
     async def OpenRun(self, request: pb.OpenRunRequest, context) -> pb.OpenRunResponse:
@@ -134,14 +154,18 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
     @_translating_errors
     async def SendSlice(self, request_iterator, context) -> pb.SendSliceResponse:
         known: list = []  # (run, header) once the header named a known run
+        reserved: list[int] = []
         try:
-            return await self._receive_slice(request_iterator, known)
+            return await self._receive_slice(request_iterator, known, reserved)
         except ServiceError as exc:
             if known:  # the run's event stream shows the refusal too
                 await record_rejection(*known, exc)
             raise
+        finally:
+            # Queued now (counted by the run's queue) or refused: either way no longer arriving.
+            self._reserved_bytes -= sum(reserved)
 
-    async def _receive_slice(self, request_iterator, known: list) -> pb.SendSliceResponse:
+    async def _receive_slice(self, request_iterator, known: list, reserved: list) -> pb.SendSliceResponse:
         assembler: SliceAssembler | None = None
         run = None
         label = PartLabel(0, 1)
@@ -169,6 +193,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                     assembler = make()
                 if run.parts.check(assembler.iteration, assembler.time, label):
                     return run.parts.duplicate_response(assembler.iteration, label)
+                reserved.append(self._reserve(assembler.total_bytes))
             elif part == "chunk":
                 assembler.add(request.chunk)
             else:

@@ -182,3 +182,22 @@ def test_slice_over_the_queued_bytes_budget_is_resource_exhausted_naming_the_bud
     assert err.code() == grpc.StatusCode.RESOURCE_EXHAUSTED, err.details()
     assert "max_queued_bytes" in err.details() and "header.total_bytes" in err.details()
     assert info.run.slices_received == 0
+
+
+def test_open_runs_per_client_are_capped_naming_the_limit(tmp_path):
+    options = ServerOptions(workers=1, max_open_runs_per_client=2)
+    with BackgroundServer("127.0.0.1:0", archive_root=tmp_path, workers=1, options=options) as bg:
+        with grpc.insecure_channel(bg.address) as channel:
+            stub = pb_grpc.HorizonServiceStub(channel)
+            spec = lone_spec("capped").to_wire()
+            first = stub.OpenRun(pb.OpenRunRequest(spec=spec, request_id="first"), timeout=30).run.run_id
+            stub.OpenRun(pb.OpenRunRequest(spec=spec), timeout=30)
+            with pytest.raises(grpc.RpcError) as info:
+                stub.OpenRun(pb.OpenRunRequest(spec=spec), timeout=30)
+            # A retried OpenRun still finds its run; closing one makes room for another.
+            again = stub.OpenRun(pb.OpenRunRequest(spec=spec, request_id="first"), timeout=30).run.run_id
+            stub.CloseRun(pb.CloseRunRequest(run_id=first), timeout=30)
+            third = stub.OpenRun(pb.OpenRunRequest(spec=spec), timeout=30).run
+    assert info.value.code() == grpc.StatusCode.RESOURCE_EXHAUSTED, info.value.details()
+    assert "max_open_runs_per_client = 2" in info.value.details() and "host 127.0.0.1" in info.value.details()
+    assert again == first and third.run_id not in (first,)

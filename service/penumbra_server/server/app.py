@@ -63,6 +63,9 @@ class ServerOptions:
     #: Server-wide budget of slice bytes queued in all runs plus those arriving (more:
     #: RESOURCE_EXHAUSTED, reason QUEUED_BYTES_BUDGET); 0: no budget.
     max_queued_bytes: int = 4 * 1024**3
+    #: Open runs one client may hold (keyed by its token's name when tokens are configured, else
+    #: by the peer's host; more: RESOURCE_EXHAUSTED, reason TOO_MANY_OPEN_RUNS); 0: no limit.
+    max_open_runs_per_client: int = 1024
     event_log_limit: int = 100_000
     subscriber_queue_size: int = 1024
     interpolation_order: int = SERVICE_INTERPOLATION_ORDER
@@ -200,6 +203,7 @@ async def create_server(
                                      max_fields_per_patch=options.max_fields_per_patch),
             upload_idle_timeout_s=options.upload_idle_timeout_s or None,
             max_queued_bytes=options.max_queued_bytes or None,
+            max_open_runs_per_client=options.max_open_runs_per_client or None, token_book=token_book,
         )
         pb_grpc.add_HorizonServiceServicer_to_server(servicer, grpc_server)
         health_servicer = health.aio.HealthServicer()

@@ -101,12 +101,44 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
     """penumbra.v1.HorizonService on a :class:`RunManager`."""
 
     def __init__(self, manager: RunManager, *, limits: IngestLimits, upload_idle_timeout_s: float | None = None,
-                 max_queued_bytes: int | None = None) -> None:
+                 max_queued_bytes: int | None = None, max_open_runs_per_client: int | None = None,
+                 token_book=None) -> None:
         self.manager = manager
+        self.max_open_runs_per_client = max_open_runs_per_client
+        self.token_book = token_book
+        self._run_owners: dict[str, str] = {}  # run id -> client key of the OpenRun that made it
         self.limits = limits
         self.upload_idle_timeout_s = upload_idle_timeout_s
         self.max_queued_bytes = max_queued_bytes
         self._reserved_bytes = 0  # declared bytes of the slices being received now
+
+    def _client_key(self, context) -> str:
+        """Who opens: the token's name when tokens are configured, else the peer's host."""
+        if self.token_book:
+            for key, value in context.invocation_metadata() or ():
+                if key == "authorization" and value.lower().startswith("bearer "):
+                    entry = self.token_book.lookup(value[7:].strip())
+                    if entry is not None:
+                        return f"token {entry.name}"
+        peer = context.peer() or ""  # "ipv4:127.0.0.1:54321", "ipv6:[::1]:54321", "unix:..."
+        kind, _, rest = peer.partition(":")
+        host = rest.rsplit(":", 1)[0] if kind in ("ipv4", "ipv6") else rest
+        return f"host {host}"
+
+    def _check_open_runs(self, key: str) -> None:
+        limit = self.max_open_runs_per_client
+        if limit is None:
+            return
+        runs = self.manager.runs
+        open_now = sum(1 for run_id, owner in self._run_owners.items()
+                       if owner == key and run_id in runs and runs[run_id].is_open)
+        if open_now >= limit:
+            raise ServiceError(
+                grpc.StatusCode.RESOURCE_EXHAUSTED,
+                f"spec: {key} has {open_now} open runs, the server's limit per client "
+                f"(max_open_runs_per_client = {limit}); close one first",
+                reason="TOO_MANY_OPEN_RUNS", field="spec",
+            )
 
     def _reserve(self, nbytes: int) -> int:
         """Reserve a slice's declared bytes under the server-wide budget of queued and arriving
@@ -127,7 +159,12 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
 
     @_translating_errors
     async def OpenRun(self, request: pb.OpenRunRequest, context) -> pb.OpenRunResponse:
+        key = self._client_key(context)
+        retry = bool(request.request_id) and request.request_id in self.manager._request_ids
+        if not retry:  # a retried OpenRun finds its run whatever the count
+            self._check_open_runs(key)
         run = await self.manager.open_run(request.spec, request.request_id)
+        self._run_owners.setdefault(run.run_id, key)
         return pb.OpenRunResponse(run=run.to_wire())
 
     @_translating_errors

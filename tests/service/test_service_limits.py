@@ -201,3 +201,20 @@ def test_open_runs_per_client_are_capped_naming_the_limit(tmp_path):
     assert info.value.code() == grpc.StatusCode.RESOURCE_EXHAUSTED, info.value.details()
     assert "max_open_runs_per_client = 2" in info.value.details() and "host 127.0.0.1" in info.value.details()
     assert again == first and third.run_id not in (first,)
+
+
+def test_archive_bytes_per_client_are_capped_naming_the_limit(tmp_path):
+    """A 1-byte budget: the client's first run fits (nothing archived yet); its archive then holds
+    bytes, so the next OpenRun and the next slice of that run are refused."""
+    options = ServerOptions(workers=1, max_archive_bytes_per_client=1)
+    with BackgroundServer("127.0.0.1:0", archive_root=tmp_path, workers=1, options=options) as bg:
+        with grpc.insecure_channel(bg.address) as channel:
+            stub = pb_grpc.HorizonServiceStub(channel)
+            spec = lone_spec("archive capped").to_wire()
+            run_id = stub.OpenRun(pb.OpenRunRequest(spec=spec), timeout=30).run.run_id
+            with pytest.raises(grpc.RpcError) as opening:
+                stub.OpenRun(pb.OpenRunRequest(spec=spec), timeout=30)
+            sending = _refused(stub, raw_requests(lone_hole_slice(0), run_id))
+    for err, field in ((opening.value, "spec"), (sending, "header.run_id")):
+        assert err.code() == grpc.StatusCode.RESOURCE_EXHAUSTED, err.details()
+        assert err.details().startswith(field) and "max_archive_bytes_per_client = 1" in err.details()

@@ -66,6 +66,11 @@ class ServerOptions:
     #: Open runs one client may hold (keyed by its token's name when tokens are configured, else
     #: by the peer's host; more: RESOURCE_EXHAUSTED, reason TOO_MANY_OPEN_RUNS); 0: no limit.
     max_open_runs_per_client: int = 1024
+    #: Archive bytes the runs one client opened may hold (same client key as
+    #: max_open_runs_per_client; checked at OpenRun and at each slice's header by summing the
+    #: run directories' file sizes; at or over: RESOURCE_EXHAUSTED, reason
+    #: ARCHIVE_BYTES_PER_CLIENT); 0: no limit.
+    max_archive_bytes_per_client: int = 0
     event_log_limit: int = 100_000
     subscriber_queue_size: int = 1024
     interpolation_order: int = SERVICE_INTERPOLATION_ORDER
@@ -204,6 +209,7 @@ async def create_server(
             upload_idle_timeout_s=options.upload_idle_timeout_s or None,
             max_queued_bytes=options.max_queued_bytes or None,
             max_open_runs_per_client=options.max_open_runs_per_client or None, token_book=token_book,
+            max_archive_bytes_per_client=options.max_archive_bytes_per_client or None,
         )
         pb_grpc.add_HorizonServiceServicer_to_server(servicer, grpc_server)
         health_servicer = health.aio.HealthServicer()

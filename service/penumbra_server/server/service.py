@@ -11,6 +11,7 @@ import asyncio
 import base64
 import functools
 import logging
+import os
 import time
 
 import grpc
@@ -19,6 +20,7 @@ from google.protobuf.message import DecodeError
 from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
+from ..archive import archive_path
 from .errors import ServiceError, status_trailer
 from .ingest import IngestLimits, SliceAssembler, mirror_through_z0
 from .parts import PartLabel, part_of, prepare_part
@@ -51,6 +53,19 @@ def _translating_errors(method):
                                 trailing_metadata=status_trailer(grpc.StatusCode.INTERNAL, message, "INTERNAL", ""))
 
     return wrapper
+
+
+def _tree_bytes(paths) -> int:
+    """Bytes of the files under ``paths`` (missing paths count 0)."""
+    total = 0
+    for path in paths:
+        for root, _, files in os.walk(path):
+            for name in files:
+                try:
+                    total += os.stat(os.path.join(root, name)).st_size
+                except OSError:  # a file replaced while walking
+                    pass
+    return total
 
 
 async def _stream_messages(request_iterator, idle_timeout_s: float | None):
@@ -102,8 +117,9 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
 
     def __init__(self, manager: RunManager, *, limits: IngestLimits, upload_idle_timeout_s: float | None = None,
                  max_queued_bytes: int | None = None, max_open_runs_per_client: int | None = None,
-                 token_book=None) -> None:
+                 token_book=None, max_archive_bytes_per_client: int | None = None) -> None:
         self.manager = manager
+        self.max_archive_bytes_per_client = max_archive_bytes_per_client
         self.max_open_runs_per_client = max_open_runs_per_client
         self.token_book = token_book
         self._run_owners: dict[str, str] = {}  # run id -> client key of the OpenRun that made it
@@ -140,6 +156,25 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                 reason="TOO_MANY_OPEN_RUNS", field="spec",
             )
 
+    async def _check_archive_bytes(self, key: str, field: str) -> None:
+        """Refuse when the archives of the runs ``key`` opened hold more than the per-client limit.
+
+        An approximation: the sizes of the files under those run directories, summed in a thread
+        at each OpenRun and each slice's header (runs restored after a restart have no opener)."""
+        limit = self.max_archive_bytes_per_client
+        if limit is None:
+            return
+        paths = [archive_path(self.manager.archive_root, run_id) for run_id, owner in self._run_owners.items()
+                 if owner == key]
+        used = await asyncio.to_thread(_tree_bytes, paths)
+        if used >= limit:
+            raise ServiceError(
+                grpc.StatusCode.RESOURCE_EXHAUSTED,
+                f"{field}: the archives of {key}'s runs hold {used} bytes, at or over the server's limit per "
+                f"client (max_archive_bytes_per_client = {limit})",
+                reason="ARCHIVE_BYTES_PER_CLIENT", field=field,
+            )
+
     def _reserve(self, nbytes: int) -> int:
         """Reserve a slice's declared bytes under the server-wide budget of queued and arriving
         slice bytes; refuses with RESOURCE_EXHAUSTED naming the budget. Returns the bytes reserved."""
@@ -163,6 +198,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
         retry = bool(request.request_id) and request.request_id in self.manager._request_ids
         if not retry:  # a retried OpenRun finds its run whatever the count
             self._check_open_runs(key)
+            await self._check_archive_bytes(key, "spec")
         run = await self.manager.open_run(request.spec, request.request_id)
         self._run_owners.setdefault(run.run_id, key)
         return pb.OpenRunResponse(run=run.to_wire())
@@ -216,6 +252,8 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                 run = self.manager.get(header.run_id)
                 known[:] = [run, header]
                 run.check_accepting()
+                if run.run_id in self._run_owners:
+                    await self._check_archive_bytes(self._run_owners[run.run_id], "header.run_id")
                 label = part_of(header)
                 if not label.is_part and run.is_duplicate(header.iteration):
                     # Idempotent resend: answer at once, without reading the data again.

@@ -64,7 +64,7 @@ from .find_results import (  # noqa: F401  (re-exported: the finder's public nam
 from .geometry import PointGeometry
 from .interpolation import DEFAULT_ORDER
 from .resolution import interpolation_floor, recentred_surface, residual_between_nodes
-from .slices import Slice, SliceError
+from .slices import DegenerateMetricError, Slice, SliceError
 from .sources import TrackedSource, as_tracked_source
 from .surfaces import (
     AngularGrid,
@@ -146,6 +146,10 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
     except ExcisedDataError as exc:
         run.last_failure = NEEDS_EXCISED_DATA
         run.excised_note = str(exc)
+        return None
+    except DegenerateMetricError as exc:
+        run.last_failure = INVALID_GEOMETRY
+        run.invalid_note = str(exc)
         return None
     except SliceError as exc:
         run.last_failure = NON_FINITE_DATA

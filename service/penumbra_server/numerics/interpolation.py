@@ -38,7 +38,7 @@ import numpy as np
 from .excision import ExcisedDataError
 from .geometry import PointGeometry, physical_from_conformal, symmetric_from_components
 from .node_store import NodeStore, centred_difference_weights, field_layout
-from .slices import Slice, SliceError, VariableSet
+from .slices import DegenerateMetricError, Slice, SliceError, VariableSet
 
 __all__ = [
     "SUPPORTED_ORDERS",
@@ -236,8 +236,15 @@ class GridGeometry:
             )
         m, k = np.argwhere(flags & NodeStore.NON_FINITE)[0]
         x = pts[m]
+        field = store.non_finite_field(int(flat[m, k]))
+        if not field:
+            raise DegenerateMetricError(
+                f"the spatial metric gamma_ij on patches[{store.patch_index}] (level {store.level}) is not positive "
+                f"definite (det gamma <= 0, e.g. all zero or negative definite) at nodes needed for the surface "
+                f"point ({x[0]:.6g}, {x[1]:.6g}, {x[2]:.6g}); expected a positive definite metric"
+            )
         raise SliceError(
-            f"field {store.non_finite_field(int(flat[m, k]))!r} on patches[{store.patch_index}] (level {store.level}): "
+            f"field {field!r} on patches[{store.patch_index}] (level {store.level}): "
             f"non-finite values at nodes needed for the surface point ({x[0]:.6g}, {x[1]:.6g}, {x[2]:.6g}); "
             f"expected finite numbers"
         )

@@ -266,7 +266,8 @@ class NodeStore:
         return hit.any(axis=0)
 
     def non_finite_field(self, flat_node: int) -> str:
-        """Name of the first raw field holding NaN or infinity where the node's row reads."""
+        """Name of the first raw field holding NaN or infinity where the node's row reads ("" when
+        every input is finite and only the decomposition is not: det(gamma) <= 0 there)."""
         ijk = np.array(np.unravel_index(flat_node, self.shape)).reshape(1, 3)
         taps = self._taps()
         for name in self._raw_differentiated:
@@ -275,4 +276,4 @@ class NodeStore:
         for name in self._raw_plain:
             if not np.isfinite(self._read(name, ijk, taps[:1])).all():
                 return name
-        return self._raw_differentiated[0]  # finite inputs, non-finite result (e.g. det <= 0)
+        return ""  # finite inputs, non-finite result: the metric is degenerate (det <= 0)

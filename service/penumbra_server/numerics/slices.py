@@ -27,6 +27,7 @@ from .excision import EXCISION_MASK_FIELD, ExcisedSphere, excised_node_mask
 
 __all__ = [
     "SliceError",
+    "DegenerateMetricError",
     "VariableSet",
     "Patch",
     "Slice",
@@ -51,6 +52,11 @@ def symmetric_field_names(stem: str) -> tuple[str, ...]:
 
 class SliceError(ValueError):
     """A slice or patch does not satisfy the model. The message names the field at fault."""
+
+
+class DegenerateMetricError(SliceError):
+    """Finite data whose spatial metric is not positive definite (e.g. all zero or negative
+    definite) where a surface needs it."""
 
 
 class VariableSet(str, enum.Enum):

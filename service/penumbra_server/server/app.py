@@ -53,6 +53,24 @@ class ServerOptions:
     default_queue_depth: int = 4
     max_chunk_bytes: int = 4 * 1024 * 1024
     max_slice_bytes: int = 2 * 1024**3
+    #: Patches one slice header may declare (more: RESOURCE_EXHAUSTED, reason TOO_MANY_PATCHES).
+    max_patches_per_header: int = 4096
+    #: Field names one patch may declare (more: RESOURCE_EXHAUSTED, reason TOO_MANY_FIELDS).
+    max_fields_per_patch: int = 64
+    #: Seconds a SendSlice stream may stay silent before it is aborted (DEADLINE_EXCEEDED,
+    #: reason UPLOAD_IDLE); 0: no limit.
+    upload_idle_timeout_s: float = 300.0
+    #: Server-wide budget of slice bytes queued in all runs plus those arriving (more:
+    #: RESOURCE_EXHAUSTED, reason QUEUED_BYTES_BUDGET); 0: no budget.
+    max_queued_bytes: int = 4 * 1024**3
+    #: Open runs one client may hold (keyed by its token's name when tokens are configured, else
+    #: by the peer's host; more: RESOURCE_EXHAUSTED, reason TOO_MANY_OPEN_RUNS); 0: no limit.
+    max_open_runs_per_client: int = 1024
+    #: Archive bytes the runs one client opened may hold (same client key as
+    #: max_open_runs_per_client; checked at OpenRun and at each slice's header by summing the
+    #: run directories' file sizes; at or over: RESOURCE_EXHAUSTED, reason
+    #: ARCHIVE_BYTES_PER_CLIENT); 0: no limit.
+    max_archive_bytes_per_client: int = 0
     event_log_limit: int = 100_000
     subscriber_queue_size: int = 1024
     interpolation_order: int = SERVICE_INTERPOLATION_ORDER
@@ -185,7 +203,13 @@ async def create_server(
             ]
         )
         servicer = HorizonServicer(
-            manager, limits=IngestLimits(max_chunk_bytes=options.max_chunk_bytes, max_slice_bytes=options.max_slice_bytes)
+            manager, limits=IngestLimits(max_chunk_bytes=options.max_chunk_bytes, max_slice_bytes=options.max_slice_bytes,
+                                     max_patches_per_header=options.max_patches_per_header,
+                                     max_fields_per_patch=options.max_fields_per_patch),
+            upload_idle_timeout_s=options.upload_idle_timeout_s or None,
+            max_queued_bytes=options.max_queued_bytes or None,
+            max_open_runs_per_client=options.max_open_runs_per_client or None, token_book=token_book,
+            max_archive_bytes_per_client=options.max_archive_bytes_per_client or None,
         )
         pb_grpc.add_HorizonServiceServicer_to_server(servicer, grpc_server)
         health_servicer = health.aio.HealthServicer()

@@ -35,6 +35,10 @@ class IngestLimits:
 
     max_chunk_bytes: int = 4 * 1024 * 1024
     max_slice_bytes: int = 2 * 1024**3
+    #: Patches one header may declare (ServerOptions.max_patches_per_header).
+    max_patches_per_header: int = MAX_PATCHES
+    #: Field names one patch may declare (ServerOptions.max_fields_per_patch).
+    max_fields_per_patch: int = 64
 
 
 @dataclass
@@ -53,6 +57,13 @@ class _PatchPlan:
     memory_order: str
     field_bytes: int
     fields: dict[str, _FieldBuffer]
+
+
+def _names(names, most: int = 5) -> str:
+    """A few names for a message: each shortened, the rest counted (messages travel in a trailer)."""
+    shown = [repr(n if len(n) <= 64 else n[:61] + "...") for n in list(names)[:most]]
+    rest = len(names) - len(shown)
+    return ", ".join(shown) + (f" and {rest} more" if rest > 0 else "")
 
 
 def _vector(v: pb.Vector3, field: str) -> np.ndarray:
@@ -92,10 +103,24 @@ class SliceAssembler:
             )
         if not header.patches and not allow_empty:
             raise ServiceError.invalid("header.patches: expected at least one patch, got none")
-        if len(header.patches) > MAX_PATCHES:
-            raise ServiceError.invalid(f"header.patches: at most {MAX_PATCHES} patches, got {len(header.patches)}")
+        if len(header.patches) > limits.max_patches_per_header:
+            raise ServiceError(
+                grpc.StatusCode.RESOURCE_EXHAUSTED,
+                f"header.patches: {len(header.patches)} patches is over the server's limit of "
+                f"{limits.max_patches_per_header} patches per header (max_patches_per_header)",
+                reason="TOO_MANY_PATCHES",
+            )
         required = required_fields(self.variable_set)
         allowed = set(required) | set(optional_fields(self.variable_set)) | {EXCISION_MASK_FIELD}
+        # Counts first, before any per-field work: every check below is linear in them.
+        for index, ph in enumerate(header.patches):
+            if len(ph.field_names) > limits.max_fields_per_patch:
+                raise ServiceError(
+                    grpc.StatusCode.RESOURCE_EXHAUSTED,
+                    f"header.patches[{index}].field_names: {len(ph.field_names)} names is over the server's limit "
+                    f"of {limits.max_fields_per_patch} fields per patch (max_fields_per_patch)",
+                    reason="TOO_MANY_FIELDS",
+                )
         declared_total = 0
         self._patches: list[_PatchPlan] = []
         for index, ph in enumerate(header.patches):
@@ -103,6 +128,12 @@ class SliceAssembler:
             shape = tuple(int(n) for n in ph.shape)
             if len(shape) != 3 or min(shape) < 2:
                 raise ServiceError.invalid(f"{where}.shape: expected three node counts >= 2, got {list(shape)}")
+            # Python ints: a product of huge node counts must not wrap around as int64 would.
+            if math.prod(shape) > limits.max_slice_bytes:
+                raise ServiceError.invalid(
+                    f"{where}.shape: {list(shape)} declares {math.prod(shape)} nodes, more than the server's "
+                    f"limit of {limits.max_slice_bytes} slice bytes could hold"
+                )
             spacing = _vector(ph.spacing_m, f"{where}.spacing_m")
             if np.any(spacing <= 0):
                 raise ServiceError.invalid(f"{where}.spacing_m: every component must be > 0, got {spacing.tolist()}")
@@ -114,10 +145,11 @@ class SliceAssembler:
                     f"{where}.memory_order: expected MEMORY_ORDER_C or MEMORY_ORDER_FORTRAN, got {ph.memory_order}"
                 )
             names = list(ph.field_names)
-            duplicates = sorted({n for n in names if names.count(n) > 1})
+            seen: set[str] = set()
+            duplicates = sorted({n for n in names if n in seen or seen.add(n)})
             if duplicates:
-                raise ServiceError.invalid(f"{where}.field_names: {', '.join(duplicates)} listed more than once")
-            missing = [n for n in required if n not in names]
+                raise ServiceError.invalid(f"{where}.field_names: {_names(duplicates)} listed more than once")
+            missing = [n for n in required if n not in seen]
             if missing:
                 raise ServiceError.invalid(
                     f"{where}.field_names: missing {', '.join(missing)}, required by variable set "
@@ -126,12 +158,12 @@ class SliceAssembler:
             unknown = [n for n in names if n not in allowed]
             if unknown:
                 raise ServiceError.invalid(
-                    f"{where}.field_names: unknown field {', '.join(map(repr, unknown))} for variable set "
+                    f"{where}.field_names: unknown field {_names(unknown)} for variable set "
                     f"{self.variable_set.value}; expected {', '.join(required)} and optionally "
                     f"{', '.join(optional_fields(self.variable_set) + (EXCISION_MASK_FIELD,))}"
                 )
             dtype = _DTYPES[ph.dtype]
-            field_bytes = int(np.prod(shape)) * dtype.itemsize
+            field_bytes = math.prod(shape) * dtype.itemsize
             declared_total += field_bytes * len(names)
             if declared_total > limits.max_slice_bytes:
                 raise ServiceError(

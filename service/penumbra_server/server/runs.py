@@ -236,6 +236,11 @@ class RunRecord:
                                     received_bytes=received_bytes, queue_position=-1, parts_received=1,
                                     parts_expected=1)
 
+    @property
+    def queued_bytes(self) -> int:
+        """Bytes of the slices waiting in this run's queue (the one being processed not counted)."""
+        return sum(item.nbytes for item in self._queue)
+
     def accept(self, item: QueuedSlice) -> pb.SendSliceResponse:
         """Queue an assembled slice under the keep-newest policy; never waits."""
         self.check_accepting()

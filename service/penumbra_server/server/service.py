@@ -11,13 +11,16 @@ import asyncio
 import base64
 import functools
 import logging
+import os
 import time
 
 import grpc
+from google.protobuf.message import DecodeError
 
 from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
+from ..archive import archive_path
 from .errors import ServiceError, status_trailer
 from .ingest import IngestLimits, SliceAssembler, mirror_through_z0
 from .parts import PartLabel, part_of, prepare_part
@@ -28,6 +31,8 @@ from .runs import QueuedSlice
 __all__ = ["HorizonServicer"]
 
 log = logging.getLogger("penumbra.server")
+#: Field names a header may declare before its checks move off the event loop.
+_NAMES_CHECKED_ON_LOOP = 512
 
 
 def _translating_errors(method):
@@ -48,6 +53,45 @@ def _translating_errors(method):
                                 trailing_metadata=status_trailer(grpc.StatusCode.INTERNAL, message, "INTERNAL", ""))
 
     return wrapper
+
+
+def _tree_bytes(paths) -> int:
+    """Bytes of the files under ``paths`` (missing paths count 0)."""
+    total = 0
+    for path in paths:
+        for root, _, files in os.walk(path):
+            for name in files:
+                try:
+                    total += os.stat(os.path.join(root, name)).st_size
+                except OSError:  # a file replaced while walking
+                    pass
+    return total
+
+
+async def _stream_messages(request_iterator, idle_timeout_s: float | None):
+    """The messages of a client stream; undecodable bytes become INVALID_ARGUMENT and a stream
+    silent for ``idle_timeout_s`` seconds DEADLINE_EXCEEDED (None: wait for ever)."""
+    iterator = request_iterator.__aiter__()
+    index = 0
+    while True:
+        try:
+            if idle_timeout_s is None:
+                message = await iterator.__anext__()
+            else:
+                message = await asyncio.wait_for(iterator.__anext__(), idle_timeout_s)
+        except StopAsyncIteration:
+            return
+        except DecodeError as exc:
+            raise ServiceError.invalid(
+                f"request: message {index} of the stream is not a valid {pb.SendSliceRequest.DESCRIPTOR.full_name} "
+                f"({exc})", reason="MALFORMED_MESSAGE") from None
+        except asyncio.TimeoutError:
+            raise ServiceError(
+                grpc.StatusCode.DEADLINE_EXCEEDED,
+                f"upload_idle_timeout_s: no message for {idle_timeout_s:g} s after message {index}; the server's "
+                f"limit is upload_idle_timeout_s = {idle_timeout_s:g}", reason="UPLOAD_IDLE") from None
+        index += 1
+        yield message
 
 
 def _page_token(offset: int) -> str:
@@ -71,13 +115,92 @@ def _page_offset(token: str) -> int:
 class HorizonServicer(pb_grpc.HorizonServiceServicer):
     """penumbra.v1.HorizonService on a :class:`RunManager`."""
 
-    def __init__(self, manager: RunManager, *, limits: IngestLimits) -> None:
+    def __init__(self, manager: RunManager, *, limits: IngestLimits, upload_idle_timeout_s: float | None = None,
+                 max_queued_bytes: int | None = None, max_open_runs_per_client: int | None = None,
+                 token_book=None, max_archive_bytes_per_client: int | None = None) -> None:
         self.manager = manager
+        self.max_archive_bytes_per_client = max_archive_bytes_per_client
+        self.max_open_runs_per_client = max_open_runs_per_client
+        self.token_book = token_book
+        self._run_owners: dict[str, str] = {}  # run id -> client key of the OpenRun that made it
         self.limits = limits
+        self.upload_idle_timeout_s = upload_idle_timeout_s
+        self.max_queued_bytes = max_queued_bytes
+        self._reserved_bytes = 0  # declared bytes of the slices being received now
+
+    def _client_key(self, context) -> str:
+        """Who opens: the token's name when tokens are configured, else the peer's host."""
+        if self.token_book:
+            for key, value in context.invocation_metadata() or ():
+                if key == "authorization" and value.lower().startswith("bearer "):
+                    entry = self.token_book.lookup(value[7:].strip())
+                    if entry is not None:
+                        return f"token {entry.name}"
+        peer = context.peer() or ""  # "ipv4:127.0.0.1:54321", "ipv6:[::1]:54321", "unix:..."
+        kind, _, rest = peer.partition(":")
+        host = rest.rsplit(":", 1)[0] if kind in ("ipv4", "ipv6") else rest
+        return f"host {host}"
+
+    def _check_open_runs(self, key: str) -> None:
+        limit = self.max_open_runs_per_client
+        if limit is None:
+            return
+        runs = self.manager.runs
+        open_now = sum(1 for run_id, owner in self._run_owners.items()
+                       if owner == key and run_id in runs and runs[run_id].is_open)
+        if open_now >= limit:
+            raise ServiceError(
+                grpc.StatusCode.RESOURCE_EXHAUSTED,
+                f"spec: {key} has {open_now} open runs, the server's limit per client "
+                f"(max_open_runs_per_client = {limit}); close one first",
+                reason="TOO_MANY_OPEN_RUNS", field="spec",
+            )
+
+    async def _check_archive_bytes(self, key: str, field: str) -> None:
+        """Refuse when the archives of the runs ``key`` opened hold more than the per-client limit.
+
+        An approximation: the sizes of the files under those run directories, summed in a thread
+        at each OpenRun and each slice's header (runs restored after a restart have no opener)."""
+        limit = self.max_archive_bytes_per_client
+        if limit is None:
+            return
+        paths = [archive_path(self.manager.archive_root, run_id) for run_id, owner in self._run_owners.items()
+                 if owner == key]
+        used = await asyncio.to_thread(_tree_bytes, paths)
+        if used >= limit:
+            raise ServiceError(
+                grpc.StatusCode.RESOURCE_EXHAUSTED,
+                f"{field}: the archives of {key}'s runs hold {used} bytes, at or over the server's limit per "
+                f"client (max_archive_bytes_per_client = {limit})",
+                reason="ARCHIVE_BYTES_PER_CLIENT", field=field,
+            )
+
+    def _reserve(self, nbytes: int) -> int:
+        """Reserve a slice's declared bytes under the server-wide budget of queued and arriving
+        slice bytes; refuses with RESOURCE_EXHAUSTED naming the budget. Returns the bytes reserved."""
+        if self.max_queued_bytes is None:
+            return 0
+        queued = sum(run.queued_bytes for run in self.manager.runs.values())
+        if queued + self._reserved_bytes + nbytes > self.max_queued_bytes:
+            raise ServiceError(
+                grpc.StatusCode.RESOURCE_EXHAUSTED,
+                f"header.total_bytes: {nbytes} more bytes would exceed the server's budget of "
+                f"{self.max_queued_bytes} bytes for queued and arriving slices (max_queued_bytes); "
+                f"{queued} bytes are queued and {self._reserved_bytes} arriving; retry once the queue drains",
+                reason="QUEUED_BYTES_BUDGET",
+            )
+        self._reserved_bytes += nbytes
+        return nbytes
 
     @_translating_errors
     async def OpenRun(self, request: pb.OpenRunRequest, context) -> pb.OpenRunResponse:
+        key = self._client_key(context)
+        retry = bool(request.request_id) and request.request_id in self.manager._request_ids
+        if not retry:  # a retried OpenRun finds its run whatever the count
+            self._check_open_runs(key)
+            await self._check_archive_bytes(key, "spec")
         run = await self.manager.open_run(request.spec, request.request_id)
+        self._run_owners.setdefault(run.run_id, key)
         return pb.OpenRunResponse(run=run.to_wire())
 
     @_translating_errors
@@ -104,18 +227,22 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
     @_translating_errors
     async def SendSlice(self, request_iterator, context) -> pb.SendSliceResponse:
         known: list = []  # (run, header) once the header named a known run
+        reserved: list[int] = []
         try:
-            return await self._receive_slice(request_iterator, known)
+            return await self._receive_slice(request_iterator, known, reserved)
         except ServiceError as exc:
             if known:  # the run's event stream shows the refusal too
                 await record_rejection(*known, exc)
             raise
+        finally:
+            # Queued now (counted by the run's queue) or refused: either way no longer arriving.
+            self._reserved_bytes -= sum(reserved)
 
-    async def _receive_slice(self, request_iterator, known: list) -> pb.SendSliceResponse:
+    async def _receive_slice(self, request_iterator, known: list, reserved: list) -> pb.SendSliceResponse:
         assembler: SliceAssembler | None = None
         run = None
         label = PartLabel(0, 1)
-        async for request in request_iterator:
+        async for request in _stream_messages(request_iterator, self.upload_idle_timeout_s):
             part = request.WhichOneof("part")
             if assembler is None:
                 if part != "header":
@@ -125,14 +252,23 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                 run = self.manager.get(header.run_id)
                 known[:] = [run, header]
                 run.check_accepting()
+                if run.run_id in self._run_owners:
+                    await self._check_archive_bytes(self._run_owners[run.run_id], "header.run_id")
                 label = part_of(header)
                 if not label.is_part and run.is_duplicate(header.iteration):
                     # Idempotent resend: answer at once, without reading the data again.
                     return run.duplicate_response(header.iteration, 0)
-                assembler = SliceAssembler(header, run.settings.variable_set, self.limits, allow_empty=label.is_part,
-                                           excised_spheres=run.settings.excised_spheres)
+                make = functools.partial(SliceAssembler, header, run.settings.variable_set, self.limits,
+                                         allow_empty=label.is_part, excised_spheres=run.settings.excised_spheres)
+                # Header checks are linear in the names declared; many names go to a thread so
+                # that the event loop keeps serving every other client meanwhile.
+                if sum(len(ph.field_names) for ph in header.patches) > _NAMES_CHECKED_ON_LOOP:
+                    assembler = await asyncio.to_thread(make)
+                else:
+                    assembler = make()
                 if run.parts.check(assembler.iteration, assembler.time, label):
                     return run.parts.duplicate_response(assembler.iteration, label)
+                reserved.append(self._reserve(assembler.total_bytes))
             elif part == "chunk":
                 assembler.add(request.chunk)
             else:

@@ -75,7 +75,10 @@ def grid_case(kind: str, spacing: float):
                                                           "spin_multipoles", "spin_direction"))
     data = sample_slice(hole, [cube_box(centre, half, spacing)], variable_set="conformal_chi")
     lmax = 12 if kind.startswith("kerr") else 10
-    found = find_surface(data, Surface.sphere(centre, guess_radius, lmax), settings=FinderSettings(lmax=lmax))
+    # Found and quoted at the same interpolation order (4, the service's): the bars estimate the
+    # errors of a surface found at the order they are quoted for.
+    found = find_surface(data, Surface.sphere(centre, guess_radius, lmax),
+                         settings=FinderSettings(lmax=lmax, interpolation_order=4))
     assert found.success, found.message
     quoted = quote_horizon(found.surface, data, order=4, n_max=8)
     if not kind.startswith("kerr"):

@@ -221,7 +221,7 @@ def archive_path(archive_root, run_id: str):
     return Path(archive_root) / f"{run_id}{ARCHIVE_SUFFIX}"
 
 
-# -- tracking, guidance and windows (issue 4) ------------------------------------------------------
+# -- tracking, guidance and windows --------------------------------------------------------------
 
 TRACKS_GROUP = "tracks"
 FORECASTS_GROUP = "forecasts"

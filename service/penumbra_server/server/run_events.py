@@ -193,3 +193,34 @@ def state_emission(run: "RunRecord", state: int, reason: str) -> Emission:
         return Committed(event, attrs=attrs)
 
     return Emission(build)
+
+
+@dataclass(frozen=True, eq=False)
+class CommitBatch:
+    """Pending emissions built into events with consecutive sequence numbers, and every archive
+    row and root attribute they carry, for one archive commit."""
+
+    events: list
+    slice_rows: list
+    surface_rows: dict
+    group_rows: dict
+    attrs: dict
+
+
+def merge_batch(batch, *, first_seq: int, now: float) -> CommitBatch:
+    """Build ``batch`` (emissions, in order) from ``first_seq`` on at wall time ``now``; the
+    root attribute ``next_event_seq`` names the sequence number after the last."""
+    seq = first_seq
+    events, slice_rows, surface_rows, group_rows, attrs = [], [], {}, {}, {}
+    for emission in batch:
+        unit = emission.build(seq, now)
+        events.append(unit.event)
+        slice_rows.extend(unit.slice_rows)
+        for label, rows in unit.surface_rows.items():
+            surface_rows.setdefault(label, []).extend(rows)
+        for path, rows in unit.group_rows.items():
+            group_rows.setdefault(path, []).extend(rows)
+        attrs.update(unit.attrs)
+        seq += 1
+    attrs["next_event_seq"] = seq
+    return CommitBatch(events, slice_rows, surface_rows, group_rows, attrs)

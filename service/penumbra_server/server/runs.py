@@ -9,9 +9,8 @@ archive commit on the archive thread, and only then appends the events to the lo
 announced as archived only after it is written). A processed slice hands all its events (surfaces,
 tracking notices, slice_processed) to the committer at once: one archive commit per slice; the
 processor records the outcomes in the decision state (surface states, steering) at once and
-goes on to the next slice while the commit is written (write-behind, a bounded lag). The run is made and restored by
-run_manager.py and restore.py; slices in parts and link records hang off it (parts.py,
-link_records.py).
+goes on to the next slice while the commit is written (write-behind, a bounded lag). Made and
+restored by run_manager.py and restore.py; parts.py and link_records.py hang off it.
 """
 
 from __future__ import annotations
@@ -21,7 +20,6 @@ import logging
 import time
 from collections import deque
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
@@ -39,7 +37,8 @@ from .executors import FinderExecutor
 from .jobs import SurfaceOutcome
 from .link_records import LinkRecords
 from .parts import PartAssembly
-from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, notice_emission, parts_missing_emission, skip_emission, slice_emission,
+from .run_types import ManagerOptions, QueuedSlice
+from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, merge_batch, notice_emission, parts_missing_emission, skip_emission, slice_emission,
                          state_emission, surface_emission)
 from .scheduler import SurfacePlan, SurfacePlanner
 from .search import search_plan
@@ -60,30 +59,6 @@ def _retrieve(future: asyncio.Future) -> None:
     the run's failed_reason by the committer)."""
     if not future.cancelled():
         future.exception()
-
-
-@dataclass(frozen=True)
-class ManagerOptions:
-    """Server-wide run options."""
-
-    default_queue_depth: int = 4
-    event_log_limit: int = 100_000
-    subscriber_queue_size: int = 1024
-    interpolation_order: int = 4
-    common_horizon: bool = True
-
-
-@dataclass(frozen=True, eq=False)
-class QueuedSlice:
-    """An assembled slice waiting to be processed."""
-
-    slice_: Slice
-    nbytes: int
-    arrival_unix_s: float
-
-    @property
-    def iteration(self) -> int:
-        return self.slice_.iteration
 
 
 class RunRecord:
@@ -389,27 +364,11 @@ class RunRecord:
                 self._pending_changed.clear()
                 await self._pending_changed.wait()
             batch, self._pending = self._pending, []
-            now = time.time()
-            seq = self.log.next_seq
-            built = []
-            slice_rows: list[dict] = []
-            surface_rows: dict[str, list[dict]] = {}
-            group_rows: dict[str, list[dict]] = {}
-            attrs: dict = {}
-            for emission in batch:
-                unit = emission.build(seq, now)
-                built.append(unit.event)
-                slice_rows.extend(unit.slice_rows)
-                for label, rows in unit.surface_rows.items():
-                    surface_rows.setdefault(label, []).extend(rows)
-                for path, rows in unit.group_rows.items():
-                    group_rows.setdefault(path, []).extend(rows)
-                attrs.update(unit.attrs)
-                seq += 1
-            attrs["next_event_seq"] = seq
+            merged = merge_batch(batch, first_seq=self.log.next_seq, now=time.time())
             try:
-                await self._in_archive_thread(self.writer.commit, slice_rows=slice_rows, surface_rows=surface_rows,
-                                              group_rows=group_rows, attrs=attrs)
+                await self._in_archive_thread(self.writer.commit, slice_rows=merged.slice_rows,
+                                              surface_rows=merged.surface_rows, group_rows=merged.group_rows,
+                                              attrs=merged.attrs)
             except asyncio.CancelledError:
                 for emission in batch:
                     emission.done.cancel()
@@ -424,7 +383,7 @@ class RunRecord:
                                                                             reason="ARCHIVE_FAILED"))
                 continue
             emitted = time.time()
-            for emission, event in zip(batch, built):
+            for emission, event in zip(batch, merged.events):
                 event.emit_time_unix_s = emitted
                 if emission.apply is not None:
                     emission.apply(event)

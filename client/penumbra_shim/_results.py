@@ -135,6 +135,9 @@ class SurfaceReport:
     ``mass_multipoles`` / ``spin_multipoles`` M_n / M^(n+1), J_n / M^(n+1), index n = 0..4.
     ``<name>_error`` (same unit as ``<name>``): error estimates of area, irreducible_mass,
     akv_christodoulou_mass, akv_angular_momentum, dimensionless_spin (NaN: not estimated).
+    ``stability_eigenvalue`` (1/M^2): principal eigenvalue of the MOTS stability operator for
+    l = n + s, k = (n - s) / 2 (positive: strictly stable, e.g. an outer horizon; negative:
+    unstable, e.g. an inner common MOTS), with ``stability_eigenvalue_error``.
     ``angular_momentum`` is the older coordinate-rotation estimate (3-vector, M^2).
     ``coefficients`` are real spherical-harmonic coefficients of the radius, index l*l + l + m.
     """
@@ -178,6 +181,8 @@ class SurfaceReport:
     akv_christodoulou_mass_error: float = NAN
     akv_angular_momentum_error: float = NAN
     dimensionless_spin_error: float = NAN
+    stability_eigenvalue: float = NAN
+    stability_eigenvalue_error: float = NAN
     iterations: int = 0
     wall_time_s: float = NAN
     latency_s: float = NAN
@@ -208,6 +213,8 @@ class SurfaceReport:
             akv_christodoulou_mass_error=q.akv_christodoulou_mass_error_m,
             akv_angular_momentum_error=q.akv_angular_momentum_error_m2,
             dimensionless_spin_error=q.dimensionless_spin_error,
+            stability_eigenvalue=q.stability_eigenvalue_per_m2,
+            stability_eigenvalue_error=q.stability_eigenvalue_error_per_m2,
             iterations=s.iterations, wall_time_s=s.wall_time_s, latency_s=s.latency_s, method=s.method,
         )
 

@@ -105,3 +105,10 @@ def test_kerr_spin_is_reported_and_archived(client, archive_root):
     assert np.array_equal(rows["spin_multipoles"][i], s.spin_multipoles)
     for name in errors:
         assert rows[f"{name}_error"][i] == getattr(s, f"{name}_error"), name
+
+    # An outer horizon is strictly stable: positive principal eigenvalue of the stability operator
+    # (Andersson, Mars & Simon, PRL 95, 111102 (2005), from memory); streamed and archived alike.
+    print(f"stability eigenvalue {s.stability_eigenvalue:.6f} +- {s.stability_eigenvalue_error:.1e} / M^2")
+    assert s.stability_eigenvalue > 10 * s.stability_eigenvalue_error > 0
+    assert rows["stability_eigenvalue"][i] == s.stability_eigenvalue
+    assert rows["stability_eigenvalue_error"][i] == s.stability_eigenvalue_error

@@ -367,7 +367,7 @@ class WatchRunResponse(_message.Message):
     def __init__(self, event: _Optional[_Union[RunEvent, _Mapping]] = ...) -> None: ...
 
 class SurfaceQuantities(_message.Message):
-    __slots__ = ("area_m2", "irreducible_mass_m", "centroid_m", "radius_min_m", "radius_mean_m", "radius_max_m", "circumference_xy_m", "circumference_xz_m", "circumference_yz_m", "resolution_indicator", "angular_momentum_m2", "christodoulou_mass_m", "akv_angular_momentum_m2", "spin_direction", "dimensionless_spin", "akv_christodoulou_mass_m", "killing_quality", "spin_equatorial_circumference_m", "spin_polar_circumference_m", "spin_circumference_ratio", "mass_multipoles", "spin_multipoles", "area_error_m2", "irreducible_mass_error_m", "akv_christodoulou_mass_error_m", "akv_angular_momentum_error_m2", "dimensionless_spin_error")
+    __slots__ = ("area_m2", "irreducible_mass_m", "centroid_m", "radius_min_m", "radius_mean_m", "radius_max_m", "circumference_xy_m", "circumference_xz_m", "circumference_yz_m", "resolution_indicator", "angular_momentum_m2", "christodoulou_mass_m", "akv_angular_momentum_m2", "spin_direction", "dimensionless_spin", "akv_christodoulou_mass_m", "killing_quality", "spin_equatorial_circumference_m", "spin_polar_circumference_m", "spin_circumference_ratio", "mass_multipoles", "spin_multipoles", "area_error_m2", "irreducible_mass_error_m", "akv_christodoulou_mass_error_m", "akv_angular_momentum_error_m2", "dimensionless_spin_error", "stability_eigenvalue_per_m2", "stability_eigenvalue_error_per_m2")
     AREA_M2_FIELD_NUMBER: _ClassVar[int]
     IRREDUCIBLE_MASS_M_FIELD_NUMBER: _ClassVar[int]
     CENTROID_M_FIELD_NUMBER: _ClassVar[int]
@@ -395,6 +395,8 @@ class SurfaceQuantities(_message.Message):
     AKV_CHRISTODOULOU_MASS_ERROR_M_FIELD_NUMBER: _ClassVar[int]
     AKV_ANGULAR_MOMENTUM_ERROR_M2_FIELD_NUMBER: _ClassVar[int]
     DIMENSIONLESS_SPIN_ERROR_FIELD_NUMBER: _ClassVar[int]
+    STABILITY_EIGENVALUE_PER_M2_FIELD_NUMBER: _ClassVar[int]
+    STABILITY_EIGENVALUE_ERROR_PER_M2_FIELD_NUMBER: _ClassVar[int]
     area_m2: float
     irreducible_mass_m: float
     centroid_m: Vector3
@@ -422,7 +424,9 @@ class SurfaceQuantities(_message.Message):
     akv_christodoulou_mass_error_m: float
     akv_angular_momentum_error_m2: float
     dimensionless_spin_error: float
-    def __init__(self, area_m2: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., centroid_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_min_m: _Optional[float] = ..., radius_mean_m: _Optional[float] = ..., radius_max_m: _Optional[float] = ..., circumference_xy_m: _Optional[float] = ..., circumference_xz_m: _Optional[float] = ..., circumference_yz_m: _Optional[float] = ..., resolution_indicator: _Optional[float] = ..., angular_momentum_m2: _Optional[_Union[Vector3, _Mapping]] = ..., christodoulou_mass_m: _Optional[float] = ..., akv_angular_momentum_m2: _Optional[float] = ..., spin_direction: _Optional[_Union[Vector3, _Mapping]] = ..., dimensionless_spin: _Optional[float] = ..., akv_christodoulou_mass_m: _Optional[float] = ..., killing_quality: _Optional[float] = ..., spin_equatorial_circumference_m: _Optional[float] = ..., spin_polar_circumference_m: _Optional[float] = ..., spin_circumference_ratio: _Optional[float] = ..., mass_multipoles: _Optional[_Iterable[float]] = ..., spin_multipoles: _Optional[_Iterable[float]] = ..., area_error_m2: _Optional[float] = ..., irreducible_mass_error_m: _Optional[float] = ..., akv_christodoulou_mass_error_m: _Optional[float] = ..., akv_angular_momentum_error_m2: _Optional[float] = ..., dimensionless_spin_error: _Optional[float] = ...) -> None: ...
+    stability_eigenvalue_per_m2: float
+    stability_eigenvalue_error_per_m2: float
+    def __init__(self, area_m2: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., centroid_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_min_m: _Optional[float] = ..., radius_mean_m: _Optional[float] = ..., radius_max_m: _Optional[float] = ..., circumference_xy_m: _Optional[float] = ..., circumference_xz_m: _Optional[float] = ..., circumference_yz_m: _Optional[float] = ..., resolution_indicator: _Optional[float] = ..., angular_momentum_m2: _Optional[_Union[Vector3, _Mapping]] = ..., christodoulou_mass_m: _Optional[float] = ..., akv_angular_momentum_m2: _Optional[float] = ..., spin_direction: _Optional[_Union[Vector3, _Mapping]] = ..., dimensionless_spin: _Optional[float] = ..., akv_christodoulou_mass_m: _Optional[float] = ..., killing_quality: _Optional[float] = ..., spin_equatorial_circumference_m: _Optional[float] = ..., spin_polar_circumference_m: _Optional[float] = ..., spin_circumference_ratio: _Optional[float] = ..., mass_multipoles: _Optional[_Iterable[float]] = ..., spin_multipoles: _Optional[_Iterable[float]] = ..., area_error_m2: _Optional[float] = ..., irreducible_mass_error_m: _Optional[float] = ..., akv_christodoulou_mass_error_m: _Optional[float] = ..., akv_angular_momentum_error_m2: _Optional[float] = ..., dimensionless_spin_error: _Optional[float] = ..., stability_eigenvalue_per_m2: _Optional[float] = ..., stability_eigenvalue_error_per_m2: _Optional[float] = ...) -> None: ...
 
 class SurfaceResult(_message.Message):
     __slots__ = ("label", "time_m", "iteration", "centre_m", "lmax", "coefficients_m", "quantities", "residual_max_per_m", "iterations", "wall_time_s", "latency_s", "method", "finder_status", "residual_max_between_nodes_per_m")

@@ -61,6 +61,8 @@ SPIN_SCALARS = {
     "akv_christodoulou_mass_error": "akv_christodoulou_mass_error_m",
     "akv_angular_momentum_error": "akv_angular_momentum_error_m2",
     "dimensionless_spin_error": "dimensionless_spin_error",
+    "stability_eigenvalue": "stability_eigenvalue_per_m2",
+    "stability_eigenvalue_error": "stability_eigenvalue_error_per_m2",
 }
 #: Multipoles carried, index n = 0 .. MULTIPOLE_COUNT - 1.
 MULTIPOLE_COUNT = 5

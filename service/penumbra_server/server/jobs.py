@@ -245,6 +245,34 @@ def _error_bars(surface: Surface, data: Slice, order: int) -> tuple[dict, list[s
     return out, []
 
 
+#: Harmonic degree of the stability operator's eigenfunction below the surface's own (the error
+#: estimate compares the two degrees).
+STABILITY_LMAX_DROP = 2
+
+
+def _stability_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str]]:
+    """Principal eigenvalue of the MOTS stability operator (1/M^2) and an error estimate.
+
+    The estimate is the change of the eigenvalue when the eigenfunction's harmonic degree drops
+    by :data:`STABILITY_LMAX_DROP` (the surface itself unchanged): the truncation of psi is what
+    the Galerkin solve controls; the data's own error shows up in the surface's error bars.
+    NaN and a note when it cannot be computed (the surface stays found).
+    """
+    from ..numerics.stability import principal_eigenvalue, stability_matrices
+
+    out = {"stability_eigenvalue": _NAN, "stability_eigenvalue_error": _NAN}
+    try:
+        mats = stability_matrices(surface, data, order=order)
+        value = principal_eigenvalue(mats)
+        out["stability_eigenvalue"] = value
+        lower = surface.lmax - STABILITY_LMAX_DROP
+        if lower >= 1:
+            out["stability_eigenvalue_error"] = abs(value - principal_eigenvalue(mats, lower))
+    except Exception as exc:  # an eigenvalue that cannot be made must not lose the surface
+        return out, [f"stability not computed: {type(exc).__name__}: {exc}"]
+    return out, []
+
+
 def run_surface_job(job: SurfaceJob) -> SurfaceOutcome:
     """Look for one surface: the seed first, then scan candidates; measure what converges.
 
@@ -307,6 +335,9 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
                 message = f"{result.message}; not measured: {exc}"
             spin_quantities, notes = _spin_quantities(surface, measured_in, job.interpolation_order)
             quantities.update(spin_quantities)
+            stability, stability_notes = _stability_quantities(surface, measured_in, job.interpolation_order)
+            quantities.update(stability)
+            notes.extend(stability_notes)
             errors, error_notes = _error_bars(surface, job.data, job.interpolation_order)
             quantities.update(errors)
             notes.extend(error_notes)

@@ -266,10 +266,16 @@ class ArchiveWriter:
             if rows:
                 pending.append((group_path, rows, cols, f"{group_path!r}", row_dimension))
         committed = dict(self._committed)
+        created = [(group_path, cols, row_dimension) for group_path, _, cols, _, row_dimension in pending
+                   if group_path not in committed]
+        for group_path, cols, row_dimension in created:
+            _create_columns(self._group.require_group(group_path), cols, row_dimension)
+            committed[group_path] = 0
+        if created:
+            # New groups enter the consolidated metadata empty, before any row: xarray then opens
+            # them (with no rows) whatever moment a kill interrupts the rest of this commit.
+            _consolidate(self._group)
         for group_path, rows, cols, row_kind, row_dimension in pending:
-            if group_path not in committed:
-                _create_columns(self._group.require_group(group_path), cols, row_dimension)
-                committed[group_path] = 0
             start = committed[group_path]
             stop = start + len(rows)
             for column in cols:

@@ -26,7 +26,8 @@ class Serve:
     """One `penumbra serve` process on 127.0.0.1 (port 0) over ``archive``; ``crash_at`` sets
     the crash point (``"<point>:<n>"``), None for none."""
 
-    def __init__(self, tmp_path: Path, archive: Path, crash_at: str | None = None) -> None:
+    def __init__(self, tmp_path: Path, archive: Path, crash_at: str | None = None, *,
+                 listen: str = "127.0.0.1:0") -> None:
         self.ready = tmp_path / f"address-{time.monotonic_ns()}"
         env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1")
         env.pop(ENV_VAR, None)
@@ -34,7 +35,7 @@ class Serve:
             env[ENV_VAR] = crash_at
         self.log = tmp_path / f"serve-{time.monotonic_ns()}.log"
         self._log_file = open(self.log, "w")
-        command = SERVE + ["--listen", "127.0.0.1:0", "--archive-root", str(archive), "--workers", "1",
+        command = SERVE + ["--listen", listen, "--archive-root", str(archive), "--workers", "1",
                            "--ready-file", str(self.ready)]
         self.process = subprocess.Popen(command, stdout=self._log_file, stderr=subprocess.STDOUT, env=env)
         self.address = self._wait_ready()
@@ -69,6 +70,15 @@ class Serve:
         self.kill()
         self.channel.close()
         self._log_file.close()
+
+
+def free_port() -> int:
+    """A port free now on 127.0.0.1 (a restarted server listens where the shim reconnects)."""
+    import socket
+
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
 
 
 class AckingClient:

@@ -15,7 +15,10 @@ from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_server.archive import archive_path
 from penumbra_server.server.spool import spool_path
 
-from crash_support import AckingClient, Serve, check_archive_after_kill, check_archive_final
+import penumbra_shim as ps
+from penumbra_server.archive import open_archive
+
+from crash_support import AckingClient, Serve, check_archive_after_kill, check_archive_final, free_port
 from service_support import lone_hole_slice, lone_spec
 
 pytestmark = pytest.mark.slow
@@ -140,3 +143,35 @@ def test_kills_lose_no_acknowledged_slice(tmp_path):
     print(f"\nkills: {kills} ({len(crashes)} at named points, {RANDOM_KILLS} at random moments), "
           f"slices acknowledged: {len(client.acked)}, lost: 0, archived twice: 0, "
           f"replays from the spool: {replayed}")
+
+
+def test_the_shim_learns_what_a_restarted_server_holds(tmp_path):
+    """A kill after the slice reached the spool but before its answer: the shim's retry finds
+    the slice held (answered duplicate, never archived twice) and the handle tells what is held."""
+    archive = tmp_path / "archive"
+    listen = f"127.0.0.1:{free_port()}"
+    first = Serve(tmp_path, archive, "spool-before-ack:2", listen=listen)
+    second = None
+    client = ps.connect(first.address, deadline_s=5.0, retry_budget_s=600.0)
+    try:
+        run = client.open_run(lone_spec("shim after a crash", lmax=4, queue_depth=64), max_retry_s=600.0)
+        ack = run.submit(_slice(0)).result(120)
+        assert ack.accepted and ack.persisted
+        ticket = run.submit(_slice(1))  # the server kills itself before answering this one
+        assert first.killed_itself()
+        second = Serve(tmp_path, archive, listen=listen)
+        ack = ticket.result(300)
+        assert ack.duplicate and not ack.accepted, ack
+        info = run.describe()
+        assert run.server_held_iteration == 1 and info.highest_held_iteration == 1
+        assert info.slices_replayed >= 1  # slice 1, and slice 0 if it was not archived before the kill
+        assert run.submit(_slice(2)).result(120).accepted  # the run takes data again
+        run.close()
+    finally:
+        client.close()
+        first.close()
+        if second is not None:
+            second.close()
+    view = open_archive(archive_path(archive, run.run_id))
+    assert sorted(view.slices()["iteration"].tolist()) == [0, 1, 2]
+    assert sorted(view.surface("A")["iteration"].tolist()) == [0, 1, 2]

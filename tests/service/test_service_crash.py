@@ -1,6 +1,7 @@
-"""Kill -9 of a real `penumbra serve` at named points and at random moments: no acknowledged slice
-is lost, none is archived twice, the archive opens in zarr and xarray after every kill, and the
-run takes data again after every restart (a CloseRun retried across a restart too)."""
+"""Kill -9 of a real `penumbra serve` at named points and at random moments, and a SIGTERM: no
+acknowledged slice is lost, none is archived twice, the archive opens in zarr and xarray after
+every kill, and the run takes data again after every restart (a CloseRun retried across a
+restart too)."""
 
 from __future__ import annotations
 
@@ -26,7 +27,7 @@ pytestmark = pytest.mark.slow
 #: Small slices: the finds are quick and the kills, not the numerics, are under test.
 NODES = 21
 #: New slices sent per server life before its crash point (the resends come on top).
-PER_LIFE = 3
+PER_LIFE = 2
 
 
 def _slice(iteration: int):
@@ -123,6 +124,17 @@ def test_kills_lose_no_acknowledged_slice(tmp_path):
         sent_upto += PER_LIFE
         _random_life(tmp_path, archive, client, run_id, sent_upto, chooser)
         kills += 1
+    # SIGTERM with slices queued: the graceful stop leaves them in the spool for the next start.
+    serve = Serve(tmp_path, archive)
+    try:
+        replayed += _after_restart(serve.stub, run_id, client).slices_replayed
+        sent_upto += PER_LIFE
+        assert _send_unacked(serve.stub, run_id, client, sent_upto), serve.log.read_text()
+        serve.process.terminate()
+        serve.process.wait(timeout=120)
+        check_archive_after_kill(archive_path(archive, run_id))
+    finally:
+        serve.close()
     serve = Serve(tmp_path, archive)
     try:
         replayed += _after_restart(serve.stub, run_id, client).slices_replayed
@@ -140,7 +152,7 @@ def test_kills_lose_no_acknowledged_slice(tmp_path):
     # A slice on disk whose answer the kill cut off was replayed, and its resend was a duplicate.
     assert replayed >= 1
     assert "OUTCOME_DUPLICATE" in client.acked.values()
-    print(f"\nkills: {kills} ({len(crashes)} at named points, {RANDOM_KILLS} at random moments), "
+    print(f"\nkills: {kills} ({len(crashes)} at named points, {RANDOM_KILLS} at random moments) and one SIGTERM, "
           f"slices acknowledged: {len(client.acked)}, lost: 0, archived twice: 0, "
           f"replays from the spool: {replayed}")
 

@@ -191,8 +191,22 @@ class ArchiveWriter:
             shutil.rmtree(self.path / group_path, ignore_errors=True)
             repaired.append(f"{group_path}: removed (created by a commit that never completed)")
         self._arrays.clear()
-        _consolidate(self._group)
+        if repaired or not self._consolidated_is_current():
+            _consolidate(self._group)
         return repaired
+
+    def _consolidated_is_current(self) -> bool:
+        """Whether the consolidated metadata shows every committed group with its committed rows
+        (a kill between a commit's marker and its consolidation leaves it one commit behind)."""
+        try:
+            view = zarr.open_group(str(self.path), mode="r", zarr_format=3, use_consolidated=True)
+            for group_path, rows in self._committed.items():
+                arrays = list(view[group_path].arrays())
+                if arrays and arrays[0][1].shape[0] != rows:
+                    return False
+        except Exception:  # missing or unreadable consolidated metadata: rewrite it
+            return False
+        return True
 
     # -- writing ----------------------------------------------------------------------------
 

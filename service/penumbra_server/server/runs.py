@@ -282,6 +282,10 @@ class RunRecord:
         self._queue.append(item)
         self._queue_changed.set()
 
+    def _log_spool_failure(self, written: asyncio.Future) -> None:
+        if not written.cancelled() and written.exception() is not None:
+            log.error("run %s: spooling an assembled slice failed: %s", self.run_id, written.exception())
+
     def accept_assembled(self, slice_: Slice | None, nbytes: int,
                          report: pb.SlicePartsMissing | None) -> pb.SendSliceResponse | None:
         """Take a slice assembled from parts (parts.PartSink): announce ``report`` (parts missing)
@@ -292,7 +296,14 @@ class RunRecord:
                 self.slices_incomplete += 1
         if slice_ is None:
             return None
-        return self.accept(QueuedSlice(slice_=slice_, nbytes=nbytes, arrival_unix_s=time.time()))
+        item = QueuedSlice(slice_=slice_, nbytes=nbytes, arrival_unix_s=time.time())
+        response = self.accept(item)
+        if self.spool is not None and response.outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED:
+            # The parts were answered from memory; the assembled slice is kept from now on. The
+            # archive thread runs jobs in order, so this write precedes the slice's release.
+            written = asyncio.get_running_loop().run_in_executor(self.archive_thread, self.spool.write, item)
+            written.add_done_callback(self._log_spool_failure)
+        return response
 
     # -- processing ---------------------------------------------------------------------------
 

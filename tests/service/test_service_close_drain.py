@@ -74,3 +74,23 @@ def test_a_slice_assembled_from_parts_is_spooled_once_complete(tmp_path):
         held.close_pool()
     assert (run.slices_processed, run.slices_spooled, run.highest_held_iteration) == (1, 0, 4)
     assert not spool_path(tmp_path, run_id).exists()
+
+
+def test_a_slice_the_spool_cannot_take_is_refused_not_acknowledged(tmp_path):
+    with BackgroundServer(archive_root=tmp_path, workers=1, options=ServerOptions(workers=1)) as bg, \
+            grpc.insecure_channel(bg.address) as channel:
+        stub = pb_grpc.HorizonServiceStub(channel)
+        spec = lone_spec("spool in the way", lmax=4).to_wire()
+        run_id = stub.OpenRun(pb.OpenRunRequest(spec=spec), timeout=60).run.run_id
+        blocker = spool_path(tmp_path, run_id)
+        blocker.write_text("a file where the spool directory goes")
+        with pytest.raises(grpc.RpcError) as caught:
+            stub.SendSlice(iter(raw_requests(lone_hole_slice(0, nodes=21), run_id)), timeout=60)
+        assert caught.value.code() == grpc.StatusCode.INTERNAL
+        assert "spool" in caught.value.details() and "not accepted" in caught.value.details()
+        run = stub.GetRun(pb.GetRunRequest(run_id=run_id), timeout=60).run
+        assert (run.slices_received, run.highest_held_iteration) == (0, -1)
+        blocker.unlink()  # the resend is taken as new
+        reply = stub.SendSlice(iter(raw_requests(lone_hole_slice(0, nodes=21), run_id)), timeout=60)
+        assert reply.outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED and reply.persisted
+        stub.CloseRun(pb.CloseRunRequest(run_id=run_id), timeout=300)

@@ -16,6 +16,7 @@ restored by run_manager.py and restore.py; parts.py and link_records.py hang off
 from __future__ import annotations
 
 import asyncio
+import errno
 import logging
 import time
 from collections import deque
@@ -263,7 +264,14 @@ class RunRecord:
             return self.duplicate_response(item.iteration, item.nbytes)
         if self.spool is None:
             return self.accept(item)
-        await self._in_archive_thread(self.spool.write, item)
+        try:
+            await self._in_archive_thread(self.spool.write, item)
+        except OSError as exc:  # not on disk: not acknowledged (the client keeps the slice)
+            full = exc.errno in (errno.ENOSPC, errno.EDQUOT)
+            raise ServiceError(grpc.StatusCode.RESOURCE_EXHAUSTED if full else grpc.StatusCode.INTERNAL,
+                               f"iteration: slice {item.iteration} could not be written to the run's spool "
+                               f"{self.spool.directory}: {exc.strerror or exc}; it was not accepted",
+                               reason="SPOOL_WRITE_FAILED") from None
         self.highest_held = max(self.highest_held, item.iteration)
         crash_points.reached("spool-before-ack")
         response = self.accept(item)

@@ -35,6 +35,10 @@ class RunInfo:
     ``slices_incomplete``: slices sent in parts that were processed with parts missing.
     ``client_gaps_recorded``: outages of the client's link recorded on the run;
     ``slices_rejected``: slices refused after their header named the run.
+    ``highest_held_iteration``: the highest iteration the server holds, archived or kept in its
+    spool on disk (-1: none): after a server restart, slices up to it need no resend.
+    ``slices_spooled``: acknowledged slices on the server's disk, not yet archived;
+    ``slices_replayed``: slices the server found in its spool at its last start and queued again.
     """
 
     run_id: str
@@ -54,6 +58,9 @@ class RunInfo:
     slices_incomplete: int = 0
     client_gaps_recorded: int = 0
     slices_rejected: int = 0
+    highest_held_iteration: int = -1
+    slices_spooled: int = 0
+    slices_replayed: int = 0
 
     @classmethod
     def from_wire(cls, run: pb.Run) -> "RunInfo":
@@ -66,6 +73,8 @@ class RunInfo:
             last_received_iteration=run.last_received_iteration, last_received_time=run.last_received_time_m,
             slices_incomplete=run.slices_incomplete,
             client_gaps_recorded=run.client_gaps_recorded, slices_rejected=run.slices_rejected,
+            highest_held_iteration=run.highest_held_iteration, slices_spooled=run.slices_spooled,
+            slices_replayed=run.slices_replayed,
         )
 
 
@@ -84,6 +93,8 @@ class SliceAck:
     ``duplicate``: the server held this part already.
     ``drop_reason``: for a slice skipped locally, why, in words (see
     :data:`penumbra_shim.DROP_REASONS`), e.g. "link down: server unreachable".
+    ``persisted``: the server wrote the accepted slice to its disk before answering (it survives
+    a crash of the server).
     """
 
     iteration: int
@@ -101,6 +112,7 @@ class SliceAck:
     parts_received: int = 1
     parts_expected: int = 1
     drop_reason: str = ""
+    persisted: bool = False
 
     @classmethod
     def from_wire(cls, response: pb.SendSliceResponse, *, attempts: int, cropped: bool = False,
@@ -120,6 +132,7 @@ class SliceAck:
             queue_position=response.queue_position,
             skipped_iterations=tuple(response.skipped_iterations),
             attempts=attempts,
+            persisted=response.persisted,
         )
 
 

@@ -149,7 +149,7 @@ class RefinementPolicy(_message.Message):
     def __init__(self, points_across_horizon: _Optional[float] = ..., nesting_depth: _Optional[int] = ..., level_ratio: _Optional[float] = ..., finest_radius_factor: _Optional[float] = ..., steering_interval_m: _Optional[float] = ..., guard_points: _Optional[int] = ...) -> None: ...
 
 class Run(_message.Message):
-    __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m", "slices_incomplete", "client_gaps_recorded", "slices_rejected")
+    __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m", "slices_incomplete", "client_gaps_recorded", "slices_rejected", "highest_held_iteration", "slices_spooled", "slices_replayed")
     class State(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         STATE_UNSPECIFIED: _ClassVar[Run.State]
@@ -174,6 +174,9 @@ class Run(_message.Message):
     SLICES_INCOMPLETE_FIELD_NUMBER: _ClassVar[int]
     CLIENT_GAPS_RECORDED_FIELD_NUMBER: _ClassVar[int]
     SLICES_REJECTED_FIELD_NUMBER: _ClassVar[int]
+    HIGHEST_HELD_ITERATION_FIELD_NUMBER: _ClassVar[int]
+    SLICES_SPOOLED_FIELD_NUMBER: _ClassVar[int]
+    SLICES_REPLAYED_FIELD_NUMBER: _ClassVar[int]
     run_id: str
     spec: RunSpec
     state: Run.State
@@ -190,7 +193,10 @@ class Run(_message.Message):
     slices_incomplete: int
     client_gaps_recorded: int
     slices_rejected: int
-    def __init__(self, run_id: _Optional[str] = ..., spec: _Optional[_Union[RunSpec, _Mapping]] = ..., state: _Optional[_Union[Run.State, str]] = ..., create_time_unix_s: _Optional[float] = ..., close_time_unix_s: _Optional[float] = ..., slices_received: _Optional[int] = ..., slices_processed: _Optional[int] = ..., slices_skipped: _Optional[int] = ..., slices_duplicate: _Optional[int] = ..., last_event_seq: _Optional[int] = ..., archive_path: _Optional[str] = ..., last_received_iteration: _Optional[int] = ..., last_received_time_m: _Optional[float] = ..., slices_incomplete: _Optional[int] = ..., client_gaps_recorded: _Optional[int] = ..., slices_rejected: _Optional[int] = ...) -> None: ...
+    highest_held_iteration: int
+    slices_spooled: int
+    slices_replayed: int
+    def __init__(self, run_id: _Optional[str] = ..., spec: _Optional[_Union[RunSpec, _Mapping]] = ..., state: _Optional[_Union[Run.State, str]] = ..., create_time_unix_s: _Optional[float] = ..., close_time_unix_s: _Optional[float] = ..., slices_received: _Optional[int] = ..., slices_processed: _Optional[int] = ..., slices_skipped: _Optional[int] = ..., slices_duplicate: _Optional[int] = ..., last_event_seq: _Optional[int] = ..., archive_path: _Optional[str] = ..., last_received_iteration: _Optional[int] = ..., last_received_time_m: _Optional[float] = ..., slices_incomplete: _Optional[int] = ..., client_gaps_recorded: _Optional[int] = ..., slices_rejected: _Optional[int] = ..., highest_held_iteration: _Optional[int] = ..., slices_spooled: _Optional[int] = ..., slices_replayed: _Optional[int] = ...) -> None: ...
 
 class OpenRunRequest(_message.Message):
     __slots__ = ("spec", "request_id")
@@ -323,7 +329,7 @@ class SendSliceRequest(_message.Message):
     def __init__(self, header: _Optional[_Union[SliceHeader, _Mapping]] = ..., chunk: _Optional[_Union[SliceChunk, _Mapping]] = ...) -> None: ...
 
 class SendSliceResponse(_message.Message):
-    __slots__ = ("run_id", "iteration", "outcome", "received_bytes", "queue_position", "skipped_iterations", "parts_received", "parts_expected")
+    __slots__ = ("run_id", "iteration", "outcome", "received_bytes", "queue_position", "skipped_iterations", "parts_received", "parts_expected", "persisted")
     class Outcome(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         OUTCOME_UNSPECIFIED: _ClassVar[SendSliceResponse.Outcome]
@@ -342,6 +348,7 @@ class SendSliceResponse(_message.Message):
     SKIPPED_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
     PARTS_RECEIVED_FIELD_NUMBER: _ClassVar[int]
     PARTS_EXPECTED_FIELD_NUMBER: _ClassVar[int]
+    PERSISTED_FIELD_NUMBER: _ClassVar[int]
     run_id: str
     iteration: int
     outcome: SendSliceResponse.Outcome
@@ -350,7 +357,8 @@ class SendSliceResponse(_message.Message):
     skipped_iterations: _containers.RepeatedScalarFieldContainer[int]
     parts_received: int
     parts_expected: int
-    def __init__(self, run_id: _Optional[str] = ..., iteration: _Optional[int] = ..., outcome: _Optional[_Union[SendSliceResponse.Outcome, str]] = ..., received_bytes: _Optional[int] = ..., queue_position: _Optional[int] = ..., skipped_iterations: _Optional[_Iterable[int]] = ..., parts_received: _Optional[int] = ..., parts_expected: _Optional[int] = ...) -> None: ...
+    persisted: bool
+    def __init__(self, run_id: _Optional[str] = ..., iteration: _Optional[int] = ..., outcome: _Optional[_Union[SendSliceResponse.Outcome, str]] = ..., received_bytes: _Optional[int] = ..., queue_position: _Optional[int] = ..., skipped_iterations: _Optional[_Iterable[int]] = ..., parts_received: _Optional[int] = ..., parts_expected: _Optional[int] = ..., persisted: _Optional[bool] = ...) -> None: ...
 
 class WatchRunRequest(_message.Message):
     __slots__ = ("run_id", "start_seq")

@@ -28,6 +28,7 @@ import numpy as np
 from scipy.optimize import minimize_scalar
 
 from .finder import _evaluate, _jacobian, _Run  # the finder's linearisation of Theta, shared
+from .interpolation import DEFAULT_ORDER
 from .sources import as_tracked_source
 from .surfaces import Surface, angular_grid
 
@@ -56,6 +57,7 @@ class ConstantExpansionSettings:
         radius_tolerance: bracket width (M) at which the minimisation of c(rbar) stops.
         truncation_check: also solve at l_max - 2 at the minimiser; the difference of c enters
             the uncertainty (one more solve).
+        interpolation_order: interpolation nodes per axis for grid data.
     """
 
     lmax: int = 8
@@ -65,6 +67,7 @@ class ConstantExpansionSettings:
     min_radius: float = 1e-3
     radius_tolerance: float = 1e-4
     truncation_check: bool = True
+    interpolation_order: int = DEFAULT_ORDER
 
     def __post_init__(self) -> None:
         if self.lmax < 2:
@@ -187,13 +190,13 @@ def solve_constant_expansion(data, guess: Surface, expansion: float, *,
     """
     if not np.isfinite(expansion):
         raise ValueError(f"expansion: expected a finite number, got {expansion}")
-    return _newton(as_tracked_source(data), guess.with_lmax(settings.lmax), expansion, settings, free_c=False)
+    return _newton(as_tracked_source(data, order=settings.interpolation_order), guess.with_lmax(settings.lmax), expansion, settings, free_c=False)
 
 
 def solve_at_mean_radius(data, guess: Surface, *, expansion_guess: float = 0.0,
                          settings: ConstantExpansionSettings = ConstantExpansionSettings()) -> ConstantExpansionSurface:
     """The constant-expansion surface whose mean radius is that of ``guess``; c is solved for."""
-    return _newton(as_tracked_source(data), guess.with_lmax(settings.lmax), expansion_guess, settings, free_c=True)
+    return _newton(as_tracked_source(data, order=settings.interpolation_order), guess.with_lmax(settings.lmax), expansion_guess, settings, free_c=True)
 
 
 def _at_radius(surface: Surface, radius: float) -> Surface:
@@ -212,7 +215,7 @@ def smallest_enclosing_expansion(data, centre, start_radius: float, *,
         raise ValueError(f"start_radius: expected a positive number, got {start_radius}")
     centre = np.asarray(centre, dtype=float).reshape(3)
     started = time.perf_counter()
-    source = as_tracked_source(data)
+    source = as_tracked_source(data, order=settings.interpolation_order)
     solves = 0
     radii: list[float] = []
     cs: list[float] = []

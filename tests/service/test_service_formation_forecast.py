@@ -22,6 +22,9 @@ import pytest
 
 import penumbra_shim as ps
 from penumbra_server.archive import open_archive
+from penumbra_server.archive._layout import archive_path
+from penumbra_server.cli.report import write_report
+from penumbra_server.cli.watch import RunProgress, formation_line
 
 from tracking_support import bl_patches, cube
 
@@ -51,7 +54,7 @@ def _wait_for(events_iter, deadline_s: float, predicate):
 
 
 @pytest.mark.slow
-def test_forecasts_made_slices_ahead_bracket_the_formation(client, archive_root):
+def test_forecasts_made_slices_ahead_bracket_the_formation(client, archive_root, tmp_path):
     spec = ps.RunSpec(variable_set="conformal_w", name="formation forecast",
                       bodies=(ps.Body("A", (0.55, 0.0, 0.0), MASS), ps.Body("B", (-0.55, 0.0, 0.0), MASS)),
                       finder=ps.FinderOptions(lmax=8, tolerance=1e-8),
@@ -108,6 +111,20 @@ def test_forecasts_made_slices_ahead_bracket_the_formation(client, archive_root)
     assert np.allclose(rows["c_min"], c)
     assert np.allclose(rows["formation_time"][2:], [f.formation_time for f in forecasts][2:])
     assert "formation_forecast" in set(view.tracking_events()["kind"].tolist())
+
+    # `penumbra watch` shows the newest forecast; the report plots c_min and the forecasts.
+    progress = RunProgress()
+    for event in seen:
+        progress.absorb(event)
+    line = formation_line(progress)
+    assert line.startswith("formation forecast (from t = 9.000 M): c_min = ") and "common horizon expected at t = " in line
+    report = write_report(archive_path(archive_root, run.run_id), tmp_path / "report")
+    c_axes, forecast_axes = report.figures["formation.png"].axes[:2]
+    plotted = c_axes.lines[0].get_ydata()
+    assert np.allclose(plotted, c)
+    assert np.allclose(forecast_axes.lines[0].get_ydata(), [f.formation_time for f in forecasts if f.forecast_available])
+    summary = report.summary_path.read_text()
+    assert "formation forecast: 5 constant-expansion searches" in summary and "last forecast (made at t = 9.000 M)" in summary
 
 
 def test_formation_forecast_can_be_turned_off(client, archive_root):

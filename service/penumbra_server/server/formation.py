@@ -121,6 +121,7 @@ class FormationWatch:
     _in_flight: bool = False
     _last_search_time: float | None = None
     _tasks: set = field(default_factory=set)
+    _published: list = field(default_factory=list)
 
     def __call__(self, run: "RunRecord", item: "QueuedSlice", outcomes) -> None:
         steering = run.steering
@@ -150,6 +151,14 @@ class FormationWatch:
         self._tasks.add(task)
         task.add_done_callback(self._tasks.discard)
 
+    async def drain(self) -> None:
+        """Wait for the search in flight and its event's commit (the run is closing)."""
+        while self._tasks:
+            await asyncio.gather(*list(self._tasks), return_exceptions=True)
+        for done in list(self._published):
+            await asyncio.wait([done])
+        self._published.clear()
+
     async def _search(self, run: "RunRecord", item: "QueuedSlice", job: FormationJob) -> None:
         try:
             result = await run.executor.run(job)
@@ -157,7 +166,7 @@ class FormationWatch:
                 result = FormationOutcome(job.label, False, float("nan"), float("nan"), float("nan"),
                                           getattr(result, "message", str(result)), getattr(result, "wall_time_s", 0.0))
             t = float(item.slice_.time)
-            if result.found and np.isfinite(result.c_min):
+            if result.found and np.isfinite(result.c_min) and all(t != h[0] for h in self.history):
                 self.history.append((t, result.c_min, result.c_min_error))
                 self.history.sort()
             forecast = None
@@ -165,8 +174,9 @@ class FormationWatch:
                 times, cs, errs = (np.array(v) for v in zip(*self.history))
                 forecast = forecast_formation(times, cs, errs)
             payload = formation_message(job, result, forecast)
-            run.publish(lambda event: event.formation_forecast.CopyFrom(payload), time_m=t,
-                        iteration=item.iteration, rows=_rows(payload, item))
+            done = run.publish(lambda event: event.formation_forecast.CopyFrom(payload), time_m=t,
+                               iteration=item.iteration, rows=_rows(payload, item))
+            self._published = [f for f in self._published if not f.done()] + [done]
         except Exception:  # the forecast must never take the run down
             log.exception("run %s: formation search of iteration %d failed", run.run_id, item.iteration)
         finally:

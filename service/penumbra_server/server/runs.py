@@ -411,6 +411,10 @@ class RunRecord:
         self._closing = True
         self._queue_changed.set()
         await self._processor_task
+        for observer in self.slice_observers:  # work an observer started after a slice (formation.py)
+            drain = getattr(observer, "drain", None)
+            if drain is not None:
+                await drain()
         await self.announce_state(pb.Run.STATE_CLOSED, reason)
         self.state = pb.Run.STATE_CLOSED
         self.closed_unix_s = time.time()

@@ -22,7 +22,7 @@ Units: lengths M, expansions 1/M.
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy.optimize import minimize_scalar
@@ -296,8 +296,6 @@ def smallest_enclosing_expansion(data, centre, start_radius: float, *,
 
 
 def _replace_lmax(settings: ConstantExpansionSettings, lmax: int) -> ConstantExpansionSettings:
-    from dataclasses import replace
-
     return replace(settings, lmax=lmax)
 
 

@@ -41,7 +41,6 @@ from .run_types import ManagerOptions, QueuedSlice
 from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, merge_batch, notice_emission, parts_missing_emission, skip_emission, slice_emission,
                          state_emission, surface_emission)
 from .scheduler import SurfacePlan, SurfacePlanner
-from .formation import FormationWatch
 from .search import search_plan
 from .steering import RunSteering
 from .surface_state import SurfaceState, record_outcome
@@ -126,9 +125,6 @@ class RunRecord:
         #: Called after each processed slice with (run, queued slice, outcomes): a hook for
         #: custom tracking. Exceptions are logged, never raised into the run.
         self.slice_observers: list[Callable[["RunRecord", QueuedSlice, list[SurfaceOutcome]], None]] = []
-        if settings.formation_forecast and self.steering.common_label is not None:
-            # When the pair's common horizon will form (formation.py): searches between slices.
-            self.slice_observers.append(FormationWatch())
         self._queue: deque[QueuedSlice] = deque()
         self._queue_changed = asyncio.Event()
         self._closing = False
@@ -411,10 +407,7 @@ class RunRecord:
         self._closing = True
         self._queue_changed.set()
         await self._processor_task
-        for observer in self.slice_observers:  # work an observer started after a slice (formation.py)
-            drain = getattr(observer, "drain", None)
-            if drain is not None:
-                await drain()
+        await asyncio.gather(*(o.drain() for o in self.slice_observers if hasattr(o, "drain")))  # formation.py
         await self.announce_state(pb.Run.STATE_CLOSED, reason)
         self.state = pb.Run.STATE_CLOSED
         self.closed_unix_s = time.time()

@@ -283,15 +283,16 @@ def smallest_enclosing_expansion(data, centre, start_radius: float, *,
     # the marched samples times the bracket tolerance squared bounds it.
     curvature = _second_difference(radii[-3:], cs[-3:])
     err = abs(curvature) * settings.radius_tolerance**2 + settings.tolerance
-    note = f"{solves} solves, minimiser {'converged' if refined.success else 'stopped'}"
+    notes = [f"minimiser {'converged' if refined.success else 'stopped'}"]
     if settings.truncation_check:
         coarse = solve(rbar, surface, c_min, lmax=settings.lmax - 2)
         if coarse.converged:
             err += abs(coarse.expansion - c_min)
         else:
-            note += f"; the l_max - 2 check did not converge ({coarse.message})"
+            notes.append(f"the l_max - 2 check did not converge ({coarse.message})")
     if failed:
-        note += f"; {len(failed)} refinement solves failed"
+        notes.append(f"{len(failed)} refinement solves failed")
+    note = f"{solves} solves, " + "; ".join(notes)
     return finish(True, c_min, err, surface, rbar, f"c_min = {c_min:.6g} +- {err:.2g} / M at mean radius {rbar:.5g} M ({note})")
 
 

@@ -24,6 +24,8 @@ from penumbra_server.archive import open_archive
 from penumbra_server.archive._layout import archive_path
 from penumbra_server.cli.report import write_report
 from penumbra_server.cli.watch import RunProgress, formation_line
+from penumbra_server.server.formation import FormationWatch
+from penumbra_shim._wire import horizons_pb2 as pb
 
 from tracking_support import bl_patches, cube
 
@@ -147,3 +149,15 @@ def test_formation_forecast_can_be_turned_off(client, archive_root):
     assert sum(e.kind == "slice_processed" for e in events) == 3
     assert not [e for e in events if e.kind == "formation_forecast"]
     assert open_archive(archive_root, run.run_id).run_spec["formation_forecast"] is False
+
+
+def test_a_restarted_watch_takes_back_its_archived_history():
+    # The server's formation watch rebuilds its c_min history from archived events (restore.py).
+    watch = FormationWatch()
+    for t, c, found in ((1.0, 0.15, True), (3.0, float("nan"), False), (5.0, 0.10, True), (5.0, 0.10, True)):
+        event = pb.RunEvent(seq=1, time_m=t, iteration=int(t))
+        event.formation_forecast.CopyFrom(pb.FormationForecast(label="common", c_min_found=found, c_min_per_m=c,
+                                                               c_min_error_per_m=1e-4))
+        watch.restore_event(event)
+    assert watch.history == [(1.0, 0.15, 1e-4), (5.0, 0.10, 1e-4)]
+    assert watch._last_search_time == 5.0 and watch.searches == 4

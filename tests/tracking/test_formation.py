@@ -47,3 +47,4 @@ def test_no_forecast_when_c_min_does_not_fall():
 def test_bad_input_names_the_field(kwargs, field):
     with pytest.raises(FormationForecastError, match=field):
         forecast_formation(**kwargs)
+

@@ -151,6 +151,16 @@ class FormationWatch:
         self._tasks.add(task)
         task.add_done_callback(self._tasks.discard)
 
+    def restore_event(self, event: pb.RunEvent) -> None:
+        """Take back an archived ``formation_forecast`` event (a restarted server): its c_min
+        joins the history and its slice counts as the last one searched."""
+        f, t = event.formation_forecast, float(event.time_m)
+        if f.c_min_found and np.isfinite(f.c_min_per_m) and all(t != h[0] for h in self.history):
+            self.history.append((t, float(f.c_min_per_m), float(f.c_min_error_per_m)))
+            self.history.sort()
+        self.searches += 1
+        self._last_search_time = t if self._last_search_time is None else max(self._last_search_time, t)
+
     async def drain(self) -> None:
         """Wait for the search in flight and its event's commit (the run is closing)."""
         while self._tasks:

@@ -3,7 +3,8 @@
 Independent evaluations: for Schwarzschild in isotropic coordinates the expansion of the
 coordinate spheres is derived here with sympy from the metric (not the project's expansion
 code); for Brill-Lindquist pairs, c_min must cross zero at the critical separation that the
-independent shooting reference (axisymmetric_mots.py) gives.
+independent shooting reference (axisymmetric_mots.py) gives, and agree within its error bar
+with an independent axisymmetric scipy collocation (axisymmetric_cexp.py).
 """
 
 from __future__ import annotations
@@ -103,3 +104,16 @@ def test_start_radius_must_be_positive():
         smallest_enclosing_expansion(SchwarzschildIsotropic(1.0), [0, 0, 0], -1.0)
     with pytest.raises(ValueError, match="radius_step_fraction"):
         ConstantExpansionSettings(radius_step_fraction=0.7)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("separation", [1.0, 0.8])
+def test_brill_lindquist_c_min_agrees_with_the_independent_axisymmetric_computation(separation):
+    from axisymmetric_cexp import smallest_expansion
+
+    reference = smallest_expansion(0.5, separation, terms=12)  # scipy collocation in the meridian plane
+    # the same pair along x (a rotation of the reference's z axis: the harmonics see another shape)
+    pair = BrillLindquist([0.5, 0.5], [[separation / 2, 0, 0], [-separation / 2, 0, 0]])
+    found = smallest_enclosing_expansion(pair, [0, 0, 0], 1.0, settings=ConstantExpansionSettings(lmax=12))
+    assert found.found, found.message
+    assert abs(found.c_min - reference) <= found.c_min_error + 1e-6, (found.c_min, reference, found.c_min_error)

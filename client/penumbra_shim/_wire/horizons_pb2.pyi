@@ -81,7 +81,7 @@ class BacklogPolicy(_message.Message):
     def __init__(self, policy: _Optional[_Union[BacklogPolicy.Policy, str]] = ..., queue_depth: _Optional[int] = ...) -> None: ...
 
 class RunSpec(_message.Message):
-    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "part_deadline_s", "symmetry", "excised_spheres", "shift_gauge")
+    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "part_deadline_s", "symmetry", "excised_spheres", "shift_gauge", "formation_forecast_off")
     class Symmetry(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         SYMMETRY_UNSPECIFIED: _ClassVar[RunSpec.Symmetry]
@@ -109,6 +109,7 @@ class RunSpec(_message.Message):
     SYMMETRY_FIELD_NUMBER: _ClassVar[int]
     EXCISED_SPHERES_FIELD_NUMBER: _ClassVar[int]
     SHIFT_GAUGE_FIELD_NUMBER: _ClassVar[int]
+    FORMATION_FORECAST_OFF_FIELD_NUMBER: _ClassVar[int]
     display_name: str
     variable_set: VariableSet
     mass_scale_solar_masses: float
@@ -120,7 +121,8 @@ class RunSpec(_message.Message):
     symmetry: RunSpec.Symmetry
     excised_spheres: _containers.RepeatedCompositeFieldContainer[ExcisedSphere]
     shift_gauge: RunSpec.ShiftGauge
-    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., part_deadline_s: _Optional[float] = ..., symmetry: _Optional[_Union[RunSpec.Symmetry, str]] = ..., excised_spheres: _Optional[_Iterable[_Union[ExcisedSphere, _Mapping]]] = ..., shift_gauge: _Optional[_Union[RunSpec.ShiftGauge, str]] = ...) -> None: ...
+    formation_forecast_off: bool
+    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., part_deadline_s: _Optional[float] = ..., symmetry: _Optional[_Union[RunSpec.Symmetry, str]] = ..., excised_spheres: _Optional[_Iterable[_Union[ExcisedSphere, _Mapping]]] = ..., shift_gauge: _Optional[_Union[RunSpec.ShiftGauge, str]] = ..., formation_forecast_off: _Optional[bool] = ...) -> None: ...
 
 class ExcisedSphere(_message.Message):
     __slots__ = ("centre_m", "radius_m", "body")
@@ -569,7 +571,7 @@ class RunStateChanged(_message.Message):
     def __init__(self, state: _Optional[_Union[Run.State, str]] = ..., reason: _Optional[str] = ...) -> None: ...
 
 class RunEvent(_message.Message):
-    __slots__ = ("seq", "run_id", "emit_time_unix_s", "time_m", "iteration", "surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed", "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning", "slice_parts_missing", "slice_rejected", "client_gap_recorded")
+    __slots__ = ("seq", "run_id", "emit_time_unix_s", "time_m", "iteration", "surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed", "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning", "slice_parts_missing", "slice_rejected", "client_gap_recorded", "formation_forecast")
     SEQ_FIELD_NUMBER: _ClassVar[int]
     RUN_ID_FIELD_NUMBER: _ClassVar[int]
     EMIT_TIME_UNIX_S_FIELD_NUMBER: _ClassVar[int]
@@ -588,6 +590,7 @@ class RunEvent(_message.Message):
     SLICE_PARTS_MISSING_FIELD_NUMBER: _ClassVar[int]
     SLICE_REJECTED_FIELD_NUMBER: _ClassVar[int]
     CLIENT_GAP_RECORDED_FIELD_NUMBER: _ClassVar[int]
+    FORMATION_FORECAST_FIELD_NUMBER: _ClassVar[int]
     seq: int
     run_id: str
     emit_time_unix_s: float
@@ -606,7 +609,8 @@ class RunEvent(_message.Message):
     slice_parts_missing: SlicePartsMissing
     slice_rejected: SliceRejected
     client_gap_recorded: ClientGapRecorded
-    def __init__(self, seq: _Optional[int] = ..., run_id: _Optional[str] = ..., emit_time_unix_s: _Optional[float] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., surface_found: _Optional[_Union[SurfaceFound, _Mapping]] = ..., surface_not_found: _Optional[_Union[SurfaceNotFound, _Mapping]] = ..., slice_skipped: _Optional[_Union[SliceSkipped, _Mapping]] = ..., run_state_changed: _Optional[_Union[RunStateChanged, _Mapping]] = ..., slice_processed: _Optional[_Union[SliceProcessed, _Mapping]] = ..., track_updated: _Optional[_Union[TrackUpdated, _Mapping]] = ..., common_horizon_formed: _Optional[_Union[CommonHorizonFormed, _Mapping]] = ..., refinement_guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., data_windows_wanted: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., warning: _Optional[_Union[RunWarning, _Mapping]] = ..., slice_parts_missing: _Optional[_Union[SlicePartsMissing, _Mapping]] = ..., slice_rejected: _Optional[_Union[SliceRejected, _Mapping]] = ..., client_gap_recorded: _Optional[_Union[ClientGapRecorded, _Mapping]] = ...) -> None: ...
+    formation_forecast: FormationForecast
+    def __init__(self, seq: _Optional[int] = ..., run_id: _Optional[str] = ..., emit_time_unix_s: _Optional[float] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., surface_found: _Optional[_Union[SurfaceFound, _Mapping]] = ..., surface_not_found: _Optional[_Union[SurfaceNotFound, _Mapping]] = ..., slice_skipped: _Optional[_Union[SliceSkipped, _Mapping]] = ..., run_state_changed: _Optional[_Union[RunStateChanged, _Mapping]] = ..., slice_processed: _Optional[_Union[SliceProcessed, _Mapping]] = ..., track_updated: _Optional[_Union[TrackUpdated, _Mapping]] = ..., common_horizon_formed: _Optional[_Union[CommonHorizonFormed, _Mapping]] = ..., refinement_guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., data_windows_wanted: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., warning: _Optional[_Union[RunWarning, _Mapping]] = ..., slice_parts_missing: _Optional[_Union[SlicePartsMissing, _Mapping]] = ..., slice_rejected: _Optional[_Union[SliceRejected, _Mapping]] = ..., client_gap_recorded: _Optional[_Union[ClientGapRecorded, _Mapping]] = ..., formation_forecast: _Optional[_Union[FormationForecast, _Mapping]] = ...) -> None: ...
 
 class TrackPoint(_message.Message):
     __slots__ = ("time_m", "iteration", "position_m", "source", "uncertainty_m")
@@ -689,6 +693,34 @@ class CommonHorizonFormed(_message.Message):
     irreducible_mass_m: float
     area_m2: float
     def __init__(self, label: _Optional[str] = ..., body_labels: _Optional[_Iterable[str]] = ..., separation_m: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., area_m2: _Optional[float] = ...) -> None: ...
+
+class FormationForecast(_message.Message):
+    __slots__ = ("label", "c_min_found", "c_min_per_m", "c_min_error_per_m", "mean_radius_m", "centre_m", "forecast_available", "formation_time_m", "formation_time_uncertainty_m", "based_on", "message", "wall_time_s")
+    LABEL_FIELD_NUMBER: _ClassVar[int]
+    C_MIN_FOUND_FIELD_NUMBER: _ClassVar[int]
+    C_MIN_PER_M_FIELD_NUMBER: _ClassVar[int]
+    C_MIN_ERROR_PER_M_FIELD_NUMBER: _ClassVar[int]
+    MEAN_RADIUS_M_FIELD_NUMBER: _ClassVar[int]
+    CENTRE_M_FIELD_NUMBER: _ClassVar[int]
+    FORECAST_AVAILABLE_FIELD_NUMBER: _ClassVar[int]
+    FORMATION_TIME_M_FIELD_NUMBER: _ClassVar[int]
+    FORMATION_TIME_UNCERTAINTY_M_FIELD_NUMBER: _ClassVar[int]
+    BASED_ON_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    WALL_TIME_S_FIELD_NUMBER: _ClassVar[int]
+    label: str
+    c_min_found: bool
+    c_min_per_m: float
+    c_min_error_per_m: float
+    mean_radius_m: float
+    centre_m: Vector3
+    forecast_available: bool
+    formation_time_m: float
+    formation_time_uncertainty_m: float
+    based_on: int
+    message: str
+    wall_time_s: float
+    def __init__(self, label: _Optional[str] = ..., c_min_found: _Optional[bool] = ..., c_min_per_m: _Optional[float] = ..., c_min_error_per_m: _Optional[float] = ..., mean_radius_m: _Optional[float] = ..., centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., forecast_available: _Optional[bool] = ..., formation_time_m: _Optional[float] = ..., formation_time_uncertainty_m: _Optional[float] = ..., based_on: _Optional[int] = ..., message: _Optional[str] = ..., wall_time_s: _Optional[float] = ...) -> None: ...
 
 class RefinedRegion(_message.Message):
     __slots__ = ("level", "spacing_m", "bodies", "centre_m", "radius_m", "lower_m", "upper_m", "reason")

@@ -15,6 +15,8 @@ One zarr v3 group per run at ``<archive_root>/<run_id>.zarr``::
         events/                one row per tracking/guidance event, with its wire form; "event"
         client_gaps/           one row per range of slices the client dropped during an outage
                                of its link (a gap without drops: one row, count 0); "range"
+        formation/             one row per constant-expansion search of a pair before its
+                               common horizon formed, with the formation forecast; "search"
 
 The tracking groups and ``client_gaps/`` are created by the first commit that writes to them.
 
@@ -60,6 +62,8 @@ __all__ = [
     "WINDOWS_GROUP",
     "EVENTS_GROUP",
     "CLIENT_GAPS_GROUP",
+    "FORMATION_GROUP",
+    "FORMATION_COLUMNS",
     "CLIENT_DROP_REASONS",
     "group_columns",
 ]
@@ -367,7 +371,30 @@ CLIENT_GAP_COLUMNS: tuple[Column, ...] = (
     Column("event_seq", "int64", description="seq of the client_gap_recorded event"),
 )
 
+# -- when the common horizon forms ---------------------------------------------------------------
+
+FORMATION_GROUP = "formation"
+
+FORMATION_COLUMNS: tuple[Column, ...] = (
+    Column("iteration", "int64", description="iteration of the slice searched"),
+    Column("time", "float64", unit="M", description="coordinate time of that slice"),
+    Column("c_min_found", "bool", description="the smallest enclosing constant expansion was found"),
+    Column("c_min", "float64", unit="1/M", description="smallest expansion of the enclosing constant-expansion "
+                                                      "surfaces (NaN: not found)"),
+    Column("c_min_error", "float64", unit="1/M", description="its uncertainty"),
+    Column("mean_radius", "float64", unit="M", description="mean coordinate radius of the c_min surface"),
+    Column("centre", "float64", (("xyz", 3),), unit="M", description="centre the surfaces are expanded about"),
+    Column("forecast_available", "bool", description="a formation time could be forecast"),
+    Column("formation_time", "float64", unit="M", description="forecast time c_min reaches zero (NaN: none)"),
+    Column("formation_time_uncertainty", "float64", unit="M", description="its expected error"),
+    Column("based_on", "int32", description="c_min values the forecast used"),
+    Column("message", "str", description="the search's outcome and the forecast's fit"),
+    Column("wall_time_s", "float64", unit="s", description="worker seconds of the search"),
+    Column("event_seq", "int64", description="seq of the formation_forecast event"),
+)
+
 _FIXED_GROUPS: dict[str, tuple[tuple[Column, ...], str]] = {
+    FORMATION_GROUP: (FORMATION_COLUMNS, "search"),
     GUIDANCE_UPDATES_GROUP: (GUIDANCE_UPDATE_COLUMNS, "update"),
     GUIDANCE_BODIES_GROUP: (GUIDANCE_BODY_COLUMNS, "entry"),
     GUIDANCE_REGIONS_GROUP: (GUIDANCE_REGION_COLUMNS, "region"),

@@ -7,7 +7,9 @@ loop redraws it with plain ANSI codes on a terminal and prints frames one after 
 escape codes) when the output is not a terminal, so it also works in logs and over ``ssh -T``.
 
 Below the table: when the common horizon formed (the server's ``common_horizon_formed`` event,
-once per run) and the latest refinement guidance (``GetLatestGuidance``): per body, or for the
+once per run), the newest formation forecast before it (``formation_forecast``: the smallest
+enclosing constant expansion c_min and when it is expected to reach zero) and the latest
+refinement guidance (``GetLatestGuidance``): per body, or for the
 remnant after merger, the centre, radius and spacing of its recommended finest region. The
 guidance is advisory; the frame says so.
 
@@ -28,7 +30,7 @@ from typing import Mapping, TextIO
 
 from penumbra_server.cli.safe_text import terminal_safe, terminal_safe_lines
 
-__all__ = ["RunProgress", "render_frame", "surface_rows", "guidance_rows", "read_progress", "find_common_formed",
+__all__ = ["RunProgress", "render_frame", "formation_line", "surface_rows", "guidance_rows", "read_progress", "find_common_formed",
            "watch_run"]
 
 _CLEAR = "\x1b[H\x1b[2J"
@@ -47,6 +49,8 @@ class RunProgress:
     #: The run's ``common_horizon_formed`` payload (a ``penumbra_shim.CommonHorizon``), once seen.
     common_formed: object | None = None
     warnings: list[str] = field(default_factory=list)
+    #: The newest ``formation_forecast`` event (a ``penumbra_shim.FormationForecastEvent``).
+    formation: object | None = None
 
     def absorb(self, event) -> None:
         """Update from one ``penumbra_shim.Event``."""
@@ -55,6 +59,9 @@ class RunProgress:
         if kind == "common_horizon_formed" and getattr(event, "common", None) is not None:
             if self.common_formed is None:
                 self.common_formed = event.common
+        elif kind == "formation_forecast":
+            if self.formation is None or int(getattr(event, "iteration", -1)) >= int(self.formation.iteration):
+                self.formation = event
         elif kind == "warning":
             self.warnings.append(f"warning at iteration {getattr(event, 'iteration', -1)} "
                                  f"({getattr(event, 'label', '')}): {str(getattr(event, 'message', ''))[:160]}")
@@ -199,6 +206,22 @@ def _common_line(progress: RunProgress, states: Mapping[str, object], body_label
     return "common horizon: not formed yet"
 
 
+def formation_line(progress: RunProgress) -> str | None:
+    """The newest formation forecast (c_min and when it reaches zero), or None without one."""
+    f = progress.formation
+    if f is None:
+        return None
+    head = f"formation forecast (from t = {f.time:.3f} M): "
+    c = (f"c_min = {_pm(f.c_min, f.c_min_error, '.5f')} /M" if f.c_min_found
+         else f"c_min not found in that slice ({str(f.message)[:80]})")
+    if f.forecast_available:
+        when = (f"common horizon expected at t = {_pm(f.formation_time, f.formation_time_uncertainty, '.3f')} M "
+                f"(from {f.based_on} slices)")
+    else:
+        when = "no formation time yet"
+    return head + c + "; " + when
+
+
 def render_frame(info, states: Mapping[str, object], progress: RunProgress | None = None, *,
                  guidance=None, now_unix_s: float | None = None, server: str = "") -> str:
     """One screenful describing a run.
@@ -245,6 +268,9 @@ def render_frame(info, states: Mapping[str, object], progress: RunProgress | Non
     lines.extend(_table(COLUMNS, rows))
     lines.append("")
     lines.append(_common_line(progress, states, body_labels))
+    forecast = formation_line(progress)
+    if forecast is not None:
+        lines.append(forecast)
     if guidance is None:
         lines.append("refinement guidance: none yet")
     else:

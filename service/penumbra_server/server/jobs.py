@@ -280,6 +280,9 @@ def run_surface_job(job: SurfaceJob) -> SurfaceOutcome:
     job cannot take the run down.
     """
     start = time.perf_counter()
+    run_in_worker = getattr(job, "run_in_worker", None)
+    if callable(run_in_worker):  # another kind of worker job (server/formation.py); it never raises
+        return run_in_worker()
     try:
         return _run(job, start)
     except Exception as exc:  # a worker must report, not crash the pool

@@ -17,6 +17,7 @@ from ..archive import ArchiveWriter, archive_path, list_archives
 from ._spec import RunSettings
 from .errors import ServiceError
 from .executors import FinderExecutor
+from .formation import FormationWatch
 from .planning import steering_planner_factory
 from .restore import read_archive, restore_run
 from .runs import ManagerOptions, RunRecord
@@ -108,6 +109,8 @@ class RunManager:
         )
         if self.slice_observer_factory is not None:
             run.slice_observers.extend(self.slice_observer_factory(settings))
+        if settings.formation_forecast and run.steering.common_label is not None:
+            run.slice_observers.append(FormationWatch())  # when the pair's common horizon forms (formation.py)
         self.runs[run_id] = run
         return run
 

@@ -470,6 +470,7 @@ class RunRecord:
         self._closing = True
         self._queue_changed.set()
         await self._processor_task
+        await asyncio.gather(*(o.drain() for o in self.slice_observers if hasattr(o, "drain")))  # formation.py
         await self.announce_state(pb.Run.STATE_CLOSED, reason)
         if self.spool is not None:  # every acknowledged slice is archived now
             await self._in_archive_thread(self.spool.remove_all)

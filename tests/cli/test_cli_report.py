@@ -144,8 +144,9 @@ def test_cross_section_plot_draws_one_curve_per_found_surface_at_the_chosen_time
             # radius range the measurement archived for that surface (at its nodes; 1 % slack for
             # the curve's points between the nodes).
             r = np.hypot(x - cols["centre"][row][0], y - cols["centre"][row][1])
-            slack = 0.01 * float(cols["radius_mean"][row])
-            assert float(cols["radius_min"][row]) - slack <= r.min() and r.max() <= float(cols["radius_max"][row]) + slack
+            least, mean, largest = (float(v) for v in cols["coordinate_radius"][row])
+            slack = 0.01 * mean
+            assert least - slack <= r.min() and r.max() <= largest + slack
 
 
 def test_report_command_line(small_archive, tmp_path, capsys):

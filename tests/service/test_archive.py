@@ -43,8 +43,7 @@ def _surface_row(iteration: int, *, found: bool = True) -> dict:
             coefficients=np.arange(NCOEF, dtype=float) + iteration,
             area=16 * np.pi,
             irreducible_mass=1.0,
-            radius_min=0.5,
-            radius_max=0.5,
+            coordinate_radius=[0.5, 0.5, 0.5],
         )
     return row
 

@@ -7,7 +7,9 @@ loop redraws it with plain ANSI codes on a terminal and prints frames one after 
 escape codes) when the output is not a terminal, so it also works in logs and over ``ssh -T``.
 
 Below the table: when the common horizon formed (the server's ``common_horizon_formed`` event,
-once per run) and the latest refinement guidance (``GetLatestGuidance``): per body, or for the
+once per run), the remnant (the common surface's latest masses and spin with error bars and how
+far they still move over the last 10 M, :mod:`penumbra_server.tracking.remnant`, from the found
+events the view has read) and the latest refinement guidance (``GetLatestGuidance``): per body, or for the
 remnant after merger, the centre, radius and spacing of its recommended finest region. The
 guidance is advisory; the frame says so.
 
@@ -35,6 +37,10 @@ _CLEAR = "\x1b[H\x1b[2J"
 _NAN = float("nan")
 
 
+#: Found rows of each surface the view keeps for the remnant (its window is the last 10 M).
+REMNANT_ROWS = 400
+
+
 @dataclass
 class RunProgress:
     """What the event stream says about a run's progress (mutable; one writer thread)."""
@@ -47,11 +53,17 @@ class RunProgress:
     #: The run's ``common_horizon_formed`` payload (a ``penumbra_shim.CommonHorizon``), once seen.
     common_formed: object | None = None
     warnings: list[str] = field(default_factory=list)
+    #: label -> the latest found ``SurfaceReport`` s, in event order (the last REMNANT_ROWS).
+    found: dict = field(default_factory=dict)
 
     def absorb(self, event) -> None:
         """Update from one ``penumbra_shim.Event``."""
         self.last_seq = max(self.last_seq, int(getattr(event, "seq", 0)))
         kind = getattr(event, "kind", "")
+        if kind == "surface_found" and getattr(event, "surface", None) is not None:
+            series = self.found.setdefault(event.surface.label, [])
+            series.append(event.surface)
+            del series[:-REMNANT_ROWS]
         if kind == "common_horizon_formed" and getattr(event, "common", None) is not None:
             if self.common_formed is None:
                 self.common_formed = event.common
@@ -112,7 +124,7 @@ def _pm(value, error, spec: str) -> str:
 
 
 COLUMNS = ("surface", "latest attempt", "found at t [M]", "area [M^2]", "M_irr [M]", "M_chr [M]", "chi",
-           "spin axis", "centre (x, y, z) [M]", "|Theta|max [1/M]", "lag [M] / [s]")
+           "chi (C_p/C_e)", "spin axis", "centre (x, y, z) [M]", "|Theta|max [1/M]", "lag [M] / [s]")
 
 
 def surface_rows(states: Mapping[str, object], *, body_labels=(), newest_time: float = _NAN) -> list[list[str]]:
@@ -148,6 +160,7 @@ def surface_rows(states: Mapping[str, object], *, body_labels=(), newest_time: f
             _pm(getattr(found, "akv_christodoulou_mass", _NAN), getattr(found, "akv_christodoulou_mass_error", _NAN),
                 ".5f"),
             _pm(getattr(found, "dimensionless_spin", _NAN), getattr(found, "dimensionless_spin_error", _NAN), ".4f"),
+            _num(getattr(found, "circumference_spin", _NAN), ".3f"),
             _vec(getattr(found, "spin_direction", ()), "+.2f"),
             _vec(found.centroid),
             _num(found.residual_max, ".1e"),
@@ -199,6 +212,39 @@ def _common_line(progress: RunProgress, states: Mapping[str, object], body_label
     return "common horizon: not formed yet"
 
 
+def _remnant_text(progress: RunProgress, body_labels) -> str:
+    """The remnant line (tracking.remnant) from the common surface's found events; "" before
+    the common horizon formed."""
+    from penumbra_server.tracking.remnant import remnant_from_rows, remnant_line
+
+    c = progress.common_formed
+    label = getattr(c, "label", None) if c is not None else None
+    if label is None:
+        others = [l for l in progress.found if l not in body_labels]
+        if not others:
+            return ""
+        label = others[0]
+    # One row per slice time (the newest report of a time wins: a replayed event adds nothing).
+    reports = sorted({float(r.time): r for r in progress.found.get(label, [])}.values(), key=lambda r: float(r.time))
+    if not reports:
+        return f"remnant ({label}): no found surface among the events read yet"
+
+    def column(name):
+        return [getattr(r, name, _NAN) for r in reports]
+
+    try:
+        r = remnant_from_rows(column("time"), column("irreducible_mass"), column("akv_christodoulou_mass"),
+                              column("dimensionless_spin"), column("akv_angular_momentum"),
+                              [list(getattr(r, "spin_direction", (_NAN,) * 3)) for r in reports],
+                              {"irreducible_mass": column("irreducible_mass_error"),
+                               "christodoulou_mass": column("akv_christodoulou_mass_error"),
+                               "dimensionless_spin": column("dimensionless_spin_error"),
+                               "angular_momentum": column("akv_angular_momentum_error")})
+    except ValueError as exc:  # too few rows with error bars, or times repeated
+        return f"remnant ({label}): not assessed: {exc}"
+    return remnant_line(r, label)
+
+
 def render_frame(info, states: Mapping[str, object], progress: RunProgress | None = None, *,
                  guidance=None, now_unix_s: float | None = None, server: str = "") -> str:
     """One screenful describing a run.
@@ -245,6 +291,9 @@ def render_frame(info, states: Mapping[str, object], progress: RunProgress | Non
     lines.extend(_table(COLUMNS, rows))
     lines.append("")
     lines.append(_common_line(progress, states, body_labels))
+    remnant_text = _remnant_text(progress, body_labels)
+    if remnant_text:
+        lines.append(remnant_text)
     if guidance is None:
         lines.append("refinement guidance: none yet")
     else:
@@ -257,7 +306,8 @@ def render_frame(info, states: Mapping[str, object], progress: RunProgress | Non
         lines.extend(progress.skips[-5:])
         lines.extend(progress.warnings[-3:])
     lines.append("")
-    lines.append("+-: error estimates (numerics/error_bars.py); M_chr, chi, spin axis: approximate-Killing-vector spin.")
+    lines.append("+-: error estimates (numerics/error_bars.py); M_chr, chi, spin axis: approximate-Killing-vector spin;")
+    lines.append("chi (C_p/C_e): the spin Kerr would have with this polar / equatorial circumference ratio.")
     lines.append("lag: newest slice received minus the time the surface was last found [M] / "
                  "arrival-to-archived wall time [s]. Results and guidance are advisory.")
     # Names, labels and reasons come from the run's opener and the server: nothing in them may

@@ -95,26 +95,21 @@ def spin_lines(record: ArchivedRun, summary: RunSummary) -> list[str]:
 
 
 def _remnant_line(cols, label: str) -> str:
-    from penumbra_server.tracking.remnant import remnant
+    from penumbra_server.tracking.remnant import remnant_from_rows, remnant_line
 
     rows = found_rows(cols)
     names = ("irreducible_mass", "akv_christodoulou_mass", "dimensionless_spin", "akv_angular_momentum")
     if not rows.size or any(n not in cols or f"{n}_error" not in cols for n in names):
         return f"remnant ({label}): not assessed (no spin error bars in this archive)"
     get = lambda n: np.asarray(cols[n], dtype=float)[rows]  # noqa: E731
-    direction = np.asarray(cols["spin_direction"], dtype=float)[rows].reshape(-1, 3)
-    j, j_err = get("akv_angular_momentum"), get("akv_angular_momentum_error")
-    values = {"irreducible_mass": get("irreducible_mass"), "christodoulou_mass": get("akv_christodoulou_mass"),
-              "dimensionless_spin": get("dimensionless_spin"), "spin_vector": j[:, None] * direction}
-    errors = {"irreducible_mass": get("irreducible_mass_error"),
-              "christodoulou_mass": get("akv_christodoulou_mass_error"),
-              "dimensionless_spin": get("dimensionless_spin_error"),
-              "spin_vector": np.repeat(j_err[:, None], 3, axis=1)}
     try:
-        r = remnant(np.asarray(cols["time"], dtype=float)[rows], values, errors)
+        r = remnant_from_rows(get("time"), get("irreducible_mass"), get("akv_christodoulou_mass"),
+                              get("dimensionless_spin"), get("akv_angular_momentum"),
+                              np.asarray(cols["spin_direction"], dtype=float)[rows].reshape(-1, 3),
+                              {"irreducible_mass": get("irreducible_mass_error"),
+                               "christodoulou_mass": get("akv_christodoulou_mass_error"),
+                               "dimensionless_spin": get("dimensionless_spin_error"),
+                               "angular_momentum": get("akv_angular_momentum_error")})
     except Exception as exc:  # the report must still be written
         return f"remnant ({label}): not assessed: {exc}"
-    return (f"remnant ({label}): {'settled' if r.settled else 'NOT settled'} over t = {r.window[0]:.3f} .. "
-            f"{r.window[1]:.3f} M ({r.samples} samples): chi {_pm(r.dimensionless_spin.value, r.dimensionless_spin.error, '.5f')}, "
-            f"M_chr {_pm(r.christodoulou_mass.value, r.christodoulou_mass.error, '.6f')} M, "
-            f"M_irr {_pm(r.irreducible_mass.value, r.irreducible_mass.error, '.6f')} M")
+    return remnant_line(r, label)

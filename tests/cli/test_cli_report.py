@@ -70,7 +70,7 @@ def test_report_writes_pngs_and_a_summary(small_archive, small_report):
     path, expected = small_archive
     result = small_report
     names = sorted(p.name for p in result.plots)
-    assert names == ["areas_masses.png", "cross_sections.png", "guidance.png", "spin.png", "tracks.png"]
+    assert names == ["areas_masses.png", "cross_sections.png", "guidance.png", "multipoles.png", "spin.png", "tracks.png"]
     for plot in result.plots:
         width, height = _png_size(plot)
         assert width > 300 and height > 300
@@ -156,7 +156,7 @@ def test_report_command_line(small_archive, tmp_path, capsys):
     assert status == 0
     assert "common horizon (common) first found" in out.out
     assert (tmp_path / "cli" / "tracks.png").exists()
-    assert "report: 7/7" in out.err  # progress lines (read, five plots, summary)
+    assert "report: 8/8" in out.err  # progress lines (read, six plots, summary)
     assert (tmp_path / "cli" / "spin.png").exists()
 
 

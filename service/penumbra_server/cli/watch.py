@@ -215,7 +215,7 @@ def _common_line(progress: RunProgress, states: Mapping[str, object], body_label
 def _remnant_text(progress: RunProgress, body_labels) -> str:
     """The remnant line (tracking.remnant) from the common surface's found events; "" before
     the common horizon formed."""
-    from penumbra_server.tracking.remnant import remnant_from_rows, remnant_line
+    from penumbra_server.tracking.remnant import remnant_from_reports, remnant_line
 
     c = progress.common_formed
     label = getattr(c, "label", None) if c is not None else None
@@ -228,19 +228,9 @@ def _remnant_text(progress: RunProgress, body_labels) -> str:
     reports = sorted({float(r.time): r for r in progress.found.get(label, [])}.values(), key=lambda r: float(r.time))
     if not reports:
         return f"remnant ({label}): no found surface among the events read yet"
-
-    def column(name):
-        return [getattr(r, name, _NAN) for r in reports]
-
     try:
-        r = remnant_from_rows(column("time"), column("irreducible_mass"), column("akv_christodoulou_mass"),
-                              column("dimensionless_spin"), column("akv_angular_momentum"),
-                              [list(getattr(r, "spin_direction", (_NAN,) * 3)) for r in reports],
-                              {"irreducible_mass": column("irreducible_mass_error"),
-                               "christodoulou_mass": column("akv_christodoulou_mass_error"),
-                               "dimensionless_spin": column("dimensionless_spin_error"),
-                               "angular_momentum": column("akv_angular_momentum_error")})
-    except ValueError as exc:  # too few rows with error bars, or times repeated
+        r = remnant_from_reports(reports)
+    except ValueError as exc:  # too few rows with error bars
         return f"remnant ({label}): not assessed: {exc}"
     return remnant_line(r, label)
 

@@ -24,7 +24,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["RemnantError", "SettledQuantity", "Remnant", "remnant", "remnant_from_rows", "remnant_line"]
+__all__ = ["RemnantError", "SettledQuantity", "Remnant", "remnant", "remnant_from_rows", "remnant_from_reports",
+           "remnant_line"]
 
 _NAMES = ("irreducible_mass", "christodoulou_mass", "dimensionless_spin", "spin_vector")
 
@@ -191,6 +192,24 @@ def remnant_from_rows(times, irreducible_mass, christodoulou_mass, dimensionless
             keep &= np.all(np.isfinite(array.reshape(t.size, -1)), axis=1)
     return remnant(t[keep], {k: v[keep] for k, v in values.items()}, {k: v[keep] for k, v in bars.items()},
                    **options)
+
+
+def remnant_from_reports(reports, **options) -> Remnant:
+    """:func:`remnant_from_rows` from found-surface reports in time order (objects with the
+    attributes of the shim's ``SurfaceReport``: time, irreducible_mass, akv_christodoulou_mass,
+    dimensionless_spin, akv_angular_momentum, spin_direction and their ``*_error``)."""
+    nan = float("nan")
+
+    def column(name):
+        return [getattr(r, name, nan) for r in reports]
+
+    return remnant_from_rows(column("time"), column("irreducible_mass"), column("akv_christodoulou_mass"),
+                             column("dimensionless_spin"), column("akv_angular_momentum"),
+                             [list(getattr(r, "spin_direction", (nan,) * 3)) for r in reports],
+                             {"irreducible_mass": column("irreducible_mass_error"),
+                              "christodoulou_mass": column("akv_christodoulou_mass_error"),
+                              "dimensionless_spin": column("dimensionless_spin_error"),
+                              "angular_momentum": column("akv_angular_momentum_error")}, **options)
 
 
 def remnant_line(r: Remnant, label: str) -> str:

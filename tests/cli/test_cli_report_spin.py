@@ -74,6 +74,11 @@ def test_spin_plot_and_summary_show_the_archived_spin(tmp_path):
         assert np.array_equal(chi_line.get_xdata(), rows["time"]) and np.array_equal(angle_line.get_xdata(), rows["time"])
         assert np.array_equal(chi_line.get_ydata(), rows["dimensionless_spin"])
         assert np.allclose(angle_line.get_ydata(), angle, rtol=0, atol=1e-15)
+    # The error bars as bands about each line: chi +- 3e-4 as archived.
+    bands = [c for c in chi_axes.collections if len(c.get_paths())]
+    assert len(bands) == 2
+    top = bands[0].get_paths()[0].vertices[:, 1]
+    assert np.isclose(top.max(), 0.3 + 0.01 * TIMES[-1] + 3e-4) and np.isclose(top.min(), 0.3 - 3e-4)
     # Body A's axis tilts by 0.05 rad per M (as written above): the plot shows it.
     (a_angle,) = [l for l in angle_axes.lines if l.get_label() == "A"]
     assert abs(a_angle.get_ydata()[-1] - 0.05 * TIMES[-1]) < 1e-12

@@ -35,9 +35,28 @@ def spin_series(record: ArchivedRun, label: str) -> tuple[np.ndarray, np.ndarray
     return np.asarray(cols["time"], dtype=float)[rows][keep], chi[keep], angle[keep]
 
 
+def _spin_errors(record: ArchivedRun, label: str) -> tuple[np.ndarray, np.ndarray]:
+    """Error bars of chi and of the direction (radians; capped at pi) for the rows of
+    :func:`spin_series`; NaN where the archive has none."""
+    cols = record.surfaces[label]
+    if "dimensionless_spin" not in cols or "spin_direction" not in cols:
+        return np.zeros(0), np.zeros(0)
+    rows = found_rows(cols)
+    chi = np.asarray(cols["dimensionless_spin"], dtype=float)[rows]
+    direction = np.asarray(cols["spin_direction"], dtype=float)[rows].reshape(-1, 3)
+    keep = np.isfinite(chi) & np.all(np.isfinite(direction), axis=1)
+
+    def column(name):
+        return (np.asarray(cols[name], dtype=float)[rows][keep] if name in cols
+                else np.full(int(keep.sum()), np.nan))
+
+    return column("dimensionless_spin_error"), np.minimum(column("spin_direction_error"), np.pi)
+
+
 def plot_spin(record: ArchivedRun, summary: RunSummary, path: Path):
     """chi (top) and the spin axis's angle from +z in radians (bottom) against time, one line per
-    surface labelled with its label; returns a :class:`~.plots.PlotInfo`."""
+    surface labelled with its label, shaded bands of the archived error bars; returns a
+    :class:`~.plots.PlotInfo`."""
     from .plots import PlotInfo, _colours, _mark_common, _new_figure, _panel_limits
 
     fig, axes = _new_figure(7.5, 6.0, nrows=2)
@@ -50,6 +69,11 @@ def plot_spin(record: ArchivedRun, summary: RunSummary, path: Path):
         drawn += 1
         axes[0, 0].plot(t, chi, "o-", ms=3, color=colours[label], label=label)
         axes[1, 0].plot(t, angle, "o-", ms=3, color=colours[label], label=label)
+        chi_error, angle_error = _spin_errors(record, label)
+        for ax, values, errors in ((axes[0, 0], chi, chi_error), (axes[1, 0], angle, angle_error)):
+            if errors.shape == values.shape and np.any(np.isfinite(errors)):
+                # Error bands (numerics/error_bars.py); a direction's error is an angle.
+                ax.fill_between(t, values - errors, values + errors, color=colours[label], alpha=0.2, linewidth=0)
     for ax in axes[:, 0]:
         _mark_common(ax, summary)
         ax.grid(alpha=0.3)

@@ -205,3 +205,31 @@ def test_the_steering_keeps_merged_regions_merged_so_a_slowly_approaching_pair_s
     print(f"\nfinest-level switches: {switches} with the separation margin, {plain_switches} without")
     assert with_margin[0] is False and with_margin[-1] is True and switches == 1
     assert plain_switches > 1  # the same pair without hysteresis thrashes: the check can fail
+
+
+def test_the_guidance_rebuilt_from_its_archived_event_keeps_the_hysteresis():
+    # A restarted server reads its last guidance back from the archived event
+    # (steering.restore): merged regions must stay merged exactly as with the guidance in memory.
+    from penumbra_server.server._tracking_convert import decode_wire, encode_wire, guidance_notice, \
+        guidance_regions_from_wire
+    from penumbra_server.tracking.forecast import Forecast
+    from penumbra_server.tracking.guidance import HorizonSize, RefinementPolicy, refinement_guidance
+
+    def forecast(d):
+        times = np.linspace(0.0, 4.0, 9)
+        positions = np.array([[[0.5 * d, 0.0, 0.0]] * 9, [[-0.5 * d, 0.0, 0.0]] * 9])
+        return Forecast(bodies=("A", "B"), times=times, positions=positions, uncertainty=np.zeros((2, 9)),
+                        model="static", reason="test", fit_window=(0.0, 0.0), details={})
+
+    sizes = {"A": HorizonSize(0.5, 0.9), "B": HorizonSize(0.5, 0.9)}
+    policy = RefinementPolicy()
+    touching = 2 * float(refinement_guidance(forecast(100.0), sizes, policy=policy).body("A").radii[-1])
+    merged = refinement_guidance(forecast(0.9 * touching), sizes, policy=policy)
+    assert len(merged.finest_regions) == 1
+    event = pb.RunEvent(refinement_guidance=guidance_notice(merged, sizes, 1.0, 10).payload)
+    restored = guidance_regions_from_wire(decode_wire(encode_wire(event)).refinement_guidance)
+    assert [[r.bodies for r in level] for level in restored.levels] == [[r.bodies for r in level]
+                                                                        for level in merged.levels]
+    apart = forecast(1.15 * touching)  # no overlap, but within the 25 % separation margin
+    assert len(refinement_guidance(apart, sizes, policy=policy, previous=restored).finest_regions) == 1
+    assert len(refinement_guidance(apart, sizes, policy=policy).finest_regions) == 2

@@ -377,16 +377,13 @@ class WatchRunResponse(_message.Message):
     def __init__(self, event: _Optional[_Union[RunEvent, _Mapping]] = ...) -> None: ...
 
 class SurfaceQuantities(_message.Message):
-    __slots__ = ("area_m2", "irreducible_mass_m", "centroid_m", "radius_min_m", "radius_mean_m", "radius_max_m", "circumference_xy_m", "circumference_xz_m", "circumference_yz_m", "resolution_indicator", "angular_momentum_m2", "christodoulou_mass_m", "akv_angular_momentum_m2", "spin_direction", "dimensionless_spin", "akv_christodoulou_mass_m", "killing_quality", "spin_equatorial_circumference_m", "spin_polar_circumference_m", "spin_circumference_ratio", "mass_multipoles", "spin_multipoles", "area_error_m2", "irreducible_mass_error_m", "akv_christodoulou_mass_error_m", "akv_angular_momentum_error_m2", "dimensionless_spin_error", "stability_eigenvalue_per_m2", "stability_eigenvalue_error_per_m2")
+    __slots__ = ("area_m2", "irreducible_mass_m", "centroid_m", "radius_min_m", "radius_mean_m", "radius_max_m", "resolution_indicator", "angular_momentum_m2", "christodoulou_mass_m", "akv_angular_momentum_m2", "spin_direction", "dimensionless_spin", "akv_christodoulou_mass_m", "killing_quality", "spin_equatorial_circumference_m", "spin_polar_circumference_m", "spin_circumference_ratio", "mass_multipoles", "spin_multipoles", "area_error_m2", "irreducible_mass_error_m", "akv_christodoulou_mass_error_m", "akv_angular_momentum_error_m2", "dimensionless_spin_error", "stability_eigenvalue_per_m2", "stability_eigenvalue_error_per_m2", "circumference_spin", "centroid_error_m", "spin_direction_error_rad", "spin_equatorial_circumference_error_m", "spin_polar_circumference_error_m", "mass_multipoles_error", "spin_multipoles_error")
     AREA_M2_FIELD_NUMBER: _ClassVar[int]
     IRREDUCIBLE_MASS_M_FIELD_NUMBER: _ClassVar[int]
     CENTROID_M_FIELD_NUMBER: _ClassVar[int]
     RADIUS_MIN_M_FIELD_NUMBER: _ClassVar[int]
     RADIUS_MEAN_M_FIELD_NUMBER: _ClassVar[int]
     RADIUS_MAX_M_FIELD_NUMBER: _ClassVar[int]
-    CIRCUMFERENCE_XY_M_FIELD_NUMBER: _ClassVar[int]
-    CIRCUMFERENCE_XZ_M_FIELD_NUMBER: _ClassVar[int]
-    CIRCUMFERENCE_YZ_M_FIELD_NUMBER: _ClassVar[int]
     RESOLUTION_INDICATOR_FIELD_NUMBER: _ClassVar[int]
     ANGULAR_MOMENTUM_M2_FIELD_NUMBER: _ClassVar[int]
     CHRISTODOULOU_MASS_M_FIELD_NUMBER: _ClassVar[int]
@@ -407,15 +404,19 @@ class SurfaceQuantities(_message.Message):
     DIMENSIONLESS_SPIN_ERROR_FIELD_NUMBER: _ClassVar[int]
     STABILITY_EIGENVALUE_PER_M2_FIELD_NUMBER: _ClassVar[int]
     STABILITY_EIGENVALUE_ERROR_PER_M2_FIELD_NUMBER: _ClassVar[int]
+    CIRCUMFERENCE_SPIN_FIELD_NUMBER: _ClassVar[int]
+    CENTROID_ERROR_M_FIELD_NUMBER: _ClassVar[int]
+    SPIN_DIRECTION_ERROR_RAD_FIELD_NUMBER: _ClassVar[int]
+    SPIN_EQUATORIAL_CIRCUMFERENCE_ERROR_M_FIELD_NUMBER: _ClassVar[int]
+    SPIN_POLAR_CIRCUMFERENCE_ERROR_M_FIELD_NUMBER: _ClassVar[int]
+    MASS_MULTIPOLES_ERROR_FIELD_NUMBER: _ClassVar[int]
+    SPIN_MULTIPOLES_ERROR_FIELD_NUMBER: _ClassVar[int]
     area_m2: float
     irreducible_mass_m: float
     centroid_m: Vector3
     radius_min_m: float
     radius_mean_m: float
     radius_max_m: float
-    circumference_xy_m: float
-    circumference_xz_m: float
-    circumference_yz_m: float
     resolution_indicator: float
     angular_momentum_m2: Vector3
     christodoulou_mass_m: float
@@ -436,7 +437,14 @@ class SurfaceQuantities(_message.Message):
     dimensionless_spin_error: float
     stability_eigenvalue_per_m2: float
     stability_eigenvalue_error_per_m2: float
-    def __init__(self, area_m2: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., centroid_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_min_m: _Optional[float] = ..., radius_mean_m: _Optional[float] = ..., radius_max_m: _Optional[float] = ..., circumference_xy_m: _Optional[float] = ..., circumference_xz_m: _Optional[float] = ..., circumference_yz_m: _Optional[float] = ..., resolution_indicator: _Optional[float] = ..., angular_momentum_m2: _Optional[_Union[Vector3, _Mapping]] = ..., christodoulou_mass_m: _Optional[float] = ..., akv_angular_momentum_m2: _Optional[float] = ..., spin_direction: _Optional[_Union[Vector3, _Mapping]] = ..., dimensionless_spin: _Optional[float] = ..., akv_christodoulou_mass_m: _Optional[float] = ..., killing_quality: _Optional[float] = ..., spin_equatorial_circumference_m: _Optional[float] = ..., spin_polar_circumference_m: _Optional[float] = ..., spin_circumference_ratio: _Optional[float] = ..., mass_multipoles: _Optional[_Iterable[float]] = ..., spin_multipoles: _Optional[_Iterable[float]] = ..., area_error_m2: _Optional[float] = ..., irreducible_mass_error_m: _Optional[float] = ..., akv_christodoulou_mass_error_m: _Optional[float] = ..., akv_angular_momentum_error_m2: _Optional[float] = ..., dimensionless_spin_error: _Optional[float] = ..., stability_eigenvalue_per_m2: _Optional[float] = ..., stability_eigenvalue_error_per_m2: _Optional[float] = ...) -> None: ...
+    circumference_spin: float
+    centroid_error_m: float
+    spin_direction_error_rad: float
+    spin_equatorial_circumference_error_m: float
+    spin_polar_circumference_error_m: float
+    mass_multipoles_error: _containers.RepeatedScalarFieldContainer[float]
+    spin_multipoles_error: _containers.RepeatedScalarFieldContainer[float]
+    def __init__(self, area_m2: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., centroid_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_min_m: _Optional[float] = ..., radius_mean_m: _Optional[float] = ..., radius_max_m: _Optional[float] = ..., resolution_indicator: _Optional[float] = ..., angular_momentum_m2: _Optional[_Union[Vector3, _Mapping]] = ..., christodoulou_mass_m: _Optional[float] = ..., akv_angular_momentum_m2: _Optional[float] = ..., spin_direction: _Optional[_Union[Vector3, _Mapping]] = ..., dimensionless_spin: _Optional[float] = ..., akv_christodoulou_mass_m: _Optional[float] = ..., killing_quality: _Optional[float] = ..., spin_equatorial_circumference_m: _Optional[float] = ..., spin_polar_circumference_m: _Optional[float] = ..., spin_circumference_ratio: _Optional[float] = ..., mass_multipoles: _Optional[_Iterable[float]] = ..., spin_multipoles: _Optional[_Iterable[float]] = ..., area_error_m2: _Optional[float] = ..., irreducible_mass_error_m: _Optional[float] = ..., akv_christodoulou_mass_error_m: _Optional[float] = ..., akv_angular_momentum_error_m2: _Optional[float] = ..., dimensionless_spin_error: _Optional[float] = ..., stability_eigenvalue_per_m2: _Optional[float] = ..., stability_eigenvalue_error_per_m2: _Optional[float] = ..., circumference_spin: _Optional[float] = ..., centroid_error_m: _Optional[float] = ..., spin_direction_error_rad: _Optional[float] = ..., spin_equatorial_circumference_error_m: _Optional[float] = ..., spin_polar_circumference_error_m: _Optional[float] = ..., mass_multipoles_error: _Optional[_Iterable[float]] = ..., spin_multipoles_error: _Optional[_Iterable[float]] = ...) -> None: ...
 
 class SurfaceResult(_message.Message):
     __slots__ = ("label", "time_m", "iteration", "centre_m", "lmax", "coefficients_m", "quantities", "residual_max_per_m", "iterations", "wall_time_s", "latency_s", "method", "finder_status", "residual_max_between_nodes_per_m")

@@ -147,6 +147,11 @@ SLICE_COLUMNS: tuple[Column, ...] = (
 )
 
 
+#: Multipoles archived per surface, index n = 0 .. MULTIPOLE_COUNT - 1 (archives written before
+#: n = 8 hold 5).
+MULTIPOLE_COUNT = 9
+
+
 def surface_columns(lmax: int) -> tuple[Column, ...]:
     """Columns of ``surfaces/<label>`` for surfaces of degree ``lmax``."""
     xyz = (("xyz", 3),)
@@ -167,12 +172,11 @@ def surface_columns(lmax: int) -> tuple[Column, ...]:
         Column("area", "float64", unit="M^2"),
         Column("irreducible_mass", "float64", unit="M", description="sqrt(area / 16 pi)"),
         Column("centroid", "float64", xyz, unit="M", description="area-weighted coordinate centroid"),
-        Column("radius_min", "float64", unit="M"),
-        Column("radius_mean", "float64", unit="M"),
-        Column("radius_max", "float64", unit="M"),
-        Column("circumference_xy", "float64", unit="M", description="proper, plane z = centroid z"),
-        Column("circumference_xz", "float64", unit="M", description="proper, plane y = centroid y"),
-        Column("circumference_yz", "float64", unit="M", description="proper, plane x = centroid x"),
+        Column("centroid_error", "float64", unit="M", description="error estimate of centroid (length of the displacement)"),
+        # Coordinate extent only (for refinement and plots): shape figures that mean something
+        # are the spin-axis circumferences below, not cuts with the coordinate planes.
+        Column("coordinate_radius", "float64", (("extent", 3),), unit="M",
+               description="least, mean and largest coordinate distance from the expansion centre"),
         Column("resolution_indicator", "float64", description="top-degree coefficient fraction"),
         Column("residual_max", "float64", unit="1/M", description="max |Theta| at the nodes"),
         Column("residual_max_between_nodes", "float64", unit="1/M",
@@ -191,8 +195,12 @@ def surface_columns(lmax: int) -> tuple[Column, ...]:
         Column("spin_polar_circumference", "float64", unit="M",
                description="proper, mean of two perpendicular planes containing the spin axis"),
         Column("spin_circumference_ratio", "float64", description="polar / equatorial"),
-        Column("mass_multipoles", "float64", (("multipole", 5),), description="M_n / M^(n+1), index n = 0..4"),
-        Column("spin_multipoles", "float64", (("multipole", 5),), description="J_n / M^(n+1), index n = 0..4"),
+        Column("circumference_spin", "float64",
+               description="chi from spin_circumference_ratio, Kerr's relation inverted (Brandt & Seidel 1995)"),
+        Column("mass_multipoles", "float64", (("multipole", MULTIPOLE_COUNT),),
+               description=f"M_n / M^(n+1), index n = 0..{MULTIPOLE_COUNT - 1}"),
+        Column("spin_multipoles", "float64", (("multipole", MULTIPOLE_COUNT),),
+               description=f"J_n / M^(n+1), index n = 0..{MULTIPOLE_COUNT - 1}"),
         Column("area_error", "float64", unit="M^2", description="error estimate of area (numerics/error_bars.py)"),
         Column("irreducible_mass_error", "float64", unit="M", description="error estimate of irreducible_mass"),
         Column("akv_christodoulou_mass_error", "float64", unit="M",
@@ -203,6 +211,16 @@ def surface_columns(lmax: int) -> tuple[Column, ...]:
                description="principal eigenvalue of the MOTS stability operator (l = n + s, k = (n - s) / 2)"),
         Column("stability_eigenvalue_error", "float64", unit="1/M^2",
                description="change of stability_eigenvalue when psi's harmonic degree drops by 2"),
+        Column("spin_direction_error", "float64", unit="rad",
+               description="error estimate of spin_direction, an angle (pi: J indistinguishable from 0)"),
+        Column("spin_equatorial_circumference_error", "float64", unit="M",
+               description="error estimate of spin_equatorial_circumference"),
+        Column("spin_polar_circumference_error", "float64", unit="M",
+               description="error estimate of spin_polar_circumference"),
+        Column("mass_multipoles_error", "float64", (("multipole", MULTIPOLE_COUNT),),
+               description="error estimate of each mass multipole"),
+        Column("spin_multipoles_error", "float64", (("multipole", MULTIPOLE_COUNT),),
+               description="error estimate of each spin multipole"),
         Column("seed_centre", "float64", xyz, unit="M",
                description="forecast position the planner seeded the search at (NaN: no forecast seed)"),
         Column("seed_uncertainty", "float64", unit="M",

@@ -165,6 +165,12 @@ class ArchiveWriter:
                 rows = self._committed.get(group_path, 0)
                 if rows:
                     arr.resize((rows,) + arr.shape[1:])
+            trailing = tuple(size for _, size in column.trailing)
+            if arr.shape[1:] != trailing and len(arr.shape) == 1 + len(trailing) and all(
+                    old <= new for old, new in zip(arr.shape[1:], trailing)):
+                # A column widened since this archive was written (multipoles n = 0..4 -> 0..8):
+                # the rows already there keep their values; their new entries read as the fill value.
+                arr.resize(arr.shape[:1] + trailing)
             self._arrays[key] = arr
         return arr
 

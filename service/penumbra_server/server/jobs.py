@@ -157,9 +157,6 @@ def _quantities_dict(q) -> dict:
         "radius_min": float(q.radius_min),
         "radius_mean": float(q.radius_mean),
         "radius_max": float(q.radius_max),
-        "circumference_xy": float(q.circumference_xy),
-        "circumference_xz": float(q.circumference_xz),
-        "circumference_yz": float(q.circumference_yz),
         "resolution_indicator": float(q.resolution_indicator),
         "angular_momentum": [float(v) for v in q.angular_momentum],
         "christodoulou_mass": float(q.christodoulou_mass),
@@ -167,7 +164,7 @@ def _quantities_dict(q) -> dict:
 
 
 #: Highest multipole order reported (index n = 0 .. MULTIPOLE_N_MAX on the wire and in the archive).
-MULTIPOLE_N_MAX = 4
+MULTIPOLE_N_MAX = 8
 
 _NAN = float("nan")
 
@@ -179,7 +176,7 @@ def _spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str
     surface the finder converged to is never lost to a measurement of what a practitioner quotes.
     Units as in SurfaceQuantities (J in M^2, masses and lengths in M, the rest dimensionless).
     """
-    from ..numerics.circumferences import axis_circumferences
+    from ..numerics.circumferences import axis_circumferences, spin_from_circumference_ratio
     from ..numerics.killing import horizon_spin
     from ..numerics.multipoles import horizon_multipoles
 
@@ -187,7 +184,7 @@ def _spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str
         "akv_angular_momentum": _NAN, "spin_direction": [_NAN] * 3, "dimensionless_spin": _NAN,
         "akv_christodoulou_mass": _NAN, "killing_quality": _NAN,
         "spin_equatorial_circumference": _NAN, "spin_polar_circumference": _NAN,
-        "spin_circumference_ratio": _NAN,
+        "spin_circumference_ratio": _NAN, "circumference_spin": _NAN,
         "mass_multipoles": [_NAN] * (MULTIPOLE_N_MAX + 1), "spin_multipoles": [_NAN] * (MULTIPOLE_N_MAX + 1),
     }
     notes: list[str] = []
@@ -207,7 +204,8 @@ def _spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str
         circ = axis_circumferences(surface, data, spin.direction, spin.centroid, order=order)
         polar = float(np.mean(circ.polar))
         out.update(spin_equatorial_circumference=float(circ.equatorial), spin_polar_circumference=polar,
-                   spin_circumference_ratio=float(circ.ratio))
+                   spin_circumference_ratio=float(circ.ratio),
+                   circumference_spin=spin_from_circumference_ratio(float(circ.ratio)))
     except Exception as exc:
         notes.append(f"spin-axis circumferences not measured: {type(exc).__name__}: {exc}")
     try:
@@ -226,7 +224,15 @@ ERROR_BAR_SOURCES = {
     "akv_christodoulou_mass": "christodoulou_mass",
     "akv_angular_momentum": "angular_momentum",
     "dimensionless_spin": "dimensionless_spin",
+    "centroid": "centroid",
+    "spin_direction": "spin_direction",
+    "spin_equatorial_circumference": "equatorial_circumference",
+    "spin_polar_circumference": "polar_circumference",
+    "mass_multipoles": "mass_multipoles",
+    "spin_multipoles": "spin_multipoles",
 }
+#: Error bars carried per multipole, not as one scalar.
+_PER_INDEX = ("mass_multipoles", "spin_multipoles")
 
 
 def _error_bars(surface: Surface, data: Slice, order: int) -> tuple[dict, list[str]]:
@@ -235,13 +241,16 @@ def _error_bars(surface: Surface, data: Slice, order: int) -> tuple[dict, list[s
     cannot be estimated (e.g. l_max < 3)."""
     from ..numerics.error_bars import quote_horizon
 
-    out = {f"{name}_error": _NAN for name in ERROR_BAR_SOURCES}
+    out = {f"{name}_error": ([_NAN] * (MULTIPOLE_N_MAX + 1) if name in _PER_INDEX else _NAN)
+           for name in ERROR_BAR_SOURCES}
     try:
         quoted = quote_horizon(surface, data, order=order, n_max=MULTIPOLE_N_MAX)
     except Exception as exc:  # an error bar that cannot be made must not lose the surface
         return out, [f"error bars not estimated: {type(exc).__name__}: {exc}"]
     for name, attribute in ERROR_BAR_SOURCES.items():
-        out[f"{name}_error"] = float(getattr(quoted, attribute).error)
+        error = np.asarray(getattr(quoted, attribute).error, dtype=float)
+        # The centroid's error is one length (its displacement), repeated per component.
+        out[f"{name}_error"] = [float(v) for v in error] if name in _PER_INDEX else float(np.max(error))
     return out, []
 
 

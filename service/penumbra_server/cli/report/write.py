@@ -18,6 +18,7 @@ from .loading import load_run
 from .numbers import RunSummary, default_section_times, snap_times, summarise
 from .plots import plot_areas_masses, plot_cross_sections, plot_guidance, plot_tracks
 from .mots import plot_mots, stability_lines
+from .multipoles import plot_multipoles
 from .spin import plot_spin, spin_lines
 from .text import summary_text
 
@@ -55,7 +56,7 @@ def write_report(archive_path, output_dir, *, times=None, plane: str = "xy",
     """
     if plane not in PLANES:
         raise ValueError(f"plane: expected one of {', '.join(PLANES)}, got {plane!r}")
-    progress = progress or Progress("report", 9)
+    progress = progress or Progress("report", 10)
     output_dir = Path(output_dir)
     output_dir.mkdir(parents=True, exist_ok=True)
     record = load_run(archive_path)
@@ -70,7 +71,8 @@ def write_report(archive_path, output_dir, *, times=None, plane: str = "xy",
                  lambda: plot_cross_sections(record, section_times, output_dir / "cross_sections.png", plane=plane),
                  lambda: plot_spin(record, summary, output_dir / "spin.png"),
                  lambda: plot_mots(record, summary, output_dir / "mots.png"),
-                 lambda: plot_formation(record, summary, output_dir / "formation.png")):
+                 lambda: plot_formation(record, summary, output_dir / "formation.png"),
+                 lambda: plot_multipoles(record, summary, output_dir / "multipoles.png")):
         drawn.append(draw())
         progress.step(drawn[-1].path.name)
     limits = {info.path.name: info.limits for info in drawn if info.path.name in ("tracks.png", "guidance.png")}

@@ -42,7 +42,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .excision import ExcisedDataError
-from .expansion import expansion_at
+from .expansion import GeometryTerms, expansion_from, geometry_terms, level_set_derivatives
 from .find_results import (  # noqa: F401  (re-exported: the finder's public names)
     CONVERGED,
     CONVERGED_AT_INTERPOLATION_FLOOR,
@@ -131,6 +131,8 @@ class _Evaluated:
     u: np.ndarray
     shift: float  # radial shift (M) of the points for the Jacobian's h column
     shifted: object  # () -> PointGeometry at the points moved out by ``shift``
+    normal_up: np.ndarray | None = None  # s^i (N, 3), for the Jacobian
+    terms: GeometryTerms | None = None  # the geometry's part of Theta, shared by the Jacobian
 
 
 def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
@@ -167,7 +169,9 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     try:
         with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            terms = expansion_at(rd, geo)
+            level_set = level_set_derivatives(rd)
+            geometry_part = geometry_terms(geo)
+            terms = expansion_from(level_set.dF, level_set.ddF, geometry_part)
     except np.linalg.LinAlgError:  # a singular metric at some point
         run.last_failure = INVALID_GEOMETRY
         run.invalid_note = "the metric is singular at some surface points"
@@ -179,27 +183,25 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     run.max_hist.append(float(np.max(np.abs(th))))
     run.rms_hist.append(float(np.sqrt(np.sum(run.grid.weights * th**2) / (4 * np.pi))))
-    return _Evaluated(surface, rd, pts, geo, th, terms.u, shift, shifted)
+    return _Evaluated(surface, rd, pts, geo, th, terms.u, shift, shifted, terms.normal_up, geometry_part)
 
 
 def _projected_rms(run: _Run, values: np.ndarray) -> float:
     return float(np.linalg.norm(run.grid.project(values)) / np.sqrt(4 * np.pi))
 
 
-def _stacked(geometries: list[PointGeometry]) -> PointGeometry:
-    return PointGeometry(*(np.concatenate([getattr(g, name) for g in geometries])
-                           for name in ("gamma", "dgamma", "K", "covered", "source_patch")))
-
-
 def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     """d(projected Theta)/d(coefficients), square ((lmax+1)^2).
 
     Theta at a node depends on h, its first and second angular derivatives there and on the
-    fields there; the eight perturbed evaluations (h with the fields moved along, central
-    differences in h_t and h_p, unit steps in the second derivatives, which enter linearly)
-    go through one batched call of the expansion.
+    fields there. h moves the point, so its column uses the interpolant shifted along n; h_t and
+    h_p enter nonlinearly (central differences, one batched evaluation on the iterate's geometry
+    terms); h_tt, h_tp and h_pp enter linearly through (gamma^ij - s^i s^j) d_i d_j F / u alone,
+    so their columns are exact: d_i d_j F changes by -grad(theta)_i grad(theta)_j per unit h_tt
+    and likewise for the others.
     """
     rd, geo = ev.rd, ev.geometry
+    n = rd.h.size
     scale = float(np.mean(rd.h))
     # h: moves the point too, so the fields come from the interpolant shifted along n.
     try:
@@ -208,23 +210,29 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
         geo_h = geo  # at an excision boundary or next to bad data: as at the data edge
     if not geo_h.covered.all():
         geo_h = geo  # at the data edge: drop the field variation rather than fail
-    eps_first, eps_second = 1e-5 * scale, scale
-    variants = [("h", ev.shift), ("h_t", eps_first), ("h_t", -eps_first), ("h_p", eps_first), ("h_p", -eps_first),
-                ("h_tt", eps_second), ("h_tp", eps_second), ("h_pp", eps_second)]
-    names = ("theta", "phi", "h", "h_t", "h_p", "h_tt", "h_tp", "h_pp")
-    columns = {name: [] for name in names}
-    for changed, eps in variants:
-        for name in names:
-            value = getattr(rd, name)
-            columns[name].append(value + eps if name == changed else value)
-    batched = RadiusDerivatives(**{name: np.concatenate(v) for name, v in columns.items()})
-    geometry = _stacked([geo_h] + [geo] * (len(variants) - 1))
+    terms_h = ev.terms if geo_h is geo else geometry_terms(geo_h)
+    eps_first = 1e-5 * scale
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        theta = expansion_at(batched, geometry).theta.reshape(len(variants), -1)
-    d_h = (theta[0] - ev.theta) / ev.shift
-    d_t = (theta[1] - theta[2]) / (2 * eps_first)  # first derivatives enter nonlinearly
-    d_p = (theta[3] - theta[4]) / (2 * eps_first)
-    d_tt, d_tp, d_pp = ((theta[k] - ev.theta) / eps_second for k in (5, 6, 7))  # linear: exact
+        ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift))
+        d_h = (expansion_from(ls_h.dF, ls_h.ddF, terms_h).theta - ev.theta) / ev.shift
+        variants = [("h_t", eps_first), ("h_t", -eps_first), ("h_p", eps_first), ("h_p", -eps_first)]
+        batched = RadiusDerivatives(**{
+            name: np.concatenate([getattr(rd, name) + eps if name == changed else getattr(rd, name)
+                                  for changed, eps in variants])
+            for name in ("theta", "phi", "h", "h_t", "h_p", "h_tt", "h_tp", "h_pp")})
+        ls = level_set_derivatives(batched)
+        theta = expansion_from(ls.dF.reshape(4, n, 3), ls.ddF.reshape(4, n, 3, 3), ev.terms).theta
+        d_t = (theta[0] - theta[1]) / (2 * eps_first)
+        d_p = (theta[2] - theta[3]) / (2 * eps_first)
+        _, e_t, e_p = unit_vectors(rd.theta, rd.phi)
+        grad_t = e_t / rd.h[:, None]
+        grad_p = e_p / (rd.h * np.sin(rd.theta))[:, None]
+        s_up = ev.normal_up
+        proj = ev.terms.ginv - s_up[:, :, None] * s_up[:, None, :]
+        proj_t = np.einsum("nij,nj->ni", proj, grad_t)
+        d_tt = -np.einsum("ni,ni->n", proj_t, grad_t) / ev.u
+        d_tp = -2.0 * np.einsum("ni,ni->n", proj_t, grad_p) / ev.u
+        d_pp = -np.einsum("ni,nij,nj->n", grad_p, proj, grad_p) / ev.u
     B = run.grid.basis
     J_nodes = (
         d_h[:, None] * B.Y

@@ -44,39 +44,42 @@ class LevelSetDerivatives:
     ddF: np.ndarray
 
 
-def level_set_derivatives(rd: RadiusDerivatives) -> LevelSetDerivatives:
+def level_set_derivatives(rd: RadiusDerivatives, frame=None) -> LevelSetDerivatives:
     """d_i F and d_i d_j F at the surface points described by ``rd`` (where r = h).
 
     Uses d_i r = n_i, d_i theta = e_theta_i / r, d_i phi = e_phi_i / (r sin theta) and their
-    derivatives; the nodes never sit on a pole, so 1 / sin(theta) is finite.
+    derivatives; the nodes never sit on a pole, so 1 / sin(theta) is finite. The angles are (N,);
+    h and its derivatives may carry leading axes (..., N) (several shapes on the same directions),
+    giving dF (..., N, 3) and ddF (..., N, 3, 3). ``frame``: :func:`unit_vectors` at the angles,
+    when the caller already has them.
     """
-    n, et, ep = unit_vectors(rd.theta, rd.phi)
+    n, et, ep = unit_vectors(rd.theta, rd.phi) if frame is None else frame
     r = rd.h
     st, ct = np.sin(rd.theta), np.cos(rd.theta)
     inv_r = 1.0 / r
     inv_rs = inv_r / st
-    grad_t = et * inv_r[:, None]
-    grad_p = ep * inv_rs[:, None]
-    dF = n - rd.h_t[:, None] * grad_t - rd.h_p[:, None] * grad_p
+    grad_t = et * inv_r[..., None]
+    grad_p = ep * inv_rs[..., None]
+    dF = n - rd.h_t[..., None] * grad_t - rd.h_p[..., None] * grad_p
 
     def outer(a, b):
-        return a[:, :, None] * b[:, None, :]
+        return a[..., :, None] * b[..., None, :]
 
     def sym(a, b):
         return outer(a, b) + outer(b, a)
 
-    eye = np.eye(3)[None]
-    hess_r = (eye - outer(n, n)) * inv_r[:, None, None]
-    hess_t = (-sym(et, n) + (ct / st)[:, None, None] * outer(ep, ep)) * (inv_r**2)[:, None, None]
+    eye = np.eye(3)
+    hess_r = (eye - outer(n, n)) * inv_r[..., None, None]
+    hess_t = (-sym(et, n) + (ct / st)[:, None, None] * outer(ep, ep)) * (inv_r**2)[..., None, None]
     rad_mix = st[:, None] * n + ct[:, None] * et  # d e_phi / d phi = -(this)
-    hess_p = -sym(rad_mix, ep) * (inv_r**2 / st**2)[:, None, None]
+    hess_p = -sym(rad_mix, ep) * (inv_r**2 / st**2)[..., None, None]
     ddF = (
         hess_r
-        - rd.h_t[:, None, None] * hess_t
-        - rd.h_p[:, None, None] * hess_p
-        - rd.h_tt[:, None, None] * outer(grad_t, grad_t)
-        - rd.h_tp[:, None, None] * sym(grad_t, grad_p)
-        - rd.h_pp[:, None, None] * outer(grad_p, grad_p)
+        - rd.h_t[..., None, None] * hess_t
+        - rd.h_p[..., None, None] * hess_p
+        - rd.h_tt[..., None, None] * outer(grad_t, grad_t)
+        - rd.h_tp[..., None, None] * sym(grad_t, grad_p)
+        - rd.h_pp[..., None, None] * outer(grad_p, grad_p)
     )
     return LevelSetDerivatives(dF, ddF)
 

@@ -133,18 +133,20 @@ class _Evaluated:
     shifted: object  # () -> PointGeometry at the points moved out by ``shift``
     normal_up: np.ndarray | None = None  # s^i (N, 3), for the Jacobian
     terms: GeometryTerms | None = None  # the geometry's part of Theta, shared by the Jacobian
+    frame: tuple | None = None  # unit_vectors at the nodes: n, e_theta, e_phi (N, 3) each
 
 
 def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
     """Theta at the nodes of ``surface``; None (with a note) when data is missing there."""
     rd = surface.on_grid(run.grid)
-    pts = surface.points(rd)
+    frame = unit_vectors(rd.theta, rd.phi)
+    pts = surface.centre + rd.h[:, None] * frame[0]  # surface.points(rd), frame reused
     if not np.all(np.isfinite(pts)):
         run.last_failure = DIVERGED
         return None
     shift = 1e-7 * float(np.mean(rd.h))
     try:
-        geo, shifted = run.source.evaluate(pts, shift * unit_vectors(rd.theta, rd.phi)[0])
+        geo, shifted = run.source.evaluate(pts, shift * frame[0])
     except ExcisedDataError as exc:
         run.last_failure = NEEDS_EXCISED_DATA
         run.excised_note = str(exc)
@@ -169,7 +171,7 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     try:
         with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            level_set = level_set_derivatives(rd)
+            level_set = level_set_derivatives(rd, frame)
             geometry_part = geometry_terms(geo)
             terms = expansion_from(level_set.dF, level_set.ddF, geometry_part)
     except np.linalg.LinAlgError:  # a singular metric at some point
@@ -183,7 +185,7 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     run.max_hist.append(float(np.max(np.abs(th))))
     run.rms_hist.append(float(np.sqrt(np.sum(run.grid.weights * th**2) / (4 * np.pi))))
-    return _Evaluated(surface, rd, pts, geo, th, terms.u, shift, shifted, terms.normal_up, geometry_part)
+    return _Evaluated(surface, rd, pts, geo, th, terms.u, shift, shifted, terms.normal_up, geometry_part, frame)
 
 
 def _projected_rms(run: _Run, values: np.ndarray) -> float:
@@ -201,7 +203,6 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     and likewise for the others.
     """
     rd, geo = ev.rd, ev.geometry
-    n = rd.h.size
     scale = float(np.mean(rd.h))
     # h: moves the point too, so the fields come from the interpolant shifted along n.
     try:
@@ -213,18 +214,16 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     terms_h = ev.terms if geo_h is geo else geometry_terms(geo_h)
     eps_first = 1e-5 * scale
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift))
+        ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift), ev.frame)
         d_h = (expansion_from(ls_h.dF, ls_h.ddF, terms_h).theta - ev.theta) / ev.shift
-        variants = [("h_t", eps_first), ("h_t", -eps_first), ("h_p", eps_first), ("h_p", -eps_first)]
-        batched = RadiusDerivatives(**{
-            name: np.concatenate([getattr(rd, name) + eps if name == changed else getattr(rd, name)
-                                  for changed, eps in variants])
-            for name in ("theta", "phi", "h", "h_t", "h_p", "h_tt", "h_tp", "h_pp")})
-        ls = level_set_derivatives(batched)
-        theta = expansion_from(ls.dF.reshape(4, n, 3), ls.ddF.reshape(4, n, 3, 3), ev.terms).theta
+        # The four shapes h_t +- eps, h_p +- eps on the same directions and geometry, batched.
+        step = np.array([eps_first, -eps_first, 0.0, 0.0])[:, None]
+        variants = rd.replace(h_t=rd.h_t + step, h_p=rd.h_p + step[[2, 3, 0, 1]])
+        ls = level_set_derivatives(variants, ev.frame)
+        theta = expansion_from(ls.dF, ls.ddF, ev.terms).theta
         d_t = (theta[0] - theta[1]) / (2 * eps_first)
         d_p = (theta[2] - theta[3]) / (2 * eps_first)
-        _, e_t, e_p = unit_vectors(rd.theta, rd.phi)
+        _, e_t, e_p = ev.frame
         grad_t = e_t / rd.h[:, None]
         grad_p = e_p / (rd.h * np.sin(rd.theta))[:, None]
         s_up = ev.normal_up

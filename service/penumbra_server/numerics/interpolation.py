@@ -215,8 +215,11 @@ class GridGeometry:
             for store, sel, w, s, slots in pending:
                 ds = shift[sel] / store.spacing  # shift in node units
                 dw = lagrange_weight_derivatives(s, self.order) * ds[:, :, None]
-                shift_weights = (_tensor_product(dw[:, 0], w[:, 1], w[:, 2]) + _tensor_product(w[:, 0], dw[:, 1], w[:, 2])
-                                 + _tensor_product(w[:, 0], w[:, 1], dw[:, 2]))
+                # d/ds of wx wy wz along the shift, factored: (dwx wy + wx dwy) wz + (wx wy) dwz.
+                m, p = s.shape[0], self.order
+                xy = (w[:, 0, :, None] * w[:, 1, None, :]).reshape(m, p * p, 1)
+                dxy = (dw[:, 0, :, None] * w[:, 1, None, :] + w[:, 0, :, None] * dw[:, 1, None, :]).reshape(m, p * p, 1)
+                shift_weights = (dxy * w[:, None, 2] + xy * dw[:, None, 2]).reshape(m, -1)
                 dvalues[sel] = _stencil_sums(store, shift_weights, slots)
             shifted = self._to_physical(values + dvalues, source)
             return shifted if sub is None else _merged(shifted, idx, sub_moved())

@@ -36,6 +36,7 @@ or 6 (not resolved).
 from __future__ import annotations
 
 import dataclasses
+import functools
 import time
 from dataclasses import dataclass, field
 
@@ -232,16 +233,23 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
         d_tt = -np.einsum("ni,ni->n", proj_t, grad_t) / ev.u
         d_tp = -2.0 * np.einsum("ni,ni->n", proj_t, grad_p) / ev.u
         d_pp = -np.einsum("ni,nij,nj->n", grad_p, proj, grad_p) / ev.u
-    B = run.grid.basis
-    J_nodes = (
-        d_h[:, None] * B.Y
-        + d_t[:, None] * B.d_theta
-        + d_p[:, None] * B.d_phi
-        + d_tt[:, None] * B.d_theta_theta
-        + d_tp[:, None] * B.d_theta_phi
-        + d_pp[:, None] * B.d_phi_phi
-    )
-    return B.Y.T @ (run.grid.weights[:, None] * J_nodes)
+    stacked, projector = _jacobian_bases(run.grid)
+    local = np.stack([d_h, d_t, d_p, d_tt, d_tp, d_pp], axis=1)  # (N, 6): dTheta / d(h, h_t, ..., h_pp)
+    J_nodes = np.matmul(local[:, None, :], stacked)[:, 0, :]  # (N, n_coef)
+    return projector @ J_nodes
+
+
+@functools.lru_cache(maxsize=16)
+def _jacobian_bases(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray]:
+    """(N, 6, n_coef) Y and its derivatives (theta, phi, theta theta, theta phi, phi phi) node by
+    node, and the projection (n_coef, N) = Y^T diag(weights), read-only. Memoised: a pure
+    function of the grid, which :func:`angular_grid` itself memoises."""
+    B = grid.basis
+    stacked = np.ascontiguousarray(np.stack([B.Y, B.d_theta, B.d_phi, B.d_theta_theta, B.d_theta_phi, B.d_phi_phi], axis=1))
+    projector = np.ascontiguousarray((grid.weights[:, None] * B.Y).T)
+    stacked.setflags(write=False)
+    projector.setflags(write=False)
+    return stacked, projector
 
 
 def _diverged(surface: Surface, run: _Run, limit: float) -> bool:

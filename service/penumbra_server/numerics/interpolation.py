@@ -183,7 +183,7 @@ class GridGeometry:
         pending = []  # (store, point indices, per-axis weights, local coordinates, slots) for the shifted geometry
         lower = np.zeros(n, dtype=bool)  # points handed to the next lower order
         for store, sel, flat, weights, w, s, corners in self.stencils(points):
-            slots = store.slots(flat)
+            slots = store.slots(flat, corners)
             flags = np.take(store.flags, slots) if store.any_flagged else None
             if flags is not None and flags.any():
                 excised = (flags & NodeStore.EXCISED).any(axis=1)
@@ -194,7 +194,7 @@ class GridGeometry:
                 else:
                     self._raise_bad(store, flags, flat, points[sel])
             values[sel] = _stencil_sums(store, weights, slots)
-            if shift is not None:
+            if shift is not None and sel.size:
                 pending.append((store, sel, w, s, slots))
             source[sel] = store.patch_index
         if self.next_lower is not None:

@@ -197,14 +197,16 @@ class NodeStore:
         for start in range(0, corners.shape[0], self._STENCIL_CHUNK):
             ci, cj, ck = corners[start: start + self._STENCIL_CHUNK].T
             chunk_flat = flat[start: start + self._STENCIL_CHUNK]
+            if not (np.take(self._slot, chunk_flat) < 0).any():
+                continue  # earlier stencils of this call made them all
             m = ci.size
-            rows = np.empty((m, p, p, p, self.n_values))
+            columns = np.empty((self.n_values, m, p, p, p))  # value-major: each value written in one pass
             with np.errstate(invalid="ignore", over="ignore"):
                 for f, name in enumerate(self._raw_differentiated):
                     wx, wy, wz = windows[name]
                     along = tuple(box.astype(float, copy=False)
                                   for box in (wx[ci - g, cj, ck], wy[ci, cj - g, ck], wz[ci, cj, ck - g]))
-                    rows[..., f] = along[0][:, g: g + p]
+                    columns[f] = along[0][:, g: g + p]
                     for axis, box in enumerate(along):
                         lo = [slice(None)] * 4
                         hi = [slice(None)] * 4
@@ -213,13 +215,14 @@ class NodeStore:
                             lo[1 + axis] = slice(g - k, g - k + p)
                             hi[1 + axis] = slice(g + k, g + k + p)
                             derivative = derivative + c[k - 1] * (box[tuple(hi)] - box[tuple(lo)])
-                        rows[..., 7 + 3 * f + axis] = derivative / self.spacing[axis]
+                        columns[7 + 3 * f + axis] = derivative / self.spacing[axis]
                 for f, name in enumerate(self._raw_plain):
-                    rows[..., 28 + f] = plain[name][ci, cj, ck]
-            self._store_new(chunk_flat.reshape(-1), rows.reshape(-1, self.n_values))
+                    columns[28 + f] = plain[name][ci, cj, ck]
+            self._store_new(chunk_flat.reshape(-1), columns.reshape(self.n_values, -1))
 
-    def _store_new(self, flat: np.ndarray, rows: np.ndarray) -> None:
-        """Keep the rows of the nodes in ``flat`` (one row each, repeats allowed) not yet stored."""
+    def _store_new(self, flat: np.ndarray, columns: np.ndarray) -> None:
+        """Keep the rows of the nodes in ``flat`` (one each, repeats allowed) not yet stored;
+        ``columns`` (values, len(flat)) holds them value-major."""
         new = np.nonzero(self._slot[flat] < 0)[0]
         if new.size == 0:
             return
@@ -229,7 +232,7 @@ class NodeStore:
         new = new[self._slot[flat[new]] == order]
         q = new.size
         self._grow(q)
-        values = rows[new]
+        values = columns[:, new].T
         flags = np.where(np.isfinite(values).all(axis=1), 0, self.NON_FINITE).astype(np.uint8)
         nodes = flat[new]
         if self._spheres or self._mask is not None:
@@ -245,14 +248,12 @@ class NodeStore:
         need = self.count + extra
         if need <= self.values.shape[0]:
             return
-        capacity = max(need + need // 4, 4096)
-        # A fresh block, only the made rows copied: no zero-filling of the new part. Views of the
-        # old block (a caller's sparse product in progress) stay valid.
-        values = np.empty((capacity, self.n_values))
-        values[: self.count] = self.values[: self.count]
-        flags = np.empty(capacity, dtype=np.uint8)
-        flags[: self.count] = self.flags[: self.count]
-        self.values, self.flags = values, flags
+        capacity = max(need + need // 4, 4096)  # growth is cheap (remapped), zero-filling is not
+        # In-place reallocation: large blocks are remapped by the allocator, not copied. The store
+        # hands out no views that outlive a call (np.take copies; the sparse sums read a view of
+        # the made rows during one product, with no fill in between).
+        self.values.resize((capacity, self.n_values), refcheck=False)
+        self.flags.resize(capacity, refcheck=False)
 
     def _offsets(self, nodes_ijk: np.ndarray, strides: np.ndarray, taps: np.ndarray) -> np.ndarray:
         """(n_taps, q) flat offsets into a raw array of the taps (n_taps, 3) about each node."""

@@ -122,3 +122,27 @@ def test_jacobian_matches_the_reference(pair):
     assert np.linalg.norm(J) == pytest.approx(ref["frobenius"], rel=1e-9)
     np.testing.assert_allclose(np.diag(J)[PICK], ref["diagonal"], rtol=0, atol=1e-8 * scale)
     np.testing.assert_allclose(J[4, PICK], ref["row"], rtol=0, atol=1e-8 * scale)
+
+
+@pytest.mark.parametrize("memory_order", ["C", "F"])
+def test_stencil_fill_and_node_fill_make_bitwise_equal_rows(memory_order, monkeypatch):
+    from penumbra_server.numerics.interpolation import grid_geometry
+    from penumbra_server.numerics.node_store import NodeStore
+
+    hole = BrillLindquist(masses=np.array([1.0]), positions=np.zeros((1, 3)))
+    sl = sample_slice(hole, [cube_box([0, 0, 0], 0.9, 0.05)], variable_set="conformal_w", memory_order=memory_order)
+    # Points far apart (stencils do not overlap): every touched node is missing, so the store
+    # fills by whole stencils when given the corners, node by node when not.
+    directions = np.array([[1, 0, 0], [0, 1, 0], [0, 0, 1], [-1, 0, 0], [0, -1, 0], [0, 0, -1]], float)
+    points = 0.55 * directions + np.array([0.013, -0.007, 0.004])
+    store, _, flat, _, _, _, corners = grid_geometry(sl, order=6).stencils(points)[0]
+    used = []
+    for name in ("_fill", "_fill_stencils"):
+        real = getattr(NodeStore, name)
+        monkeypatch.setattr(NodeStore, name, lambda self, *a, _real=real, _name=name: (used.append(_name), _real(self, *a))[1])
+    by_stencil, by_node = NodeStore(sl, 0, 6), NodeStore(sl, 0, 6)
+    rows_stencil = by_stencil.values[by_stencil.slots(flat, corners)]
+    rows_node = by_node.values[by_node.slots(flat)]
+    assert used == ["_fill_stencils", "_fill"]
+    assert np.isfinite(rows_node).all()
+    np.testing.assert_array_equal(rows_stencil, rows_node)

@@ -140,7 +140,7 @@ class _Evaluated:
 def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
     """Theta at the nodes of ``surface``; None (with a note) when data is missing there."""
     rd = surface.on_grid(run.grid)
-    frame = unit_vectors(rd.theta, rd.phi)
+    frame = _frame(run.grid)
     pts = surface.centre + rd.h[:, None] * frame[0]  # surface.points(rd), frame reused
     if not np.all(np.isfinite(pts)):
         run.last_failure = DIVERGED
@@ -240,6 +240,15 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
 
 
 @functools.lru_cache(maxsize=16)
+def _frame(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`unit_vectors` at the grid's nodes, read-only (memoised like :func:`_jacobian_bases`)."""
+    frame = unit_vectors(grid.theta, grid.phi)
+    for vectors in frame:
+        vectors.setflags(write=False)
+    return frame
+
+
+@functools.lru_cache(maxsize=16)
 def _jacobian_bases(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray]:
     """(N, 6, n_coef) Y and its derivatives (theta, phi, theta theta, theta phi, phi phi) node by
     node, and the projection (n_coef, N) = Y^T diag(weights), read-only. Memoised: a pure
@@ -253,7 +262,7 @@ def _jacobian_bases(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _diverged(surface: Surface, run: _Run, limit: float) -> bool:
-    h = surface.on_grid(run.grid).h
+    h = run.grid.basis.Y @ surface.coefficients  # h alone: no derivatives needed here
     return bool(not np.all(np.isfinite(h)) or np.min(h) <= 0 or np.max(h) > limit)
 
 

@@ -36,13 +36,14 @@ or 6 (not resolved).
 from __future__ import annotations
 
 import dataclasses
+import functools
 import time
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from .excision import ExcisedDataError
-from .expansion import expansion_at
+from .expansion import GeometryTerms, expansion_from, geometry_terms, level_set_derivatives
 from .find_results import (  # noqa: F401  (re-exported: the finder's public names)
     CONVERGED,
     CONVERGED_AT_INTERPOLATION_FLOOR,
@@ -131,18 +132,22 @@ class _Evaluated:
     u: np.ndarray
     shift: float  # radial shift (M) of the points for the Jacobian's h column
     shifted: object  # () -> PointGeometry at the points moved out by ``shift``
+    normal_up: np.ndarray | None = None  # s^i (N, 3), for the Jacobian
+    terms: GeometryTerms | None = None  # the geometry's part of Theta, shared by the Jacobian
+    frame: tuple | None = None  # unit_vectors at the nodes: n, e_theta, e_phi (N, 3) each
 
 
 def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
     """Theta at the nodes of ``surface``; None (with a note) when data is missing there."""
     rd = surface.on_grid(run.grid)
-    pts = surface.points(rd)
+    frame = _frame(run.grid)
+    pts = surface.centre + rd.h[:, None] * frame[0]  # surface.points(rd), frame reused
     if not np.all(np.isfinite(pts)):
         run.last_failure = DIVERGED
         return None
     shift = 1e-7 * float(np.mean(rd.h))
     try:
-        geo, shifted = run.source.evaluate(pts, shift * unit_vectors(rd.theta, rd.phi)[0])
+        geo, shifted = run.source.evaluate(pts, shift * frame[0])
     except ExcisedDataError as exc:
         run.last_failure = NEEDS_EXCISED_DATA
         run.excised_note = str(exc)
@@ -167,7 +172,9 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     try:
         with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            terms = expansion_at(rd, geo)
+            level_set = level_set_derivatives(rd, frame)
+            geometry_part = geometry_terms(geo)
+            terms = expansion_from(level_set.dF, level_set.ddF, geometry_part)
     except np.linalg.LinAlgError:  # a singular metric at some point
         run.last_failure = INVALID_GEOMETRY
         run.invalid_note = "the metric is singular at some surface points"
@@ -179,25 +186,22 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     run.max_hist.append(float(np.max(np.abs(th))))
     run.rms_hist.append(float(np.sqrt(np.sum(run.grid.weights * th**2) / (4 * np.pi))))
-    return _Evaluated(surface, rd, pts, geo, th, terms.u, shift, shifted)
+    return _Evaluated(surface, rd, pts, geo, th, terms.u, shift, shifted, terms.normal_up, geometry_part, frame)
 
 
 def _projected_rms(run: _Run, values: np.ndarray) -> float:
     return float(np.linalg.norm(run.grid.project(values)) / np.sqrt(4 * np.pi))
 
 
-def _stacked(geometries: list[PointGeometry]) -> PointGeometry:
-    return PointGeometry(*(np.concatenate([getattr(g, name) for g in geometries])
-                           for name in ("gamma", "dgamma", "K", "covered", "source_patch")))
-
-
 def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     """d(projected Theta)/d(coefficients), square ((lmax+1)^2).
 
     Theta at a node depends on h, its first and second angular derivatives there and on the
-    fields there; the eight perturbed evaluations (h with the fields moved along, central
-    differences in h_t and h_p, unit steps in the second derivatives, which enter linearly)
-    go through one batched call of the expansion.
+    fields there. h moves the point, so its column uses the interpolant shifted along n; h_t and
+    h_p enter nonlinearly (central differences, one batched evaluation on the iterate's geometry
+    terms); h_tt, h_tp and h_pp enter linearly through (gamma^ij - s^i s^j) d_i d_j F / u alone,
+    so their columns are exact: d_i d_j F changes by -grad(theta)_i grad(theta)_j per unit h_tt
+    and likewise for the others.
     """
     rd, geo = ev.rd, ev.geometry
     scale = float(np.mean(rd.h))
@@ -208,37 +212,57 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
         geo_h = geo  # at an excision boundary or next to bad data: as at the data edge
     if not geo_h.covered.all():
         geo_h = geo  # at the data edge: drop the field variation rather than fail
-    eps_first, eps_second = 1e-5 * scale, scale
-    variants = [("h", ev.shift), ("h_t", eps_first), ("h_t", -eps_first), ("h_p", eps_first), ("h_p", -eps_first),
-                ("h_tt", eps_second), ("h_tp", eps_second), ("h_pp", eps_second)]
-    names = ("theta", "phi", "h", "h_t", "h_p", "h_tt", "h_tp", "h_pp")
-    columns = {name: [] for name in names}
-    for changed, eps in variants:
-        for name in names:
-            value = getattr(rd, name)
-            columns[name].append(value + eps if name == changed else value)
-    batched = RadiusDerivatives(**{name: np.concatenate(v) for name, v in columns.items()})
-    geometry = _stacked([geo_h] + [geo] * (len(variants) - 1))
+    terms_h = ev.terms if geo_h is geo else geometry_terms(geo_h)
+    eps_first = 1e-5 * scale
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        theta = expansion_at(batched, geometry).theta.reshape(len(variants), -1)
-    d_h = (theta[0] - ev.theta) / ev.shift
-    d_t = (theta[1] - theta[2]) / (2 * eps_first)  # first derivatives enter nonlinearly
-    d_p = (theta[3] - theta[4]) / (2 * eps_first)
-    d_tt, d_tp, d_pp = ((theta[k] - ev.theta) / eps_second for k in (5, 6, 7))  # linear: exact
-    B = run.grid.basis
-    J_nodes = (
-        d_h[:, None] * B.Y
-        + d_t[:, None] * B.d_theta
-        + d_p[:, None] * B.d_phi
-        + d_tt[:, None] * B.d_theta_theta
-        + d_tp[:, None] * B.d_theta_phi
-        + d_pp[:, None] * B.d_phi_phi
-    )
-    return B.Y.T @ (run.grid.weights[:, None] * J_nodes)
+        ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift), ev.frame)
+        d_h = (expansion_from(ls_h.dF, ls_h.ddF, terms_h).theta - ev.theta) / ev.shift
+        # The four shapes h_t +- eps, h_p +- eps on the same directions and geometry, batched.
+        step = np.array([eps_first, -eps_first, 0.0, 0.0])[:, None]
+        variants = rd.replace(h_t=rd.h_t + step, h_p=rd.h_p + step[[2, 3, 0, 1]])
+        ls = level_set_derivatives(variants, ev.frame)
+        theta = expansion_from(ls.dF, ls.ddF, ev.terms).theta
+        d_t = (theta[0] - theta[1]) / (2 * eps_first)
+        d_p = (theta[2] - theta[3]) / (2 * eps_first)
+        _, e_t, e_p = ev.frame
+        grad_t = e_t / rd.h[:, None]
+        grad_p = e_p / (rd.h * np.sin(rd.theta))[:, None]
+        s_up = ev.normal_up
+        proj = ev.terms.ginv - s_up[:, :, None] * s_up[:, None, :]
+        proj_t = np.einsum("nij,nj->ni", proj, grad_t)
+        d_tt = -np.einsum("ni,ni->n", proj_t, grad_t) / ev.u
+        d_tp = -2.0 * np.einsum("ni,ni->n", proj_t, grad_p) / ev.u
+        d_pp = -np.einsum("ni,nij,nj->n", grad_p, proj, grad_p) / ev.u
+    stacked, projector = _jacobian_bases(run.grid)
+    local = np.stack([d_h, d_t, d_p, d_tt, d_tp, d_pp], axis=1)  # (N, 6): dTheta / d(h, h_t, ..., h_pp)
+    J_nodes = np.matmul(local[:, None, :], stacked)[:, 0, :]  # (N, n_coef)
+    return projector @ J_nodes
+
+
+@functools.lru_cache(maxsize=16)
+def _frame(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`unit_vectors` at the grid's nodes, read-only (memoised like :func:`_jacobian_bases`)."""
+    frame = unit_vectors(grid.theta, grid.phi)
+    for vectors in frame:
+        vectors.setflags(write=False)
+    return frame
+
+
+@functools.lru_cache(maxsize=16)
+def _jacobian_bases(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray]:
+    """(N, 6, n_coef) Y and its derivatives (theta, phi, theta theta, theta phi, phi phi) node by
+    node, and the projection (n_coef, N) = Y^T diag(weights), read-only. Memoised: a pure
+    function of the grid, which :func:`angular_grid` itself memoises."""
+    B = grid.basis
+    stacked = np.ascontiguousarray(np.stack([B.Y, B.d_theta, B.d_phi, B.d_theta_theta, B.d_theta_phi, B.d_phi_phi], axis=1))
+    projector = np.ascontiguousarray((grid.weights[:, None] * B.Y).T)
+    stacked.setflags(write=False)
+    projector.setflags(write=False)
+    return stacked, projector
 
 
 def _diverged(surface: Surface, run: _Run, limit: float) -> bool:
-    h = surface.on_grid(run.grid).h
+    h = run.grid.basis.Y @ surface.coefficients  # h alone: no derivatives needed here
     return bool(not np.all(np.isfinite(h)) or np.min(h) <= 0 or np.max(h) > limit)
 
 

@@ -34,6 +34,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import sparse
 
 from .excision import ExcisedDataError
 from .geometry import PointGeometry, physical_from_conformal, symmetric_from_components
@@ -130,12 +131,11 @@ class GridGeometry:
         """Nodes whose values have been computed so far (all patches)."""
         return sum(b.count for b in self.blocks)
 
-    def stencils(self, points: np.ndarray, shift: np.ndarray | None = None):
+    def stencils(self, points: np.ndarray):
         """For each patch serving some points (finest first): (store, point indices, flat node
-        indices (m, order^3), weights (m, order^3), shift weights (m, order^3) or None, stencil
-        corners (m, 3): node indices of each stencil's node [0, 0, 0]). Points no
-        patch serves are left out. With ``shift`` (N, 3), the shift weights give the derivative
-        of the interpolant along each point's shift vector (units: per unit shift)."""
+        indices (m, order^3), weights (m, order^3), per-axis weights (m, 3, order), local
+        coordinates (m, 3) in node units, stencil corners (m, 3): node indices of each stencil's
+        node [0, 0, 0]). Points no patch serves are left out."""
         points = np.asarray(points, dtype=float).reshape(-1, 3)
         todo = np.ones(points.shape[0], dtype=bool)
         p = self.order
@@ -157,17 +157,9 @@ class GridGeometry:
             strides = np.array([store.shape[1] * store.shape[2], store.shape[2], 1])
             offsets = ((off[:, None, None] * strides[0] + off[None, :, None] * strides[1]) + off[None, None, :]).ravel()
             flat = (b @ strides)[:, None] + offsets[None, :]
-            w = [lagrange_weights(s[:, a], p) for a in range(3)]
-            weights = np.einsum("ma,mb,mc->mabc", w[0], w[1], w[2]).reshape(sel.size, -1)
-            shift_weights = None
-            if shift is not None:
-                ds = shift[sel] / store.spacing  # shift in node units
-                dw = [lagrange_weight_derivatives(s[:, a], p) * ds[:, a, None] for a in range(3)]
-                shift_weights = (dw[0][:, :, None, None] * w[1][:, None, :, None] * w[2][:, None, None, :]
-                                 + w[0][:, :, None, None] * dw[1][:, None, :, None] * w[2][:, None, None, :]
-                                 + w[0][:, :, None, None] * w[1][:, None, :, None] * dw[2][:, None, None, :]
-                                 ).reshape(sel.size, -1)
-            out.append((store, sel, flat, weights, shift_weights, b))
+            w = lagrange_weights(s, p)  # (m, 3, p): all three axes in one pass
+            weights = _tensor_product(w[:, 0], w[:, 1], w[:, 2])
+            out.append((store, sel, flat, weights, w, s, b))
             todo[sel] = False
         return out
 
@@ -177,33 +169,33 @@ class GridGeometry:
     def evaluate(self, points: np.ndarray, shift: np.ndarray | None = None):
         """(geometry at ``points``, a callable giving the geometry at ``points + shift`` to first
         order in the shift, or None without ``shift``). The second comes from the derivative of
-        the same interpolant along the shift, on the stencil values already gathered: no second
-        gather.
-        ``shift`` (N, 3) in M; meant for small shifts (a Jacobian's perturbation)."""
+        the same interpolant along the shift, on the same prepared node rows: no new nodes.
+        ``shift`` (N, 3) in M; meant for small shifts (a Jacobian's perturbation).
+
+        The stencil sums are one sparse matrix (points x prepared nodes, order^3 weights a row)
+        times the store's rows: each row is read where it lies, with no gathered copy of the
+        stencils' rows (which would be order^3 times the output)."""
         points = np.asarray(points, dtype=float).reshape(-1, 3)
         n = points.shape[0]
         nv = len(self.differentiated) * 4 + len(self.plain)
         values = np.full((n, nv), np.nan)
-        dvalues = None if shift is None else np.full((n, nv), np.nan)
         source = np.full(n, -1, dtype=int)
-        pending = []  # (points, shift weights, stencil rows) for the shifted geometry
+        pending = []  # (store, point indices, per-axis weights, local coordinates, slots) for the shifted geometry
         lower = np.zeros(n, dtype=bool)  # points handed to the next lower order
-        for store, sel, flat, weights, shift_weights, corners in self.stencils(points, shift):
-            slots = store.slots(flat)
+        for store, sel, flat, weights, w, s, corners in self.stencils(points):
+            slots = store.slots(flat, corners)
             flags = np.take(store.flags, slots) if store.any_flagged else None
             if flags is not None and flags.any():
                 excised = (flags & NodeStore.EXCISED).any(axis=1)
                 if self.next_lower is not None and excised.any() and not (flags[~excised] != 0).any():
                     lower[sel[excised]] = True
                     keep = ~excised
-                    sel, flat, weights, slots = sel[keep], flat[keep], weights[keep], slots[keep]
-                    shift_weights = None if shift_weights is None else shift_weights[keep]
+                    sel, weights, slots, w, s = sel[keep], weights[keep], slots[keep], w[keep], s[keep]
                 else:
                     self._raise_bad(store, flags, flat, points[sel])
-            rows = np.take(store.values, slots, axis=0)  # (m, p^3, nv), one contiguous row per node
-            values[sel] = np.einsum("mk,mkv->mv", weights, rows)
-            if shift_weights is not None:
-                pending.append((sel, shift_weights, rows))
+            values[sel] = _stencil_sums(store, weights, slots)
+            if shift is not None and sel.size:
+                pending.append((store, sel, w, s, slots))
             source[sel] = store.patch_index
         if self.next_lower is not None:
             lower |= source < 0  # narrower stencils may fit where these do not
@@ -217,9 +209,18 @@ class GridGeometry:
             return geometry, None
 
         def moved() -> PointGeometry:
-            # Made on demand: a rejected trial step never needs it.
-            for sel, shift_weights, rows in pending:
-                dvalues[sel] = np.einsum("mk,mkv->mv", shift_weights, rows)
+            # Made on demand: a rejected trial step never needs it. The store's rows never change
+            # once made (growing it moves them, keeping their slots), so the slots still hold.
+            dvalues = np.full((n, nv), np.nan)
+            for store, sel, w, s, slots in pending:
+                ds = shift[sel] / store.spacing  # shift in node units
+                dw = lagrange_weight_derivatives(s, self.order) * ds[:, :, None]
+                # d/ds of wx wy wz along the shift, factored: (dwx wy + wx dwy) wz + (wx wy) dwz.
+                m, p = s.shape[0], self.order
+                xy = (w[:, 0, :, None] * w[:, 1, None, :]).reshape(m, p * p, 1)
+                dxy = (dw[:, 0, :, None] * w[:, 1, None, :] + w[:, 0, :, None] * dw[:, 1, None, :]).reshape(m, p * p, 1)
+                shift_weights = (dxy * w[:, None, 2] + xy * dw[:, None, 2]).reshape(m, -1)
+                dvalues[sel] = _stencil_sums(store, shift_weights, slots)
             shifted = self._to_physical(values + dvalues, source)
             return shifted if sub is None else _merged(shifted, idx, sub_moved())
 
@@ -270,6 +271,22 @@ class GridGeometry:
         with np.errstate(divide="ignore", invalid="ignore"):
             gamma, dgamma, K = physical_from_conformal(chi, dchi, gamma_tilde, dgamma_tilde, A_tilde, plain[:, 6])
         return PointGeometry(gamma, dgamma, K, covered, source)
+
+
+def _tensor_product(wx: np.ndarray, wy: np.ndarray, wz: np.ndarray) -> np.ndarray:
+    """(m, p^3) products wx_a wy_b wz_c, x slowest, of per-axis weights (m, p) each."""
+    m, p = wx.shape
+    return ((wx[:, :, None] * wy[:, None, :]).reshape(m, p * p, 1) * wz[:, None, :]).reshape(m, -1)
+
+
+def _stencil_sums(store: NodeStore, weights: np.ndarray, slots: np.ndarray) -> np.ndarray:
+    """(m, values) sum over each stencil of weight times node row: a sparse (m x rows) matrix,
+    one row of order^3 weights per point, times the store's rows in place."""
+    m, k = weights.shape
+    indptr = np.arange(0, m * k + 1, k, dtype=np.int64 if m * k >= 2**31 else np.int32)
+    rows = store.values[: store.count]
+    matrix = sparse.csr_array((weights.reshape(-1), slots.reshape(-1), indptr), shape=(m, rows.shape[0]))
+    return matrix @ rows
 
 
 def _merged(geometry: PointGeometry, idx: np.ndarray, part: PointGeometry) -> PointGeometry:

@@ -18,6 +18,7 @@ conformal factor (chi, W or phi).
 from __future__ import annotations
 
 import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
 
 from .excision import EXCISION_MASK_FIELD
 from .slices import Slice, VariableSet, symmetric_field_names
@@ -117,12 +118,13 @@ class NodeStore:
             self._raw_differentiated = (vs.conformal_factor_name,) + symmetric_field_names("gamma_tilde")
             self._raw_plain = _PLAIN
         self._raw = {name: _flat_view(patch.fields[name]) for name in self._raw_differentiated + self._raw_plain}
+        self._arrays = {name: patch.fields[name] for name in self._raw}  # as given, for box reads
         self.n_differentiated = 7
         self.n_values = 4 * 7 + 7
-        self._slot = np.full(int(np.prod(self.shape)), -1, dtype=np.int32)  # flat node -> row
+        self._slot_array: np.ndarray | None = None  # flat node -> row (-1: not made), on first use
         # The differentiated fields themselves (conformal, for ADM: decomposed once per node, not
         # once per stencil that reads it), on first touch by a difference stencil.
-        self._base_slot = np.full(int(np.prod(self.shape)), -1, dtype=np.int32)
+        self._base_slot_array: np.ndarray | None = None  # as _slot, for the differentiated fields alone
         self._base = np.empty((0, 7))
         self._base_count = 0
         self.values = np.empty((0, self.n_values))
@@ -130,19 +132,117 @@ class NodeStore:
         self.count = 0
         self.any_flagged = False  # some row is excised or not finite (else the check is skipped)
 
+    # Node maps over the whole patch (4 bytes a node), made when a point first reaches the patch:
+    # a store no point reaches (a patch elsewhere, a lower order never needed) costs nothing.
+    @property
+    def _slot(self) -> np.ndarray:
+        if self._slot_array is None:
+            self._slot_array = np.full(int(np.prod(self.shape)), -1, dtype=np.int32)
+        return self._slot_array
+
+    @property
+    def _base_slot(self) -> np.ndarray:
+        if self._base_slot_array is None:
+            self._base_slot_array = np.full(int(np.prod(self.shape)), -1, dtype=np.int32)
+        return self._base_slot_array
+
     @classmethod
     def for_patch(cls, slice_: Slice, index: int, order: int) -> "NodeStore":
         return cls(slice_, index, order)
 
-    def slots(self, flat: np.ndarray) -> np.ndarray:
+    def slots(self, flat: np.ndarray, corners: np.ndarray | None = None) -> np.ndarray:
         """Rows of the nodes ``flat`` (any shape of flat C-order node indices), computing the
-        missing ones first. The nodes must have a full difference stencil inside the patch."""
+        missing ones first. The nodes must have a full difference stencil inside the patch.
+
+        With ``corners`` (m, 3), ``flat`` (m, order^3) are interpolation stencils (cubes of
+        order nodes a side from each corner, x slowest) and conformal data fill by whole
+        stencils (:meth:`_fill_stencils`)."""
         slots = np.take(self._slot, flat)
         missing = slots < 0
         if missing.any():
-            self._fill(_distinct(flat[missing], self._slot))
+            nodes = _distinct(flat[missing], self._slot)
+            touched = missing.any(axis=1) if corners is not None else None
+            if (corners is not None and self.variable_set is not VariableSet.ADM
+                    and nodes.size >= self._STENCIL_FILL_SHARE * flat.shape[1] * np.count_nonzero(touched)):
+                self._slot[nodes] = -1  # undo _distinct's scratch marks
+                self._grow(nodes.size)
+                self._fill_stencils(corners[touched], flat[touched])
+            else:
+                self._fill(nodes)
             slots = np.take(self._slot, flat)
         return slots
+
+    #: Fill whole stencils when at least this share of the touched stencils' nodes is missing
+    #: (sparse stencils: a fine grid, or a surface that moved); otherwise node by node. Measured:
+    #: a stencil costs about as much as 80 to 100 nodes filled one by one.
+    _STENCIL_FILL_SHARE = 0.4
+
+    #: Stencils filled per chunk: bounds the temporaries (chunk x order^3 x values) to ~10 MiB.
+    _STENCIL_CHUNK = 128
+
+    def _fill_stencils(self, corners: np.ndarray, flat: np.ndarray) -> None:
+        """Fill the missing nodes of whole interpolation stencils (conformal data). Each stencil's
+        fields come as three boxes read straight from the patch arrays (its cube widened by
+        order/2 along x, y or z: runs of neighbouring memory), and every node's centred
+        differences are slices of those boxes. Several times fewer reads than gathering each
+        node's difference cross (neighbouring nodes share them), and the rows are the same
+        arithmetic on the same values wherever a node is met, so a node's row never depends on
+        which stencil made it."""
+        p, g = self.order, self.reach
+        c = centred_difference_weights(p)[g + 1:]  # weights of offsets +1..+g (antisymmetric)
+        boxes = [(p + 2 * g, p, p), (p, p + 2 * g, p), (p, p, p + 2 * g)]
+        windows = {name: [sliding_window_view(self._arrays[name], shape) for shape in boxes]
+                   for name in self._raw_differentiated}
+        plain = {name: sliding_window_view(self._arrays[name], (p, p, p)) for name in self._raw_plain}
+        for start in range(0, corners.shape[0], self._STENCIL_CHUNK):
+            ci, cj, ck = corners[start: start + self._STENCIL_CHUNK].T
+            chunk_flat = flat[start: start + self._STENCIL_CHUNK]
+            if not (np.take(self._slot, chunk_flat) < 0).any():
+                continue  # earlier stencils of this call made them all
+            m = ci.size
+            columns = np.empty((self.n_values, m, p, p, p))  # value-major: each value written in one pass
+            with np.errstate(invalid="ignore", over="ignore"):
+                for f, name in enumerate(self._raw_differentiated):
+                    wx, wy, wz = windows[name]
+                    along = tuple(box.astype(float, copy=False)
+                                  for box in (wx[ci - g, cj, ck], wy[ci, cj - g, ck], wz[ci, cj, ck - g]))
+                    columns[f] = along[0][:, g: g + p]
+                    for axis, box in enumerate(along):
+                        lo = [slice(None)] * 4
+                        hi = [slice(None)] * 4
+                        derivative = 0.0
+                        for k in range(1, g + 1):
+                            lo[1 + axis] = slice(g - k, g - k + p)
+                            hi[1 + axis] = slice(g + k, g + k + p)
+                            derivative = derivative + c[k - 1] * (box[tuple(hi)] - box[tuple(lo)])
+                        columns[7 + 3 * f + axis] = derivative / self.spacing[axis]
+                for f, name in enumerate(self._raw_plain):
+                    columns[28 + f] = plain[name][ci, cj, ck]
+            self._store_new(chunk_flat.reshape(-1), columns.reshape(self.n_values, -1))
+
+    def _store_new(self, flat: np.ndarray, columns: np.ndarray) -> None:
+        """Keep the rows of the nodes in ``flat`` (one each, repeats allowed) not yet stored;
+        ``columns`` (values, len(flat)) holds them value-major."""
+        new = np.nonzero(self._slot[flat] < 0)[0]
+        if new.size == 0:
+            return
+        # One representative of each repeated node (the scratch marks are overwritten below).
+        order = np.arange(new.size, dtype=np.int32)
+        self._slot[flat[new]] = order
+        new = new[self._slot[flat[new]] == order]
+        q = new.size
+        self._grow(q)
+        values = columns[:, new].T
+        flags = np.where(np.isfinite(values).all(axis=1), 0, self.NON_FINITE).astype(np.uint8)
+        nodes = flat[new]
+        if self._spheres or self._mask is not None:
+            excised = self._excised(np.stack(np.unravel_index(nodes, self.shape), axis=1), self._taps())
+            flags[excised] = self.EXCISED
+        self.values[self.count: self.count + q] = values
+        self.flags[self.count: self.count + q] = flags
+        self.any_flagged |= bool(flags.any())
+        self._slot[nodes] = np.arange(self.count, self.count + q, dtype=np.int32)
+        self.count += q
 
     def _grow(self, extra: int) -> None:
         need = self.count + extra
@@ -150,7 +250,8 @@ class NodeStore:
             return
         capacity = max(need + need // 4, 4096)  # growth is cheap (remapped), zero-filling is not
         # In-place reallocation: large blocks are remapped by the allocator, not copied. The store
-        # hands out copies only (np.take), so no view of the old block can exist.
+        # hands out no views that outlive a call (np.take copies; the sparse sums read a view of
+        # the made rows during one product, with no fill in between).
         self.values.resize((capacity, self.n_values), refcheck=False)
         self.flags.resize(capacity, refcheck=False)
 
@@ -202,25 +303,14 @@ class NodeStore:
     #: Nodes filled per chunk: bounds the temporaries (taps x chunk x fields) to a few MiB.
     _CHUNK = 8192
 
-    def _difference_matrix(self, taps: np.ndarray) -> np.ndarray:
-        """(4, n_taps): the centre value, then d/dx, d/dy, d/dz by centred differences."""
-        weights = centred_difference_weights(self.order)
-        D = np.zeros((4, len(taps)))
-        D[0, 0] = 1.0
-        for t, tap in enumerate(taps[1:], start=1):
-            axis = int(np.nonzero(tap)[0][0])
-            D[1 + axis, t] = weights[self.reach + int(tap[axis])] / self.spacing[axis]
-        return D
-
     def _fill(self, flat_nodes: np.ndarray) -> None:
         self._grow(flat_nodes.size)
         flat_nodes = np.sort(flat_nodes)  # neighbouring nodes read neighbouring memory
         taps = self._taps()
-        D = self._difference_matrix(taps)
         for start in range(0, flat_nodes.size, self._CHUNK):
-            self._fill_chunk(flat_nodes[start: start + self._CHUNK], taps, D)
+            self._fill_chunk(flat_nodes[start: start + self._CHUNK], taps)
 
-    def _fill_chunk(self, flat_nodes: np.ndarray, taps: np.ndarray, D: np.ndarray) -> None:
+    def _fill_chunk(self, flat_nodes: np.ndarray, taps: np.ndarray) -> None:
         q = flat_nodes.size
         ijk = np.stack(np.unravel_index(flat_nodes, self.shape), axis=1)
         centre = taps[:1]
@@ -236,10 +326,16 @@ class NodeStore:
                 gamma = np.array([self._read(n, ijk, centre)[0] for n in self._raw_differentiated])
                 _, _, A_tilde, trace_K = _adm_to_conformal(gamma, plain)
                 plain = np.concatenate([A_tilde, trace_K[None]])
-            values_and_derivatives = np.einsum("at,ftq->qfa", D, diff_fields)  # (q, 7, 4)
             rows = np.empty((q, self.n_values))
-            rows[:, :7] = values_and_derivatives[:, :, 0]
-            rows[:, 7:28] = values_and_derivatives[:, :, 1:].reshape(q, 21)  # field-major, then x, y, z
+            rows[:, :7] = diff_fields[:, 0].T
+            g = self.reach
+            c = centred_difference_weights(self.order)[g + 1:]
+            for axis in range(3):
+                first = 1 + 2 * g * axis  # taps of this axis: offsets -g..-1, then 1..g
+                derivative = 0.0
+                for k in range(1, g + 1):  # the arithmetic of _fill_stencils, term by term
+                    derivative = derivative + c[k - 1] * (diff_fields[:, first + g + k - 1] - diff_fields[:, first + g - k])
+                rows[:, 7 + axis: 28: 3] = (derivative / self.spacing[axis]).T  # field-major, then x, y, z
             rows[:, 28:] = plain.T
         flags = np.where(np.isfinite(rows).all(axis=1), 0, self.NON_FINITE).astype(np.uint8)
         excised = self._excised(ijk, taps)

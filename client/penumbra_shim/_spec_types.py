@@ -143,6 +143,8 @@ class RunSpec:
             data; pass the same to :func:`build_slice` so it accepts NaN there).
         shift_gauge: "moving_puncture" (puncture tracks are integrated from the shift the slices
             carry), "other", or None (not declared); only "moving_puncture" uses the shift.
+        inner_common: once a pair's common horizon is found, also look for the inner common
+            MOTS inside it (label "<common label>_inner"); False turns that search off.
     """
 
     variable_set: str
@@ -156,6 +158,7 @@ class RunSpec:
     symmetry: str = "none"
     excised_spheres: Sequence[ExcisedSphere] = ()
     shift_gauge: str | None = None
+    inner_common: bool = True
 
     def __post_init__(self) -> None:
         check_variable_set(self.variable_set)
@@ -196,6 +199,7 @@ class RunSpec:
             symmetry=_SYMMETRY_WIRE[self.symmetry],
             excised_spheres=[sphere.to_wire() for sphere in self.excised_spheres],
             shift_gauge=_SHIFT_GAUGE_WIRE[self.shift_gauge],
+            skip_inner_common=not self.inner_common,
         )
 
     @classmethod
@@ -213,4 +217,5 @@ class RunSpec:
             symmetry=_SYMMETRY_NAMES.get(spec.symmetry, "none"),
             excised_spheres=tuple(ExcisedSphere.from_wire(sphere) for sphere in spec.excised_spheres),
             shift_gauge=_SHIFT_GAUGE_NAMES.get(spec.shift_gauge),
+            inner_common=not spec.skip_inner_common,
         )

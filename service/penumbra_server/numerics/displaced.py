@@ -42,8 +42,11 @@ __all__ = [
     "reference_from_star",
     "reference_from_points",
     "embedding",
+    "embedding_at",
     "parametric_expansion",
     "parametric_area",
+    "CoordinateExtent",
+    "coordinate_extent",
     "refreshed",
     "star_shaped_form",
     "displacement_size",
@@ -150,6 +153,15 @@ def combine(theta, phi, h, xr, nr) -> Embedding:
     )
 
 
+def embedding_at(surface: DisplacedSurface, theta, phi) -> Embedding:
+    """The embedding at arbitrary parameter angles (1-D arrays, radians), e.g. quadrature nodes."""
+    theta = np.asarray(theta, dtype=float).ravel()
+    phi = np.asarray(phi, dtype=float).ravel()
+    hb, rb = harmonic_basis(surface.lmax, theta, phi), harmonic_basis(surface.reference.lmax, theta, phi)
+    return combine(theta, phi, _expand(hb, surface.coefficients), _expand(rb, surface.reference.position),
+                   _expand(rb, surface.reference.direction))
+
+
 def embedding(surface: DisplacedSurface, grid_lmax: int | None = None) -> Embedding:
     """The embedding at the nodes of ``angular_grid(grid_lmax)`` (default: the surface's)."""
     grid_lmax = surface.grid_lmax() if grid_lmax is None else grid_lmax
@@ -202,6 +214,28 @@ def parametric_area(surface: DisplacedSurface, geometry_source) -> float:
     return float(np.sum(grid.weights * terms.area_density / np.sin(grid.theta)))
 
 
+@dataclass(frozen=True)
+class CoordinateExtent:
+    """Coordinate centroid (3,) weighted by proper area, and the least, mean (over proper area)
+    and largest coordinate distance of the surface from it; all in M."""
+
+    centroid: tuple[float, float, float]
+    radius_min: float
+    radius_mean: float
+    radius_max: float
+
+
+def coordinate_extent(surface: DisplacedSurface, geometry_source) -> CoordinateExtent:
+    """Where the surface sits and how large it is (no centre of expansion needed)."""
+    grid = angular_grid(surface.grid_lmax() + 2)
+    emb = embedding(surface, grid.lmax)
+    weight = grid.weights * parametric_expansion(emb, geometry_source(emb.x)).area_density / np.sin(grid.theta)
+    centroid = np.sum(weight[:, None] * emb.x, axis=0) / np.sum(weight)
+    distance = np.linalg.norm(emb.x - centroid, axis=1)
+    return CoordinateExtent(tuple(float(v) for v in centroid), float(distance.min()),
+                            float(np.sum(weight * distance) / np.sum(weight)), float(distance.max()))
+
+
 def _flat_normal(x_t: np.ndarray, x_p: np.ndarray) -> np.ndarray:
     n = np.cross(x_t, x_p)
     return n / np.linalg.norm(n, axis=1)[:, None]
@@ -244,17 +278,31 @@ def displacement_size(surface: DisplacedSurface) -> float:
     return float(np.max(np.abs(h[0])) / size)
 
 
-def star_shaped_form(surface: DisplacedSurface, lmax: int, centre=None, *, margin: float = 0.05) -> Surface | None:
+def star_shaped_form(surface: DisplacedSurface, lmax: int, centre=None, *, margin: float = 0.05,
+                     candidates=(), max_misfit: float = np.inf) -> Surface | None:
     """The surface as r = h(theta, phi) about ``centre`` (default: its coordinate centroid), or
     None when it is not star-shaped there: some flat normal makes an angle with the radial
     direction whose cosine is below ``margin``. The radius is a least-squares harmonic fit of
-    degree ``lmax`` to a dense sample of the surface."""
+    degree ``lmax`` to a dense sample of the surface. With ``candidates`` (points (3,)) the centre
+    among them and ``centre`` whose fit misses the sample least (rms) is used; None also when
+    that rms misfit exceeds ``max_misfit`` times the fit's mean radius."""
     grid = angular_grid(max(surface.grid_lmax(), lmax) + 6)
     emb = embedding(surface, grid.lmax)
     if centre is None:
         area = np.linalg.norm(np.cross(emb.x_t, emb.x_p), axis=1) / np.sin(grid.theta)
         centre = np.sum((grid.weights * area)[:, None] * emb.x, axis=0) / np.sum(grid.weights * area)
-    centre = np.asarray(centre, dtype=float).reshape(3)
+    best, best_misfit = None, np.inf
+    for point in (centre, *candidates):
+        fit = _star_fit(emb, grid.weights, lmax, np.asarray(point, dtype=float).reshape(3), margin)
+        if fit is not None and fit[1] < best_misfit:
+            best, best_misfit = fit
+    if best is not None and best_misfit > max_misfit * best.mean_radius:
+        return None
+    return best
+
+
+def _star_fit(emb: Embedding, weights: np.ndarray, lmax: int, centre: np.ndarray, margin: float):
+    """(star-shaped fit about ``centre``, rms radius misfit in M) or None when not star-shaped."""
     rel = emb.x - centre
     radius = np.linalg.norm(rel, axis=1)
     if np.min(radius) <= 0:
@@ -264,8 +312,8 @@ def star_shaped_form(surface: DisplacedSurface, lmax: int, centre=None, *, margi
         return None
     theta = np.arccos(np.clip(radial[:, 2], -1.0, 1.0))
     phi = np.mod(np.arctan2(radial[:, 1], radial[:, 0]), 2 * np.pi)
-    design = harmonic_basis(lmax, theta, phi).Y * np.sqrt(grid.weights)[:, None]
-    rhs = radius * np.sqrt(grid.weights)
+    design = harmonic_basis(lmax, theta, phi).Y * np.sqrt(weights)[:, None]
+    rhs = radius * np.sqrt(weights)
     coeffs = np.linalg.lstsq(design, rhs, rcond=None)[0]
-    return Surface(centre, lmax, coeffs)
-
+    misfit = float(np.linalg.norm(design @ coeffs - rhs) / np.sqrt(4 * np.pi))
+    return Surface(centre, lmax, coeffs), misfit

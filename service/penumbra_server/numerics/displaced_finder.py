@@ -31,6 +31,7 @@ from .displaced import (
 from .excision import ExcisedDataError
 from .find_results import (
     CONVERGED,
+    CONVERGED_AT_INTERPOLATION_FLOOR,
     CONVERGED_AT_TRUNCATION,
     DIVERGED,
     INVALID_GEOMETRY,
@@ -63,6 +64,9 @@ class DisplacedSettings:
             direction, large enough that refreshing, which re-projects the positions, is rare).
         max_refreshes: cap on refreshes within one solve.
         interpolation_order: interpolation nodes per axis for grid data.
+        floor_residual: when no step lowers the projected residual any more (grid data: the
+            interpolation noise) and it is below this (1/M), the solve counts as converged at the
+            data's floor (status 10; our choice, far below the expansion of any non-MOTS nearby).
     """
 
     tolerance: float = 1e-9
@@ -70,6 +74,7 @@ class DisplacedSettings:
     refresh_fraction: float = 0.1
     max_refreshes: int = 20
     interpolation_order: int = 6
+    floor_residual: float = 1e-5
 
     def __post_init__(self) -> None:
         if not self.tolerance > 0:
@@ -257,6 +262,8 @@ def find_displaced(data, guess: DisplacedSurface, *, settings: DisplacedSettings
             lam *= 0.5
         if accepted is None:
             status, note = failure
+            if status == LINE_SEARCH_FAILED and proj <= settings.floor_residual:
+                status, note = CONVERGED_AT_INTERPOLATION_FLOOR, f"projected residual {proj:.2e} / M"
             break
         it, proj = accepted, cand_proj
         if displacement_size(it.surface) > settings.refresh_fraction and refreshes < settings.max_refreshes:
@@ -277,5 +284,5 @@ def find_displaced(data, guess: DisplacedSurface, *, settings: DisplacedSettings
 def _result(surface, status, note, nit, residual, proj, refreshes, source, start) -> DisplacedFindResult:
     message = STATUS_MESSAGES[status] + (f": {note}" if note else "")
     message += f" (max |Theta| = {residual:.3e} / M at the nodes, {refreshes} refreshes, after {nit} iterations)"
-    return DisplacedFindResult(surface, status in (CONVERGED, CONVERGED_AT_TRUNCATION), status, message, nit,
+    return DisplacedFindResult(surface, status in (CONVERGED, CONVERGED_AT_TRUNCATION, CONVERGED_AT_INTERPOLATION_FLOOR), status, message, nit,
                                residual, proj, refreshes, source.evaluations, time.perf_counter() - start)

@@ -29,6 +29,12 @@ __all__ = ["InsideBody", "InsideResult", "find_mots_inside", "follow_inner", "ra
 
 #: Inward displacements (fractions of the outer's mean radius) tried for the inner common MOTS.
 SEED_FRACTIONS = (0.05, 0.1, 0.15, 0.2, 0.3, 0.4)
+#: Least degree of the star-shaped form: a freshly formed inner common MOTS has a narrow waist
+#: that degree 12 does not resolve in the star-shaped form (measured on Brill-Lindquist pairs).
+STAR_LMAX = 16
+#: Largest rms misfit (in mean radii) of a star-shaped fit still reported as the MOTS's
+#: star-shaped form (our choice: the distinctness margin).
+STAR_MISFIT = 2e-3
 #: A converged surface counts as distinct from the outer one when some point lies farther than
 #: this fraction of the mean radius inside it (our choice; above the finder's truncation error).
 DISTINCT_FRACTION = 2e-3
@@ -54,8 +60,12 @@ class InsideResult:
         status: finder status (:data:`.find_results.STATUS_MESSAGES`).
         message: what happened.
         displaced: the MOTS in the displacement representation (None if not found).
-        star: the MOTS as a star-shaped :class:`Surface` about its centroid when it is one.
+        star: the MOTS as a star-shaped :class:`Surface` (a least-squares fit of degree
+            max(STAR_LMAX, lmax)) when it is star-shaped about its centroid or the outer's centre
+            and the fit is close (``message`` says why not otherwise); quantities of the MOTS
+            itself (``area``) come from the displacement form.
         area: proper area (M^2), NaN if not found.
+        residual_max: max |Theta| (1/M) at the nodes of the last iterate.
         attempts: Newton solves run.
         wall_time_s: seconds spent.
     """
@@ -68,6 +78,7 @@ class InsideResult:
     displaced: DisplacedSurface | None
     star: Surface | None
     area: float
+    residual_max: float
     attempts: int
     wall_time_s: float
 
@@ -98,19 +109,40 @@ def _timer():
     return time.perf_counter()
 
 
-def _inner_result(label, found, data_area, star_lmax, attempts, start, success, message) -> InsideResult:
+def _star_form(surface: DisplacedSurface, lmax: int, outer: Surface | None) -> tuple[Surface | None, str]:
+    """(the MOTS as a star-shaped surface of degree ``lmax`` or None, and why not): the
+    least-squares fit about the better of the outer's centre and the centroid, kept when it
+    misses the surface by at most :data:`STAR_MISFIT` mean radii (rms)."""
+    candidates = () if outer is None else (outer.centre,)
+    fit = star_shaped_form(surface, lmax, candidates=candidates, max_misfit=STAR_MISFIT)
+    if fit is None:
+        if star_shaped_form(surface, lmax, candidates=candidates) is None:
+            return None, "not star-shaped about its centroid or the outer surface's centre"
+        return None, f"its star-shaped fit of degree {lmax} misses it by more than {STAR_MISFIT:g} mean radii"
+    return fit, ""
+
+
+def _inner_result(label, found, source, star_lmax, attempts, start, success, message, outer, settings) -> InsideResult:
     surface = found.surface if found is not None else None
-    star = star_shaped_form(surface, star_lmax) if (surface is not None and success) else None
-    area = parametric_area(surface, data_area) if (surface is not None and success) else float("nan")
+    star, area = None, float("nan")
+    if surface is not None and success:
+        star, why = _star_form(surface, star_lmax, outer)
+        if why:
+            message = f"{message}; no star-shaped form: {why}"
+        area = parametric_area(surface, source)
+    residual = found.residual_max if found is not None else float("nan")
     return InsideResult(label, "inner_common", success, found.status if found else -1, message, surface if success else None,
-                        star, area, attempts, _timer() - start)
+                        star, area, residual, attempts, _timer() - start)
 
 
 def find_inner_common(data, outer: Surface, *, label: str = "common", settings: DisplacedSettings = DisplacedSettings(),
-                      lmax: int | None = None) -> InsideResult:
-    """The inner common MOTS inside the (star-shaped) ``outer`` common MOTS, from inward seeds."""
+                      lmax: int | None = None, star_lmax: int | None = None) -> InsideResult:
+    """The inner common MOTS inside the (star-shaped) ``outer`` common MOTS, from inward seeds;
+    labelled "<label>_inner". ``lmax``: degree of the displacement (default the outer's);
+    ``star_lmax``: degree of the star-shaped form (default max(STAR_LMAX, lmax))."""
     start = _timer()
     lmax = outer.lmax if lmax is None else lmax
+    star_lmax = max(STAR_LMAX, lmax) if star_lmax is None else star_lmax
     source = as_tracked_source(data, order=settings.interpolation_order)
     reference = reference_from_star(outer)
     notes = []
@@ -123,11 +155,12 @@ def find_inner_common(data, outer: Surface, *, label: str = "common", settings: 
             continue
         ok, why = _inside_and_distinct(outer, found.surface)
         if ok:
-            return _inner_result(f"{label}_inner", found, source, lmax, attempt, start, True,
-                                 f"found from the seed {fraction:g} mean radii inside the outer surface; {found.message}")
+            return _inner_result(f"{label}_inner", found, source, star_lmax, attempt, start, True,
+                                 f"found from the seed {fraction:g} mean radii inside the outer surface; {found.message}",
+                                 outer, settings)
         notes.append(f"seed {fraction:g}: {why}")
-    return _inner_result(f"{label}_inner", found, source, lmax, len(SEED_FRACTIONS), start, False,
-                         "no inner common MOTS found: " + "; ".join(notes))
+    return _inner_result(f"{label}_inner", found, source, star_lmax, len(SEED_FRACTIONS), start, False,
+                         "no inner common MOTS found: " + "; ".join(notes), outer, settings)
 
 
 def follow_inner(data, previous: DisplacedSurface, *, label: str, outer: Surface | None = None,
@@ -138,14 +171,14 @@ def follow_inner(data, previous: DisplacedSurface, *, label: str, outer: Surface
     start = _timer()
     source = as_tracked_source(data, order=settings.interpolation_order)
     found = find_displaced(source, previous, settings=settings)
-    star_lmax = previous.lmax if star_lmax is None else star_lmax
+    star_lmax = max(STAR_LMAX, previous.lmax) if star_lmax is None else star_lmax
     if not found.success:
-        return _inner_result(label, found, source, star_lmax, 1, start, False, found.message)
+        return _inner_result(label, found, source, star_lmax, 1, start, False, found.message, outer, settings)
     if outer is not None:
         ok, why = _inside_and_distinct(outer, found.surface)
         if not ok:
-            return _inner_result(label, found, source, star_lmax, 1, start, False, f"not accepted: {why}")
-    return _inner_result(label, found, source, star_lmax, 1, start, True, found.message)
+            return _inner_result(label, found, source, star_lmax, 1, start, False, f"not accepted: {why}", outer, settings)
+    return _inner_result(label, found, source, star_lmax, 1, start, True, found.message, outer, settings)
 
 
 def find_mots_inside(data, outer: Surface, *, label: str = "common", bodies: tuple[InsideBody, ...] = (),
@@ -185,5 +218,5 @@ def find_mots_inside(data, outer: Surface, *, label: str = "common", bodies: tup
             displaced = DisplacedSurface.at_reference(reference_from_star(found.surface), found.surface.lmax)
             area = parametric_area(displaced, as_tracked_source(data, order=finder_settings.interpolation_order))
         out.append(InsideResult(body.label, "individual", success, found.status, message, displaced,
-                                found.surface if success else None, area, 1, _timer() - start))
+                                found.surface if success else None, area, found.residual_max, 1, _timer() - start))
     return tuple(out)

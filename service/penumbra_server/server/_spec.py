@@ -241,6 +241,8 @@ class RunSettings:
     #: "moving_puncture" (puncture tracks are integrated from the shift), "other" or
     #: "unspecified" (both: the shift is not used for tracking).
     shift_gauge: str = "unspecified"
+    #: Look for the inner common MOTS inside a found common horizon (RunSpec.skip_inner_common).
+    inner_common: bool = True
 
     @property
     def bitant(self) -> bool:
@@ -332,6 +334,7 @@ class RunSettings:
             symmetry=symmetry_from_wire(spec.symmetry),
             excised_spheres=excised_spheres_from_wire(spec.excised_spheres),
             shift_gauge=shift_gauge_from_wire(spec.shift_gauge),
+            inner_common=not spec.skip_inner_common,
         )
 
     def to_wire(self) -> pb.RunSpec:
@@ -355,6 +358,7 @@ class RunSettings:
             symmetry=_SYMMETRIES_BACK[self.symmetry],
             excised_spheres=excised_spheres_to_wire(self.excised_spheres),
             shift_gauge=_SHIFT_GAUGES_BACK[self.shift_gauge],
+            skip_inner_common=not self.inner_common,
         )
 
     # -- archive attributes -----------------------------------------------------------------
@@ -375,6 +379,7 @@ class RunSettings:
             "excised_spheres": [{"centre": list(s.centre), "radius": s.radius, "body": s.body}
                                 for s in self.excised_spheres],
             "shift_gauge": self.shift_gauge,
+            "inner_common": self.inner_common,
         }
 
     @classmethod
@@ -399,4 +404,5 @@ class RunSettings:
                                   for s in data.get("excised_spheres", ())),
             # Archives written before the gauge was declared integrated tracks from any shift.
             shift_gauge=data.get("shift_gauge", "moving_puncture"),
+            inner_common=bool(data.get("inner_common", True)),
         )

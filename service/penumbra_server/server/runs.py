@@ -16,6 +16,7 @@ restored by run_manager.py and restore.py; parts.py and link_records.py hang off
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import logging
 import time
 from collections import deque
@@ -29,6 +30,7 @@ from penumbra_shim._wire import horizons_pb2 as pb
 
 from ..archive import ArchiveWriter
 from ..numerics.slices import Slice
+from ..numerics.surfaces import Surface
 from ._spec import RunSettings
 from ._tracking_convert import warning_notice
 from .errors import ServiceError
@@ -41,6 +43,7 @@ from .run_types import ManagerOptions, QueuedSlice
 from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, merge_batch, notice_emission, parts_missing_emission, skip_emission, slice_emission,
                          state_emission, surface_emission)
 from .scheduler import SurfacePlan, SurfacePlanner
+from .inner_planning import inner_common_plans
 from .search import search_plan
 from .steering import RunSteering
 from .surface_state import SurfaceState, record_outcome
@@ -92,6 +95,9 @@ class RunRecord:
         self.announced: dict[str, AnnouncedSurface] = {}
         #: The surfaces of the archive, in order: the expected bodies, then those planners added.
         self.surface_labels: list[str] = list(settings.labels)
+        #: Last solution of each surface followed in the displacement representation (the inner
+        #: common MOTS), the seed of its next search.
+        self.displaced: dict[str, object] = {}
         #: Tracks, forecasts, common-horizon watch, guidance and windows (steering.py).
         self.steering = RunSteering(settings, interpolation_order=options.interpolation_order,
                                     common_horizon=options.common_horizon, states=self.states)
@@ -278,12 +284,16 @@ class RunRecord:
     async def _process(self, item: QueuedSlice) -> None:
         started = time.time()
         plans = list(self.planner.plan(self.settings, self.tracks, item.slice_))
+        plans += inner_common_plans(self.settings, plans, self.steering.common_label, self.states, self.displaced)
         for plan in plans:
             if plan.label not in self.surface_labels:  # a surface the planner added (e.g. a common horizon)
                 await self._in_archive_thread(self.writer.add_surface, plan.label, lmax=plan.lmax or self.settings.lmax)
                 self.surface_labels.append(plan.label)
                 self.states.setdefault(plan.label, SurfaceState(plan.label))
-        outcomes = list(await asyncio.gather(*(self._attempt(plan, item) for plan in plans)))
+        outcomes = list(await asyncio.gather(*(self._attempt(plan, item) for plan in plans if plan.inside_of is None)))
+        if any(plan.inside_of is not None for plan in plans):  # searched inside what this slice found
+            outcomes = await self._attempt_inside(plans, outcomes, item)
+            self.displaced.update({o.label: o.displaced for o in outcomes if o.found and o.displaced is not None})
         # The decision state (what the next plan and the steering see) takes the outcomes now;
         # what GetLatestSurfaces shows moves only when the slice's commit is written.
         surface_units = []
@@ -321,6 +331,23 @@ class RunRecord:
                 observer(self, item, list(outcomes))
             except Exception:
                 log.exception("run %s: slice observer failed", self.run_id)
+
+    async def _attempt_inside(self, plans: list[SurfacePlan], first: list[SurfaceOutcome],
+                              item: QueuedSlice) -> list[SurfaceOutcome]:
+        """Outcomes in plan order: ``first`` (the plans searched on their own) and then the plans
+        searched inside a surface of this slice (``SurfacePlan.inside_of``), given its outcome."""
+        found = {o.label: o for o in first}
+        inside = []
+        for plan in plans:
+            if plan.inside_of is None:
+                continue
+            outer = found.get(plan.inside_of)
+            if outer is not None and outer.found:
+                plan = dataclasses.replace(plan, outer=Surface(outer.centre, outer.lmax, outer.coefficients))
+            inside.append(self._attempt(plan, item))
+        later = iter(await asyncio.gather(*inside))
+        earlier = iter(first)
+        return [next(later) if plan.inside_of is not None else next(earlier) for plan in plans]
 
     async def _attempt(self, plan: SurfacePlan, item: QueuedSlice) -> SurfaceOutcome:
         return await search_plan(plan, item.slice_, executor=self.executor, settings=self.settings,

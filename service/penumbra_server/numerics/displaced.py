@@ -32,7 +32,7 @@ import numpy as np
 
 from .curvature import christoffel_lower
 from .geometry import PointGeometry, inverse_3x3
-from .surfaces import Surface, angular_grid, basis_on_grid, coefficient_count, harmonic_basis
+from .surfaces import Surface, angular_grid, basis_on_grid, coefficient_count, harmonic_basis, harmonic_values
 
 __all__ = [
     "ReferenceSurface",
@@ -286,7 +286,7 @@ def star_shaped_form(surface: DisplacedSurface, lmax: int, centre=None, *, margi
     degree ``lmax`` to a dense sample of the surface. With ``candidates`` (points (3,)) the centre
     among them and ``centre`` whose fit misses the sample least (rms) is used; None also when
     that rms misfit exceeds ``max_misfit`` times the fit's mean radius."""
-    grid = angular_grid(max(surface.grid_lmax(), lmax) + 6)
+    grid = angular_grid(max(surface.grid_lmax(), lmax) + 2)
     emb = embedding(surface, grid.lmax)
     if centre is None:
         area = np.linalg.norm(np.cross(emb.x_t, emb.x_p), axis=1) / np.sin(grid.theta)
@@ -312,7 +312,7 @@ def _star_fit(emb: Embedding, weights: np.ndarray, lmax: int, centre: np.ndarray
         return None
     theta = np.arccos(np.clip(radial[:, 2], -1.0, 1.0))
     phi = np.mod(np.arctan2(radial[:, 1], radial[:, 0]), 2 * np.pi)
-    design = harmonic_basis(lmax, theta, phi).Y * np.sqrt(weights)[:, None]
+    design = harmonic_values(lmax, theta, phi) * np.sqrt(weights)[:, None]
     rhs = radius * np.sqrt(weights)
     coeffs = np.linalg.lstsq(design, rhs, rcond=None)[0]
     misfit = float(np.linalg.norm(design @ coeffs - rhs) / np.sqrt(4 * np.pi))

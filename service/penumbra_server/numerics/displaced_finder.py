@@ -259,6 +259,8 @@ def find_displaced(data, guess: DisplacedSurface, *, settings: DisplacedSettings
                 accepted = cand
                 break
             failure = (LINE_SEARCH_FAILED, "")
+            if proj <= settings.floor_residual:
+                break  # at the data's floor a full Newton step no longer helps: shorter ones won't
             lam *= 0.5
         if accepted is None:
             status, note = failure

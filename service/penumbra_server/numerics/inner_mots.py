@@ -7,9 +7,9 @@ moves inwards and stops being star-shaped. Following it needs the displacement r
 064005 (2019) (from memory), with our own seeding and solver.
 
 Seeding the inner common MOTS from the outer one: just after formation both lie close together,
-so uniform inward displacements of the outer surface by growing fractions of its mean radius
-are tried in turn; Newton from a small one falls back onto the outer surface, the first one that
-converges to a distinct surface lying inside the outer is the inner one. From then on each slice
+so uniform inward displacements of the outer surface by fractions of its mean radius are tried
+(:data:`FIRST_SEED`, then deeper or shallower); Newton from too small a one falls back onto the
+outer surface; the first one that converges to a distinct surface inside the outer is the inner. From then on each slice
 is seeded with the previous solution (:func:`follow_inner`).
 """
 
@@ -27,8 +27,15 @@ from .surfaces import Surface, angular_grid
 
 __all__ = ["InsideBody", "InsideResult", "find_mots_inside", "follow_inner", "radial_gap"]
 
-#: Inward displacements (fractions of the outer's mean radius) tried for the inner common MOTS.
-SEED_FRACTIONS = (0.05, 0.1, 0.15, 0.2, 0.3, 0.4)
+#: Inward displacement (fraction of the outer's mean radius) of the first seed for the inner
+#: common MOTS; a seed that falls back onto the outer one is followed by a deeper one (times
+#: SEED_GROWTH, or halfway to the shallowest failed one), a seed that fails or converges to
+#: something else by a shallower one (halfway to the deepest fallback). Measured on
+#: Brill-Lindquist pairs: the inner one is reached from 0.1-0.2 within 0.02 M of the fold and
+#: 0.3 at 0.07 M from it.
+FIRST_SEED = 0.15
+SEED_GROWTH = 1.6
+MAX_SEEDS = 6
 #: Least degree of the star-shaped form: a freshly formed inner common MOTS has a narrow waist
 #: that degree 12 does not resolve in the star-shaped form (measured on Brill-Lindquist pairs).
 STAR_LMAX = 16
@@ -94,7 +101,7 @@ def radial_gap(outer: Surface, points: np.ndarray) -> np.ndarray:
 
 
 def _inside_and_distinct(outer: Surface, surface: DisplacedSurface) -> tuple[bool, str]:
-    points = embedding(surface, surface.grid_lmax() + 2).x
+    points = embedding(surface).x  # the solver's nodes (their bases are cached)
     gap = radial_gap(outer, points) / outer.mean_radius
     if gap.min() < -DISTINCT_FRACTION:
         return False, f"crosses the outer surface (by {-gap.min():.2e} of its mean radius)"
@@ -147,19 +154,24 @@ def find_inner_common(data, outer: Surface, *, label: str = "common", settings: 
     reference = reference_from_star(outer)
     notes = []
     found = None
-    for attempt, fraction in enumerate(SEED_FRACTIONS, start=1):
+    fraction, below, above = FIRST_SEED, 0.0, None
+    for attempt in range(1, MAX_SEEDS + 1):
         found = find_displaced(source, DisplacedSurface.at_reference(reference, lmax, -fraction * outer.mean_radius),
                                settings=settings)
-        if not found.success:
-            notes.append(f"seed {fraction:g}: {found.message.split(' (')[0]}")
-            continue
-        ok, why = _inside_and_distinct(outer, found.surface)
+        ok, why = _inside_and_distinct(outer, found.surface) if found.success else (False, found.message.split(" (")[0])
         if ok:
             return _inner_result(f"{label}_inner", found, source, star_lmax, attempt, start, True,
-                                 f"found from the seed {fraction:g} mean radii inside the outer surface; {found.message}",
+                                 f"found from the seed {fraction:.3g} mean radii inside the outer surface; {found.message}",
                                  outer, settings)
-        notes.append(f"seed {fraction:g}: {why}")
-    return _inner_result(f"{label}_inner", found, source, star_lmax, len(SEED_FRACTIONS), start, False,
+        notes.append(f"seed {fraction:.3g}: {why}")
+        # Fell back onto the outer surface: seed deeper. Failed or went elsewhere: seed shallower.
+        if found.success and why.startswith("fell back"):
+            below = fraction
+            fraction = 0.5 * (fraction + above) if above is not None else min(SEED_GROWTH * fraction, 0.9)
+        else:
+            above = fraction
+            fraction = 0.5 * (below + fraction)
+    return _inner_result(f"{label}_inner", found, source, star_lmax, MAX_SEEDS, start, False,
                          "no inner common MOTS found: " + "; ".join(notes), outer, settings)
 
 

@@ -7,13 +7,17 @@ after it, unless the run spec turns it off (``RunSettings.inner_common``).
 
 from __future__ import annotations
 
-from typing import Mapping, Sequence
+import asyncio
+import dataclasses
+from typing import Awaitable, Callable, Mapping, MutableMapping, Sequence
 
+from ..numerics.surfaces import Surface
 from ._spec import RunSettings
+from .jobs import SurfaceOutcome
 from .scheduler import SurfacePlan
 from .surface_state import SurfaceState
 
-__all__ = ["inner_label", "inner_common_plans"]
+__all__ = ["inner_label", "inner_common_plans", "search_in_order"]
 
 
 def inner_label(common_label: str) -> str:
@@ -41,3 +45,27 @@ def inner_common_plans(settings: RunSettings, plans: Sequence[SurfacePlan], comm
                                lmax=common.lmax, fallback_to_flow=False, retry_wider=False, inside_of=common.label,
                                displaced_seed=displaced.get(label) if fresh else None))
     return out
+
+
+async def search_in_order(plans: Sequence[SurfacePlan], attempt: Callable[[SurfacePlan], Awaitable[SurfaceOutcome]],
+                          displaced: MutableMapping[str, object]) -> list[SurfaceOutcome]:
+    """Outcomes of ``plans`` in plan order: the plans searched on their own concurrently, then
+    those searched inside a surface of this slice (``SurfacePlan.inside_of``), handed that
+    surface when it was found. ``displaced`` (the run's) takes their solutions in the
+    displacement representation, the seeds of the next slice."""
+    first = list(await asyncio.gather(*(attempt(plan) for plan in plans if plan.inside_of is None)))
+    if all(plan.inside_of is None for plan in plans):
+        return first
+    found = {o.label: o for o in first}
+    inside = []
+    for plan in plans:
+        if plan.inside_of is None:
+            continue
+        outer = found.get(plan.inside_of)
+        if outer is not None and outer.found:
+            plan = dataclasses.replace(plan, outer=Surface(outer.centre, outer.lmax, outer.coefficients))
+        inside.append(attempt(plan))
+    later, earlier = iter(await asyncio.gather(*inside)), iter(first)
+    outcomes = [next(later) if plan.inside_of is not None else next(earlier) for plan in plans]
+    displaced.update({o.label: o.displaced for o in outcomes if o.found and o.displaced is not None})
+    return outcomes

@@ -16,7 +16,6 @@ restored by run_manager.py and restore.py; parts.py and link_records.py hang off
 from __future__ import annotations
 
 import asyncio
-import dataclasses
 import logging
 import time
 from collections import deque
@@ -30,7 +29,6 @@ from penumbra_shim._wire import horizons_pb2 as pb
 
 from ..archive import ArchiveWriter
 from ..numerics.slices import Slice
-from ..numerics.surfaces import Surface
 from ._spec import RunSettings
 from ._tracking_convert import warning_notice
 from .errors import ServiceError
@@ -43,7 +41,7 @@ from .run_types import ManagerOptions, QueuedSlice
 from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, merge_batch, notice_emission, parts_missing_emission, skip_emission, slice_emission,
                          state_emission, surface_emission)
 from .scheduler import SurfacePlan, SurfacePlanner
-from .inner_planning import inner_common_plans
+from .inner_planning import inner_common_plans, search_in_order
 from .search import search_plan
 from .steering import RunSteering
 from .surface_state import SurfaceState, record_outcome
@@ -96,7 +94,7 @@ class RunRecord:
         #: The surfaces of the archive, in order: the expected bodies, then those planners added.
         self.surface_labels: list[str] = list(settings.labels)
         #: Last solution of each surface followed in the displacement representation (the inner
-        #: common MOTS), the seed of its next search.
+        #: common MOTS), the seed of its next search (inner_planning.py).
         self.displaced: dict[str, object] = {}
         #: Tracks, forecasts, common-horizon watch, guidance and windows (steering.py).
         self.steering = RunSteering(settings, interpolation_order=options.interpolation_order,
@@ -290,10 +288,7 @@ class RunRecord:
                 await self._in_archive_thread(self.writer.add_surface, plan.label, lmax=plan.lmax or self.settings.lmax)
                 self.surface_labels.append(plan.label)
                 self.states.setdefault(plan.label, SurfaceState(plan.label))
-        outcomes = list(await asyncio.gather(*(self._attempt(plan, item) for plan in plans if plan.inside_of is None)))
-        if any(plan.inside_of is not None for plan in plans):  # searched inside what this slice found
-            outcomes = await self._attempt_inside(plans, outcomes, item)
-            self.displaced.update({o.label: o.displaced for o in outcomes if o.found and o.displaced is not None})
+        outcomes = await search_in_order(plans, lambda plan: self._attempt(plan, item), self.displaced)
         # The decision state (what the next plan and the steering see) takes the outcomes now;
         # what GetLatestSurfaces shows moves only when the slice's commit is written.
         surface_units = []
@@ -331,23 +326,6 @@ class RunRecord:
                 observer(self, item, list(outcomes))
             except Exception:
                 log.exception("run %s: slice observer failed", self.run_id)
-
-    async def _attempt_inside(self, plans: list[SurfacePlan], first: list[SurfaceOutcome],
-                              item: QueuedSlice) -> list[SurfaceOutcome]:
-        """Outcomes in plan order: ``first`` (the plans searched on their own) and then the plans
-        searched inside a surface of this slice (``SurfacePlan.inside_of``), given its outcome."""
-        found = {o.label: o for o in first}
-        inside = []
-        for plan in plans:
-            if plan.inside_of is None:
-                continue
-            outer = found.get(plan.inside_of)
-            if outer is not None and outer.found:
-                plan = dataclasses.replace(plan, outer=Surface(outer.centre, outer.lmax, outer.coefficients))
-            inside.append(self._attempt(plan, item))
-        later = iter(await asyncio.gather(*inside))
-        earlier = iter(first)
-        return [next(later) if plan.inside_of is not None else next(earlier) for plan in plans]
 
     async def _attempt(self, plan: SurfacePlan, item: QueuedSlice) -> SurfaceOutcome:
         return await search_plan(plan, item.slice_, executor=self.executor, settings=self.settings,

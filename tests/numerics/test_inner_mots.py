@@ -18,7 +18,7 @@ from penumbra_server.numerics.displaced import (
 )
 from penumbra_server.numerics.displaced_finder import find_displaced
 from penumbra_server.numerics.displaced_stability import displaced_stability_spectrum
-from penumbra_server.numerics.finder import FinderSettings, expansion_of, find_surface
+from penumbra_server.numerics.finder import UNRESOLVED, FinderSettings, expansion_of, find_surface
 from penumbra_server.numerics.inner_mots import InsideBody, follow_inner, radial_gap
 from penumbra_server.numerics.spacetimes import BrillLindquist
 from penumbra_server.numerics.stability import stability_spectrum
@@ -126,26 +126,26 @@ def test_areas_meet_towards_the_fold_and_the_stability_signs(q):
 
 
 @pytest.mark.slow
-def test_inner_followed_past_star_shapedness():
-    """Followed slice after slice in d (seeded from the previous solution): it stays a MOTS
-    agreeing with the reference while star-shaped, and is still followed after no centre sees
-    it star-shaped."""
-    q, previous = 1.0, None
-    lost_star_at = None
+def test_inner_followed_until_no_longer_resolved():
+    """Followed slice after slice in d (seeded from the previous solution) it agrees with the
+    reference while resolved, and the following ends with "not resolved" (status 6), not with a
+    wrong surface reported as found: at degree 12 the inner MOTS develops necks about the
+    punctures that the expansion no longer resolves between d = 0.65 and 0.5 (measured: 0.55),
+    before it stops being star-shaped about its centroid (0.5 - 0.45)."""
+    previous, ended = None, None
     for d in (0.74, 0.7, 0.65, 0.6, 0.55, 0.5, 0.45):
-        data = pair_data(q, d)
+        data = pair_data(1.0, d)
         if previous is None:
             (found,) = find_mots_inside(data, outer_common(data))
         else:
             found = follow_inner(data, previous, label="common_inner")
-        assert found.success, (d, found.message)
-        if d in (0.7, 0.65):
-            assert found.area == pytest.approx(common_mots(Pair(0.5, 0.5, d))["inner"].area, rel=2e-5)
-        star = star_shaped_form(found.displaced, LMAX, centre=[0, 0, 0])
-        if found.star is None and star is None and lost_star_at is None:
-            lost_star_at = d
+        if not found.success:
+            ended = (d, found.status)
+            break
+        if d in (0.7, 0.65):  # the reference's own inner search fails at some smaller d
+            assert found.area == pytest.approx(common_mots(Pair(0.5, 0.5, d))["inner"].area, rel=2e-5), d
         previous = found.displaced
-    assert lost_star_at is not None and lost_star_at <= 0.5
+    assert ended is not None and 0.5 <= ended[0] <= 0.65 and ended[1] == UNRESOLVED, ended
 
 
 def test_displaced_stability_operator_equals_the_star_shaped_one():

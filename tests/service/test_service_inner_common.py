@@ -7,6 +7,8 @@ later slice, streamed and archived under its own label; RunSpec.inner_common Fal
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 import pytest
 
@@ -42,6 +44,12 @@ def _run_sequence(client, inner_common: bool, separations=SEPARATIONS):
         run.submit(ps.build_slice(time=0.5 * index, iteration=index, variable_set="conformal_w",
                                   patches=bl_patches([box], (MASS, MASS), positions)))
     assert run.flush(120)
+    # Wait for the processing here (generous, fails loudly) rather than inside CloseRun, whose
+    # deadline a loaded machine can exceed.
+    give_up = time.monotonic() + 900
+    while client.get_run(run.run_id).slices_processed < len(separations):
+        assert time.monotonic() < give_up, f"slices not processed in 900 s: {client.get_run(run.run_id)}"
+        time.sleep(0.5)
     run.close()
     reports = {}
     for e in client.watch(run.run_id, timeout_s=120):

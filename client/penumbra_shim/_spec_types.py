@@ -145,6 +145,8 @@ class RunSpec:
             carry), "other", or None (not declared); only "moving_puncture" uses the shift.
         formation_forecast: for a pair, forecast when the common horizon forms
             (:class:`FormationForecastEvent`; default True; False turns the searches off).
+        inner_common: once a pair's common horizon is found, also look for the inner common
+            MOTS inside it (label "<common label>_inner"); False turns that search off.
     """
 
     variable_set: str
@@ -159,6 +161,7 @@ class RunSpec:
     excised_spheres: Sequence[ExcisedSphere] = ()
     shift_gauge: str | None = None
     formation_forecast: bool = True
+    inner_common: bool = True
 
     def __post_init__(self) -> None:
         check_variable_set(self.variable_set)
@@ -200,6 +203,7 @@ class RunSpec:
             excised_spheres=[sphere.to_wire() for sphere in self.excised_spheres],
             shift_gauge=_SHIFT_GAUGE_WIRE[self.shift_gauge],
             formation_forecast_off=not self.formation_forecast,
+            skip_inner_common=not self.inner_common,
         )
 
     @classmethod
@@ -217,4 +221,5 @@ class RunSpec:
             symmetry=_SYMMETRY_NAMES.get(spec.symmetry, "none"),
             excised_spheres=tuple(ExcisedSphere.from_wire(sphere) for sphere in spec.excised_spheres),
             shift_gauge=_SHIFT_GAUGE_NAMES.get(spec.shift_gauge),
+            inner_common=not spec.skip_inner_common,
         )

@@ -9,7 +9,8 @@ scipy finder (tests/benchmarks/peer_spline_finder.py).
 Sections 5-7 print the figures quoted in DEVELOPERS.md, "The finder", among them exactly the two lines
 ``iteration cost / gather floor: <ratio>`` and ``find r/dx=50 over r/dx=12.5: <ratio>, peak MiB <n>``.
 Section 8 prints ``constant-expansion search / common-horizon find: <ratio>`` (the cost of one
-formation-forecast search). Run one section alone with ``--only 5`` (or 6, 7, 8).
+formation-forecast search); section 9 the cost of the inner common MOTS search and of following
+it one step. Run one section alone with ``--only 5`` (or 6, 7, 8, 9).
 """
 
 from __future__ import annotations
@@ -74,6 +75,8 @@ def main() -> None:
         resolution_scaling()
     if only in (None, "8"):
         constant_expansion_cost()
+    if only in (None, "9"):
+        inner_mots_cost()
 
 
 def sections_1_to_4() -> None:
@@ -305,6 +308,26 @@ def resolution_scaling() -> None:
     print(f"   wall clock: r/dx=50 over r/dx=12.5 {out[50.0]['wall'] / out[12.5]['wall']:.2f}")
     print(f"find r/dx=50 over r/dx=12.5: {out[50.0]['time'] / out[12.5]['time']:.2f}, peak MiB "
           f"{max(c['peak_mib'] for c in out.values()):.0f}")
+
+
+def inner_mots_cost() -> None:
+    """The inner common MOTS search (displacement representation, inward seeds from the outer
+    common MOTS) against the outer common find, same exact data, l_max 12, in one run."""
+    from penumbra_server.numerics.inner_mots import find_mots_inside, follow_inner
+
+    print("\n9. inner common MOTS: equal Brill-Lindquist pair of total bare mass 1, exact data, l_max 12")
+    lmax = 12
+    for d in (0.75, 0.70):
+        pair = BrillLindquist(masses=np.array([0.5, 0.5]), positions=np.array([[0, 0, d / 2], [0, 0, -d / 2]]))
+        t_outer, outer = best_of(lambda: find_surface(pair, Surface.sphere([0, 0, 0], 0.6, lmax),
+                                                     settings=settings_of(lmax=lmax)), 3)
+        t_inner, (inner,) = best_of(lambda: find_mots_inside(pair, outer.surface), 3)
+        nearby = BrillLindquist(masses=np.array([0.5, 0.5]), positions=np.array([[0, 0, d / 2 - 0.005], [0, 0, 0.005 - d / 2]]))
+        t_follow, followed = best_of(lambda: follow_inner(nearby, inner.displaced, label="common_inner"), 3)
+        print(f"   d = {d} M: outer common find from a sphere {t_outer * 1e3:.0f} ms; inner search from the outer "
+              f"{t_inner * 1e3:.0f} ms ({inner.attempts} seeds, found {inner.success}) = {t_inner / t_outer:.1f} outer finds; "
+              f"following it to d - 0.01 M {t_follow * 1e3:.0f} ms = {t_follow / t_outer:.2f} outer finds "
+              f"(found {followed.success})")
 
 
 if __name__ == "__main__":

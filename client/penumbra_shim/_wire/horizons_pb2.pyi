@@ -81,7 +81,7 @@ class BacklogPolicy(_message.Message):
     def __init__(self, policy: _Optional[_Union[BacklogPolicy.Policy, str]] = ..., queue_depth: _Optional[int] = ...) -> None: ...
 
 class RunSpec(_message.Message):
-    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "part_deadline_s", "symmetry", "excised_spheres", "shift_gauge", "formation_forecast_off")
+    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "part_deadline_s", "symmetry", "excised_spheres", "shift_gauge", "formation_forecast_off", "skip_inner_common")
     class Symmetry(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         SYMMETRY_UNSPECIFIED: _ClassVar[RunSpec.Symmetry]
@@ -110,6 +110,7 @@ class RunSpec(_message.Message):
     EXCISED_SPHERES_FIELD_NUMBER: _ClassVar[int]
     SHIFT_GAUGE_FIELD_NUMBER: _ClassVar[int]
     FORMATION_FORECAST_OFF_FIELD_NUMBER: _ClassVar[int]
+    SKIP_INNER_COMMON_FIELD_NUMBER: _ClassVar[int]
     display_name: str
     variable_set: VariableSet
     mass_scale_solar_masses: float
@@ -122,7 +123,8 @@ class RunSpec(_message.Message):
     excised_spheres: _containers.RepeatedCompositeFieldContainer[ExcisedSphere]
     shift_gauge: RunSpec.ShiftGauge
     formation_forecast_off: bool
-    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., part_deadline_s: _Optional[float] = ..., symmetry: _Optional[_Union[RunSpec.Symmetry, str]] = ..., excised_spheres: _Optional[_Iterable[_Union[ExcisedSphere, _Mapping]]] = ..., shift_gauge: _Optional[_Union[RunSpec.ShiftGauge, str]] = ..., formation_forecast_off: _Optional[bool] = ...) -> None: ...
+    skip_inner_common: bool
+    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., part_deadline_s: _Optional[float] = ..., symmetry: _Optional[_Union[RunSpec.Symmetry, str]] = ..., excised_spheres: _Optional[_Iterable[_Union[ExcisedSphere, _Mapping]]] = ..., shift_gauge: _Optional[_Union[RunSpec.ShiftGauge, str]] = ..., formation_forecast_off: _Optional[bool] = ..., skip_inner_common: _Optional[bool] = ...) -> None: ...
 
 class ExcisedSphere(_message.Message):
     __slots__ = ("centre_m", "radius_m", "body")
@@ -446,8 +448,22 @@ class SurfaceQuantities(_message.Message):
     spin_multipoles_error: _containers.RepeatedScalarFieldContainer[float]
     def __init__(self, area_m2: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., centroid_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_min_m: _Optional[float] = ..., radius_mean_m: _Optional[float] = ..., radius_max_m: _Optional[float] = ..., resolution_indicator: _Optional[float] = ..., angular_momentum_m2: _Optional[_Union[Vector3, _Mapping]] = ..., christodoulou_mass_m: _Optional[float] = ..., akv_angular_momentum_m2: _Optional[float] = ..., spin_direction: _Optional[_Union[Vector3, _Mapping]] = ..., dimensionless_spin: _Optional[float] = ..., akv_christodoulou_mass_m: _Optional[float] = ..., killing_quality: _Optional[float] = ..., spin_equatorial_circumference_m: _Optional[float] = ..., spin_polar_circumference_m: _Optional[float] = ..., spin_circumference_ratio: _Optional[float] = ..., mass_multipoles: _Optional[_Iterable[float]] = ..., spin_multipoles: _Optional[_Iterable[float]] = ..., area_error_m2: _Optional[float] = ..., irreducible_mass_error_m: _Optional[float] = ..., akv_christodoulou_mass_error_m: _Optional[float] = ..., akv_angular_momentum_error_m2: _Optional[float] = ..., dimensionless_spin_error: _Optional[float] = ..., stability_eigenvalue_per_m2: _Optional[float] = ..., stability_eigenvalue_error_per_m2: _Optional[float] = ..., circumference_spin: _Optional[float] = ..., centroid_error_m: _Optional[float] = ..., spin_direction_error_rad: _Optional[float] = ..., spin_equatorial_circumference_error_m: _Optional[float] = ..., spin_polar_circumference_error_m: _Optional[float] = ..., mass_multipoles_error: _Optional[_Iterable[float]] = ..., spin_multipoles_error: _Optional[_Iterable[float]] = ...) -> None: ...
 
+class InnerDisplacement(_message.Message):
+    __slots__ = ("reference_lmax", "reference_position_m", "reference_direction", "lmax", "displacement_m")
+    REFERENCE_LMAX_FIELD_NUMBER: _ClassVar[int]
+    REFERENCE_POSITION_M_FIELD_NUMBER: _ClassVar[int]
+    REFERENCE_DIRECTION_FIELD_NUMBER: _ClassVar[int]
+    LMAX_FIELD_NUMBER: _ClassVar[int]
+    DISPLACEMENT_M_FIELD_NUMBER: _ClassVar[int]
+    reference_lmax: int
+    reference_position_m: _containers.RepeatedScalarFieldContainer[float]
+    reference_direction: _containers.RepeatedScalarFieldContainer[float]
+    lmax: int
+    displacement_m: _containers.RepeatedScalarFieldContainer[float]
+    def __init__(self, reference_lmax: _Optional[int] = ..., reference_position_m: _Optional[_Iterable[float]] = ..., reference_direction: _Optional[_Iterable[float]] = ..., lmax: _Optional[int] = ..., displacement_m: _Optional[_Iterable[float]] = ...) -> None: ...
+
 class SurfaceResult(_message.Message):
-    __slots__ = ("label", "time_m", "iteration", "centre_m", "lmax", "coefficients_m", "quantities", "residual_max_per_m", "iterations", "wall_time_s", "latency_s", "method", "finder_status", "residual_max_between_nodes_per_m")
+    __slots__ = ("label", "time_m", "iteration", "centre_m", "lmax", "coefficients_m", "quantities", "residual_max_per_m", "iterations", "wall_time_s", "latency_s", "method", "finder_status", "residual_max_between_nodes_per_m", "displacement")
     LABEL_FIELD_NUMBER: _ClassVar[int]
     TIME_M_FIELD_NUMBER: _ClassVar[int]
     ITERATION_FIELD_NUMBER: _ClassVar[int]
@@ -462,6 +478,7 @@ class SurfaceResult(_message.Message):
     METHOD_FIELD_NUMBER: _ClassVar[int]
     FINDER_STATUS_FIELD_NUMBER: _ClassVar[int]
     RESIDUAL_MAX_BETWEEN_NODES_PER_M_FIELD_NUMBER: _ClassVar[int]
+    DISPLACEMENT_FIELD_NUMBER: _ClassVar[int]
     label: str
     time_m: float
     iteration: int
@@ -476,7 +493,8 @@ class SurfaceResult(_message.Message):
     method: str
     finder_status: int
     residual_max_between_nodes_per_m: float
-    def __init__(self, label: _Optional[str] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., lmax: _Optional[int] = ..., coefficients_m: _Optional[_Iterable[float]] = ..., quantities: _Optional[_Union[SurfaceQuantities, _Mapping]] = ..., residual_max_per_m: _Optional[float] = ..., iterations: _Optional[int] = ..., wall_time_s: _Optional[float] = ..., latency_s: _Optional[float] = ..., method: _Optional[str] = ..., finder_status: _Optional[int] = ..., residual_max_between_nodes_per_m: _Optional[float] = ...) -> None: ...
+    displacement: InnerDisplacement
+    def __init__(self, label: _Optional[str] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., lmax: _Optional[int] = ..., coefficients_m: _Optional[_Iterable[float]] = ..., quantities: _Optional[_Union[SurfaceQuantities, _Mapping]] = ..., residual_max_per_m: _Optional[float] = ..., iterations: _Optional[int] = ..., wall_time_s: _Optional[float] = ..., latency_s: _Optional[float] = ..., method: _Optional[str] = ..., finder_status: _Optional[int] = ..., residual_max_between_nodes_per_m: _Optional[float] = ..., displacement: _Optional[_Union[InnerDisplacement, _Mapping]] = ...) -> None: ...
 
 class SurfaceFound(_message.Message):
     __slots__ = ("surface",)

@@ -83,7 +83,7 @@ SLICE_OUTCOME_SKIPPED = 2
 SLICE_OUTCOME_FAILED = 3
 
 #: ``surfaces/<label>/method`` values: the solver that produced the row.
-METHOD_CODES: dict[str, int] = {"": 0, "newton": 1, "flow": 2, "newton+flow": 3}
+METHOD_CODES: dict[str, int] = {"": 0, "newton": 1, "flow": 2, "newton+flow": 3, "displacement": 4}
 
 #: Root attribute ``units``: every length, time and mass is in units of the run's mass scale M.
 UNITS: dict[str, str] = {
@@ -227,7 +227,7 @@ def surface_columns(lmax: int) -> tuple[Column, ...]:
                description="the forecast's expected error at that position (inf: unknown)"),
         Column("seed_model", "int8", description="0 none, 1 static, 2 polynomial, 3 orbit (FORECAST_MODELS)"),
         Column("iterations", "int32"),
-        Column("method", "int8", description="solver: 0 none, 1 newton, 2 flow, 3 newton then flow (METHOD_CODES)"),
+        Column("method", "int8", description="solver: 0 none, 1 newton, 2 flow, 3 newton then flow, 4 newton in the displacement representation (METHOD_CODES)"),
         Column("wall_time_s", "float64", unit="s", description="finder wall time in the worker"),
         Column("latency_s", "float64", unit="s", description="slice arrival to this row archived"),
         Column("archived_unix_s", "float64", unit="s", description="wall clock of the commit that wrote the row"),

@@ -4,6 +4,7 @@ measurements and reference spacetimes. Pure functions on numpy arrays; no grpc, 
 from .excision import EXCISION_MASK_FIELD, ExcisedDataError, ExcisedSphere
 from .finder import STATUS_MESSAGES, FinderSettings, FindResult, expansion_of, find_surface
 from .geometry import PointGeometry
+from .inner_mots import InsideBody, InsideResult, find_mots_inside, follow_inner
 from .guesses import SphereScan, guess_from_previous, scan_spheres, sphere_scan_profile
 from .interpolation import GridGeometry, grid_geometry
 from .measures import SurfaceQuantities, measure_surface, surface_area
@@ -19,6 +20,10 @@ __all__ = [
     "FindResult",
     "expansion_of",
     "find_surface",
+    "InsideBody",
+    "InsideResult",
+    "find_mots_inside",
+    "follow_inner",
     "PointGeometry",
     "SphereScan",
     "guess_from_previous",

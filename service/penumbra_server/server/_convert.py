@@ -130,7 +130,32 @@ def surface_result_from_outcome(outcome: SurfaceOutcome, *, time_m: float, itera
         latency_s=latency_s,
         method=outcome.method,
         finder_status=outcome.status,
+        displacement=displacement_to_wire(outcome.displaced),
     )
+
+
+def displacement_to_wire(surface) -> pb.InnerDisplacement | None:
+    """The wire form of a numerics.displaced.DisplacedSurface (None: not in that representation)."""
+    if surface is None:
+        return None
+    ref = surface.reference
+    return pb.InnerDisplacement(reference_lmax=ref.lmax, reference_position_m=ref.position.ravel().tolist(),
+                                reference_direction=ref.direction.ravel().tolist(), lmax=surface.lmax,
+                                displacement_m=surface.coefficients.tolist())
+
+
+def displacement_from_wire(message: pb.InnerDisplacement):
+    """The DisplacedSurface of a wire InnerDisplacement (ValueError naming the field on bad sizes)."""
+    from ..numerics.displaced import DisplacedSurface, ReferenceSurface
+
+    rows = (message.reference_lmax + 1) ** 2
+    for name in ("reference_position_m", "reference_direction"):
+        if len(getattr(message, name)) != 3 * rows:
+            raise ValueError(f"displacement.{name}: expected {3 * rows} values for reference_lmax "
+                             f"{message.reference_lmax}, got {len(getattr(message, name))}")
+    reference = ReferenceSurface(message.reference_lmax, np.reshape(message.reference_position_m, (rows, 3)),
+                                 np.reshape(message.reference_direction, (rows, 3)))
+    return DisplacedSurface(reference, message.lmax, np.asarray(message.displacement_m, dtype=float))
 
 
 def not_found_from_outcome(outcome: SurfaceOutcome, *, latency_s: float) -> pb.SurfaceNotFound:

@@ -243,6 +243,8 @@ class RunSettings:
     shift_gauge: str = "unspecified"
     #: Forecast when a pair's common horizon forms (server/formation.py); RunSpec.formation_forecast_off.
     formation_forecast: bool = True
+    #: Look for the inner common MOTS inside a found common horizon (RunSpec.skip_inner_common).
+    inner_common: bool = True
 
     @property
     def bitant(self) -> bool:
@@ -335,6 +337,7 @@ class RunSettings:
             excised_spheres=excised_spheres_from_wire(spec.excised_spheres),
             shift_gauge=shift_gauge_from_wire(spec.shift_gauge),
             formation_forecast=not spec.formation_forecast_off,
+            inner_common=not spec.skip_inner_common,
         )
 
     def to_wire(self) -> pb.RunSpec:
@@ -359,6 +362,7 @@ class RunSettings:
             excised_spheres=excised_spheres_to_wire(self.excised_spheres),
             shift_gauge=_SHIFT_GAUGES_BACK[self.shift_gauge],
             formation_forecast_off=not self.formation_forecast,
+            skip_inner_common=not self.inner_common,
         )
 
     # -- archive attributes -----------------------------------------------------------------
@@ -380,6 +384,7 @@ class RunSettings:
                                 for s in self.excised_spheres],
             "shift_gauge": self.shift_gauge,
             "formation_forecast": self.formation_forecast,
+            "inner_common": self.inner_common,
         }
 
     @classmethod
@@ -405,4 +410,5 @@ class RunSettings:
             # Archives written before the gauge was declared integrated tracks from any shift.
             shift_gauge=data.get("shift_gauge", "moving_puncture"),
             formation_forecast=bool(data.get("formation_forecast", True)),
+            inner_common=bool(data.get("inner_common", True)),
         )

@@ -117,6 +117,12 @@ class SurfaceJob:
     scan_radii: tuple[float, float] | None = None
     max_candidates: int = 3
     fallback_to_flow: bool = True
+    #: Search inside this surface instead (the inner common MOTS inside the common horizon),
+    #: from ``seed`` (its previous solution) when given, else from inward seeds of this surface.
+    inside_of: Surface | None = None
+    #: The inner surface's previous solution in the displacement representation (preferred
+    #: over ``seed``, which is only its star-shaped form).
+    displaced_seed: object | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -142,6 +148,9 @@ class SurfaceOutcome:
     wall_time_s: float = 0.0
     guess: str = ""
     residual_max_between_nodes: float = float("nan")
+    #: A surface found in the displacement representation (numerics.displaced.DisplacedSurface),
+    #: None otherwise; ``coefficients`` then hold its star-shaped form when it has one, else NaN.
+    displaced: object | None = None
 
     @classmethod
     def failed(cls, label: str, message: str, *, wall_time_s: float = 0.0) -> "SurfaceOutcome":
@@ -293,6 +302,10 @@ def run_surface_job(job: SurfaceJob) -> SurfaceOutcome:
     if callable(run_in_worker):  # another kind of worker job (server/formation.py); it never raises
         return run_in_worker()
     try:
+        if job.inside_of is not None:
+            from .inner_jobs import run_inner_job
+
+            return run_inner_job(job, start)
         return _run(job, start)
     except Exception as exc:  # a worker must report, not crash the pool
         tail = traceback.format_exc(limit=3).strip().splitlines()[-1]

@@ -43,6 +43,7 @@ from .run_types import ManagerOptions, QueuedSlice
 from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, merge_batch, notice_emission, parts_missing_emission, skip_emission, slice_emission,
                          state_emission, surface_emission)
 from .scheduler import SurfacePlan, SurfacePlanner
+from .inner_planning import inner_common_plans, search_in_order
 from .search import search_plan
 from .spool import RunSpool
 from .steering import RunSteering
@@ -96,6 +97,9 @@ class RunRecord:
         self.announced: dict[str, AnnouncedSurface] = {}
         #: The surfaces of the archive, in order: the expected bodies, then those planners added.
         self.surface_labels: list[str] = list(settings.labels)
+        #: Last solution of each surface followed in the displacement representation (the inner
+        #: common MOTS), the seed of its next search (inner_planning.py).
+        self.displaced: dict[str, object] = {}
         #: Tracks, forecasts, common-horizon watch, guidance and windows (steering.py).
         self.steering = RunSteering(settings, interpolation_order=options.interpolation_order,
                                     common_horizon=options.common_horizon, states=self.states)
@@ -335,12 +339,13 @@ class RunRecord:
     async def _process(self, item: QueuedSlice) -> None:
         started = time.time()
         plans = list(self.planner.plan(self.settings, self.tracks, item.slice_))
+        plans += inner_common_plans(self.settings, plans, self.steering.common_label, self.states, self.displaced)
         for plan in plans:
             if plan.label not in self.surface_labels:  # a surface the planner added (e.g. a common horizon)
                 await self._in_archive_thread(self.writer.add_surface, plan.label, lmax=plan.lmax or self.settings.lmax)
                 self.surface_labels.append(plan.label)
                 self.states.setdefault(plan.label, SurfaceState(plan.label))
-        outcomes = list(await asyncio.gather(*(self._attempt(plan, item) for plan in plans)))
+        outcomes = await search_in_order(plans, lambda plan: self._attempt(plan, item), self.displaced)
         # The decision state (what the next plan and the steering see) takes the outcomes now;
         # what GetLatestSurfaces shows moves only when the slice's commit is written.
         surface_units = []

@@ -69,6 +69,7 @@ class SurfacePlan:
             for those searches too: their iterates run away when the surface does not exist).
         must_enclose: points (3,) a found surface must hold inside (a common horizon must
             enclose both bodies); a surface that does not is reported not found.
+        inside_of, outer: see the attributes.
     """
 
     label: str
@@ -87,6 +88,12 @@ class SurfacePlan:
     fallback_to_flow: bool = True
     retry_wider: bool = True
     must_enclose: tuple[np.ndarray, ...] = ()
+    #: Label of the surface this one is searched inside (the inner common MOTS inside the common
+    #: horizon); the run resolves it into ``outer`` after that surface's search in the same slice.
+    inside_of: str | None = None
+    outer: Surface | None = None
+    #: The surface's previous solution in the displacement representation, if it has one.
+    displaced_seed: object | None = None
 
     def points_outside(self, surface: Surface) -> list[np.ndarray]:
         """The ``must_enclose`` points that lie on or outside ``surface``."""

@@ -28,6 +28,9 @@ async def search_plan(plan: SurfacePlan, slice_: Slice, *, executor: FinderExecu
     if not plan.search:
         return SurfaceOutcome(label=plan.label, found=False, reason=REASON_NOT_SEARCHED, status=-1,
                               message=plan.note or "not searched in this slice")
+    if plan.inside_of is not None and plan.outer is None:
+        return SurfaceOutcome(label=plan.label, found=False, reason=REASON_NOT_SEARCHED, status=-1,
+                              message=f"not searched: {plan.inside_of!r}, which it lies inside, was not found in this slice")
     outcome = await _find(plan, slice_, executor, settings, interpolation_order)
     if outcome.reason == REASON_OUTSIDE_DATA and plan.retry_wider:
         # The crop may have cut what the surface needs: once more on twice the region.
@@ -66,5 +69,7 @@ async def _find(plan: SurfacePlan, slice_: Slice, executor: FinderExecutor, sett
         extra_seeds=tuple(plan.extra_seeds),
         scan_centre=plan.scan_centre,
         scan_radii=plan.scan_radii,
+        inside_of=plan.outer,
+        displaced_seed=plan.displaced_seed,
     )
     return await executor.run(job)

@@ -1,0 +1,116 @@
+"""The inner common MOTS through the service: an equal-mass Brill-Lindquist pair whose separation
+decreases through the critical one (d_c = 0.766 M for two bare masses 0.5; independent
+axisymmetric calculation, tests/numerics/axisymmetric_mots.py). The inner common MOTS is found
+in the slice where the common horizon first is, inside it and larger in area, followed in every
+later slice, streamed and archived under its own label; RunSpec.inner_common False turns it off.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+import pytest
+
+import penumbra_shim as ps
+from penumbra_shim._wire import horizons_pb2 as pb
+from penumbra_server.archive import METHOD_CODES, open_archive
+from penumbra_server.numerics.displaced import embedding, parametric_area
+from penumbra_server.numerics.spacetimes import BrillLindquist
+from penumbra_server.numerics.surfaces import Surface
+from penumbra_server.server._convert import displacement_from_wire
+
+from tracking_support import bl_patches, cube
+
+MASS = 0.5
+SEPARATIONS = (0.80, 0.78, 0.76, 0.74, 0.72, 0.70)  # M, through d_c = 0.766 M
+SPACING = 0.05
+LMAX = 8
+
+
+def _spec(inner_common: bool) -> ps.RunSpec:
+    return ps.RunSpec(variable_set="conformal_w", name="inner common MOTS",
+                      bodies=(ps.Body("A", (0.4, 0.0, 0.0), MASS), ps.Body("B", (-0.4, 0.0, 0.0), MASS)),
+                      finder=ps.FinderOptions(lmax=LMAX, tolerance=1e-8),
+                      backlog=ps.BacklogOptions(queue_depth=len(SEPARATIONS)),
+                      refinement=ps.RefinementOptions(steering_interval=1.0), inner_common=inner_common)
+
+
+def _run_sequence(client, inner_common: bool, separations=SEPARATIONS):
+    run = client.open_run(_spec(inner_common), cache_results=False)
+    box = cube((0.0, 0.0, 0.0), 1.3, SPACING)
+    for index, d in enumerate(separations):
+        positions = np.array([[d / 2, 0.0, 0.0], [-d / 2, 0.0, 0.0]])
+        run.submit(ps.build_slice(time=0.5 * index, iteration=index, variable_set="conformal_w",
+                                  patches=bl_patches([box], (MASS, MASS), positions)))
+    assert run.flush(120)
+    # Wait for the processing here (generous, fails loudly) rather than inside CloseRun, whose
+    # deadline a loaded machine can exceed.
+    give_up = time.monotonic() + 900
+    while client.get_run(run.run_id).slices_processed < len(separations):
+        assert time.monotonic() < give_up, f"slices not processed in 900 s: {client.get_run(run.run_id)}"
+        time.sleep(0.5)
+    run.close()
+    reports = {}
+    for e in client.watch(run.run_id, timeout_s=120):
+        if e.kind in ("surface_found", "surface_not_found"):
+            assert (e.iteration, e.surface.label) not in reports, "one status per surface per slice"
+            reports[(e.iteration, e.surface.label)] = e.surface
+    return run, reports
+
+
+@pytest.mark.slow  # about a minute on a loaded machine: six slices, four with common searches
+def test_inner_common_mots_appears_with_the_common_horizon_and_is_followed(client, stub, archive_root):
+    run, reports = _run_sequence(client, inner_common=True)
+    common = [i for i in range(len(SEPARATIONS)) if (i, "common") in reports and reports[i, "common"].found]
+    assert common and common[0] == 2, f"common horizon first at slices {common}"  # d = 0.76 < d_c
+    inner = {i: reports[i, "common_inner"] for i in range(len(SEPARATIONS)) if (i, "common_inner") in reports}
+    print("\n" + "\n".join(f"d = {SEPARATIONS[i]:.2f} M: common area {reports[i, 'common'].area:.5f}, inner "
+                           f"{'area %.5f' % s.area if s.found else 'not found: ' + s.message[:160]}"
+                           for i, s in sorted(inner.items())))
+    # planned with the common surface; searched only where the common one was found
+    for i, report in inner.items():
+        if i not in common:
+            assert not report.found and "not searched" in report.message
+    # found in the slice the common horizon first is, and in every later one
+    assert [i for i, s in inner.items() if s.found] == common
+    # the surfaces themselves, in the displacement representation, from the raw stream
+    wire = {}
+    for response in stub.WatchRun(pb.WatchRunRequest(run_id=run.run_id, start_seq=1), timeout=60):
+        event = response.event
+        if event.WhichOneof("kind") == "surface_found" and event.surface_found.surface.label == "common_inner":
+            wire[event.iteration] = event.surface_found.surface
+    assert sorted(wire) == common
+    for i in common:
+        outer, found = reports[i, "common"], inner[i]
+        assert found.method == "displacement" and wire[i].HasField("displacement")
+        surface = displacement_from_wire(wire[i].displacement)
+        # inside the common horizon, distinct from it, and (the unstable saddle) larger in area
+        outer_surface = Surface(outer.centre, outer.lmax, outer.coefficients)
+        points = embedding(surface, surface.grid_lmax() + 2).x
+        rel = points - outer_surface.centre
+        dist = np.linalg.norm(rel, axis=1)
+        radius = outer_surface.radius(np.arccos(rel[:, 2] / dist), np.arctan2(rel[:, 1], rel[:, 0]))
+        assert np.all(dist < radius + 1e-3) and np.max(radius - dist) > 5e-3
+        assert found.area > outer.area
+        # the reported area is that of the streamed surface (exact data here: the slices' own)
+        d = SEPARATIONS[i]
+        exact = BrillLindquist(masses=[MASS, MASS], positions=[[d / 2, 0, 0], [-d / 2, 0, 0]])
+        assert parametric_area(surface, exact.geometry) == pytest.approx(found.area, rel=1e-3)
+    # the two separate as d moves below d_c
+    gaps = [inner[i].area - reports[i, "common"].area for i in common]
+    assert gaps[-1] > gaps[0]
+
+    view = open_archive(archive_root, run.run_id)
+    assert "common_inner" in view.surface_labels
+    rows = view.surface("common_inner")
+    assert rows["found"].tolist() == [inner[i].found for i in sorted(inner)]
+    assert set(rows["method"][rows["found"]].tolist()) == {METHOD_CODES["displacement"]}
+
+
+@pytest.mark.slow
+def test_inner_common_search_can_be_turned_off(client, archive_root):
+    run, reports = _run_sequence(client, inner_common=False, separations=SEPARATIONS[:4])
+    assert any(label == "common" and s.found for (_, label), s in reports.items())
+    assert not any(label == "common_inner" for (_, label) in reports)
+    assert "common_inner" not in open_archive(archive_root, run.run_id).surface_labels

@@ -7,6 +7,7 @@ committed count, and a second writer would overwrite them.
 
 from __future__ import annotations
 
+import asyncio
 import time
 import warnings
 from pathlib import Path
@@ -14,6 +15,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 import zarr
+from zarr.core.sync import sync as zarr_sync
 
 from . import _layout as layout
 
@@ -225,6 +227,7 @@ class ArchiveWriter:
             if rows:
                 pending.append((group_path, rows, cols, f"{group_path!r}", row_dimension))
         committed = dict(self._committed)
+        blocks = []
         for group_path, rows, cols, row_kind, row_dimension in pending:
             if group_path not in committed:
                 _create_columns(self._group.require_group(group_path), cols, row_dimension)
@@ -232,12 +235,10 @@ class ArchiveWriter:
             start = committed[group_path]
             stop = start + len(rows)
             for column in cols:
-                block = _column_block(column, rows, row_kind)
-                arr = self._array(group_path, column, row_dimension)
-                if arr.shape[0] != stop:
-                    arr.resize((stop,) + arr.shape[1:])
-                arr[start:stop] = block
+                blocks.append((self._array(group_path, column, row_dimension), start, stop,
+                               _column_block(column, rows, row_kind)))
             committed[group_path] = stop
+        _write_blocks(blocks)
         new_attrs = dict(self._attrs)
         new_attrs.update(attrs or {})
         new_attrs["committed_rows"] = committed
@@ -246,6 +247,23 @@ class ArchiveWriter:
         self._committed = committed
         _consolidate(self._group)
         return dict(committed)
+
+
+def _write_blocks(blocks: Sequence[tuple[zarr.Array, int, int, np.ndarray]]) -> None:
+    """Grow each array to ``stop`` rows and write ``block`` to rows start:stop, all columns at
+    once: one wait for zarr's I/O loop per commit instead of two per column (a commit touches
+    about 150 columns; one at a time that was most of a slice's time in the server)."""
+    async def write(arr: zarr.Array, start: int, stop: int, block: np.ndarray) -> None:
+        target = arr.async_array
+        if target.shape[0] != stop:
+            await target.resize((stop,) + tuple(target.shape[1:]))
+        await target.setitem(slice(start, stop), block)
+
+    async def write_all() -> None:
+        await asyncio.gather(*(write(*entry) for entry in blocks))
+
+    if blocks:
+        zarr_sync(write_all())
 
 
 def _consolidate(group: zarr.Group) -> None:

@@ -77,6 +77,10 @@ class ServerOptions:
     restore_runs: bool = True
     #: Look for the common horizon of two-body runs (the default planner; `serve --no-common-horizon`).
     common_horizon: bool = True
+    #: Slices of one run searched at once (`serve --slices-in-flight`): the finds of slice n+1
+    #: start from the forecast while slice n is still searched; results are applied, archived
+    #: and announced in iteration order. 1: one slice at a time.
+    slices_in_flight: int = 2
     #: Per run, the planner of the surfaces to look for; None: the default
     #: :class:`~penumbra_server.server.planning.SteeringPlanner` (forecast seeds, common horizon).
     #: A planner with an ``attach(steering)`` method is handed the run's tracking state.
@@ -186,6 +190,7 @@ async def create_server(
                 subscriber_queue_size=options.subscriber_queue_size,
                 interpolation_order=options.interpolation_order,
                 common_horizon=options.common_horizon,
+                slices_in_flight=options.slices_in_flight,
             ),
             planner_factory=options.planner_factory,
             slice_observer_factory=options.slice_observer_factory,

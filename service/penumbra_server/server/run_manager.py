@@ -15,6 +15,7 @@ from penumbra_shim._wire import horizons_pb2 as pb
 
 from ..archive import ArchiveWriter, archive_path, list_archives
 from ._spec import RunSettings
+from .dispatch import FairDispatcher
 from .errors import ServiceError
 from .executors import FinderExecutor
 from .planning import steering_planner_factory
@@ -49,6 +50,8 @@ class RunManager:
                  slice_observer_factory: Callable[[RunSettings], Sequence[Callable]] | None = None) -> None:
         self.archive_root = Path(archive_root)
         self.executor = executor
+        #: Shares the executor among the runs: each run's jobs wait for its turn (dispatch.py).
+        self.dispatcher = FairDispatcher(executor)
         self.options = options
         self.planner_factory = planner_factory or steering_planner_factory
         self.slice_observer_factory = slice_observer_factory
@@ -100,7 +103,7 @@ class RunManager:
 
     def _make_record(self, run_id, settings, writer, created, *, next_seq: int) -> RunRecord:
         run = RunRecord(
-            run_id=run_id, settings=settings, writer=writer, executor=self.executor,
+            run_id=run_id, settings=settings, writer=writer, executor=self.dispatcher.for_run(run_id),
             archive_thread=self.archive_thread, options=self.options,
             planner=self.planner_factory(settings), created_unix_s=created, next_seq=next_seq,
         )
@@ -149,4 +152,5 @@ class RunManager:
 
     async def shutdown(self) -> None:
         await asyncio.gather(*(run.shutdown() for run in self.runs.values()), return_exceptions=True)
+        await self.dispatcher.close()
         self.archive_thread.shutdown(wait=True)

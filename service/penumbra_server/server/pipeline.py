@@ -9,6 +9,12 @@ oldest first, whatever order the finds finish in, so the decision state, the arc
 events of a run advance in iteration order as with one slice at a time. Depth 1 is one slice at a
 time.
 
+Where the tracking order does not allow it, a slice waits: while slices are in flight, a slice
+whose plan holds a search with no seed surface (a surface never found, or lost to a wide scan)
+is planned again once the slices before it are applied (a scan started early would throw away
+what the slice before may find). So the first slices of a run go one at a time, and a run's
+results depend on timing only through the seeds of surfaces already tracked.
+
 Planning and applying both happen in this one loop (never at the same time), so the run's
 tracking state, which the apply step updates off the event loop, is never read half-updated.
 """
@@ -44,7 +50,7 @@ class InFlight:
 
 
 async def drive_pipeline(queue: deque, changed: asyncio.Event, flight: deque, *, depth: int,
-                         closing: Callable[[], bool], launch: Callable[[QueuedSlice], InFlight],
+                         closing: Callable[[], bool], launch: Callable[[QueuedSlice, bool], InFlight | None],
                          apply: Callable[[InFlight], Awaitable[None]]) -> None:
     """Run one run's slices until it is closing and nothing is queued or in flight.
 
@@ -54,7 +60,9 @@ async def drive_pipeline(queue: deque, changed: asyncio.Event, flight: deque, *,
         flight: the slices in flight, oldest first (the caller's, so it can cancel them).
         depth: slices in flight at most (at least 1).
         closing: whether the run takes no more slices.
-        launch: plan a slice and start its finds (called on the loop, never during ``apply``).
+        launch: ``launch(item, overlapping)`` plans a slice and starts its finds (called on the
+            loop, never during ``apply``); ``overlapping``: other slices are in flight. It returns
+            None when the slice must wait for their outcomes (it is planned again after them).
         apply: record the oldest slice's outcomes once its finds are done.
     """
     if depth < 1:
@@ -62,7 +70,12 @@ async def drive_pipeline(queue: deque, changed: asyncio.Event, flight: deque, *,
     while True:
         changed.clear()
         while queue and len(flight) < depth:
-            flight.append(launch(queue.popleft()))
+            item = queue.popleft()
+            started = launch(item, bool(flight))
+            if started is None:  # it needs the outcomes in flight: planned again once they are applied
+                queue.appendleft(item)
+                break
+            flight.append(started)
         if not flight:
             if closing():
                 return

@@ -268,16 +268,21 @@ class RunRecord:
                              depth=max(1, self.options.slices_in_flight), closing=lambda: self._closing,
                              launch=self._launch, apply=self._apply_or_fail)
 
-    def _launch(self, item: QueuedSlice) -> InFlight:
+    def _launch(self, item: QueuedSlice, overlapping: bool) -> InFlight | None:
         """Plan ``item`` from what the decision state knows now (slices still in flight not yet
-        applied: their surfaces are seeded from the forecast) and start its finds."""
+        applied: their surfaces are seeded from the forecast) and start its finds; None when
+        ``overlapping`` and a search has no seed (pipeline.py: it waits for those slices)."""
         started = time.time()
         try:
             plans = list(self.planner.plan(self.settings, self.tracks, item.slice_))
         except Exception as exc:  # reported in order, when this slice's turn comes
+            if overlapping:
+                return None
             failed = asyncio.get_running_loop().create_future()
             failed.set_exception(exc)
             return InFlight(item, started, [], failed)
+        if overlapping and any(plan.search and plan.seed is None for plan in plans):
+            return None
         additions = []
         for plan in plans:
             if plan.label not in self.surface_labels:  # a surface the planner added (e.g. a common horizon)

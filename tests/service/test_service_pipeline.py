@@ -33,41 +33,44 @@ def test_next_slice_starts_from_the_forecast_and_results_apply_in_iteration_orde
         with BackgroundServer(archive_root=tmp_path, options=ServerOptions(slices_in_flight=2),
                               executor=gated) as bg, ps.connect(bg.address, deadline_s=30.0) as client:
             run = client.open_run(lone_spec("in flight", queue_depth=4))
-            tickets = [run.submit(lone_hole_slice(i)) for i in range(4)]
+            tickets = [run.submit(lone_hole_slice(i)) for i in range(5)]
             assert all(t.result(60).accepted for t in tickets)
-            # Slice 0 has no prior (a scan): slice 1 waits for its outcome and is seeded from it.
+            # Slice 0 has no prior (a scan) and slice 1 only a static seed (one position known):
+            # each waits for the outcome before it.
             gated.wait_for("arrived", "A", 0)
             gated.open("A", 0)
-            gated.wait_for("arrived", "A", 1)
-            # Slice 2's find reaches the executor while slice 1's is still held: n + 1 starts
-            # before n finishes, seeded from the forecast (slice 1's result is not known yet).
-            gated.wait_for("arrived", "A", 2)
-            assert gated.entries("done") == [("A", 0)]
-            # Slice 2's find finishes first; slice 1's after it.
-            gated.open("A", 2)
-            gated.wait_for("done", "A", 2)
             gated.open("A", 1)
+            gated.wait_for("arrived", "A", 2)
+            # Slice 3's find reaches the executor while slice 2's is still held: n + 1 starts
+            # before n finishes, seeded from the forecast (slice 2's result is not known yet).
+            gated.wait_for("arrived", "A", 3)
+            assert gated.entries("done") == [("A", 0), ("A", 1)]
+            # Slice 3's find finishes first; slice 2's after it.
             gated.open("A", 3)
             gated.wait_for("done", "A", 3)
+            gated.open("A", 2)
+            gated.open("A", 4)
+            gated.wait_for("done", "A", 4)
             run.close()
             events = _events(client, run.run_id)
     finally:
         gated.close_pool()
     log = [(kind, label, it) for kind, label, it, _ in gated.log]
-    assert not gated.seeded("A", 0) and all(gated.seeded("A", i) for i in (1, 2, 3))
+    assert not gated.seeded("A", 0) and all(gated.seeded("A", i) for i in (1, 2, 3, 4))
     assert log.index(("arrived", "A", 1)) > log.index(("done", "A", 0))
-    assert log.index(("arrived", "A", 2)) < log.index(("done", "A", 1))
-    # Two in flight at most: slice 3 waited until slice 1's outcome was applied.
-    assert log.index(("arrived", "A", 3)) > log.index(("done", "A", 1))
-    assert log.index(("done", "A", 2)) < log.index(("done", "A", 1))
+    assert log.index(("arrived", "A", 2)) > log.index(("done", "A", 1))
+    assert log.index(("arrived", "A", 3)) < log.index(("done", "A", 2))
+    # Two in flight at most: slice 4 waited until slice 2's outcome was applied.
+    assert log.index(("arrived", "A", 4)) > log.index(("done", "A", 2))
+    assert log.index(("done", "A", 3)) < log.index(("done", "A", 2))
     # Applied, archived and announced in iteration order, whatever order the finds finished in.
     assert [e.seq for e in events] == list(range(1, len(events) + 1))
-    assert [e.iteration for e in events if e.kind == "slice_processed"] == [0, 1, 2, 3]
+    assert [e.iteration for e in events if e.kind == "slice_processed"] == [0, 1, 2, 3, 4]
     found = [e for e in events if e.kind == "surface_found"]
-    assert [e.iteration for e in found] == [0, 1, 2, 3]
+    assert [e.iteration for e in found] == [0, 1, 2, 3, 4]
     view = open_archive(tmp_path, run.run_id)
-    assert view.slices()["iteration"].tolist() == [0, 1, 2, 3]
-    assert view.surface("A")["iteration"].tolist() == [0, 1, 2, 3]
+    assert view.slices()["iteration"].tolist() == [0, 1, 2, 3, 4]
+    assert view.surface("A")["iteration"].tolist() == [0, 1, 2, 3, 4]
     assert view.surface("A")["event_seq"].tolist() == [e.seq for e in found]
     # The puncture's horizon (area 16 pi m^2, docs/references.md item 1) in every slice.
     assert all(e.surface.area / (16 * np.pi) == pytest.approx(1.0, abs=2e-3) for e in found)
@@ -138,8 +141,10 @@ def test_a_second_run_is_served_within_one_round_of_a_backlog(tmp_path):
                               executor=gated) as bg, ps.connect(bg.address, deadline_s=30.0) as client:
             busy = client.open_run(lone_spec("backlog", queue_depth=20), queue_depth=20)
             assert all(t.result(60).accepted for t in [busy.submit(lone_hole_slice(i, nodes=21)) for i in range(20)])
-            gated.open("A", 0)  # a scan: the next slices wait for its outcome, then go four at a time
-            gated.wait_for("arrived", "A", 1)
+            # A scan, then a static seed: the next slices wait for those outcomes, then go four at a time.
+            gated.open("A", 0)
+            gated.open("A", 1)
+            gated.wait_for("arrived", "A", 2)
             dispatcher = bg.server.manager.dispatcher
 
             def waiting(run_id):

@@ -77,10 +77,12 @@ class ServerOptions:
     restore_runs: bool = True
     #: Look for the common horizon of two-body runs (the default planner; `serve --no-common-horizon`).
     common_horizon: bool = True
-    #: Slices of one run searched at once (`serve --slices-in-flight`): the finds of slice n+1
-    #: start from the forecast while slice n is still searched; results are applied, archived
-    #: and announced in iteration order. 1: one slice at a time.
-    slices_in_flight: int = 2
+    #: Slices of one run searched at once: the finds of slice n+1 start from the forecast while
+    #: slice n is still searched (server/pipeline.py); results are applied, archived and
+    #: announced in iteration order. 1 (default): one slice at a time, each seeded from the
+    #: one before, so a run's results do not depend on how fast the workers are; 2 or more
+    #: keeps every worker busy when one run's slices come faster than one slice's finds.
+    slices_in_flight: int = 1
     #: Per run, the planner of the surfaces to look for; None: the default
     #: :class:`~penumbra_server.server.planning.SteeringPlanner` (forecast seeds, common horizon).
     #: A planner with an ``attach(steering)`` method is handed the run's tracking state.

@@ -11,9 +11,11 @@ time.
 
 Where the tracking order does not allow it, a slice waits: while slices are in flight, a slice
 whose plan holds a search with no seed surface (a surface never found, or lost to a wide scan)
-is planned again once the slices before it are applied (a scan started early would throw away
-what the slice before may find). So the first slices of a run go one at a time, and a run's
-results depend on timing only through the seeds of surfaces already tracked.
+or with a seed placed where the surface last was (no motion known yet) is planned again once the
+slices before it are applied (a scan started early throws away what the slice before may find;
+a static seed two slices old can be far off a moving hole). So the first slices of a run go one
+at a time. With more than one slice in flight a run's seeds (never its accepted surfaces, which
+meet the same tolerance) depend on timing: the server's default is one slice at a time.
 
 Planning and applying both happen in this one loop (never at the same time), so the run's
 tracking state, which the apply step updates off the event loop, is never read half-updated.

@@ -20,7 +20,7 @@ class ManagerOptions:
     common_horizon: bool = True
     #: Slices of one run whose finds may run at once (the next slice's finds start from the
     #: forecast while earlier ones are still searched); results are applied in iteration order.
-    slices_in_flight: int = 2
+    slices_in_flight: int = 1
 
 
 @dataclass(frozen=True, eq=False)

@@ -55,6 +55,13 @@ log = logging.getLogger("penumbra.server")
 _COMMITS_BEHIND = 2
 
 
+def _may_overlap(plan: SurfacePlan) -> bool:
+    """Whether ``plan`` may start before the slices in flight are applied: not a search without
+    a seed (a scan), nor one seeded where the surface last was (a static forecast: one known
+    position, no motion yet); a forecast that extrapolates over two slices is still close."""
+    return not plan.search or (plan.seed is not None and plan.seed_model != "static")
+
+
 def _retrieve(future: asyncio.Future) -> None:
     """Mark a write-behind commit's outcome as seen (a failure is already logged and kept in
     the run's failed_reason by the committer)."""
@@ -271,7 +278,7 @@ class RunRecord:
     def _launch(self, item: QueuedSlice, overlapping: bool) -> InFlight | None:
         """Plan ``item`` from what the decision state knows now (slices still in flight not yet
         applied: their surfaces are seeded from the forecast) and start its finds; None when
-        ``overlapping`` and a search has no seed (pipeline.py: it waits for those slices)."""
+        ``overlapping`` and a plan needs those slices' outcomes (:func:`_may_overlap`)."""
         started = time.time()
         try:
             plans = list(self.planner.plan(self.settings, self.tracks, item.slice_))
@@ -281,7 +288,7 @@ class RunRecord:
             failed = asyncio.get_running_loop().create_future()
             failed.set_exception(exc)
             return InFlight(item, started, [], failed)
-        if overlapping and any(plan.search and plan.seed is None for plan in plans):
+        if overlapping and not all(_may_overlap(plan) for plan in plans):
             return None
         additions = []
         for plan in plans:

@@ -8,6 +8,7 @@ committed count, and a second writer would overwrite them.
 from __future__ import annotations
 
 import asyncio
+import threading
 import time
 import warnings
 from pathlib import Path
@@ -20,6 +21,8 @@ from zarr.core.sync import sync as zarr_sync
 from . import _layout as layout
 
 __all__ = ["ArchiveWriter", "ArchiveError"]
+
+_WARNINGS_LOCK = threading.Lock()
 
 
 class ArchiveError(RuntimeError):
@@ -270,7 +273,9 @@ def _consolidate(group: zarr.Group) -> None:
     """Write the consolidated metadata (after the committed counts): ``xarray.open_zarr`` then
     opens any group without a fallback warning and sees exactly the last commit's rows.
     The archive's own reader ignores it and trusts ``committed_rows``."""
-    with warnings.catch_warnings():
+    # catch_warnings swaps the process's filter list: one thread at a time (runs write on
+    # threads of their own).
+    with _WARNINGS_LOCK, warnings.catch_warnings():
         # zarr notes that consolidated metadata is not yet part of the v3 specification; the
         # archive stays readable without it (every zarr.json is still written).
         warnings.filterwarnings("ignore", message="Consolidated metadata is currently not part")

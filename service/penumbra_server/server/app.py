@@ -177,6 +177,8 @@ async def create_server(
     token_book = token_book or TokenBook()
     check_exposure(host, tls=server_credentials is not None, tokens=bool(token_book), trusted_network=trusted_network)
     options = options or ServerOptions()
+    if options.slices_in_flight < 1:
+        raise ValueError(f"slices_in_flight: expected at least 1 slice of a run in flight, got {options.slices_in_flight}")
     archive_root = Path(archive_root)
     archive_root.mkdir(parents=True, exist_ok=True)
     owns_executor = executor is None

@@ -10,9 +10,9 @@ events of a run advance in iteration order as with one slice at a time. Depth 1 
 time.
 
 Where the tracking order does not allow it, a slice waits: while slices are in flight, a slice
-whose plan holds a search with no seed surface (a surface never found, or lost to a wide scan)
-or with a seed placed where the surface last was (no motion known yet) is planned again once the
-slices before it are applied (a scan started early throws away what the slice before may find;
+whose plan holds a search not seeded from a forecast with motion (a surface never found, such
+as a common horizon not yet formed; one lost to a wide scan; one seeded where it last was, no
+motion known yet) is planned again once the slices before it are applied (a scan started early throws away what the slice before may find;
 a static seed two slices old can be far off a moving hole). So the first slices of a run go one
 at a time. With more than one slice in flight a run's seeds (never its accepted surfaces, which
 meet the same tolerance) depend on timing: the server's default is one slice at a time.

@@ -55,11 +55,16 @@ log = logging.getLogger("penumbra.server")
 _COMMITS_BEHIND = 2
 
 
+#: Forecast models whose seed stays close when it extrapolates over the slices in flight too.
+_MOVING_FORECASTS = ("polynomial", "orbit")
+
+
 def _may_overlap(plan: SurfacePlan) -> bool:
-    """Whether ``plan`` may start before the slices in flight are applied: not a search without
-    a seed (a scan), nor one seeded where the surface last was (a static forecast: one known
-    position, no motion yet); a forecast that extrapolates over two slices is still close."""
-    return not plan.search or (plan.seed is not None and plan.seed_model != "static")
+    """Whether ``plan`` may start before the slices in flight are applied: only a search seeded
+    from a forecast with motion (not a scan, not a static seed from one known position, not a
+    surface never found, such as a common horizon before it formed, whose search depends on
+    the latest bodies); a forecast that extrapolates over two slices is still close."""
+    return not plan.search or (plan.seed is not None and plan.seed_model in _MOVING_FORECASTS)
 
 
 def _retrieve(future: asyncio.Future) -> None:

@@ -29,8 +29,21 @@ from dataclasses import dataclass
 from typing import Awaitable, Callable
 
 from .run_types import QueuedSlice
+from .scheduler import SurfacePlan
 
-__all__ = ["InFlight", "drive_pipeline"]
+__all__ = ["InFlight", "drive_pipeline", "may_overlap"]
+
+
+#: Forecast models whose seed stays close when it extrapolates over the slices in flight too.
+_MOVING_FORECASTS = ("polynomial", "orbit")
+
+
+def may_overlap(plan: SurfacePlan) -> bool:
+    """Whether ``plan`` may start before the slices in flight are applied: only a search seeded
+    from a forecast with motion (not a scan, not a static seed from one known position, not a
+    surface never found, such as a common horizon before it formed, whose search depends on
+    the latest bodies); a forecast that extrapolates over two slices is still close."""
+    return not plan.search or (plan.seed is not None and plan.seed_model in _MOVING_FORECASTS)
 
 
 @dataclass(eq=False)

@@ -37,7 +37,7 @@ from .executors import FinderExecutor
 from .jobs import SurfaceOutcome
 from .link_records import LinkRecords
 from .parts import PartAssembly
-from .pipeline import InFlight, drive_pipeline
+from .pipeline import InFlight, drive_pipeline, may_overlap
 from .run_types import ManagerOptions, QueuedSlice
 from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, merge_batch, notice_emission, parts_missing_emission, skip_emission, slice_emission,
                          state_emission, surface_emission)
@@ -53,18 +53,6 @@ log = logging.getLogger("penumbra.server")
 
 #: Processed slices whose commit may still be pending while the next slice is processed.
 _COMMITS_BEHIND = 2
-
-
-#: Forecast models whose seed stays close when it extrapolates over the slices in flight too.
-_MOVING_FORECASTS = ("polynomial", "orbit")
-
-
-def _may_overlap(plan: SurfacePlan) -> bool:
-    """Whether ``plan`` may start before the slices in flight are applied: only a search seeded
-    from a forecast with motion (not a scan, not a static seed from one known position, not a
-    surface never found, such as a common horizon before it formed, whose search depends on
-    the latest bodies); a forecast that extrapolates over two slices is still close."""
-    return not plan.search or (plan.seed is not None and plan.seed_model in _MOVING_FORECASTS)
 
 
 def _retrieve(future: asyncio.Future) -> None:
@@ -283,7 +271,7 @@ class RunRecord:
     def _launch(self, item: QueuedSlice, overlapping: bool) -> InFlight | None:
         """Plan ``item`` from what the decision state knows now (slices still in flight not yet
         applied: their surfaces are seeded from the forecast) and start its finds; None when
-        ``overlapping`` and a plan needs those slices' outcomes (:func:`_may_overlap`)."""
+        ``overlapping`` and a plan needs those slices' outcomes (:func:`~.pipeline.may_overlap`)."""
         started = time.time()
         try:
             plans = list(self.planner.plan(self.settings, self.tracks, item.slice_))
@@ -293,7 +281,7 @@ class RunRecord:
             failed = asyncio.get_running_loop().create_future()
             failed.set_exception(exc)
             return InFlight(item, started, [], failed)
-        if overlapping and not all(_may_overlap(plan) for plan in plans):
+        if overlapping and not all(may_overlap(plan) for plan in plans):
             return None
         additions = []
         for plan in plans:

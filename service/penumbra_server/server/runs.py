@@ -9,7 +9,9 @@ archive commit on the archive thread, and only then appends the events to the lo
 announced as archived only after it is written). A processed slice hands all its events (surfaces,
 tracking notices, slice_processed) to the committer at once: one archive commit per slice; the
 processor records the outcomes in the decision state (surface states, steering) at once and
-goes on to the next slice while the commit is written (write-behind, a bounded lag). Made and
+goes on to the next slice while the commit is written (write-behind, a bounded lag). With
+``slices_in_flight`` above 1 the finds of later slices start before earlier ones are applied
+(pipeline.py); outcomes are still applied in iteration order. Made and
 restored by run_manager.py and restore.py; parts.py and link_records.py hang off it.
 """
 

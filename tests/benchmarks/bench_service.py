@@ -13,7 +13,8 @@ The slices are the demo's (penumbra_server.cli.demo_evolution.slice_arrays: the 
 Brill-Lindquist inspiral of demo_scenario, conformal-W variables, lmax 10, the common horizon
 searched once the bodies are close), built before timing and sent whole through the shim to a
 real server on loopback (a server on its own event loop thread in this process, built as
-`penumbra serve` builds it: start_executor, then create_server). The sender is a separate
+`penumbra serve` builds it: start_executor, then create_server), with two slices of the run in
+flight (``--slices-in-flight``; the server's default is one). The sender is a separate
 process, as an evolution would be (so its serialisation does not compete for this process's
 GIL); it sends as fast as the server accepts: it keeps at most the run's queue depth of slices unprocessed (so none is
 skipped) and the server never waits for input. Throughput is slices processed per second of
@@ -77,7 +78,8 @@ class ArchiveClock:
 class ServerThread:
     """A Penumbra server with the executor of ``engine``, on an event loop thread of its own."""
 
-    def __init__(self, archive_root: Path, engine: EngineSettings) -> None:
+    def __init__(self, archive_root: Path, engine: EngineSettings, slices_in_flight: int = 2) -> None:
+        self.slices_in_flight = slices_in_flight
         self.loop = asyncio.new_event_loop()
         self._thread = threading.Thread(target=self.loop.run_forever, name="bench-server", daemon=True)
         self._thread.start()
@@ -86,7 +88,7 @@ class ServerThread:
 
     async def _create(self, archive_root: Path):
         server = await create_server("127.0.0.1:0", archive_root=archive_root, executor=self.executor,
-                                     options=ServerOptions(restore_runs=False))
+                                     options=ServerOptions(restore_runs=False, slices_in_flight=self.slices_in_flight))
         await server.start()
         return server
 
@@ -159,9 +161,12 @@ def main(argv=None) -> int:
     parser.add_argument("--slices", type=int, default=None, help="send only the first N slices (default: all)")
     parser.add_argument("--rounds", type=int, default=2,
                         help="times each configuration runs, interleaved (default 2); figures pool all rounds")
+    parser.add_argument("--slices-in-flight", type=int, default=2,
+                        help="slices of the run searched at once (ServerOptions.slices_in_flight; default 2)")
     args = parser.parse_args(argv)
     scenario = DemoScenario()
     count = scenario.slice_count if args.slices is None else min(args.slices, scenario.slice_count)
+    print(f"slices in flight per run: {args.slices_in_flight}", file=sys.stderr)
     print(f"{count} slices of the demo sequence, {ps.build_slice(**slice_arrays(scenario, 0)).nbytes / 2**20:.1f} MiB "
           f"each, lmax {DEFAULT_LMAX}", file=sys.stderr)
     clock = ArchiveClock()
@@ -180,7 +185,7 @@ def main(argv=None) -> int:
         for round_ in range(args.rounds):
             for name, engine in configurations.items():
                 root = Path(tmp) / f"{name.replace(' ', '-')}-{round_}"
-                server = ServerThread(root, engine)
+                server = ServerThread(root, engine, args.slices_in_flight)
                 try:
                     run_id, took = run_sender(server.server.address, count, name)
                 finally:

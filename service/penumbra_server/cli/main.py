@@ -103,6 +103,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="write the bound HOST:PORT to this file once serving (for scripts)")
     p.add_argument("--grace", type=_positive_float, default=None,
                    help="seconds in-flight calls get to finish on shutdown (default 5)")
+    p.add_argument("--slices-in-flight", type=_positive_int, default=None, metavar="N",
+                   help="slices of one run searched at once (default 1; 2 keeps the workers busy when one "
+                        "run's slices come faster than a slice is processed; results stay in iteration order)")
     p.add_argument("--no-common-horizon", dest="common_horizon", action="store_const", const=False, default=None,
                    help="look for each expected body only, never for a common surface of a pair")
     p.add_argument("--tls-cert", type=Path, default=None, help="server certificate (PEM); enables TLS")
@@ -210,7 +213,7 @@ def serve_config_from_args(args):
         "dask": {"scheduler": args.dask_scheduler, "local_workers": args.dask_local_workers},
         "tls": {"certificate": args.tls_cert, "private_key": args.tls_key, "client_ca": args.tls_client_ca},
         "auth": {"token_files": args.token_file},
-        "options": {"common_horizon": args.common_horizon},
+        "options": {"common_horizon": args.common_horizon, "slices_in_flight": args.slices_in_flight},
     }
     if args.dask_scheduler is not None and args.dask_local_workers is not None:
         raise ValueError("--dask-scheduler, --dask-local-workers: give one of them, not both")

@@ -77,6 +77,12 @@ class ServerOptions:
     restore_runs: bool = True
     #: Look for the common horizon of two-body runs (the default planner; `serve --no-common-horizon`).
     common_horizon: bool = True
+    #: Slices of one run searched at once: the finds of slice n+1 start from the forecast while
+    #: slice n is still searched (server/pipeline.py); results are applied, archived and
+    #: announced in iteration order. 1 (default): one slice at a time, each seeded from the
+    #: one before, so a run's results do not depend on how fast the workers are; 2 or more
+    #: keeps every worker busy when one run's slices come faster than one slice's finds.
+    slices_in_flight: int = 1
     #: Per run, the planner of the surfaces to look for; None: the default
     #: :class:`~penumbra_server.server.planning.SteeringPlanner` (forecast seeds, common horizon).
     #: A planner with an ``attach(steering)`` method is handed the run's tracking state.
@@ -171,6 +177,8 @@ async def create_server(
     token_book = token_book or TokenBook()
     check_exposure(host, tls=server_credentials is not None, tokens=bool(token_book), trusted_network=trusted_network)
     options = options or ServerOptions()
+    if options.slices_in_flight < 1:
+        raise ValueError(f"slices_in_flight: expected at least 1 slice of a run in flight, got {options.slices_in_flight}")
     archive_root = Path(archive_root)
     archive_root.mkdir(parents=True, exist_ok=True)
     owns_executor = executor is None
@@ -186,6 +194,7 @@ async def create_server(
                 subscriber_queue_size=options.subscriber_queue_size,
                 interpolation_order=options.interpolation_order,
                 common_horizon=options.common_horizon,
+                slices_in_flight=options.slices_in_flight,
             ),
             planner_factory=options.planner_factory,
             slice_observer_factory=options.slice_observer_factory,

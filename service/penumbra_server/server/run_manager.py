@@ -15,6 +15,7 @@ from penumbra_shim._wire import horizons_pb2 as pb
 
 from ..archive import ArchiveWriter, archive_path, list_archives
 from ._spec import RunSettings
+from .dispatch import FairDispatcher
 from .errors import ServiceError
 from .executors import FinderExecutor
 from .formation import FormationWatch
@@ -51,10 +52,13 @@ class RunManager:
                  slice_observer_factory: Callable[[RunSettings], Sequence[Callable]] | None = None) -> None:
         self.archive_root = Path(archive_root)
         self.executor = executor
+        #: Shares the executor among the runs: each run's jobs wait for its turn (dispatch.py).
+        self.dispatcher = FairDispatcher(executor)
         self.options = options
         self.planner_factory = planner_factory or steering_planner_factory
         self.slice_observer_factory = slice_observer_factory
         self.archive_thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix="penumbra-archive")
+        self._run_threads: list[ThreadPoolExecutor] = []
         self.runs: dict[str, RunRecord] = {}
         self._request_ids: dict[str, str] = {}
         self._open_lock = asyncio.Lock()
@@ -101,9 +105,14 @@ class RunManager:
         return run
 
     def _make_record(self, run_id, settings, writer, created, *, next_seq: int) -> RunRecord:
+        # Each run writes its archive on a thread of its own (started at its first write): the
+        # commits of many concurrent runs overlap their disk waits, and one run's commit never
+        # waits behind another's. A run's writes stay in order on its one thread.
+        archive_thread = ThreadPoolExecutor(max_workers=1, thread_name_prefix=f"penumbra-archive-{run_id}")
+        self._run_threads.append(archive_thread)
         run = RunRecord(
-            run_id=run_id, settings=settings, writer=writer, executor=self.executor,
-            archive_thread=self.archive_thread, options=self.options,
+            run_id=run_id, settings=settings, writer=writer, executor=self.dispatcher.for_run(run_id),
+            archive_thread=archive_thread, options=self.options,
             planner=self.planner_factory(settings), created_unix_s=created, next_seq=next_seq,
             spool=RunSpool(spool_path(self.archive_root, run_id)),
         )
@@ -184,4 +193,7 @@ class RunManager:
 
     async def shutdown(self) -> None:
         await asyncio.gather(*(run.shutdown() for run in self.runs.values()), return_exceptions=True)
+        await self.dispatcher.close()
+        for thread in self._run_threads:
+            thread.shutdown(wait=True)
         self.archive_thread.shutdown(wait=True)

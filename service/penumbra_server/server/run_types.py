@@ -18,6 +18,9 @@ class ManagerOptions:
     subscriber_queue_size: int = 1024
     interpolation_order: int = 4
     common_horizon: bool = True
+    #: Slices of one run whose finds may run at once (the next slice's finds start from the
+    #: forecast while earlier ones are still searched); results are applied in iteration order.
+    slices_in_flight: int = 1
 
 
 @dataclass(frozen=True, eq=False)

@@ -9,7 +9,9 @@ archive commit on the archive thread, and only then appends the events to the lo
 announced as archived only after it is written). A processed slice hands all its events (surfaces,
 tracking notices, slice_processed) to the committer at once: one archive commit per slice; the
 processor records the outcomes in the decision state (surface states, steering) at once and
-goes on to the next slice while the commit is written (write-behind, a bounded lag). Made and
+goes on to the next slice while the commit is written (write-behind, a bounded lag). With
+``slices_in_flight`` above 1 the finds of later slices start before earlier ones are applied
+(pipeline.py); outcomes are still applied in iteration order. Made and
 restored by run_manager.py and restore.py; parts.py and link_records.py hang off it.
 """
 
@@ -39,6 +41,7 @@ from .executors import FinderExecutor
 from .jobs import SurfaceOutcome
 from .link_records import LinkRecords
 from .parts import PartAssembly
+from .pipeline import InFlight, drive_pipeline, may_overlap
 from .run_types import ManagerOptions, QueuedSlice
 from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, merge_batch, notice_emission, parts_missing_emission, skip_emission, slice_emission,
                          state_emission, surface_emission)
@@ -142,6 +145,10 @@ class RunRecord:
         self._queue_changed = asyncio.Event()
         self._closing = False
         self._closed = asyncio.Event()
+        #: Slices whose finds were started and whose outcomes are not yet applied, oldest first.
+        self._flight: deque[InFlight] = deque()
+        #: Surfaces a plan added whose archive group is being created.
+        self._adding: dict[str, asyncio.Future] = {}
         self._pending: list[Emission] = []
         #: Commits of processed slices not yet written (write-behind), oldest first.
         self._behind: deque[asyncio.Future] = deque()
@@ -320,32 +327,63 @@ class RunRecord:
     # -- processing ---------------------------------------------------------------------------
 
     async def _processor(self) -> None:
-        while True:
-            while not self._queue:
-                if self._closing:
-                    return
-                self._queue_changed.clear()
-                await self._queue_changed.wait()
-            item = self._queue.popleft()
-            try:
-                await self._process(item)
-            except asyncio.CancelledError:
-                raise
-            except Exception as exc:  # a bug in planning must not stop the run; the slice is marked failed
-                log.exception("run %s: processing iteration %d failed", self.run_id, item.iteration)
-                await self._emit(slice_emission(self, item, attempted=0, found=0, started=time.time(),
-                                                error=f"{type(exc).__name__}: {exc}"))
+        await drive_pipeline(self._queue, self._queue_changed, self._flight,
+                             depth=max(1, self.options.slices_in_flight), closing=lambda: self._closing,
+                             launch=self._launch, apply=self._apply_or_fail)
 
-    async def _process(self, item: QueuedSlice) -> None:
+    def _launch(self, item: QueuedSlice, overlapping: bool) -> InFlight | None:
+        """Plan ``item`` from what the decision state knows now (slices still in flight not yet
+        applied: their surfaces are seeded from the forecast) and start its finds; None when
+        ``overlapping`` and a plan needs those slices' outcomes (:func:`~.pipeline.may_overlap`)."""
         started = time.time()
-        plans = list(self.planner.plan(self.settings, self.tracks, item.slice_))
-        plans += inner_common_plans(self.settings, plans, self.steering.common_label, self.states, self.displaced)
+        try:
+            plans = list(self.planner.plan(self.settings, self.tracks, item.slice_))
+            plans += inner_common_plans(self.settings, plans, self.steering.common_label, self.states, self.displaced)
+        except Exception as exc:  # reported in order, when this slice's turn comes
+            if overlapping:
+                return None
+            failed = asyncio.get_running_loop().create_future()
+            failed.set_exception(exc)
+            return InFlight(item, started, [], failed)
+        if overlapping and not all(may_overlap(plan) for plan in plans):
+            return None
+        additions = []
         for plan in plans:
             if plan.label not in self.surface_labels:  # a surface the planner added (e.g. a common horizon)
-                await self._in_archive_thread(self.writer.add_surface, plan.label, lmax=plan.lmax or self.settings.lmax)
-                self.surface_labels.append(plan.label)
-                self.states.setdefault(plan.label, SurfaceState(plan.label))
-        outcomes = await search_in_order(plans, lambda plan: self._attempt(plan, item), self.displaced)
+                adding = self._adding.get(plan.label)
+                if adding is None:
+                    adding = self._adding[plan.label] = asyncio.ensure_future(self._add_surface(plan))
+                additions.append(adding)
+        return InFlight(item, started, plans, asyncio.ensure_future(self._search(item, plans, additions)))
+
+    async def _add_surface(self, plan: SurfacePlan) -> None:
+        try:
+            await self._in_archive_thread(self.writer.add_surface, plan.label, lmax=plan.lmax or self.settings.lmax)
+            self.surface_labels.append(plan.label)
+            self.states.setdefault(plan.label, SurfaceState(plan.label))
+        finally:
+            self._adding.pop(plan.label, None)
+
+    async def _search(self, item: QueuedSlice, plans: list[SurfacePlan], additions: list) -> list[SurfaceOutcome]:
+        for adding in additions:  # its rows need the surface's archive group
+            await adding
+        # Searches inside a surface of this slice (the inner common MOTS) wait for that surface.
+        return await search_in_order(plans, lambda plan: self._attempt(plan, item), self.displaced)
+
+    async def _apply_or_fail(self, flight: InFlight) -> None:
+        try:
+            await self._apply(flight)
+        except asyncio.CancelledError:
+            raise
+        except Exception as exc:  # a bug in planning must not stop the run; the slice is marked failed
+            log.exception("run %s: processing iteration %d failed", self.run_id, flight.item.iteration)
+            await self._emit(slice_emission(self, flight.item, attempted=0, found=0, started=flight.started,
+                                            error=f"{type(exc).__name__}: {exc}"))
+
+    async def _apply(self, flight: InFlight) -> None:
+        """Record the outcomes of the oldest slice in flight (iteration order), observe, commit."""
+        item, started, plans = flight.item, flight.started, flight.plans
+        outcomes = await flight.finds
         # The decision state (what the next plan and the steering see) takes the outcomes now;
         # what GetLatestSurfaces shows moves only when the slice's commit is written.
         surface_units = []
@@ -505,6 +543,8 @@ class RunRecord:
             await self._processor_task
         except (asyncio.CancelledError, Exception):
             pass
+        for flight in self._flight:  # finds of slices not applied: their outcomes would be lost anyway
+            flight.finds.cancel()
         # Commits already pending (e.g. results of finished finds) are written before leaving.
         while self._pending and not self.failed_reason:
             await asyncio.sleep(0.01)

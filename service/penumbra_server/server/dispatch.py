@@ -1,0 +1,138 @@
+"""Fair sharing of one finder executor among the runs of a server.
+
+Each run hands its finder jobs to its own :class:`RunDispatch` (the run's view of the executor);
+the :class:`FairDispatcher` keeps them in one queue per run and passes at most ``slots`` jobs to
+the executor at once (default: its worker count). A free slot goes to the runs in turn
+(round-robin over the runs with jobs waiting, one job per turn), so a run with a long backlog,
+or with several slices in flight, never holds back another run's job by more than one job per
+run: the executor's own queue is first come, first served and would.
+
+Everything here runs on the server's event loop thread.
+"""
+
+from __future__ import annotations
+
+import asyncio
+from collections import deque
+
+from .executors import FinderExecutor
+from .jobs import SurfaceJob, SurfaceOutcome
+
+__all__ = ["FairDispatcher", "RunDispatch"]
+
+
+class FairDispatcher:
+    """Round-robin among runs in front of ``executor`` (module docstring).
+
+    Attributes:
+        executor: where the jobs run.
+        slots: jobs at the executor at once (at least 1).
+        dispatched: jobs handed to the executor so far, in order, as (run id, job label,
+            iteration) — what the jobs' owners can be checked against.
+    """
+
+    def __init__(self, executor: FinderExecutor, *, slots: int | None = None) -> None:
+        self.executor = executor
+        self.slots = int(slots if slots is not None else max(1, getattr(executor, "workers", 1)))
+        if self.slots < 1:
+            raise ValueError(f"slots: expected at least 1, got {self.slots}")
+        self._waiting: dict[str, deque[tuple[SurfaceJob, asyncio.Future]]] = {}
+        #: Runs with jobs waiting, in the order they get their next turn.
+        self._turns: deque[str] = deque()
+        self._running: set[asyncio.Task] = set()
+        self.dispatched: list[tuple[str, str, int]] = []
+
+    @property
+    def workers(self) -> int:
+        return self.executor.workers
+
+    def for_run(self, run_id: str) -> "RunDispatch":
+        """The executor as one run sees it."""
+        return RunDispatch(self, run_id)
+
+    def waiting(self, run_id: str | None = None) -> int:
+        """Jobs not yet at the executor (of ``run_id``, or of all runs)."""
+        if run_id is not None:
+            return sum(1 for _, future in self._waiting.get(run_id, ()) if not future.done())
+        return sum(self.waiting(r) for r in self._waiting)
+
+    @property
+    def running(self) -> int:
+        """Jobs at the executor now."""
+        return len(self._running)
+
+    async def run(self, run_id: str, job: SurfaceJob) -> SurfaceOutcome:
+        """Queue ``job`` for ``run_id`` and wait for its outcome (cancelling the wait withdraws a
+        job that has not reached the executor yet)."""
+        future = asyncio.get_running_loop().create_future()
+        queue = self._waiting.setdefault(run_id, deque())
+        if not queue:
+            self._turns.append(run_id)
+        queue.append((job, future))
+        self._dispatch()
+        return await future
+
+    def _dispatch(self) -> None:
+        while len(self._running) < self.slots and self._turns:
+            run_id = self._turns.popleft()
+            queue = self._waiting[run_id]
+            job, future = queue.popleft()
+            if queue:
+                self._turns.append(run_id)  # its next job waits for the other runs' turns
+            else:
+                del self._waiting[run_id]
+            if future.done():  # withdrawn (the run stopped) before its turn
+                continue
+            self.dispatched.append((run_id, job.label, int(job.data.iteration)))
+            task = asyncio.ensure_future(self._execute(job, future))
+            self._running.add(task)
+            task.add_done_callback(self._finished)
+
+    async def _execute(self, job: SurfaceJob, future: asyncio.Future) -> None:
+        try:
+            outcome = await self.executor.run(job)
+        except asyncio.CancelledError:
+            if not future.done():
+                future.cancel()
+            raise
+        except Exception as exc:  # the executor's own failure: the run's search sees it
+            if not future.done():
+                future.set_exception(exc)
+            return
+        if not future.done():
+            future.set_result(outcome)
+
+    def _finished(self, task: asyncio.Task) -> None:
+        self._running.discard(task)
+        self._dispatch()
+
+    async def close(self) -> None:
+        """Withdraw waiting jobs and stop waiting for running ones (the executor is not closed)."""
+        for queue in self._waiting.values():
+            for _, future in queue:
+                future.cancel()
+        self._waiting.clear()
+        self._turns.clear()
+        running = list(self._running)
+        for task in running:
+            task.cancel()
+        await asyncio.gather(*running, return_exceptions=True)
+
+
+class RunDispatch:
+    """One run's view of the shared executor: a :class:`FinderExecutor` whose jobs wait for the
+    run's turn at the :class:`FairDispatcher`."""
+
+    def __init__(self, dispatcher: FairDispatcher, run_id: str) -> None:
+        self.dispatcher = dispatcher
+        self.run_id = run_id
+
+    @property
+    def workers(self) -> int:
+        return self.dispatcher.workers
+
+    async def run(self, job: SurfaceJob) -> SurfaceOutcome:
+        return await self.dispatcher.run(self.run_id, job)
+
+    async def close(self) -> None:
+        """The shared executor outlives every run: nothing to release."""

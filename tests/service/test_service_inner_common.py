@@ -100,12 +100,22 @@ def test_inner_common_mots_appears_with_the_common_horizon_and_is_followed(clien
     # the two separate as d moves below d_c
     gaps = [inner[i].area - reports[i, "common"].area for i in common]
     assert gaps[-1] > gaps[0]
+    # near formation the outer common MOTS is stable and the inner one unstable (Andersson, Mars
+    # & Simon, PRL 95, 111102 (2005), from memory), both eigenvalues moving away from zero as
+    # the two separate (tests/numerics/test_inner_mots.py checks the values against the fold)
+    for i in common:
+        print(f"d = {SEPARATIONS[i]:.2f} M: stability outer {reports[i, 'common'].stability_eigenvalue:+.5f}, "
+              f"inner {inner[i].stability_eigenvalue:+.5f} +- {inner[i].stability_eigenvalue_error:.1e} / M^2")
+        assert reports[i, "common"].stability_eigenvalue > 0 > inner[i].stability_eigenvalue
+        assert abs(inner[i].stability_eigenvalue) > 10 * inner[i].stability_eigenvalue_error
+    assert inner[common[-1]].stability_eigenvalue < inner[common[0]].stability_eigenvalue
 
     view = open_archive(archive_root, run.run_id)
     assert "common_inner" in view.surface_labels
     rows = view.surface("common_inner")
     assert rows["found"].tolist() == [inner[i].found for i in sorted(inner)]
     assert set(rows["method"][rows["found"]].tolist()) == {METHOD_CODES["displacement"]}
+    assert rows["stability_eigenvalue"][rows["found"]].tolist() == [inner[i].stability_eigenvalue for i in common]
 
 
 @pytest.mark.slow

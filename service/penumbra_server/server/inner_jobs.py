@@ -5,7 +5,9 @@ horizon. Plain function of the job, like :func:`.jobs.run_surface_job`.
 The outcome carries the MOTS in the displacement representation (``SurfaceOutcome.displaced``)
 and its star-shaped form when it has one (else NaN coefficients): the inner common MOTS soon
 stops being star-shaped. Its quantities come from the displacement form: area, irreducible
-mass, area-weighted coordinate centroid and coordinate radii about it; the others stay NaN.
+mass, area-weighted coordinate centroid, coordinate radii about it and the principal eigenvalue
+of the stability operator (with the same error estimate as every other surface's: the change
+when psi's degree drops by 2); the others stay NaN.
 """
 
 from __future__ import annotations
@@ -16,10 +18,11 @@ import numpy as np
 
 from ..numerics.displaced import DisplacedSurface, coordinate_extent, reference_from_star
 from ..numerics.displaced_finder import DisplacedSettings
+from ..numerics.displaced_stability import displaced_stability_spectrum
 from ..numerics.inner_mots import find_inner_common, follow_inner
 from ..numerics.sources import as_tracked_source
 from ..numerics.surfaces import coefficient_count
-from .jobs import REASON_FOUND, REASON_NOT_CONVERGED, SurfaceJob, SurfaceOutcome
+from .jobs import REASON_FOUND, REASON_NOT_CONVERGED, STABILITY_LMAX_DROP, SurfaceJob, SurfaceOutcome
 
 __all__ = ["run_inner_job"]
 
@@ -50,12 +53,30 @@ def run_inner_job(job: SurfaceJob, start: float) -> SurfaceOutcome:
     quantities = {"area": result.area, "irreducible_mass": float(np.sqrt(result.area / (16 * np.pi))),
                   "centroid": list(extent.centroid), "radius_min": extent.radius_min,
                   "radius_mean": extent.radius_mean, "radius_max": extent.radius_max}
+    stability, note = _stability(result.displaced, source, job.interpolation_order)
+    quantities.update(stability)
     if result.star is not None:
         centre, coefficients = np.array(result.star.centre), np.array(result.star.coefficients)
     else:
         centre, coefficients = np.array(extent.centroid), np.full(coefficient_count(job.lmax), np.nan)
     return SurfaceOutcome(label=job.label, found=True, reason=REASON_FOUND, status=result.status,
-                          message=f"{result.message} (from {guess})", method="displacement", centre=centre,
+                          message=f"{result.message} (from {guess}){note}", method="displacement", centre=centre,
                           lmax=job.lmax, coefficients=coefficients, quantities=quantities,
                           residual_max=float(result.residual_max), iterations=result.attempts,
                           wall_time_s=time.perf_counter() - start, guess=guess, displaced=result.displaced)
+
+
+def _stability(surface: DisplacedSurface, source, order: int) -> tuple[dict, str]:
+    """Principal stability eigenvalue (1/M^2) of the displaced surface and its error estimate;
+    NaN and a note (appended to the message) when it cannot be computed: the surface stays found."""
+    out = {"stability_eigenvalue": float("nan"), "stability_eigenvalue_error": float("nan")}
+    try:
+        value = displaced_stability_spectrum(surface, source, order=order).principal_eigenvalue
+        out["stability_eigenvalue"] = value
+        lower = surface.lmax - STABILITY_LMAX_DROP
+        if lower >= 1:
+            coarse = displaced_stability_spectrum(surface, source, order=order, lmax=lower).principal_eigenvalue
+            out["stability_eigenvalue_error"] = abs(value - coarse)
+    except Exception as exc:  # an eigenvalue that cannot be made must not lose the surface
+        return out, f"; stability not computed: {type(exc).__name__}: {exc}"
+    return out, ""

@@ -69,6 +69,9 @@ class SurfacePlan:
             for those searches too: their iterates run away when the surface does not exist).
         must_enclose: points (3,) a found surface must hold inside (a common horizon must
             enclose both bodies); a surface that does not is reported not found.
+        may_not_exist: the surface may not exist yet (a common horizon before it formed): a
+            search whose starting surfaces the data covers but that finds nothing reports "no
+            trapped surface here yet" (SurfaceJob.may_not_exist).
     """
 
     label: str
@@ -87,6 +90,7 @@ class SurfacePlan:
     fallback_to_flow: bool = True
     retry_wider: bool = True
     must_enclose: tuple[np.ndarray, ...] = ()
+    may_not_exist: bool = False
 
     def points_outside(self, surface: Surface) -> list[np.ndarray]:
         """The ``must_enclose`` points that lie on or outside ``surface``."""

@@ -41,13 +41,21 @@ class Body:
 @dataclass(frozen=True)
 class FinderOptions:
     """Finder settings: highest harmonic degree, tolerance on max |Theta| (1/M), iteration cap,
-    and the degree of a pair's common surface (0: the server's default max(16, lmax); a freshly
-    formed common horizon needs more than the individual ones)."""
+    the degree of a pair's common surface (0: the server's default max(16, lmax); a freshly
+    formed common horizon needs more than the individual ones), and the highest degree the
+    finder may raise a surface to on its own when it is not resolved (``lmax_cap``; 0: the
+    server's default max(24, lmax_common); at most 32)."""
 
     lmax: int = 8
     tolerance: float = 1e-8
     max_iterations: int = 40
     lmax_common: int = 0
+    lmax_cap: int = 0
+
+    def __post_init__(self) -> None:
+        cap = self.lmax_cap
+        if isinstance(cap, bool) or not isinstance(cap, int) or not (cap == 0 or 2 <= cap <= 32):
+            raise ValueError(f"finder.lmax_cap: expected 0 (the server's default) or an integer 2..32, got {cap!r}")
 
 
 @dataclass(frozen=True)
@@ -195,7 +203,8 @@ class RunSpec:
                 for b in self.bodies
             ],
             finder=pb.FinderSettings(lmax=self.finder.lmax, tolerance_per_m=self.finder.tolerance,
-                                     max_iterations=self.finder.max_iterations, lmax_common=self.finder.lmax_common),
+                                     max_iterations=self.finder.max_iterations, lmax_common=self.finder.lmax_common,
+                                     lmax_cap=self.finder.lmax_cap),
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.backlog.queue_depth),
             refinement=self.refinement.to_wire(),
             part_deadline_s=float(self.part_deadline_s),
@@ -214,7 +223,8 @@ class RunSpec:
             name=spec.display_name,
             mass_scale_solar_masses=spec.mass_scale_solar_masses,
             finder=FinderOptions(lmax=spec.finder.lmax, tolerance=spec.finder.tolerance_per_m,
-                                 max_iterations=spec.finder.max_iterations, lmax_common=spec.finder.lmax_common),
+                                 max_iterations=spec.finder.max_iterations, lmax_common=spec.finder.lmax_common,
+                                 lmax_cap=spec.finder.lmax_cap),
             backlog=BacklogOptions(queue_depth=spec.backlog.queue_depth or 4),
             refinement=RefinementOptions.from_wire(spec.refinement),
             part_deadline_s=spec.part_deadline_s,

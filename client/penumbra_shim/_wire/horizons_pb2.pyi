@@ -55,16 +55,18 @@ class ExpectedBody(_message.Message):
     def __init__(self, label: _Optional[str] = ..., approximate_position_m: _Optional[_Union[Vector3, _Mapping]] = ..., approximate_mass_m: _Optional[float] = ...) -> None: ...
 
 class FinderSettings(_message.Message):
-    __slots__ = ("lmax", "tolerance_per_m", "max_iterations", "lmax_common")
+    __slots__ = ("lmax", "tolerance_per_m", "max_iterations", "lmax_common", "lmax_cap")
     LMAX_FIELD_NUMBER: _ClassVar[int]
     TOLERANCE_PER_M_FIELD_NUMBER: _ClassVar[int]
     MAX_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
     LMAX_COMMON_FIELD_NUMBER: _ClassVar[int]
+    LMAX_CAP_FIELD_NUMBER: _ClassVar[int]
     lmax: int
     tolerance_per_m: float
     max_iterations: int
     lmax_common: int
-    def __init__(self, lmax: _Optional[int] = ..., tolerance_per_m: _Optional[float] = ..., max_iterations: _Optional[int] = ..., lmax_common: _Optional[int] = ...) -> None: ...
+    lmax_cap: int
+    def __init__(self, lmax: _Optional[int] = ..., tolerance_per_m: _Optional[float] = ..., max_iterations: _Optional[int] = ..., lmax_common: _Optional[int] = ..., lmax_cap: _Optional[int] = ...) -> None: ...
 
 class BacklogPolicy(_message.Message):
     __slots__ = ("policy", "queue_depth")

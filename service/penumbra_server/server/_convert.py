@@ -31,7 +31,8 @@ _NAN = float("nan")
 _METHOD_NAMES = {code: name for name, code in METHOD_CODES.items()}
 _REASON_TEXT = {
     pb.SurfaceNotFound.REASON_NOT_CONVERGED: "the solver did not converge",
-    pb.SurfaceNotFound.REASON_NO_CANDIDATE: "no sign change of the mean expansion in the searched radii",
+    pb.SurfaceNotFound.REASON_NO_CANDIDATE: ("no candidate (no trapped surface here yet): no sign change of the mean "
+                                             "expansion in the searched radii, or no MOTS from the starting surfaces"),
     pb.SurfaceNotFound.REASON_OUTSIDE_DATA: "the surface needs data the slice does not provide",
     pb.SurfaceNotFound.REASON_WORKER_FAILED: "the worker failed",
     pb.SurfaceNotFound.REASON_NOT_SEARCHED: "not searched: lost inside the common horizon after the merger",

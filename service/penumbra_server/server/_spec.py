@@ -40,6 +40,10 @@ DEFAULT_LMAX = 8
 #: A freshly formed common horizon needs a higher degree than the individual ones (common
 #: practice; the demo pair's common surface at d = 0.735 M is accepted from l_max 16 on).
 DEFAULT_LMAX_COMMON = 16
+#: Default cap of the finder's own l_max raising (spec.finder.lmax_cap 0): max(this, lmax_common).
+#: 24 resolves a common horizon formed at the critical separation of Brill-Lindquist pairs with
+#: mass ratios up to 4 about its neck (notes/common.md); beyond that the cost grows as l_max^4.
+DEFAULT_LMAX_CAP = 24
 DEFAULT_TOLERANCE = 1e-8  # 1/M; common practice is 1e-8 to 1e-10 (docs/references.md item 15)
 DEFAULT_MAX_ITERATIONS = 40
 DEFAULT_QUEUE_DEPTH = 4
@@ -229,6 +233,9 @@ class RunSettings:
     #: Highest degree of the common surface of a pair (0: the run's lmax; from_wire fills in
     #: max(DEFAULT_LMAX_COMMON, lmax)).
     lmax_common: int = 0
+    #: Highest degree the finder may raise any surface to when it is not resolved (0: no raising,
+    #: as archives written before the field; from_wire fills in max(DEFAULT_LMAX_CAP, lmax_common)).
+    lmax_cap: int = 0
     #: Policy of the refinement guidance (tracking.guidance.RefinementPolicy).
     refinement: RefinementPolicy = DEFAULT_REFINEMENT
     #: Seconds from the first part of a slice sent in parts until the server processes what arrived.
@@ -263,6 +270,10 @@ class RunSettings:
     def common_lmax(self) -> int:
         """Degree of the common surface's expansion."""
         return int(self.lmax_common or self.lmax)
+
+    def lmax_cap_for(self, lmax: int) -> int:
+        """The finder's l_max cap for a surface of degree ``lmax`` (never below it)."""
+        return max(int(lmax), int(self.lmax_cap))
 
     # -- wire ---------------------------------------------------------------------------------
 
@@ -302,6 +313,11 @@ class RunSettings:
         if not 2 <= lmax_common <= MAX_LMAX:
             raise ServiceError.invalid(f"spec.finder.lmax_common: expected 2..{MAX_LMAX} (0 for the default "
                                        f"max({DEFAULT_LMAX_COMMON}, lmax)), got {lmax_common}")
+        lmax_cap = finder.lmax_cap or max(DEFAULT_LMAX_CAP, lmax_common)
+        if not max(lmax, lmax_common) <= lmax_cap <= MAX_LMAX:
+            raise ServiceError.invalid(f"spec.finder.lmax_cap: expected {max(lmax, lmax_common)}..{MAX_LMAX} (at least "
+                                       f"lmax and lmax_common; 0 for the default max({DEFAULT_LMAX_CAP}, lmax_common)), "
+                                       f"got {lmax_cap}")
         max_iterations = finder.max_iterations or DEFAULT_MAX_ITERATIONS
         if not 1 <= max_iterations <= 1000:
             raise ServiceError.invalid(
@@ -331,6 +347,7 @@ class RunSettings:
             max_iterations=int(max_iterations),
             queue_depth=int(depth),
             lmax_common=int(lmax_common),
+            lmax_cap=int(lmax_cap),
             refinement=refinement_from_wire(spec.refinement),
             part_deadline_s=float(part_deadline),
             symmetry=symmetry_from_wire(spec.symmetry),
@@ -354,7 +371,7 @@ class RunSettings:
                 for b in self.bodies
             ],
             finder=pb.FinderSettings(lmax=self.lmax, tolerance_per_m=self.tolerance, max_iterations=self.max_iterations,
-                                     lmax_common=self.common_lmax),
+                                     lmax_common=self.common_lmax, lmax_cap=self.lmax_cap),
             backlog=pb.BacklogPolicy(policy=pb.BacklogPolicy.POLICY_KEEP_NEWEST, queue_depth=self.queue_depth),
             refinement=refinement_to_wire(self.refinement),
             part_deadline_s=self.part_deadline_s,
@@ -375,7 +392,7 @@ class RunSettings:
             "mass_scale_solar_masses": self.mass_scale_solar_masses,
             "bodies": [{"label": b.label, "position": list(b.position), "mass": b.mass} for b in self.bodies],
             "finder": {"lmax": self.lmax, "tolerance": self.tolerance, "max_iterations": self.max_iterations,
-                       "lmax_common": self.common_lmax},
+                       "lmax_common": self.common_lmax, "lmax_cap": self.lmax_cap},
             "backlog": {"queue_depth": self.queue_depth, "policy": self.backlog_policy},
             "refinement": _refinement_to_dict(self.refinement),
             "part_deadline_s": self.part_deadline_s,
@@ -400,6 +417,8 @@ class RunSettings:
             queue_depth=int(data["backlog"]["queue_depth"]),
             # Archives written before lmax_common existed kept their common surface at lmax.
             lmax_common=int(data["finder"].get("lmax_common", 0)),
+            # Archives written before lmax_cap existed: no raising (as their finds ran).
+            lmax_cap=int(data["finder"].get("lmax_cap", 0)),
             backlog_policy=data["backlog"].get("policy", "keep_newest"),
             refinement=_refinement_from_dict(data.get("refinement")),
             part_deadline_s=float(data.get("part_deadline_s", DEFAULT_PART_DEADLINE_S)),

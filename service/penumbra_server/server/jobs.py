@@ -93,6 +93,10 @@ class SurfaceJob:
         label: the surface's label.
         data: the cropped slice (sub-box around the surface).
         lmax, tolerance, max_iterations, interpolation_order: finder settings.
+        lmax_cap: highest degree the finder may raise the surface to when the residual between
+            the nodes says it is not resolved (None: ``lmax``, no raising). A surface solved at a
+            raised degree is measured at it and reported truncated to ``lmax`` (the archive
+            keeps each surface at one degree); the message says so.
         seed: a starting surface (e.g. the previous result, moved to the forecast position);
             None when nothing is known yet.
         extra_seeds: further starting surfaces tried, in order, when the seed does not
@@ -103,6 +107,13 @@ class SurfaceJob:
             (r_min, r_max), units of M.
         max_candidates: scan candidates tried, outermost first.
         fallback_to_flow: on a failed Newton solve run the fast flow (finder option).
+        may_not_exist: the surface may not exist yet in this slice (a common horizon before it
+            formed): when no starting surface leads to a MOTS although the data covered every
+            one of them, the outcome is "no candidate" with a message starting
+            :data:`~penumbra_server.numerics.guesses.NO_TRAPPED_SURFACE_YET`, not "not
+            converged"; iterates that wander off the data on the way count as that too (the
+            surface they chased does not exist). A starting surface the data does not cover is
+            still "outside data".
     """
 
     label: str
@@ -123,6 +134,8 @@ class SurfaceJob:
     #: The inner surface's previous solution in the displacement representation (preferred
     #: over ``seed``, which is only its star-shaped form).
     displaced_seed: object | None = None
+    lmax_cap: int | None = None
+    may_not_exist: bool = False
 
 
 @dataclass(frozen=True, eq=False)
@@ -315,11 +328,12 @@ def run_surface_job(job: SurfaceJob) -> SurfaceOutcome:
 
 def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
     from ..numerics.finder import NEEDS_EXCISED_DATA, OUTSIDE_DATA, FinderSettings, find_surface
-    from ..numerics.guesses import scan_spheres
+    from ..numerics.guesses import NO_TRAPPED_SURFACE_YET, sphere_scan_profile
     from ..numerics.measures import measure_surface
 
     settings = FinderSettings(
         lmax=job.lmax,
+        lmax_cap=None if job.lmax_cap is None else max(int(job.lmax_cap), job.lmax),
         tolerance=job.tolerance,
         max_iterations=job.max_iterations,
         interpolation_order=job.interpolation_order,
@@ -332,6 +346,8 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
     last = None
     total_iterations = 0
     tried_scan = False
+    scan_message = ""
+    uncovered_starts = 0  # starting surfaces the data does not cover
     index = 0
     while True:
         if index == len(attempts):
@@ -339,7 +355,8 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
                 break
             tried_scan = True
             r_min, r_max = job.scan_radii
-            radii = scan_spheres(job.data, job.scan_centre, r_min, r_max, order=job.interpolation_order)
+            scan = sphere_scan_profile(job.data, job.scan_centre, r_min, r_max, order=job.interpolation_order)
+            radii, scan_message = scan.candidates, scan.message
             attempts.extend(("scan", Surface.sphere(job.scan_centre, r, job.lmax)) for r in radii[: job.max_candidates])
             if index == len(attempts):
                 break
@@ -348,22 +365,29 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
         result = find_surface(job.data, guess, settings=settings)
         total_iterations += result.nit
         last = (kind, result)
+        if result.surface is None:
+            uncovered_starts += 1
         if result.success:
-            surface = result.surface
+            solved = result.surface
+            # Reported at the job's degree (the archive's); measured at the degree solved.
+            surface = solved.with_lmax(job.lmax) if solved.lmax > job.lmax else solved
             # The find's prepared grid nodes serve the measurement too (numerics.measures).
             measured_in = result.geometry if result.geometry is not None else job.data
             try:
-                quantities = _quantities_dict(measure_surface(surface, measured_in, order=job.interpolation_order))
+                quantities = _quantities_dict(measure_surface(solved, measured_in, order=job.interpolation_order))
                 message = result.message
             except ValueError as exc:
                 quantities = {}
                 message = f"{result.message}; not measured: {exc}"
-            spin_quantities, notes = _spin_quantities(surface, measured_in, job.interpolation_order)
+            if solved.lmax > job.lmax:
+                message = (f"{message}; solved at l_max {solved.lmax} (raised from {job.lmax}: not resolved "
+                           f"at {job.lmax}), measured there, coefficients reported up to l = {job.lmax}")
+            spin_quantities, notes = _spin_quantities(solved, measured_in, job.interpolation_order)
             quantities.update(spin_quantities)
-            stability, stability_notes = _stability_quantities(surface, measured_in, job.interpolation_order)
+            stability, stability_notes = _stability_quantities(solved, measured_in, job.interpolation_order)
             quantities.update(stability)
             notes.extend(stability_notes)
-            errors, error_notes = _error_bars(surface, job.data, job.interpolation_order)
+            errors, error_notes = _error_bars(solved, job.data, job.interpolation_order)
             quantities.update(errors)
             notes.extend(error_notes)
             if notes:
@@ -391,11 +415,19 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
         c = job.scan_centre if job.scan_centre is not None else np.full(3, np.nan)
         return SurfaceOutcome(
             label=job.label, found=False, reason=REASON_NO_CANDIDATE, status=-1,
-            message=(f"no sign change of the expansion of coordinate spheres about "
-                     f"({c[0]:.4g}, {c[1]:.4g}, {c[2]:.4g}) with radii {r_min:.4g}..{r_max:.4g} M"),
+            message=scan_message or (f"no sign change of the expansion of coordinate spheres about "
+                                     f"({c[0]:.4g}, {c[1]:.4g}, {c[2]:.4g}) with radii {r_min:.4g}..{r_max:.4g} M"),
             wall_time_s=elapsed, guess="scan",
         )
     kind, result = last
+    if job.may_not_exist and uncovered_starts == 0 and result.status != NEEDS_EXCISED_DATA:
+        return SurfaceOutcome(
+            label=job.label, found=False, reason=REASON_NO_CANDIDATE, status=result.status,
+            message=(f"{NO_TRAPPED_SURFACE_YET}: no MOTS from {len(attempts)} starting surface(s), each covered "
+                     f"by the data (last, from {kind}: {result.message})"),
+            method=result.method, residual_max=result.residual_max, iterations=total_iterations,
+            wall_time_s=elapsed, guess=kind, residual_max_between_nodes=float(result.residual_max_between_nodes),
+        )
     reason = {OUTSIDE_DATA: REASON_OUTSIDE_DATA, NEEDS_EXCISED_DATA: REASON_NEEDS_EXCISED_DATA}.get(
         result.status, REASON_NOT_CONVERGED)
     return SurfaceOutcome(

@@ -20,13 +20,18 @@ Per expected body, in each slice at coordinate time t:
 The common surface (label "common", two-body runs): planned once both bodies have been found and
 :func:`penumbra_server.tracking.common.common_horizon_watch` finds the forecast separation at the
 slice (and one cadence later) below its threshold, then in every slice. Seeds: the previous common
-surface re-centred on its forecast, and (until it is found, or when it was missed) the sphere about
-the mass-weighted centre enclosing both horizons, with a data region 1.25 times that sphere's
-radius. No sphere scan: about the centre of a pair a scan mostly finds the individual horizons'
+surface moved rigidly with its centroid's forecast, and (until it is found, or when it was missed) the sphere about
+the pair's neck enclosing both horizons (:func:`penumbra_server.tracking.common.common_neck_point`:
+the bodies weighted by the square root of the other's mass; a freshly formed common horizon is
+well resolved about its waist, not about the centre of mass), with a data region 1.25 times that
+sphere's radius. The finder raises l_max up to ``RunSpec.finder.lmax_cap`` when the surface is
+not resolved. No sphere scan: about the centre of a pair a scan mostly finds the individual horizons'
 sign changes. Its expansion has its own degree (``RunSpec.finder.lmax_common``, default
 max(16, lmax): a freshly formed common horizon has a narrow waist), and until it is first found
 the search is Newton only (no fast-flow fallback, no second try on a wider region: the search
-repeats every slice for a surface that may not exist yet). After the common surface is found it is the remnant: it is searched in
+repeats every slice for a surface that may not exist yet), and a search that finds nothing from
+starting surfaces the data covers says "no trapped surface here yet" (reason no candidate), not
+"not converged" or "outside data". After the common surface is found it is the remnant: it is searched in
 every slice, with the flow fallback.
 
 This planner replaces the linear extrapolation of
@@ -125,7 +130,10 @@ class SteeringPlanner:
         if common.ever_found and not common.lost:
             forecast = steering.seed_forecast(label, t)
             position, uncertainty, model = forecast.position, forecast.uncertainty, forecast.model
-            seeds.append(recentred(common.surface, position).with_lmax(lmax))
+            # Moved rigidly with its centroid's forecast, about its own expansion centre: a common
+            # horizon's shape is resolved about its neck, not about its centroid (recentred()).
+            moved = common.surface.centre + (np.asarray(position, float) - np.asarray(common.centroid, float))
+            seeds.append(common.surface.translated(moved).with_lmax(lmax))
             radius = max(radius, common.radius_max)
         if not common.ever_found or common.misses > 0:
             seeds.append(fresh)
@@ -148,7 +156,8 @@ class SteeringPlanner:
         enclose = tuple(h.centroid for h in bodies if h.centroid is not None)
         return SurfacePlan(label, seeds[0], None, None, centre - reach, centre + reach, extra_seeds=tuple(seeds[1:]),
                            seed_position=position, seed_uncertainty=uncertainty, seed_model=model, lmax=lmax,
-                           fallback_to_flow=formed, retry_wider=formed, must_enclose=enclose)
+                           fallback_to_flow=formed, retry_wider=formed, must_enclose=enclose,
+                           may_not_exist=not formed)
 
 
 def steering_planner_factory(settings: RunSettings) -> SteeringPlanner:

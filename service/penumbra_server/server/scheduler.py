@@ -70,6 +70,9 @@ class SurfacePlan:
         must_enclose: points (3,) a found surface must hold inside (a common horizon must
             enclose both bodies); a surface that does not is reported not found.
         inside_of, outer: see the attributes.
+        may_not_exist: the surface may not exist yet (a common horizon before it formed): a
+            search whose starting surfaces the data covers but that finds nothing reports "no
+            trapped surface here yet" (SurfaceJob.may_not_exist).
     """
 
     label: str
@@ -94,6 +97,7 @@ class SurfacePlan:
     outer: Surface | None = None
     #: The surface's previous solution in the displacement representation, if it has one.
     displaced_seed: object | None = None
+    may_not_exist: bool = False
 
     def points_outside(self, surface: Surface) -> list[np.ndarray]:
         """The ``must_enclose`` points that lie on or outside ``surface``."""

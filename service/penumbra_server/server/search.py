@@ -8,10 +8,11 @@ from __future__ import annotations
 import numpy as np
 
 from ..numerics.slices import Slice
+from ..numerics.guesses import NO_TRAPPED_SURFACE_YET
 from ..numerics.surfaces import Surface
 from ._spec import RunSettings
 from .executors import FinderExecutor
-from .jobs import REASON_NOT_CONVERGED, REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceJob, SurfaceOutcome, crop_slice
+from .jobs import REASON_NO_CANDIDATE, REASON_NOT_CONVERGED, REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceJob, SurfaceOutcome, crop_slice
 from .scheduler import SurfacePlan
 
 __all__ = ["search_plan", "crop_ghost_nodes"]
@@ -39,9 +40,12 @@ async def search_plan(plan: SurfacePlan, slice_: Slice, *, executor: FinderExecu
         outside = plan.points_outside(Surface(outcome.centre, outcome.lmax, outcome.coefficients))
         if outside:
             where = ", ".join(str(np.round(p, 4).tolist()) for p in outside)
+            # Before a common horizon formed, a surface missing a body is no common candidate.
+            reason, lead = ((REASON_NO_CANDIDATE, f"{NO_TRAPPED_SURFACE_YET}: ") if plan.may_not_exist
+                            else (REASON_NOT_CONVERGED, ""))
             outcome = SurfaceOutcome(
-                label=plan.label, found=False, reason=REASON_NOT_CONVERGED, status=outcome.status,
-                message=f"the surface found does not enclose {where}, which it must hold inside: not accepted",
+                label=plan.label, found=False, reason=reason, status=outcome.status,
+                message=f"{lead}the surface found does not enclose {where}, which it must hold inside: not accepted",
                 method=outcome.method, residual_max=outcome.residual_max, iterations=outcome.iterations,
                 wall_time_s=outcome.wall_time_s)
     return outcome
@@ -61,6 +65,7 @@ async def _find(plan: SurfacePlan, slice_: Slice, executor: FinderExecutor, sett
         label=plan.label,
         data=data,
         lmax=plan.lmax or settings.lmax,
+        lmax_cap=settings.lmax_cap_for(plan.lmax or settings.lmax),
         tolerance=settings.tolerance,
         max_iterations=settings.max_iterations,
         interpolation_order=order,
@@ -71,5 +76,6 @@ async def _find(plan: SurfacePlan, slice_: Slice, executor: FinderExecutor, sett
         scan_radii=plan.scan_radii,
         inside_of=plan.outer,
         displaced_seed=plan.displaced_seed,
+        may_not_exist=plan.may_not_exist,
     )
     return await executor.run(job)

@@ -9,6 +9,7 @@ from .common import (
     CommonSearchAdvice,
     CommonWatchError,
     common_horizon_watch,
+    common_neck_point,
     common_surface_guess,
 )
 from .forecast import (
@@ -67,6 +68,7 @@ __all__ = [
     "CommonSearchAdvice",
     "CommonWatchError",
     "common_horizon_watch",
+    "common_neck_point",
     "common_surface_guess",
     "DEFAULT_COMMON_FACTOR",
     # guidance

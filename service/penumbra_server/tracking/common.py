@@ -29,6 +29,7 @@ __all__ = [
     "CommonWatchError",
     "CommonSearchAdvice",
     "common_surface_guess",
+    "common_neck_point",
     "common_horizon_watch",
     "DEFAULT_COMMON_FACTOR",
 ]
@@ -53,7 +54,7 @@ class CommonSearchAdvice:
         radius_sum: r_A + r_B (largest coordinate radii), units of M.
         separation_ratio: closest_separation / radius_sum.
         factor: the threshold the ratio was compared with.
-        centre: (3,) guess centre: mass-weighted centre of the bodies at the first row.
+        centre: (3,) guess centre: the pair's neck (:func:`common_neck_point`) at the first row.
         radius: guess radius (units of M): the sphere about ``centre`` enclosing both horizons'
             spheres at the first row, times the enclosure factor.
         reason: a sentence stating the comparison made.
@@ -88,6 +89,31 @@ def _positive(value, name: str) -> float:
     return v
 
 
+def common_neck_point(position_a, position_b, masses: Sequence[float]) -> np.ndarray:
+    """Where a common horizon of the pair has its waist: the saddle of the two-centre potential
+    m_A / |x - x_A| + m_B / |x - x_B| on the segment between the bodies (units of M).
+
+    There m_A / r_A^2 = m_B / r_B^2, so the point divides the segment as sqrt(m_A) : sqrt(m_B),
+    nearer the lighter body: (sqrt(m_B) x_A + sqrt(m_A) x_B) / (sqrt(m_A) + sqrt(m_B)). For
+    Brill-Lindquist data it is the least conformal factor on the axis (the neck) to leading order.
+
+    Why it and not the centre of mass: a freshly formed common horizon is peanut-shaped with its
+    waist at the neck; written as r = h(theta, phi) about the neck its harmonic coefficients decay
+    fast, about the centre of mass of an unequal pair they do not (rays from there meet the
+    waist obliquely). Measured on the independent axisymmetric solutions 0.4 % below the
+    critical separation (tests/numerics/axisymmetric_mots.py): |a_16| / a_0 about the neck
+    1.7e-4 (mass ratio 2) and 1.1e-5 (ratio 4), about the centre of mass 1.1e-3 and 2.9e-3,
+    about the centroid 1.7e-4 and 2.2e-3 with slower decay beyond (notes/common.md).
+    """
+    xa = _positions(position_a, "position_a")[0]
+    xb = _positions(position_b, "position_b")[0]
+    m = np.asarray(masses, dtype=float)
+    if m.shape != (2,) or not np.all(np.isfinite(m)) or np.any(m <= 0):
+        raise CommonWatchError(f"masses: expected two positive numbers, got {np.asarray(masses).tolist()}")
+    wa, wb = np.sqrt(m)
+    return (wb * xa + wa * xb) / (wa + wb)
+
+
 def common_surface_guess(
     position_a,
     position_b,
@@ -99,10 +125,11 @@ def common_surface_guess(
 ) -> tuple[np.ndarray, float]:
     """Centre and radius of a sphere enclosing both horizons, for a common-surface search.
 
-    The centre is the mass-weighted centre (m_A x_A + m_B x_B) / M; the radius is the larger
-    of |centre - x_i| + r_i (so each horizon's enclosing sphere is inside), times
-    ``enclosure_factor`` (> 1 keeps the start surface off the individual horizons). For equal
-    masses this is (d / 2 + r_max) x factor.
+    The centre is the pair's neck (:func:`common_neck_point`: the bodies weighted by the square
+    root of the other's mass); the radius is the larger of |centre - x_i| + r_i (so each
+    horizon's enclosing sphere is inside), times ``enclosure_factor`` (> 1 keeps the start
+    surface off the individual horizons). For equal masses the centre is the midpoint and the
+    radius (d / 2 + r_max) x factor.
 
     Returns:
         ((3,) centre, radius), units of M.
@@ -110,13 +137,10 @@ def common_surface_guess(
     xa = _positions(position_a, "position_a")[0]
     xb = _positions(position_b, "position_b")[0]
     ra, rb = _positive(radius_a, "radius_a"), _positive(radius_b, "radius_b")
-    m = np.asarray(masses, dtype=float)
-    if m.shape != (2,) or not np.all(np.isfinite(m)) or np.any(m <= 0):
-        raise CommonWatchError(f"masses: expected two positive numbers, got {np.asarray(masses).tolist()}")
     enclosure_factor = float(enclosure_factor)
     if not enclosure_factor >= 1.0:
         raise CommonWatchError(f"enclosure_factor: expected a number >= 1, got {enclosure_factor!r}")
-    centre = (m[0] * xa + m[1] * xb) / m.sum()
+    centre = common_neck_point(xa, xb, masses)
     radius = max(np.linalg.norm(centre - xa) + ra, np.linalg.norm(centre - xb) + rb)
     return centre, float(radius * enclosure_factor)
 
@@ -139,7 +163,7 @@ def common_horizon_watch(
             units of M; the first row is the slice to be searched (e.g. the forecast starting
             at the latest slice), later rows the forecast over the interval.
         radius_a, radius_b: each horizon's largest coordinate radius, units of M.
-        masses: (m_A, m_B) > 0, e.g. irreducible masses (weights of the guess centre).
+        masses: (m_A, m_B) > 0, e.g. irreducible masses (they place the guess centre).
         factor: search when closest separation < factor x (r_A + r_B) (module docstring).
         enclosure_factor: scale of the guess radius beyond the enclosing sphere.
         already_searching: a search is under way and not yet successful: keep searching.

@@ -313,7 +313,7 @@ def test_record_client_gap_is_idempotent_and_checks_its_fields(client, stub):
         {"iteration_first": 56, "iteration_last": 56, "count": 1, "reason": "retry_time_exceeded", "time_first": 7.0,
          "time_last": 7.0}]
     assert (gaps[0]["start_unix_s"], gaps[0]["end_unix_s"]) == (1000.0, 1010.5)
-    events = [e for e in client.watch(run.run_id, timeout_s=60) if e.kind == "client_gap_recorded"]
+    events = [e for e in client.watch(run.run_id, timeout_s=600) if e.kind == "client_gap_recorded"]
     assert [(e.seq, e.gap.slices_dropped, e.iteration) for e in events] == [
         (first.event_seq, 4, 16), (empty.event_seq, 0, 0)]
 

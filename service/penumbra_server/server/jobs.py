@@ -103,6 +103,12 @@ class SurfaceJob:
             (r_min, r_max), units of M.
         max_candidates: scan candidates tried, outermost first.
         fallback_to_flow: on a failed Newton solve run the fast flow (finder option).
+        relocate: when every seed and the scan failed, look for the body about the peaks of the
+            metric's volume factor near a forecast (a body lost after skipped slices; see
+            :mod:`penumbra_server.server.relocation`); None: no such fallback.
+        expected_mass: irreducible mass (M) the surface should have (its latest find); a
+            surface found more than ``mass_tolerance`` (relative) off is another body and is
+            not accepted. NaN: no check.
     """
 
     label: str
@@ -117,6 +123,9 @@ class SurfaceJob:
     scan_radii: tuple[float, float] | None = None
     max_candidates: int = 3
     fallback_to_flow: bool = True
+    relocate: "Relocation | None" = None
+    expected_mass: float = float("nan")
+    mass_tolerance: float = 0.25
 
 
 @dataclass(frozen=True, eq=False)
@@ -264,6 +273,7 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
     from ..numerics.finder import NEEDS_EXCISED_DATA, OUTSIDE_DATA, FinderSettings, find_surface
     from ..numerics.guesses import scan_spheres
     from ..numerics.measures import measure_surface
+    from .relocation import mass_mismatch, relocation_guesses
 
     settings = FinderSettings(
         lmax=job.lmax,
@@ -278,18 +288,24 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
     attempts.extend(("alternative", extra) for extra in job.extra_seeds)
     last = None
     total_iterations = 0
-    tried_scan = False
+    tried_scan = job.scan_centre is None
+    tried_relocation = job.relocate is None
+    rejected: list[str] = []
     index = 0
     while True:
+        while index == len(attempts) and not (tried_scan and tried_relocation):
+            if not tried_scan:
+                tried_scan = True
+                r_min, r_max = job.scan_radii
+                radii = scan_spheres(job.data, job.scan_centre, r_min, r_max, order=job.interpolation_order)
+                attempts.extend(("scan", Surface.sphere(job.scan_centre, r, job.lmax))
+                                for r in radii[: job.max_candidates])
+            elif not tried_relocation:
+                tried_relocation = True
+                attempts.extend(relocation_guesses(job.relocate, job.data, job.seed, job.lmax,
+                                                   order=job.interpolation_order))
         if index == len(attempts):
-            if tried_scan or job.scan_centre is None:
-                break
-            tried_scan = True
-            r_min, r_max = job.scan_radii
-            radii = scan_spheres(job.data, job.scan_centre, r_min, r_max, order=job.interpolation_order)
-            attempts.extend(("scan", Surface.sphere(job.scan_centre, r, job.lmax)) for r in radii[: job.max_candidates])
-            if index == len(attempts):
-                break
+            break
         kind, guess = attempts[index]
         index += 1
         result = find_surface(job.data, guess, settings=settings)
@@ -305,6 +321,12 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
             except ValueError as exc:
                 quantities = {}
                 message = f"{result.message}; not measured: {exc}"
+            off = mass_mismatch(quantities.get("irreducible_mass", float("nan")), job.expected_mass,
+                                job.mass_tolerance)
+            if off:
+                # Another body's horizon (a seed or scan that slid over to it): keep looking.
+                rejected.append(f"{kind}: {off}")
+                continue
             spin_quantities, notes = _spin_quantities(surface, measured_in, job.interpolation_order)
             quantities.update(spin_quantities)
             errors, error_notes = _error_bars(surface, job.data, job.interpolation_order)
@@ -343,8 +365,9 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
     reason = {OUTSIDE_DATA: REASON_OUTSIDE_DATA, NEEDS_EXCISED_DATA: REASON_NEEDS_EXCISED_DATA}.get(
         result.status, REASON_NOT_CONVERGED)
     return SurfaceOutcome(
-        label=job.label, found=False, reason=reason, status=result.status,
-        message=f"{len(attempts)} guess(es) tried, last from {kind}: {result.message}",
+        label=job.label, found=False, reason=reason, status=-1 if result.success else result.status,
+        message=(f"{len(attempts)} guess(es) tried, last from {kind}: {result.message}"
+                 + (f"; not accepted: {'; '.join(rejected)}" if rejected else "")),
         method=result.method, residual_max=result.residual_max, iterations=total_iterations,
         wall_time_s=elapsed, guess=kind, residual_max_between_nodes=float(result.residual_max_between_nodes),
     )

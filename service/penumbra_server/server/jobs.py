@@ -105,10 +105,8 @@ class SurfaceJob:
         fallback_to_flow: on a failed Newton solve run the fast flow (finder option).
         relocate: when every seed and the scan failed, look for the body about the peaks of the
             metric's volume factor near a forecast (a body lost after skipped slices; see
-            :mod:`penumbra_server.server.relocation`); None: no such fallback.
-        expected_mass: irreducible mass (M) the surface should have (its latest find); a
-            surface found more than ``mass_tolerance`` (relative) off is another body and is
-            not accepted. NaN: no check.
+            :mod:`penumbra_server.server.relocation`; after skipped slices every find is judged
+            there too); None: no such fallback.
     """
 
     label: str
@@ -124,8 +122,6 @@ class SurfaceJob:
     max_candidates: int = 3
     fallback_to_flow: bool = True
     relocate: "Relocation | None" = None
-    expected_mass: float = float("nan")
-    mass_tolerance: float = 0.25
 
 
 @dataclass(frozen=True, eq=False)
@@ -273,7 +269,7 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
     from ..numerics.finder import NEEDS_EXCISED_DATA, OUTSIDE_DATA, FinderSettings, find_surface
     from ..numerics.guesses import scan_spheres
     from ..numerics.measures import measure_surface
-    from .relocation import mass_mismatch, relocation_guesses
+    from .relocation import SkipJudge, relocation_guesses
 
     settings = FinderSettings(
         lmax=job.lmax,
@@ -291,6 +287,7 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
     tried_scan = job.scan_centre is None
     tried_relocation = job.relocate is None
     rejected: list[str] = []
+    judge = SkipJudge(job.relocate, job.data) if job.relocate is not None and job.relocate.skipped else None
     index = 0
     while True:
         while index == len(attempts) and not (tried_scan and tried_relocation):
@@ -304,7 +301,10 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
                 tried_relocation = True
                 attempts.extend(relocation_guesses(job.relocate, job.data, job.seed, job.lmax,
                                                    order=job.interpolation_order))
-        if index == len(attempts):
+        if index == len(attempts) or (judge is not None and judge.complete):
+            if judge is not None and judge.candidates:
+                kind, result, quantities, message = judge.pick()
+                return _found(job, kind, result, quantities, message, total_iterations, start)
             break
         kind, guess = attempts[index]
         index += 1
@@ -321,36 +321,14 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
             except ValueError as exc:
                 quantities = {}
                 message = f"{result.message}; not measured: {exc}"
-            off = mass_mismatch(quantities.get("irreducible_mass", float("nan")), job.expected_mass,
-                                job.mass_tolerance)
-            if off:
-                # Another body's horizon (a seed or scan that slid over to it): keep looking.
-                rejected.append(f"{kind}: {off}")
+            if judge is not None:
+                # After skipped slices a find may be another body's horizon, or a common one:
+                # the judge keeps it as a candidate and picks once every body was seen.
+                judge.consider(kind, result, quantities, message)
                 continue
-            spin_quantities, notes = _spin_quantities(surface, measured_in, job.interpolation_order)
-            quantities.update(spin_quantities)
-            errors, error_notes = _error_bars(surface, job.data, job.interpolation_order)
-            quantities.update(errors)
-            notes.extend(error_notes)
-            if notes:
-                message = "; ".join([message, *notes])
-            return SurfaceOutcome(
-                label=job.label,
-                found=True,
-                reason=REASON_FOUND,
-                status=result.status,
-                message=message,
-                method=result.method,
-                centre=np.array(surface.centre),
-                lmax=surface.lmax,
-                coefficients=np.array(surface.coefficients),
-                quantities=quantities,
-                residual_max=result.residual_max,
-                iterations=total_iterations,
-                wall_time_s=time.perf_counter() - start,
-                guess=kind,
-                residual_max_between_nodes=float(result.residual_max_between_nodes),
-            )
+            return _found(job, kind, result, quantities, message, total_iterations, start)
+    if judge is not None:
+        rejected.extend(judge.rejected)
     elapsed = time.perf_counter() - start
     if last is None:
         r_min, r_max = job.scan_radii if job.scan_radii else (float("nan"), float("nan"))
@@ -370,6 +348,37 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
                  + (f"; not accepted: {'; '.join(rejected)}" if rejected else "")),
         method=result.method, residual_max=result.residual_max, iterations=total_iterations,
         wall_time_s=elapsed, guess=kind, residual_max_between_nodes=float(result.residual_max_between_nodes),
+    )
+
+
+def _found(job: SurfaceJob, kind: str, result, quantities: dict, message: str, total_iterations: int,
+           start: float) -> SurfaceOutcome:
+    """The outcome of a find: its spin and error bars measured as well."""
+    surface = result.surface
+    measured_in = result.geometry if result.geometry is not None else job.data
+    spin_quantities, notes = _spin_quantities(surface, measured_in, job.interpolation_order)
+    quantities.update(spin_quantities)
+    errors, error_notes = _error_bars(surface, job.data, job.interpolation_order)
+    quantities.update(errors)
+    notes.extend(error_notes)
+    if notes:
+        message = "; ".join([message, *notes])
+    return SurfaceOutcome(
+        label=job.label,
+        found=True,
+        reason=REASON_FOUND,
+        status=result.status,
+        message=message,
+        method=result.method,
+        centre=np.array(surface.centre),
+        lmax=surface.lmax,
+        coefficients=np.array(surface.coefficients),
+        quantities=quantities,
+        residual_max=result.residual_max,
+        iterations=total_iterations,
+        wall_time_s=time.perf_counter() - start,
+        guess=kind,
+        residual_max_between_nodes=float(result.residual_max_between_nodes),
     )
 
 

@@ -101,7 +101,8 @@ class SteeringPlanner:
         else:
             position, uncertainty, model = forecast.position, forecast.uncertainty, forecast.model
         seed = recentred(h.surface, position)
-        relocate = skipped_relocation(h, body, t, position, uncertainty, len(steering.body_labels))
+        others = [steering.history(label) for label in steering.body_labels if label != body.label]
+        relocate = skipped_relocation(h, body, t, position, uncertainty, others)
         if relocate is not None:
             uncertainty = relocate.uncertainty
         reach = steering.reach(body.label, uncertainty)
@@ -119,7 +120,7 @@ class SteeringPlanner:
             # Skipped slices or a miss: the search region holds the whole relocation ball.
             lower = np.minimum(lower, relocate.lower)
             upper = np.maximum(upper, relocate.upper)
-            extra = {"relocate": relocate.relocation, "expected_mass": relocate.expected_mass}
+            extra = {"relocate": relocate.relocation}
         return SurfacePlan(body.label, seed, np.asarray(scan_centre, float), scan_radii, lower, upper,
                            seed_position=position, seed_uncertainty=uncertainty, seed_model=model, **extra)
 

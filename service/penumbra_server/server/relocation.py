@@ -9,9 +9,12 @@ metric's volume factor (:func:`penumbra_server.numerics.body_peaks.conformal_pea
 radius of the forecast that grows with the time since the body was last found, nearest to the
 forecast first; about each, the previous surface re-centred and a sphere scan.
 
-Another body's horizon may sit inside that radius: a surface whose irreducible mass is more
-than a tolerance off the body's latest one is not accepted (:func:`mass_mismatch`); for equal
-masses the nearest candidate to the forecast wins.
+Another body's horizon may sit inside that radius, and a common horizon too. After a skip every
+find is judged (:class:`SkipJudge`): a surface that encloses none or several of the peaks is not
+a body's horizon; of the distinct horizons found, the body takes the one of its mass rank (the
+heavier body stays the heavier: irreducible masses of a pair change together as it approaches,
+so an absolute mass tolerance would reject the right horizon) when as many were found as there
+are bodies and their masses differ, else the one nearest its forecast.
 
 Units: G = c = 1, lengths in M.
 """
@@ -25,7 +28,7 @@ import numpy as np
 from ..numerics.body_peaks import conformal_peaks
 from ..numerics.surfaces import Surface
 
-__all__ = ["Relocation", "relocation_guesses", "mass_mismatch", "RELOCATION_PEAKS", "RELOCATION_SCANS"]
+__all__ = ["Relocation", "SkipJudge", "relocation_guesses", "RELOCATION_PEAKS", "RELOCATION_SCANS"]
 
 #: Peaks tried (nearest to the forecast first), and those of them also scanned with spheres.
 RELOCATION_PEAKS = 3
@@ -35,12 +38,20 @@ RELOCATION_SCANS = 2
 @dataclass(frozen=True, eq=False)
 class Relocation:
     """Where to look for a lost body: forecast ``centre`` (3,), search ``radius``, peaks closer
-    than ``min_separation`` merged, sphere-scan radii (r_min, r_max) about each peak; M."""
+    than ``min_separation`` merged, sphere-scan radii (r_min, r_max) about each peak; M.
+
+    ``skipped``: slices were skipped (or the body missed): every find is judged
+    (:class:`SkipJudge`). ``mass_rank``: the body's rank by latest irreducible mass among the
+    ``body_count`` bodies searched (0 the heaviest).
+    """
 
     centre: np.ndarray
     radius: float
     min_separation: float
     scan_radii: tuple[float, float]
+    skipped: bool = False
+    mass_rank: int = 0
+    body_count: int = 1
 
 
 def relocation_guesses(relocation: Relocation, data, seed: Surface | None, lmax: int, *,
@@ -65,13 +76,62 @@ def relocation_guesses(relocation: Relocation, data, seed: Surface | None, lmax:
     return guesses
 
 
-def mass_mismatch(measured: float, expected: float, tolerance: float) -> str:
-    """Why a surface of irreducible mass ``measured`` is not the body expected at ``expected``
-    (relative ``tolerance``); "" when it fits or either mass is unknown."""
-    if not (np.isfinite(measured) and np.isfinite(expected) and expected > 0):
-        return ""
-    off = abs(measured - expected) / expected
-    if off <= tolerance:
-        return ""
-    return (f"irreducible mass {measured:.4g} M is {100 * off:.0f} % off the body's latest {expected:.4g} M "
-            f"(tolerance {100 * tolerance:.0f} %): another body's horizon")
+def _encloses(surface: Surface, point) -> bool:
+    rel = np.asarray(point, float) - surface.centre
+    r = float(np.linalg.norm(rel))
+    if r == 0.0:
+        return True
+    theta, phi = np.arccos(np.clip(rel[2] / r, -1.0, 1.0)), np.arctan2(rel[1], rel[0])
+    return r < float(surface.radius([theta], [phi])[0])
+
+
+class SkipJudge:
+    """Judges the finds of one search after skipped slices (module docstring).
+
+    :meth:`consider` each successful find; :attr:`complete` once as many distinct horizons were
+    found as there are bodies; :meth:`pick` the body's. ``rejected``: why finds were refused.
+    """
+
+    def __init__(self, relocation: Relocation, data) -> None:
+        self.relocation = relocation
+        reach = relocation.radius + 4.0 * relocation.min_separation
+        self.peaks = [np.asarray(p.position, float) for p in
+                      conformal_peaks(data, relocation.centre, reach, min_separation=relocation.min_separation,
+                                      max_peaks=8)]
+        self.by_peak: dict[int, tuple] = {}
+        self.rejected: list[str] = []
+
+    def consider(self, kind: str, result, quantities: dict, message: str) -> None:
+        inside = [i for i, p in enumerate(self.peaks) if _encloses(result.surface, p)]
+        if self.peaks and len(inside) != 1:
+            self.rejected.append(f"{kind}: the surface encloses {len(inside)} of the metric's peaks, "
+                                 f"not one (not a single body's horizon)")
+            return
+        key = inside[0] if inside else len(self.by_peak)
+        self.by_peak.setdefault(key, (kind, result, quantities, message))
+
+    @property
+    def candidates(self) -> list[tuple]:
+        return list(self.by_peak.values())
+
+    @property
+    def complete(self) -> bool:
+        return len(self.by_peak) >= max(1, self.relocation.body_count)
+
+    def pick(self) -> tuple:
+        """(kind, result, quantities, message) of the find the body takes."""
+        found = self.candidates
+        masses = [float(c[2].get("irreducible_mass", np.nan)) for c in found]
+        count = self.relocation.body_count
+        if (count > 1 and len(found) == count and np.all(np.isfinite(masses))
+                and max(masses) > 1.05 * min(masses)):
+            order = np.argsort(masses)[::-1]
+            chosen = found[int(order[min(self.relocation.mass_rank, count - 1)])]
+            how = f"mass rank {self.relocation.mass_rank + 1} of {count} horizons found"
+        else:
+            centre = np.asarray(self.relocation.centre, float)
+            chosen = min(found, key=lambda c: float(np.linalg.norm(
+                np.asarray(c[2].get("centroid", c[1].surface.centre), float) - centre)))
+            how = f"nearest the forecast of {len(found)} horizon(s) found"
+        kind, result, quantities, message = chosen
+        return kind, result, quantities, f"{message}; after skipped slices: {how}"

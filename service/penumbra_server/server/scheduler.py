@@ -69,7 +69,7 @@ class SurfacePlan:
             for those searches too: their iterates run away when the surface does not exist).
         must_enclose: points (3,) a found surface must hold inside (a common horizon must
             enclose both bodies); a surface that does not is reported not found.
-        relocate, expected_mass: as :class:`~penumbra_server.server.jobs.SurfaceJob` takes them
+        relocate: as :class:`~penumbra_server.server.jobs.SurfaceJob` takes it
             (looking again for a body after skipped slices; server/relocation.py).
     """
 
@@ -90,7 +90,6 @@ class SurfacePlan:
     retry_wider: bool = True
     must_enclose: tuple[np.ndarray, ...] = ()
     relocate: object | None = None
-    expected_mass: float = float("nan")
 
     def points_outside(self, surface: Surface) -> list[np.ndarray]:
         """The ``must_enclose`` points that lie on or outside ``surface``."""

@@ -67,6 +67,5 @@ async def _find(plan: SurfacePlan, slice_: Slice, executor: FinderExecutor, sett
         scan_centre=plan.scan_centre,
         scan_radii=plan.scan_radii,
         relocate=plan.relocate,
-        expected_mass=plan.expected_mass,
     )
     return await executor.run(job)

@@ -6,10 +6,10 @@ A body found before whose last find is a skip away (:func:`penumbra_server.track
 (:func:`~penumbra_server.tracking.skipping.grown_uncertainty`), a
 :class:`~penumbra_server.server.relocation.Relocation` within
 :func:`~penumbra_server.tracking.skipping.relocation_radius` of the forecast (widened per
-miss), the data region enlarged to hold it, and (runs with several bodies) a mass check so a
-search cannot take another body's horizon. Dense slices found every time get none of this:
+miss), the data region enlarged to hold it, and the body's mass rank among the other bodies
+(the worker judges every find after a skip by it: server/relocation.py). Dense slices found every time get none of this:
 their plans keep the usual region and uncertainty, with the relocation (inside that region)
-and the mass check as the worker's last fallback.
+as the worker's last fallback.
 
 Units: G = c = 1, lengths and times in M.
 """
@@ -17,6 +17,7 @@ Units: G = c = 1, lengths and times in M.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Sequence
 
 import numpy as np
 
@@ -37,18 +38,17 @@ _PEAK_SCAN_RADII = 2.0
 
 @dataclass(frozen=True, eq=False)
 class SkipRelocation:
-    """What the planner adds: the worker's fallback, the grown seed uncertainty (M), the mass
-    check (M; NaN none) and the data region [lower, upper] (3,) the fallback needs."""
+    """What the planner adds: the worker's fallback, the grown seed uncertainty (M) and the data
+    region [lower, upper] (3,) the fallback needs."""
 
     relocation: Relocation
     uncertainty: float
-    expected_mass: float
     lower: np.ndarray
     upper: np.ndarray
 
 
 def skipped_relocation(h: SurfaceState, body, t: float, position, forecast_uncertainty: float,
-                       body_count: int) -> SkipRelocation | None:
+                       others: Sequence[SurfaceState] = ()) -> SkipRelocation | None:
     """The relocation for body ``body`` (its spec entry) searched at time ``t`` (M) about its
     forecast ``position`` (3,) (None before its first find). Without a skip or a miss the
     fallback keeps to the usual search region and the seed's uncertainty is the forecast's."""
@@ -62,6 +62,8 @@ def skipped_relocation(h: SurfaceState, body, t: float, position, forecast_uncer
     radius = relocation_radius(h.radius_max, uncertainty, misses=h.misses, cap=RELOCATION_CAP_MASSES * mass)
     scan_outer = _PEAK_SCAN_RADII * h.radius_max
     centre = np.asarray(position, float)
+    searched = [o for o in others if o.ever_found and o.retired_at is None]
+    rank = sum(1 for o in searched if o.irreducible_mass > h.irreducible_mass)
     # Without a skip or a miss the fallback searches only the usual region (plans unchanged).
     half = radius + SCAN_BOX_FACTOR * scan_outer if skipped else 0.0
     if not skipped:
@@ -69,9 +71,9 @@ def skipped_relocation(h: SurfaceState, body, t: float, position, forecast_uncer
         radius = min(radius, BOX_FACTOR * h.radius_max * growth_factor(h.growth)
                      + uncertainty_margin(uncertainty, h.radius_max, 1.0))
     return SkipRelocation(
-        relocation=Relocation(centre=centre, radius=radius, min_separation=0.5 * h.radius_max,
-                              scan_radii=(SCAN_RADIUS_FACTORS[0] * mass, scan_outer)),
+        relocation=Relocation(centre=centre, radius=radius, min_separation=h.radius_max,
+                              scan_radii=(SCAN_RADIUS_FACTORS[0] * mass, scan_outer), skipped=skipped,
+                              mass_rank=rank, body_count=1 + len(searched)),
         uncertainty=uncertainty,
-        expected_mass=float(h.irreducible_mass) if body_count > 1 else float("nan"),
         lower=centre - half, upper=centre + half,
     )

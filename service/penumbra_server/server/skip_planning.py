@@ -74,6 +74,8 @@ def skipped_relocation(h: SurfaceState, body, t: float, position, forecast_uncer
         relocation=Relocation(centre=centre, radius=radius, min_separation=h.radius_max,
                               scan_radii=(SCAN_RADIUS_FACTORS[0] * mass, scan_outer), skipped=skipped,
                               mass_rank=rank, body_count=1 + len(searched)),
-        uncertainty=uncertainty,
+        # A forecast without an estimate (one sample) stays "unknown" for the seed; the
+        # relocation radius above carries the light-speed bound instead.
+        uncertainty=uncertainty if np.isfinite(forecast_uncertainty) else float(forecast_uncertainty),
         lower=centre - half, upper=centre + half,
     )

@@ -103,11 +103,13 @@ class SkipJudge:
 
     def consider(self, kind: str, result, quantities: dict, message: str) -> None:
         inside = [i for i, p in enumerate(self.peaks) if _encloses(result.surface, p)]
-        if self.peaks and len(inside) != 1:
+        # A lone body cannot be confused with another (and excised data may show several peaks
+        # about the excised region inside one horizon): only runs of several bodies are judged.
+        if self.peaks and len(inside) != 1 and self.relocation.body_count > 1:
             self.rejected.append(f"{kind}: the surface encloses {len(inside)} of the metric's peaks, "
                                  f"not one (not a single body's horizon)")
             return
-        key = inside[0] if inside else len(self.by_peak)
+        key = inside[0] if len(inside) == 1 else -1 - len(self.by_peak)
         self.by_peak.setdefault(key, (kind, result, quantities, message))
 
     @property

@@ -14,7 +14,9 @@ find is judged (:class:`SkipJudge`): a surface that encloses none or several of 
 a body's horizon; of the distinct horizons found, the body takes the one of its mass rank (the
 heavier body stays the heavier: irreducible masses of a pair change together as it approaches,
 so an absolute mass tolerance would reject the right horizon) when as many were found as there
-are bodies and their masses differ, else the one nearest its forecast.
+are bodies and their masses differ, else the one nearest its forecast. A find about the peak
+nearest the forecast is taken at once when every other peak is more than twice as far (no other
+body could be meant).
 
 Units: G = c = 1, lengths in M.
 """
@@ -100,6 +102,12 @@ class SkipJudge:
                                       max_peaks=8)]
         self.by_peak: dict[int, tuple] = {}
         self.rejected: list[str] = []
+        self.settled: tuple | None = None  # a find that can only be this body's
+        distances = sorted((float(np.linalg.norm(p - np.asarray(relocation.centre, float))), i)
+                           for i, p in enumerate(self.peaks))
+        # The peak nearest the forecast is unambiguous when every other is more than twice as far.
+        self.nearest = (distances[0][1] if distances and (len(distances) == 1 or 2 * distances[0][0] < distances[1][0])
+                        else None)
 
     def consider(self, kind: str, result, quantities: dict, message: str) -> None:
         inside = [i for i, p in enumerate(self.peaks) if _encloses(result.surface, p)]
@@ -111,6 +119,8 @@ class SkipJudge:
             return
         key = inside[0] if len(inside) == 1 else -1 - len(self.by_peak)
         self.by_peak.setdefault(key, (kind, result, quantities, message))
+        if self.nearest is not None and inside == [self.nearest]:
+            self.settled = (kind, result, quantities, message)
 
     @property
     def candidates(self) -> list[tuple]:
@@ -118,10 +128,13 @@ class SkipJudge:
 
     @property
     def complete(self) -> bool:
-        return len(self.by_peak) >= max(1, self.relocation.body_count)
+        return self.settled is not None or len(self.by_peak) >= max(1, self.relocation.body_count)
 
     def pick(self) -> tuple:
         """(kind, result, quantities, message) of the find the body takes."""
+        if self.settled is not None:
+            kind, result, quantities, message = self.settled
+            return kind, result, quantities, f"{message}; after skipped slices: the peak nearest the forecast"
         found = self.candidates
         masses = [float(c[2].get("irreducible_mass", np.nan)) for c in found]
         count = self.relocation.body_count

@@ -33,6 +33,7 @@ __all__ = [
     "SlicePartsMissingEvent",
     "SliceRejectedEvent",
     "ClientGapRecordedEvent",
+    "FormationForecastEvent",
     "OtherEvent",
     "event_from_wire",
 ]
@@ -40,7 +41,7 @@ __all__ = [
 #: Event kinds the shim names (others arrive as kind "other" with the message in ``raw``).
 EVENT_KINDS = ("surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed",
                "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning",
-               "slice_parts_missing", "slice_rejected", "client_gap_recorded")
+               "slice_parts_missing", "slice_rejected", "client_gap_recorded", "formation_forecast")
 _WARNING_NAMES = {pb.RunWarning.KIND_MISSING_DATA: "missing_data", pb.RunWarning.KIND_TRACKING: "tracking"}
 _DISPOSITION_NAMES = {pb.SlicePartsMissing.DISPOSITION_PROCESSED: "processed",
                       pb.SlicePartsMissing.DISPOSITION_GIVEN_UP: "given_up"}
@@ -111,6 +112,26 @@ class CommonHorizonFormedEvent(Event):
 
     label: str = ""
     common: CommonHorizon | None = None
+
+@dataclass(frozen=True, eq=False)
+class FormationForecastEvent(Event):
+    """formation_forecast: the smallest expansion c_min of the constant-expansion surfaces that
+    enclose the pair in this slice (1/M; NaN when not found) and, from its history, the time the
+    common horizon ``label`` is forecast to form (M; NaN when no forecast) with its expected
+    error."""
+
+    label: str = ""
+    c_min_found: bool = False
+    c_min: float = NAN
+    c_min_error: float = NAN
+    mean_radius: float = NAN
+    forecast_available: bool = False
+    formation_time: float = NAN
+    formation_time_uncertainty: float = NAN
+    based_on: int = 0
+    message: str = ""
+    wall_time_s: float = 0.0
+
 
 @dataclass(frozen=True, eq=False)
 class GuidanceEvent(Event):
@@ -207,5 +228,13 @@ def event_from_wire(e: pb.RunEvent) -> Event:
         return SliceRejectedEvent(status_code=r.status_code, message=r.message, **base)
     if kind == "client_gap_recorded":
         return ClientGapRecordedEvent(gap=ClientGap.from_event(e.client_gap_recorded, event_seq=e.seq), **base)
+    if kind == "formation_forecast":
+        f = e.formation_forecast
+        return FormationForecastEvent(
+            label=f.label, c_min_found=f.c_min_found, c_min=f.c_min_per_m, c_min_error=f.c_min_error_per_m,
+            mean_radius=f.mean_radius_m, forecast_available=f.forecast_available,
+            formation_time=f.formation_time_m if f.forecast_available else NAN,
+            formation_time_uncertainty=f.formation_time_uncertainty_m if f.forecast_available else NAN,
+            based_on=f.based_on, message=f.message, wall_time_s=f.wall_time_s, **base)
     base["kind"] = "other"
     return OtherEvent(**base)

@@ -35,6 +35,10 @@ class RunInfo:
     ``slices_incomplete``: slices sent in parts that were processed with parts missing.
     ``client_gaps_recorded``: outages of the client's link recorded on the run;
     ``slices_rejected``: slices refused after their header named the run.
+    ``highest_held_iteration``: the highest iteration the server holds, archived or kept in its
+    spool on disk (-1: none): after a server restart, slices up to it need no resend.
+    ``slices_spooled``: acknowledged slices on the server's disk, not yet archived;
+    ``slices_replayed``: slices the server found in its spool at its last start and queued again.
     """
 
     run_id: str
@@ -54,6 +58,9 @@ class RunInfo:
     slices_incomplete: int = 0
     client_gaps_recorded: int = 0
     slices_rejected: int = 0
+    highest_held_iteration: int = -1
+    slices_spooled: int = 0
+    slices_replayed: int = 0
 
     @classmethod
     def from_wire(cls, run: pb.Run) -> "RunInfo":
@@ -66,6 +73,8 @@ class RunInfo:
             last_received_iteration=run.last_received_iteration, last_received_time=run.last_received_time_m,
             slices_incomplete=run.slices_incomplete,
             client_gaps_recorded=run.client_gaps_recorded, slices_rejected=run.slices_rejected,
+            highest_held_iteration=run.highest_held_iteration, slices_spooled=run.slices_spooled,
+            slices_replayed=run.slices_replayed,
         )
 
 
@@ -84,6 +93,8 @@ class SliceAck:
     ``duplicate``: the server held this part already.
     ``drop_reason``: for a slice skipped locally, why, in words (see
     :data:`penumbra_shim.DROP_REASONS`), e.g. "link down: server unreachable".
+    ``persisted``: the server wrote the accepted slice to its disk before answering (it survives
+    a crash of the server).
     """
 
     iteration: int
@@ -101,6 +112,7 @@ class SliceAck:
     parts_received: int = 1
     parts_expected: int = 1
     drop_reason: str = ""
+    persisted: bool = False
 
     @classmethod
     def from_wire(cls, response: pb.SendSliceResponse, *, attempts: int, cropped: bool = False,
@@ -120,6 +132,7 @@ class SliceAck:
             queue_position=response.queue_position,
             skipped_iterations=tuple(response.skipped_iterations),
             attempts=attempts,
+            persisted=response.persisted,
         )
 
 
@@ -131,10 +144,18 @@ class SurfaceReport:
     Spin from the approximate Killing vector: ``akv_angular_momentum`` J (M^2) about the unit
     vector ``spin_direction``, ``dimensionless_spin`` chi = J / M_chr^2, ``akv_christodoulou_mass``
     (M), ``killing_quality`` (lowest AKV eigenvalue lambda R^2, 0 for an exact Killing field),
-    circumferences about the spin axis (M) and their ratio polar / equatorial;
-    ``mass_multipoles`` / ``spin_multipoles`` M_n / M^(n+1), J_n / M^(n+1), index n = 0..4.
-    ``<name>_error`` (same unit as ``<name>``): error estimates of area, irreducible_mass,
-    akv_christodoulou_mass, akv_angular_momentum, dimensionless_spin (NaN: not estimated).
+    circumferences about the spin axis (M), their ratio polar / equatorial and
+    ``circumference_spin``, the chi that ratio has on a Kerr horizon (Brandt & Seidel, PRD 52,
+    870 (1995)), a second spin estimate beside ``dimensionless_spin``;
+    ``mass_multipoles`` / ``spin_multipoles`` M_n / M^(n+1), J_n / M^(n+1), index n = 0..8.
+    ``<name>_error`` (same unit as ``<name>``; the direction's as an angle in radians, the
+    centroid's as one length): error estimates of area, irreducible_mass, akv_christodoulou_mass,
+    akv_angular_momentum, dimensionless_spin, centroid, spin_direction, the two spin-axis
+    circumferences and (per index) the multipoles (NaN: not estimated).
+    ``radius_min`` / ``radius_mean`` / ``radius_max``: coordinate extent about ``centre``.
+    ``stability_eigenvalue`` (1/M^2): principal eigenvalue of the MOTS stability operator for
+    l = n + s, k = (n - s) / 2 (positive: strictly stable, e.g. an outer horizon; negative:
+    unstable, e.g. an inner common MOTS), with ``stability_eigenvalue_error``.
     ``angular_momentum`` is the older coordinate-rotation estimate (3-vector, M^2).
     ``coefficients`` are real spherical-harmonic coefficients of the radius, index l*l + l + m.
     """
@@ -155,9 +176,6 @@ class SurfaceReport:
     radius_min: float = NAN
     radius_mean: float = NAN
     radius_max: float = NAN
-    circumference_xy: float = NAN
-    circumference_xz: float = NAN
-    circumference_yz: float = NAN
     resolution_indicator: float = NAN
     residual_max: float = NAN
     residual_max_between_nodes: float = NAN
@@ -178,6 +196,15 @@ class SurfaceReport:
     akv_christodoulou_mass_error: float = NAN
     akv_angular_momentum_error: float = NAN
     dimensionless_spin_error: float = NAN
+    stability_eigenvalue: float = NAN
+    stability_eigenvalue_error: float = NAN
+    circumference_spin: float = NAN
+    centroid_error: float = NAN
+    spin_direction_error: float = NAN
+    spin_equatorial_circumference_error: float = NAN
+    spin_polar_circumference_error: float = NAN
+    mass_multipoles_error: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    spin_multipoles_error: np.ndarray = field(default_factory=lambda: np.zeros(0))
     iterations: int = 0
     wall_time_s: float = NAN
     latency_s: float = NAN
@@ -191,9 +218,7 @@ class SurfaceReport:
             message="found", centre=triple(s.centre_m), lmax=s.lmax,
             coefficients=np.asarray(s.coefficients_m, dtype=float), area=q.area_m2,
             irreducible_mass=q.irreducible_mass_m, centroid=triple(q.centroid_m), radius_min=q.radius_min_m,
-            radius_mean=q.radius_mean_m, radius_max=q.radius_max_m, circumference_xy=q.circumference_xy_m,
-            circumference_xz=q.circumference_xz_m, circumference_yz=q.circumference_yz_m,
-            resolution_indicator=q.resolution_indicator, residual_max=s.residual_max_per_m,
+            radius_mean=q.radius_mean_m, radius_max=q.radius_max_m, resolution_indicator=q.resolution_indicator, residual_max=s.residual_max_per_m,
             residual_max_between_nodes=s.residual_max_between_nodes_per_m,
             angular_momentum=triple(q.angular_momentum_m2), christodoulou_mass=q.christodoulou_mass_m,
             akv_angular_momentum=q.akv_angular_momentum_m2,
@@ -208,6 +233,14 @@ class SurfaceReport:
             akv_christodoulou_mass_error=q.akv_christodoulou_mass_error_m,
             akv_angular_momentum_error=q.akv_angular_momentum_error_m2,
             dimensionless_spin_error=q.dimensionless_spin_error,
+            stability_eigenvalue=q.stability_eigenvalue_per_m2,
+            stability_eigenvalue_error=q.stability_eigenvalue_error_per_m2,
+            circumference_spin=q.circumference_spin, centroid_error=q.centroid_error_m,
+            spin_direction_error=q.spin_direction_error_rad,
+            spin_equatorial_circumference_error=q.spin_equatorial_circumference_error_m,
+            spin_polar_circumference_error=q.spin_polar_circumference_error_m,
+            mass_multipoles_error=np.asarray(q.mass_multipoles_error, dtype=float),
+            spin_multipoles_error=np.asarray(q.spin_multipoles_error, dtype=float),
             iterations=s.iterations, wall_time_s=s.wall_time_s, latency_s=s.latency_s, method=s.method,
         )
 

@@ -323,6 +323,14 @@ class RunHandle(RunSender):
         """The run's writer token, if this client holds it (keep it to attach again after a restart)."""
         return self._client._tokens.writer_token(self.run_id)
 
+    @property
+    def server_held_iteration(self) -> int:
+        """The highest iteration the server holds (archived, or on its disk in the run's spool),
+        as of the last :meth:`describe` or (re)attach; -1 if none or not known yet. An evolution
+        restarted from a checkpoint need not resubmit slices up to it."""
+        info = self.info
+        return info.highest_held_iteration if info is not None else -1
+
     def describe(self) -> RunInfo | None:
         """The run as the server describes it now; None while the handle is pending (no call)."""
         if self._run_id is None or self._state in ("pending", "failed"):

@@ -18,6 +18,7 @@ from dataclasses import dataclass
 import grpc
 
 from ._errors import PenumbraError, error_from_rpc
+from ._wire import horizons_pb2 as pb
 from ._guidance_types import DataWindows
 from ._results import SliceAck
 from ._slices import OutgoingSlice, build_slice, crop_outgoing_slice
@@ -76,6 +77,9 @@ class SenderStats:
     dropped_locally: int = 0
     refused: int = 0
     retries: int = 0
+    #: Retries not needed: after the link broke mid-upload, the server already held the slice
+    #: (it reached the server's spool before the answer was lost).
+    held_by_server: int = 0
     bytes_sent: int = 0
     send_seconds: float = 0.0
     #: Slices sent cropped to the server's data windows, and what they would have cost whole.
@@ -246,6 +250,17 @@ class RunSender:
         self.stats.grown += int(growth.grown)
         return cut, True
 
+    def _held_by_server(self, iteration: int) -> bool:
+        """Whether the server already holds ``iteration``, its newest slice (asked after a failed
+        upload: a crash after the slice reached the server's spool loses only the answer).
+        Equality only: a lower iteration the server might not hold is resent (and answered as a
+        duplicate if held)."""
+        try:
+            run = self._client._stub.GetRun(pb.GetRunRequest(run_id=self.run_id), timeout=self._client.deadline_s)
+        except (grpc.RpcError, ValueError):
+            return False
+        return run.run.highest_held_iteration == iteration and run.run.slices_received > 0
+
     def _send(self, pending: _Pending) -> None:
         stub = self._client._stub
         full_bytes = pending.slice_.nbytes
@@ -289,6 +304,13 @@ class RunSender:
                 self.stats.retries += 1
                 self._stopping.wait(backoff)
                 backoff = min(2 * backoff, 2.0)
+                if slice_.part_count == 1 and self._held_by_server(slice_.iteration):
+                    self.stats.held_by_server += 1
+                    self.stats.duplicates += 1
+                    pending.ticket._resolve(SliceAck(iteration=slice_.iteration, accepted=False, duplicate=True,
+                                                     attempts=attempts, persisted=True))
+                    self._link_works()
+                    return
                 continue
             ack = SliceAck.from_wire(response, attempts=attempts, cropped=cropped, uncropped_bytes=full_bytes,
                                      part_index=slice_.part_index)

@@ -143,6 +143,8 @@ class RunSpec:
             data; pass the same to :func:`build_slice` so it accepts NaN there).
         shift_gauge: "moving_puncture" (puncture tracks are integrated from the shift the slices
             carry), "other", or None (not declared); only "moving_puncture" uses the shift.
+        formation_forecast: for a pair, forecast when the common horizon forms
+            (:class:`FormationForecastEvent`; default True; False turns the searches off).
     """
 
     variable_set: str
@@ -156,6 +158,7 @@ class RunSpec:
     symmetry: str = "none"
     excised_spheres: Sequence[ExcisedSphere] = ()
     shift_gauge: str | None = None
+    formation_forecast: bool = True
 
     def __post_init__(self) -> None:
         check_variable_set(self.variable_set)
@@ -196,6 +199,7 @@ class RunSpec:
             symmetry=_SYMMETRY_WIRE[self.symmetry],
             excised_spheres=[sphere.to_wire() for sphere in self.excised_spheres],
             shift_gauge=_SHIFT_GAUGE_WIRE[self.shift_gauge],
+            formation_forecast_off=not self.formation_forecast,
         )
 
     @classmethod

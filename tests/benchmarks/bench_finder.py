@@ -8,7 +8,8 @@ scipy finder (tests/benchmarks/peer_spline_finder.py).
 
 Sections 5-7 print the figures quoted in DEVELOPERS.md, "The finder", among them exactly the two lines
 ``iteration cost / gather floor: <ratio>`` and ``find r/dx=50 over r/dx=12.5: <ratio>, peak MiB <n>``.
-Run one section alone with ``--only 5`` (or 6, 7).
+Section 8 prints ``constant-expansion search / common-horizon find: <ratio>`` (the cost of one
+formation-forecast search). Run one section alone with ``--only 5`` (or 6, 7, 8).
 """
 
 from __future__ import annotations
@@ -64,6 +65,8 @@ def main() -> None:
         iteration_cost()
     if only in (None, "7"):
         resolution_scaling()
+    if only in (None, "8"):
+        constant_expansion_cost()
 
 
 def sections_1_to_4() -> None:
@@ -227,6 +230,30 @@ def iteration_cost() -> None:
     print(f"   {grid.size} nodes, {order}^3 stencil, {n_values} values per node: gather {t_gather * 1e3:.2f} ms, "
           f"Newton iteration {per_iteration * 1e3:.2f} ms")
     print(f"iteration cost / gather floor: {per_iteration / t_gather:.1f}")
+
+
+def constant_expansion_cost() -> None:
+    """The formation forecast's search (c_min of the enclosing constant-expansion surfaces) just
+    before an equal-mass Brill-Lindquist pair's common horizon forms, against the ordinary Newton
+    find of that common horizon just after, same grid spacing, same l_max and starting sphere."""
+    from penumbra_server.numerics.constant_expansion import ConstantExpansionSettings, smallest_enclosing_expansion
+
+    spacing, lmax, start = 0.04, 10, 0.9
+    print(f"\n8. constant-expansion search against an ordinary find (equal pair, bare masses 0.5, dx = {spacing} M, "
+          f"l_max {lmax}, starting sphere r = {start} M)")
+
+    def slice_at(d):
+        pair = BrillLindquist(masses=np.array([0.5, 0.5]), positions=np.array([[0.5 * d, 0, 0], [-0.5 * d, 0, 0]]))
+        return sample_slice(pair, [cube([0.0, 0.0, 0.0], 1.25, spacing)], variable_set="conformal_w")
+
+    before, after = slice_at(0.80), slice_at(0.74)
+    t_search, found = best_of(lambda: smallest_enclosing_expansion(
+        before, [0.0, 0.0, 0.0], start, settings=ConstantExpansionSettings(lmax=lmax, tolerance=1e-9)), 2)
+    t_find, common = best_of(lambda: find_surface(after, Surface.sphere([0.0, 0.0, 0.0], start, lmax),
+                                                  settings=FinderSettings(lmax=lmax, tolerance=1e-9)), 2)
+    print(f"   search at d = 0.80 M: {t_search * 1e3:.0f} ms, {found.solves} Newton solves, {found.message}")
+    print(f"   common-horizon find at d = 0.74 M: {t_find * 1e3:.0f} ms ({common.nit} iterations, status {common.status})")
+    print(f"constant-expansion search / common-horizon find: {t_search / t_find:.1f}")
 
 
 def _scaling_case(points_per_radius: float) -> dict:

@@ -11,6 +11,9 @@ as an evolution code on another node would (sharing one interpreter's GIL halved
 2. How long submit() blocks the caller (it only queues; build_slice makes the copy).
 3. Latency from a slice's arrival at the server to its surface events (Brill-Lindquist lone
    hole, slices sent slowly enough that none waits in the queue).
+4. The spool's cost: writing one slice of the throughput size to a run's spool (file written,
+   fsync, rename, directory fsync: what SendSlice does before its answer) and removing it,
+   against the upload time per slice measured in 1. (which already includes the spool write).
 """
 
 from __future__ import annotations
@@ -30,8 +33,11 @@ import numpy as np
 
 import penumbra_shim as ps
 from penumbra_server.archive import open_archive
+from penumbra_server.numerics.slices import Patch, Slice, VariableSet
 from penumbra_server.numerics.spacetimes import BrillLindquist, sample_patch
 from penumbra_server.server import BackgroundServer, ServerOptions
+from penumbra_server.server.run_types import QueuedSlice
+from penumbra_server.server.spool import RunSpool
 
 _RAW_METHOD = "/penumbra.bench.RawBytes/Send"
 
@@ -175,8 +181,29 @@ def bench_latency(address: str, archive_root: Path, *, nodes: int, slices: int, 
     }
 
 
+def bench_spool(directory: Path, *, nodes: int, slices: int) -> dict:
+    """Seconds per slice to write a throughput-sized slice to a spool durably, and to remove it."""
+    patch = Patch(origin=np.full(3, -1.0), spacing=np.full(3, 2 / (nodes - 1)), shape=(nodes,) * 3, level=0,
+                  fields=flat_fields(nodes))
+    spool = RunSpool(directory / "bench.spool")
+    write_s, release_s = [], []
+    for i in range(slices):
+        item = QueuedSlice(slice_=Slice(time=float(i), iteration=i, variable_set=VariableSet.ADM, patches=(patch,)),
+                           nbytes=0, arrival_unix_s=time.time())
+        t0 = time.perf_counter()
+        spool.write(item)
+        t1 = time.perf_counter()
+        spool.release([i])
+        release_s.append(time.perf_counter() - t1)
+        write_s.append(t1 - t0)
+    spool.remove_all()
+    return {"write_s": write_s, "release_s": release_s}
+
+
 def _summary(values) -> str:
     values = list(values)
+    if not values:
+        return "(no samples)"
     return f"median {statistics.median(values) * 1e3:8.2f} ms   max {max(values) * 1e3:8.2f} ms   (n={len(values)})"
 
 
@@ -195,6 +222,7 @@ def main(argv=None) -> int:
             raw_MiBps = clients.apply(bench_raw, (raw.port,), dict(nbytes=shim["slice_bytes"], slices=options.slices))
             latency = clients.apply(bench_latency, (bg.address, archive_root),
                                     dict(nodes=options.latency_nodes, slices=options.latency_slices, interval_s=1.5))
+        spool = bench_spool(archive_root, nodes=options.nodes, slices=options.slices)
     mib = shim["slice_bytes"] / 2**20
     print(f"ingest: {options.slices} slices of {mib:.1f} MiB ({options.nodes}^3 nodes x 12 fields, float64), 1 MiB chunks")
     print(f"  raw grpc.aio bytes stream          {raw_MiBps:8.1f} MiB/s")
@@ -204,6 +232,13 @@ def main(argv=None) -> int:
     print(f"  accepted {shim['accepted']} of {options.slices}")
     print(f"submit() blocking the caller:        {_summary(shim['submit_s'])}")
     print(f"build_slice() (validation + copy):   {_summary(shim['build_s'])}")
+    upload_s = shim["slice_bytes"] / (shim["stream_MiBps"] * 2**20)
+    write_median = statistics.median(spool["write_s"])
+    print(f"spool, one {mib:.1f} MiB slice written durably (fsync, rename) before the answer:")
+    print(f"  spool write                        {_summary(spool['write_s'])}   {mib / write_median:8.1f} MiB/s")
+    print(f"  spool removal after the archive    {_summary(spool['release_s'])}")
+    print(f"  upload per slice (1., spool included) {upload_s * 1e3:8.2f} ms   spool write / upload "
+          f"{write_median / upload_s:.2f}")
     print(f"latency, lone hole {options.latency_nodes}^3 conformal_w, lmax 8, {latency['found']} surfaces "
           f"(first slice scans, later ones are seeded):")
     print(f"  arrival -> surface event emitted   {_summary(latency['arrival_to_event_s'])}")

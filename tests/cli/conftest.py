@@ -27,9 +27,8 @@ def _row(scenario, index, result, quantities, seq):
     if result.success:
         q = quantities
         row.update(centre=result.surface.centre, coefficients=result.surface.coefficients, area=q.area,
-                   irreducible_mass=q.irreducible_mass, centroid=q.centroid, radius_min=q.radius_min,
-                   radius_mean=q.radius_mean, radius_max=q.radius_max, circumference_xy=q.circumference_xy,
-                   circumference_xz=q.circumference_xz, circumference_yz=q.circumference_yz,
+                   irreducible_mass=q.irreducible_mass, centroid=q.centroid,
+                   coordinate_radius=[q.radius_min, q.radius_mean, q.radius_max],
                    resolution_indicator=q.resolution_indicator)
     return row
 

@@ -70,7 +70,8 @@ def test_report_writes_pngs_and_a_summary(small_archive, small_report):
     path, expected = small_archive
     result = small_report
     names = sorted(p.name for p in result.plots)
-    assert names == ["areas_masses.png", "cross_sections.png", "guidance.png", "spin.png", "tracks.png"]
+    assert names == ["areas_masses.png", "cross_sections.png", "formation.png", "guidance.png", "mots.png",
+                     "multipoles.png", "spin.png", "tracks.png"]
     for plot in result.plots:
         width, height = _png_size(plot)
         assert width > 300 and height > 300
@@ -144,8 +145,9 @@ def test_cross_section_plot_draws_one_curve_per_found_surface_at_the_chosen_time
             # radius range the measurement archived for that surface (at its nodes; 1 % slack for
             # the curve's points between the nodes).
             r = np.hypot(x - cols["centre"][row][0], y - cols["centre"][row][1])
-            slack = 0.01 * float(cols["radius_mean"][row])
-            assert float(cols["radius_min"][row]) - slack <= r.min() and r.max() <= float(cols["radius_max"][row]) + slack
+            least, mean, largest = (float(v) for v in cols["coordinate_radius"][row])
+            slack = 0.01 * mean
+            assert least - slack <= r.min() and r.max() <= largest + slack
 
 
 def test_report_command_line(small_archive, tmp_path, capsys):
@@ -155,8 +157,9 @@ def test_report_command_line(small_archive, tmp_path, capsys):
     assert status == 0
     assert "common horizon (common) first found" in out.out
     assert (tmp_path / "cli" / "tracks.png").exists()
-    assert "report: 7/7" in out.err  # progress lines (read, five plots, summary)
+    assert "report: 10/10" in out.err  # progress lines (read, eight plots, summary)
     assert (tmp_path / "cli" / "spin.png").exists()
+    assert (tmp_path / "cli" / "mots.png").exists()
 
 
 def test_report_of_a_missing_archive_fails_with_a_reason(tmp_path, capsys):

@@ -256,10 +256,48 @@ def test_frame_shows_spin_and_masses_with_error_bars():
                               akv_christodoulou_mass=1.0000036, akv_christodoulou_mass_error=1.04e-4,
                               dimensionless_spin=0.5999994, dimensionless_spin_error=1.11e-4,
                               spin_direction=np.array([0.0, 0.6, 0.8]), centroid=np.zeros(3), residual_max=1e-9,
-                              latency_s=0.25)
+                              latency_s=0.25, circumference_spin=0.6012)
     frame = render_frame(info, {"A": ps.SurfaceState("A", report, True, 0, "found", 0)}, None, now_unix_s=0.0)
     row = next(l for l in frame.splitlines() if l.startswith("A "))
     assert "chi" in frame and "M_chr [M]" in frame and "spin axis" in frame
     assert "45.23930 +-1.1e-02" in row and "0.94869 +-1.2e-04" in row
     assert "1.00000 +-1.0e-04" in row and "0.6000 +-1.1e-04" in row
     assert "(+0.00, +0.60, +0.80)" in row
+    assert "chi (C_p/C_e)" in frame and " 0.601 " in row  # the circumference estimate beside the AKV chi
+
+
+def test_frame_shows_the_remnant_settling_from_the_common_surface_events():
+    spec = ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (1, 0, 0), 0.5), ps.Body("B", (-1, 0, 0), 0.5)))
+    info = ps.RunInfo(run_id="run-cccccccccccc", name="remnant", state="open", spec=spec, created_unix_s=0.0,
+                      closed_unix_s=math.nan, slices_received=30, slices_processed=30, slices_skipped=0,
+                      slices_duplicate=0, last_seq=100, archive_path="", last_received_iteration=290,
+                      last_received_time=29.0)
+    progress = RunProgress(last_seq=0)
+    progress.absorb(ps.CommonHorizonFormedEvent(seq=1, run_id=info.run_id, kind="common_horizon_formed", time=10.0,
+                                                iteration=100, emitted_unix_s=0.0, label="common",
+                                                common=ps.CommonHorizon(label="common", time=10.0, iteration=100,
+                                                                        body_labels=("A", "B"), separation=0.7,
+                                                                        irreducible_mass=0.9, area=40.0)))
+
+    def found(t, chi):
+        return ps.SurfaceFoundEvent(seq=int(t) + 2, run_id=info.run_id, kind="surface_found", time=t, iteration=int(10 * t),
+                                    emitted_unix_s=0.0, surface=ps.SurfaceReport(
+                                        label="common", time=t, iteration=int(10 * t), found=True, status=0,
+                                        irreducible_mass=0.88, irreducible_mass_error=1e-4, akv_christodoulou_mass=0.95,
+                                        akv_christodoulou_mass_error=1e-4, dimensionless_spin=chi,
+                                        dimensionless_spin_error=1e-3, akv_angular_momentum=chi * 0.95 ** 2,
+                                        akv_angular_momentum_error=1e-3, spin_direction=np.array([0.0, 0.0, 1.0])))
+
+    # chi rings down towards 0.69 as 0.05 exp(-(t - 10) / 2): still moving at t = 14, settled by t = 28
+    # (over the last 10 M it moves by less than its error bar 1e-3).
+    for t in np.arange(10.0, 14.5, 1.0):
+        progress.absorb(found(float(t), 0.69 + 0.05 * math.exp(-(t - 10.0) / 2.0)))
+    early = next(l for l in render_frame(info, {}, progress, now_unix_s=0.0).splitlines() if l.startswith("remnant"))
+    assert early.startswith("remnant (common): NOT settled over t = 4.000 .. 14.000 M (5 samples)")
+    for t in np.arange(15.0, 28.5, 1.0):
+        progress.absorb(found(float(t), 0.69 + 0.05 * math.exp(-(t - 10.0) / 2.0)))
+    late = next(l for l in render_frame(info, {}, progress, now_unix_s=0.0).splitlines() if l.startswith("remnant"))
+    assert late.startswith("remnant (common): settled over t = 18.000 .. 28.000 M (11 samples)")
+    assert f"chi {0.69 + 0.05 * math.exp(-9.0):.5f} +- 1.0e-03" in late and "M_chr 0.950000 +- 1.0e-04 M" in late
+    spread = 0.05 * (math.exp(-4.0) - math.exp(-9.0)) / 1e-3  # chi at t = 18 minus the latest, in error bars
+    assert f"chi {spread:.2g}," in late

@@ -4,7 +4,11 @@ Kerr (Kerr-Schild, tilted and off-centre, a = 0.5 and 0.9; docs/references.md it
 the two individual horizons of a Brill-Lindquist pair (item 7; reference: the same surface found
 and measured on the exact evaluator at l_max 16), each sampled onto a grid at three spacings.
 Every quantity that has a true value is a case; the cases not generated are stated beside the
-list. The configurations differ from those the safety factor was calibrated on (README.md, "How accurate the numbers are").
+list. The overstatement of a case is stated / max(true error, round-off floor): the floor is the
+bar's own (1e-12 times the quantity's scale, numerics/error_bars.py), so a quantity exactly 0 by
+construction (J, chi and J_n of a Brill-Lindquist hole, K_ij = 0) counts as exact when its bar is
+the floor. The issue's criteria: the bar bounds the true error in >= 95 % of the cases and
+overstates it by no more than a factor 30 (asserted in >= 95 % of the cases as well).
 """
 
 from __future__ import annotations
@@ -69,10 +73,10 @@ def grid_case(kind: str, spacing: float):
         spacing *= m
         ref = brill_lindquist_reference(index)
         truth = {name: getattr(ref, name).value for name in QUANTITIES}
-        # Not generated: J, chi, J_n and the spin direction. K_ij = 0, so J and J_n are exactly 0
-        # on the grid too (no test), and a spinless hole has no spin direction.
-        names = tuple(n for n in QUANTITIES if n not in ("angular_momentum", "dimensionless_spin",
-                                                          "spin_multipoles", "spin_direction"))
+        # K_ij = 0: J, chi and J_n are exactly 0. Not generated: the spin direction (a spinless
+        # hole has none; its bar is pi).
+        truth = dict(truth, angular_momentum=0.0, dimensionless_spin=0.0, spin_multipoles=np.zeros(9))
+        names = tuple(n for n in QUANTITIES if n != "spin_direction")
     data = sample_slice(hole, [cube_box(centre, half, spacing)], variable_set="conformal_chi")
     lmax = 12 if kind.startswith("kerr") else 10
     # Found and quoted at the same interpolation order (4, the service's): the bars estimate the
@@ -89,6 +93,18 @@ def grid_case(kind: str, spacing: float):
     return quoted, truth, names
 
 
+def round_off_floor(name: str, truth: dict) -> float:
+    """The bars' round-off floor (numerics/error_bars.py): 1e-12 times the quantity's scale."""
+    if name == "area":
+        return 1e-12 * truth["area"]
+    if name == "angular_momentum":
+        return 1e-12 * truth["christodoulou_mass"] ** 2
+    if name in ("irreducible_mass", "christodoulou_mass", "centroid", "equatorial_circumference",
+                "polar_circumference"):
+        return 1e-12 * np.sqrt(truth["area"] / (4 * np.pi))
+    return 1e-12
+
+
 def true_error(name: str, value, truth) -> np.ndarray:
     if name == "spin_direction":
         return np.array([direction_angle(value, truth)])
@@ -98,37 +114,46 @@ def true_error(name: str, value, truth) -> np.ndarray:
 
 
 @pytest.mark.slow
-def test_error_bars_cover_the_true_error():
-    cases = []  # (configuration, spacing, quantity, index, stated, true)
+def test_error_bars_cover_the_true_error_and_overstate_it_at_most_thirtyfold():
+    cases = []  # (configuration, spacing, quantity, index, stated, true, floor)
     for kind, spacings in (("kerr0.5", KERR_SPACINGS), ("kerr0.9", KERR_SPACINGS),
                            ("bl0", BL_SPACINGS), ("bl1", BL_SPACINGS)):
         for spacing in spacings:
             quoted, truth, names = grid_case(kind, spacing)
+            assert quoted.interpolation_check == "re-found at order 6"
             for name in names:
                 q = getattr(quoted, name)
-                stated = np.atleast_1d(q.error) * np.ones_like(true_error(name, q.value, truth[name]))
-                for i, (s, t) in enumerate(zip(stated, true_error(name, q.value, truth[name]))):
-                    if name == "spin_multipoles" and i == 0:
-                        continue  # J_0 = 0 by definition
-                    cases.append((kind, spacing, name, i, float(s), float(t)))
+                errors = true_error(name, q.value, truth[name])
+                stated = np.atleast_1d(q.error) * np.ones_like(errors)
+                for i, (s, t) in enumerate(zip(stated, errors)):
+                    if name in ("mass_multipoles", "spin_multipoles") and i == 0:
+                        continue  # M_0 = 1 and J_0 = 0 by definition
+                    cases.append((kind, spacing, name, i, float(s), float(t), round_off_floor(name, truth)))
     stated = np.array([c[4] for c in cases])
     true = np.array([c[5] for c in cases])
+    floor = np.array([c[6] for c in cases])
     covered = stated >= true
-    with_ratio = covered & (true > 0)
-    ratio = stated[with_ratio] / true[with_ratio]
-    print(f"\ncases {len(cases)}, covered {covered.sum()} ({covered.mean():.3f}); true error exactly 0: {(true == 0).sum()}")
-    print("overstatement percentiles 10/25/50/75/90/95/max:", np.percentile(ratio, [10, 25, 50, 75, 90, 95, 100]).round(1))
-    print(f"overstatement <= 30 in {(ratio <= 30).mean():.3f} of covered cases with a non-zero true error")
-    for c, ok in zip(cases, covered):
-        if not ok:
-            print("  missed:", c[:4], f"stated {c[4]:.2e} true {c[5]:.2e}")
+    overstatement = stated / np.maximum(true, floor)
+    modest = overstatement <= 30
+    print(f"\ncases {len(cases)}: covered {covered.mean():.3f}, overstated at most 30x {modest.mean():.3f}, "
+          f"both {(covered & modest).mean():.3f}; true error at or below the floor: {(true <= floor).sum()}")
+    above = true > floor
+    print(f"cases with a true error above the floor {above.sum()}: covered {covered[above].mean():.3f}, "
+          f"overstated at most 30x {modest[above].mean():.3f}")
+    print("overstatement percentiles 5/25/50/75/95/max:",
+          np.percentile(overstatement, [5, 25, 50, 75, 95, 100]).round(1))
+    for c, ok, fine in zip(cases, covered, modest):
+        if not (ok and fine):
+            print("  outside:", c[:4], f"stated {c[4]:.2e} true {c[5]:.2e}")
+    for group in ("kerr", "bl"):
+        mine = np.array([c[0].startswith(group) for c in cases])
+        print(f"{group}: {mine.sum()} cases, covered {covered[mine].mean():.3f}, at most 30x {modest[mine].mean():.3f}")
     by_quantity = {}
-    for c, ok in zip(cases, covered):
-        by_quantity.setdefault(c[2], []).append(ok)
-    print("coverage by quantity:", {k: f"{np.mean(v):.2f} of {len(v)}" for k, v in by_quantity.items()})
+    for c, ok, fine in zip(cases, covered, modest):
+        by_quantity.setdefault(c[2], []).append(ok and fine)
+    print("both criteria by quantity:", {k: f"{np.mean(v):.2f} of {len(v)}" for k, v in by_quantity.items()})
     assert covered.mean() >= 0.95
-    # The 30x ceiling holds for the typical case, not every case (README.md, "How accurate the numbers are"): assert the median.
-    assert np.median(ratio) <= 30
+    assert modest.mean() >= 0.95
 
 
 def test_exact_data_has_no_interpolation_term_and_truncation_shrinks_with_lmax():
@@ -142,7 +167,7 @@ def test_exact_data_has_no_interpolation_term_and_truncation_shrinks_with_lmax()
         found = find_surface(hole, Surface.sphere(CENTRE, 1.9, lmax), settings=FinderSettings(lmax=lmax))
         assert found.success, found.message
         q = quote_horizon(found.surface, hole, n_max=4)
-        assert q.lower_order is None and q.order_scale == 0.0 and q.lower_lmax == lmax - 2
+        assert q.check_order is None and q.interpolation_check == "exact data" and q.lower_lmax == lmax - 2
         assert abs(q.area.value - 8 * np.pi * r_plus) <= q.area.error
         assert abs(q.angular_momentum.value - a) <= q.angular_momentum.error
         assert direction_angle(q.spin_direction.value, AXIS) <= q.spin_direction.error

@@ -16,7 +16,7 @@ from penumbra_server.numerics.spacetimes import (
     SchwarzschildKerrSchild,
     sample_slice,
 )
-from penumbra_server.numerics.stability import stability_matrices, stability_spectrum
+from penumbra_server.numerics.stability import principal_eigenvalue, stability_matrices, stability_spectrum
 from penumbra_server.numerics.surfaces import Surface, coefficient_count, harmonic_basis
 
 
@@ -175,3 +175,18 @@ def test_bad_input_is_named():
         stability_matrices(sphere, hole, matter_term=np.zeros(3))
     with pytest.raises(ValueError, match="step"):
         stability_matrices(sphere, hole, curvature_step=0.0)
+
+
+def test_principal_eigenvalue_of_leading_blocks_equals_a_lower_degree_solve():
+    # The harmonics are ordered by degree, so the lower-degree Galerkin problem on the same
+    # quadrature is the leading block (a property of the basis ordering, checked here directly).
+    hole = KerrKerrSchild(mass=1.0, spin=0.7)
+    surface = horizon(hole, Surface.sphere([0.05, 0, 0], 1.75, 8), 8)
+    mats = stability_matrices(surface, hole)
+    lower = stability_matrices(surface, hole, lmax=6, quadrature_theta=2 * 8 + 6)
+    assert principal_eigenvalue(mats, 6) == pytest.approx(stability_spectrum(surface, hole, lmax=6,
+                                                                             quadrature_theta=22).principal_eigenvalue, rel=1e-10)
+    assert np.allclose(mats.operator[:49, :49], lower.operator, rtol=0, atol=1e-12 * np.abs(mats.operator).max())
+    assert principal_eigenvalue(mats) == pytest.approx(stability_spectrum(surface, hole).principal_eigenvalue, rel=1e-10)
+    with pytest.raises(ValueError, match="lmax"):
+        principal_eigenvalue(mats, 9)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import threading
+import warnings
 
 import numpy as np
 import pytest
@@ -43,8 +44,7 @@ def _surface_row(iteration: int, *, found: bool = True) -> dict:
             coefficients=np.arange(NCOEF, dtype=float) + iteration,
             area=16 * np.pi,
             irreducible_mass=1.0,
-            radius_min=0.5,
-            radius_max=0.5,
+            coordinate_radius=[0.5, 0.5, 0.5],
         )
     return row
 
@@ -145,3 +145,26 @@ def test_list_archives_summarises_each_run(tmp_path):
     summaries = {s.run_id: s for s in list_archives(tmp_path)}
     assert set(summaries) == {"run-one", "run-two"}
     assert summaries["run-one"].slices == 1 and summaries["run-one"].surfaces == {"A": 1, "B": 0}
+
+
+def test_an_archive_with_the_older_five_multipoles_is_widened_on_reopening(tmp_path):
+    # Archives written before n = 0..8 hold multipoles n = 0..4. Rebuilt here with zarr as the
+    # older writer left them; a restarted server appends rows of nine.
+    writer = _writer(tmp_path)
+    row = dict(_surface_row(1), mass_multipoles=np.arange(9.0), spin_multipoles=np.arange(9.0))
+    writer.commit(surface_rows={"A": [row]})
+    group = zarr.open_group(str(writer.path / "surfaces" / "A"), mode="r+", zarr_format=3)
+    del group["mass_multipoles"]
+    old = group.create_array("mass_multipoles", shape=(1, 5), chunks=(256, 5), dtype="float64", fill_value=np.nan,
+                             dimension_names=["time", "multipole"])
+    old[:] = [[1.0, 0.0, -0.1, 0.0, 0.02]]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # zarr: consolidated metadata is not yet in the v3 spec
+        zarr.consolidate_metadata(str(writer.path))  # as the older writer left it: consistent
+    again = ArchiveWriter.open_existing(writer.path)
+    again.commit(surface_rows={"A": [dict(_surface_row(2), mass_multipoles=np.arange(9.0))]})
+    moments = open_archive(writer.path).surface("A")["mass_multipoles"]
+    assert moments.shape == (2, 9)
+    np.testing.assert_array_equal(moments[0, :5], [1.0, 0.0, -0.1, 0.0, 0.02])
+    assert np.all(np.isnan(moments[0, 5:]))
+    np.testing.assert_array_equal(moments[1], np.arange(9.0))

@@ -18,6 +18,15 @@ from service_support import lone_hole_slice, lone_spec
 
 xr = pytest.importorskip("xarray")
 
+#: The notebook lines of README.md, "Reading results in a notebook", verbatim (the path is the
+#: only thing substituted): open a surface group, export it to CSV and to netCDF.
+README_LINES = """\
+import xarray as xr
+ds = xr.open_zarr("archive/<run_id>.zarr", group="surfaces/A")
+ds[["area", "irreducible_mass", "christodoulou_mass"]].to_dataframe().to_csv("A.csv")
+ds[["area", "irreducible_mass", "centroid"]].to_netcdf("A.nc", engine="scipy")   # netCDF3 via scipy
+"""
+
 
 def _finished_run(client, archive_root, name):
     run = client.open_run(lone_spec(name))
@@ -54,6 +63,24 @@ def test_xarray_opens_a_served_archive_with_time_as_coordinate_and_exports(clien
     assert view.surface_dataset("A")["time"].dims == ("time",)
     assert view.slices_dataset().sizes["time"] == 3
     assert any(s.run_id == view.run_id for s in list_archives(archive_root))
+
+
+def test_the_readme_lines_run_as_written(client, archive_root, tmp_path, monkeypatch):
+    view = _finished_run(client, archive_root, "readme lines")
+    monkeypatch.chdir(tmp_path)
+    namespace: dict = {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no warning at all, consolidated metadata or other
+        exec(README_LINES.replace("archive/<run_id>.zarr", str(view.path)), namespace)
+    ds = namespace["ds"]
+    assert ds["time"].dims == ("time",) and "time" in ds.coords
+    table = np.genfromtxt(tmp_path / "A.csv", delimiter=",", names=True)
+    assert table.dtype.names == ("time", "area", "irreducible_mass", "christodoulou_mass")
+    np.testing.assert_allclose(table["time"], view.surface("A")["time"])
+    np.testing.assert_allclose(table["christodoulou_mass"], view.surface("A")["christodoulou_mass"])
+    back = xr.open_dataset(tmp_path / "A.nc", engine="scipy")
+    np.testing.assert_allclose(back["centroid"].values, view.surface("A")["centroid"])
+    np.testing.assert_allclose(back["time"].values, view.surface("A")["time"])
 
 
 def test_archives_written_with_the_older_dimension_names_read_the_same(tmp_path):

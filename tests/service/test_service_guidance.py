@@ -3,7 +3,8 @@ Brill-Lindquist pair (bare masses 0.6 + 0.4) on a shrinking circular track
 (service/penumbra_server/cli/demo_scenario.py):
 
 * the recommended finest region always contains the horizon found in the next slice;
-* regions merge exactly when their spheres overlap;
+* regions merge when their spheres overlap and separate only when clear by a margin (hysteresis
+  through the steering), so an approaching pair switches at most once per level;
 * the finest spacing puts the requested points across the smallest coordinate diameter;
 * the latest guidance is the same from the shim's cache, the unary call and the event stream;
 * a run that sends slices cropped to the server's data windows finds the same surfaces as one
@@ -104,15 +105,24 @@ def test_finest_region_contains_the_next_slices_horizon(full_and_cropped_runs):
     assert checked == 2 * (SLICES - 1)
 
 
-def test_regions_merge_exactly_when_their_spheres_overlap(full_and_cropped_runs):
+def _merged_by_level(g) -> dict[int, bool]:
+    a, b = g.body("heavy"), g.body("light")
+    return {level: len(g.regions_at(level)) == 1 for level in range(1, min(a.finest_level, b.finest_level) + 1)}
+
+
+def test_regions_merge_when_their_spheres_overlap_and_separate_only_when_clear(full_and_cropped_runs):
+    # The steering passes each slice's guidance to the next as ``previous`` (tracking.guidance,
+    # hysteresis): overlapping spheres always share a region; a merged pair whose spheres no
+    # longer overlap stays merged, saying so, until clear by the policy's separation margin.
     events = full_and_cropped_runs["full_events"]
     merged_seen = separate_seen = 0
     for g in (e.guidance for e in events if e.kind == "refinement_guidance"):
         a, b = g.body("heavy"), g.body("light")
         for level in range(1, min(a.finest_level, b.finest_level) + 1):
             regions = g.regions_at(level)
-            overlap = np.linalg.norm(a.centre - b.centre) < a.radii[level - 1] + b.radii[level - 1]
-            if overlap:
+            distance = np.linalg.norm(a.centre - b.centre)
+            reach = a.radii[level - 1] + b.radii[level - 1]
+            if distance < reach:
                 assert [set(r.bodies) for r in regions] == [{"heavy", "light"}]
                 region = regions[0]
                 assert region.merged and "merged" in region.reason
@@ -122,11 +132,24 @@ def test_regions_merge_exactly_when_their_spheres_overlap(full_and_cropped_runs)
                     np.testing.assert_array_less(region.lower - 1e-12, body.lower[level - 1])
                     np.testing.assert_array_less(body.upper[level - 1], region.upper + 1e-12)
                 merged_seen += 1
+            elif len(regions) == 1:
+                assert "hysteresis" in regions[0].reason and distance <= 1.25 * reach
+                merged_seen += 1
             else:
                 assert sorted(r.bodies for r in regions) == [("heavy",), ("light",)]
                 separate_seen += 1
     print(f"\nregions per level: {merged_seen} merged, {separate_seen} separate")
     assert merged_seen and separate_seen
+
+
+def test_the_approaching_pair_switches_between_merged_and_separate_at_most_once_per_level(full_and_cropped_runs):
+    states: dict[int, list[bool]] = {}
+    for g in (e.guidance for e in full_and_cropped_runs["full_events"] if e.kind == "refinement_guidance"):
+        for level, merged in _merged_by_level(g).items():
+            states.setdefault(level, []).append(merged)
+    switches = {level: sum(x != y for x, y in zip(s, s[1:])) for level, s in states.items()}
+    print(f"\nmerged/separate switches per level over {SLICES} slices: {switches}")
+    assert states and all(count <= 1 for count in switches.values())
 
 
 def test_finest_spacing_follows_the_points_across_the_horizon(full_and_cropped_runs):

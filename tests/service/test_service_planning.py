@@ -169,3 +169,67 @@ def test_a_common_plan_refuses_a_surface_that_misses_a_body():
     assert plan.points_outside(Surface.sphere([0.0, 0.0, 0.0], 0.6, 4)) == []
     outside = plan.points_outside(Surface.sphere([0.3, 0.0, 0.0], 0.2, 4))  # the first body's own
     assert len(outside) == 1 and np.allclose(outside[0], [-0.3, 0.1, 0.0])
+
+
+def _finest_merged_states(separations, policy) -> list[bool]:
+    """Finest-level merged state of each guidance the steering issues for a pair at ``separations``
+    (one slice per M), as the run's events carry it."""
+    settings = RunSettings(display_name="t", variable_set=VariableSet.ADM, mass_scale_solar_masses=0.0,
+                           bodies=(BodySpec("A", (2.0, 0.0, 0.0), 0.5), BodySpec("B", (-2.0, 0.0, 0.0), 0.5)),
+                           lmax=4, tolerance=1e-8, max_iterations=20, queue_depth=2, refinement=policy)
+    steering = RunSteering(settings, common_horizon=False)
+    states = []
+    for index, d in enumerate(separations):
+        sl = _slice(float(index))
+        outcomes = [_found("A", (0.5 * d, 0.0, 0.0), 0.25), _found("B", (-0.5 * d, 0.0, 0.0), 0.25)]
+        guidance = [n.payload for n in _observe_slice(steering, sl, [], outcomes) if n.kind == "refinement_guidance"]
+        assert len(guidance) == 1
+        finest = guidance[0].levels[-1]
+        states.append(len(finest.regions) == 1)
+    return states
+
+
+def test_the_steering_keeps_merged_regions_merged_so_a_slowly_approaching_pair_switches_once():
+    # The steering hands each guidance to the next as ``previous`` (tracking.guidance,
+    # hysteresis). A pair closing at 0.02 M per M through the finest regions' touching distance
+    # (about 1 M here), with a slow wobble of +-0.1 M on top (an eccentric approach), one slice
+    # per M; it starts far enough apart that the first, uncertain forecasts do not merge it.
+    from penumbra_server.tracking.guidance import RefinementPolicy
+
+    t = np.arange(120, dtype=float)
+    separations = 3.0 - 0.02 * t + 0.1 * np.sin(0.25 * t)
+    with_margin = _finest_merged_states(separations, RefinementPolicy())
+    switches = sum(a != b for a, b in zip(with_margin, with_margin[1:]))
+    without = _finest_merged_states(separations, RefinementPolicy(separation_margin=0.0))
+    plain_switches = sum(a != b for a, b in zip(without, without[1:]))
+    print(f"\nfinest-level switches: {switches} with the separation margin, {plain_switches} without")
+    assert with_margin[0] is False and with_margin[-1] is True and switches == 1
+    assert plain_switches > 1  # the same pair without hysteresis thrashes: the check can fail
+
+
+def test_the_guidance_rebuilt_from_its_archived_event_keeps_the_hysteresis():
+    # A restarted server reads its last guidance back from the archived event
+    # (steering.restore): merged regions must stay merged exactly as with the guidance in memory.
+    from penumbra_server.server._tracking_convert import decode_wire, encode_wire, guidance_notice, \
+        guidance_regions_from_wire
+    from penumbra_server.tracking.forecast import Forecast
+    from penumbra_server.tracking.guidance import HorizonSize, RefinementPolicy, refinement_guidance
+
+    def forecast(d):
+        times = np.linspace(0.0, 4.0, 9)
+        positions = np.array([[[0.5 * d, 0.0, 0.0]] * 9, [[-0.5 * d, 0.0, 0.0]] * 9])
+        return Forecast(bodies=("A", "B"), times=times, positions=positions, uncertainty=np.zeros((2, 9)),
+                        model="static", reason="test", fit_window=(0.0, 0.0), details={})
+
+    sizes = {"A": HorizonSize(0.5, 0.9), "B": HorizonSize(0.5, 0.9)}
+    policy = RefinementPolicy()
+    touching = 2 * float(refinement_guidance(forecast(100.0), sizes, policy=policy).body("A").radii[-1])
+    merged = refinement_guidance(forecast(0.9 * touching), sizes, policy=policy)
+    assert len(merged.finest_regions) == 1
+    event = pb.RunEvent(refinement_guidance=guidance_notice(merged, sizes, 1.0, 10).payload)
+    restored = guidance_regions_from_wire(decode_wire(encode_wire(event)).refinement_guidance)
+    assert [[r.bodies for r in level] for level in restored.levels] == [[r.bodies for r in level]
+                                                                        for level in merged.levels]
+    apart = forecast(1.15 * touching)  # no overlap, but within the 25 % separation margin
+    assert len(refinement_guidance(apart, sizes, policy=policy, previous=restored).finest_regions) == 1
+    assert len(refinement_guidance(apart, sizes, policy=policy).finest_regions) == 2

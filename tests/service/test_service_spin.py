@@ -76,8 +76,11 @@ def test_kerr_spin_is_reported_and_archived(client, archive_root):
     # one 4 pi M (Smarr, PRD 7, 289 (1973), from memory: C_eq = 2 pi (r_+^2 + a^2) / r_+ = 4 pi M).
     assert s.spin_equatorial_circumference == pytest.approx(4 * np.pi * MASS, rel=1e-3)
     assert s.spin_circumference_ratio < 1
+    # The ratio inverted through Kerr's relation (Brandt & Seidel, PRD 52, 870 (1995)) gives chi
+    # again, an estimate independent of the Killing vector.
+    assert s.circumference_spin == pytest.approx(SPIN_A / MASS, abs=1e-2)
     # Mass monopole M_0 / M = 1 and J_1 / M^2 = chi (definitions of the multipoles).
-    assert s.mass_multipoles.shape == (5,) and s.spin_multipoles.shape == (5,)
+    assert s.mass_multipoles.shape == (9,) and s.spin_multipoles.shape == (9,)  # n = 0 .. 8
     assert s.mass_multipoles[0] == pytest.approx(1.0, rel=1e-3)
     assert s.spin_multipoles[1] == pytest.approx(SPIN_A / MASS, rel=1e-3)
     # The coordinate-rotation estimate is kept.
@@ -105,3 +108,22 @@ def test_kerr_spin_is_reported_and_archived(client, archive_root):
     assert np.array_equal(rows["spin_multipoles"][i], s.spin_multipoles)
     for name in errors:
         assert rows[f"{name}_error"][i] == getattr(s, f"{name}_error"), name
+
+    # An outer horizon is strictly stable: positive principal eigenvalue of the stability operator
+    # (Andersson, Mars & Simon, PRL 95, 111102 (2005), from memory); streamed and archived alike.
+    print(f"stability eigenvalue {s.stability_eigenvalue:.6f} +- {s.stability_eigenvalue_error:.1e} / M^2")
+    assert s.stability_eigenvalue > 10 * s.stability_eigenvalue_error > 0
+    assert rows["stability_eigenvalue"][i] == s.stability_eigenvalue
+    assert rows["stability_eigenvalue_error"][i] == s.stability_eigenvalue_error
+    # Every quoted quantity has its error beside it, in the event and in the archive.
+    for name in ("centroid", "spin_direction", "spin_equatorial_circumference", "spin_polar_circumference"):
+        error = getattr(s, f"{name}_error")
+        assert 0 < error < 1e-2, name
+        assert rows[f"{name}_error"][i] == error, name
+    assert s.spin_direction_error >= np.arccos(min(1.0, abs(s.spin_direction[2])))  # the axis is z
+    for name in ("mass_multipoles", "spin_multipoles"):
+        error = getattr(s, f"{name}_error")
+        assert error.shape == (9,) and np.all(np.isfinite(error)) and np.array_equal(rows[f"{name}_error"][i], error)
+    assert rows["circumference_spin"][i] == s.circumference_spin
+    assert "circumference_xy" not in rows and rows["coordinate_radius"][i].tolist() == [
+        s.radius_min, s.radius_mean, s.radius_max]

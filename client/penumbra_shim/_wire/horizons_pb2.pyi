@@ -83,7 +83,7 @@ class BacklogPolicy(_message.Message):
     def __init__(self, policy: _Optional[_Union[BacklogPolicy.Policy, str]] = ..., queue_depth: _Optional[int] = ...) -> None: ...
 
 class RunSpec(_message.Message):
-    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "part_deadline_s", "symmetry", "excised_spheres", "shift_gauge")
+    __slots__ = ("display_name", "variable_set", "mass_scale_solar_masses", "bodies", "finder", "backlog", "refinement", "part_deadline_s", "symmetry", "excised_spheres", "shift_gauge", "formation_forecast_off")
     class Symmetry(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         SYMMETRY_UNSPECIFIED: _ClassVar[RunSpec.Symmetry]
@@ -111,6 +111,7 @@ class RunSpec(_message.Message):
     SYMMETRY_FIELD_NUMBER: _ClassVar[int]
     EXCISED_SPHERES_FIELD_NUMBER: _ClassVar[int]
     SHIFT_GAUGE_FIELD_NUMBER: _ClassVar[int]
+    FORMATION_FORECAST_OFF_FIELD_NUMBER: _ClassVar[int]
     display_name: str
     variable_set: VariableSet
     mass_scale_solar_masses: float
@@ -122,7 +123,8 @@ class RunSpec(_message.Message):
     symmetry: RunSpec.Symmetry
     excised_spheres: _containers.RepeatedCompositeFieldContainer[ExcisedSphere]
     shift_gauge: RunSpec.ShiftGauge
-    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., part_deadline_s: _Optional[float] = ..., symmetry: _Optional[_Union[RunSpec.Symmetry, str]] = ..., excised_spheres: _Optional[_Iterable[_Union[ExcisedSphere, _Mapping]]] = ..., shift_gauge: _Optional[_Union[RunSpec.ShiftGauge, str]] = ...) -> None: ...
+    formation_forecast_off: bool
+    def __init__(self, display_name: _Optional[str] = ..., variable_set: _Optional[_Union[VariableSet, str]] = ..., mass_scale_solar_masses: _Optional[float] = ..., bodies: _Optional[_Iterable[_Union[ExpectedBody, _Mapping]]] = ..., finder: _Optional[_Union[FinderSettings, _Mapping]] = ..., backlog: _Optional[_Union[BacklogPolicy, _Mapping]] = ..., refinement: _Optional[_Union[RefinementPolicy, _Mapping]] = ..., part_deadline_s: _Optional[float] = ..., symmetry: _Optional[_Union[RunSpec.Symmetry, str]] = ..., excised_spheres: _Optional[_Iterable[_Union[ExcisedSphere, _Mapping]]] = ..., shift_gauge: _Optional[_Union[RunSpec.ShiftGauge, str]] = ..., formation_forecast_off: _Optional[bool] = ...) -> None: ...
 
 class ExcisedSphere(_message.Message):
     __slots__ = ("centre_m", "radius_m", "body")
@@ -151,7 +153,7 @@ class RefinementPolicy(_message.Message):
     def __init__(self, points_across_horizon: _Optional[float] = ..., nesting_depth: _Optional[int] = ..., level_ratio: _Optional[float] = ..., finest_radius_factor: _Optional[float] = ..., steering_interval_m: _Optional[float] = ..., guard_points: _Optional[int] = ...) -> None: ...
 
 class Run(_message.Message):
-    __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m", "slices_incomplete", "client_gaps_recorded", "slices_rejected", "admissions_granted", "admissions_refused", "bytes_received")
+    __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m", "slices_incomplete", "client_gaps_recorded", "slices_rejected", "highest_held_iteration", "slices_spooled", "slices_replayed", "admissions_granted", "admissions_refused", "bytes_received")
     class State(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         STATE_UNSPECIFIED: _ClassVar[Run.State]
@@ -176,6 +178,9 @@ class Run(_message.Message):
     SLICES_INCOMPLETE_FIELD_NUMBER: _ClassVar[int]
     CLIENT_GAPS_RECORDED_FIELD_NUMBER: _ClassVar[int]
     SLICES_REJECTED_FIELD_NUMBER: _ClassVar[int]
+    HIGHEST_HELD_ITERATION_FIELD_NUMBER: _ClassVar[int]
+    SLICES_SPOOLED_FIELD_NUMBER: _ClassVar[int]
+    SLICES_REPLAYED_FIELD_NUMBER: _ClassVar[int]
     ADMISSIONS_GRANTED_FIELD_NUMBER: _ClassVar[int]
     ADMISSIONS_REFUSED_FIELD_NUMBER: _ClassVar[int]
     BYTES_RECEIVED_FIELD_NUMBER: _ClassVar[int]
@@ -195,10 +200,13 @@ class Run(_message.Message):
     slices_incomplete: int
     client_gaps_recorded: int
     slices_rejected: int
+    highest_held_iteration: int
+    slices_spooled: int
+    slices_replayed: int
     admissions_granted: int
     admissions_refused: int
     bytes_received: int
-    def __init__(self, run_id: _Optional[str] = ..., spec: _Optional[_Union[RunSpec, _Mapping]] = ..., state: _Optional[_Union[Run.State, str]] = ..., create_time_unix_s: _Optional[float] = ..., close_time_unix_s: _Optional[float] = ..., slices_received: _Optional[int] = ..., slices_processed: _Optional[int] = ..., slices_skipped: _Optional[int] = ..., slices_duplicate: _Optional[int] = ..., last_event_seq: _Optional[int] = ..., archive_path: _Optional[str] = ..., last_received_iteration: _Optional[int] = ..., last_received_time_m: _Optional[float] = ..., slices_incomplete: _Optional[int] = ..., client_gaps_recorded: _Optional[int] = ..., slices_rejected: _Optional[int] = ..., admissions_granted: _Optional[int] = ..., admissions_refused: _Optional[int] = ..., bytes_received: _Optional[int] = ...) -> None: ...
+    def __init__(self, run_id: _Optional[str] = ..., spec: _Optional[_Union[RunSpec, _Mapping]] = ..., state: _Optional[_Union[Run.State, str]] = ..., create_time_unix_s: _Optional[float] = ..., close_time_unix_s: _Optional[float] = ..., slices_received: _Optional[int] = ..., slices_processed: _Optional[int] = ..., slices_skipped: _Optional[int] = ..., slices_duplicate: _Optional[int] = ..., last_event_seq: _Optional[int] = ..., archive_path: _Optional[str] = ..., last_received_iteration: _Optional[int] = ..., last_received_time_m: _Optional[float] = ..., slices_incomplete: _Optional[int] = ..., client_gaps_recorded: _Optional[int] = ..., slices_rejected: _Optional[int] = ..., highest_held_iteration: _Optional[int] = ..., slices_spooled: _Optional[int] = ..., slices_replayed: _Optional[int] = ..., admissions_granted: _Optional[int] = ..., admissions_refused: _Optional[int] = ..., bytes_received: _Optional[int] = ...) -> None: ...
 
 class OpenRunRequest(_message.Message):
     __slots__ = ("spec", "request_id")
@@ -331,7 +339,7 @@ class SendSliceRequest(_message.Message):
     def __init__(self, header: _Optional[_Union[SliceHeader, _Mapping]] = ..., chunk: _Optional[_Union[SliceChunk, _Mapping]] = ...) -> None: ...
 
 class SendSliceResponse(_message.Message):
-    __slots__ = ("run_id", "iteration", "outcome", "received_bytes", "queue_position", "skipped_iterations", "parts_received", "parts_expected")
+    __slots__ = ("run_id", "iteration", "outcome", "received_bytes", "queue_position", "skipped_iterations", "parts_received", "parts_expected", "persisted")
     class Outcome(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         OUTCOME_UNSPECIFIED: _ClassVar[SendSliceResponse.Outcome]
@@ -350,6 +358,7 @@ class SendSliceResponse(_message.Message):
     SKIPPED_ITERATIONS_FIELD_NUMBER: _ClassVar[int]
     PARTS_RECEIVED_FIELD_NUMBER: _ClassVar[int]
     PARTS_EXPECTED_FIELD_NUMBER: _ClassVar[int]
+    PERSISTED_FIELD_NUMBER: _ClassVar[int]
     run_id: str
     iteration: int
     outcome: SendSliceResponse.Outcome
@@ -358,7 +367,8 @@ class SendSliceResponse(_message.Message):
     skipped_iterations: _containers.RepeatedScalarFieldContainer[int]
     parts_received: int
     parts_expected: int
-    def __init__(self, run_id: _Optional[str] = ..., iteration: _Optional[int] = ..., outcome: _Optional[_Union[SendSliceResponse.Outcome, str]] = ..., received_bytes: _Optional[int] = ..., queue_position: _Optional[int] = ..., skipped_iterations: _Optional[_Iterable[int]] = ..., parts_received: _Optional[int] = ..., parts_expected: _Optional[int] = ...) -> None: ...
+    persisted: bool
+    def __init__(self, run_id: _Optional[str] = ..., iteration: _Optional[int] = ..., outcome: _Optional[_Union[SendSliceResponse.Outcome, str]] = ..., received_bytes: _Optional[int] = ..., queue_position: _Optional[int] = ..., skipped_iterations: _Optional[_Iterable[int]] = ..., parts_received: _Optional[int] = ..., parts_expected: _Optional[int] = ..., persisted: _Optional[bool] = ...) -> None: ...
 
 class WatchRunRequest(_message.Message):
     __slots__ = ("run_id", "start_seq")
@@ -375,16 +385,13 @@ class WatchRunResponse(_message.Message):
     def __init__(self, event: _Optional[_Union[RunEvent, _Mapping]] = ...) -> None: ...
 
 class SurfaceQuantities(_message.Message):
-    __slots__ = ("area_m2", "irreducible_mass_m", "centroid_m", "radius_min_m", "radius_mean_m", "radius_max_m", "circumference_xy_m", "circumference_xz_m", "circumference_yz_m", "resolution_indicator", "angular_momentum_m2", "christodoulou_mass_m", "akv_angular_momentum_m2", "spin_direction", "dimensionless_spin", "akv_christodoulou_mass_m", "killing_quality", "spin_equatorial_circumference_m", "spin_polar_circumference_m", "spin_circumference_ratio", "mass_multipoles", "spin_multipoles", "area_error_m2", "irreducible_mass_error_m", "akv_christodoulou_mass_error_m", "akv_angular_momentum_error_m2", "dimensionless_spin_error")
+    __slots__ = ("area_m2", "irreducible_mass_m", "centroid_m", "radius_min_m", "radius_mean_m", "radius_max_m", "resolution_indicator", "angular_momentum_m2", "christodoulou_mass_m", "akv_angular_momentum_m2", "spin_direction", "dimensionless_spin", "akv_christodoulou_mass_m", "killing_quality", "spin_equatorial_circumference_m", "spin_polar_circumference_m", "spin_circumference_ratio", "mass_multipoles", "spin_multipoles", "area_error_m2", "irreducible_mass_error_m", "akv_christodoulou_mass_error_m", "akv_angular_momentum_error_m2", "dimensionless_spin_error", "stability_eigenvalue_per_m2", "stability_eigenvalue_error_per_m2", "circumference_spin", "centroid_error_m", "spin_direction_error_rad", "spin_equatorial_circumference_error_m", "spin_polar_circumference_error_m", "mass_multipoles_error", "spin_multipoles_error")
     AREA_M2_FIELD_NUMBER: _ClassVar[int]
     IRREDUCIBLE_MASS_M_FIELD_NUMBER: _ClassVar[int]
     CENTROID_M_FIELD_NUMBER: _ClassVar[int]
     RADIUS_MIN_M_FIELD_NUMBER: _ClassVar[int]
     RADIUS_MEAN_M_FIELD_NUMBER: _ClassVar[int]
     RADIUS_MAX_M_FIELD_NUMBER: _ClassVar[int]
-    CIRCUMFERENCE_XY_M_FIELD_NUMBER: _ClassVar[int]
-    CIRCUMFERENCE_XZ_M_FIELD_NUMBER: _ClassVar[int]
-    CIRCUMFERENCE_YZ_M_FIELD_NUMBER: _ClassVar[int]
     RESOLUTION_INDICATOR_FIELD_NUMBER: _ClassVar[int]
     ANGULAR_MOMENTUM_M2_FIELD_NUMBER: _ClassVar[int]
     CHRISTODOULOU_MASS_M_FIELD_NUMBER: _ClassVar[int]
@@ -403,15 +410,21 @@ class SurfaceQuantities(_message.Message):
     AKV_CHRISTODOULOU_MASS_ERROR_M_FIELD_NUMBER: _ClassVar[int]
     AKV_ANGULAR_MOMENTUM_ERROR_M2_FIELD_NUMBER: _ClassVar[int]
     DIMENSIONLESS_SPIN_ERROR_FIELD_NUMBER: _ClassVar[int]
+    STABILITY_EIGENVALUE_PER_M2_FIELD_NUMBER: _ClassVar[int]
+    STABILITY_EIGENVALUE_ERROR_PER_M2_FIELD_NUMBER: _ClassVar[int]
+    CIRCUMFERENCE_SPIN_FIELD_NUMBER: _ClassVar[int]
+    CENTROID_ERROR_M_FIELD_NUMBER: _ClassVar[int]
+    SPIN_DIRECTION_ERROR_RAD_FIELD_NUMBER: _ClassVar[int]
+    SPIN_EQUATORIAL_CIRCUMFERENCE_ERROR_M_FIELD_NUMBER: _ClassVar[int]
+    SPIN_POLAR_CIRCUMFERENCE_ERROR_M_FIELD_NUMBER: _ClassVar[int]
+    MASS_MULTIPOLES_ERROR_FIELD_NUMBER: _ClassVar[int]
+    SPIN_MULTIPOLES_ERROR_FIELD_NUMBER: _ClassVar[int]
     area_m2: float
     irreducible_mass_m: float
     centroid_m: Vector3
     radius_min_m: float
     radius_mean_m: float
     radius_max_m: float
-    circumference_xy_m: float
-    circumference_xz_m: float
-    circumference_yz_m: float
     resolution_indicator: float
     angular_momentum_m2: Vector3
     christodoulou_mass_m: float
@@ -430,7 +443,16 @@ class SurfaceQuantities(_message.Message):
     akv_christodoulou_mass_error_m: float
     akv_angular_momentum_error_m2: float
     dimensionless_spin_error: float
-    def __init__(self, area_m2: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., centroid_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_min_m: _Optional[float] = ..., radius_mean_m: _Optional[float] = ..., radius_max_m: _Optional[float] = ..., circumference_xy_m: _Optional[float] = ..., circumference_xz_m: _Optional[float] = ..., circumference_yz_m: _Optional[float] = ..., resolution_indicator: _Optional[float] = ..., angular_momentum_m2: _Optional[_Union[Vector3, _Mapping]] = ..., christodoulou_mass_m: _Optional[float] = ..., akv_angular_momentum_m2: _Optional[float] = ..., spin_direction: _Optional[_Union[Vector3, _Mapping]] = ..., dimensionless_spin: _Optional[float] = ..., akv_christodoulou_mass_m: _Optional[float] = ..., killing_quality: _Optional[float] = ..., spin_equatorial_circumference_m: _Optional[float] = ..., spin_polar_circumference_m: _Optional[float] = ..., spin_circumference_ratio: _Optional[float] = ..., mass_multipoles: _Optional[_Iterable[float]] = ..., spin_multipoles: _Optional[_Iterable[float]] = ..., area_error_m2: _Optional[float] = ..., irreducible_mass_error_m: _Optional[float] = ..., akv_christodoulou_mass_error_m: _Optional[float] = ..., akv_angular_momentum_error_m2: _Optional[float] = ..., dimensionless_spin_error: _Optional[float] = ...) -> None: ...
+    stability_eigenvalue_per_m2: float
+    stability_eigenvalue_error_per_m2: float
+    circumference_spin: float
+    centroid_error_m: float
+    spin_direction_error_rad: float
+    spin_equatorial_circumference_error_m: float
+    spin_polar_circumference_error_m: float
+    mass_multipoles_error: _containers.RepeatedScalarFieldContainer[float]
+    spin_multipoles_error: _containers.RepeatedScalarFieldContainer[float]
+    def __init__(self, area_m2: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., centroid_m: _Optional[_Union[Vector3, _Mapping]] = ..., radius_min_m: _Optional[float] = ..., radius_mean_m: _Optional[float] = ..., radius_max_m: _Optional[float] = ..., resolution_indicator: _Optional[float] = ..., angular_momentum_m2: _Optional[_Union[Vector3, _Mapping]] = ..., christodoulou_mass_m: _Optional[float] = ..., akv_angular_momentum_m2: _Optional[float] = ..., spin_direction: _Optional[_Union[Vector3, _Mapping]] = ..., dimensionless_spin: _Optional[float] = ..., akv_christodoulou_mass_m: _Optional[float] = ..., killing_quality: _Optional[float] = ..., spin_equatorial_circumference_m: _Optional[float] = ..., spin_polar_circumference_m: _Optional[float] = ..., spin_circumference_ratio: _Optional[float] = ..., mass_multipoles: _Optional[_Iterable[float]] = ..., spin_multipoles: _Optional[_Iterable[float]] = ..., area_error_m2: _Optional[float] = ..., irreducible_mass_error_m: _Optional[float] = ..., akv_christodoulou_mass_error_m: _Optional[float] = ..., akv_angular_momentum_error_m2: _Optional[float] = ..., dimensionless_spin_error: _Optional[float] = ..., stability_eigenvalue_per_m2: _Optional[float] = ..., stability_eigenvalue_error_per_m2: _Optional[float] = ..., circumference_spin: _Optional[float] = ..., centroid_error_m: _Optional[float] = ..., spin_direction_error_rad: _Optional[float] = ..., spin_equatorial_circumference_error_m: _Optional[float] = ..., spin_polar_circumference_error_m: _Optional[float] = ..., mass_multipoles_error: _Optional[_Iterable[float]] = ..., spin_multipoles_error: _Optional[_Iterable[float]] = ...) -> None: ...
 
 class SurfaceResult(_message.Message):
     __slots__ = ("label", "time_m", "iteration", "centre_m", "lmax", "coefficients_m", "quantities", "residual_max_per_m", "iterations", "wall_time_s", "latency_s", "method", "finder_status", "residual_max_between_nodes_per_m")
@@ -565,7 +587,7 @@ class RunStateChanged(_message.Message):
     def __init__(self, state: _Optional[_Union[Run.State, str]] = ..., reason: _Optional[str] = ...) -> None: ...
 
 class RunEvent(_message.Message):
-    __slots__ = ("seq", "run_id", "emit_time_unix_s", "time_m", "iteration", "surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed", "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning", "slice_parts_missing", "slice_rejected", "client_gap_recorded")
+    __slots__ = ("seq", "run_id", "emit_time_unix_s", "time_m", "iteration", "surface_found", "surface_not_found", "slice_skipped", "run_state_changed", "slice_processed", "track_updated", "common_horizon_formed", "refinement_guidance", "data_windows_wanted", "warning", "slice_parts_missing", "slice_rejected", "client_gap_recorded", "formation_forecast")
     SEQ_FIELD_NUMBER: _ClassVar[int]
     RUN_ID_FIELD_NUMBER: _ClassVar[int]
     EMIT_TIME_UNIX_S_FIELD_NUMBER: _ClassVar[int]
@@ -584,6 +606,7 @@ class RunEvent(_message.Message):
     SLICE_PARTS_MISSING_FIELD_NUMBER: _ClassVar[int]
     SLICE_REJECTED_FIELD_NUMBER: _ClassVar[int]
     CLIENT_GAP_RECORDED_FIELD_NUMBER: _ClassVar[int]
+    FORMATION_FORECAST_FIELD_NUMBER: _ClassVar[int]
     seq: int
     run_id: str
     emit_time_unix_s: float
@@ -602,7 +625,8 @@ class RunEvent(_message.Message):
     slice_parts_missing: SlicePartsMissing
     slice_rejected: SliceRejected
     client_gap_recorded: ClientGapRecorded
-    def __init__(self, seq: _Optional[int] = ..., run_id: _Optional[str] = ..., emit_time_unix_s: _Optional[float] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., surface_found: _Optional[_Union[SurfaceFound, _Mapping]] = ..., surface_not_found: _Optional[_Union[SurfaceNotFound, _Mapping]] = ..., slice_skipped: _Optional[_Union[SliceSkipped, _Mapping]] = ..., run_state_changed: _Optional[_Union[RunStateChanged, _Mapping]] = ..., slice_processed: _Optional[_Union[SliceProcessed, _Mapping]] = ..., track_updated: _Optional[_Union[TrackUpdated, _Mapping]] = ..., common_horizon_formed: _Optional[_Union[CommonHorizonFormed, _Mapping]] = ..., refinement_guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., data_windows_wanted: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., warning: _Optional[_Union[RunWarning, _Mapping]] = ..., slice_parts_missing: _Optional[_Union[SlicePartsMissing, _Mapping]] = ..., slice_rejected: _Optional[_Union[SliceRejected, _Mapping]] = ..., client_gap_recorded: _Optional[_Union[ClientGapRecorded, _Mapping]] = ...) -> None: ...
+    formation_forecast: FormationForecast
+    def __init__(self, seq: _Optional[int] = ..., run_id: _Optional[str] = ..., emit_time_unix_s: _Optional[float] = ..., time_m: _Optional[float] = ..., iteration: _Optional[int] = ..., surface_found: _Optional[_Union[SurfaceFound, _Mapping]] = ..., surface_not_found: _Optional[_Union[SurfaceNotFound, _Mapping]] = ..., slice_skipped: _Optional[_Union[SliceSkipped, _Mapping]] = ..., run_state_changed: _Optional[_Union[RunStateChanged, _Mapping]] = ..., slice_processed: _Optional[_Union[SliceProcessed, _Mapping]] = ..., track_updated: _Optional[_Union[TrackUpdated, _Mapping]] = ..., common_horizon_formed: _Optional[_Union[CommonHorizonFormed, _Mapping]] = ..., refinement_guidance: _Optional[_Union[RefinementGuidance, _Mapping]] = ..., data_windows_wanted: _Optional[_Union[DataWindowsWanted, _Mapping]] = ..., warning: _Optional[_Union[RunWarning, _Mapping]] = ..., slice_parts_missing: _Optional[_Union[SlicePartsMissing, _Mapping]] = ..., slice_rejected: _Optional[_Union[SliceRejected, _Mapping]] = ..., client_gap_recorded: _Optional[_Union[ClientGapRecorded, _Mapping]] = ..., formation_forecast: _Optional[_Union[FormationForecast, _Mapping]] = ...) -> None: ...
 
 class TrackPoint(_message.Message):
     __slots__ = ("time_m", "iteration", "position_m", "source", "uncertainty_m")
@@ -685,6 +709,34 @@ class CommonHorizonFormed(_message.Message):
     irreducible_mass_m: float
     area_m2: float
     def __init__(self, label: _Optional[str] = ..., body_labels: _Optional[_Iterable[str]] = ..., separation_m: _Optional[float] = ..., irreducible_mass_m: _Optional[float] = ..., area_m2: _Optional[float] = ...) -> None: ...
+
+class FormationForecast(_message.Message):
+    __slots__ = ("label", "c_min_found", "c_min_per_m", "c_min_error_per_m", "mean_radius_m", "centre_m", "forecast_available", "formation_time_m", "formation_time_uncertainty_m", "based_on", "message", "wall_time_s")
+    LABEL_FIELD_NUMBER: _ClassVar[int]
+    C_MIN_FOUND_FIELD_NUMBER: _ClassVar[int]
+    C_MIN_PER_M_FIELD_NUMBER: _ClassVar[int]
+    C_MIN_ERROR_PER_M_FIELD_NUMBER: _ClassVar[int]
+    MEAN_RADIUS_M_FIELD_NUMBER: _ClassVar[int]
+    CENTRE_M_FIELD_NUMBER: _ClassVar[int]
+    FORECAST_AVAILABLE_FIELD_NUMBER: _ClassVar[int]
+    FORMATION_TIME_M_FIELD_NUMBER: _ClassVar[int]
+    FORMATION_TIME_UNCERTAINTY_M_FIELD_NUMBER: _ClassVar[int]
+    BASED_ON_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    WALL_TIME_S_FIELD_NUMBER: _ClassVar[int]
+    label: str
+    c_min_found: bool
+    c_min_per_m: float
+    c_min_error_per_m: float
+    mean_radius_m: float
+    centre_m: Vector3
+    forecast_available: bool
+    formation_time_m: float
+    formation_time_uncertainty_m: float
+    based_on: int
+    message: str
+    wall_time_s: float
+    def __init__(self, label: _Optional[str] = ..., c_min_found: _Optional[bool] = ..., c_min_per_m: _Optional[float] = ..., c_min_error_per_m: _Optional[float] = ..., mean_radius_m: _Optional[float] = ..., centre_m: _Optional[_Union[Vector3, _Mapping]] = ..., forecast_available: _Optional[bool] = ..., formation_time_m: _Optional[float] = ..., formation_time_uncertainty_m: _Optional[float] = ..., based_on: _Optional[int] = ..., message: _Optional[str] = ..., wall_time_s: _Optional[float] = ...) -> None: ...
 
 class RefinedRegion(_message.Message):
     __slots__ = ("level", "spacing_m", "bodies", "centre_m", "radius_m", "lower_m", "upper_m", "reason")

@@ -15,6 +15,8 @@ One zarr v3 group per run at ``<archive_root>/<run_id>.zarr``::
         events/                one row per tracking/guidance event, with its wire form; "event"
         client_gaps/           one row per range of slices the client dropped during an outage
                                of its link (a gap without drops: one row, count 0); "range"
+        formation/             one row per constant-expansion search of a pair before its
+                               common horizon formed, with the formation forecast; "search"
 
 The tracking groups and ``client_gaps/`` are created by the first commit that writes to them.
 
@@ -60,6 +62,8 @@ __all__ = [
     "WINDOWS_GROUP",
     "EVENTS_GROUP",
     "CLIENT_GAPS_GROUP",
+    "FORMATION_GROUP",
+    "FORMATION_COLUMNS",
     "CLIENT_DROP_REASONS",
     "group_columns",
 ]
@@ -143,6 +147,11 @@ SLICE_COLUMNS: tuple[Column, ...] = (
 )
 
 
+#: Multipoles archived per surface, index n = 0 .. MULTIPOLE_COUNT - 1 (archives written before
+#: n = 8 hold 5).
+MULTIPOLE_COUNT = 9
+
+
 def surface_columns(lmax: int) -> tuple[Column, ...]:
     """Columns of ``surfaces/<label>`` for surfaces of degree ``lmax``."""
     xyz = (("xyz", 3),)
@@ -163,12 +172,11 @@ def surface_columns(lmax: int) -> tuple[Column, ...]:
         Column("area", "float64", unit="M^2"),
         Column("irreducible_mass", "float64", unit="M", description="sqrt(area / 16 pi)"),
         Column("centroid", "float64", xyz, unit="M", description="area-weighted coordinate centroid"),
-        Column("radius_min", "float64", unit="M"),
-        Column("radius_mean", "float64", unit="M"),
-        Column("radius_max", "float64", unit="M"),
-        Column("circumference_xy", "float64", unit="M", description="proper, plane z = centroid z"),
-        Column("circumference_xz", "float64", unit="M", description="proper, plane y = centroid y"),
-        Column("circumference_yz", "float64", unit="M", description="proper, plane x = centroid x"),
+        Column("centroid_error", "float64", unit="M", description="error estimate of centroid (length of the displacement)"),
+        # Coordinate extent only (for refinement and plots): shape figures that mean something
+        # are the spin-axis circumferences below, not cuts with the coordinate planes.
+        Column("coordinate_radius", "float64", (("extent", 3),), unit="M",
+               description="least, mean and largest coordinate distance from the expansion centre"),
         Column("resolution_indicator", "float64", description="top-degree coefficient fraction"),
         Column("residual_max", "float64", unit="1/M", description="max |Theta| at the nodes"),
         Column("residual_max_between_nodes", "float64", unit="1/M",
@@ -187,14 +195,32 @@ def surface_columns(lmax: int) -> tuple[Column, ...]:
         Column("spin_polar_circumference", "float64", unit="M",
                description="proper, mean of two perpendicular planes containing the spin axis"),
         Column("spin_circumference_ratio", "float64", description="polar / equatorial"),
-        Column("mass_multipoles", "float64", (("multipole", 5),), description="M_n / M^(n+1), index n = 0..4"),
-        Column("spin_multipoles", "float64", (("multipole", 5),), description="J_n / M^(n+1), index n = 0..4"),
+        Column("circumference_spin", "float64",
+               description="chi from spin_circumference_ratio, Kerr's relation inverted (Brandt & Seidel 1995)"),
+        Column("mass_multipoles", "float64", (("multipole", MULTIPOLE_COUNT),),
+               description=f"M_n / M^(n+1), index n = 0..{MULTIPOLE_COUNT - 1}"),
+        Column("spin_multipoles", "float64", (("multipole", MULTIPOLE_COUNT),),
+               description=f"J_n / M^(n+1), index n = 0..{MULTIPOLE_COUNT - 1}"),
         Column("area_error", "float64", unit="M^2", description="error estimate of area (numerics/error_bars.py)"),
         Column("irreducible_mass_error", "float64", unit="M", description="error estimate of irreducible_mass"),
         Column("akv_christodoulou_mass_error", "float64", unit="M",
                description="error estimate of akv_christodoulou_mass"),
         Column("akv_angular_momentum_error", "float64", unit="M^2", description="error estimate of akv_angular_momentum"),
         Column("dimensionless_spin_error", "float64", description="error estimate of dimensionless_spin"),
+        Column("stability_eigenvalue", "float64", unit="1/M^2",
+               description="principal eigenvalue of the MOTS stability operator (l = n + s, k = (n - s) / 2)"),
+        Column("stability_eigenvalue_error", "float64", unit="1/M^2",
+               description="change of stability_eigenvalue when psi's harmonic degree drops by 2"),
+        Column("spin_direction_error", "float64", unit="rad",
+               description="error estimate of spin_direction, an angle (pi: J indistinguishable from 0)"),
+        Column("spin_equatorial_circumference_error", "float64", unit="M",
+               description="error estimate of spin_equatorial_circumference"),
+        Column("spin_polar_circumference_error", "float64", unit="M",
+               description="error estimate of spin_polar_circumference"),
+        Column("mass_multipoles_error", "float64", (("multipole", MULTIPOLE_COUNT),),
+               description="error estimate of each mass multipole"),
+        Column("spin_multipoles_error", "float64", (("multipole", MULTIPOLE_COUNT),),
+               description="error estimate of each spin multipole"),
         Column("seed_centre", "float64", xyz, unit="M",
                description="forecast position the planner seeded the search at (NaN: no forecast seed)"),
         Column("seed_uncertainty", "float64", unit="M",
@@ -363,7 +389,30 @@ CLIENT_GAP_COLUMNS: tuple[Column, ...] = (
     Column("event_seq", "int64", description="seq of the client_gap_recorded event"),
 )
 
+# -- when the common horizon forms ---------------------------------------------------------------
+
+FORMATION_GROUP = "formation"
+
+FORMATION_COLUMNS: tuple[Column, ...] = (
+    Column("iteration", "int64", description="iteration of the slice searched"),
+    Column("time", "float64", unit="M", description="coordinate time of that slice"),
+    Column("c_min_found", "bool", description="the smallest enclosing constant expansion was found"),
+    Column("c_min", "float64", unit="1/M", description="smallest expansion of the enclosing constant-expansion "
+                                                      "surfaces (NaN: not found)"),
+    Column("c_min_error", "float64", unit="1/M", description="its uncertainty"),
+    Column("mean_radius", "float64", unit="M", description="mean coordinate radius of the c_min surface"),
+    Column("centre", "float64", (("xyz", 3),), unit="M", description="centre the surfaces are expanded about"),
+    Column("forecast_available", "bool", description="a formation time could be forecast"),
+    Column("formation_time", "float64", unit="M", description="forecast time c_min reaches zero (NaN: none)"),
+    Column("formation_time_uncertainty", "float64", unit="M", description="its expected error"),
+    Column("based_on", "int32", description="c_min values the forecast used"),
+    Column("message", "str", description="the search's outcome and the forecast's fit"),
+    Column("wall_time_s", "float64", unit="s", description="worker seconds of the search"),
+    Column("event_seq", "int64", description="seq of the formation_forecast event"),
+)
+
 _FIXED_GROUPS: dict[str, tuple[tuple[Column, ...], str]] = {
+    FORMATION_GROUP: (FORMATION_COLUMNS, "search"),
     GUIDANCE_UPDATES_GROUP: (GUIDANCE_UPDATE_COLUMNS, "update"),
     GUIDANCE_BODIES_GROUP: (GUIDANCE_BODY_COLUMNS, "entry"),
     GUIDANCE_REGIONS_GROUP: (GUIDANCE_REGION_COLUMNS, "region"),

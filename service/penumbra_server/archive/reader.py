@@ -191,6 +191,13 @@ class ArchiveView:
         message, wire, archived_unix_s); warnings and "common horizon formed" live only here."""
         return self.group(layout.EVENTS_GROUP)
 
+    def formation(self) -> dict[str, np.ndarray]:
+        """``formation``: one row per constant-expansion search of a pair before its common
+        horizon formed (iteration, time, c_min_found, c_min and c_min_error (1/M), mean_radius,
+        centre (n, 3), forecast_available, formation_time and formation_time_uncertainty (M),
+        based_on, message, wall_time_s, event_seq). Empty columns when there was none."""
+        return self.group(layout.FORMATION_GROUP)
+
     def client_gaps(self) -> dict[str, np.ndarray]:
         """``client_gaps``: one row per range of slices the client dropped while its link was
         down (gap_index, gap_id, iteration_first, iteration_last, count, reason code, time_first,

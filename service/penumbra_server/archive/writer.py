@@ -3,10 +3,18 @@
 The writer is synchronous (zarr's sync API); the server calls it from one worker thread so the
 event loop never blocks on disk. One writer per run group, never two: rows are appended at the
 committed count, and a second writer would overwrite them.
+
+Crash safety (a kill at any instruction): every zarr metadata file is replaced atomically; a
+commit writes rows, then the root's ``committed_rows`` (the marker readers trust), then the
+consolidated metadata (what ``xarray.open_zarr`` reads), so a kill leaves at worst rows past the
+marker and consolidated metadata one commit behind, both invisible. Creating a group is
+idempotent (arrays a killed creation left are reused), and :meth:`ArchiveWriter.open_existing`
+repairs what a kill left: arrays cut back to the marker, uncounted groups removed.
 """
 
 from __future__ import annotations
 
+import shutil
 import time
 import warnings
 from pathlib import Path
@@ -15,6 +23,7 @@ from typing import Mapping, Sequence
 import numpy as np
 import zarr
 
+from .. import crash_points
 from . import _layout as layout
 
 __all__ = ["ArchiveWriter", "ArchiveError"]
@@ -116,11 +125,16 @@ class ArchiveWriter:
 
     @classmethod
     def open_existing(cls, path: str | Path) -> "ArchiveWriter":
-        """Re-open an archive for appending (a restarted server continuing an open run)."""
+        """Re-open an archive for appending (a restarted server continuing an open run), after
+        repairing what a kill left half done (:meth:`repair`)."""
         path = Path(path)
         if not path.exists():
             raise ArchiveError(f"{path}: no archive there")
-        return cls(zarr.open_group(str(path), mode="r+", zarr_format=3), path)
+        # Not the consolidated copy: it may lag the marker by one commit and does not list what
+        # a killed commit created.
+        writer = cls(zarr.open_group(str(path), mode="r+", zarr_format=3, use_consolidated=False), path)
+        writer.repair()
+        return writer
 
     # -- state ------------------------------------------------------------------------------
 
@@ -151,8 +165,54 @@ class ArchiveWriter:
                 rows = self._committed.get(group_path, 0)
                 if rows:
                     arr.resize((rows,) + arr.shape[1:])
+            trailing = tuple(size for _, size in column.trailing)
+            if arr.shape[1:] != trailing and len(arr.shape) == 1 + len(trailing) and all(
+                    old <= new for old, new in zip(arr.shape[1:], trailing)):
+                # A column widened since this archive was written (multipoles n = 0..4 -> 0..8):
+                # the rows already there keep their values; their new entries read as the fill value.
+                arr.resize(arr.shape[:1] + trailing)
             self._arrays[key] = arr
         return arr
+
+    def repair(self) -> list[str]:
+        """Undo what a killed commit left: arrays longer than their group's committed row count
+        are cut back to it, groups holding arrays that ``committed_rows`` does not count (a
+        creation the kill interrupted) are removed, and the consolidated metadata is rewritten.
+        Idempotent. Returns what was repaired (one line each), empty when nothing was."""
+        repaired = []
+        counted = set(self._committed)
+        for member_path, member in sorted(self._group.members(max_depth=None), key=lambda m: m[0]):
+            if not isinstance(member, zarr.Array):
+                continue
+            group_path, _, name = member_path.rpartition("/")
+            if group_path not in counted:
+                continue
+            rows = self._committed[group_path]
+            if member.shape[0] > rows:
+                member.resize((rows,) + member.shape[1:])
+                repaired.append(f"{member_path}: cut back to its {rows} committed rows")
+        half_made = {path.rpartition("/")[0] for path, member in self._group.members(max_depth=None)
+                     if isinstance(member, zarr.Array)} - counted
+        for group_path in sorted(half_made):
+            shutil.rmtree(self.path / group_path, ignore_errors=True)
+            repaired.append(f"{group_path}: removed (created by a commit that never completed)")
+        self._arrays.clear()
+        if repaired or not self._consolidated_is_current():
+            _consolidate(self._group)
+        return repaired
+
+    def _consolidated_is_current(self) -> bool:
+        """Whether the consolidated metadata shows every committed group with its committed rows
+        (a kill between a commit's marker and its consolidation leaves it one commit behind)."""
+        try:
+            view = zarr.open_group(str(self.path), mode="r", zarr_format=3, use_consolidated=True)
+            for group_path, rows in self._committed.items():
+                arrays = list(view[group_path].arrays())
+                if arrays and arrays[0][1].shape[0] != rows:
+                    return False
+        except Exception:  # missing or unreadable consolidated metadata: rewrite it
+            return False
+        return True
 
     # -- writing ----------------------------------------------------------------------------
 
@@ -166,7 +226,8 @@ class ArchiveWriter:
         if group_path in self._committed:
             return
         lmax = int(lmax or self.lmax)
-        sub = self._group.require_group(layout.SURFACES_GROUP).create_group(label)
+        # require_group and _create_columns reuse what a killed earlier attempt made.
+        sub = self._group.require_group(layout.SURFACES_GROUP).require_group(label)
         _create_columns(sub, layout.surface_columns(lmax), layout.TIME_DIMENSION)
         sub.update_attributes({"label": label, "lmax": lmax})
         committed = dict(self._committed)
@@ -225,10 +286,16 @@ class ArchiveWriter:
             if rows:
                 pending.append((group_path, rows, cols, f"{group_path!r}", row_dimension))
         committed = dict(self._committed)
+        created = [(group_path, cols, row_dimension) for group_path, _, cols, _, row_dimension in pending
+                   if group_path not in committed]
+        for group_path, cols, row_dimension in created:
+            _create_columns(self._group.require_group(group_path), cols, row_dimension)
+            committed[group_path] = 0
+        if created:
+            # New groups enter the consolidated metadata empty, before any row: xarray then opens
+            # them (with no rows) whatever moment a kill interrupts the rest of this commit.
+            _consolidate(self._group)
         for group_path, rows, cols, row_kind, row_dimension in pending:
-            if group_path not in committed:
-                _create_columns(self._group.require_group(group_path), cols, row_dimension)
-                committed[group_path] = 0
             start = committed[group_path]
             stop = start + len(rows)
             for column in cols:
@@ -238,12 +305,14 @@ class ArchiveWriter:
                     arr.resize((stop,) + arr.shape[1:])
                 arr[start:stop] = block
             committed[group_path] = stop
+        crash_points.reached("archive-mid-commit")
         new_attrs = dict(self._attrs)
         new_attrs.update(attrs or {})
         new_attrs["committed_rows"] = committed
         self._group.update_attributes(new_attrs)
         self._attrs = new_attrs
         self._committed = committed
+        crash_points.reached("archive-before-consolidate")
         _consolidate(self._group)
         return dict(committed)
 
@@ -279,5 +348,13 @@ def _create_column(group: zarr.Group, column: layout.Column, row_dimension: str)
 
 
 def _create_columns(group: zarr.Group, columns: Sequence[layout.Column], row_dimension: str) -> None:
-    for column in columns:
-        _create_column(group, column, row_dimension)
+    """Create the group's arrays, empty; arrays a killed earlier attempt made are reused (emptied)."""
+    existing = dict(group.arrays())
+    for index, column in enumerate(columns):
+        if index == len(columns) // 2:
+            crash_points.reached("archive-mid-group")
+        arr = existing.get(column.name)
+        if arr is None:
+            _create_column(group, column, row_dimension)
+        elif arr.shape[0]:
+            arr.resize((0,) + arr.shape[1:])

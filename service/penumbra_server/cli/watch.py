@@ -7,7 +7,11 @@ loop redraws it with plain ANSI codes on a terminal and prints frames one after 
 escape codes) when the output is not a terminal, so it also works in logs and over ``ssh -T``.
 
 Below the table: when the common horizon formed (the server's ``common_horizon_formed`` event,
-once per run) and the latest refinement guidance (``GetLatestGuidance``): per body, or for the
+once per run), the newest formation forecast before it (``formation_forecast``: the smallest
+enclosing constant expansion c_min and when it is expected to reach zero), the remnant (the
+common surface's latest masses and spin with error bars and how far they still move over the
+last 10 M, :mod:`penumbra_server.tracking.remnant`, from the found events the view has read)
+and the latest refinement guidance (``GetLatestGuidance``): per body, or for the
 remnant after merger, the centre, radius and spacing of its recommended finest region. The
 guidance is advisory; the frame says so.
 
@@ -28,11 +32,15 @@ from typing import Mapping, TextIO
 
 from penumbra_server.cli.safe_text import terminal_safe, terminal_safe_lines
 
-__all__ = ["RunProgress", "render_frame", "surface_rows", "guidance_rows", "read_progress", "find_common_formed",
+__all__ = ["RunProgress", "render_frame", "formation_line", "surface_rows", "guidance_rows", "read_progress", "find_common_formed",
            "watch_run"]
 
 _CLEAR = "\x1b[H\x1b[2J"
 _NAN = float("nan")
+
+
+#: Found rows of each surface the view keeps for the remnant (its window is the last 10 M).
+REMNANT_ROWS = 400
 
 
 @dataclass
@@ -47,14 +55,25 @@ class RunProgress:
     #: The run's ``common_horizon_formed`` payload (a ``penumbra_shim.CommonHorizon``), once seen.
     common_formed: object | None = None
     warnings: list[str] = field(default_factory=list)
+    #: The newest ``formation_forecast`` event (a ``penumbra_shim.FormationForecastEvent``).
+    formation: object | None = None
+    #: label -> the latest found ``SurfaceReport`` s, in event order (the last REMNANT_ROWS).
+    found: dict = field(default_factory=dict)
 
     def absorb(self, event) -> None:
         """Update from one ``penumbra_shim.Event``."""
         self.last_seq = max(self.last_seq, int(getattr(event, "seq", 0)))
         kind = getattr(event, "kind", "")
+        if kind == "surface_found" and getattr(event, "surface", None) is not None:
+            series = self.found.setdefault(event.surface.label, [])
+            series.append(event.surface)
+            del series[:-REMNANT_ROWS]
         if kind == "common_horizon_formed" and getattr(event, "common", None) is not None:
             if self.common_formed is None:
                 self.common_formed = event.common
+        elif kind == "formation_forecast":
+            if self.formation is None or int(getattr(event, "iteration", -1)) >= int(self.formation.iteration):
+                self.formation = event
         elif kind == "warning":
             self.warnings.append(f"warning at iteration {getattr(event, 'iteration', -1)} "
                                  f"({getattr(event, 'label', '')}): {str(getattr(event, 'message', ''))[:160]}")
@@ -112,7 +131,7 @@ def _pm(value, error, spec: str) -> str:
 
 
 COLUMNS = ("surface", "latest attempt", "found at t [M]", "area [M^2]", "M_irr [M]", "M_chr [M]", "chi",
-           "spin axis", "centre (x, y, z) [M]", "|Theta|max [1/M]", "lag [M] / [s]")
+           "chi (C_p/C_e)", "spin axis", "centre (x, y, z) [M]", "|Theta|max [1/M]", "lag [M] / [s]")
 
 
 def surface_rows(states: Mapping[str, object], *, body_labels=(), newest_time: float = _NAN) -> list[list[str]]:
@@ -148,6 +167,7 @@ def surface_rows(states: Mapping[str, object], *, body_labels=(), newest_time: f
             _pm(getattr(found, "akv_christodoulou_mass", _NAN), getattr(found, "akv_christodoulou_mass_error", _NAN),
                 ".5f"),
             _pm(getattr(found, "dimensionless_spin", _NAN), getattr(found, "dimensionless_spin_error", _NAN), ".4f"),
+            _num(getattr(found, "circumference_spin", _NAN), ".3f"),
             _vec(getattr(found, "spin_direction", ()), "+.2f"),
             _vec(found.centroid),
             _num(found.residual_max, ".1e"),
@@ -199,6 +219,43 @@ def _common_line(progress: RunProgress, states: Mapping[str, object], body_label
     return "common horizon: not formed yet"
 
 
+def formation_line(progress: RunProgress) -> str | None:
+    """The newest formation forecast (c_min and when it reaches zero), or None without one."""
+    f = progress.formation
+    if f is None:
+        return None
+    head = f"formation forecast (from t = {f.time:.3f} M): "
+    c = (f"c_min = {_pm(f.c_min, f.c_min_error, '.5f')} /M" if f.c_min_found
+         else f"c_min not found in that slice ({str(f.message)[:80]})")
+    if f.forecast_available:
+        when = (f"common horizon expected at t = {_pm(f.formation_time, f.formation_time_uncertainty, '.3f')} M "
+                f"(from {f.based_on} slices)")
+    else:
+        when = "no formation time yet"
+    return head + c + "; " + when
+def _remnant_text(progress: RunProgress, body_labels) -> str:
+    """The remnant line (tracking.remnant) from the common surface's found events; "" before
+    the common horizon formed."""
+    from penumbra_server.tracking.remnant import remnant_from_reports, remnant_line
+
+    c = progress.common_formed
+    label = getattr(c, "label", None) if c is not None else None
+    if label is None:
+        others = [l for l in progress.found if l not in body_labels]
+        if not others:
+            return ""
+        label = others[0]
+    # One row per slice time (the newest report of a time wins: a replayed event adds nothing).
+    reports = sorted({float(r.time): r for r in progress.found.get(label, [])}.values(), key=lambda r: float(r.time))
+    if not reports:
+        return f"remnant ({label}): no found surface among the events read yet"
+    try:
+        r = remnant_from_reports(reports)
+    except ValueError as exc:  # too few rows with error bars
+        return f"remnant ({label}): not assessed: {exc}"
+    return remnant_line(r, label)
+
+
 def render_frame(info, states: Mapping[str, object], progress: RunProgress | None = None, *,
                  guidance=None, now_unix_s: float | None = None, server: str = "") -> str:
     """One screenful describing a run.
@@ -245,6 +302,12 @@ def render_frame(info, states: Mapping[str, object], progress: RunProgress | Non
     lines.extend(_table(COLUMNS, rows))
     lines.append("")
     lines.append(_common_line(progress, states, body_labels))
+    forecast = formation_line(progress)
+    if forecast is not None:
+        lines.append(forecast)
+    remnant_text = _remnant_text(progress, body_labels)
+    if remnant_text:
+        lines.append(remnant_text)
     if guidance is None:
         lines.append("refinement guidance: none yet")
     else:
@@ -257,7 +320,8 @@ def render_frame(info, states: Mapping[str, object], progress: RunProgress | Non
         lines.extend(progress.skips[-5:])
         lines.extend(progress.warnings[-3:])
     lines.append("")
-    lines.append("+-: error estimates (numerics/error_bars.py); M_chr, chi, spin axis: approximate-Killing-vector spin.")
+    lines.append("+-: error estimates (numerics/error_bars.py); M_chr, chi, spin axis: approximate-Killing-vector spin;")
+    lines.append("chi (C_p/C_e): the spin Kerr would have with this polar / equatorial circumference ratio.")
     lines.append("lag: newest slice received minus the time the surface was last found [M] / "
                  "arrival-to-archived wall time [s]. Results and guidance are advisory.")
     # Names, labels and reasons come from the run's opener and the server: nothing in them may

@@ -45,7 +45,7 @@ from .expansion import level_set_derivatives
 from .sources import as_tracked_source
 from .surfaces import Surface, angular_grid, harmonic_basis, unit_vectors
 
-__all__ = ["StabilityMatrices", "StabilitySpectrum", "stability_matrices", "stability_spectrum"]
+__all__ = ["StabilityMatrices", "StabilitySpectrum", "principal_eigenvalue", "stability_matrices", "stability_spectrum"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -249,3 +249,18 @@ def stability_spectrum(surface: Surface, data, *, count: int = 6, **options) -> 
         area=mats.area,
         lmax=mats.lmax,
     )
+
+
+def principal_eigenvalue(mats: StabilityMatrices, lmax: int | None = None) -> float:
+    """Principal eigenvalue (1/M^2) of ``mats`` restricted to harmonics of degree <= ``lmax``.
+
+    The harmonics are ordered by degree (index l*l + l + m), so the Galerkin matrices of a lower
+    degree on the same quadrature are the leading blocks: a truncation check costs one small
+    eigenproblem, not a second evaluation of the geometry.
+    """
+    degree = mats.lmax if lmax is None else int(lmax)
+    if not 0 <= degree <= mats.lmax:
+        raise ValueError(f"lmax: expected 0 .. {mats.lmax}, got {lmax}")
+    n = (degree + 1) ** 2
+    values = scipy.linalg.eigvals(mats.operator[:n, :n], mats.mass[:n, :n])
+    return float(np.min(values.real))

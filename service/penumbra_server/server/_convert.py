@@ -13,6 +13,7 @@ import numpy as np
 from penumbra_shim._wire import horizons_pb2 as pb
 
 from ..archive import METHOD_CODES, SLICE_OUTCOME_FAILED, SLICE_OUTCOME_PROCESSED, SLICE_OUTCOME_SKIPPED
+from ..archive import _layout as layout
 from ..numerics.finder import STATUS_MESSAGES
 from .jobs import REASON_FOUND, SurfaceOutcome
 
@@ -61,9 +62,21 @@ SPIN_SCALARS = {
     "akv_christodoulou_mass_error": "akv_christodoulou_mass_error_m",
     "akv_angular_momentum_error": "akv_angular_momentum_error_m2",
     "dimensionless_spin_error": "dimensionless_spin_error",
+    "stability_eigenvalue": "stability_eigenvalue_per_m2",
+    "stability_eigenvalue_error": "stability_eigenvalue_error_per_m2",
+    "circumference_spin": "circumference_spin",
+    "centroid_error": "centroid_error_m",
+    "spin_direction_error": "spin_direction_error_rad",
+    "spin_equatorial_circumference_error": "spin_equatorial_circumference_error_m",
+    "spin_polar_circumference_error": "spin_polar_circumference_error_m",
 }
-#: Multipoles carried, index n = 0 .. MULTIPOLE_COUNT - 1.
-MULTIPOLE_COUNT = 5
+#: Multipoles carried, index n = 0 .. MULTIPOLE_COUNT - 1 (archives before n = 8 hold 5).
+MULTIPOLE_COUNT = layout.MULTIPOLE_COUNT
+#: Per-multipole columns (worker dict and archive) -> SurfaceQuantities repeated field.
+MULTIPOLE_LISTS = {
+    "mass_multipoles": "mass_multipoles", "spin_multipoles": "spin_multipoles",
+    "mass_multipoles_error": "mass_multipoles_error", "spin_multipoles_error": "spin_multipoles_error",
+}
 
 
 def spin_fields(get) -> dict:
@@ -71,8 +84,8 @@ def spin_fields(get) -> dict:
     worker dict or an archive row (older archives lack these columns: NaN)."""
     fields = {wire: float(get(name, _NAN)) for name, wire in SPIN_SCALARS.items()}
     fields["spin_direction"] = vector(get("spin_direction", [_NAN] * 3))
-    for name in ("mass_multipoles", "spin_multipoles"):
-        fields[name] = [float(v) for v in get(name, [_NAN] * MULTIPOLE_COUNT)]
+    for name, wire in MULTIPOLE_LISTS.items():
+        fields[wire] = [float(v) for v in get(name, [_NAN] * MULTIPOLE_COUNT)]
     return fields
 
 
@@ -80,9 +93,9 @@ def spin_row(q: pb.SurfaceQuantities) -> dict:
     """Archive row values of the spin quantities of a SurfaceQuantities message."""
     row = {name: getattr(q, wire) for name, wire in SPIN_SCALARS.items()}
     row["spin_direction"] = _triple(q.spin_direction) if q.HasField("spin_direction") else np.full(3, _NAN)
-    for name in ("mass_multipoles", "spin_multipoles"):
+    for name, wire in MULTIPOLE_LISTS.items():
         values = np.full(MULTIPOLE_COUNT, _NAN)
-        got = np.asarray(getattr(q, name), dtype=float)[:MULTIPOLE_COUNT]
+        got = np.asarray(getattr(q, wire), dtype=float)[:MULTIPOLE_COUNT]
         values[: got.size] = got
         row[name] = values
     return row
@@ -105,9 +118,6 @@ def surface_result_from_outcome(outcome: SurfaceOutcome, *, time_m: float, itera
             radius_min_m=q.get("radius_min", _NAN),
             radius_mean_m=q.get("radius_mean", _NAN),
             radius_max_m=q.get("radius_max", _NAN),
-            circumference_xy_m=q.get("circumference_xy", _NAN),
-            circumference_xz_m=q.get("circumference_xz", _NAN),
-            circumference_yz_m=q.get("circumference_yz", _NAN),
             resolution_indicator=q.get("resolution_indicator", _NAN),
             angular_momentum_m2=vector(q.get("angular_momentum", [_NAN] * 3)),
             christodoulou_mass_m=q.get("christodoulou_mass", _NAN),
@@ -147,9 +157,8 @@ def surface_row(event: pb.RunEvent, archived_unix_s: float) -> tuple[str, dict]:
             status=s.finder_status, found=True, reason=REASON_FOUND,
             centre=_triple(s.centre_m), coefficients=np.asarray(s.coefficients_m, dtype=float),
             area=q.area_m2, irreducible_mass=q.irreducible_mass_m, centroid=_triple(q.centroid_m),
-            radius_min=q.radius_min_m, radius_mean=q.radius_mean_m, radius_max=q.radius_max_m,
-            circumference_xy=q.circumference_xy_m, circumference_xz=q.circumference_xz_m,
-            circumference_yz=q.circumference_yz_m, resolution_indicator=q.resolution_indicator,
+            coordinate_radius=np.array([q.radius_min_m, q.radius_mean_m, q.radius_max_m]),
+            resolution_indicator=q.resolution_indicator,
             angular_momentum=_triple(q.angular_momentum_m2), christodoulou_mass=q.christodoulou_mass_m,
             **spin_row(q),
             residual_max=s.residual_max_per_m, residual_max_between_nodes=s.residual_max_between_nodes_per_m,
@@ -199,6 +208,15 @@ def _num(value, default: float) -> float:
     return default if math.isnan(value) else value
 
 
+def _radius_fields(row: dict) -> dict:
+    """radius_min/mean/max_m of an archived row: the column ``coordinate_radius`` (least, mean,
+    largest), or the three columns archives written before it held."""
+    radius = row.get("coordinate_radius")
+    least, mean, largest = ((radius[0], radius[1], radius[2]) if radius is not None else
+                            (row["radius_min"], row["radius_mean"], row["radius_max"]))
+    return {"radius_min_m": float(least), "radius_mean_m": float(mean), "radius_max_m": float(largest)}
+
+
 def surface_event_from_row(run_id: str, label: str, row: dict, lmax: int) -> pb.RunEvent:
     """The event an archived surface row announced (messages are the status table's wording)."""
     event = pb.RunEvent(seq=int(row["event_seq"]), run_id=run_id, emit_time_unix_s=_num(row["archived_unix_s"], 0.0),
@@ -211,10 +229,8 @@ def surface_event_from_row(run_id: str, label: str, row: dict, lmax: int) -> pb.
                 coefficients_m=[float(c) for c in row["coefficients"]],
                 quantities=pb.SurfaceQuantities(
                     area_m2=float(row["area"]), irreducible_mass_m=float(row["irreducible_mass"]),
-                    centroid_m=vector(row["centroid"]), radius_min_m=float(row["radius_min"]),
-                    radius_mean_m=float(row["radius_mean"]), radius_max_m=float(row["radius_max"]),
-                    circumference_xy_m=float(row["circumference_xy"]), circumference_xz_m=float(row["circumference_xz"]),
-                    circumference_yz_m=float(row["circumference_yz"]),
+                    centroid_m=vector(row["centroid"]),
+                    **_radius_fields(row),
                     resolution_indicator=float(row["resolution_indicator"]),
                     angular_momentum_m2=vector(_row_value(row, "angular_momentum", [_NAN] * 3)),
                     christodoulou_mass_m=float(_row_value(row, "christodoulou_mass", _NAN)),

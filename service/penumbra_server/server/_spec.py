@@ -241,6 +241,8 @@ class RunSettings:
     #: "moving_puncture" (puncture tracks are integrated from the shift), "other" or
     #: "unspecified" (both: the shift is not used for tracking).
     shift_gauge: str = "unspecified"
+    #: Forecast when a pair's common horizon forms (server/formation.py); RunSpec.formation_forecast_off.
+    formation_forecast: bool = True
 
     @property
     def bitant(self) -> bool:
@@ -332,6 +334,7 @@ class RunSettings:
             symmetry=symmetry_from_wire(spec.symmetry),
             excised_spheres=excised_spheres_from_wire(spec.excised_spheres),
             shift_gauge=shift_gauge_from_wire(spec.shift_gauge),
+            formation_forecast=not spec.formation_forecast_off,
         )
 
     def to_wire(self) -> pb.RunSpec:
@@ -355,6 +358,7 @@ class RunSettings:
             symmetry=_SYMMETRIES_BACK[self.symmetry],
             excised_spheres=excised_spheres_to_wire(self.excised_spheres),
             shift_gauge=_SHIFT_GAUGES_BACK[self.shift_gauge],
+            formation_forecast_off=not self.formation_forecast,
         )
 
     # -- archive attributes -----------------------------------------------------------------
@@ -375,6 +379,7 @@ class RunSettings:
             "excised_spheres": [{"centre": list(s.centre), "radius": s.radius, "body": s.body}
                                 for s in self.excised_spheres],
             "shift_gauge": self.shift_gauge,
+            "formation_forecast": self.formation_forecast,
         }
 
     @classmethod
@@ -399,4 +404,5 @@ class RunSettings:
                                   for s in data.get("excised_spheres", ())),
             # Archives written before the gauge was declared integrated tracks from any shift.
             shift_gauge=data.get("shift_gauge", "moving_puncture"),
+            formation_forecast=bool(data.get("formation_forecast", True)),
         )

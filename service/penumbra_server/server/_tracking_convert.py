@@ -20,14 +20,14 @@ from penumbra_shim._wire import horizons_pb2 as pb
 
 from ..archive import _layout as layout
 from ..tracking.forecast import Forecast
-from ..tracking.guidance import HorizonSize, RefinementGuidance
+from ..tracking.guidance import HorizonSize, LevelRegion, RefinementGuidance
 from ..tracking.motion import MotionBound
 from ..tracking.windows import DataWindow
 from ._convert import vector
-from ._spec import refinement_to_wire
+from ._spec import refinement_from_wire, refinement_to_wire
 
 __all__ = ["Notice", "encode_wire", "decode_wire", "wire_triple", "warning_notice", "track_notice",
-           "formed_notice", "guidance_notice", "windows_notice", "windows_from_wire"]
+           "formed_notice", "guidance_notice", "guidance_regions_from_wire", "windows_notice", "windows_from_wire"]
 
 _MODEL_WIRE = {"static": pb.PositionForecast.MODEL_STATIC, "polynomial": pb.PositionForecast.MODEL_POLYNOMIAL,
                "orbit": pb.PositionForecast.MODEL_ORBIT}
@@ -191,3 +191,15 @@ def windows_from_wire(w: pb.DataWindowsWanted) -> list[DataWindow]:
     """The windows of an archived data_windows_wanted payload."""
     return [DataWindow(name=x.name, lower=wire_triple(x.lower_m), upper=wire_triple(x.upper_m), reason=x.reason,
                        growth=x.growth) for x in w.windows]
+
+
+def guidance_regions_from_wire(g: pb.RefinementGuidance) -> RefinementGuidance:
+    """The levels' regions of an archived refinement_guidance payload, without the per-body
+    detail: what a restarted steering needs to keep merged regions merged (hysteresis)."""
+    levels = tuple(
+        tuple(LevelRegion(level=r.level, spacing=r.spacing_m, bodies=tuple(r.bodies), centre=wire_triple(r.centre_m),
+                          radius=r.radius_m, lower=wire_triple(r.lower_m), upper=wire_triple(r.upper_m),
+                          reason=r.reason) for r in level.regions)
+        for level in g.levels)
+    return RefinementGuidance(valid_from=g.valid_from_m, valid_until=g.valid_until_m, bodies=(), levels=levels,
+                              post_merger=g.post_merger, policy=refinement_from_wire(g.policy), reasons=dict(g.reasons))

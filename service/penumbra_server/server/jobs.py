@@ -162,9 +162,6 @@ def _quantities_dict(q) -> dict:
         "radius_min": float(q.radius_min),
         "radius_mean": float(q.radius_mean),
         "radius_max": float(q.radius_max),
-        "circumference_xy": float(q.circumference_xy),
-        "circumference_xz": float(q.circumference_xz),
-        "circumference_yz": float(q.circumference_yz),
         "resolution_indicator": float(q.resolution_indicator),
         "angular_momentum": [float(v) for v in q.angular_momentum],
         "christodoulou_mass": float(q.christodoulou_mass),
@@ -172,7 +169,7 @@ def _quantities_dict(q) -> dict:
 
 
 #: Highest multipole order reported (index n = 0 .. MULTIPOLE_N_MAX on the wire and in the archive).
-MULTIPOLE_N_MAX = 4
+MULTIPOLE_N_MAX = 8
 
 _NAN = float("nan")
 
@@ -184,7 +181,7 @@ def _spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str
     surface the finder converged to is never lost to a measurement of what a practitioner quotes.
     Units as in SurfaceQuantities (J in M^2, masses and lengths in M, the rest dimensionless).
     """
-    from ..numerics.circumferences import axis_circumferences
+    from ..numerics.circumferences import axis_circumferences, spin_from_circumference_ratio
     from ..numerics.killing import horizon_spin
     from ..numerics.multipoles import horizon_multipoles
 
@@ -192,7 +189,7 @@ def _spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str
         "akv_angular_momentum": _NAN, "spin_direction": [_NAN] * 3, "dimensionless_spin": _NAN,
         "akv_christodoulou_mass": _NAN, "killing_quality": _NAN,
         "spin_equatorial_circumference": _NAN, "spin_polar_circumference": _NAN,
-        "spin_circumference_ratio": _NAN,
+        "spin_circumference_ratio": _NAN, "circumference_spin": _NAN,
         "mass_multipoles": [_NAN] * (MULTIPOLE_N_MAX + 1), "spin_multipoles": [_NAN] * (MULTIPOLE_N_MAX + 1),
     }
     notes: list[str] = []
@@ -212,7 +209,8 @@ def _spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str
         circ = axis_circumferences(surface, data, spin.direction, spin.centroid, order=order)
         polar = float(np.mean(circ.polar))
         out.update(spin_equatorial_circumference=float(circ.equatorial), spin_polar_circumference=polar,
-                   spin_circumference_ratio=float(circ.ratio))
+                   spin_circumference_ratio=float(circ.ratio),
+                   circumference_spin=spin_from_circumference_ratio(float(circ.ratio)))
     except Exception as exc:
         notes.append(f"spin-axis circumferences not measured: {type(exc).__name__}: {exc}")
     try:
@@ -231,7 +229,15 @@ ERROR_BAR_SOURCES = {
     "akv_christodoulou_mass": "christodoulou_mass",
     "akv_angular_momentum": "angular_momentum",
     "dimensionless_spin": "dimensionless_spin",
+    "centroid": "centroid",
+    "spin_direction": "spin_direction",
+    "spin_equatorial_circumference": "equatorial_circumference",
+    "spin_polar_circumference": "polar_circumference",
+    "mass_multipoles": "mass_multipoles",
+    "spin_multipoles": "spin_multipoles",
 }
+#: Error bars carried per multipole, not as one scalar.
+_PER_INDEX = ("mass_multipoles", "spin_multipoles")
 
 
 def _error_bars(surface: Surface, data: Slice, order: int) -> tuple[dict, list[str]]:
@@ -240,13 +246,44 @@ def _error_bars(surface: Surface, data: Slice, order: int) -> tuple[dict, list[s
     cannot be estimated (e.g. l_max < 3)."""
     from ..numerics.error_bars import quote_horizon
 
-    out = {f"{name}_error": _NAN for name in ERROR_BAR_SOURCES}
+    out = {f"{name}_error": ([_NAN] * (MULTIPOLE_N_MAX + 1) if name in _PER_INDEX else _NAN)
+           for name in ERROR_BAR_SOURCES}
     try:
         quoted = quote_horizon(surface, data, order=order, n_max=MULTIPOLE_N_MAX)
     except Exception as exc:  # an error bar that cannot be made must not lose the surface
         return out, [f"error bars not estimated: {type(exc).__name__}: {exc}"]
     for name, attribute in ERROR_BAR_SOURCES.items():
-        out[f"{name}_error"] = float(getattr(quoted, attribute).error)
+        error = np.asarray(getattr(quoted, attribute).error, dtype=float)
+        # The centroid's error is one length (its displacement), repeated per component.
+        out[f"{name}_error"] = [float(v) for v in error] if name in _PER_INDEX else float(np.max(error))
+    return out, []
+
+
+#: Harmonic degree of the stability operator's eigenfunction below the surface's own (the error
+#: estimate compares the two degrees).
+STABILITY_LMAX_DROP = 2
+
+
+def _stability_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str]]:
+    """Principal eigenvalue of the MOTS stability operator (1/M^2) and an error estimate.
+
+    The estimate is the change of the eigenvalue when the eigenfunction's harmonic degree drops
+    by :data:`STABILITY_LMAX_DROP` (the surface itself unchanged): the truncation of psi is what
+    the Galerkin solve controls; the data's own error shows up in the surface's error bars.
+    NaN and a note when it cannot be computed (the surface stays found).
+    """
+    from ..numerics.stability import principal_eigenvalue, stability_matrices
+
+    out = {"stability_eigenvalue": _NAN, "stability_eigenvalue_error": _NAN}
+    try:
+        mats = stability_matrices(surface, data, order=order)
+        value = principal_eigenvalue(mats)
+        out["stability_eigenvalue"] = value
+        lower = surface.lmax - STABILITY_LMAX_DROP
+        if lower >= 1:
+            out["stability_eigenvalue_error"] = abs(value - principal_eigenvalue(mats, lower))
+    except Exception as exc:  # an eigenvalue that cannot be made must not lose the surface
+        return out, [f"stability not computed: {type(exc).__name__}: {exc}"]
     return out, []
 
 
@@ -257,6 +294,9 @@ def run_surface_job(job: SurfaceJob) -> SurfaceOutcome:
     job cannot take the run down.
     """
     start = time.perf_counter()
+    run_in_worker = getattr(job, "run_in_worker", None)
+    if callable(run_in_worker):  # another kind of worker job (server/formation.py); it never raises
+        return run_in_worker()
     try:
         return _run(job, start)
     except Exception as exc:  # a worker must report, not crash the pool
@@ -358,6 +398,9 @@ def _found(job: SurfaceJob, kind: str, result, quantities: dict, message: str, t
     measured_in = result.geometry if result.geometry is not None else job.data
     spin_quantities, notes = _spin_quantities(surface, measured_in, job.interpolation_order)
     quantities.update(spin_quantities)
+    stability, stability_notes = _stability_quantities(surface, measured_in, job.interpolation_order)
+    quantities.update(stability)
+    notes.extend(stability_notes)
     errors, error_notes = _error_bars(surface, job.data, job.interpolation_order)
     quantities.update(errors)
     notes.extend(error_notes)

@@ -99,6 +99,9 @@ def restore_run(run: "RunRecord", archived: ArchivedRun) -> None:
                 run.slices_incomplete += 1
             else:
                 run.parts.given_up.add(int(event.iteration))
+        elif kind == "formation_forecast":  # the c_min history of the formation watch (formation.py)
+            for observer in run.slice_observers:
+                getattr(observer, "restore_event", lambda _: None)(event)
     run.steering.restore(reasons, tracking_events)
     run.link.restore(view.client_gaps(), tracking_events)
     for entry in run.state_events:

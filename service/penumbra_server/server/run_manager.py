@@ -17,10 +17,12 @@ from ..archive import ArchiveWriter, archive_path, list_archives
 from ._spec import RunSettings
 from .errors import ServiceError
 from .executors import FinderExecutor
+from .formation import FormationWatch
 from .planning import steering_planner_factory
 from .restore import read_archive, restore_run
 from .runs import ManagerOptions, RunRecord
 from .scheduler import SurfacePlanner
+from .spool import RunSpool, spool_path
 
 __all__ = ["RunManager", "software_version"]
 
@@ -103,9 +105,12 @@ class RunManager:
             run_id=run_id, settings=settings, writer=writer, executor=self.executor,
             archive_thread=self.archive_thread, options=self.options,
             planner=self.planner_factory(settings), created_unix_s=created, next_seq=next_seq,
+            spool=RunSpool(spool_path(self.archive_root, run_id)),
         )
         if self.slice_observer_factory is not None:
             run.slice_observers.extend(self.slice_observer_factory(settings))
+        if settings.formation_forecast and run.steering.common_label is not None:
+            run.slice_observers.append(FormationWatch())  # when the pair's common horizon forms (formation.py)
         self.runs[run_id] = run
         return run
 
@@ -127,6 +132,10 @@ class RunManager:
                 run = self._make_record(summary.run_id, settings, writer, float(attrs["created_unix_s"]),
                                         next_seq=int(attrs.get("next_event_seq", 1)))
                 restore_run(run, archived)
+                if len(archived.slices.get("iteration", ())):
+                    run.highest_held = int(max(archived.slices["iteration"]))
+                replay = await loop.run_in_executor(self.archive_thread, self._read_spool, run,
+                                                    summary.state == "closed")
                 if attrs.get("open_request_id"):
                     self._request_ids[str(attrs["open_request_id"])] = summary.run_id
             except Exception:
@@ -136,9 +145,35 @@ class RunManager:
             if summary.state == "closed":
                 run.mark_closed(float(attrs.get("closed_unix_s") or 0.0))
                 continue
-            await run.announce_state(pb.Run.STATE_OPEN, "re-opened from its archive after a server restart")
+            for item in replay:  # acknowledged before the restart, not yet archived: processed now
+                run.requeue(item)
+            reason = "re-opened from its archive after a server restart"
+            if replay:
+                reason += f"; {len(replay)} acknowledged slice(s) replayed from its spool"
+            await run.announce_state(pb.Run.STATE_OPEN, reason)
             reopened.append(summary.run_id)
         return reopened
+
+    @staticmethod
+    def _read_spool(run: RunRecord, closed: bool) -> list:
+        """The spooled slices of ``run`` not yet archived, in iteration order (archive thread).
+        Files of archived iterations (a kill between the commit and the removal) are removed;
+        a closed run's spool goes entirely (its close archived everything it acknowledged)."""
+        spool = run.spool
+        if closed:
+            spool.remove_all()
+            return []
+        entries = spool.entries()
+        spool.release([e.iteration for e in entries if e.iteration in run.accepted_iterations])
+        items = []
+        for entry in entries:
+            if entry.iteration in run.accepted_iterations:
+                continue
+            try:
+                items.append(spool.load(entry, excised_spheres=run.settings.excised_spheres))
+            except ValueError:
+                log.exception("run %s: spool file unreadable, kept for inspection", run.run_id)
+        return items
 
     def list_runs(self) -> list[RunRecord]:
         return sorted(self.runs.values(), key=lambda r: (-r.created_unix_s, r.run_id))

@@ -16,6 +16,7 @@ restored by run_manager.py and restore.py; parts.py and link_records.py hang off
 from __future__ import annotations
 
 import asyncio
+import errno
 import logging
 import time
 from collections import deque
@@ -27,6 +28,7 @@ import grpc
 
 from penumbra_shim._wire import horizons_pb2 as pb
 
+from .. import crash_points
 from ..archive import ArchiveWriter
 from ..numerics.slices import Slice
 from ._spec import RunSettings
@@ -42,6 +44,7 @@ from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, 
                          state_emission, surface_emission)
 from .scheduler import SurfacePlan, SurfacePlanner
 from .search import search_plan
+from .spool import RunSpool
 from .steering import RunSteering
 from .surface_state import SurfaceState, record_outcome
 
@@ -76,6 +79,7 @@ class RunRecord:
         planner: SurfacePlanner,
         created_unix_s: float,
         next_seq: int = 1,
+        spool: RunSpool | None = None,
     ) -> None:
         self.run_id = run_id
         self.settings = settings
@@ -125,6 +129,11 @@ class RunRecord:
         #: Called after each processed slice with (run, queued slice, outcomes): a hook for
         #: custom tracking. Exceptions are logged, never raised into the run.
         self.slice_observers: list[Callable[["RunRecord", QueuedSlice, list[SurfaceOutcome]], None]] = []
+        #: Acknowledged slices kept on disk until archived (spool.py); None: memory only.
+        self.spool = spool
+        #: Highest iteration archived or spooled (-1: none); slices replayed from the spool at startup.
+        self.highest_held = -1
+        self.slices_replayed = 0
         self._queue: deque[QueuedSlice] = deque()
         self._queue_changed = asyncio.Event()
         self._closing = False
@@ -164,6 +173,9 @@ class RunRecord:
             slices_incomplete=self.slices_incomplete,
             client_gaps_recorded=self.link.gaps_recorded,
             slices_rejected=self.link.slices_rejected,
+            highest_held_iteration=self.highest_held,
+            slices_spooled=self.spool.count if self.spool is not None else 0,
+            slices_replayed=self.slices_replayed,
         )
 
     def latest_surfaces(self) -> pb.GetLatestSurfacesResponse:
@@ -244,6 +256,44 @@ class RunRecord:
             parts_expected=1,
         )
 
+    async def accept_persisted(self, item: QueuedSlice) -> pb.SendSliceResponse:
+        """Write ``item`` to the run's spool (flushed to the disk), then :meth:`accept` it: an
+        acknowledged slice survives a crash of the server. Duplicates are answered at once."""
+        self.check_accepting()
+        if self.is_duplicate(item.iteration):
+            return self.duplicate_response(item.iteration, item.nbytes)
+        if self.spool is None:
+            return self.accept(item)
+        try:
+            await self._in_archive_thread(self.spool.write, item)
+        except OSError as exc:  # not on disk: not acknowledged (the client keeps the slice)
+            full = exc.errno in (errno.ENOSPC, errno.EDQUOT)
+            raise ServiceError(grpc.StatusCode.RESOURCE_EXHAUSTED if full else grpc.StatusCode.INTERNAL,
+                               f"iteration: slice {item.iteration} could not be written to the run's spool "
+                               f"{self.spool.directory}: {exc.strerror or exc}; it was not accepted",
+                               reason="SPOOL_WRITE_FAILED") from None
+        self.highest_held = max(self.highest_held, item.iteration)
+        crash_points.reached("spool-before-ack")
+        response = self.accept(item)
+        response.persisted = response.outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED
+        return response
+
+    def requeue(self, item: QueuedSlice) -> None:
+        """Queue a slice replayed from the spool after a restart (acknowledged before the crash):
+        counted as received, never skipped on the way in (the spool holds at most a queue's worth)."""
+        self.accepted_iterations.add(item.iteration)
+        self.slices_received += 1
+        self.slices_replayed += 1
+        self.highest_held = max(self.highest_held, item.iteration)
+        if item.iteration > self.last_received[0]:
+            self.last_received = (item.iteration, item.slice_.time)
+        self._queue.append(item)
+        self._queue_changed.set()
+
+    def _log_spool_failure(self, written: asyncio.Future) -> None:
+        if not written.cancelled() and written.exception() is not None:
+            log.error("run %s: spooling an assembled slice failed: %s", self.run_id, written.exception())
+
     def accept_assembled(self, slice_: Slice | None, nbytes: int,
                          report: pb.SlicePartsMissing | None) -> pb.SendSliceResponse | None:
         """Take a slice assembled from parts (parts.PartSink): announce ``report`` (parts missing)
@@ -254,7 +304,14 @@ class RunRecord:
                 self.slices_incomplete += 1
         if slice_ is None:
             return None
-        return self.accept(QueuedSlice(slice_=slice_, nbytes=nbytes, arrival_unix_s=time.time()))
+        item = QueuedSlice(slice_=slice_, nbytes=nbytes, arrival_unix_s=time.time())
+        response = self.accept(item)
+        if self.spool is not None and response.outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED:
+            # The parts were answered from memory; the assembled slice is kept from now on. The
+            # archive thread runs jobs in order, so this write precedes the slice's release.
+            written = asyncio.get_running_loop().run_in_executor(self.archive_thread, self.spool.write, item)
+            written.add_done_callback(self._log_spool_failure)
+        return response
 
     # -- processing ---------------------------------------------------------------------------
 
@@ -382,6 +439,12 @@ class RunRecord:
                         emission.done.set_exception(ServiceError(grpc.StatusCode.INTERNAL, self.failed_reason,
                                                                             reason="ARCHIVE_FAILED"))
                 continue
+            if self.spool is not None and merged.slice_rows:
+                # The slices' fates are archived: their spool files may go.
+                crash_points.reached("commit-before-release")
+                done = [int(row["iteration"]) for row in merged.slice_rows if "iteration" in row]
+                self.highest_held = max([self.highest_held, *done])
+                await self._in_archive_thread(self.spool.release, done)
             emitted = time.time()
             for emission, event in zip(batch, merged.events):
                 event.emit_time_unix_s = emitted
@@ -407,7 +470,10 @@ class RunRecord:
         self._closing = True
         self._queue_changed.set()
         await self._processor_task
+        await asyncio.gather(*(o.drain() for o in self.slice_observers if hasattr(o, "drain")))  # formation.py
         await self.announce_state(pb.Run.STATE_CLOSED, reason)
+        if self.spool is not None:  # every acknowledged slice is archived now
+            await self._in_archive_thread(self.spool.remove_all)
         self.state = pb.Run.STATE_CLOSED
         self.closed_unix_s = time.time()
         self.log.close()

@@ -232,7 +232,9 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
     @_translating_errors
     async def CloseRun(self, request: pb.CloseRunRequest, context) -> pb.CloseRunResponse:
         run = self.manager.get(request.run_id)
-        await run.close()
+        # Shielded: when the caller's deadline passes the close goes on (its retry waits for the
+        # same close) instead of cancelling the processing of what the run acknowledged.
+        await asyncio.shield(run.close())
         return pb.CloseRunResponse(run=run.to_wire())
 
     @_translating_errors
@@ -297,7 +299,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
             slice_ = await asyncio.to_thread(mirror_through_z0, slice_)
         item = QueuedSlice(slice_=slice_, nbytes=assembler.received_bytes, arrival_unix_s=time.time())
         run.parts.check(slice_.iteration, slice_.time, label)  # parts of this iteration may have begun meanwhile
-        return run.accept(item)
+        return await run.accept_persisted(item)  # on disk before the answer
 
     @_translating_errors
     async def WatchRun(self, request: pb.WatchRunRequest, context) -> None:

@@ -36,8 +36,8 @@ from ..tracking.guidance import RefinementGuidance, guidance_times, refinement_g
 from ..tracking.motion import SPEED_SAFETY, UNKNOWN_SPEED, MotionBound, forecast_speed_bound, orbit_growth_cap
 from ..tracking.windows import DataWindow, merge_overlapping_windows, window_coverage
 from ._spec import RunSettings
-from ._tracking_convert import (Notice, decode_wire, formed_notice, guidance_notice, track_notice, warning_notice,
-                                windows_from_wire, windows_notice)
+from ._tracking_convert import (Notice, decode_wire, formed_notice, guidance_notice, guidance_regions_from_wire,
+                                track_notice, warning_notice, windows_from_wire, windows_notice)
 from .jobs import REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceOutcome
 from .punctures import PunctureTracks
 from .search import crop_ghost_nodes
@@ -105,6 +105,9 @@ class RunSteering:
         self.previous_slice_time: float = math.nan
         self.last_slice_time: float = math.nan
         self.last_advice: CommonSearchAdvice | None = None
+        #: The guidance issued last: its merged regions stay merged until clear by the policy's
+        #: separation margin (tracking.guidance, hysteresis), so regions do not thrash.
+        self.last_guidance: RefinementGuidance | None = None
 
     # -- queries for the planner ------------------------------------------------------------------
 
@@ -259,6 +262,7 @@ class RunSteering:
         result = track_notices + formed + others
         guidance = self._guidance(times, body_fc)
         if guidance is not None:
+            self.last_guidance = guidance
             sizes = {b.body: self.states[b.body].size() for b in guidance.bodies}
             result.append(guidance_notice(guidance, sizes, t, it))
         windows = self._windows(slice_, times, body_fc)
@@ -313,7 +317,8 @@ class RunSteering:
             fc = self.forecast_label(self.common_label, times)
             if size is None or fc is None:
                 return None
-            return refinement_guidance(fc, {common.label: size}, policy=self.policy, post_merger=True)
+            return refinement_guidance(fc, {common.label: size}, policy=self.policy, post_merger=True,
+                                       previous=self.last_guidance)
         if body_fc is None:
             return None
         sizes = {label: self.states[label].size() for label in body_fc.bodies}
@@ -325,7 +330,8 @@ class RunSteering:
                                positions=body_fc.positions[keep], uncertainty=body_fc.uncertainty[keep],
                                model=body_fc.model, reason=body_fc.reason, fit_window=body_fc.fit_window,
                                details=body_fc.details)
-        return refinement_guidance(body_fc, {label: sizes[label] for label in body_fc.bodies}, policy=self.policy)
+        return refinement_guidance(body_fc, {label: sizes[label] for label in body_fc.bodies}, policy=self.policy,
+                                   previous=self.last_guidance)
 
     def _windows(self, slice_: Slice, times: np.ndarray, body_fc: Forecast | None) -> list[DataWindow]:
         """Boxes of data the next slice must hold: the data regions of the next searches plus
@@ -420,6 +426,8 @@ class RunSteering:
         for index, kind in enumerate(kinds):
             if kind == "common_horizon_formed" and self.common_formed is None:
                 self.common_formed = (float(tracking_events["time"][index]), int(tracking_events["iteration"][index]))
+            if kind == "refinement_guidance":
+                self.last_guidance = guidance_regions_from_wire(decode_wire(tracking_events["wire"][index]).refinement_guidance)
             if kind == "data_windows_wanted":
                 w = decode_wire(tracking_events["wire"][index]).data_windows_wanted
                 self.latest_windows = windows_from_wire(w)

@@ -24,7 +24,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["RemnantError", "SettledQuantity", "Remnant", "remnant"]
+__all__ = ["RemnantError", "SettledQuantity", "Remnant", "remnant", "remnant_from_rows", "remnant_from_reports",
+           "remnant_line"]
 
 _NAMES = ("irreducible_mass", "christodoulou_mass", "dimensionless_spin", "spin_vector")
 
@@ -165,3 +166,68 @@ def remnant(
                  f"), every quantity stays within {tolerance:g} error bar(s) of its latest value")
     return Remnant(**settled, window=(t_start, t_end), samples=int(keep.sum()),
                    settled=all(q.settled for q in settled.values()), criterion=criterion)
+
+
+def remnant_from_rows(times, irreducible_mass, christodoulou_mass, dimensionless_spin, angular_momentum,
+                      spin_direction, errors: dict, **options) -> Remnant:
+    """:func:`remnant` from per-row columns as archived or reported (found rows only, time order):
+    J (M^2) about the unit ``spin_direction`` (n, 3) gives the spin vector; ``errors`` holds
+    "irreducible_mass", "christodoulou_mass", "dimensionless_spin" and "angular_momentum" error
+    bars (n,), the last used for every component of the spin vector. Rows with a non-finite
+    value or error are left out. ``options``: as for :func:`remnant`."""
+    t = np.asarray(times, dtype=float)
+    j = np.asarray(angular_momentum, dtype=float)
+    direction = np.asarray(spin_direction, dtype=float).reshape(-1, 3)
+    values = {"irreducible_mass": np.asarray(irreducible_mass, dtype=float),
+              "christodoulou_mass": np.asarray(christodoulou_mass, dtype=float),
+              "dimensionless_spin": np.asarray(dimensionless_spin, dtype=float),
+              "spin_vector": j[:, None] * direction}
+    bars = {"irreducible_mass": np.asarray(errors["irreducible_mass"], dtype=float),
+            "christodoulou_mass": np.asarray(errors["christodoulou_mass"], dtype=float),
+            "dimensionless_spin": np.asarray(errors["dimensionless_spin"], dtype=float),
+            "spin_vector": np.repeat(np.asarray(errors["angular_momentum"], dtype=float)[:, None], 3, axis=1)}
+    keep = np.isfinite(t)
+    for name in _NAMES:
+        for array in (values[name], bars[name]):
+            keep &= np.all(np.isfinite(array.reshape(t.size, -1)), axis=1)
+    return remnant(t[keep], {k: v[keep] for k, v in values.items()}, {k: v[keep] for k, v in bars.items()},
+                   **options)
+
+
+def remnant_from_reports(reports, **options) -> Remnant:
+    """:func:`remnant_from_rows` from found-surface reports in time order (objects with the
+    attributes of the shim's ``SurfaceReport``: time, irreducible_mass, akv_christodoulou_mass,
+    dimensionless_spin, akv_angular_momentum, spin_direction and their ``*_error``)."""
+    nan = float("nan")
+
+    def column(name):
+        return [getattr(r, name, nan) for r in reports]
+
+    return remnant_from_rows(column("time"), column("irreducible_mass"), column("akv_christodoulou_mass"),
+                             column("dimensionless_spin"), column("akv_angular_momentum"),
+                             [list(getattr(r, "spin_direction", (nan,) * 3)) for r in reports],
+                             {"irreducible_mass": column("irreducible_mass_error"),
+                              "christodoulou_mass": column("akv_christodoulou_mass_error"),
+                              "dimensionless_spin": column("dimensionless_spin_error"),
+                              "angular_momentum": column("akv_angular_momentum_error")}, **options)
+
+
+def remnant_line(r: Remnant, label: str) -> str:
+    """One line for ``watch``, ``summary.txt`` and the report: the latest values with their error
+    bars and how well each has settled (spread over the window in error bars; settled at <= the
+    tolerance)."""
+
+    def pm(q: SettledQuantity, spec: str) -> str:
+        return f"{format(q.value, spec)} +- {q.error:.1e}"
+
+    def moved(q: SettledQuantity) -> str:
+        return f"{q.ratio:.2g}" if np.isfinite(q.ratio) else "inf"
+
+    j = r.spin_vector.value
+    magnitude = float(np.linalg.norm(j))
+    axis = "(-)" if magnitude == 0 else "(" + ", ".join(f"{v / magnitude:+.3f}" for v in j) + ")"
+    return (f"remnant ({label}): {'settled' if r.settled else 'NOT settled'} over t = {r.window[0]:.3f} .. "
+            f"{r.window[1]:.3f} M ({r.samples} samples): M_irr {pm(r.irreducible_mass, '.6f')} M, "
+            f"M_chr {pm(r.christodoulou_mass, '.6f')} M, chi {pm(r.dimensionless_spin, '.5f')}, spin axis {axis}; "
+            f"spread over the window in error bars: M_irr {moved(r.irreducible_mass)}, "
+            f"M_chr {moved(r.christodoulou_mass)}, chi {moved(r.dimensionless_spin)}, J {moved(r.spin_vector)}")

@@ -3,7 +3,8 @@
 The package's modules, one job each: :mod:`.loading` reads the archive into an
 :class:`ArchivedRun` of plain columns; :mod:`.numbers` and :mod:`.guidance` derive the figures
 (pure functions); :mod:`.text` writes them as ``summary.txt``; :mod:`.plots` draws
-``areas_masses.png``, ``tracks.png``, ``guidance.png``, ``cross_sections.png`` and (:mod:`.spin`) ``spin.png``;
+``areas_masses.png``, ``tracks.png``, ``guidance.png``, ``cross_sections.png``, (:mod:`.spin`) ``spin.png``,
+(:mod:`.mots`) ``mots.png``, (:mod:`.formation`) ``formation.png`` and (:mod:`.multipoles`) ``multipoles.png``;
 :mod:`.write` runs the steps in order.
 
 Surfaces labelled like a body of the run spec are individual horizons; any other label is a
@@ -17,6 +18,8 @@ from .numbers import (ForecastCheck, RunSummary, SurfaceComparison, SurfaceSumma
                       default_section_times, forecast_check, summarise)
 from .plots import (PlotInfo, chosen_forecasts, cone_path, default_guidance_choice, plot_areas_masses,
                     plot_cross_sections, plot_guidance, plot_tracks)
+from .mots import plot_mots, stability_lines, stability_series
+from .multipoles import multipole_series, plot_multipoles
 from .spin import plot_spin, spin_lines, spin_series
 from .text import summary_text
 from .write import ReportResult, write_report
@@ -44,10 +47,15 @@ __all__ = [
     "plot_areas_masses",
     "plot_cross_sections",
     "plot_guidance",
+    "plot_mots",
     "plot_spin",
+    "plot_multipoles",
+    "multipole_series",
     "plot_tracks",
     "spin_lines",
     "spin_series",
+    "stability_lines",
+    "stability_series",
     "summarise",
     "summary_text",
     "write_report",

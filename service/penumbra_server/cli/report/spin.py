@@ -35,9 +35,28 @@ def spin_series(record: ArchivedRun, label: str) -> tuple[np.ndarray, np.ndarray
     return np.asarray(cols["time"], dtype=float)[rows][keep], chi[keep], angle[keep]
 
 
+def _spin_errors(record: ArchivedRun, label: str) -> tuple[np.ndarray, np.ndarray]:
+    """Error bars of chi and of the direction (radians; capped at pi) for the rows of
+    :func:`spin_series`; NaN where the archive has none."""
+    cols = record.surfaces[label]
+    if "dimensionless_spin" not in cols or "spin_direction" not in cols:
+        return np.zeros(0), np.zeros(0)
+    rows = found_rows(cols)
+    chi = np.asarray(cols["dimensionless_spin"], dtype=float)[rows]
+    direction = np.asarray(cols["spin_direction"], dtype=float)[rows].reshape(-1, 3)
+    keep = np.isfinite(chi) & np.all(np.isfinite(direction), axis=1)
+
+    def column(name):
+        return (np.asarray(cols[name], dtype=float)[rows][keep] if name in cols
+                else np.full(int(keep.sum()), np.nan))
+
+    return column("dimensionless_spin_error"), np.minimum(column("spin_direction_error"), np.pi)
+
+
 def plot_spin(record: ArchivedRun, summary: RunSummary, path: Path):
     """chi (top) and the spin axis's angle from +z in radians (bottom) against time, one line per
-    surface labelled with its label; returns a :class:`~.plots.PlotInfo`."""
+    surface labelled with its label, shaded bands of the archived error bars; returns a
+    :class:`~.plots.PlotInfo`."""
     from .plots import PlotInfo, _colours, _mark_common, _new_figure, _panel_limits
 
     fig, axes = _new_figure(7.5, 6.0, nrows=2)
@@ -50,6 +69,11 @@ def plot_spin(record: ArchivedRun, summary: RunSummary, path: Path):
         drawn += 1
         axes[0, 0].plot(t, chi, "o-", ms=3, color=colours[label], label=label)
         axes[1, 0].plot(t, angle, "o-", ms=3, color=colours[label], label=label)
+        chi_error, angle_error = _spin_errors(record, label)
+        for ax, values, errors in ((axes[0, 0], chi, chi_error), (axes[1, 0], angle, angle_error)):
+            if errors.shape == values.shape and np.any(np.isfinite(errors)):
+                # Error bands (numerics/error_bars.py); a direction's error is an angle.
+                ax.fill_between(t, values - errors, values + errors, color=colours[label], alpha=0.2, linewidth=0)
     for ax in axes[:, 0]:
         _mark_common(ax, summary)
         ax.grid(alpha=0.3)
@@ -95,26 +119,21 @@ def spin_lines(record: ArchivedRun, summary: RunSummary) -> list[str]:
 
 
 def _remnant_line(cols, label: str) -> str:
-    from penumbra_server.tracking.remnant import remnant
+    from penumbra_server.tracking.remnant import remnant_from_rows, remnant_line
 
     rows = found_rows(cols)
     names = ("irreducible_mass", "akv_christodoulou_mass", "dimensionless_spin", "akv_angular_momentum")
     if not rows.size or any(n not in cols or f"{n}_error" not in cols for n in names):
         return f"remnant ({label}): not assessed (no spin error bars in this archive)"
     get = lambda n: np.asarray(cols[n], dtype=float)[rows]  # noqa: E731
-    direction = np.asarray(cols["spin_direction"], dtype=float)[rows].reshape(-1, 3)
-    j, j_err = get("akv_angular_momentum"), get("akv_angular_momentum_error")
-    values = {"irreducible_mass": get("irreducible_mass"), "christodoulou_mass": get("akv_christodoulou_mass"),
-              "dimensionless_spin": get("dimensionless_spin"), "spin_vector": j[:, None] * direction}
-    errors = {"irreducible_mass": get("irreducible_mass_error"),
-              "christodoulou_mass": get("akv_christodoulou_mass_error"),
-              "dimensionless_spin": get("dimensionless_spin_error"),
-              "spin_vector": np.repeat(j_err[:, None], 3, axis=1)}
     try:
-        r = remnant(np.asarray(cols["time"], dtype=float)[rows], values, errors)
+        r = remnant_from_rows(get("time"), get("irreducible_mass"), get("akv_christodoulou_mass"),
+                              get("dimensionless_spin"), get("akv_angular_momentum"),
+                              np.asarray(cols["spin_direction"], dtype=float)[rows].reshape(-1, 3),
+                              {"irreducible_mass": get("irreducible_mass_error"),
+                               "christodoulou_mass": get("akv_christodoulou_mass_error"),
+                               "dimensionless_spin": get("dimensionless_spin_error"),
+                               "angular_momentum": get("akv_angular_momentum_error")})
     except Exception as exc:  # the report must still be written
         return f"remnant ({label}): not assessed: {exc}"
-    return (f"remnant ({label}): {'settled' if r.settled else 'NOT settled'} over t = {r.window[0]:.3f} .. "
-            f"{r.window[1]:.3f} M ({r.samples} samples): chi {_pm(r.dimensionless_spin.value, r.dimensionless_spin.error, '.5f')}, "
-            f"M_chr {_pm(r.christodoulou_mass.value, r.christodoulou_mass.error, '.6f')} M, "
-            f"M_irr {_pm(r.irreducible_mass.value, r.irreducible_mass.error, '.6f')} M")
+    return remnant_line(r, label)

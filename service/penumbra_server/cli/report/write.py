@@ -13,9 +13,12 @@ from penumbra_server.cli.cross_sections import PLANES
 from penumbra_server.cli.progress import Progress
 from penumbra_server.cli.safe_text import terminal_safe
 
+from .formation import formation_lines, plot_formation
 from .loading import load_run
 from .numbers import RunSummary, default_section_times, snap_times, summarise
 from .plots import plot_areas_masses, plot_cross_sections, plot_guidance, plot_tracks
+from .mots import plot_mots, stability_lines
+from .multipoles import plot_multipoles
 from .spin import plot_spin, spin_lines
 from .text import summary_text
 
@@ -53,7 +56,7 @@ def write_report(archive_path, output_dir, *, times=None, plane: str = "xy",
     """
     if plane not in PLANES:
         raise ValueError(f"plane: expected one of {', '.join(PLANES)}, got {plane!r}")
-    progress = progress or Progress("report", 7)
+    progress = progress or Progress("report", 10)
     output_dir = Path(output_dir)
     output_dir.mkdir(parents=True, exist_ok=True)
     record = load_run(archive_path)
@@ -66,13 +69,17 @@ def write_report(archive_path, output_dir, *, times=None, plane: str = "xy",
                  lambda: plot_tracks(record, summary, output_dir / "tracks.png", plane=plane),
                  lambda: plot_guidance(record, summary, output_dir / "guidance.png", plane=plane),
                  lambda: plot_cross_sections(record, section_times, output_dir / "cross_sections.png", plane=plane),
-                 lambda: plot_spin(record, summary, output_dir / "spin.png")):
+                 lambda: plot_spin(record, summary, output_dir / "spin.png"),
+                 lambda: plot_mots(record, summary, output_dir / "mots.png"),
+                 lambda: plot_formation(record, summary, output_dir / "formation.png"),
+                 lambda: plot_multipoles(record, summary, output_dir / "multipoles.png")):
         drawn.append(draw())
         progress.step(drawn[-1].path.name)
     limits = {info.path.name: info.limits for info in drawn if info.path.name in ("tracks.png", "guidance.png")}
     summary_path = output_dir / "summary.txt"
     # Labels come from the run's opener: nothing in them may drive a terminal.
-    summary_path.write_text(summary_text(summary) + "".join(terminal_safe(line) + "\n" for line in spin_lines(record, summary)))
+    extra = [*spin_lines(record, summary), *stability_lines(record), *formation_lines(record, summary)]
+    summary_path.write_text(summary_text(summary) + "".join(terminal_safe(line) + "\n" for line in extra))
     progress.step(summary_path.name)
     progress.finish(f"wrote {len(drawn)} plots and a summary to {output_dir}")
     return ReportResult(output_dir, tuple(info.path for info in drawn), summary_path, summary, section_times, limits,

@@ -198,7 +198,7 @@ def test_attach_while_unreachable_returns_pending_and_close_drops_what_waits():
             ack = ticket.result(30)
             assert ack.skipped_locally and ack.drop_reason == ps.DROP_REASONS["handle_closed"]
         assert run.dropped_by_reason == {"link_down": 1, "queue_full": 0, "retry_time_exceeded": 0,
-                                         "handle_closed": 4}
+                                         "handle_closed": 4, "server_busy": 0}
         # A stream of a run that never answers ends by its idle timeout, not never.
         stream = client.watch("run-0123456789ab", idle_timeout_s=0.3)
         assert list(stream) == [] and stream.end_reason == "idle_timeout"

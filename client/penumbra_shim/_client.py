@@ -117,7 +117,7 @@ class Client:
 
     def open_run(self, spec: RunSpec, *, queue_depth: int | None = None, chunk_bytes: int = DEFAULT_CHUNK_BYTES,
                  cache_results: bool = True, max_retry_s: float = 60.0, crop_to_windows: bool = False,
-                 open_timeout_s: float = DEFAULT_OPEN_TIMEOUT_S) -> "RunHandle":
+                 open_timeout_s: float = DEFAULT_OPEN_TIMEOUT_S, ask_admission: bool = False) -> "RunHandle":
         """Open a run on the server and return a handle for sending slices to it.
 
         Blocks at most ``open_timeout_s`` (plus the few milliseconds of starting a thread),
@@ -141,6 +141,9 @@ class Client:
             crop_to_windows: default of :meth:`RunHandle.submit`'s option: send only the data
                 windows the server asked for (whole slices until it has asked).
             open_timeout_s: the longest this call waits for the server, seconds.
+            ask_admission: before each upload of a whole slice, ask the server whether it would
+                take it (AdmissionReserve); a slice it would only skip is dropped locally, counted
+                with reason "server_busy" (``stats.server_busy``) and never uploaded.
 
         Raises:
             PenumbraError: the server answered within ``open_timeout_s`` and refused the spec
@@ -152,7 +155,8 @@ class Client:
         return self._settled(RunHandle(self, None, spec=spec, open_request=request,
                                        queue_depth=queue_depth or spec.backlog.queue_depth, chunk_bytes=chunk_bytes,
                                        cache_results=cache_results, max_retry_s=max_retry_s,
-                                       crop_to_windows=crop_to_windows), open_timeout_s, "OpenRun")
+                                       crop_to_windows=crop_to_windows, ask_admission=ask_admission),
+                             open_timeout_s, "OpenRun")
 
     def attach_run(self, run_id: str, *, queue_depth: int | None = None, chunk_bytes: int = DEFAULT_CHUNK_BYTES,
                    cache_results: bool = True, max_retry_s: float = 60.0, crop_to_windows: bool = False,

@@ -27,12 +27,14 @@ DROP_REASONS: dict[str, str] = {
     "queue_full": "local queue full",
     "retry_time_exceeded": "retry time exceeded",
     "handle_closed": "handle closed before the slice was sent",
+    "server_busy": "the server said it would only skip the slice (back-pressure)",
 }
 _REASON_WIRE = {
     "link_down": pb.CLIENT_DROP_REASON_LINK_DOWN,
     "queue_full": pb.CLIENT_DROP_REASON_QUEUE_FULL,
     "retry_time_exceeded": pb.CLIENT_DROP_REASON_RETRY_TIME_EXCEEDED,
     "handle_closed": pb.CLIENT_DROP_REASON_HANDLE_CLOSED,
+    "server_busy": pb.CLIENT_DROP_REASON_SERVER_BUSY,
 }
 _REASON_NAMES = {v: k for k, v in _REASON_WIRE.items()}
 # The ledger of individual drops is for inspection; its memory stays bounded on long outages
@@ -192,9 +194,12 @@ class LinkLedger:
             if self._loose_drops:
                 loose = self._loose_drops
                 self._loose_drops = []
+                reasons = {d.reason for d in loose}
+                cause = ("the evolution submitted faster than the sender delivered (local queue full)"
+                         if reasons == {"queue_full"} else
+                         "; ".join(DROP_REASONS[r] for r in sorted(reasons)))
                 self._unreported.append(ClientGap(
-                    uuid.uuid4().hex, loose[0].unix_s, loose[-1].unix_s, _ranges(loose),
-                    "the evolution submitted faster than the sender delivered (local queue full)"))
+                    uuid.uuid4().hex, loose[0].unix_s, loose[-1].unix_s, _ranges(loose), cause))
             gaps = list(self._unreported)
             self._unreported.clear()
             return gaps

@@ -50,7 +50,8 @@ class RunHandle(RunSender):
 
     def __init__(self, client: Client, info: RunInfo | None, *, queue_depth: int | None, chunk_bytes: int,
                  cache_results: bool, max_retry_s: float, crop_to_windows: bool = False, spec: RunSpec | None = None,
-                 open_request: pb.OpenRunRequest | None = None, attach_run_id: str | None = None) -> None:
+                 open_request: pb.OpenRunRequest | None = None, attach_run_id: str | None = None,
+                 ask_admission: bool = False) -> None:
         if queue_depth is not None and queue_depth < 1:
             raise ValueError(f"queue_depth: expected at least 1, got {queue_depth}")
         self._client = client
@@ -69,6 +70,8 @@ class RunHandle(RunSender):
         self.chunk_bytes = int(chunk_bytes)
         self.max_retry_s = float(max_retry_s)
         self.crop_to_windows = bool(crop_to_windows)
+        #: Ask the server before each upload whether it would take the slice (_sender.py).
+        self.ask_admission = bool(ask_admission)
         self.stats = SenderStats()
         self.errors: list[PenumbraError] = []
         self._queue: deque[_Pending] = deque()

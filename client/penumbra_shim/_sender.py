@@ -22,6 +22,7 @@ from ._wire import horizons_pb2 as pb
 from ._guidance_types import DataWindows
 from ._results import SliceAck
 from ._slices import OutgoingSlice, build_slice, crop_outgoing_slice
+from ._wire import horizons_pb2 as pb
 from .cropping import worth_cropping
 
 __all__ = ["RunSender", "SubmitTicket", "SenderStats", "RETRYABLE_SEND"]
@@ -93,6 +94,8 @@ class SenderStats:
     #: Of ``sent_whole``: no windows held yet; grown windows that would keep nearly all the bytes.
     whole_without_windows: int = 0
     whole_nearly_all: int = 0
+    #: Slices the server said it would only skip (asked before the upload): dropped, never sent.
+    server_busy: int = 0
 
 
 @dataclass(eq=False)
@@ -262,6 +265,11 @@ class RunSender:
         stub = self._client._stub
         full_bytes = pending.slice_.nbytes
         slice_, cropped = self._cropped(pending)
+        if self.ask_admission and slice_.part_count <= 1 and not self._admitted(slice_):
+            with self._cond:
+                self.stats.server_busy += 1
+            self._drop(pending, "server_busy")
+            return
         deadline_s = self._client.deadline_s + slice_.nbytes / _SEND_BYTES_PER_S
         started = time.monotonic()
         backoff = 0.1
@@ -315,3 +323,18 @@ class RunSender:
             pending.ticket._resolve(ack)
             self._link_works()
             return
+
+    def _admitted(self, slice_: OutgoingSlice) -> bool:
+        """Ask the server whether it would take ``slice_`` (AdmissionReserve; a few hundred bytes
+        each way). Any failure to ask means upload as usual; a server without the call is not
+        asked again."""
+        request = pb.AdmissionReserveRequest(run_id=self.run_id, iteration=slice_.iteration, total_bytes=slice_.nbytes)
+        try:
+            reply = self._client._stub.AdmissionReserve(request, timeout=self._client.deadline_s)
+        except ValueError:  # the client was closed under the sender: the upload reports it
+            return True
+        except grpc.RpcError as exc:
+            if exc.code() == grpc.StatusCode.UNIMPLEMENTED:
+                self.ask_admission = False
+            return True
+        return bool(reply.admitted)

@@ -50,7 +50,7 @@ def test_a_server_on_the_dask_engine_finds_a_lone_hole(tmp_path):
                 run.submit(_lone_hole_slice(iteration))
             assert run.flush(120)
             run.close()
-            events = list(client.watch(run.run_id, from_seq=1, timeout_s=60))
+            events = list(client.watch(run.run_id, from_seq=1, timeout_s=600))
         found = [e for e in events if e.kind == "surface_found"]
         assert [e.iteration for e in found] == [0, 1]
         for e in found:

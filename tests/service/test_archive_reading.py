@@ -33,7 +33,7 @@ def _finished_run(client, archive_root, name):
     for t in [run.submit(lone_hole_slice(i)) for i in range(3)]:
         assert t.result(60).accepted
     run.close()
-    list(client.watch(run.run_id, from_seq=1, timeout_s=30))  # until the run's stream ends
+    list(client.watch(run.run_id, from_seq=1, timeout_s=600))  # until the run's stream ends
     return open_archive(archive_root, run.run_id)
 
 

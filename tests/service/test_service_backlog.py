@@ -33,7 +33,7 @@ def test_fast_sender_sees_skips_and_nothing_accepted_is_lost(tmp_path):
             held.release()
             acks = [t.result(0) for t in tickets]
             run.close()
-            events = list(client.watch(run.run_id, timeout_s=60))
+            events = list(client.watch(run.run_id, timeout_s=600))
             info = client.get_run(run.run_id)
     finally:
         held.close_pool()

@@ -176,7 +176,7 @@ def test_other_run_kept_being_served_and_nothing_accepted_was_lost(runs, archive
         assert run.submit(lone_hole_slice(1)).result(60).accepted
         run.close()
     for run in (target, other):
-        events = list(client.watch(run.run_id, timeout_s=30))
+        events = list(client.watch(run.run_id, timeout_s=600))
         assert [e.seq for e in events] == list(range(1, len(events) + 1))
         found = sorted(e.iteration for e in events if e.kind == "surface_found")
         assert found == [0, 1]

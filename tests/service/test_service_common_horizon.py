@@ -46,9 +46,11 @@ def test_common_horizon_forms_at_the_critical_separation_and_the_individual_ones
         run.submit(ps.build_slice(time=0.5 * index, iteration=index, variable_set="conformal_w",
                                   patches=bl_patches([box], (MASS, MASS), _pair_positions(index, d))))
     assert run.flush(120)
-    run.close()  # the server processes every queued slice first
+    # The server processes every queued slice first; the deadlines only catch a hang (a loaded
+    # machine may take minutes for the six slices' finds, inner surfaces and forecasts).
+    run.close(timeout_s=900)
     guidance_reply = client.latest_guidance(run.run_id)
-    events = list(client.watch(run.run_id, timeout_s=60))
+    events = list(client.watch(run.run_id, timeout_s=900))
 
     status = {}  # (iteration, label) -> found?
     reports = {}

@@ -24,7 +24,7 @@ def _slice(iteration: int, *, metric_scale: float = 1.0, spacing: float | None =
 
 def _outcome(client, run):
     run.close()
-    events = list(client.watch(run.run_id, from_seq=1, timeout_s=60))
+    events = list(client.watch(run.run_id, from_seq=1, timeout_s=600))
     return [e for e in events if e.kind in ("surface_found", "surface_not_found")]
 
 

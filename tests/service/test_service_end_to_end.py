@@ -26,7 +26,7 @@ from service_support import LONE_CENTRE, box, lone_hole_slice, lone_spec, patch_
 
 def _close_and_collect(client, run) -> list[ps.Event]:
     run.close()
-    return list(client.watch(run.run_id, from_seq=1, timeout_s=30))
+    return list(client.watch(run.run_id, from_seq=1, timeout_s=600))
 
 
 def _assert_gap_free(events):

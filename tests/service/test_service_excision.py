@@ -54,7 +54,7 @@ def _spec(name: str, **extra) -> ps.RunSpec:
 
 def _events(client, run) -> list[ps.Event]:
     run.close()
-    return list(client.watch(run.run_id, from_seq=1, timeout_s=60))
+    return list(client.watch(run.run_id, from_seq=1, timeout_s=600))
 
 
 def test_shim_and_server_mark_the_same_excised_nodes():

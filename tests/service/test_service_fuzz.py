@@ -133,7 +133,7 @@ def test_after_the_fuzzing_a_control_run_finds_the_lone_hole(server):
         run = client.open_run(lone_spec("after fuzzing"), cache_results=False)
         assert run.submit(lone_hole_slice(0)).result(60).accepted
         run.close()
-        events = list(client.watch(run.run_id, from_seq=1, timeout_s=60))
+        events = list(client.watch(run.run_id, from_seq=1, timeout_s=600))
     found = [e for e in events if e.kind == "surface_found"]
     assert len(found) == 1
     # Area 16 pi m^2 of a lone Brill-Lindquist hole (Brill & Lindquist, Phys. Rev. 131, 471 (1963):

@@ -74,8 +74,8 @@ def full_and_cropped_runs(server, archive_root):
         cropped.close()
         yield {
             "scenario": scenario, "full": full, "cropped": cropped, "cached": cached, "unary": unary,
-            "full_events": list(client.watch(full.run_id, timeout_s=60)),
-            "cropped_events": list(client.watch(cropped.run_id, timeout_s=60)),
+            "full_events": list(client.watch(full.run_id, timeout_s=600)),
+            "cropped_events": list(client.watch(cropped.run_id, timeout_s=600)),
             "archive_root": archive_root,
         }
 
@@ -240,7 +240,7 @@ def test_a_slice_lacking_data_is_reported_and_the_next_window_grows(client):
     assert run.submit(lone_hole_slice(2), crop_to_windows=True).result(60).accepted
     wait_for_windows(run, 2)
     run.close()
-    events = list(client.watch(run.run_id, timeout_s=30))
+    events = list(client.watch(run.run_id, timeout_s=600))
     warnings = [e for e in events if e.kind == "warning"]
     assert len(warnings) == 1 and warnings[0].iteration == 1
     assert warnings[0].label == "A" and warnings[0].warning_kind == "missing_data"

@@ -59,7 +59,7 @@ def _found(client, spec, patch) -> tuple[dict, ps.RunInfo]:
     ack = run.submit(ps.build_slice(time=0.0, iteration=0, variable_set=spec.variable_set, patches=[patch])).result(60)
     assert ack.accepted
     run.close()
-    events = list(client.watch(run.run_id, timeout_s=30))
+    events = list(client.watch(run.run_id, timeout_s=600))
     return {e.surface.label: e.surface for e in events if e.kind == "surface_found"}, ack
 
 

@@ -36,9 +36,9 @@ def test_restart_reopens_the_run_and_the_shim_carries_on(tmp_path):
         finished = client.open_run(lone_spec("finished before the restart"), cache_results=False)
         assert finished.submit(lone_hole_slice(0)).result(60).accepted
         finished.close()
-        finished_events = [e.raw.SerializeToString() for e in client.watch(finished.run_id, timeout_s=30)]
+        finished_events = [e.raw.SerializeToString() for e in client.watch(finished.run_id, timeout_s=600)]
         run = client.open_run(lone_spec("restart"), max_retry_s=60.0)
-        stream = client.watch(run.run_id, from_seq=1, timeout_s=90)
+        stream = client.watch(run.run_id, from_seq=1, timeout_s=600)
         seen: list[ps.Event] = []
         reader = threading.Thread(target=lambda: seen.extend(stream))
         reader.start()
@@ -63,7 +63,7 @@ def test_restart_reopens_the_run_and_the_shim_carries_on(tmp_path):
             # (apart from the emission times, which the archive keeps at commit precision)
             assert client.get_run(finished.run_id).state == "closed"
             assert {r.run_id for r in client.list_runs()} == {run.run_id, finished.run_id}
-            again = [e.raw for e in client.watch(finished.run_id, timeout_s=30)]
+            again = [e.raw for e in client.watch(finished.run_id, timeout_s=600)]
             assert len(again) == len(finished_events)
             for old, new in zip(finished_events, again):
                 before = pb.RunEvent.FromString(old)

@@ -104,7 +104,7 @@ def test_a_moving_hole_is_followed_slice_after_slice(client):
                                                       variable_set="conformal_w")]))
     assert run.flush(60)
     run.close()
-    events = list(client.watch(run.run_id, timeout_s=30))
+    events = list(client.watch(run.run_id, timeout_s=600))
     found = {e.iteration: e.surface for e in events if e.kind == "surface_found"}
     assert sorted(found) == list(range(5))
     for i, s in found.items():

@@ -59,7 +59,7 @@ def test_puncture_and_horizon_tracks_and_forecast_seeds(client, archive_root):
         run.submit(_slice(index))
     assert run.flush(60)
     run.close()
-    events = list(client.watch(run.run_id, timeout_s=30))
+    events = list(client.watch(run.run_id, timeout_s=600))
     updates = [e.track for e in events if e.kind == "track_updated"]
     assert [u.label for u in updates] == ["A"] * SLICES
     assert all(u.horizon is not None and u.horizon.source == "horizon" for u in updates)
@@ -133,7 +133,7 @@ def test_tracking_state_survives_a_restart(tmp_path):
             run.submit(_slice(3))
             assert run.flush(60)
             run.close()
-            events = list(c.watch(run_id, timeout_s=30))
+            events = list(c.watch(run_id, timeout_s=600))
     seqs = [e.seq for e in events]
     assert seqs == list(range(1, len(seqs) + 1))
     view = open_archive(tmp_path, run_id)

@@ -53,7 +53,7 @@ def test_reconnecting_from_the_last_seq_misses_nothing_and_repeats_nothing(clien
     assert [e.SerializeToString() for e in joined] == [e.SerializeToString() for e in whole]
     assert sum(1 for e in whole if e.WhichOneof("kind") == "surface_found") == 5
     # The shim's stream from a middle seq returns exactly the tail.
-    tail = list(client.watch(run.run_id, from_seq=5, timeout_s=30))
+    tail = list(client.watch(run.run_id, from_seq=5, timeout_s=600))
     assert [e.seq for e in tail] == [e.seq for e in whole[4:]]
 
 
@@ -111,7 +111,7 @@ def _overflow_scenario(tmp_path, options, held):
             channel = grpc.insecure_channel(bg.address)
             raw = pb_grpc.HorizonServiceStub(channel).WatchRun(pb.WatchRunRequest(run_id=run.run_id, start_seq=1),
                                                                timeout=60)
-            live = client.watch(run.run_id, from_seq=1, timeout_s=60)  # read promptly, in a thread
+            live = client.watch(run.run_id, from_seq=1, timeout_s=600)  # read promptly, in a thread
             live_events: list[ps.Event] = []
             reader = threading.Thread(target=lambda: live_events.extend(live))
             reader.start()
@@ -134,7 +134,7 @@ def _overflow_scenario(tmp_path, options, held):
             assert info.value.code() == grpc.StatusCode.RESOURCE_EXHAUSTED
             assert f"resume with start_seq={seen[-1] + 1 if seen else 1}" in info.value.details()
             channel.close()
-            stream = client.watch(run.run_id, from_seq=1, timeout_s=30)
+            stream = client.watch(run.run_id, from_seq=1, timeout_s=600)
             events = list(stream)
             assert [e.seq for e in events] == list(range(1, len(events) + 1))
             assert events[-1].state == "closed" and stream.closed_run

@@ -69,5 +69,5 @@ def test_windows_state_a_speed_bound_and_an_expired_window_is_grown_not_sent_who
     assert run.stats.whole_nearly_all == 1 and run.stats.grown == 1 and run.stats.sent_whole == 2
     wait_for_windows(run, 2)
     run.close()
-    found = [e.iteration for e in client.watch(run.run_id, timeout_s=30) if e.kind == "surface_found"]
+    found = [e.iteration for e in client.watch(run.run_id, timeout_s=600) if e.kind == "surface_found"]
     assert found == [0, 1, 2]

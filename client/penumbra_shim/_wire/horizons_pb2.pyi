@@ -23,6 +23,7 @@ class ClientDropReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     CLIENT_DROP_REASON_QUEUE_FULL: _ClassVar[ClientDropReason]
     CLIENT_DROP_REASON_RETRY_TIME_EXCEEDED: _ClassVar[ClientDropReason]
     CLIENT_DROP_REASON_HANDLE_CLOSED: _ClassVar[ClientDropReason]
+    CLIENT_DROP_REASON_SERVER_BUSY: _ClassVar[ClientDropReason]
 VARIABLE_SET_UNSPECIFIED: VariableSet
 VARIABLE_SET_ADM: VariableSet
 VARIABLE_SET_CONFORMAL_CHI: VariableSet
@@ -33,6 +34,7 @@ CLIENT_DROP_REASON_LINK_DOWN: ClientDropReason
 CLIENT_DROP_REASON_QUEUE_FULL: ClientDropReason
 CLIENT_DROP_REASON_RETRY_TIME_EXCEEDED: ClientDropReason
 CLIENT_DROP_REASON_HANDLE_CLOSED: ClientDropReason
+CLIENT_DROP_REASON_SERVER_BUSY: ClientDropReason
 
 class Vector3(_message.Message):
     __slots__ = ("x", "y", "z")
@@ -155,7 +157,7 @@ class RefinementPolicy(_message.Message):
     def __init__(self, points_across_horizon: _Optional[float] = ..., nesting_depth: _Optional[int] = ..., level_ratio: _Optional[float] = ..., finest_radius_factor: _Optional[float] = ..., steering_interval_m: _Optional[float] = ..., guard_points: _Optional[int] = ...) -> None: ...
 
 class Run(_message.Message):
-    __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m", "slices_incomplete", "client_gaps_recorded", "slices_rejected", "highest_held_iteration", "slices_spooled", "slices_replayed")
+    __slots__ = ("run_id", "spec", "state", "create_time_unix_s", "close_time_unix_s", "slices_received", "slices_processed", "slices_skipped", "slices_duplicate", "last_event_seq", "archive_path", "last_received_iteration", "last_received_time_m", "slices_incomplete", "client_gaps_recorded", "slices_rejected", "highest_held_iteration", "slices_spooled", "slices_replayed", "admissions_granted", "admissions_refused", "bytes_received")
     class State(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
         __slots__ = ()
         STATE_UNSPECIFIED: _ClassVar[Run.State]
@@ -183,6 +185,9 @@ class Run(_message.Message):
     HIGHEST_HELD_ITERATION_FIELD_NUMBER: _ClassVar[int]
     SLICES_SPOOLED_FIELD_NUMBER: _ClassVar[int]
     SLICES_REPLAYED_FIELD_NUMBER: _ClassVar[int]
+    ADMISSIONS_GRANTED_FIELD_NUMBER: _ClassVar[int]
+    ADMISSIONS_REFUSED_FIELD_NUMBER: _ClassVar[int]
+    BYTES_RECEIVED_FIELD_NUMBER: _ClassVar[int]
     run_id: str
     spec: RunSpec
     state: Run.State
@@ -202,7 +207,10 @@ class Run(_message.Message):
     highest_held_iteration: int
     slices_spooled: int
     slices_replayed: int
-    def __init__(self, run_id: _Optional[str] = ..., spec: _Optional[_Union[RunSpec, _Mapping]] = ..., state: _Optional[_Union[Run.State, str]] = ..., create_time_unix_s: _Optional[float] = ..., close_time_unix_s: _Optional[float] = ..., slices_received: _Optional[int] = ..., slices_processed: _Optional[int] = ..., slices_skipped: _Optional[int] = ..., slices_duplicate: _Optional[int] = ..., last_event_seq: _Optional[int] = ..., archive_path: _Optional[str] = ..., last_received_iteration: _Optional[int] = ..., last_received_time_m: _Optional[float] = ..., slices_incomplete: _Optional[int] = ..., client_gaps_recorded: _Optional[int] = ..., slices_rejected: _Optional[int] = ..., highest_held_iteration: _Optional[int] = ..., slices_spooled: _Optional[int] = ..., slices_replayed: _Optional[int] = ...) -> None: ...
+    admissions_granted: int
+    admissions_refused: int
+    bytes_received: int
+    def __init__(self, run_id: _Optional[str] = ..., spec: _Optional[_Union[RunSpec, _Mapping]] = ..., state: _Optional[_Union[Run.State, str]] = ..., create_time_unix_s: _Optional[float] = ..., close_time_unix_s: _Optional[float] = ..., slices_received: _Optional[int] = ..., slices_processed: _Optional[int] = ..., slices_skipped: _Optional[int] = ..., slices_duplicate: _Optional[int] = ..., last_event_seq: _Optional[int] = ..., archive_path: _Optional[str] = ..., last_received_iteration: _Optional[int] = ..., last_received_time_m: _Optional[float] = ..., slices_incomplete: _Optional[int] = ..., client_gaps_recorded: _Optional[int] = ..., slices_rejected: _Optional[int] = ..., highest_held_iteration: _Optional[int] = ..., slices_spooled: _Optional[int] = ..., slices_replayed: _Optional[int] = ..., admissions_granted: _Optional[int] = ..., admissions_refused: _Optional[int] = ..., bytes_received: _Optional[int] = ...) -> None: ...
 
 class OpenRunRequest(_message.Message):
     __slots__ = ("spec", "request_id")
@@ -1020,3 +1028,29 @@ class ClientGapRecorded(_message.Message):
     slices_dropped: int
     cause: str
     def __init__(self, gap_index: _Optional[int] = ..., start_unix_s: _Optional[float] = ..., end_unix_s: _Optional[float] = ..., ranges: _Optional[_Iterable[_Union[DroppedRange, _Mapping]]] = ..., slices_dropped: _Optional[int] = ..., cause: _Optional[str] = ...) -> None: ...
+
+class AdmissionReserveRequest(_message.Message):
+    __slots__ = ("run_id", "iteration", "total_bytes")
+    RUN_ID_FIELD_NUMBER: _ClassVar[int]
+    ITERATION_FIELD_NUMBER: _ClassVar[int]
+    TOTAL_BYTES_FIELD_NUMBER: _ClassVar[int]
+    run_id: str
+    iteration: int
+    total_bytes: int
+    def __init__(self, run_id: _Optional[str] = ..., iteration: _Optional[int] = ..., total_bytes: _Optional[int] = ...) -> None: ...
+
+class AdmissionReserveResponse(_message.Message):
+    __slots__ = ("admitted", "reason", "hold_s", "queued", "held", "queue_depth")
+    ADMITTED_FIELD_NUMBER: _ClassVar[int]
+    REASON_FIELD_NUMBER: _ClassVar[int]
+    HOLD_S_FIELD_NUMBER: _ClassVar[int]
+    QUEUED_FIELD_NUMBER: _ClassVar[int]
+    HELD_FIELD_NUMBER: _ClassVar[int]
+    QUEUE_DEPTH_FIELD_NUMBER: _ClassVar[int]
+    admitted: bool
+    reason: str
+    hold_s: float
+    queued: int
+    held: int
+    queue_depth: int
+    def __init__(self, admitted: _Optional[bool] = ..., reason: _Optional[str] = ..., hold_s: _Optional[float] = ..., queued: _Optional[int] = ..., held: _Optional[int] = ..., queue_depth: _Optional[int] = ...) -> None: ...

@@ -81,6 +81,11 @@ class HorizonServiceStub:
                 request_serializer=penumbra_dot_v1_dot_horizons__pb2.RecordClientGapRequest.SerializeToString,
                 response_deserializer=penumbra_dot_v1_dot_horizons__pb2.RecordClientGapResponse.FromString,
                 _registered_method=True)
+        self.AdmissionReserve = channel.unary_unary(
+                '/penumbra.v1.HorizonService/AdmissionReserve',
+                request_serializer=penumbra_dot_v1_dot_horizons__pb2.AdmissionReserveRequest.SerializeToString,
+                response_deserializer=penumbra_dot_v1_dot_horizons__pb2.AdmissionReserveResponse.FromString,
+                _registered_method=True)
 
 
 class HorizonServiceServicer:
@@ -200,6 +205,23 @@ class HorizonServiceServicer:
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
+    def AdmissionReserve(self, request, context):
+        """Asks, before uploading a slice, whether the run would take it or only skip it (back-
+        pressure). Admitted: the server holds a place for the slice in the run's queue for `hold_s`
+        seconds, counted against later asks, until a SendSlice of that iteration arrives. Not
+        admitted: the run's queue (slices queued plus places held) is full, so under keep-newest
+        the upload would displace a queued slice already paid for, or the slice's bytes would
+        exceed the server's budget of queued bytes; the client should drop the slice locally
+        (ClientDropReason SERVER_BUSY) instead of uploading it. A SendSlice without an admission is
+        handled as ever. Cheap: answered from memory. Status codes:
+        NOT_FOUND            unknown run_id.
+        FAILED_PRECONDITION  the run is closed.
+        INVALID_ARGUMENT     total_bytes < 0.
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
 
 def add_HorizonServiceServicer_to_server(servicer, server):
     rpc_method_handlers = {
@@ -247,6 +269,11 @@ def add_HorizonServiceServicer_to_server(servicer, server):
                     servicer.RecordClientGap,
                     request_deserializer=penumbra_dot_v1_dot_horizons__pb2.RecordClientGapRequest.FromString,
                     response_serializer=penumbra_dot_v1_dot_horizons__pb2.RecordClientGapResponse.SerializeToString,
+            ),
+            'AdmissionReserve': grpc.unary_unary_rpc_method_handler(
+                    servicer.AdmissionReserve,
+                    request_deserializer=penumbra_dot_v1_dot_horizons__pb2.AdmissionReserveRequest.FromString,
+                    response_serializer=penumbra_dot_v1_dot_horizons__pb2.AdmissionReserveResponse.SerializeToString,
             ),
     }
     generic_handler = grpc.method_handlers_generic_handler(
@@ -493,6 +520,33 @@ class HorizonService:
             '/penumbra.v1.HorizonService/RecordClientGap',
             penumbra_dot_v1_dot_horizons__pb2.RecordClientGapRequest.SerializeToString,
             penumbra_dot_v1_dot_horizons__pb2.RecordClientGapResponse.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def AdmissionReserve(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/penumbra.v1.HorizonService/AdmissionReserve',
+            penumbra_dot_v1_dot_horizons__pb2.AdmissionReserveRequest.SerializeToString,
+            penumbra_dot_v1_dot_horizons__pb2.AdmissionReserveResponse.FromString,
             options,
             channel_credentials,
             insecure,

@@ -370,7 +370,7 @@ EVENT_COLUMNS: tuple[Column, ...] = (
 CLIENT_GAPS_GROUP = "client_gaps"
 #: ``client_gaps/reason`` values (the wire's ClientDropReason numbers); 0: a gap without drops.
 CLIENT_DROP_REASONS: dict[str, int] = {"": 0, "link_down": 1, "queue_full": 2, "retry_time_exceeded": 3,
-                                       "handle_closed": 4}
+                                       "handle_closed": 4, "server_busy": 5}
 
 CLIENT_GAP_COLUMNS: tuple[Column, ...] = (
     Column("gap_index", "int64", description="index of the gap in the run's gaps, from 0 (rows of one gap share it)"),

@@ -24,6 +24,7 @@ from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
 from ._spec import RunSettings
+from .allocator import return_large_buffers
 from .auth import AuthInterceptor, check_exposure
 from .executors import FinderExecutor, ProcessPoolFinderExecutor
 from .jobs import SERVICE_INTERPOLATION_ORDER
@@ -173,6 +174,7 @@ async def create_server(
         OSError: the address could not be bound (gRPC reports that as port 0).
         ExposureError: a non-loopback address without TLS and tokens, not declared trusted.
     """
+    return_large_buffers()  # freed slice buffers leave the process (allocator.py)
     host = _split_address(address)
     token_book = token_book or TokenBook()
     check_exposure(host, tls=server_credentials is not None, tokens=bool(token_book), trusted_network=trusted_network)

@@ -48,6 +48,7 @@ METHOD_ACCESS = {
     f"/{_SERVICE}/SendSlice": _WRITE_RUN,
     f"/{_SERVICE}/CloseRun": _WRITE_RUN,
     f"/{_SERVICE}/RecordClientGap": _WRITE_RUN,
+    f"/{_SERVICE}/AdmissionReserve": _WRITE_RUN,
     f"/{_SERVICE}/GetRun": _READ_RUN,
     f"/{_SERVICE}/WatchRun": _READ_RUN,
     f"/{_SERVICE}/GetLatestSurfaces": _READ_RUN,

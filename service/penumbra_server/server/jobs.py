@@ -15,6 +15,9 @@ import numpy as np
 
 from ..numerics.slices import Patch, Slice
 from ..numerics.surfaces import Surface
+# Re-exported: the worker's measurements moved to quoted_quantities.py (tests and inner_jobs use them here).
+from .quoted_quantities import (ERROR_BAR_SOURCES, MULTIPOLE_N_MAX, STABILITY_LMAX_DROP, basic_quantities,  # noqa: F401
+                                error_bars, spin_quantities, stability_quantities)
 
 __all__ = [
     "REASON_FOUND",
@@ -114,6 +117,10 @@ class SurfaceJob:
             converged"; iterates that wander off the data on the way count as that too (the
             surface they chased does not exist). A starting surface the data does not cover is
             still "outside data".
+        relocate: when every seed and the scan failed, look for the body about the peaks of the
+            metric's volume factor near a forecast (a body lost after skipped slices; see
+            :mod:`penumbra_server.server.relocation`; after skipped slices every find is judged
+            there too); None: no such fallback.
     """
 
     label: str
@@ -136,6 +143,7 @@ class SurfaceJob:
     displaced_seed: object | None = None
     lmax_cap: int | None = None
     may_not_exist: bool = False
+    relocate: "Relocation | None" = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -171,139 +179,6 @@ class SurfaceOutcome:
                    wall_time_s=wall_time_s)
 
 
-def _quantities_dict(q) -> dict:
-    return {
-        "area": float(q.area),
-        "irreducible_mass": float(q.irreducible_mass),
-        "centroid": [float(v) for v in q.centroid],
-        "radius_min": float(q.radius_min),
-        "radius_mean": float(q.radius_mean),
-        "radius_max": float(q.radius_max),
-        "resolution_indicator": float(q.resolution_indicator),
-        "angular_momentum": [float(v) for v in q.angular_momentum],
-        "christodoulou_mass": float(q.christodoulou_mass),
-    }
-
-
-#: Highest multipole order reported (index n = 0 .. MULTIPOLE_N_MAX on the wire and in the archive).
-MULTIPOLE_N_MAX = 8
-
-_NAN = float("nan")
-
-
-def _spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str]]:
-    """AKV spin, circumferences about the spin axis and multipoles of a found surface.
-
-    Each part is guarded on its own: a failure leaves its quantities NaN and adds a note, so a
-    surface the finder converged to is never lost to a measurement of what a practitioner quotes.
-    Units as in SurfaceQuantities (J in M^2, masses and lengths in M, the rest dimensionless).
-    """
-    from ..numerics.circumferences import axis_circumferences, spin_from_circumference_ratio
-    from ..numerics.killing import horizon_spin
-    from ..numerics.multipoles import horizon_multipoles
-
-    out: dict = {
-        "akv_angular_momentum": _NAN, "spin_direction": [_NAN] * 3, "dimensionless_spin": _NAN,
-        "akv_christodoulou_mass": _NAN, "killing_quality": _NAN,
-        "spin_equatorial_circumference": _NAN, "spin_polar_circumference": _NAN,
-        "spin_circumference_ratio": _NAN, "circumference_spin": _NAN,
-        "mass_multipoles": [_NAN] * (MULTIPOLE_N_MAX + 1), "spin_multipoles": [_NAN] * (MULTIPOLE_N_MAX + 1),
-    }
-    notes: list[str] = []
-    try:
-        spin = horizon_spin(surface, data, order=order)
-    except Exception as exc:  # numerics raise ValueError/LinAlgError; either way the surface stays
-        notes.append(f"spin not measured: {type(exc).__name__}: {exc}")
-        return out, notes
-    out.update(
-        akv_angular_momentum=float(spin.angular_momentum),
-        spin_direction=[float(v) for v in spin.direction],
-        dimensionless_spin=float(spin.dimensionless_spin),
-        akv_christodoulou_mass=float(spin.christodoulou_mass),
-        killing_quality=float(spin.killing_eigenvalues[0]),
-    )
-    try:
-        circ = axis_circumferences(surface, data, spin.direction, spin.centroid, order=order)
-        polar = float(np.mean(circ.polar))
-        out.update(spin_equatorial_circumference=float(circ.equatorial), spin_polar_circumference=polar,
-                   spin_circumference_ratio=float(circ.ratio),
-                   circumference_spin=spin_from_circumference_ratio(float(circ.ratio)))
-    except Exception as exc:
-        notes.append(f"spin-axis circumferences not measured: {type(exc).__name__}: {exc}")
-    try:
-        moments = horizon_multipoles(surface, data, n_max=MULTIPOLE_N_MAX, spin=spin, order=order)
-        out.update(mass_multipoles=[float(v) for v in moments.mass_moments_dimensionless[: MULTIPOLE_N_MAX + 1]],
-                   spin_multipoles=[float(v) for v in moments.spin_moments_dimensionless[: MULTIPOLE_N_MAX + 1]])
-    except Exception as exc:
-        notes.append(f"multipoles not measured: {type(exc).__name__}: {exc}")
-    return out, notes
-
-
-#: Quantity with an error bar (worker dict / archive name) -> QuotedHorizon attribute.
-ERROR_BAR_SOURCES = {
-    "area": "area",
-    "irreducible_mass": "irreducible_mass",
-    "akv_christodoulou_mass": "christodoulou_mass",
-    "akv_angular_momentum": "angular_momentum",
-    "dimensionless_spin": "dimensionless_spin",
-    "centroid": "centroid",
-    "spin_direction": "spin_direction",
-    "spin_equatorial_circumference": "equatorial_circumference",
-    "spin_polar_circumference": "polar_circumference",
-    "mass_multipoles": "mass_multipoles",
-    "spin_multipoles": "spin_multipoles",
-}
-#: Error bars carried per multipole, not as one scalar.
-_PER_INDEX = ("mass_multipoles", "spin_multipoles")
-
-
-def _error_bars(surface: Surface, data: Slice, order: int) -> tuple[dict, list[str]]:
-    """``<name>_error`` for the quantities of :data:`ERROR_BAR_SOURCES` (same units as the value),
-    from :func:`numerics.error_bars.quote_horizon` on the cropped slice; NaN and a note when it
-    cannot be estimated (e.g. l_max < 3)."""
-    from ..numerics.error_bars import quote_horizon
-
-    out = {f"{name}_error": ([_NAN] * (MULTIPOLE_N_MAX + 1) if name in _PER_INDEX else _NAN)
-           for name in ERROR_BAR_SOURCES}
-    try:
-        quoted = quote_horizon(surface, data, order=order, n_max=MULTIPOLE_N_MAX)
-    except Exception as exc:  # an error bar that cannot be made must not lose the surface
-        return out, [f"error bars not estimated: {type(exc).__name__}: {exc}"]
-    for name, attribute in ERROR_BAR_SOURCES.items():
-        error = np.asarray(getattr(quoted, attribute).error, dtype=float)
-        # The centroid's error is one length (its displacement), repeated per component.
-        out[f"{name}_error"] = [float(v) for v in error] if name in _PER_INDEX else float(np.max(error))
-    return out, []
-
-
-#: Harmonic degree of the stability operator's eigenfunction below the surface's own (the error
-#: estimate compares the two degrees).
-STABILITY_LMAX_DROP = 2
-
-
-def _stability_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str]]:
-    """Principal eigenvalue of the MOTS stability operator (1/M^2) and an error estimate.
-
-    The estimate is the change of the eigenvalue when the eigenfunction's harmonic degree drops
-    by :data:`STABILITY_LMAX_DROP` (the surface itself unchanged): the truncation of psi is what
-    the Galerkin solve controls; the data's own error shows up in the surface's error bars.
-    NaN and a note when it cannot be computed (the surface stays found).
-    """
-    from ..numerics.stability import principal_eigenvalue, stability_matrices
-
-    out = {"stability_eigenvalue": _NAN, "stability_eigenvalue_error": _NAN}
-    try:
-        mats = stability_matrices(surface, data, order=order)
-        value = principal_eigenvalue(mats)
-        out["stability_eigenvalue"] = value
-        lower = surface.lmax - STABILITY_LMAX_DROP
-        if lower >= 1:
-            out["stability_eigenvalue_error"] = abs(value - principal_eigenvalue(mats, lower))
-    except Exception as exc:  # an eigenvalue that cannot be made must not lose the surface
-        return out, [f"stability not computed: {type(exc).__name__}: {exc}"]
-    return out, []
-
-
 def run_surface_job(job: SurfaceJob) -> SurfaceOutcome:
     """Look for one surface: the seed first, then scan candidates; measure what converges.
 
@@ -330,6 +205,7 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
     from ..numerics.finder import NEEDS_EXCISED_DATA, OUTSIDE_DATA, FinderSettings, find_surface
     from ..numerics.guesses import NO_TRAPPED_SURFACE_YET, sphere_scan_profile
     from ..numerics.measures import measure_surface
+    from .relocation import SkipJudge, relocation_guesses
 
     settings = FinderSettings(
         lmax=job.lmax,
@@ -345,21 +221,31 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
     attempts.extend(("alternative", extra) for extra in job.extra_seeds)
     last = None
     total_iterations = 0
-    tried_scan = False
+    tried_scan = job.scan_centre is None
+    tried_relocation = job.relocate is None
     scan_message = ""
     uncovered_starts = 0  # starting surfaces the data does not cover
+    rejected: list[str] = []
+    judge = SkipJudge(job.relocate, job.data) if job.relocate is not None and job.relocate.skipped else None
     index = 0
     while True:
-        if index == len(attempts):
-            if tried_scan or job.scan_centre is None:
-                break
-            tried_scan = True
-            r_min, r_max = job.scan_radii
-            scan = sphere_scan_profile(job.data, job.scan_centre, r_min, r_max, order=job.interpolation_order)
-            radii, scan_message = scan.candidates, scan.message
-            attempts.extend(("scan", Surface.sphere(job.scan_centre, r, job.lmax)) for r in radii[: job.max_candidates])
-            if index == len(attempts):
-                break
+        while index == len(attempts) and not (tried_scan and tried_relocation):
+            if not tried_scan:
+                tried_scan = True
+                r_min, r_max = job.scan_radii
+                scan = sphere_scan_profile(job.data, job.scan_centre, r_min, r_max, order=job.interpolation_order)
+                scan_message = scan.message
+                attempts.extend(("scan", Surface.sphere(job.scan_centre, r, job.lmax))
+                                for r in scan.candidates[: job.max_candidates])
+            elif not tried_relocation:
+                tried_relocation = True
+                attempts.extend(relocation_guesses(job.relocate, job.data, job.seed, job.lmax,
+                                                   order=job.interpolation_order))
+        if index == len(attempts) or (judge is not None and judge.complete):
+            if judge is not None and judge.candidates:
+                kind, result, quantities, message = judge.pick()
+                return _found(job, kind, result, quantities, message, total_iterations, start)
+            break
         kind, guess = attempts[index]
         index += 1
         result = find_surface(job.data, guess, settings=settings)
@@ -368,47 +254,23 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
         if result.surface is None:
             uncovered_starts += 1
         if result.success:
-            solved = result.surface
-            # Reported at the job's degree (the archive's); measured at the degree solved.
-            surface = solved.with_lmax(job.lmax) if solved.lmax > job.lmax else solved
-            # The find's prepared grid nodes serve the measurement too (numerics.measures).
+            # Measured at the degree solved (reported at the job's degree: see _found).
             measured_in = result.geometry if result.geometry is not None else job.data
             try:
-                quantities = _quantities_dict(measure_surface(solved, measured_in, order=job.interpolation_order))
+                quantities = basic_quantities(measure_surface(result.surface, measured_in,
+                                                              order=job.interpolation_order))
                 message = result.message
             except ValueError as exc:
                 quantities = {}
                 message = f"{result.message}; not measured: {exc}"
-            if solved.lmax > job.lmax:
-                message = (f"{message}; solved at l_max {solved.lmax} (raised from {job.lmax}: not resolved "
-                           f"at {job.lmax}), measured there, coefficients reported up to l = {job.lmax}")
-            spin_quantities, notes = _spin_quantities(solved, measured_in, job.interpolation_order)
-            quantities.update(spin_quantities)
-            stability, stability_notes = _stability_quantities(solved, measured_in, job.interpolation_order)
-            quantities.update(stability)
-            notes.extend(stability_notes)
-            errors, error_notes = _error_bars(solved, job.data, job.interpolation_order)
-            quantities.update(errors)
-            notes.extend(error_notes)
-            if notes:
-                message = "; ".join([message, *notes])
-            return SurfaceOutcome(
-                label=job.label,
-                found=True,
-                reason=REASON_FOUND,
-                status=result.status,
-                message=message,
-                method=result.method,
-                centre=np.array(surface.centre),
-                lmax=surface.lmax,
-                coefficients=np.array(surface.coefficients),
-                quantities=quantities,
-                residual_max=result.residual_max,
-                iterations=total_iterations,
-                wall_time_s=time.perf_counter() - start,
-                guess=kind,
-                residual_max_between_nodes=float(result.residual_max_between_nodes),
-            )
+            if judge is not None:
+                # After skipped slices a find may be another body's horizon, or a common one:
+                # the judge keeps it as a candidate and picks once every body was seen.
+                judge.consider(kind, result, quantities, message)
+                continue
+            return _found(job, kind, result, quantities, message, total_iterations, start)
+    if judge is not None:
+        rejected.extend(judge.rejected)
     elapsed = time.perf_counter() - start
     if last is None:
         r_min, r_max = job.scan_radii if job.scan_radii else (float("nan"), float("nan"))
@@ -420,7 +282,8 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
             wall_time_s=elapsed, guess="scan",
         )
     kind, result = last
-    if job.may_not_exist and uncovered_starts == 0 and result.status != NEEDS_EXCISED_DATA:
+    not_accepted = f"; not accepted: {'; '.join(rejected)}" if rejected else ""
+    if job.may_not_exist and uncovered_starts == 0 and result.status != NEEDS_EXCISED_DATA and not rejected:
         return SurfaceOutcome(
             label=job.label, found=False, reason=REASON_NO_CANDIDATE, status=result.status,
             message=(f"{NO_TRAPPED_SURFACE_YET}: no MOTS from {len(attempts)} starting surface(s), each covered "
@@ -431,10 +294,49 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
     reason = {OUTSIDE_DATA: REASON_OUTSIDE_DATA, NEEDS_EXCISED_DATA: REASON_NEEDS_EXCISED_DATA}.get(
         result.status, REASON_NOT_CONVERGED)
     return SurfaceOutcome(
-        label=job.label, found=False, reason=reason, status=result.status,
-        message=f"{len(attempts)} guess(es) tried, last from {kind}: {result.message}",
+        label=job.label, found=False, reason=reason, status=-1 if result.success else result.status,
+        message=f"{len(attempts)} guess(es) tried, last from {kind}: {result.message}{not_accepted}",
         method=result.method, residual_max=result.residual_max, iterations=total_iterations,
         wall_time_s=elapsed, guess=kind, residual_max_between_nodes=float(result.residual_max_between_nodes),
+    )
+
+
+def _found(job: SurfaceJob, kind: str, result, quantities: dict, message: str, total_iterations: int,
+           start: float) -> SurfaceOutcome:
+    """The outcome of a find: spin, stability and error bars measured as well, at the degree the
+    surface was solved at; reported (coefficients) at the job's degree, the archive's."""
+    solved = result.surface
+    surface = solved.with_lmax(job.lmax) if solved.lmax > job.lmax else solved
+    if solved.lmax > job.lmax:
+        message = (f"{message}; solved at l_max {solved.lmax} (raised from {job.lmax}: not resolved "
+                   f"at {job.lmax}), measured there, coefficients reported up to l = {job.lmax}")
+    measured_in = result.geometry if result.geometry is not None else job.data
+    spin_quantities, notes = spin_quantities(solved, measured_in, job.interpolation_order)
+    quantities.update(spin_quantities)
+    stability, stability_notes = stability_quantities(solved, measured_in, job.interpolation_order)
+    quantities.update(stability)
+    notes.extend(stability_notes)
+    errors, error_notes = error_bars(solved, job.data, job.interpolation_order)
+    quantities.update(errors)
+    notes.extend(error_notes)
+    if notes:
+        message = "; ".join([message, *notes])
+    return SurfaceOutcome(
+        label=job.label,
+        found=True,
+        reason=REASON_FOUND,
+        status=result.status,
+        message=message,
+        method=result.method,
+        centre=np.array(surface.centre),
+        lmax=surface.lmax,
+        coefficients=np.array(surface.coefficients),
+        quantities=quantities,
+        residual_max=result.residual_max,
+        iterations=total_iterations,
+        wall_time_s=time.perf_counter() - start,
+        guess=kind,
+        residual_max_between_nodes=float(result.residual_max_between_nodes),
     )
 
 

@@ -14,6 +14,10 @@ Per expected body, in each slice at coordinate time t:
   seed as above, and the scan held at the last centroid with its outer radius widened by the
   body's last speed times the time since it was found (an old velocity carried over a long gap
   drifts off the orbit; holding and widening brings the body back);
+* skipped slices (the time since the last find well beyond the track's usual spacing) or a miss:
+  the seed's uncertainty grows with the elapsed time, and the worker, when seed and scan fail,
+  looks for the body about the metric's peaks within a radius of the forecast that grows with
+  it (:mod:`penumbra_server.server.skip_planning`, :mod:`penumbra_server.server.relocation`);
 * after the common horizon formed: searched while found; missed twice in a row it is reported
   "not searched" every slice (it lies inside the common horizon).
 
@@ -55,6 +59,7 @@ from ._spec import RunSettings
 from ..tracking.data_windows import SCAN_BOX_FACTOR, search_reach
 from .scheduler import SCAN_RADIUS_FACTORS, SurfacePlan, recentred
 from .steering import RunSteering
+from .skip_planning import skipped_relocation
 from .surface_state import SurfaceState
 
 __all__ = ["SteeringPlanner", "steering_planner_factory"]
@@ -101,6 +106,10 @@ class SteeringPlanner:
         else:
             position, uncertainty, model = forecast.position, forecast.uncertainty, forecast.model
         seed = recentred(h.surface, position)
+        others = [steering.history(label) for label in steering.body_labels if label != body.label]
+        relocate = skipped_relocation(h, body, t, position, uncertainty, others)
+        if relocate is not None:
+            uncertainty = relocate.uncertainty
         reach = steering.reach(body.label, uncertainty)
         lower, upper = position - reach, position + reach
         if h.lost:
@@ -111,8 +120,14 @@ class SteeringPlanner:
         else:
             scan_centre = position
             scan_radii = (lo_factor * body.mass, max(reach / SCAN_BOX_FACTOR, 2.0 * lo_factor * body.mass))
+        extra = {}
+        if relocate is not None:
+            # Skipped slices or a miss: the search region holds the whole relocation ball.
+            lower = np.minimum(lower, relocate.lower)
+            upper = np.maximum(upper, relocate.upper)
+            extra = {"relocate": relocate.relocation}
         return SurfacePlan(body.label, seed, np.asarray(scan_centre, float), scan_radii, lower, upper,
-                           seed_position=position, seed_uncertainty=uncertainty, seed_model=model)
+                           seed_position=position, seed_uncertainty=uncertainty, seed_model=model, **extra)
 
     def _common_plan(self, steering: RunSteering, settings: RunSettings, t: float) -> SurfacePlan | None:
         label = steering.common_label

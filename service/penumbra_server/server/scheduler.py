@@ -73,6 +73,8 @@ class SurfacePlan:
         may_not_exist: the surface may not exist yet (a common horizon before it formed): a
             search whose starting surfaces the data covers but that finds nothing reports "no
             trapped surface here yet" (SurfaceJob.may_not_exist).
+        relocate: as :class:`~penumbra_server.server.jobs.SurfaceJob` takes it
+            (looking again for a body after skipped slices; server/relocation.py).
     """
 
     label: str
@@ -98,6 +100,7 @@ class SurfacePlan:
     #: The surface's previous solution in the displacement representation, if it has one.
     displaced_seed: object | None = None
     may_not_exist: bool = False
+    relocate: object | None = None
 
     def points_outside(self, surface: Surface) -> list[np.ndarray]:
         """The ``must_enclose`` points that lie on or outside ``surface``."""

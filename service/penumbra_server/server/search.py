@@ -5,6 +5,8 @@ surface that does not hold the points it must enclose. Units of M.
 
 from __future__ import annotations
 
+import asyncio
+
 import numpy as np
 
 from ..numerics.slices import Slice
@@ -53,7 +55,9 @@ async def search_plan(plan: SurfacePlan, slice_: Slice, *, executor: FinderExecu
 
 async def _find(plan: SurfacePlan, slice_: Slice, executor: FinderExecutor, settings: RunSettings,
                 order: int) -> SurfaceOutcome:
-    data = crop_slice(slice_, plan.box_lower, plan.box_upper, ghost_nodes=crop_ghost_nodes(order))
+    # The crop copies sub-boxes of the slice (milliseconds to seconds for large slices): off the event loop.
+    data = await asyncio.to_thread(crop_slice, slice_, plan.box_lower, plan.box_upper,
+                                   ghost_nodes=crop_ghost_nodes(order))
     if data is None:
         lo, hi = plan.box_lower, plan.box_upper
         return SurfaceOutcome(
@@ -77,5 +81,6 @@ async def _find(plan: SurfacePlan, slice_: Slice, executor: FinderExecutor, sett
         inside_of=plan.outer,
         displaced_seed=plan.displaced_seed,
         may_not_exist=plan.may_not_exist,
+        relocate=plan.relocate,
     )
     return await executor.run(job)

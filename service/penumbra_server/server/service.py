@@ -21,6 +21,7 @@ from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
 from ..archive import archive_path
+from .admission import AdmissionDesk, queued_slice_count
 from .errors import ServiceError, status_trailer
 from .ingest import IngestLimits, SliceAssembler, mirror_through_z0
 from .parts import PartLabel, part_of, prepare_part
@@ -127,6 +128,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
         self.upload_idle_timeout_s = upload_idle_timeout_s
         self.max_queued_bytes = max_queued_bytes
         self._reserved_bytes = 0  # declared bytes of the slices being received now
+        self.admission = AdmissionDesk()  # back-pressure: places held for admitted slices (admission.py)
 
     def _client_key(self, context) -> str:
         """Who opens: the token's name when tokens are configured, else the peer's host."""
@@ -181,7 +183,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
         if self.max_queued_bytes is None:
             return 0
         queued = sum(run.queued_bytes for run in self.manager.runs.values())
-        if queued + self._reserved_bytes + nbytes > self.max_queued_bytes:
+        if queued + self._reserved_bytes + nbytes > self.max_queued_bytes:  # (places held count only at asks)
             raise ServiceError(
                 grpc.StatusCode.RESOURCE_EXHAUSTED,
                 f"header.total_bytes: {nbytes} more bytes would exceed the server's budget of "
@@ -205,7 +207,16 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
 
     @_translating_errors
     async def GetRun(self, request: pb.GetRunRequest, context) -> pb.GetRunResponse:
-        return pb.GetRunResponse(run=self.manager.get(request.run_id).to_wire())
+        return pb.GetRunResponse(run=self.admission.fill(self.manager.get(request.run_id).to_wire()))
+
+    @_translating_errors
+    async def AdmissionReserve(self, request: pb.AdmissionReserveRequest, context) -> pb.AdmissionReserveResponse:
+        run = self.manager.get(request.run_id)
+        budget_left = None
+        if self.max_queued_bytes is not None:
+            queued = sum(r.queued_bytes for r in self.manager.runs.values())
+            budget_left = max(0, self.max_queued_bytes - queued - self._reserved_bytes - self.admission.held_bytes())
+        return self.admission.reserve(run, request, queued_slices=queued_slice_count(run), budget_left=budget_left)
 
     @_translating_errors
     async def ListRuns(self, request: pb.ListRunsRequest, context) -> pb.ListRunsResponse:
@@ -216,7 +227,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
         runs = self.manager.list_runs()
         page = runs[offset:offset + size]
         token = _page_token(offset + size) if offset + size < len(runs) else ""
-        return pb.ListRunsResponse(runs=[r.to_wire() for r in page], next_page_token=token)
+        return pb.ListRunsResponse(runs=[self.admission.fill(r.to_wire()) for r in page], next_page_token=token)
 
     @_translating_errors
     async def CloseRun(self, request: pb.CloseRunRequest, context) -> pb.CloseRunResponse:
@@ -257,6 +268,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                 if run.run_id in self._run_owners:
                     await self._check_archive_bytes(self._run_owners[run.run_id], "header.run_id")
                 label = part_of(header)
+                self.admission.arrived(run.run_id, header.iteration)
                 if not label.is_part and run.is_duplicate(header.iteration):
                     # Idempotent resend: answer at once, without reading the data again.
                     return run.duplicate_response(header.iteration, 0)
@@ -272,6 +284,7 @@ class HorizonServicer(pb_grpc.HorizonServiceServicer):
                     return run.parts.duplicate_response(assembler.iteration, label)
                 reserved.append(self._reserve(assembler.total_bytes))
             elif part == "chunk":
+                self.admission.count_bytes(run.run_id, len(request.chunk.data))
                 assembler.add(request.chunk)
             else:
                 raise ServiceError.invalid(f"chunk: expected only chunks after the header, got {part or 'an empty message'}")

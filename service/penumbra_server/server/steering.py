@@ -195,6 +195,10 @@ class RunSteering:
                 positions.append(np.repeat(np.asarray(h.centroid)[None, :], len(times), axis=0))
             else:
                 positions.append(np.array(fc.positions_of(h.label)))
+        if all(h.found_time == self.last_slice_time for h in (a, b)):
+            # Both found in the latest slice: their separation there is a measured row too (a
+            # forecast from sparse, far-apart slices can overshoot an inspiral's separation).
+            positions = [np.vstack([p, np.asarray(h.centroid, float)[None, :]]) for p, h in zip(positions, (a, b))]
         already = self.common_searching or self.common_formed is not None
         advice = common_horizon_watch(positions[0], positions[1], radius_a=a.radius_max, radius_b=b.radius_max,
                                       masses=self.body_masses(self.body_labels), already_searching=already)

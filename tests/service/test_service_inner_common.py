@@ -212,3 +212,58 @@ def test_archive_keeps_the_displacement_form_and_reads_without_it(tmp_path):
     got = open_archive(tmp_path, "r").displacements("common_inner")
     assert [d is None for d in got] == [True] * len(rows) + [False]
     assert np.array_equal(got[-1].coefficients, surfaces[0].coefficients)
+
+
+def _wait_processed(client, run_id: str, count: int) -> None:
+    give_up = time.monotonic() + 900  # generous: a loaded machine; fails loudly
+    while client.get_run(run_id).slices_processed < count:
+        assert time.monotonic() < give_up, f"{count} slices not processed in 900 s: {client.get_run(run_id)}"
+        time.sleep(0.5)
+
+
+@pytest.mark.slow  # three slices with common searches and a server restart
+def test_a_restarted_server_follows_the_archived_inner_mots(tmp_path):
+    separations = (0.76, 0.74, 0.72)  # M, all below d_c
+    box = cube((0.0, 0.0, 0.0), 1.3, SPACING)
+
+    def submit(run, index):
+        d = separations[index]
+        positions = np.array([[d / 2, 0.0, 0.0], [-d / 2, 0.0, 0.0]])
+        return run.submit(ps.build_slice(time=0.5 * index, iteration=index, variable_set="conformal_w",
+                                         patches=bl_patches([box], (MASS, MASS), positions)))
+
+    first = BackgroundServer("127.0.0.1:0", archive_root=tmp_path, workers=1).start()
+    address = first.address
+    client = ps.connect(address, deadline_s=1.0, retry_budget_s=120.0)
+    try:
+        run = client.open_run(_spec(True), max_retry_s=120.0, cache_results=False)
+        for index in range(2):
+            assert submit(run, index).result(120).accepted
+        _wait_processed(client, run.run_id, 2)
+        live = first.server.manager.runs[run.run_id].displaced.get("common_inner")
+        first.stop()
+        second = BackgroundServer(address, archive_root=tmp_path, workers=1).start()
+        try:
+            assert second.server.restored_run_ids == [run.run_id]
+            # the restored run holds the follow seed the live one held: the archived surface
+            restored = second.server.manager.runs[run.run_id]
+            seed = restored.displaced.get("common_inner")
+            assert live is not None and seed is not None
+            assert seed.lmax == live.lmax and np.array_equal(seed.coefficients, live.coefficients)
+            assert np.array_equal(seed.reference.position, live.reference.position)
+            assert np.array_equal(seed.reference.direction, live.reference.direction)
+            state = restored.states["common_inner"]
+            assert state.ever_found and state.misses == 0  # so the next slice's plan follows it
+            assert submit(run, 2).result(120).accepted
+            _wait_processed(client, run.run_id, 3)
+            run.close()
+            inner = {e.iteration: e.surface for e in client.watch(run.run_id, timeout_s=120)
+                     if e.kind in ("surface_found", "surface_not_found") and e.surface.label == "common_inner"}
+        finally:
+            second.stop()
+    finally:
+        client.close()
+    # found before the restart (the common horizon is searched for from the slice after its
+    # bodies are seen close) and after it
+    found = sorted(i for i, s in inner.items() if s.found)
+    assert 1 in found and 2 in found, inner

@@ -263,7 +263,6 @@ def test_a_restarted_server_follows_the_archived_inner_mots(tmp_path):
             second.stop()
     finally:
         client.close()
-    # found before the restart (the common horizon is searched for from the slice after its
-    # bodies are seen close) and after it
+    # found before the restart and after it
     found = sorted(i for i, s in inner.items() if s.found)
     assert 1 in found and 2 in found, inner

@@ -83,9 +83,13 @@ def restore_run(run: "RunRecord", archived: ArchivedRun) -> None:
                                    irreducible_mass=float(row["irreducible_mass"]), message=s)
                 # The follow seed of a surface tracked as a displacement (the inner common MOTS):
                 # the surface itself, as archived, not its star-shaped fit (NaN once it folds).
-                archived_displacement = displacement_from_row(row)
-                if archived_displacement is not None:
-                    run.displaced[label] = archived_displacement.surface()
+                # A row it cannot be rebuilt from costs only the seed (then re-seeded inward).
+                try:
+                    archived_displacement = displacement_from_row(row)
+                    if archived_displacement is not None:
+                        run.displaced[label] = archived_displacement.surface()
+                except ValueError:
+                    run.displaced.pop(label, None)
             else:
                 n_f = event.surface_not_found
                 state.record_miss(n_f.message, int(row["iteration"]),

@@ -51,7 +51,7 @@ def _items(text: str, what: str, keys: tuple[str, ...]):
 
 # -- the run spec string ----------------------------------------------------------------------
 
-_INT_KEYS = ("lmax", "lmax_common", "max_iterations", "queue_depth", "nesting_depth")
+_INT_KEYS = ("lmax", "lmax_common", "lmax_cap", "max_iterations", "queue_depth", "nesting_depth")
 _FLOAT_KEYS = ("tolerance", "points_across_horizon", "steering_interval", "mass_scale_solar_masses",
                "part_deadline_s")
 _FLAG_KEYS = ("crop_to_windows",)
@@ -120,7 +120,8 @@ def parse_spec(text: str) -> tuple[RunSpec, dict]:
             finder=FinderOptions(lmax=values.get("lmax", finder_defaults.lmax),
                                  tolerance=values.get("tolerance", finder_defaults.tolerance),
                                  max_iterations=values.get("max_iterations", finder_defaults.max_iterations),
-                                 lmax_common=values.get("lmax_common", finder_defaults.lmax_common)),
+                                 lmax_common=values.get("lmax_common", finder_defaults.lmax_common),
+                                 lmax_cap=values.get("lmax_cap", finder_defaults.lmax_cap)),
             backlog=BacklogOptions(queue_depth=values.get("queue_depth", BacklogOptions().queue_depth)),
             refinement=RefinementOptions(
                 points_across_horizon=values.get("points_across_horizon", refine_defaults.points_across_horizon),

@@ -109,6 +109,8 @@ BAD_INPUT = {
     "spec_unknown_key": ("PNL_INVALID_ARGUMENT", ["spec", "'lmx'"]),
     "spec_short_body": ("PNL_INVALID_ARGUMENT", ["spec.body[0]", "LABEL,x,y,z,mass"]),
     "spec_bad_number": ("PNL_INVALID_ARGUMENT", ["spec.lmax", "'eight'"]),
+    "spec_lmax_cap_too_high": ("PNL_INVALID_ARGUMENT", ["finder.lmax_cap", "2..32", "40"]),
+    "spec_lmax_cap_below_common": ("PNL_INVALID_ARGUMENT", ["spec.finder.lmax_cap", "12"]),
     "spec_no_variable_set": ("PNL_INVALID_ARGUMENT", ["spec.variable_set"]),
     "spec_null": ("PNL_INVALID_ARGUMENT", ["spec"]),
     "attach_unknown_run": ("PNL_NOT_FOUND", ["run-does-not-exist"]),
@@ -160,6 +162,10 @@ def test_bad_input_gives_invalid_argument_naming_the_field(build, server):
     link = dict(item.split("=") for item in re.search(r"^link (.*)$", result.stdout, re.M)[1].split())
     assert link["state"] == "1" and link["dropped"] == "0" and link["queued"] == "0", link
     assert int(link["submitted"]) == int(link["sent"]) + int(link["refused"]) >= 2, link
+    # The spec's lmax_cap=20 reached the server (echoed in the run's spec).
+    run_id = re.search(r"^run_id: (\S+)$", result.stdout, re.M)[1]
+    with ps.connect(server.address, deadline_s=20.0) as client:
+        assert client.get_run(run_id).spec.finder.lmax_cap == 20
 
 
 def test_a_python_without_the_shim_is_a_status_not_a_crash(build):

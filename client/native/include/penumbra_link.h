@@ -233,6 +233,8 @@ int pnl_disconnect(pnl_connection *connection);
  *   variable_set=adm | conformal_chi | conformal_w | conformal_phi   (required)
  *   body=LABEL,x,y,z,mass        one per expected body (at least one), M
  *   name=free text               lmax=8  lmax_common=0  tolerance=1e-8  max_iterations=40
+ *   lmax_cap=0 (server default max(24, lmax_common); else 2..32, at least lmax and lmax_common:
+ *               the highest degree the finder may raise a surface to on its own)
  *   queue_depth=4                points_across_horizon=30  nesting_depth=6  steering_interval=4
  *   symmetry=none|bitant         shift_gauge=moving_puncture|other (unset: shift not used)
  *   part_deadline_s=0 (server default)  mass_scale_solar_masses=0  crop_to_windows=0|1

@@ -17,6 +17,7 @@ from ._layout import (
     surface_columns,
     surface_group,
 )
+from .displacement import ArchivedDisplacement, displacement_from_row, displacement_row
 from .reader import ArchiveSummary, ArchiveView, list_archives, open_archive
 from .writer import ArchiveError, ArchiveWriter
 
@@ -29,6 +30,9 @@ __all__ = [
     "SLICE_OUTCOME_SKIPPED",
     "UNITS",
     "ArchiveError",
+    "ArchivedDisplacement",
+    "displacement_from_row",
+    "displacement_row",
     "ArchiveSummary",
     "ArchiveView",
     "ArchiveWriter",

@@ -49,6 +49,8 @@ __all__ = [
     "SLICE_OUTCOME_FAILED",
     "UNITS",
     "surface_columns",
+    "DISPLACEMENT_REFERENCE_EXTRA_DEGREE",
+    "displacement_reference_rows",
     "surface_group",
     "archive_path",
     "FORECAST_LEADS",
@@ -152,6 +154,17 @@ SLICE_COLUMNS: tuple[Column, ...] = (
 MULTIPOLE_COUNT = 9
 
 
+#: Degree of a displacement's reference above the surface's (numerics.displaced.reference_from_star
+#: makes it 2 higher so that h times the radial unit vector is exact); the reference columns hold
+#: references up to this much higher.
+DISPLACEMENT_REFERENCE_EXTRA_DEGREE = 2
+
+
+def displacement_reference_rows(lmax: int) -> int:
+    """Rows of the reference columns of a surface group of degree ``lmax``."""
+    return (lmax + DISPLACEMENT_REFERENCE_EXTRA_DEGREE + 1) ** 2
+
+
 def surface_columns(lmax: int) -> tuple[Column, ...]:
     """Columns of ``surfaces/<label>`` for surfaces of degree ``lmax``."""
     xyz = (("xyz", 3),)
@@ -221,6 +234,21 @@ def surface_columns(lmax: int) -> tuple[Column, ...]:
                description="error estimate of each mass multipole"),
         Column("spin_multipoles_error", "float64", (("multipole", MULTIPOLE_COUNT),),
                description="error estimate of each spin multipole"),
+        # The surface itself in the normal-displacement representation (numerics/displaced.py),
+        # for surfaces followed in it (the inner common MOTS): the star-shaped coefficients above
+        # are only a fit, NaN once it folds. Stored in the first rows of each column, NaN after
+        # (a degree below the column's); degree -1 and NaN everywhere for star-shaped surfaces.
+        Column("displacement_lmax", "int32", description="degree of displacement (-1: not in this representation)"),
+        Column("displacement", "float64", (("harmonic", (lmax + 1) ** 2),), unit="M",
+               description="real spherical-harmonic coefficients of the normal displacement h from the reference, "
+                           "index l*l + l + m (x = x_ref + h n_ref)"),
+        Column("displacement_reference_lmax", "int32", description="degree of the reference surface's expansions"),
+        Column("displacement_reference_position", "float64",
+               (("reference_harmonic", displacement_reference_rows(lmax)), ("xyz", 3)), unit="M",
+               description="coefficients of the reference's Cartesian coordinates x_ref, index l*l + l + m"),
+        Column("displacement_reference_direction", "float64",
+               (("reference_harmonic", displacement_reference_rows(lmax)), ("xyz", 3)),
+               description="coefficients of the reference's unit displacement direction n_ref, index l*l + l + m"),
         Column("seed_centre", "float64", xyz, unit="M",
                description="forecast position the planner seeded the search at (NaN: no forecast seed)"),
         Column("seed_uncertainty", "float64", unit="M",

@@ -16,8 +16,10 @@ import numpy as np
 import zarr
 
 from . import _layout as layout
+from .displacement import ArchivedDisplacement, displacement_from_row
 
-__all__ = ["ArchiveView", "ArchiveSummary", "open_archive", "list_archives"]
+__all__ = ["ArchiveView", "ArchiveSummary", "open_archive", "list_archives", "ArchivedDisplacement",
+           "displacement_from_row"]
 
 
 def _open_root(path: Path, *, attempts: int = 5) -> zarr.Group:
@@ -97,6 +99,14 @@ class ArchiveView:
         if group_path not in self.committed_rows:
             raise KeyError(f"label: no surface {label!r} in {self.path}; it has {', '.join(self.surface_labels)}")
         return self._columns(group_path)
+
+    def displacements(self, label: str) -> list[ArchivedDisplacement | None]:
+        """Per committed row of ``surfaces/<label>``, the surface in the normal-displacement
+        representation (x = x_ref + h n_ref; ``.surface()`` makes the numerics object), or None
+        for a star-shaped surface, a row not found, or an archive without those columns."""
+        cols = self.surface(label)
+        return [displacement_from_row({name: values[i] for name, values in cols.items()})
+                for i in range(len(cols["iteration"]))]
 
     def _dataset(self, group_path: str, row_dimension: str):
         import xarray as xr  # optional: only the report and tests need it

@@ -6,6 +6,7 @@ disagree), and a restarted server rebuilds events from the rows.
 
 from __future__ import annotations
 
+import logging
 import math
 
 import numpy as np
@@ -13,6 +14,7 @@ import numpy as np
 from penumbra_shim._wire import horizons_pb2 as pb
 
 from ..archive import METHOD_CODES, SLICE_OUTCOME_FAILED, SLICE_OUTCOME_PROCESSED, SLICE_OUTCOME_SKIPPED
+from ..archive import ArchivedDisplacement, displacement_from_row, displacement_row
 from ..archive import _layout as layout
 from ..numerics.finder import STATUS_MESSAGES
 from .jobs import REASON_FOUND, SurfaceOutcome
@@ -28,6 +30,7 @@ __all__ = [
 ]
 
 _NAN = float("nan")
+_log = logging.getLogger(__name__)
 _METHOD_NAMES = {code: name for name, code in METHOD_CODES.items()}
 _REASON_TEXT = {
     pb.SurfaceNotFound.REASON_NOT_CONVERGED: "the solver did not converge",
@@ -159,6 +162,32 @@ def displacement_from_wire(message: pb.InnerDisplacement):
     return DisplacedSurface(reference, message.lmax, np.asarray(message.displacement_m, dtype=float))
 
 
+def _displacement_columns(s: pb.SurfaceResult) -> dict:
+    """The ``displacement*`` archive columns of a found surface (degrees -1 and NaN when it was
+    not followed in the displacement representation). A displacement the group's columns cannot
+    hold is left out with a warning: the row itself must still be archived."""
+    archived = None
+    try:
+        if s.HasField("displacement"):
+            d = s.displacement
+            archived = ArchivedDisplacement(d.reference_lmax, d.reference_position_m, d.reference_direction,
+                                            d.lmax, d.displacement_m)
+        return displacement_row(s.lmax, archived)
+    except ValueError as exc:
+        _log.warning("surface %s at iteration %d: displacement form not archived: %s", s.label, s.iteration, exc)
+        return displacement_row(s.lmax, None)
+
+
+def _displacement_from_archive(row: dict) -> pb.InnerDisplacement | None:
+    archived = displacement_from_row(row)
+    if archived is None:
+        return None
+    return pb.InnerDisplacement(reference_lmax=archived.reference_lmax,
+                                reference_position_m=archived.reference_position.ravel().tolist(),
+                                reference_direction=archived.reference_direction.ravel().tolist(),
+                                lmax=archived.lmax, displacement_m=archived.coefficients.tolist())
+
+
 def not_found_from_outcome(outcome: SurfaceOutcome, *, latency_s: float) -> pb.SurfaceNotFound:
     return pb.SurfaceNotFound(
         label=outcome.label,
@@ -190,6 +219,7 @@ def surface_row(event: pb.RunEvent, archived_unix_s: float) -> tuple[str, dict]:
             residual_max=s.residual_max_per_m, residual_max_between_nodes=s.residual_max_between_nodes_per_m,
             iterations=s.iterations, wall_time_s=s.wall_time_s,
             latency_s=s.latency_s, method=METHOD_CODES.get(s.method, -1),
+            **_displacement_columns(s),
         )
         return s.label, row
     if kind == "surface_not_found":
@@ -267,6 +297,7 @@ def surface_event_from_row(run_id: str, label: str, row: dict, lmax: int) -> pb.
                 iterations=int(row["iterations"]),
                 wall_time_s=float(row["wall_time_s"]), latency_s=float(row["latency_s"]),
                 finder_status=int(row["status"]), method=_METHOD_NAMES.get(int(row["method"]), ""),
+                displacement=_displacement_from_archive(row),
             )
         )
     else:

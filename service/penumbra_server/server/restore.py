@@ -16,7 +16,7 @@ import numpy as np
 
 from penumbra_shim._wire import horizons_pb2 as pb
 
-from ..archive import ArchiveView, open_archive
+from ..archive import ArchiveView, displacement_from_row, open_archive
 from ..numerics.surfaces import Surface
 from . import _convert as convert
 from ._tracking_convert import decode_wire, wire_triple
@@ -70,6 +70,7 @@ def restore_run(run: "RunRecord", archived: ArchivedRun) -> None:
         if label not in run.surface_labels:
             run.surface_labels.append(label)
         lmax = view.surface_lmax(label)
+        run.displaced.pop(label, None)
         for i in range(len(cols["iteration"])):
             row = {name: values[i] for name, values in cols.items()}
             event = convert.surface_event_from_row(run.run_id, label, row, lmax)
@@ -80,6 +81,15 @@ def restore_run(run: "RunRecord", archived: ArchivedRun) -> None:
                 state.record_found(Surface(row["centre"], lmax, row["coefficients"]), wire_triple(s.quantities.centroid_m),
                                    s.quantities.radius_max_m, time=float(row["time"]), iteration=int(row["iteration"]),
                                    irreducible_mass=float(row["irreducible_mass"]), message=s)
+                # The follow seed of a surface tracked as a displacement (the inner common MOTS):
+                # the surface itself, as archived, not its star-shaped fit (NaN once it folds).
+                # A row it cannot be rebuilt from costs only the seed (then re-seeded inward).
+                try:
+                    archived_displacement = displacement_from_row(row)
+                    if archived_displacement is not None:
+                        run.displaced[label] = archived_displacement.surface()
+                except ValueError:
+                    run.displaced.pop(label, None)
             else:
                 n_f = event.surface_not_found
                 state.record_miss(n_f.message, int(row["iteration"]),

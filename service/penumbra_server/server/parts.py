@@ -14,6 +14,11 @@ ErrorInfo reason the client reads) and whose message names the field at fault an
 expected. A refused part changes
 nothing: the parts stored before stay pending.
 
+Durability: with part files attached (:meth:`PartAssembly.attach_files`, part_files.py), each
+part is written to the run's spool directory before its answer (``persisted`` set), and a
+restarted server rebuilds the pending assemblies from the files (:meth:`PartAssembly.restore`);
+a restored iteration gets a full part deadline from the restart (its senders were cut off too).
+
 Cost on the event loop: dictionary look-ups per patch. The one data comparison (a patch that two
 parts both carry) runs on a worker thread, as does everything that reads field values.
 """
@@ -21,8 +26,10 @@ parts both carry) runs on a worker thread, as does everything that reads field v
 from __future__ import annotations
 
 import asyncio
+import errno
 import logging
 import math
+import time
 from dataclasses import dataclass, field
 from typing import Protocol
 
@@ -35,6 +42,7 @@ from ..numerics.reflection import mirror_patch_through_z0
 from ..numerics.slices import Patch, Slice, SliceError, VariableSet
 from .errors import ServiceError
 from .ingest import SliceAssembler
+from .part_files import PartFiles, StoredPart
 
 __all__ = ["REASONS", "MAX_PART_COUNT", "PartLabel", "ReceivedPart", "PartSink", "PartAssembly", "part_of",
            "prepare_part", "patch_key"]
@@ -223,12 +231,48 @@ class PartAssembly:
         #: The run's excised spheres, carried by every merged slice (numerics.excision).
         self.excised_spheres = tuple(excised_spheres)
         self._pending: dict[int, _Pending] = {}
+        #: Part files (attach_files): None keeps parts in memory only.
+        self._files: PartFiles | None = None
+        self._executor = None
+        self._spooled_path = None
+        #: One part at a time from its first check to its store: a part's disk write is awaited
+        #: between the two, and no other part may change the iteration meanwhile.
+        self._receiving = asyncio.Lock()
         #: Iterations given up (no patch arrived before the deadline): later parts are refused.
         self.given_up: set[int] = set()
 
     @property
     def pending_iterations(self) -> list[int]:
         return sorted(self._pending)
+
+    def pending_summary(self) -> list[tuple[int, list[int], int]]:
+        """(iteration, part indices held, part count) of each pending slice, in iteration order."""
+        return [(it, sorted(p.parts), p.count) for it, p in sorted(self._pending.items())]
+
+    def attach_files(self, files: PartFiles, executor, spooled_path) -> None:
+        """Keep every part in ``files`` before answering it; ``executor`` runs the disk work in
+        order with the run's other spool writes (the run's archive thread); ``spooled_path(it)``
+        is the spool file of the assembled slice of ``it``, after which the parts may go."""
+        self._files, self._executor, self._spooled_path = files, executor, spooled_path
+
+    async def _on_disk(self, function, *args):
+        return await asyncio.get_running_loop().run_in_executor(self._executor, function, *args)
+
+    def _release_later(self, iteration: int, *, given_up: bool) -> None:
+        """Queue the removal of ``iteration``'s part files behind its assembled slice's spool write
+        (the same single-threaded executor runs both, in order)."""
+        if self._files is None:
+            return
+        if given_up:
+            job = self._executor.submit(self._files.release, iteration)
+        else:
+            job = self._executor.submit(self._files.release_if_spooled, iteration, self._spooled_path(iteration))
+        job.add_done_callback(lambda done: self._log_release_failure(done, iteration))
+
+    def _log_release_failure(self, done, iteration: int) -> None:
+        if not done.cancelled() and done.exception() is not None:  # the files stay; a restart removes them
+            log.error("run %s: removing the part files of iteration %d failed: %s", self.run_id, iteration,
+                      done.exception())
 
     # -- checks -------------------------------------------------------------------------------
 
@@ -281,6 +325,10 @@ class PartAssembly:
         Returns OUTCOME_PART_ACCEPTED (waiting for parts), OUTCOME_DUPLICATE (held already), or
         the run's reply to the assembled slice. Refusals leave every stored part in place.
         """
+        async with self._receiving:
+            return await self._receive(part, max_bytes=max_bytes)
+
+    async def _receive(self, part: ReceivedPart, *, max_bytes: int) -> pb.SendSliceResponse:
         iteration, label = part.iteration, part.label
         identical: set[tuple] = set()  # keys already compared equal to the stored patch
         while True:
@@ -307,7 +355,6 @@ class PartAssembly:
                                    f"({_describe(patch)}) that part {owner} carried with different data; expected "
                                    f"identical data or a different patch")
                 identical.add(key)
-        # From here on no await: the checks above still hold.
         kept = [i for i, key in enumerate(part.keys) if pending is None or key not in pending.by_key]
         kept_bytes = sum(part.patch_bytes[i] for i in kept)
         held_bytes = pending.patch_bytes if pending is not None else 0
@@ -315,6 +362,9 @@ class PartAssembly:
             raise _refusal("parts_too_large",
                            f"header.patches: the parts of iteration {iteration} would hold {held_bytes + kept_bytes} "
                            f"bytes, over the server's slice limit of {max_bytes} bytes")
+        if self._files is not None:
+            await self._keep(part, tuple(part.patches[i] for i in kept), pending)
+        # From here on no await: the checks above still hold.
         if pending is None:
             pending = _Pending(iteration=iteration, time=part.time, count=label.count, variable_set=part.variable_set)
             self._pending[iteration] = pending
@@ -325,11 +375,12 @@ class PartAssembly:
         pending.parts[label.index] = tuple(part.patches[i] for i in kept)
         pending.nbytes += part.nbytes
         pending.patch_bytes += kept_bytes
+        persisted = self._files is not None
         if len(pending.parts) < pending.count:
             return pb.SendSliceResponse(
                 run_id=self.run_id, iteration=iteration, outcome=pb.SendSliceResponse.OUTCOME_PART_ACCEPTED,
                 received_bytes=part.nbytes, queue_position=-1, parts_received=len(pending.parts),
-                parts_expected=pending.count)
+                parts_expected=pending.count, persisted=persisted)
         self._take(pending)
         response = self._hand_on(pending, missing=[], why="")
         if response is None:  # every part arrived empty: nothing to process
@@ -338,7 +389,39 @@ class PartAssembly:
         response.received_bytes = part.nbytes
         response.parts_received = pending.count
         response.parts_expected = pending.count
+        # Every part of the slice is on disk (the assembled slice's own spool write follows).
+        response.persisted = persisted and response.outcome in (pb.SendSliceResponse.OUTCOME_ACCEPTED,
+                                                                 pb.SendSliceResponse.OUTCOME_PART_ACCEPTED)
         return response
+
+    async def _keep(self, part: ReceivedPart, patches: tuple[Patch, ...], pending: _Pending | None) -> None:
+        """Write ``part`` (its ``patches`` not held already) to its part file, then check again
+        that it may still join its iteration (its deadline may have passed during the write);
+        a part that may not is refused and its file removed. ServiceError when the write fails."""
+        from .. import crash_points
+
+        label = part.label
+        stored = StoredPart(iteration=part.iteration, time=part.time, variable_set=part.variable_set,
+                            index=label.index, count=label.count, patches=patches, nbytes=part.nbytes,
+                            arrival_unix_s=time.time())
+        try:
+            path = await self._on_disk(self._files.write, stored)
+        except OSError as exc:  # not on disk: not acknowledged (the sender keeps the part)
+            full = exc.errno in (errno.ENOSPC, errno.EDQUOT)
+            raise ServiceError(grpc.StatusCode.RESOURCE_EXHAUSTED if full else grpc.StatusCode.INTERNAL,
+                               f"header.part_index: part {label.index} of iteration {part.iteration} could not be "
+                               f"written to the run's spool {self._files.directory}: {exc.strerror or exc}; it "
+                               f"was not accepted", reason="SPOOL_WRITE_FAILED") from None
+        try:
+            self.sink.check_accepting()
+            self.check(part.iteration, part.time, label)
+            if self._pending.get(part.iteration) is not pending:  # defensive: the lock keeps it so
+                raise _refusal("part_after_assembly", f"header.iteration: the parts of iteration {part.iteration} "
+                                                      f"were handed on while part {label.index} was being stored")
+        except ServiceError:
+            await self._on_disk(path.unlink, True)
+            raise
+        crash_points.reached("part-spooled-before-ack")
 
     # -- handing on ---------------------------------------------------------------------------
 
@@ -352,7 +435,9 @@ class PartAssembly:
         """Give the run what arrived (complete when ``missing`` is empty); a report when incomplete or empty."""
         has_patches = any(pending.parts.values())
         if not missing and has_patches:
-            return self.sink.accept_assembled(pending.merged(self.excised_spheres), pending.nbytes, None)
+            response = self.sink.accept_assembled(pending.merged(self.excised_spheres), pending.nbytes, None)
+            self._release_later(pending.iteration, given_up=False)
+            return response
         received = sum(len(p) for p in pending.parts.values())
         if not has_patches:
             self.given_up.add(pending.iteration)
@@ -369,7 +454,9 @@ class PartAssembly:
             disposition=(pb.SlicePartsMissing.DISPOSITION_PROCESSED if has_patches
                          else pb.SlicePartsMissing.DISPOSITION_GIVEN_UP))
         merged = pending.merged(self.excised_spheres) if has_patches else None
-        return self.sink.accept_assembled(merged, pending.nbytes, report)
+        response = self.sink.accept_assembled(merged, pending.nbytes, report)
+        self._release_later(pending.iteration, given_up=not has_patches)
+        return response
 
     def _hand_on_incomplete(self, pending: _Pending, why: str) -> None:
         missing = [i for i in range(pending.count) if i not in pending.parts]
@@ -386,6 +473,34 @@ class PartAssembly:
             return
         self._take(pending)
         self._hand_on_incomplete(pending, f"part_deadline_s = {self.deadline_s:g} s passed since its first part")
+
+    def restore(self, stored: dict[int, list[StoredPart]]) -> None:
+        """Rebuild the pending slices of a restarted server from their part files (call on the
+        event loop before the run takes parts). A complete slice (a kill after its last part was
+        kept) is handed on at once; an incomplete one waits a full part deadline from now."""
+        loop = asyncio.get_running_loop()
+        for iteration, parts in sorted(stored.items()):
+            first = parts[0]
+            pending = _Pending(iteration=iteration, time=first.time, count=first.count,
+                               variable_set=first.variable_set)
+            for part in parts:
+                pending.parts[part.index] = part.patches
+                for patch in part.patches:
+                    pending.by_key.setdefault(patch_key(patch), (patch, part.index))
+                pending.nbytes += part.nbytes
+                pending.patch_bytes += _patch_bytes(part.patches)
+            if len(pending.parts) == pending.count:
+                self._hand_on_complete(pending)
+                continue
+            self._pending[iteration] = pending
+            pending.timer = loop.call_later(self.deadline_s, self._expire, pending)
+
+    def _hand_on_complete(self, pending: _Pending) -> None:
+        try:
+            self._hand_on(pending, missing=[], why="")
+        except Exception:
+            log.exception("run %s: handing on the restored parts of iteration %d failed", self.run_id,
+                          pending.iteration)
 
     def flush(self, why: str) -> None:
         """Hand on every pending slice with what arrived (the run is closing)."""

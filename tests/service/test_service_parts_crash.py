@@ -16,13 +16,12 @@ import numpy as np
 import pytest
 
 import penumbra_shim as ps
-from penumbra_shim._errors import error_from_rpc
 from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_server.archive import archive_path, open_archive
 from penumbra_server.server.spool import spool_path
 
-from crash_support import Serve, check_archive_after_kill, check_archive_final
-from service_support import LONE_CENTRE, box, lone_hole, lone_spec, patch_data
+from crash_support import Serve, check_archive_after_kill, check_archive_final, free_port
+from service_support import LONE_CENTRE, box, lone_hole, lone_hole_slice, lone_spec, patch_data
 
 pytestmark = pytest.mark.slow
 
@@ -147,17 +146,15 @@ def test_acknowledged_parts_survive_kills_and_the_slice_is_processed_once(tmp_pa
     assert _part_files(archive, run_id) == [f"it1.part{k}of3" for k in range(PARTS)]
     check_archive_after_kill(archive_path(archive, run_id))
 
-    # Life 3: iteration 1 is assembled from its files alone and held; a late copy of its last
-    # part is refused as coming after assembly.
+    # Life 3: iteration 1 is assembled from its files alone and held; a resend of its last part
+    # (whose answer the kill cut off) is a duplicate.
     serve = Serve(tmp_path, archive)
     try:
         run = serve.stub.GetRun(pb.GetRunRequest(run_id=run_id), timeout=60).run
         assert run.highest_held_iteration == 1, run
         assert "1 slice(s) assembled from acknowledged parts" in _reopen_reason(serve.stub, run_id)
-        with pytest.raises(grpc.RpcError) as info:
-            serve.stub.SendSlice(ps.build_slice(time=0.25, iteration=1, variable_set="adm", patches=parts[2],
-                                                part_index=2, part_count=PARTS).requests(run_id), timeout=60)
-        assert error_from_rpc(info.value).reason == "PART_AFTER_ASSEMBLY", info.value.details()
+        again = _send(serve.stub, run_id, 1, PARTS - 1, parts[PARTS - 1])
+        assert again.outcome == pb.SendSliceResponse.OUTCOME_DUPLICATE and again.parts_received == PARTS
         _wait(lambda: _processed(serve.stub, run_id) >= 2, "iteration 1 processed", serve)
         _wait(lambda: not _part_files(archive, run_id), "the part files of iteration 1 removed", serve)
         closed = serve.stub.CloseRun(pb.CloseRunRequest(run_id=run_id), timeout=300).run
@@ -173,3 +170,37 @@ def test_acknowledged_parts_survive_kills_and_the_slice_is_processed_once(tmp_pa
     radii = view.surface("A")
     assert len(radii["iteration"]) == 2
     assert not spool_path(archive, run_id).exists()
+
+
+def test_the_shim_resending_a_part_kept_before_a_kill_learns_the_slice_is_held(tmp_path):
+    """A kill after the last part was kept, before its answer: the restarted server assembles the
+    slice from its part files; the shim's retry of that part finds the iteration held (a
+    duplicate, never archived twice) instead of being refused as late."""
+    archive = tmp_path / "archive"
+    listen = f"127.0.0.1:{free_port()}"
+    parts = _part_patches()[:2]
+    first = Serve(tmp_path, archive, "part-spooled-before-ack:2", listen=listen)
+    second = None
+    client = ps.connect(first.address, deadline_s=5.0, retry_budget_s=600.0)
+    try:
+        spec = lone_spec("shim parts after a crash", lmax=4, queue_depth=16)
+        run = client.open_run(spec, max_retry_s=600.0)
+        ack = run.submit_arrays(time=0.0, iteration=0, patches=parts[0], part_index=0, part_count=2).result(120)
+        assert ack.accepted and ack.waiting_for_parts and ack.persisted, ack
+        ticket = run.submit_arrays(time=0.0, iteration=0, patches=parts[1], part_index=1, part_count=2)
+        assert first.killed_itself()
+        second = Serve(tmp_path, archive, listen=listen)
+        ack = ticket.result(300)
+        assert ack.duplicate and not ack.accepted, ack
+        assert run.describe().highest_held_iteration == 0
+        assert run.submit(lone_hole_slice(1, nodes=21)).result(120).accepted  # the run takes data again
+        run.close()
+    finally:
+        client.close()
+        first.close()
+        if second is not None:
+            second.close()
+    view = open_archive(archive_path(archive, run.run_id))
+    assert view.slices()["iteration"].tolist() == [0, 1]
+    assert view.slices()["bytes"][0] == _field_bytes(parts[0]) + _field_bytes(parts[1])
+    assert sorted(view.surface("A")["iteration"].tolist()) == [0, 1]

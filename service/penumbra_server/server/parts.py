@@ -240,6 +240,9 @@ class PartAssembly:
         self._receiving = asyncio.Lock()
         #: Iterations given up (no patch arrived before the deadline): later parts are refused.
         self.given_up: set[int] = set()
+        #: Iterations assembled from every one of their parts by this process: a later copy of
+        #: one of their parts is a duplicate (e.g. a part resent because a kill cut off its answer).
+        self.completed: set[int] = set()
 
     @property
     def pending_iterations(self) -> list[int]:
@@ -279,7 +282,9 @@ class PartAssembly:
     def check(self, iteration: int, time_m: float, label: PartLabel) -> bool:
         """Refuse a stream that cannot join its iteration; True when this part is held already.
 
-        A whole slice (count 1) is refused only while parts of its iteration are pending.
+        A whole slice (count 1) is refused only while parts of its iteration are pending. A part
+        of a slice this process assembled complete is held (a copy); a part of a slice accepted
+        whole, processed without it or given up is refused.
         """
         pending = self._pending.get(iteration)
         if not label.is_part:
@@ -294,6 +299,8 @@ class PartAssembly:
                            f"that arrived before it was handed on carried a patch); part {label.index} came too "
                            f"late")
         if pending is None:
+            if iteration in self.completed:
+                return True
             if self.sink.is_duplicate(iteration):
                 raise _refusal("part_after_assembly",
                                f"header.iteration: the slice of iteration {iteration} was already assembled (or "
@@ -435,6 +442,7 @@ class PartAssembly:
         """Give the run what arrived (complete when ``missing`` is empty); a report when incomplete or empty."""
         has_patches = any(pending.parts.values())
         if not missing and has_patches:
+            self.completed.add(pending.iteration)
             response = self.sink.accept_assembled(pending.merged(self.excised_spheres), pending.nbytes, None)
             self._release_later(pending.iteration, given_up=False)
             return response

@@ -4,7 +4,8 @@ remaining parts complete it, and it is processed and archived exactly once.
 
 Life 1 dies right after keeping part 1 of iteration 0 (the sender never got its answer); life 2
 finds parts 0 and 1 held, counts no incomplete slice as held, takes part 2, then dies right after
-keeping the last part of iteration 1; life 3 assembles iteration 1 from its files alone.
+keeping the last part of iteration 1; life 3 assembles iteration 1 from its files alone, then dies
+in the middle of writing a part of iteration 2; life 4 has no trace of that part and takes it.
 """
 
 from __future__ import annotations
@@ -147,28 +148,47 @@ def test_acknowledged_parts_survive_kills_and_the_slice_is_processed_once(tmp_pa
     check_archive_after_kill(archive_path(archive, run_id))
 
     # Life 3: iteration 1 is assembled from its files alone and held; a resend of its last part
-    # (whose answer the kill cut off) is a duplicate.
-    serve = Serve(tmp_path, archive)
+    # (whose answer the kill cut off) is a duplicate. Then the server dies while writing part 1 of
+    # iteration 2 (the 3rd durable write of this life: iteration 1's slice, part 0, part 1).
+    serve = Serve(tmp_path, archive, crash_at="spool-before-rename:3")
     try:
         run = serve.stub.GetRun(pb.GetRunRequest(run_id=run_id), timeout=60).run
         assert run.highest_held_iteration == 1, run
         assert "1 slice(s) assembled from acknowledged parts" in _reopen_reason(serve.stub, run_id)
         again = _send(serve.stub, run_id, 1, PARTS - 1, parts[PARTS - 1])
         assert again.outcome == pb.SendSliceResponse.OUTCOME_DUPLICATE and again.parts_received == PARTS
-        _wait(lambda: _processed(serve.stub, run_id) >= 2, "iteration 1 processed", serve)
-        _wait(lambda: not _part_files(archive, run_id), "the part files of iteration 1 removed", serve)
+        _wait(lambda: not [n for n in _part_files(archive, run_id) if n.startswith("it1.")],
+              "the part files of iteration 1 removed", serve)
+        assert _send(serve.stub, run_id, 2, 0, parts[0]).persisted
+        assert _send(serve.stub, run_id, 2, 1, parts[1]) is None  # killed mid-write: never acknowledged
+        assert serve.killed_itself()
+    finally:
+        serve.close()
+    assert ".it2.part1of3.tmp" in sorted(p.name for p in spool_path(archive, run_id).iterdir())
+
+    # Life 4: the interrupted write is gone, part 0 of iteration 2 is held; part 1 (never
+    # acknowledged) is taken anew, part 2 completes the slice.
+    serve = Serve(tmp_path, archive)
+    try:
+        assert serve.stub.GetRun(pb.GetRunRequest(run_id=run_id), timeout=60).run.highest_held_iteration == 1
+        assert "iteration 2 (parts 0 of 3 held)" in _reopen_reason(serve.stub, run_id)
+        assert _part_files(archive, run_id) == ["it2.part0of3"]
+        taken = _send(serve.stub, run_id, 2, 1, parts[1])
+        assert taken.outcome == pb.SendSliceResponse.OUTCOME_PART_ACCEPTED and taken.parts_received == 2
+        assert _send(serve.stub, run_id, 2, 2, parts[2]).outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED
+        _wait(lambda: _processed(serve.stub, run_id) >= 3, "iterations 0 to 2 processed", serve)
+        _wait(lambda: not _part_files(archive, run_id), "every part file removed", serve)
         closed = serve.stub.CloseRun(pb.CloseRunRequest(run_id=run_id), timeout=300).run
         assert closed.state == pb.Run.STATE_CLOSED
     finally:
         serve.close()
 
     # Each slice archived once, processed, its horizon found, every part's bytes counted.
-    check_archive_final(archive_path(archive, run_id), [0, 1])
+    check_archive_final(archive_path(archive, run_id), [0, 1, 2])
     view = open_archive(archive_path(archive, run_id))
     expected_bytes = sum(_field_bytes(p) for p in parts)
-    assert view.slices()["bytes"].tolist() == [expected_bytes, expected_bytes]
-    radii = view.surface("A")
-    assert len(radii["iteration"]) == 2
+    assert view.slices()["bytes"].tolist() == [expected_bytes] * 3
+    assert sorted(view.surface("A")["iteration"].tolist()) == [0, 1, 2]
     assert not spool_path(archive, run_id).exists()
 
 

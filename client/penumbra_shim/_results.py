@@ -36,7 +36,9 @@ class RunInfo:
     ``client_gaps_recorded``: outages of the client's link recorded on the run;
     ``slices_rejected``: slices refused after their header named the run.
     ``highest_held_iteration``: the highest iteration the server holds, archived or kept in its
-    spool on disk (-1: none): after a server restart, slices up to it need no resend.
+    spool on disk (-1: none): after a server restart, slices up to it need no resend. A slice sent
+    in parts counts once every part is on the server's disk; the parts of a slice still waiting
+    for others are kept too (a resent part is answered as a duplicate) but do not count here.
     ``slices_spooled``: acknowledged slices on the server's disk, not yet archived;
     ``slices_replayed``: slices the server found in its spool at its last start and queued again.
     """
@@ -93,8 +95,8 @@ class SliceAck:
     ``duplicate``: the server held this part already.
     ``drop_reason``: for a slice skipped locally, why, in words (see
     :data:`penumbra_shim.DROP_REASONS`), e.g. "link down: server unreachable".
-    ``persisted``: the server wrote the accepted slice to its disk before answering (it survives
-    a crash of the server).
+    ``persisted``: the server wrote the accepted slice (or part) to its disk before answering (it
+    survives a crash of the server).
     """
 
     iteration: int

@@ -304,7 +304,9 @@ class RunSender:
                 self.stats.retries += 1
                 self._stopping.wait(backoff)
                 backoff = min(2 * backoff, 2.0)
-                if slice_.part_count == 1 and self._held_by_server(slice_.iteration):
+                # A part too: the server counts an iteration sent in parts as held once every
+                # part is on its disk (a crash after the last part was kept loses only the answer).
+                if self._held_by_server(slice_.iteration):
                     self.stats.held_by_server += 1
                     self.stats.duplicates += 1
                     pending.ticket._resolve(SliceAck(iteration=slice_.iteration, accepted=False, duplicate=True,

@@ -20,6 +20,7 @@ ENV_VAR = "PENUMBRA_CRASH_AT"
 POINTS: tuple[str, ...] = (
     "spool-before-rename",       # the slice's spool file written and flushed, not yet renamed
     "spool-before-ack",          # the spool file in place, the client not yet answered
+    "part-spooled-before-ack",   # a part of a slice sent in parts in its part file, its sender not yet answered
     "archive-mid-group",         # a new archive group half created (some of its arrays)
     "archive-mid-commit",        # a commit's rows written, its committed-row counts not yet
     "archive-before-consolidate",  # counts written, consolidated metadata not yet

@@ -10,6 +10,9 @@ on other nodes would be. The run's body lies outside the data, so no finder job 
    rank an empty part (the usual case once the ranks crop to the server's data windows).
 3. Event-loop time of the assembly itself (no network): storing parts of many small patches and
    merging them, per part and per patch.
+4. What keeping each part on disk before its answer costs (part files, flushed to the disk):
+   the same parts received with and without part files, side by side (no network).
+   ``--files-only`` runs this section alone.
 """
 
 from __future__ import annotations
@@ -135,12 +138,56 @@ def bench_assembly(*, parts: int, patches_per_part: int) -> dict:
             "us_per_patch": 1e6 * seconds / (parts * patches_per_part)}
 
 
+def bench_part_files(*, parts: int, nodes: int, root: str) -> dict:
+    """Seconds to receive ``parts`` parts of one ``nodes``^3 patch each, with part files (each
+    written and flushed before its answer, on a thread as the run's archive thread) and without."""
+    from concurrent.futures import ThreadPoolExecutor
+    from pathlib import Path
+
+    from penumbra_server.numerics.slices import Patch, VariableSet
+    from penumbra_server.server.part_files import PartFiles
+    from penumbra_server.server.parts import PartAssembly, PartLabel, ReceivedPart
+    from penumbra_server.server.spool import RunSpool
+
+    rng = np.random.default_rng(0)
+    fields = {name: rng.standard_normal((nodes,) * 3) for name in ps.required_fields("adm")}
+    nbytes = sum(a.nbytes for a in fields.values())
+    received = [ReceivedPart(iteration=0, time=0.0, variable_set=VariableSet.ADM, label=PartLabel(i, parts),
+                             patches=(Patch(origin=(2.0 * i, 0, 0), spacing=(0.1,) * 3, shape=(nodes,) * 3, level=0,
+                                            fields=fields),), nbytes=nbytes) for i in range(parts)]
+
+    async def one(with_files: bool, iteration: int) -> float:
+        with ThreadPoolExecutor(max_workers=1) as thread:
+            assembly = PartAssembly(_Sink(), run_id="bench", deadline_s=600)
+            spool = RunSpool(Path(root) / f"bench-{iteration}.spool")
+            if with_files:
+                assembly.attach_files(PartFiles(spool.directory), thread, spool.path_for)
+            start = time.perf_counter()
+            for part in received:
+                await assembly.receive(part, max_bytes=1 << 40)
+            return time.perf_counter() - start
+
+    async def main() -> tuple[float, float]:
+        files_s, memory_s = [], []
+        for repeat in range(3):  # alternated: a machine's load drift hits both alike
+            files_s.append(await one(True, repeat))
+            memory_s.append(await one(False, repeat))
+        return min(files_s), min(memory_s)
+
+    files_s, memory_s = asyncio.run(main())
+    return {"files_ms_per_part": 1e3 * files_s / parts, "memory_ms_per_part": 1e3 * memory_s / parts,
+            "MiB_per_part": nbytes / 2**20, "files_MiBps": parts * nbytes / files_s / 2**20}
+
+
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--ranks", type=int, default=8)
     parser.add_argument("--nodes", type=int, default=97, help="nodes per side of the box (97: ~87 MiB a slice)")
     parser.add_argument("--iterations", type=int, default=4)
+    parser.add_argument("--files-only", action="store_true", help="run section 4 alone")
     args = parser.parse_args(argv)
+    if args.files_only:
+        return _files_section(args.nodes // 3, args.ranks)
     print(f"python {sys.version.split()[0]}, {args.ranks} ranks, {args.nodes}^3 nodes, {args.iterations} iterations")
     with tempfile.TemporaryDirectory() as root, \
             BackgroundServer("127.0.0.1:0", archive_root=root, workers=1, options=ServerOptions(workers=1)) as bg:
@@ -160,6 +207,14 @@ def main(argv=None) -> int:
         print(f"3. assembly of {parts_n} parts x {per} patches: {a['seconds'] * 1e3:7.1f} ms on the loop, "
               f"{a['us_per_part']:6.1f} us per part, {a['us_per_patch']:5.2f} us per patch "
               f"({a['assembled']} slice assembled)")
+    return _files_section(args.nodes // 3, args.ranks)
+
+
+def _files_section(nodes: int, parts: int) -> int:
+    with tempfile.TemporaryDirectory() as root:
+        f = bench_part_files(parts=parts, nodes=nodes, root=root)
+    print(f"4. {parts} parts of {f['MiB_per_part']:.1f} MiB: {f['files_ms_per_part']:7.1f} ms per part kept on disk "
+          f"({f['files_MiBps']:.0f} MiB/s), {f['memory_ms_per_part']:7.2f} ms per part in memory only")
     return 0
 
 

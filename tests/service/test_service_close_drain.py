@@ -46,8 +46,8 @@ def test_a_close_past_its_deadline_goes_on_and_its_retry_waits_for_the_spool(tmp
 
 
 def test_a_slice_assembled_from_parts_is_spooled_once_complete(tmp_path):
-    """Parts are answered from memory (persisted false); the assembled slice goes to the spool
-    while it waits, and leaves it when archived."""
+    """Each part is kept in a part file before its answer (persisted true); the assembled slice
+    goes to the spool while it waits, its part files go, and it leaves the spool when archived."""
     held = HeldExecutor.start(1)
     try:
         with BackgroundServer(archive_root=tmp_path, workers=1, options=ServerOptions(workers=1),
@@ -61,12 +61,13 @@ def test_a_slice_assembled_from_parts_is_spooled_once_complete(tmp_path):
                 outgoing = ps.build_slice(time=0.0, iteration=4, variable_set="adm", part_index=index, part_count=2,
                                           patches=patches)
                 reply = stub.SendSlice(iter(raw_requests(outgoing, run_id)), timeout=60)
-                assert not reply.persisted
+                assert reply.persisted
             held.wait_until_held(1)  # the slice is being processed; nothing is archived yet
             spooled = spool_path(tmp_path, run_id) / "it4.slice"
             deadline = time.monotonic() + 120
-            while not spooled.exists():
-                assert time.monotonic() < deadline, "the assembled slice never reached the spool"
+            while not spooled.exists() or [p for p in spooled.parent.iterdir() if ".part" in p.name]:
+                assert time.monotonic() < deadline, ("the assembled slice never replaced its parts in the spool: "
+                                                     f"{sorted(p.name for p in spooled.parent.iterdir())}")
                 time.sleep(0.02)
             held.release()
             run = stub.CloseRun(pb.CloseRunRequest(run_id=run_id), timeout=300).run

@@ -70,7 +70,9 @@ def test_eight_rank_processes_give_the_surfaces_of_the_whole_slice(server):
             # cropped to that run's windows (made from the same surfaces, hence the same windows).
             patches = support.all_patches()
             assert whole.submit_arrays(time=support.TIMES[0], iteration=0, patches=patches).result(120).accepted
-            support.wait_for_windows(whole, 0)
+            # The windows iteration 1 is cropped to (iteration 1 is not sent yet: made from iteration 0).
+            windows = support.wait_for_windows(whole, 0)
+            assert windows.iteration == 0
             ack = whole.submit_arrays(time=support.TIMES[1], iteration=1, patches=patches,
                                       crop_to_windows=True).result(120)
             assert ack.accepted and ack.cropped
@@ -105,13 +107,12 @@ def test_eight_rank_processes_give_the_surfaces_of_the_whole_slice(server):
         # Iteration 0 went whole: only the rank that owns nothing sent an empty part.
         assert [r for r in range(support.RANKS) if reports[r]["acks"][0]["bytes_sent"] == 0] == [7]
         # Iteration 1 went cropped: the empty parts are exactly the ranks whose boxes miss the windows.
-        windows = whole.latest_windows(refresh=True)
-        assert windows is not None and windows.iteration == 0
         missing_windows = [r for r in range(support.RANKS)
                            if not crop_patches(_crop_sources(r), windows.bounds(), extra_nodes=windows.extra_nodes)]
         empty = [r for r in range(support.RANKS) if reports[r]["acks"][1]["bytes_sent"] == 0]
-        # The ranks cropped to their run's windows: the same as the whole run's (same surfaces).
-        np.testing.assert_array_equal(client.latest_windows(in_parts.run_id).bounds(), windows.bounds())
+        # The ranks cropped to their run's windows of iteration 0: the same as the whole run's (same
+        # surfaces), so the empty parts are those the whole run's windows predict. (The latest windows
+        # of either run may already come from iteration 1: when the ranks finish is up to the machine.)
         assert empty == missing_windows == [0, 1, 6, 7]
         assert all(reports[r]["acks"][1]["cropped"] for r in range(support.RANKS))
 

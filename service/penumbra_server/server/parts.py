@@ -11,8 +11,14 @@ report, or the slice is given up when no part carried a patch.
 
 Refusals are :class:`ServiceError` whose reason is one of :data:`REASONS` (upper-cased: the
 ErrorInfo reason the client reads) and whose message names the field at fault and what was
-expected. A refused part changes
-nothing: the parts stored before stay pending.
+expected. A refused part changes nothing: the parts stored before stay pending. What one part
+stream is (its label, its checked patches, the refusal reasons) lives in part_intake.py and is
+re-exported here.
+
+Durability: with part files attached (:meth:`PartAssembly.attach_files`, part_files.py), each
+part is written to the run's spool directory before its answer (``persisted`` set), and a
+restarted server rebuilds the pending assemblies from the files (:meth:`PartAssembly.restore`);
+a restored iteration gets a full part deadline from the restart (its senders were cut off too).
 
 Cost on the event loop: dictionary look-ups per patch. The one data comparison (a patch that two
 parts both carry) runs on a worker thread, as does everything that reads field values.
@@ -21,149 +27,28 @@ parts both carry) runs on a worker thread, as does everything that reads field v
 from __future__ import annotations
 
 import asyncio
+import errno
 import logging
 import math
+import time
 from dataclasses import dataclass, field
 from typing import Protocol
 
 import grpc
-import numpy as np
 
 from penumbra_shim._wire import horizons_pb2 as pb
 
-from ..numerics.reflection import mirror_patch_through_z0
-from ..numerics.slices import Patch, Slice, SliceError, VariableSet
+from ..numerics.slices import Patch, Slice, VariableSet
 from .errors import ServiceError
-from .ingest import SliceAssembler
+from .part_files import PartFiles, StoredPart
+from .part_intake import (MAX_PART_COUNT, REASONS, PartLabel, ReceivedPart, describe_patch as _describe,
+                          part_of, patch_bytes as _patch_bytes, patch_key, prepare_part, refusal as _refusal,
+                          same_data as _same_data)
 
 __all__ = ["REASONS", "MAX_PART_COUNT", "PartLabel", "ReceivedPart", "PartSink", "PartAssembly", "part_of",
            "prepare_part", "patch_key"]
 
 log = logging.getLogger("penumbra.server")
-
-#: Most parts one slice may be sent in (one per MPI rank; large machines run ~1e5 ranks).
-MAX_PART_COUNT = 1 << 20
-
-#: Reasons of the refusals of this module (upper-cased on the wire), with their status codes.
-REASONS: dict[str, grpc.StatusCode] = {
-    "part_count_negative": grpc.StatusCode.INVALID_ARGUMENT,
-    "part_count_too_large": grpc.StatusCode.INVALID_ARGUMENT,
-    "part_index_out_of_range": grpc.StatusCode.INVALID_ARGUMENT,
-    "whole_slice_without_patches": grpc.StatusCode.INVALID_ARGUMENT,
-    "part_time_mismatch": grpc.StatusCode.FAILED_PRECONDITION,
-    "part_count_mismatch": grpc.StatusCode.FAILED_PRECONDITION,
-    "part_after_assembly": grpc.StatusCode.FAILED_PRECONDITION,
-    "part_after_give_up": grpc.StatusCode.FAILED_PRECONDITION,
-    "patch_conflict": grpc.StatusCode.ALREADY_EXISTS,
-    "parts_too_large": grpc.StatusCode.RESOURCE_EXHAUSTED,
-}
-
-
-def _refusal(reason: str, text: str) -> ServiceError:
-    return ServiceError(REASONS[reason], text, reason=reason.upper())
-
-
-@dataclass(frozen=True)
-class PartLabel:
-    """Which part of its slice a stream carries: ``index`` in 0 .. ``count`` - 1 (count 1: whole)."""
-
-    index: int
-    count: int
-
-    @property
-    def is_part(self) -> bool:
-        return self.count > 1
-
-
-def part_of(header: pb.SliceHeader) -> PartLabel:
-    """The validated part index and count of a SendSlice header (INVALID_ARGUMENT naming the field)."""
-    count, index = int(header.part_count), int(header.part_index)
-    if count < 0:
-        raise _refusal("part_count_negative", f"header.part_count: expected 0 or 1 for a whole slice or the "
-                                              f"number of parts (2 .. {MAX_PART_COUNT}), got {count}")
-    if count > MAX_PART_COUNT:
-        raise _refusal("part_count_too_large", f"header.part_count: at most {MAX_PART_COUNT} parts, got {count}")
-    count = max(count, 1)
-    if not 0 <= index < count:
-        raise _refusal("part_index_out_of_range", f"header.part_index: expected 0 .. {count - 1} for part_count "
-                                                  f"{header.part_count}, got {index}")
-    if count == 1 and not header.patches:
-        raise _refusal("whole_slice_without_patches",
-                       "header.patches: a whole slice (part_count 0 or 1) needs at least one patch, got none; "
-                       "only a part of a slice sent in parts (part_count > 1) may be empty")
-    return PartLabel(index, count)
-
-
-def patch_key(patch: Patch) -> tuple:
-    """What makes two patches "the same patch": level, origin, spacing and shape."""
-    return (patch.level, *(float(v) for v in patch.origin), *(float(v) for v in patch.spacing), *patch.shape)
-
-
-def _same_data(a: Patch, b: Patch) -> bool:
-    return a.fields.keys() == b.fields.keys() and all(np.array_equal(a.fields[n], b.fields[n]) for n in a.fields)
-
-
-def _describe(patch: Patch) -> str:
-    return (f"level {patch.level}, origin {np.round(patch.origin, 6).tolist()}, spacing "
-            f"{np.round(patch.spacing, 6).tolist()}, shape {list(patch.shape)}")
-
-
-def _patch_bytes(patches) -> int:
-    return int(sum(a.nbytes for p in patches for a in p.fields.values()))
-
-
-@dataclass(frozen=True, eq=False)
-class ReceivedPart:
-    """One part as it arrived: its slice's identity, its label and its patches (copies dropped),
-    with each patch's :func:`patch_key` and field bytes (worked out off the event loop)."""
-
-    iteration: int
-    time: float
-    variable_set: VariableSet
-    label: PartLabel
-    patches: tuple[Patch, ...]
-    nbytes: int
-    keys: tuple[tuple, ...] = ()
-    patch_bytes: tuple[int, ...] = ()
-
-    def __post_init__(self) -> None:
-        if len(self.keys) != len(self.patches):
-            object.__setattr__(self, "keys", tuple(patch_key(p) for p in self.patches))
-        if len(self.patch_bytes) != len(self.patches):
-            object.__setattr__(self, "patch_bytes", tuple(_patch_bytes((p,)) for p in self.patches))
-
-
-def prepare_part(assembler: SliceAssembler, label: PartLabel, *, bitant: bool) -> ReceivedPart:
-    """The checked patches of one part stream (run on a worker thread: it reads every value).
-
-    DATA_LOSS / INVALID_ARGUMENT as :meth:`SliceAssembler.finish`; with ``bitant`` symmetry each
-    patch is mirrored through z = 0. A patch the part carries twice is kept once if its data are
-    identical, else ALREADY_EXISTS.
-    """
-    patches = assembler.finish_patches()
-    if bitant:
-        mirrored = []
-        for index, patch in enumerate(patches):
-            try:
-                mirrored.extend(mirror_patch_through_z0(patch, index=index))
-            except SliceError as exc:
-                raise ServiceError.invalid(f"header.patches: the run has symmetry SYMMETRY_BITANT: {exc}") from None
-        patches = tuple(mirrored)
-    seen: dict[tuple, Patch] = {}
-    kept, keys = [], []
-    for patch in patches:
-        key = patch_key(patch)
-        first = seen.get(key)
-        if first is None:
-            seen[key] = patch
-            kept.append(patch)
-            keys.append(key)
-        elif not _same_data(first, patch):
-            raise _refusal("patch_conflict", f"header.patches: part {label.index} carries the patch ({_describe(patch)}) "
-                                             f"twice with different data; expected one copy")
-    return ReceivedPart(iteration=assembler.iteration, time=assembler.time, variable_set=assembler.variable_set,
-                        label=label, patches=tuple(kept), nbytes=assembler.received_bytes, keys=tuple(keys))
-
 
 class PartSink(Protocol):
     """What a :class:`PartAssembly` needs of its run."""
@@ -223,19 +108,60 @@ class PartAssembly:
         #: The run's excised spheres, carried by every merged slice (numerics.excision).
         self.excised_spheres = tuple(excised_spheres)
         self._pending: dict[int, _Pending] = {}
+        #: Part files (attach_files): None keeps parts in memory only.
+        self._files: PartFiles | None = None
+        self._executor = None
+        self._spooled_path = None
+        #: One part at a time from its first check to its store: a part's disk write is awaited
+        #: between the two, and no other part may change the iteration meanwhile.
+        self._receiving = asyncio.Lock()
         #: Iterations given up (no patch arrived before the deadline): later parts are refused.
         self.given_up: set[int] = set()
+        #: Iterations assembled from every one of their parts by this process: a later copy of
+        #: one of their parts is a duplicate (e.g. a part resent because a kill cut off its answer).
+        self.completed: set[int] = set()
 
     @property
     def pending_iterations(self) -> list[int]:
         return sorted(self._pending)
+
+    def pending_summary(self) -> list[tuple[int, list[int], int]]:
+        """(iteration, part indices held, part count) of each pending slice, in iteration order."""
+        return [(it, sorted(p.parts), p.count) for it, p in sorted(self._pending.items())]
+
+    def attach_files(self, files: PartFiles, executor, spooled_path) -> None:
+        """Keep every part in ``files`` before answering it; ``executor`` runs the disk work in
+        order with the run's other spool writes (the run's archive thread); ``spooled_path(it)``
+        is the spool file of the assembled slice of ``it``, after which the parts may go."""
+        self._files, self._executor, self._spooled_path = files, executor, spooled_path
+
+    async def _on_disk(self, function, *args):
+        return await asyncio.get_running_loop().run_in_executor(self._executor, function, *args)
+
+    def _release_later(self, iteration: int, *, given_up: bool) -> None:
+        """Queue the removal of ``iteration``'s part files behind its assembled slice's spool write
+        (the same single-threaded executor runs both, in order)."""
+        if self._files is None:
+            return
+        if given_up:
+            job = self._executor.submit(self._files.release, iteration)
+        else:
+            job = self._executor.submit(self._files.release_if_spooled, iteration, self._spooled_path(iteration))
+        job.add_done_callback(lambda done: self._log_release_failure(done, iteration))
+
+    def _log_release_failure(self, done, iteration: int) -> None:
+        if not done.cancelled() and done.exception() is not None:  # the files stay; a restart removes them
+            log.error("run %s: removing the part files of iteration %d failed: %s", self.run_id, iteration,
+                      done.exception())
 
     # -- checks -------------------------------------------------------------------------------
 
     def check(self, iteration: int, time_m: float, label: PartLabel) -> bool:
         """Refuse a stream that cannot join its iteration; True when this part is held already.
 
-        A whole slice (count 1) is refused only while parts of its iteration are pending.
+        A whole slice (count 1) is refused only while parts of its iteration are pending. A part
+        of a slice this process assembled complete is held (a copy); a part of a slice accepted
+        whole, processed without it or given up is refused.
         """
         pending = self._pending.get(iteration)
         if not label.is_part:
@@ -250,6 +176,8 @@ class PartAssembly:
                            f"that arrived before it was handed on carried a patch); part {label.index} came too "
                            f"late")
         if pending is None:
+            if iteration in self.completed:
+                return True
             if self.sink.is_duplicate(iteration):
                 raise _refusal("part_after_assembly",
                                f"header.iteration: the slice of iteration {iteration} was already assembled (or "
@@ -281,6 +209,10 @@ class PartAssembly:
         Returns OUTCOME_PART_ACCEPTED (waiting for parts), OUTCOME_DUPLICATE (held already), or
         the run's reply to the assembled slice. Refusals leave every stored part in place.
         """
+        async with self._receiving:
+            return await self._receive(part, max_bytes=max_bytes)
+
+    async def _receive(self, part: ReceivedPart, *, max_bytes: int) -> pb.SendSliceResponse:
         iteration, label = part.iteration, part.label
         identical: set[tuple] = set()  # keys already compared equal to the stored patch
         while True:
@@ -307,7 +239,6 @@ class PartAssembly:
                                    f"({_describe(patch)}) that part {owner} carried with different data; expected "
                                    f"identical data or a different patch")
                 identical.add(key)
-        # From here on no await: the checks above still hold.
         kept = [i for i, key in enumerate(part.keys) if pending is None or key not in pending.by_key]
         kept_bytes = sum(part.patch_bytes[i] for i in kept)
         held_bytes = pending.patch_bytes if pending is not None else 0
@@ -315,6 +246,9 @@ class PartAssembly:
             raise _refusal("parts_too_large",
                            f"header.patches: the parts of iteration {iteration} would hold {held_bytes + kept_bytes} "
                            f"bytes, over the server's slice limit of {max_bytes} bytes")
+        if self._files is not None:
+            await self._keep(part, tuple(part.patches[i] for i in kept), pending)
+        # From here on no await: the checks above still hold.
         if pending is None:
             pending = _Pending(iteration=iteration, time=part.time, count=label.count, variable_set=part.variable_set)
             self._pending[iteration] = pending
@@ -325,11 +259,12 @@ class PartAssembly:
         pending.parts[label.index] = tuple(part.patches[i] for i in kept)
         pending.nbytes += part.nbytes
         pending.patch_bytes += kept_bytes
+        persisted = self._files is not None
         if len(pending.parts) < pending.count:
             return pb.SendSliceResponse(
                 run_id=self.run_id, iteration=iteration, outcome=pb.SendSliceResponse.OUTCOME_PART_ACCEPTED,
                 received_bytes=part.nbytes, queue_position=-1, parts_received=len(pending.parts),
-                parts_expected=pending.count)
+                parts_expected=pending.count, persisted=persisted)
         self._take(pending)
         response = self._hand_on(pending, missing=[], why="")
         if response is None:  # every part arrived empty: nothing to process
@@ -338,7 +273,39 @@ class PartAssembly:
         response.received_bytes = part.nbytes
         response.parts_received = pending.count
         response.parts_expected = pending.count
+        # Every part of the slice is on disk (the assembled slice's own spool write follows).
+        response.persisted = persisted and response.outcome in (pb.SendSliceResponse.OUTCOME_ACCEPTED,
+                                                                 pb.SendSliceResponse.OUTCOME_PART_ACCEPTED)
         return response
+
+    async def _keep(self, part: ReceivedPart, patches: tuple[Patch, ...], pending: _Pending | None) -> None:
+        """Write ``part`` (its ``patches`` not held already) to its part file, then check again
+        that it may still join its iteration (its deadline may have passed during the write);
+        a part that may not is refused and its file removed. ServiceError when the write fails."""
+        from .. import crash_points
+
+        label = part.label
+        stored = StoredPart(iteration=part.iteration, time=part.time, variable_set=part.variable_set,
+                            index=label.index, count=label.count, patches=patches, nbytes=part.nbytes,
+                            arrival_unix_s=time.time())
+        try:
+            path = await self._on_disk(self._files.write, stored)
+        except OSError as exc:  # not on disk: not acknowledged (the sender keeps the part)
+            full = exc.errno in (errno.ENOSPC, errno.EDQUOT)
+            raise ServiceError(grpc.StatusCode.RESOURCE_EXHAUSTED if full else grpc.StatusCode.INTERNAL,
+                               f"header.part_index: part {label.index} of iteration {part.iteration} could not be "
+                               f"written to the run's spool {self._files.directory}: {exc.strerror or exc}; it "
+                               f"was not accepted", reason="SPOOL_WRITE_FAILED") from None
+        try:
+            self.sink.check_accepting()
+            self.check(part.iteration, part.time, label)
+            if self._pending.get(part.iteration) is not pending:  # defensive: the lock keeps it so
+                raise _refusal("part_after_assembly", f"header.iteration: the parts of iteration {part.iteration} "
+                                                      f"were handed on while part {label.index} was being stored")
+        except ServiceError:
+            await self._on_disk(path.unlink, True)
+            raise
+        crash_points.reached("part-spooled-before-ack")
 
     # -- handing on ---------------------------------------------------------------------------
 
@@ -352,7 +319,10 @@ class PartAssembly:
         """Give the run what arrived (complete when ``missing`` is empty); a report when incomplete or empty."""
         has_patches = any(pending.parts.values())
         if not missing and has_patches:
-            return self.sink.accept_assembled(pending.merged(self.excised_spheres), pending.nbytes, None)
+            self.completed.add(pending.iteration)
+            response = self.sink.accept_assembled(pending.merged(self.excised_spheres), pending.nbytes, None)
+            self._release_later(pending.iteration, given_up=False)
+            return response
         received = sum(len(p) for p in pending.parts.values())
         if not has_patches:
             self.given_up.add(pending.iteration)
@@ -369,7 +339,9 @@ class PartAssembly:
             disposition=(pb.SlicePartsMissing.DISPOSITION_PROCESSED if has_patches
                          else pb.SlicePartsMissing.DISPOSITION_GIVEN_UP))
         merged = pending.merged(self.excised_spheres) if has_patches else None
-        return self.sink.accept_assembled(merged, pending.nbytes, report)
+        response = self.sink.accept_assembled(merged, pending.nbytes, report)
+        self._release_later(pending.iteration, given_up=not has_patches)
+        return response
 
     def _hand_on_incomplete(self, pending: _Pending, why: str) -> None:
         missing = [i for i in range(pending.count) if i not in pending.parts]
@@ -386,6 +358,34 @@ class PartAssembly:
             return
         self._take(pending)
         self._hand_on_incomplete(pending, f"part_deadline_s = {self.deadline_s:g} s passed since its first part")
+
+    def restore(self, stored: dict[int, list[StoredPart]]) -> None:
+        """Rebuild the pending slices of a restarted server from their part files (call on the
+        event loop before the run takes parts). A complete slice (a kill after its last part was
+        kept) is handed on at once; an incomplete one waits a full part deadline from now."""
+        loop = asyncio.get_running_loop()
+        for iteration, parts in sorted(stored.items()):
+            first = parts[0]
+            pending = _Pending(iteration=iteration, time=first.time, count=first.count,
+                               variable_set=first.variable_set)
+            for part in parts:
+                pending.parts[part.index] = part.patches
+                for patch in part.patches:
+                    pending.by_key.setdefault(patch_key(patch), (patch, part.index))
+                pending.nbytes += part.nbytes
+                pending.patch_bytes += _patch_bytes(part.patches)
+            if len(pending.parts) == pending.count:
+                self._hand_on_complete(pending)
+                continue
+            self._pending[iteration] = pending
+            pending.timer = loop.call_later(self.deadline_s, self._expire, pending)
+
+    def _hand_on_complete(self, pending: _Pending) -> None:
+        try:
+            self._hand_on(pending, missing=[], why="")
+        except Exception:
+            log.exception("run %s: handing on the restored parts of iteration %d failed", self.run_id,
+                          pending.iteration)
 
     def flush(self, why: str) -> None:
         """Hand on every pending slice with what arrived (the run is closing)."""

@@ -23,6 +23,7 @@ from .planning import steering_planner_factory
 from .restore import read_archive, restore_run
 from .runs import ManagerOptions, RunRecord
 from .scheduler import SurfacePlanner
+from .part_files import PartFiles
 from .spool import RunSpool, spool_path
 
 __all__ = ["RunManager", "software_version"]
@@ -42,6 +43,19 @@ def software_version() -> str:
 
 def _new_run_id() -> str:
     return f"run-{secrets.token_hex(6)}"
+
+
+def _parts_reason(run: RunRecord, parts: dict) -> str:
+    """The re-open reason's words on the slices restored from part files: the complete ones were
+    handed on (their iterations count in highest_held_iteration), the incomplete ones wait."""
+    waiting = run.parts.pending_summary()
+    text = f"; {len(parts) - len(waiting)} slice(s) assembled from acknowledged parts"
+    if waiting:
+        shown = ", ".join(f"iteration {it} (parts {', '.join(map(str, held[:8]))}"
+                          f"{' ...' if len(held) > 8 else ''} of {count} held)" for it, held, count in waiting[:8])
+        text += (f"; {len(waiting)} slice(s) waiting for parts, a new part deadline of "
+                 f"{run.parts.deadline_s:g} s from now: {shown}{' ...' if len(waiting) > 8 else ''}")
+    return text
 
 
 class RunManager:
@@ -116,6 +130,8 @@ class RunManager:
             planner=self.planner_factory(settings), created_unix_s=created, next_seq=next_seq,
             spool=RunSpool(spool_path(self.archive_root, run_id)),
         )
+        # Parts of slices sent in parts are kept beside the spooled slices (part_files.py).
+        run.parts.attach_files(PartFiles(run.spool.directory), archive_thread, run.spool.path_for)
         if self.slice_observer_factory is not None:
             run.slice_observers.extend(self.slice_observer_factory(settings))
         if settings.formation_forecast and run.steering.common_label is not None:
@@ -143,8 +159,8 @@ class RunManager:
                 restore_run(run, archived)
                 if len(archived.slices.get("iteration", ())):
                     run.highest_held = int(max(archived.slices["iteration"]))
-                replay = await loop.run_in_executor(self.archive_thread, self._read_spool, run,
-                                                    summary.state == "closed")
+                replay, parts = await loop.run_in_executor(self.archive_thread, self._read_spool, run,
+                                                           summary.state == "closed")
                 if attrs.get("open_request_id"):
                     self._request_ids[str(attrs["open_request_id"])] = summary.run_id
             except Exception:
@@ -156,9 +172,12 @@ class RunManager:
                 continue
             for item in replay:  # acknowledged before the restart, not yet archived: processed now
                 run.requeue(item)
+            run.parts.restore(parts)  # acknowledged parts: complete slices handed on, the others wait
             reason = "re-opened from its archive after a server restart"
             if replay:
                 reason += f"; {len(replay)} acknowledged slice(s) replayed from its spool"
+            if parts:
+                reason += _parts_reason(run, parts)
             await run.announce_state(pb.Run.STATE_OPEN, reason)
             reopened.append(summary.run_id)
         return reopened
@@ -171,7 +190,7 @@ class RunManager:
         spool = run.spool
         if closed:
             spool.remove_all()
-            return []
+            return [], {}
         entries = spool.entries()
         spool.release([e.iteration for e in entries if e.iteration in run.accepted_iterations])
         items = []
@@ -182,7 +201,23 @@ class RunManager:
                 items.append(spool.load(entry, excised_spheres=run.settings.excised_spheres))
             except ValueError:
                 log.exception("run %s: spool file unreadable, kept for inspection", run.run_id)
-        return items
+        return items, RunManager._read_parts(run, {e.iteration for e in entries})
+
+    @staticmethod
+    def _read_parts(run: RunRecord, spooled: set[int]) -> dict:
+        """The part files of ``run`` whose slice is neither archived, spooled whole nor given up
+        (archive thread); the files of those that are are removed (a kill before their removal)."""
+        files = PartFiles(run.spool.directory)
+        try:
+            stored = files.iterations()
+        except ValueError:
+            log.exception("run %s: part files unreadable, kept for inspection; no part restored", run.run_id)
+            return {}
+        for iteration in list(stored):
+            if iteration in run.accepted_iterations or iteration in spooled or iteration in run.parts.given_up:
+                files.release(iteration)
+                del stored[iteration]
+        return stored
 
     def list_runs(self) -> list[RunRecord]:
         return sorted(self.runs.values(), key=lambda r: (-r.created_unix_s, r.run_id))

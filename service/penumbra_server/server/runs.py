@@ -318,8 +318,9 @@ class RunRecord:
         item = QueuedSlice(slice_=slice_, nbytes=nbytes, arrival_unix_s=time.time())
         response = self.accept(item)
         if self.spool is not None and response.outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED:
-            # The parts were answered from memory; the assembled slice is kept from now on. The
-            # archive thread runs jobs in order, so this write precedes the slice's release.
+            # Kept whole from now on (its part files go after this write, parts.py). The archive
+            # thread runs jobs in order, so this write precedes the slice's release.
+            self.highest_held = max(self.highest_held, item.iteration)
             written = asyncio.get_running_loop().run_in_executor(self.archive_thread, self.spool.write, item)
             written.add_done_callback(self._log_spool_failure)
         return response

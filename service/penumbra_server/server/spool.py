@@ -5,12 +5,13 @@ Layout: ``<archive_root>/<run_id>.spool/`` holds one file per slice, ``it<iterat
 arrival wall clock, and per patch origin, spacing, shape, level, memory order and each field's
 byte offset), then every field's float64 values, raw, in the patch's memory order.
 
-A slice is written to ``.it<iteration>.tmp``, flushed to the disk (fsync), renamed to its final
+A slice is written to ``.it<iteration>.slice.tmp``, flushed to the disk (fsync), renamed to its final
 name and the directory flushed, all before the client is answered; a kill at any moment leaves
 either no file (the client was not answered and resends) or a complete one. The file is removed
 once the archive commit holding the slice's row is written (processed, skipped or failed: its
 fate is final). A restarted server replays what remains, in iteration order; a temporary file is
-a write the kill interrupted, never acknowledged, and is removed.
+a write the kill interrupted, never acknowledged, and is removed. The parts of a slice sent in
+parts live in the same directory until the slice is assembled (part_files.py).
 
 Synchronous: call from a worker thread (the run's archive thread or ``asyncio.to_thread``).
 """
@@ -30,7 +31,7 @@ import numpy as np
 from ..numerics.slices import Patch, Slice, VariableSet
 from .run_types import QueuedSlice
 
-__all__ = ["SPOOL_SUFFIX", "RunSpool", "SpoolEntry", "spool_path"]
+__all__ = ["SPOOL_SUFFIX", "RunSpool", "SpoolEntry", "read_record", "spool_path", "write_record"]
 
 #: Directory suffix of a run's spool beside its archive.
 SPOOL_SUFFIX = ".spool"
@@ -65,6 +66,67 @@ def _field_bytes(arr: np.ndarray, order: str) -> memoryview:
     return memoryview(np.ascontiguousarray(flat)).cast("B")
 
 
+def write_record(directory: Path, name: str, header: dict, patches) -> Path:
+    """Write ``header`` (JSON-able) and the fields of ``patches`` as ``directory/name`` durably:
+    to ``.<name>.tmp``, flushed to the disk, renamed, the directory flushed. Returns the path."""
+    from .. import crash_points
+
+    directory.mkdir(parents=True, exist_ok=True)
+    header = dict(header, patches=[])
+    blocks: list[memoryview] = []
+    offset = 0
+    for patch in patches:
+        order = patch.memory_order if patch.memory_order in ("C", "F") else "C"
+        entry = {"origin": [float(v) for v in patch.origin], "spacing": [float(v) for v in patch.spacing],
+                 "shape": [int(n) for n in patch.shape], "level": int(patch.level), "memory_order": order,
+                 "fields": {}}
+        for field_name, values in patch.fields.items():
+            block = _field_bytes(values, order)
+            entry["fields"][field_name] = offset
+            offset += block.nbytes
+            blocks.append(block)
+        header["patches"].append(entry)
+    encoded = json.dumps(header).encode()
+    final = directory / name
+    temporary = directory / f".{name}.tmp"
+    with open(temporary, "wb") as f:
+        f.write(len(encoded).to_bytes(_LENGTH, "little"))
+        f.write(encoded)
+        for block in blocks:
+            f.write(block)
+        f.flush()
+        os.fsync(f.fileno())
+    crash_points.reached("spool-before-rename")
+    os.replace(temporary, final)
+    _fsync_directory(directory)
+    return final
+
+
+def read_record(path: Path) -> tuple[dict, tuple[Patch, ...]]:
+    """The header and patches of a file :func:`write_record` wrote (ValueError naming the file
+    if it is malformed). The field arrays are views of one buffer read from the file."""
+    data = bytearray(path.stat().st_size)  # writable: the arrays are views of it
+    with open(path, "rb") as f:
+        f.readinto(data)
+    try:
+        length = int.from_bytes(data[:_LENGTH], "little")
+        header = json.loads(data[_LENGTH:_LENGTH + length])
+        base = _LENGTH + length
+        patches = []
+        for spec in header["patches"]:
+            shape = tuple(spec["shape"])
+            count = int(np.prod(shape))
+            fields = {}
+            for field_name, offset in spec["fields"].items():
+                values = np.frombuffer(data, dtype="<f8", count=count, offset=base + offset)
+                fields[field_name] = values.reshape(shape, order=spec["memory_order"])
+            patches.append(Patch(origin=np.array(spec["origin"]), spacing=np.array(spec["spacing"]), shape=shape,
+                                 level=spec["level"], fields=fields, memory_order=spec["memory_order"]))
+    except (ValueError, KeyError, TypeError) as exc:
+        raise ValueError(f"{path}: not a readable spool file: {exc}") from None
+    return header, tuple(patches)
+
+
 class RunSpool:
     """The spool directory of one run (module docstring)."""
 
@@ -78,38 +140,10 @@ class RunSpool:
 
     def write(self, item: QueuedSlice) -> Path:
         """Write ``item`` durably (flushed, renamed, directory flushed). Returns its path."""
-        from .. import crash_points
-
-        self.directory.mkdir(parents=True, exist_ok=True)
         slice_ = item.slice_
         header = {"time": slice_.time, "iteration": int(slice_.iteration), "variable_set": slice_.variable_set.value,
-                  "nbytes": int(item.nbytes), "arrival_unix_s": float(item.arrival_unix_s), "patches": []}
-        blocks: list[memoryview] = []
-        offset = 0
-        for patch in slice_.patches:
-            order = patch.memory_order if patch.memory_order in ("C", "F") else "C"
-            entry = {"origin": [float(v) for v in patch.origin], "spacing": [float(v) for v in patch.spacing],
-                     "shape": [int(n) for n in patch.shape], "level": int(patch.level), "memory_order": order,
-                     "fields": {}}
-            for name, values in patch.fields.items():
-                block = _field_bytes(values, order)
-                entry["fields"][name] = offset
-                offset += block.nbytes
-                blocks.append(block)
-            header["patches"].append(entry)
-        encoded = json.dumps(header).encode()
-        final = self.path_for(slice_.iteration)
-        temporary = self.directory / f".it{int(slice_.iteration)}.tmp"
-        with open(temporary, "wb") as f:
-            f.write(len(encoded).to_bytes(_LENGTH, "little"))
-            f.write(encoded)
-            for block in blocks:
-                f.write(block)
-            f.flush()
-            os.fsync(f.fileno())
-        crash_points.reached("spool-before-rename")
-        os.replace(temporary, final)
-        _fsync_directory(self.directory)
+                  "nbytes": int(item.nbytes), "arrival_unix_s": float(item.arrival_unix_s)}
+        final = write_record(self.directory, self.path_for(slice_.iteration).name, header, slice_.patches)
         self.held.add(int(slice_.iteration))
         return final
 
@@ -131,29 +165,15 @@ class RunSpool:
     @staticmethod
     def load(entry: SpoolEntry, *, excised_spheres: tuple = ()) -> QueuedSlice:
         """The queued slice of a spool file (ValueError naming the file if it is malformed)."""
-        data = bytearray(entry.path.stat().st_size)  # writable: the arrays are views of it
-        with open(entry.path, "rb") as f:
-            f.readinto(data)
+        header, patches = read_record(entry.path)
         try:
-            length = int.from_bytes(data[:_LENGTH], "little")
-            header = json.loads(data[_LENGTH:_LENGTH + length])
-            base = _LENGTH + length
-            patches = []
-            for spec in header["patches"]:
-                shape = tuple(spec["shape"])
-                count = int(np.prod(shape))
-                fields = {}
-                for name, offset in spec["fields"].items():
-                    values = np.frombuffer(data, dtype="<f8", count=count, offset=base + offset)
-                    fields[name] = values.reshape(shape, order=spec["memory_order"])
-                patches.append(Patch(origin=np.array(spec["origin"]), spacing=np.array(spec["spacing"]), shape=shape,
-                                     level=spec["level"], fields=fields, memory_order=spec["memory_order"]))
             slice_ = Slice(time=float(header["time"]), iteration=int(header["iteration"]),
-                           variable_set=VariableSet.parse(header["variable_set"]), patches=tuple(patches),
+                           variable_set=VariableSet.parse(header["variable_set"]), patches=patches,
                            excised_spheres=tuple(excised_spheres))
+            return QueuedSlice(slice_=slice_, nbytes=int(header["nbytes"]),
+                               arrival_unix_s=float(header["arrival_unix_s"]))
         except (ValueError, KeyError, TypeError) as exc:
             raise ValueError(f"{entry.path}: not a readable spool file: {exc}") from None
-        return QueuedSlice(slice_=slice_, nbytes=int(header["nbytes"]), arrival_unix_s=float(header["arrival_unix_s"]))
 
     def release(self, iterations: Iterable[int]) -> None:
         """Remove the files of ``iterations`` (their rows are archived); absent ones are ignored."""

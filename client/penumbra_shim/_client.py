@@ -245,7 +245,13 @@ class Client:
         unreachable ("idle_timeout"; None waits forever), or when :meth:`EventStream.cancel` is
         called from any thread ("cancelled"). A refusal that resuming cannot cure (NOT_FOUND,
         OUT_OF_RANGE) raises :class:`PenumbraError`.
+
+        Raises:
+            ValueError: ``run_id`` is not a non-empty string (e.g. the id of a run handle still
+                pending: watch the handle's events with :meth:`RunHandle.events` instead).
         """
+        if not isinstance(run_id, str) or not run_id:
+            raise ValueError(f"run_id: expected a non-empty run id string, got {run_id!r}")
         return EventStream(self, run_id, from_seq=from_seq, timeout_s=timeout_s, idle_timeout_s=idle_timeout_s)
 
     def close(self) -> None:

@@ -143,3 +143,11 @@ def _overflow_scenario(tmp_path, options, held):
             assert skipped and processed and not skipped & processed
             assert run.stats.dropped_locally == 0 and skipped | processed == set(range(40))
             assert [e.seq for e in events] == [e.seq for e in live_events]
+
+
+def test_watch_without_a_run_id_is_refused_by_name(client):
+    # A pending handle's run id is None until its run opens: watching it by id is a caller error,
+    # reported at once and naming the argument (not an AttributeError deep in the stream).
+    for bad in (None, "", 7):
+        with pytest.raises(ValueError, match="run_id: expected a non-empty run id string"):
+            client.watch(bad)

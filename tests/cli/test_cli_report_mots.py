@@ -11,6 +11,7 @@ import math
 import time
 
 import numpy as np
+import pytest
 
 from penumbra_server.archive import SLICE_OUTCOME_PROCESSED, ArchiveWriter, open_archive
 from penumbra_server.cli.report import write_report
@@ -71,6 +72,14 @@ def test_mots_plot_and_summary_show_every_surface_and_its_stability(tmp_path):
     # Only two slices lack the common pair: each common surface is drawn on the last four.
     (inner,) = [c for c in eigen_axes.containers if c.get_label() == "common_inner"]
     assert inner.lines[0].get_xdata().size == 4 and np.all(inner.lines[0].get_ydata() < 0)
+
+    # areas_masses.png shades each surface's archived area error bar around its line.
+    area_panel = result.figures["areas_masses.png"].axes[0]
+    (band,) = [c for c in area_panel.collections if c.get_label() == "_common error"]
+    rows = view.surface("common")
+    found = np.asarray(rows["found"], dtype=bool)
+    top = band.get_paths()[0].vertices[:, 1].max()
+    assert top == pytest.approx(float(np.max(rows["area"][found] + rows["area_error"][found])), rel=1e-12)
 
     text = result.summary_path.read_text()
     last = TIMES[-1]

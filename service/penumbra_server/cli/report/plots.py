@@ -74,7 +74,8 @@ def _mark_common(ax, summary: RunSummary) -> None:
 
 def plot_areas_masses(record: ArchivedRun, summary: RunSummary, path: Path) -> PlotInfo:
     """Area (top) and irreducible mass (bottom) of every found surface against time; one line
-    per label (its label as the line's label), a dotted vertical line at the first common horizon."""
+    per label (its label as the line's label) with a shaded band of its archived error bar, a
+    dotted vertical line at the first common horizon."""
     fig, axes = _new_figure(7.5, 6.0, nrows=2)
     colours = _colours(record.labels)
     for label in record.labels:
@@ -83,8 +84,16 @@ def plot_areas_masses(record: ArchivedRun, summary: RunSummary, path: Path) -> P
         if not rows.size:
             continue
         t = np.asarray(cols["time"])[rows]
-        axes[0, 0].plot(t, np.asarray(cols["area"])[rows], "o-", ms=3, color=colours[label], label=label)
-        axes[1, 0].plot(t, np.asarray(cols["irreducible_mass"])[rows], "o-", ms=3, color=colours[label], label=label)
+        for ax, name in ((axes[0, 0], "area"), (axes[1, 0], "irreducible_mass")):
+            values = np.asarray(cols[name], dtype=float)[rows]
+            ax.plot(t, values, "o-", ms=3, color=colours[label], label=label)
+            if f"{name}_error" in cols:
+                # Shaded band of the archived error bar (numerics/error_bars.py), where there is one.
+                errors = np.asarray(cols[f"{name}_error"], dtype=float)[rows]
+                if np.any(np.isfinite(errors)):
+                    errors = np.where(np.isfinite(errors), errors, 0.0)
+                    ax.fill_between(t, values - errors, values + errors, color=colours[label], alpha=0.2,
+                                    linewidth=0, label=f"_{label} error")
     for ax in axes[:, 0]:
         _mark_common(ax, summary)
         ax.grid(alpha=0.3)

@@ -65,6 +65,7 @@ from .find_results import (  # noqa: F401  (re-exported: the finder's public nam
 from .finder_evaluation import _evaluate, _Evaluated, _Run
 from .finder_flow import _flow
 from .finder_newton import _jacobian, _newton  # noqa: F401  (_jacobian re-exported: constant_expansion.py and tests use it)
+from .geometry import PointGeometry  # noqa: F401  (re-exported: a callable given as data returns it)
 from .interpolation import DEFAULT_ORDER
 from .resolution import interpolation_floor, recentred_surface, residual_between_nodes
 from .slices import Slice

@@ -2,7 +2,7 @@
 
 Each builder takes plain results (tracks, forecasts, guidance, windows) and returns one
 :class:`Notice`: the RunEvent payload, a one-line summary and the archive rows it adds. The run
-commits a notice's rows together with its event (runs.py); a tracking event is also archived in
+commits a notice's rows together with its event (run_commits.py); a tracking event is also archived in
 its wire form (:func:`encode_wire`), from which a restarted server replays it.
 """
 

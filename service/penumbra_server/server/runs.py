@@ -1,24 +1,21 @@
-"""One run on the server: its backlog queue, the processing of each slice, the commits of its
-events and its lifecycle (open, close, shutdown).
+"""One run on the server: its record (spec, archive, decision state, counters, event log), its
+description on the wire (Run, latest surfaces and guidance) and its lifecycle (open, close,
+shutdown, loaded closed).
+
+The record's work is split by job, each a mixin of :class:`RunRecord` sharing the state set up
+here: how slices enter (run_ingest.py: acceptance, keep-newest queue, spool), how they are
+processed (run_processing.py: plans, finds, several slices in flight via pipeline.py, outcomes
+applied in iteration order, write-behind), and how events are committed (run_commits.py: one
+archive commit per batch, events announced only after they are written).
 
 Everything on the event loop thread except the archive writes (one worker thread), the finds
 (the :class:`FinderExecutor`, via search.py) and the steering's decisions (a worker thread).
-The order of one run's events is the order of its commits: a per-run committer takes every
-pending emission (run_events.py), assigns consecutive sequence numbers, writes their rows in one
-archive commit on the archive thread, and only then appends the events to the log (an event is
-announced as archived only after it is written). A processed slice hands all its events (surfaces,
-tracking notices, slice_processed) to the committer at once: one archive commit per slice; the
-processor records the outcomes in the decision state (surface states, steering) at once and
-goes on to the next slice while the commit is written (write-behind, a bounded lag). With
-``slices_in_flight`` above 1 the finds of later slices start before earlier ones are applied
-(pipeline.py); outcomes are still applied in iteration order. Made and
-restored by run_manager.py and restore.py; parts.py and link_records.py hang off it.
+Made and restored by run_manager.py and restore.py; parts.py and link_records.py hang off it.
 """
 
 from __future__ import annotations
 
 import asyncio
-import errno
 import logging
 import time
 from collections import deque
@@ -26,49 +23,32 @@ from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Callable
 
-import grpc
-
 from penumbra_shim._wire import horizons_pb2 as pb
 
-from .. import crash_points
 from ..archive import ArchiveWriter
-from ..numerics.slices import Slice
 from ._spec import RunSettings
-from ._tracking_convert import warning_notice
-from .errors import ServiceError
 from .events import EventLog
 from .executors import FinderExecutor
 from .jobs import SurfaceOutcome
 from .link_records import LinkRecords
 from .parts import PartAssembly
-from .pipeline import InFlight, drive_pipeline, may_overlap
+from .pipeline import InFlight
+from .run_commits import RunCommits
+from .run_events import AnnouncedSurface, Emission, announced_view, state_emission
+from .run_ingest import RunIngest
+from .run_processing import RunProcessing
 from .run_types import ManagerOptions, QueuedSlice
-from .run_events import (AnnouncedSurface, Committed, announced_view, Emission, merge_batch, notice_emission, parts_missing_emission, skip_emission, slice_emission,
-                         state_emission, surface_emission)
-from .scheduler import SurfacePlan, SurfacePlanner
-from .inner_planning import inner_common_plans, search_in_order
-from .search import search_plan
+from .scheduler import SurfacePlanner
 from .spool import RunSpool
 from .steering import RunSteering
-from .surface_state import SurfaceState, record_outcome
+from .surface_state import SurfaceState
 
 __all__ = ["RunRecord", "QueuedSlice", "ManagerOptions"]
 
 log = logging.getLogger("penumbra.server")
 
 
-#: Processed slices whose commit may still be pending while the next slice is processed.
-_COMMITS_BEHIND = 2
-
-
-def _retrieve(future: asyncio.Future) -> None:
-    """Mark a write-behind commit's outcome as seen (a failure is already logged and kept in
-    the run's failed_reason by the committer)."""
-    if not future.cancelled():
-        future.exception()
-
-
-class RunRecord:
+class RunRecord(RunIngest, RunProcessing, RunCommits):
     """One run: spec, archive, queue, processing task, events, latest surfaces."""
 
     def __init__(
@@ -211,292 +191,6 @@ class RunRecord:
         if self.latest_windows_event is not None:
             response.windows.CopyFrom(self.latest_windows_event.data_windows_wanted)
         return response
-
-    # -- ingest -------------------------------------------------------------------------------
-
-    def check_accepting(self) -> None:
-        if self.failed_reason:
-            raise ServiceError(grpc.StatusCode.FAILED_PRECONDITION,
-                               f"run_id: run {self.run_id} stopped after an archive failure: {self.failed_reason}",
-                               reason="RUN_FAILED")
-        if not self.is_open:
-            raise ServiceError(grpc.StatusCode.FAILED_PRECONDITION,
-                               f"run_id: run {self.run_id} is closed; open a new run to send more slices",
-                               reason="RUN_CLOSED")
-
-    def is_duplicate(self, iteration: int) -> bool:
-        return iteration in self.accepted_iterations
-
-    def duplicate_response(self, iteration: int, received_bytes: int) -> pb.SendSliceResponse:
-        self.slices_duplicate += 1
-        return pb.SendSliceResponse(run_id=self.run_id, iteration=iteration,
-                                    outcome=pb.SendSliceResponse.OUTCOME_DUPLICATE,
-                                    received_bytes=received_bytes, queue_position=-1, parts_received=1,
-                                    parts_expected=1)
-
-    @property
-    def queued_bytes(self) -> int:
-        """Bytes of the slices waiting in this run's queue (the one being processed not counted)."""
-        return sum(item.nbytes for item in self._queue)
-
-    def accept(self, item: QueuedSlice) -> pb.SendSliceResponse:
-        """Queue an assembled slice under the keep-newest policy; never waits."""
-        self.check_accepting()
-        if self.is_duplicate(item.iteration):  # another stream finished the same slice first
-            return self.duplicate_response(item.iteration, item.nbytes)
-        self.accepted_iterations.add(item.iteration)
-        self.slices_received += 1
-        if item.iteration > self.last_received[0]:
-            self.last_received = (item.iteration, item.slice_.time)
-        skipped: list[QueuedSlice] = []
-        while len(self._queue) >= self.settings.queue_depth:
-            skipped.append(self._queue.popleft())
-        self._queue.append(item)
-        self._queue_changed.set()
-        for old in skipped:
-            self.slices_skipped += 1
-            self._submit(skip_emission(self, old, superseded_by=item))
-        return pb.SendSliceResponse(
-            run_id=self.run_id,
-            iteration=item.iteration,
-            outcome=pb.SendSliceResponse.OUTCOME_ACCEPTED,
-            received_bytes=item.nbytes,
-            queue_position=len(self._queue) - 1,
-            skipped_iterations=[old.iteration for old in skipped],
-            parts_received=1,
-            parts_expected=1,
-        )
-
-    async def accept_persisted(self, item: QueuedSlice) -> pb.SendSliceResponse:
-        """Write ``item`` to the run's spool (flushed to the disk), then :meth:`accept` it: an
-        acknowledged slice survives a crash of the server. Duplicates are answered at once."""
-        self.check_accepting()
-        if self.is_duplicate(item.iteration):
-            return self.duplicate_response(item.iteration, item.nbytes)
-        if self.spool is None:
-            return self.accept(item)
-        try:
-            await self._in_archive_thread(self.spool.write, item)
-        except OSError as exc:  # not on disk: not acknowledged (the client keeps the slice)
-            full = exc.errno in (errno.ENOSPC, errno.EDQUOT)
-            raise ServiceError(grpc.StatusCode.RESOURCE_EXHAUSTED if full else grpc.StatusCode.INTERNAL,
-                               f"iteration: slice {item.iteration} could not be written to the run's spool "
-                               f"{self.spool.directory}: {exc.strerror or exc}; it was not accepted",
-                               reason="SPOOL_WRITE_FAILED") from None
-        self.highest_held = max(self.highest_held, item.iteration)
-        crash_points.reached("spool-before-ack")
-        response = self.accept(item)
-        response.persisted = response.outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED
-        return response
-
-    def requeue(self, item: QueuedSlice) -> None:
-        """Queue a slice replayed from the spool after a restart (acknowledged before the crash):
-        counted as received, never skipped on the way in (the spool holds at most a queue's worth)."""
-        self.accepted_iterations.add(item.iteration)
-        self.slices_received += 1
-        self.slices_replayed += 1
-        self.highest_held = max(self.highest_held, item.iteration)
-        if item.iteration > self.last_received[0]:
-            self.last_received = (item.iteration, item.slice_.time)
-        self._queue.append(item)
-        self._queue_changed.set()
-
-    def _log_spool_failure(self, written: asyncio.Future) -> None:
-        if not written.cancelled() and written.exception() is not None:
-            log.error("run %s: spooling an assembled slice failed: %s", self.run_id, written.exception())
-
-    def accept_assembled(self, slice_: Slice | None, nbytes: int,
-                         report: pb.SlicePartsMissing | None) -> pb.SendSliceResponse | None:
-        """Take a slice assembled from parts (parts.PartSink): announce ``report`` (parts missing)
-        first, then queue the slice as :meth:`accept` does; ``slice_`` None: given up, nothing queued."""
-        if report is not None:
-            self._submit(parts_missing_emission(self, report))
-            if slice_ is not None:
-                self.slices_incomplete += 1
-        if slice_ is None:
-            return None
-        item = QueuedSlice(slice_=slice_, nbytes=nbytes, arrival_unix_s=time.time())
-        response = self.accept(item)
-        if self.spool is not None and response.outcome == pb.SendSliceResponse.OUTCOME_ACCEPTED:
-            # Kept whole from now on (its part files go after this write, parts.py). The archive
-            # thread runs jobs in order, so this write precedes the slice's release.
-            self.highest_held = max(self.highest_held, item.iteration)
-            written = asyncio.get_running_loop().run_in_executor(self.archive_thread, self.spool.write, item)
-            written.add_done_callback(self._log_spool_failure)
-        return response
-
-    # -- processing ---------------------------------------------------------------------------
-
-    async def _processor(self) -> None:
-        await drive_pipeline(self._queue, self._queue_changed, self._flight,
-                             depth=max(1, self.options.slices_in_flight), closing=lambda: self._closing,
-                             launch=self._launch, apply=self._apply_or_fail)
-
-    def _launch(self, item: QueuedSlice, overlapping: bool) -> InFlight | None:
-        """Plan ``item`` from what the decision state knows now (slices still in flight not yet
-        applied: their surfaces are seeded from the forecast) and start its finds; None when
-        ``overlapping`` and a plan needs those slices' outcomes (:func:`~.pipeline.may_overlap`)."""
-        started = time.time()
-        try:
-            plans = list(self.planner.plan(self.settings, self.tracks, item.slice_))
-            plans += inner_common_plans(self.settings, plans, self.steering.common_label, self.states, self.displaced)
-        except Exception as exc:  # reported in order, when this slice's turn comes
-            if overlapping:
-                return None
-            failed = asyncio.get_running_loop().create_future()
-            failed.set_exception(exc)
-            return InFlight(item, started, [], failed)
-        if overlapping and not all(may_overlap(plan) for plan in plans):
-            return None
-        additions = []
-        for plan in plans:
-            if plan.label not in self.surface_labels:  # a surface the planner added (e.g. a common horizon)
-                adding = self._adding.get(plan.label)
-                if adding is None:
-                    adding = self._adding[plan.label] = asyncio.ensure_future(self._add_surface(plan))
-                additions.append(adding)
-        return InFlight(item, started, plans, asyncio.ensure_future(self._search(item, plans, additions)))
-
-    async def _add_surface(self, plan: SurfacePlan) -> None:
-        try:
-            await self._in_archive_thread(self.writer.add_surface, plan.label, lmax=plan.lmax or self.settings.lmax)
-            self.surface_labels.append(plan.label)
-            self.states.setdefault(plan.label, SurfaceState(plan.label))
-        finally:
-            self._adding.pop(plan.label, None)
-
-    async def _search(self, item: QueuedSlice, plans: list[SurfacePlan], additions: list) -> list[SurfaceOutcome]:
-        for adding in additions:  # its rows need the surface's archive group
-            await adding
-        # Searches inside a surface of this slice (the inner common MOTS) wait for that surface.
-        return await search_in_order(plans, lambda plan: self._attempt(plan, item), self.displaced)
-
-    async def _apply_or_fail(self, flight: InFlight) -> None:
-        try:
-            await self._apply(flight)
-        except asyncio.CancelledError:
-            raise
-        except Exception as exc:  # a bug in planning must not stop the run; the slice is marked failed
-            log.exception("run %s: processing iteration %d failed", self.run_id, flight.item.iteration)
-            await self._emit(slice_emission(self, flight.item, attempted=0, found=0, started=flight.started,
-                                            error=f"{type(exc).__name__}: {exc}"))
-
-    async def _apply(self, flight: InFlight) -> None:
-        """Record the outcomes of the oldest slice in flight (iteration order), observe, commit."""
-        item, started, plans = flight.item, flight.started, flight.plans
-        outcomes = await flight.finds
-        # The decision state (what the next plan and the steering see) takes the outcomes now;
-        # what GetLatestSurfaces shows moves only when the slice's commit is written.
-        surface_units = []
-        for plan, outcome in zip(plans, outcomes):
-            state = self.states[outcome.label]
-            self.announced.setdefault(outcome.label, announced_view(state))
-            record_outcome(state, outcome, time=item.slice_.time, iteration=item.iteration)
-            surface_units.append(surface_emission(self, item, outcome, plan, view=announced_view(state)))
-        searched = [o for o, plan in zip(outcomes, plans) if plan.search]
-        found = sum(1 for o in searched if o.found)
-        try:
-            # Fits and interpolation of the shift: off the event loop (the state is this run's alone).
-            notices = await asyncio.to_thread(self.steering.observe, item.slice_, plans, outcomes)
-        except Exception as exc:  # tracking must not stop the run; say so instead
-            log.exception("run %s: tracking iteration %d failed", self.run_id, item.iteration)
-            text = f"tracking and guidance not updated for iteration {item.iteration}: {type(exc).__name__}: {exc}"
-            notices = [warning_notice(pb.RunWarning.KIND_TRACKING, "", text)]
-        # Every row of the slice goes to the committer at once (no await in between): one
-        # archive commit per slice, its events announced together after it is written.
-        for unit in surface_units:
-            self._submit(unit)
-        for notice in notices:
-            self._submit(notice_emission(self, item, notice))
-        # Write-behind: the next slice's plan needs only the decision state (updated above), so
-        # the processor goes on while this commit is written; its events are announced after it,
-        # in order. At most _COMMITS_BEHIND slices wait for their commit (bounded memory).
-        done = self._submit(slice_emission(self, item, attempted=len(searched), found=found, started=started)).done
-        done.add_done_callback(_retrieve)
-        self._behind.append(done)
-        while len(self._behind) > _COMMITS_BEHIND or (self._behind and self._behind[0].done()):
-            oldest = self._behind.popleft()
-            await asyncio.wait([oldest])
-        for observer in self.slice_observers:
-            try:
-                observer(self, item, list(outcomes))
-            except Exception:
-                log.exception("run %s: slice observer failed", self.run_id)
-
-    async def _attempt(self, plan: SurfacePlan, item: QueuedSlice) -> SurfaceOutcome:
-        return await search_plan(plan, item.slice_, executor=self.executor, settings=self.settings,
-                                 interpolation_order=self.options.interpolation_order)
-
-    # -- commits ----------------------------------------------------------------------------------
-
-    def publish(self, fill: Callable[[pb.RunEvent], None], *, time_m: float = 0.0, iteration: int = 0,
-                attrs: dict | None = None,
-                rows: Callable[[int, float, pb.RunEvent], dict[str, list[dict]]] | None = None) -> asyncio.Future:
-        """Emit an event of another kind (the hook for custom tracking and link records).
-
-        ``fill(event)`` sets the event's kind (e.g. a guidance message); the event gets the next
-        seq and is announced after the commit that also writes ``attrs`` to the archive root and
-        ``rows(seq, archived_unix_s, event)`` (group path -> rows), if given.
-        Returns a future resolving to the announced event. Call on the event loop thread.
-        """
-        def build(seq: int, now: float) -> Committed:
-            event = pb.RunEvent(seq=seq, run_id=self.run_id, time_m=time_m, iteration=iteration)
-            fill(event)
-            return Committed(event, attrs=dict(attrs or {}), group_rows=rows(seq, now, event) if rows is not None else {})
-
-        return self._submit(Emission(build)).done
-
-    def _submit(self, emission: Emission) -> Emission:
-        self._pending.append(emission)
-        self._pending_changed.set()
-        return emission
-
-    async def _emit(self, emission: Emission) -> pb.RunEvent:
-        """Commit one event and wait until it is archived and announced."""
-        return await self._submit(emission).done
-
-    async def _in_archive_thread(self, fn, *args, **kwargs):
-        loop = asyncio.get_running_loop()
-        return await loop.run_in_executor(self.archive_thread, lambda: fn(*args, **kwargs))
-
-    async def _committer(self) -> None:
-        while True:
-            while not self._pending:
-                self._pending_changed.clear()
-                await self._pending_changed.wait()
-            batch, self._pending = self._pending, []
-            merged = merge_batch(batch, first_seq=self.log.next_seq, now=time.time())
-            try:
-                await self._in_archive_thread(self.writer.commit, slice_rows=merged.slice_rows,
-                                              surface_rows=merged.surface_rows, group_rows=merged.group_rows,
-                                              attrs=merged.attrs)
-            except asyncio.CancelledError:
-                for emission in batch:
-                    emission.done.cancel()
-                raise
-            except Exception as exc:
-                # Nothing of this batch is announced: it is not archived. Stop taking slices.
-                log.exception("run %s: archive commit failed", self.run_id)
-                self.failed_reason = f"{type(exc).__name__}: {exc}"
-                for emission in batch:
-                    if not emission.done.done():
-                        emission.done.set_exception(ServiceError(grpc.StatusCode.INTERNAL, self.failed_reason,
-                                                                            reason="ARCHIVE_FAILED"))
-                continue
-            if self.spool is not None and merged.slice_rows:
-                # The slices' fates are archived: their spool files may go.
-                crash_points.reached("commit-before-release")
-                done = [int(row["iteration"]) for row in merged.slice_rows if "iteration" in row]
-                self.highest_held = max([self.highest_held, *done])
-                await self._in_archive_thread(self.spool.release, done)
-            emitted = time.time()
-            for emission, event in zip(batch, merged.events):
-                event.emit_time_unix_s = emitted
-                if emission.apply is not None:
-                    emission.apply(event)
-                self.log.append(event)
-                if not emission.done.done():
-                    emission.done.set_result(event)
 
     # -- lifecycle ------------------------------------------------------------------------------
 

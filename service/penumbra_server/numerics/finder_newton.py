@@ -1,0 +1,148 @@
+"""Newton's method on the harmonic coefficients of h: the Jacobian of the Galerkin-projected
+Theta from the pointwise linearisation, and the damped Newton iteration (backtracking on the
+projected residual). The method is described in finder.py's docstring.
+"""
+
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+
+from .excision import ExcisedDataError
+from .expansion import expansion_from, geometry_terms, level_set_derivatives
+from .find_results import (
+    CONVERGED,
+    CONVERGED_AT_TRUNCATION,
+    DIVERGED,
+    INVALID_GEOMETRY,
+    LINE_SEARCH_FAILED,
+    MAX_ITERATIONS,
+    FinderSettings,
+)
+from .finder_evaluation import _MAX_SHORTENINGS, _diverged, _evaluate, _Evaluated, _projected_rms, _Run
+from .slices import SliceError
+from .surfaces import AngularGrid, Surface
+
+def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
+    """d(projected Theta)/d(coefficients), square ((lmax+1)^2).
+
+    Theta at a node depends on h, its first and second angular derivatives there and on the
+    fields there. h moves the point, so its column uses the interpolant shifted along n; h_t and
+    h_p enter nonlinearly (central differences, one batched evaluation on the iterate's geometry
+    terms); h_tt, h_tp and h_pp enter linearly through (gamma^ij - s^i s^j) d_i d_j F / u alone,
+    so their columns are exact: d_i d_j F changes by -grad(theta)_i grad(theta)_j per unit h_tt
+    and likewise for the others.
+    """
+    rd, geo = ev.rd, ev.geometry
+    scale = float(np.mean(rd.h))
+    # h: moves the point too, so the fields come from the interpolant shifted along n.
+    try:
+        geo_h = ev.shifted()
+    except (ExcisedDataError, SliceError):
+        geo_h = geo  # at an excision boundary or next to bad data: as at the data edge
+    if not geo_h.covered.all():
+        geo_h = geo  # at the data edge: drop the field variation rather than fail
+    terms_h = ev.terms if geo_h is geo else geometry_terms(geo_h)
+    eps_first = 1e-5 * scale
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift), ev.frame)
+        d_h = (expansion_from(ls_h.dF, ls_h.ddF, terms_h).theta - ev.theta) / ev.shift
+        # The four shapes h_t +- eps, h_p +- eps on the same directions and geometry, batched.
+        step = np.array([eps_first, -eps_first, 0.0, 0.0])[:, None]
+        variants = rd.replace(h_t=rd.h_t + step, h_p=rd.h_p + step[[2, 3, 0, 1]])
+        ls = level_set_derivatives(variants, ev.frame)
+        theta = expansion_from(ls.dF, ls.ddF, ev.terms).theta
+        d_t = (theta[0] - theta[1]) / (2 * eps_first)
+        d_p = (theta[2] - theta[3]) / (2 * eps_first)
+        _, e_t, e_p = ev.frame
+        grad_t = e_t / rd.h[:, None]
+        grad_p = e_p / (rd.h * np.sin(rd.theta))[:, None]
+        s_up = ev.normal_up
+        proj = ev.terms.ginv - s_up[:, :, None] * s_up[:, None, :]
+        proj_t = np.einsum("nij,nj->ni", proj, grad_t)
+        d_tt = -np.einsum("ni,ni->n", proj_t, grad_t) / ev.u
+        d_tp = -2.0 * np.einsum("ni,ni->n", proj_t, grad_p) / ev.u
+        d_pp = -np.einsum("ni,nij,nj->n", grad_p, proj, grad_p) / ev.u
+    stacked, projector = _jacobian_bases(run.grid)
+    local = np.stack([d_h, d_t, d_p, d_tt, d_tp, d_pp], axis=1)  # (N, 6): dTheta / d(h, h_t, ..., h_pp)
+    J_nodes = np.matmul(local[:, None, :], stacked)[:, 0, :]  # (N, n_coef)
+    return projector @ J_nodes
+
+@functools.lru_cache(maxsize=16)
+def _jacobian_bases(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray]:
+    """(N, 6, n_coef) Y and its derivatives (theta, phi, theta theta, theta phi, phi phi) node by
+    node, and the projection (n_coef, N) = Y^T diag(weights), read-only. Memoised: a pure
+    function of the grid, which :func:`angular_grid` itself memoises."""
+    B = grid.basis
+    stacked = np.ascontiguousarray(np.stack([B.Y, B.d_theta, B.d_phi, B.d_theta_theta, B.d_theta_phi, B.d_phi_phi], axis=1))
+    projector = np.ascontiguousarray((grid.weights[:, None] * B.Y).T)
+    stacked.setflags(write=False)
+    projector.setflags(write=False)
+    return stacked, projector
+
+def _newton_step(run: _Run, ev: _Evaluated) -> np.ndarray | None:
+    """The Newton step in the coefficients, None when the linearisation is not finite."""
+    J = _jacobian(run, ev)
+    rhs = run.grid.project(ev.theta)
+    if not (np.all(np.isfinite(J)) and np.all(np.isfinite(rhs))):
+        return None
+    try:
+        step = np.linalg.solve(J, -rhs)
+    except np.linalg.LinAlgError:
+        step = np.linalg.lstsq(J, -rhs, rcond=None)[0]
+    return step if np.all(np.isfinite(step)) else None
+
+
+def _newton(run: _Run, guess: Surface, settings: FinderSettings) -> tuple[int, _Evaluated | None, int, float]:
+    """(status, last evaluated iterate, iterations, projected residual)."""
+    limit = settings.max_radius_factor * max(guess.mean_radius, 1e-300)
+    if _diverged(guess, run, limit):
+        return DIVERGED, None, 0, float("nan")
+    ev = _evaluate(run, guess)
+    if ev is None:
+        return run.last_failure, None, 0, float("nan")
+    proj = _projected_rms(run, ev.theta)
+    for it in range(1, settings.max_iterations + 1):
+        if run.max_hist[-1] <= settings.tolerance:
+            return CONVERGED, ev, it - 1, proj
+        if proj <= settings.tolerance:
+            return CONVERGED_AT_TRUNCATION, ev, it - 1, proj
+        step = _newton_step(run, ev)
+        if step is None:
+            return INVALID_GEOMETRY, ev, it, proj
+        # Backtrack on the projected residual: it is what the Galerkin Newton step reduces; the
+        # node residual also holds the part beyond l_max, which no step can remove. A trial that
+        # cannot be evaluated at all (any reason) is shortened like one that does not reduce it.
+        lam = 1.0
+        accepted = None
+        failure = LINE_SEARCH_FAILED
+        for _ in range(_MAX_SHORTENINGS):
+            trial = Surface(ev.surface.centre, ev.surface.lmax, ev.surface.coefficients + lam * step)
+            if _diverged(trial, run, limit):
+                failure = DIVERGED
+                lam *= 0.5
+                continue
+            cand = _evaluate(run, trial)
+            if cand is None:
+                failure = run.last_failure
+                lam *= 0.5
+                continue
+            cand_proj = _projected_rms(run, cand.theta)
+            if cand_proj < (1.0 - 1e-4 * lam) * proj or cand_proj <= settings.tolerance:
+                accepted = cand
+                break
+            # Rejected trial: drop its history entry so the history follows accepted iterates.
+            failure = LINE_SEARCH_FAILED
+            run.max_hist.pop()
+            run.rms_hist.pop()
+            lam *= 0.5
+        if accepted is None:
+            return failure, ev, it, proj
+        ev = accepted
+        proj = cand_proj
+    if run.max_hist[-1] <= settings.tolerance:
+        return CONVERGED, ev, settings.max_iterations, proj
+    if proj <= settings.tolerance:
+        return CONVERGED_AT_TRUNCATION, ev, settings.max_iterations, proj
+    return MAX_ITERATIONS, ev, settings.max_iterations, proj

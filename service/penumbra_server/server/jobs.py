@@ -311,8 +311,8 @@ def _found(job: SurfaceJob, kind: str, result, quantities: dict, message: str, t
         message = (f"{message}; solved at l_max {solved.lmax} (raised from {job.lmax}: not resolved "
                    f"at {job.lmax}), measured there, coefficients reported up to l = {job.lmax}")
     measured_in = result.geometry if result.geometry is not None else job.data
-    spin_quantities, notes = spin_quantities(solved, measured_in, job.interpolation_order)
-    quantities.update(spin_quantities)
+    spin, notes = spin_quantities(solved, measured_in, job.interpolation_order)
+    quantities.update(spin)
     stability, stability_notes = stability_quantities(solved, measured_in, job.interpolation_order)
     quantities.update(stability)
     notes.extend(stability_notes)

@@ -31,7 +31,8 @@ from ..numerics.shift_sampling import spacing_near
 from ..numerics.slices import Slice
 from ..tracking import data_windows as rule
 from ..tracking.common import CommonSearchAdvice, common_horizon_watch
-from ..tracking.forecast import Forecast, forecast_pair, forecast_polynomial
+from ..tracking.forecast import Forecast, forecast_polynomial
+from ..tracking.orbit_forecast import forecast_pair
 from ..tracking.guidance import RefinementGuidance, guidance_times, refinement_guidance
 from ..tracking.motion import SPEED_SAFETY, UNKNOWN_SPEED, MotionBound, forecast_speed_bound, orbit_growth_cap
 from ..tracking.windows import DataWindow, merge_overlapping_windows, window_coverage

@@ -12,14 +12,8 @@ from .common import (
     common_neck_point,
     common_surface_guess,
 )
-from .forecast import (
-    Forecast,
-    ForecastError,
-    centre_of_mass,
-    forecast_bodies,
-    forecast_pair,
-    forecast_polynomial,
-)
+from .forecast import Forecast, ForecastError, centre_of_mass, forecast_polynomial
+from .orbit_forecast import forecast_bodies, forecast_pair
 from .guidance import (
     BodyGuidance,
     GuidanceError,

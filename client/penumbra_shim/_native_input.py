@@ -54,7 +54,7 @@ def _items(text: str, what: str, keys: tuple[str, ...]):
 _INT_KEYS = ("lmax", "lmax_common", "lmax_cap", "max_iterations", "queue_depth", "nesting_depth")
 _FLOAT_KEYS = ("tolerance", "points_across_horizon", "steering_interval", "mass_scale_solar_masses",
                "part_deadline_s")
-_FLAG_KEYS = ("crop_to_windows",)
+_FLAG_KEYS = ("crop_to_windows", "formation_forecast", "inner_common")
 _CHOICE_KEYS = {"symmetry": ("none", "bitant"), "shift_gauge": ("moving_puncture", "other")}
 _SPEC_KEYS = ("variable_set", "body", "name") + _INT_KEYS + _FLOAT_KEYS + _FLAG_KEYS + tuple(_CHOICE_KEYS)
 
@@ -130,6 +130,8 @@ def parse_spec(text: str) -> tuple[RunSpec, dict]:
             symmetry=values.get("symmetry", "none"),
             shift_gauge=values.get("shift_gauge"),
             part_deadline_s=values.get("part_deadline_s", 0.0),
+            formation_forecast=values.get("formation_forecast", True),
+            inner_common=values.get("inner_common", True),
         )
     except ValueError as exc:
         raise BridgeError("INVALID_ARGUMENT", f"spec: {exc}") from None

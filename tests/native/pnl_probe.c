@@ -71,6 +71,8 @@ static int bad_input(const char *target)
     snprintf(spec, sizeof spec, "variable_set=adm; lmax=8; lmax_cap=12; %s", body); /* below lmax_common 16 */
     report("spec_lmax_cap_below_common", pnl_open_run(connection, spec, &run), 0);
     report("spec_no_variable_set", pnl_open_run(connection, body, &run), 0);
+    snprintf(spec, sizeof spec, "variable_set=adm; inner_common=yes; %s", body);
+    report("spec_bad_flag", pnl_open_run(connection, spec, &run), 0);
     report("spec_null", pnl_open_run(connection, NULL, &run), 0);
     report("attach_unknown_run", pnl_attach_run(connection, "run-does-not-exist", &run), 0);
     report("attach_null_token", pnl_attach_run_with_token(connection, "run-does-not-exist", NULL, &run), 0);
@@ -81,7 +83,7 @@ static int bad_input(const char *target)
            pnl_connect_with(target, 30.0, "token_file=/nonexistent/penumbra.token", &other), 0);
     report("options_token_twice", pnl_connect_with(target, 30.0, "token=abc;token_file=/etc/hostname", &other), 0);
     printf("other_is_null=%d\n", other == NULL);
-    snprintf(spec, sizeof spec, "variable_set=adm; name=probe; lmax=4; lmax_cap=20; %s", body);
+    snprintf(spec, sizeof spec, "variable_set=adm; name=probe; lmax=4; lmax_cap=20; inner_common=0; %s", body);
     status = pnl_open_run(connection, spec, &run);
     report("open_run", status, 0);
     if (status != PNL_OK)

@@ -112,6 +112,7 @@ BAD_INPUT = {
     "spec_lmax_cap_too_high": ("PNL_INVALID_ARGUMENT", ["finder.lmax_cap", "2..32", "40"]),
     "spec_lmax_cap_below_common": ("PNL_INVALID_ARGUMENT", ["spec.finder.lmax_cap", "12"]),
     "spec_no_variable_set": ("PNL_INVALID_ARGUMENT", ["spec.variable_set"]),
+    "spec_bad_flag": ("PNL_INVALID_ARGUMENT", ["spec.inner_common", "0 or 1", "'yes'"]),
     "spec_null": ("PNL_INVALID_ARGUMENT", ["spec"]),
     "attach_unknown_run": ("PNL_NOT_FOUND", ["run-does-not-exist"]),
     "guidance_before_any": ("PNL_NOT_FOUND", ["no guidance"]),
@@ -162,10 +163,13 @@ def test_bad_input_gives_invalid_argument_naming_the_field(build, server):
     link = dict(item.split("=") for item in re.search(r"^link (.*)$", result.stdout, re.M)[1].split())
     assert link["state"] == "1" and link["dropped"] == "0" and link["queued"] == "0", link
     assert int(link["submitted"]) == int(link["sent"]) + int(link["refused"]) >= 2, link
-    # The spec's lmax_cap=20 reached the server (echoed in the run's spec).
+    # The spec's lmax_cap=20 and inner_common=0 reached the server (echoed in the run's spec);
+    # formation_forecast, not given, keeps its default (on).
     run_id = re.search(r"^run_id: (\S+)$", result.stdout, re.M)[1]
     with ps.connect(server.address, deadline_s=20.0) as client:
-        assert client.get_run(run_id).spec.finder.lmax_cap == 20
+        echoed = client.get_run(run_id).spec
+        assert echoed.finder.lmax_cap == 20
+        assert echoed.inner_common is False and echoed.formation_forecast is True
 
 
 def test_a_python_without_the_shim_is_a_status_not_a_crash(build):

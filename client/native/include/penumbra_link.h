@@ -238,6 +238,8 @@ int pnl_disconnect(pnl_connection *connection);
  *   queue_depth=4                points_across_horizon=30  nesting_depth=6  steering_interval=4
  *   symmetry=none|bitant         shift_gauge=moving_puncture|other (unset: shift not used)
  *   part_deadline_s=0 (server default)  mass_scale_solar_masses=0  crop_to_windows=0|1
+ *   formation_forecast=1|0 (forecast when a pair's common horizon forms)
+ *   inner_common=1|0 (once the common horizon is found, follow the inner common MOTS too)
  * Unknown keys and bad values give PNL_INVALID_ARGUMENT naming the key.
  * Waits at most the connection's timeout: PNL_OK once the run is open; PNL_PENDING with a usable
  * handle in *out if the server has not answered by then (see "Never blocking" above); the

@@ -146,6 +146,12 @@ class NodeStore:
             self._base_slot_array = np.full(int(np.prod(self.shape)), -1, dtype=np.int32)
         return self._base_slot_array
 
+    @property
+    def direct_capable(self) -> bool:
+        """Whether points may be interpolated straight from the raw arrays
+        (:mod:`.direct_stencils`): conformal data, no excision declared."""
+        return self.variable_set is not VariableSet.ADM and not self._spheres and self._mask is None
+
     @classmethod
     def for_patch(cls, slice_: Slice, index: int, order: int) -> "NodeStore":
         return cls(slice_, index, order)
@@ -171,6 +177,18 @@ class NodeStore:
                 self._fill(nodes)
             slots = np.take(self._slot, flat)
         return slots
+
+    def unprepared_stencils(self, flat: np.ndarray) -> tuple[np.ndarray, float]:
+        """For interpolation stencils ``flat`` (m, order^3): which reach a node not yet prepared
+        (m,) bool, and the distinct such nodes as a share of those stencils' nodes (1: no node
+        shared between them, small: heavily overlapping stencils)."""
+        missing = np.take(self._slot, flat) < 0
+        touched = missing.any(axis=1)
+        if not touched.any():
+            return touched, 0.0
+        nodes = _distinct(flat[missing], self._slot)
+        self._slot[nodes] = -1  # undo _distinct's scratch marks
+        return touched, nodes.size / (flat.shape[1] * np.count_nonzero(touched))
 
     #: Fill whole stencils when at least this share of the touched stencils' nodes is missing
     #: (sparse stencils: a fine grid, or a surface that moved); otherwise node by node. Measured:
@@ -248,10 +266,13 @@ class NodeStore:
         need = self.count + extra
         if need <= self.values.shape[0]:
             return
-        capacity = max(need + need // 4, 4096)  # growth is cheap (remapped), zero-filling is not
-        # In-place reallocation: large blocks are remapped by the allocator, not copied. The store
-        # hands out no views that outlive a call (np.take copies; the sparse sums read a view of
-        # the made rows during one product, with no fill in between).
+        # Doubling: a find's second batch of nodes (the first step moves the surface off the
+        # guess's stencils) usually fits without another reallocation (measured at r/dx = 50:
+        # each reallocation zero-fills, and may copy, tens of MiB). In place: large blocks are
+        # remapped by the allocator, and callers holding ``values`` see the grown array. The
+        # store hands out no views that outlive a call (np.take copies; the sparse sums read a
+        # view of the made rows during one product, with no fill in between).
+        capacity = max(2 * need, 4096)
         self.values.resize((capacity, self.n_values), refcheck=False)
         self.flags.resize(capacity, refcheck=False)
 

@@ -17,7 +17,7 @@ import numpy as np
 
 from .excision import ExcisedDataError
 from .expansion import expansion_at
-from .interpolation import SUPPORTED_ORDERS, grid_geometry
+from .interpolation import SUPPORTED_ORDERS, GridGeometry, grid_geometry
 from .rays import ray_crossings
 from .slices import SliceError
 from .sources import TrackedSource
@@ -35,7 +35,10 @@ def _theta_on_check_nodes(source, surface: Surface) -> np.ndarray | None:
     check = angular_grid(check_lmax(surface.lmax))
     rd = surface.derivatives(basis_on_grid(surface.lmax, check.lmax), check.theta, check.phi)
     try:
-        geo = source(surface.points(rd))
+        # Evaluated once or twice per find: unprepared stencils are read from the raw arrays
+        # rather than prepared node by node (grid sources; other sources take no keyword).
+        points = surface.points(rd)
+        geo = source(points, prepare=False) if isinstance(source, (TrackedSource, GridGeometry)) else source(points)
     except (ExcisedDataError, SliceError):
         return None
     if not geo.covered.all():

@@ -20,7 +20,7 @@ from .find_results import (
     MAX_ITERATIONS,
     FinderSettings,
 )
-from .finder_evaluation import _MAX_SHORTENINGS, _diverged, _evaluate, _Evaluated, _projected_rms, _Run
+from .finder_evaluation import _MAX_SHORTENINGS, _diverged, _evaluate, _Evaluated, _projected_rms, _Run, _tensors
 from .slices import SliceError
 from .surfaces import AngularGrid, Surface
 
@@ -46,12 +46,13 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     terms_h = ev.terms if geo_h is geo else geometry_terms(geo_h)
     eps_first = 1e-5 * scale
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift), ev.frame)
+        tensors = _tensors(run.grid)
+        ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift), ev.frame, tensors)
         d_h = (expansion_from(ls_h.dF, ls_h.ddF, terms_h).theta - ev.theta) / ev.shift
         # The four shapes h_t +- eps, h_p +- eps on the same directions and geometry, batched.
         step = np.array([eps_first, -eps_first, 0.0, 0.0])[:, None]
         variants = rd.replace(h_t=rd.h_t + step, h_p=rd.h_p + step[[2, 3, 0, 1]])
-        ls = level_set_derivatives(variants, ev.frame)
+        ls = level_set_derivatives(variants, ev.frame, tensors)
         theta = expansion_from(ls.dF, ls.ddF, ev.terms).theta
         d_t = (theta[0] - theta[1]) / (2 * eps_first)
         d_p = (theta[2] - theta[3]) / (2 * eps_first)

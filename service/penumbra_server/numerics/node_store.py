@@ -250,13 +250,14 @@ class NodeStore:
         new = new[self._slot[flat[new]] == order]
         q = new.size
         self._grow(q)
-        values = columns[:, new].T
-        flags = np.where(np.isfinite(values).all(axis=1), 0, self.NON_FINITE).astype(np.uint8)
+        # Finiteness on the value-major columns (contiguous), before the transposing copy.
+        finite = np.isfinite(columns).all(axis=0)[new]
+        flags = np.where(finite, 0, self.NON_FINITE).astype(np.uint8)
         nodes = flat[new]
         if self._spheres or self._mask is not None:
             excised = self._excised(np.stack(np.unravel_index(nodes, self.shape), axis=1), self._taps())
             flags[excised] = self.EXCISED
-        self.values[self.count: self.count + q] = values
+        self.values[self.count: self.count + q] = columns[:, new].T
         self.flags[self.count: self.count + q] = flags
         self.any_flagged |= bool(flags.any())
         self._slot[nodes] = np.arange(self.count, self.count + q, dtype=np.int32)

@@ -123,7 +123,10 @@ def geometry_terms(geometry: PointGeometry) -> GeometryTerms:
     """:class:`GeometryTerms` of the geometry at N points."""
     ginv = inverse_3x3(geometry.gamma)
     dg = geometry.dgamma  # [n, k, i, j] = d_k gamma_ij
-    contracted = np.einsum("nij,nilj->nl", ginv, dg) - 0.5 * np.einsum("nij,nlij->nl", ginv, dg)
+    # C_l = sum_ij gamma^ij (d_i gamma_lj - d_l gamma_ij / 2): one batched (3 x 9) (9) product.
+    n = dg.shape[0]
+    combined = np.swapaxes(dg, 1, 2) - 0.5 * dg  # [n, l, i, j]
+    contracted = (combined.reshape(n, 3, 9) @ ginv.reshape(n, 9, 1))[:, :, 0]
     trace_K = np.einsum("nij,nij->n", ginv, geometry.K)
     return GeometryTerms(ginv, dg, contracted, trace_K, geometry.K)
 
@@ -139,9 +142,12 @@ def expansion_from(dF: np.ndarray, ddF: np.ndarray, terms: GeometryTerms) -> Exp
     s_up = F_up / u[..., None]
     proj = ginv - s_up[..., :, None] * s_up[..., None, :]
     term_hess = np.einsum("...nij,...nij->...n", proj, ddF) / u
-    term_dg = np.einsum("...ni,...na,...nb,...niab->...n", F_up, F_up, F_up, dg) / (2.0 * u**3)
+    # F^i F^a F^b d_i gamma_ab as (d gamma (3 x 9)) (F^a F^b (9)), then the dot with F^i: batched
+    # products instead of one four-operand einsum (measured twice as fast at 392 points).
+    pairs = (F_up[..., :, None] * F_up[..., None, :]).reshape(F_up.shape[:-1] + (9, 1))
+    term_dg = np.sum((dg.reshape(dg.shape[:-3] + (3, 9)) @ pairs)[..., 0] * F_up, axis=-1) / (2.0 * u**3)
     term_gamma = np.einsum("...nl,...nl->...n", F_up, terms.contracted) / u
-    Kss = np.einsum("...nij,...ni,...nj->...n", terms.K, s_up, s_up)
+    Kss = np.einsum("...ni,...ni->...n", np.einsum("...nij,...nj->...ni", terms.K, s_up), s_up)
     theta = term_hess + term_dg - term_gamma - terms.trace_K + Kss
     return ExpansionTerms(theta, s_up, u)
 

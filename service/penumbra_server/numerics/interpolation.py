@@ -37,7 +37,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import sparse
 
-from .direct_stencils import direct_values
+from .direct_stencils import direct_values, direct_where_unprepared
 from .excision import ExcisedDataError
 from .geometry import PointGeometry, physical_from_conformal
 from .node_store import NodeStore, centred_difference_weights, field_layout
@@ -208,7 +208,7 @@ class GridGeometry:
         lower = np.zeros(n, dtype=bool)  # points handed to the next lower order
         for store, sel, flat, weights, w, s, corners in self.stencils(points):
             if not prepare and store.direct_capable:
-                direct = _direct_where_unprepared(store, flat, corners, w)
+                direct = direct_where_unprepared(store, flat, corners, w)
                 if direct is not None:
                     done, direct_values_ = direct
                     values[sel[done]] = direct_values_
@@ -306,34 +306,6 @@ class GridGeometry:
         with np.errstate(divide="ignore", invalid="ignore"):
             gamma, dgamma, K = physical_from_conformal(chi, dchi, gamma_tilde, dgamma_tilde, A_tilde, plain[:, 6])
         return PointGeometry(gamma, dgamma, K, covered, source)
-
-
-#: Read single-use points' stencils from the patch arrays when at least this share of their nodes
-#: is missing (distinct missing nodes over stencils x order^3). Measured (order 6): a point read
-#: directly costs about 100 microseconds, a node prepared about 1, so direct reading wins once
-#: the stencils share their nodes less than about 2.5 times.
-_DIRECT_SHARE = 0.4
-
-
-def _direct_where_unprepared(store: NodeStore, flat: np.ndarray, corners: np.ndarray, w: np.ndarray):
-    """(mask of the points evaluated, their values) for the points whose stencils reach nodes
-    not yet prepared, straight from the patch arrays; None when every node is prepared or the
-    stencils overlap so much that preparing their nodes is cheaper. Points
-    whose direct values are not finite are left to the node path (which flags and reports
-    them)."""
-    unprepared, share = store.unprepared_stencils(flat)
-    if share < _DIRECT_SHARE:
-        return None  # none missing, or dense stencils: preparing their shared nodes is cheaper
-    picked = np.nonzero(unprepared)[0]
-    # Neighbouring stencils read neighbouring memory: visit them in the patch's memory order.
-    picked = picked[np.argsort(flat[picked, 0], kind="stable")]
-    found = direct_values(store, corners[picked], w[picked])
-    finite = np.isfinite(found).all(axis=1)
-    done = np.zeros(flat.shape[0], dtype=bool)
-    done[picked[finite]] = True
-    out = np.empty((flat.shape[0], found.shape[1]))
-    out[picked] = found
-    return done, out[done]
 
 
 @functools.lru_cache(maxsize=4)

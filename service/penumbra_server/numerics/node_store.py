@@ -267,13 +267,10 @@ class NodeStore:
         need = self.count + extra
         if need <= self.values.shape[0]:
             return
-        # Doubling: a find's second batch of nodes (the first step moves the surface off the
-        # guess's stencils) usually fits without another reallocation (measured at r/dx = 50:
-        # each reallocation zero-fills, and may copy, tens of MiB). In place: large blocks are
-        # remapped by the allocator, and callers holding ``values`` see the grown array. The
-        # store hands out no views that outlive a call (np.take copies; the sparse sums read a
-        # view of the made rows during one product, with no fill in between).
-        capacity = max(2 * need, 4096)
+        capacity = max(need + need // 4, 4096)  # growth is cheap (remapped), zero-filling is not
+        # In-place reallocation: large blocks are remapped by the allocator, not copied. The store
+        # hands out no views that outlive a call (np.take copies; the sparse sums read a view of
+        # the made rows during one product, with no fill in between).
         self.values.resize((capacity, self.n_values), refcheck=False)
         self.flags.resize(capacity, refcheck=False)
 

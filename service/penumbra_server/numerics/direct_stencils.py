@@ -11,11 +11,12 @@ is read once per point in three boxes (the interpolation cube widened by g along
 runs of neighbouring memory, as the stencil fill reads them) and contracted axis by axis with
 the Lagrange weights, and along the widened axis with D.
 
-Worth it where a point's stencil nodes are mostly new and few other stencils share them (fine
-grids, where a node row costs about as much as 15 direct point evaluations are worth; check node
-sets evaluated once or twice). Conformal variable sets only (ADM data are decomposed at the nodes,
-a nonlinear map), and only where no excision is declared; the caller keeps the node path for
-everything else.
+Worth it for points evaluated once or twice (the finder's check nodes) whose stencils share few
+nodes (fine grids): a point read directly costs about as much as 60 to 100 nodes prepared, a
+stencil has order^3 of them. Newton's iterates keep the prepared rows: they are evaluated several
+times, and the sparse product on prepared rows is much cheaper than a direct contraction.
+Conformal variable sets only (ADM data are decomposed at the nodes, a nonlinear map), and only
+where no excision is declared; the caller keeps the node path for everything else.
 
 Shapes: m points, p = order, L = p + 2 g; values per point in the node rows' layout (the 7
 differentiated fields, their x, y, z derivatives field-major, the 7 plain fields).

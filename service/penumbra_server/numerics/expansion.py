@@ -28,6 +28,7 @@ from .surfaces import RadiusDerivatives, unit_vectors
 __all__ = [
     "LevelSetDerivatives",
     "level_set_derivatives",
+    "angular_tensors",
     "ExpansionTerms",
     "GeometryTerms",
     "geometry_terms",
@@ -44,44 +45,54 @@ class LevelSetDerivatives:
     ddF: np.ndarray
 
 
-def level_set_derivatives(rd: RadiusDerivatives, frame=None) -> LevelSetDerivatives:
+def level_set_derivatives(rd: RadiusDerivatives, frame=None, tensors=None) -> LevelSetDerivatives:
     """d_i F and d_i d_j F at the surface points described by ``rd`` (where r = h).
 
     Uses d_i r = n_i, d_i theta = e_theta_i / r, d_i phi = e_phi_i / (r sin theta) and their
     derivatives; the nodes never sit on a pole, so 1 / sin(theta) is finite. The angles are (N,);
     h and its derivatives may carry leading axes (..., N) (several shapes on the same directions),
     giving dF (..., N, 3) and ddF (..., N, 3, 3). ``frame``: :func:`unit_vectors` at the angles,
-    when the caller already has them.
+    ``tensors``: :func:`angular_tensors` there, when the caller already has them.
     """
     n, et, ep = unit_vectors(rd.theta, rd.phi) if frame is None else frame
-    r = rd.h
-    st, ct = np.sin(rd.theta), np.cos(rd.theta)
-    inv_r = 1.0 / r
-    inv_rs = inv_r / st
-    grad_t = et * inv_r[..., None]
-    grad_p = ep * inv_rs[..., None]
-    dF = n - rd.h_t[..., None] * grad_t - rd.h_p[..., None] * grad_p
+    flat, shaped = angular_tensors(rd.theta, (n, et, ep)) if tensors is None else tensors
+    inv_r = 1.0 / rd.h
+    inv_rs = inv_r / np.sin(rd.theta)
+    dF = n - (rd.h_t * inv_r)[..., None] * et - (rd.h_p * inv_rs)[..., None] * ep
+    # d_i d_j F = (delta_ij - n_i n_j) / r - (h_t T_t + h_p T_p + h_tt T_tt + h_tp T_tp + h_pp T_pp) / r^2
+    # with the angular tensors T of angular_tensors: one product for all five terms.
+    coefficients = np.stack(np.broadcast_arrays(rd.h_t, rd.h_p, rd.h_tt, rd.h_tp, rd.h_pp), axis=-1)  # (..., N, 5)
+    summed = (coefficients[..., None, :] @ shaped).reshape(coefficients.shape[:-1] + (3, 3))
+    ddF = flat * inv_r[..., None, None] - summed * (inv_r**2)[..., None, None]
+    return LevelSetDerivatives(dF, ddF)
+
+
+def angular_tensors(theta: np.ndarray, frame) -> tuple[np.ndarray, np.ndarray]:
+    """The shape-independent parts of d_i d_j F at directions (theta (N,), ``frame`` the
+    :func:`unit_vectors` there): (N, 3, 3) delta_ij - n_i n_j (the Hessian of r times r), and
+    (N, 5, 9) the tensors multiplying -h_t / r^2, -h_p / r^2, -h_tt / r^2, -h_tp / r^2 and
+    -h_pp / r^2: the Hessians of theta and phi times r^2 (cot(theta) e_p e_p - sym(e_t, n) and
+    -sym(sin theta n + cos theta e_t, e_p) / sin^2 theta) and the products of the gradients of
+    theta and phi times r^2 (e_t e_t, sym(e_t, e_p) / sin theta, e_p e_p / sin^2 theta)."""
+    n, et, ep = frame
+    st, ct = np.sin(theta), np.cos(theta)
 
     def outer(a, b):
-        return a[..., :, None] * b[..., None, :]
+        return a[:, :, None] * b[:, None, :]
 
     def sym(a, b):
         return outer(a, b) + outer(b, a)
 
-    eye = np.eye(3)
-    hess_r = (eye - outer(n, n)) * inv_r[..., None, None]
-    hess_t = (-sym(et, n) + (ct / st)[:, None, None] * outer(ep, ep)) * (inv_r**2)[..., None, None]
+    flat = np.eye(3) - outer(n, n)
     rad_mix = st[:, None] * n + ct[:, None] * et  # d e_phi / d phi = -(this)
-    hess_p = -sym(rad_mix, ep) * (inv_r**2 / st**2)[..., None, None]
-    ddF = (
-        hess_r
-        - rd.h_t[..., None, None] * hess_t
-        - rd.h_p[..., None, None] * hess_p
-        - rd.h_tt[..., None, None] * outer(grad_t, grad_t)
-        - rd.h_tp[..., None, None] * sym(grad_t, grad_p)
-        - rd.h_pp[..., None, None] * outer(grad_p, grad_p)
-    )
-    return LevelSetDerivatives(dF, ddF)
+    shaped = np.stack([
+        -sym(et, n) + (ct / st)[:, None, None] * outer(ep, ep),
+        -sym(rad_mix, ep) / (st**2)[:, None, None],
+        outer(et, et),
+        sym(et, ep) / st[:, None, None],
+        outer(ep, ep) / (st**2)[:, None, None],
+    ], axis=1).reshape(len(theta), 5, 9)
+    return flat, shaped
 
 
 @dataclass(frozen=True, eq=False)
@@ -112,7 +123,10 @@ def geometry_terms(geometry: PointGeometry) -> GeometryTerms:
     """:class:`GeometryTerms` of the geometry at N points."""
     ginv = inverse_3x3(geometry.gamma)
     dg = geometry.dgamma  # [n, k, i, j] = d_k gamma_ij
-    contracted = np.einsum("nij,nilj->nl", ginv, dg) - 0.5 * np.einsum("nij,nlij->nl", ginv, dg)
+    # C_l = sum_ij gamma^ij (d_i gamma_lj - d_l gamma_ij / 2): one batched (3 x 9) (9) product.
+    n = dg.shape[0]
+    combined = np.swapaxes(dg, 1, 2) - 0.5 * dg  # [n, l, i, j]
+    contracted = (combined.reshape(n, 3, 9) @ ginv.reshape(n, 9, 1))[:, :, 0]
     trace_K = np.einsum("nij,nij->n", ginv, geometry.K)
     return GeometryTerms(ginv, dg, contracted, trace_K, geometry.K)
 
@@ -128,9 +142,12 @@ def expansion_from(dF: np.ndarray, ddF: np.ndarray, terms: GeometryTerms) -> Exp
     s_up = F_up / u[..., None]
     proj = ginv - s_up[..., :, None] * s_up[..., None, :]
     term_hess = np.einsum("...nij,...nij->...n", proj, ddF) / u
-    term_dg = np.einsum("...ni,...na,...nb,...niab->...n", F_up, F_up, F_up, dg) / (2.0 * u**3)
+    # F^i F^a F^b d_i gamma_ab as (d gamma (3 x 9)) (F^a F^b (9)), then the dot with F^i: batched
+    # products instead of one four-operand einsum (measured twice as fast at 392 points).
+    pairs = (F_up[..., :, None] * F_up[..., None, :]).reshape(F_up.shape[:-1] + (9, 1))
+    term_dg = np.sum((dg.reshape(dg.shape[:-3] + (3, 9)) @ pairs)[..., 0] * F_up, axis=-1) / (2.0 * u**3)
     term_gamma = np.einsum("...nl,...nl->...n", F_up, terms.contracted) / u
-    Kss = np.einsum("...nij,...ni,...nj->...n", terms.K, s_up, s_up)
+    Kss = np.einsum("...ni,...ni->...n", np.einsum("...nij,...nj->...ni", terms.K, s_up), s_up)
     theta = term_hess + term_dg - term_gamma - terms.trace_K + Kss
     return ExpansionTerms(theta, s_up, u)
 

@@ -67,7 +67,7 @@ from .finder_flow import _flow
 from .finder_newton import _jacobian, _newton  # noqa: F401  (_jacobian re-exported: constant_expansion.py and tests use it)
 from .geometry import PointGeometry  # noqa: F401  (re-exported: a callable given as data returns it)
 from .interpolation import DEFAULT_ORDER
-from .resolution import interpolation_floor, recentred_surface, residual_between_nodes
+from .resolution import interpolation_floor, recentred_surface, residual_between_nodes, theta_between_nodes
 from .slices import Slice
 from .sources import as_tracked_source
 from .surfaces import Surface, angular_grid
@@ -141,10 +141,11 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
     between = floor = float("nan")
     recentred = False
     if ev is not None:
-        between = residual_between_nodes(source, ev.surface)
+        between_theta = theta_between_nodes(source, ev.surface)  # kept for the floor estimate
+        between = residual_between_nodes(source, ev.surface, between_theta)
         if status in _SUCCESS:
             status, ev, nit, proj, between, floor, recentred, run = _improve(
-                source, run, settings, status, ev, nit, proj, between)
+                source, run, settings, status, ev, nit, proj, between, between_theta)
         if status in _SUCCESS and source.slice_ is not None:
             across = _points_across(source.slice_, ev)
             if across < settings.min_points_across:
@@ -179,9 +180,10 @@ def find_surface(data, guess: Surface, *, settings: FinderSettings = FinderSetti
     )
 
 
-def _improve(source, run, settings, status, ev, nit, proj, between):
+def _improve(source, run, settings, status, ev, nit, proj, between, between_theta):
     """Tell interpolation floor from truncation; against truncation, recentre and raise l_max.
-    Returns the updated (status, ev, nit, proj, between, floor, recentred, run)."""
+    ``between_theta``: Theta on the check nodes of ``ev.surface`` (or None), reused by the floor
+    estimate. Returns the updated (status, ev, nit, proj, between, floor, recentred, run)."""
     recentred = False
     floor = float("nan")  # estimated only when the residual is above the tolerance
     tried_recentre = False
@@ -189,7 +191,7 @@ def _improve(source, run, settings, status, ev, nit, proj, between):
         worst = max(run.max_hist[-1], between if np.isfinite(between) else np.inf)
         if worst <= settings.tolerance:
             return CONVERGED, ev, nit, proj, between, floor, recentred, run
-        floor = interpolation_floor(source, ev.surface, settings.interpolation_order)
+        floor = interpolation_floor(source, ev.surface, settings.interpolation_order, between_theta)
         if np.isfinite(floor) and worst <= max(_FLOOR_FACTOR * floor, settings.tolerance):
             return CONVERGED_AT_INTERPOLATION_FLOOR, ev, nit, proj, between, floor, recentred, run
         candidates = []
@@ -208,13 +210,14 @@ def _improve(source, run, settings, status, ev, nit, proj, between):
             nit += nit2
             if st not in _SUCCESS or ev2 is None:
                 continue
-            between2 = residual_between_nodes(source, ev2.surface)
+            theta2 = theta_between_nodes(source, ev2.surface)
+            between2 = residual_between_nodes(source, ev2.surface, theta2)
             if np.isfinite(between2) and between2 < 0.7 * worst:
-                better = (ev2, proj2, between2, trial_run, is_recentre)
+                better = (ev2, proj2, between2, theta2, trial_run, is_recentre)
                 break
         if better is None:
             break
-        ev, proj, between, trial_run, is_recentre = better
+        ev, proj, between, between_theta, trial_run, is_recentre = better
         trial_run.max_hist[:0] = run.max_hist  # the histories run on through the re-solves
         trial_run.rms_hist[:0] = run.rms_hist
         run = trial_run

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .excision import ExcisedDataError
-from .expansion import GeometryTerms, expansion_from, geometry_terms, level_set_derivatives
+from .expansion import GeometryTerms, angular_tensors, expansion_from, geometry_terms, level_set_derivatives
 from .find_results import DIVERGED, INVALID_GEOMETRY, NEEDS_EXCISED_DATA, NON_FINITE_DATA, OUTSIDE_DATA
 from .geometry import PointGeometry
 from .slices import DegenerateMetricError, SliceError
@@ -90,7 +90,7 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     try:
         with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            level_set = level_set_derivatives(rd, frame)
+            level_set = level_set_derivatives(rd, frame, _tensors(run.grid))
             geometry_part = geometry_terms(geo)
             terms = expansion_from(level_set.dF, level_set.ddF, geometry_part)
     except np.linalg.LinAlgError:  # a singular metric at some point
@@ -122,3 +122,12 @@ def _frame(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 def _diverged(surface: Surface, run: _Run, limit: float) -> bool:
     h = run.grid.basis.Y @ surface.coefficients  # h alone: no derivatives needed here
     return bool(not np.all(np.isfinite(h)) or np.min(h) <= 0 or np.max(h) > limit)
+
+
+@functools.lru_cache(maxsize=16)
+def _tensors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`angular_tensors` at the grid's nodes, read-only (memoised like :func:`_frame`)."""
+    tensors = angular_tensors(grid.theta, _frame(grid))
+    for array in tensors:
+        array.setflags(write=False)
+    return tensors

@@ -8,6 +8,7 @@ from __future__ import annotations
 import functools
 
 import numpy as np
+from scipy.special import sph_legendre_p_all
 
 from .excision import ExcisedDataError
 from .expansion import expansion_from, geometry_terms, level_set_derivatives
@@ -20,9 +21,9 @@ from .find_results import (
     MAX_ITERATIONS,
     FinderSettings,
 )
-from .finder_evaluation import _MAX_SHORTENINGS, _diverged, _evaluate, _Evaluated, _projected_rms, _Run
+from .finder_evaluation import _MAX_SHORTENINGS, _diverged, _evaluate, _Evaluated, _projected_rms, _Run, _tensors
 from .slices import SliceError
-from .surfaces import AngularGrid, Surface
+from .surfaces import AngularGrid, Surface, _azimuthal, _degree_order
 
 def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     """d(projected Theta)/d(coefficients), square ((lmax+1)^2).
@@ -46,12 +47,13 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     terms_h = ev.terms if geo_h is geo else geometry_terms(geo_h)
     eps_first = 1e-5 * scale
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift), ev.frame)
+        tensors = _tensors(run.grid)
+        ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift), ev.frame, tensors)
         d_h = (expansion_from(ls_h.dF, ls_h.ddF, terms_h).theta - ev.theta) / ev.shift
         # The four shapes h_t +- eps, h_p +- eps on the same directions and geometry, batched.
         step = np.array([eps_first, -eps_first, 0.0, 0.0])[:, None]
         variants = rd.replace(h_t=rd.h_t + step, h_p=rd.h_p + step[[2, 3, 0, 1]])
-        ls = level_set_derivatives(variants, ev.frame)
+        ls = level_set_derivatives(variants, ev.frame, tensors)
         theta = expansion_from(ls.dF, ls.ddF, ev.terms).theta
         d_t = (theta[0] - theta[1]) / (2 * eps_first)
         d_p = (theta[2] - theta[3]) / (2 * eps_first)
@@ -67,7 +69,42 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     stacked, projector = _jacobian_bases(run.grid)
     local = np.stack([d_h, d_t, d_p, d_tt, d_tp, d_pp], axis=1)  # (N, 6): dTheta / d(h, h_t, ..., h_pp)
     J_nodes = np.matmul(local[:, None, :], stacked)[:, 0, :]  # (N, n_coef)
-    return projector @ J_nodes
+    # The factored projection wins from l_max 8 up (measured: 0.15 against 0.54 ms at l_max 12,
+    # 0.5 against 2.7 ms at 16); below, the dense product's single call is faster.
+    return projector @ J_nodes if run.grid.lmax < 8 else _project_columns(run.grid, J_nodes)
+
+
+def _project_columns(grid: AngularGrid, values: np.ndarray) -> np.ndarray:
+    """Y^T diag(weights) values for values (N, C) at the grid's nodes: the projection of C
+    nodal functions, factored over the product grid (sum over phi per ring and azimuthal
+    function, then over theta per degree): about a fifth of the multiply-adds of the dense
+    (n_coef x N) product, same result to round-off."""
+    azimuthal, polar, rows = _projection_factors(grid)
+    count = values.shape[1]
+    rings = values.reshape(grid.n_theta, grid.n_phi, count)
+    per_ring = np.swapaxes(azimuthal @ rings, 0, 1)  # (2 lmax + 1, n_theta, C)
+    return (polar @ per_ring).reshape(-1, count)[rows]
+
+
+@functools.lru_cache(maxsize=16)
+def _projection_factors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For :func:`_project_columns`: the azimuthal factors (2 lmax + 1, n_phi) of the real
+    harmonics at the grid's phi (m = -lmax..lmax), the polar factors times the quadrature
+    weights (2 lmax + 1, lmax + 1, n_theta) (zero for l < |m|), and the row of each coefficient
+    (l, m) in the (m, l) table. Read-only; memoised like :func:`_jacobian_bases`."""
+    lmax, n_theta, n_phi = grid.lmax, grid.n_theta, grid.n_phi
+    orders = np.arange(-lmax, lmax + 1)
+    azimuthal = np.ascontiguousarray(_azimuthal(orders, grid.phi[:n_phi], 0).T)
+    legendre = sph_legendre_p_all(lmax, lmax, grid.theta[::n_phi])[0]  # [l, m >= 0, ring]
+    ring_weights = grid.weights[::n_phi]
+    polar = np.zeros((orders.size, lmax + 1, n_theta))
+    for row, m in enumerate(orders):
+        polar[row, abs(m):] = legendre[abs(m):, abs(m)] * ring_weights
+    l, m = _degree_order(lmax)
+    rows = (m + lmax) * (lmax + 1) + l
+    for array in (azimuthal, polar, rows):
+        array.setflags(write=False)
+    return azimuthal, polar, rows
 
 @functools.lru_cache(maxsize=16)
 def _jacobian_bases(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray]:

@@ -146,6 +146,12 @@ class NodeStore:
             self._base_slot_array = np.full(int(np.prod(self.shape)), -1, dtype=np.int32)
         return self._base_slot_array
 
+    @property
+    def direct_capable(self) -> bool:
+        """Whether points may be interpolated straight from the raw arrays
+        (:mod:`.direct_stencils`): conformal data, no excision declared."""
+        return self.variable_set is not VariableSet.ADM and not self._spheres and self._mask is None
+
     @classmethod
     def for_patch(cls, slice_: Slice, index: int, order: int) -> "NodeStore":
         return cls(slice_, index, order)
@@ -171,6 +177,18 @@ class NodeStore:
                 self._fill(nodes)
             slots = np.take(self._slot, flat)
         return slots
+
+    def unprepared_stencils(self, flat: np.ndarray) -> tuple[np.ndarray, float]:
+        """For interpolation stencils ``flat`` (m, order^3): which reach a node not yet prepared
+        (m,) bool, and the distinct such nodes as a share of those stencils' nodes (1: no node
+        shared between them, small: heavily overlapping stencils)."""
+        missing = np.take(self._slot, flat) < 0
+        touched = missing.any(axis=1)
+        if not touched.any():
+            return touched, 0.0
+        nodes = _distinct(flat[missing], self._slot)
+        self._slot[nodes] = -1  # undo _distinct's scratch marks
+        return touched, nodes.size / (flat.shape[1] * np.count_nonzero(touched))
 
     #: Fill whole stencils when at least this share of the touched stencils' nodes is missing
     #: (sparse stencils: a fine grid, or a surface that moved); otherwise node by node. Measured:
@@ -232,13 +250,14 @@ class NodeStore:
         new = new[self._slot[flat[new]] == order]
         q = new.size
         self._grow(q)
-        values = columns[:, new].T
-        flags = np.where(np.isfinite(values).all(axis=1), 0, self.NON_FINITE).astype(np.uint8)
+        # Finiteness on the value-major columns (contiguous), before the transposing copy.
+        finite = np.isfinite(columns).all(axis=0)[new]
+        flags = np.where(finite, 0, self.NON_FINITE).astype(np.uint8)
         nodes = flat[new]
         if self._spheres or self._mask is not None:
             excised = self._excised(np.stack(np.unravel_index(nodes, self.shape), axis=1), self._taps())
             flags[excised] = self.EXCISED
-        self.values[self.count: self.count + q] = values
+        self.values[self.count: self.count + q] = columns[:, new].T
         self.flags[self.count: self.count + q] = flags
         self.any_flagged |= bool(flags.any())
         self._slot[nodes] = np.arange(self.count, self.count + q, dtype=np.int32)

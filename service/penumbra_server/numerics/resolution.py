@@ -17,13 +17,13 @@ import numpy as np
 
 from .excision import ExcisedDataError
 from .expansion import expansion_at
-from .interpolation import SUPPORTED_ORDERS, grid_geometry
+from .interpolation import SUPPORTED_ORDERS, GridGeometry, grid_geometry
 from .rays import ray_crossings
 from .slices import SliceError
 from .sources import TrackedSource
 from .surfaces import Surface, angular_grid, basis_on_grid, unit_vectors
 
-__all__ = ["residual_between_nodes", "interpolation_floor", "reexpanded", "recentred_surface", "check_lmax"]
+__all__ = ["theta_between_nodes", "residual_between_nodes", "interpolation_floor", "reexpanded", "recentred_surface", "check_lmax"]
 
 
 def check_lmax(lmax: int) -> int:
@@ -35,7 +35,10 @@ def _theta_on_check_nodes(source, surface: Surface) -> np.ndarray | None:
     check = angular_grid(check_lmax(surface.lmax))
     rd = surface.derivatives(basis_on_grid(surface.lmax, check.lmax), check.theta, check.phi)
     try:
-        geo = source(surface.points(rd))
+        # Evaluated once or twice per find: unprepared stencils are read from the raw arrays
+        # rather than prepared node by node (grid sources; other sources take no keyword).
+        points = surface.points(rd)
+        geo = source(points, prepare=False) if isinstance(source, (TrackedSource, GridGeometry)) else source(points)
     except (ExcisedDataError, SliceError):
         return None
     if not geo.covered.all():
@@ -45,25 +48,32 @@ def _theta_on_check_nodes(source, surface: Surface) -> np.ndarray | None:
     return theta if np.all(np.isfinite(theta)) else None
 
 
-def residual_between_nodes(source, surface: Surface) -> float:
+def theta_between_nodes(source, surface: Surface) -> np.ndarray | None:
+    """Theta (1/M) on the nodes of ``angular_grid(lmax + 5)``; None where the data does not cover
+    them, they need excised data or the expansion is not finite there."""
+    return _theta_on_check_nodes(source, surface)
+
+
+def residual_between_nodes(source, surface: Surface, theta: np.ndarray | None = None) -> float:
     """max |Theta| (1/M) on the nodes of ``angular_grid(lmax + 5)`` (shared with the collocation
     nodes only by accident); NaN where the data does not cover them, they need excised data or
-    the expansion is not finite there."""
-    theta = _theta_on_check_nodes(source, surface)
+    the expansion is not finite there. ``theta``: :func:`theta_between_nodes` already made."""
+    theta = _theta_on_check_nodes(source, surface) if theta is None else theta
     return float("nan") if theta is None else float(np.max(np.abs(theta)))
 
 
-def interpolation_floor(source: TrackedSource, surface: Surface, order: int) -> float:
+def interpolation_floor(source: TrackedSource, surface: Surface, order: int, main: np.ndarray | None = None) -> float:
     """Estimated max |Theta| error (1/M) from interpolating the data, on the check nodes.
 
     The difference of Theta from ``order`` and from ``order + 2`` (which estimates the error of
     ``order``), or from ``order - 2`` where ``order + 2`` is not supported or its wider stencils
     leave the data (an over-estimate: it measures the lower order's error). 0 for exact data,
-    NaN when neither comparison can be made.
+    NaN when neither comparison can be made. ``main``: Theta at ``order`` on the check nodes
+    (:func:`theta_between_nodes`), when the caller already has it.
     """
     if getattr(source, "slice_", None) is None:
         return 0.0
-    main = _theta_on_check_nodes(source, surface)
+    main = _theta_on_check_nodes(source, surface) if main is None else main
     if main is None:
         return float("nan")
     for other in (order + 2, order - 2):

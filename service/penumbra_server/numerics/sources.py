@@ -39,11 +39,14 @@ class TrackedSource:
             self._grid = grid_geometry(self.slice_, lo - pad, hi + pad, order=self.order)
         return self._grid
 
-    def __call__(self, points: np.ndarray) -> PointGeometry:
+    def __call__(self, points: np.ndarray, *, prepare: bool = True) -> PointGeometry:
+        """Geometry at ``points``. ``prepare=False``: points evaluated once (checks), whose
+        unprepared stencils are read straight from the patch arrays (see
+        :meth:`GridGeometry.evaluate`)."""
         self.evaluations += 1
         if self.exact is not None:
             return self.exact(points)
-        return self._prepared(points)(points)
+        return self._prepared(points).evaluate(points, prepare=prepare)[0]
 
     def evaluate(self, points: np.ndarray, shift: np.ndarray):
         """(geometry at ``points``, a callable giving the geometry at ``points + shift``). For

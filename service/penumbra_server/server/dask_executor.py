@@ -48,6 +48,17 @@ log = logging.getLogger("penumbra.server.dask")
 LOST_WORKER_ERRORS = (KilledWorker, concurrent.futures.CancelledError, CommClosedError)
 
 
+#: Nanny environment entries to drop (None unsets one in ``distributed.nanny.pre-spawn-environ``).
+#: Dask sets MALLOC_TRIM_THRESHOLD_=65536 there so that workers hand freed memory back to the
+#: OS. Setting any glibc malloc threshold switches off glibc's adaptive mmap threshold: every
+#: allocation of 128 KiB or more is then a fresh mmap, page-faulted in and unmapped when freed.
+#: The finder allocates many temporary arrays of that size; measured on the demo's jobs, a Dask
+#: worker took ~90 times the page faults (190k against 2k per job) and ~1.8 times the CPU time
+#: of a process-pool worker, the difference all kernel time (notes/daskfast.md). The workers of
+#: a local cluster therefore run with glibc's defaults, as the process pool's do.
+GLIBC_MALLOC_DEFAULTS = {"MALLOC_TRIM_THRESHOLD_": None}
+
+
 def _task_key(label: str) -> str:
     safe = re.sub(r"[^A-Za-z0-9_.-]", "_", label)[:40]
     return f"penumbra-find-{safe}-{uuid.uuid4().hex}"
@@ -184,7 +195,7 @@ class DaskFinderExecutor:
 async def _local_cluster(workers: int) -> LocalCluster:
     """A LocalCluster of ``workers`` processes on loopback, one thread and one BLAS thread each."""
     blas = {name: "1" for name in BLAS_THREAD_VARIABLES}
-    pre_spawn = {**dask.config.get("distributed.nanny.pre-spawn-environ", {}), **blas}
+    pre_spawn = {**dask.config.get("distributed.nanny.pre-spawn-environ", {}), **blas, **GLIBC_MALLOC_DEFAULTS}
     # Spawned workers copy the environment at start; the nanny also re-applies these to a
     # worker it restarts after a crash.
     with single_threaded_blas_env(), dask.config.set({"distributed.nanny.pre-spawn-environ": pre_spawn}):

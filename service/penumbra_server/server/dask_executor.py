@@ -25,6 +25,7 @@ import asyncio
 import concurrent.futures
 import contextlib
 import logging
+import os
 import re
 import time
 import uuid
@@ -38,7 +39,7 @@ from distributed.scheduler import KilledWorker
 from .executors import BLAS_THREAD_VARIABLES, single_threaded_blas_env
 from .jobs import SurfaceJob, SurfaceOutcome, run_surface_job, warm_up
 
-__all__ = ["DaskFinderExecutor", "LOST_WORKER_ERRORS"]
+__all__ = ["DaskFinderExecutor", "GLIBC_MALLOC_DEFAULTS", "LOST_WORKER_ERRORS", "MALLOC_VARIABLES"]
 
 log = logging.getLogger("penumbra.server.dask")
 
@@ -47,6 +48,9 @@ log = logging.getLogger("penumbra.server.dask")
 #: asyncio's): the scheduler forgot the task; CommClosedError: the connection dropped meanwhile.
 LOST_WORKER_ERRORS = (KilledWorker, concurrent.futures.CancelledError, CommClosedError)
 
+
+#: Environment variables that set glibc malloc thresholds (any of them pins the mmap threshold).
+MALLOC_VARIABLES = ("MALLOC_TRIM_THRESHOLD_", "MALLOC_MMAP_THRESHOLD_")
 
 #: Nanny environment entries to drop (None unsets one in ``distributed.nanny.pre-spawn-environ``).
 #: Dask sets MALLOC_TRIM_THRESHOLD_=65536 there so that workers hand freed memory back to the
@@ -57,6 +61,11 @@ LOST_WORKER_ERRORS = (KilledWorker, concurrent.futures.CancelledError, CommClose
 #: of a process-pool worker, the difference all kernel time (notes/daskfast.md). The workers of
 #: a local cluster therefore run with glibc's defaults, as the process pool's do.
 GLIBC_MALLOC_DEFAULTS = {"MALLOC_TRIM_THRESHOLD_": None}
+
+
+def worker_malloc_environment() -> dict[str, str | None]:
+    """On a worker: its glibc malloc variables (:data:`MALLOC_VARIABLES`), None where unset."""
+    return {name: os.environ.get(name) for name in MALLOC_VARIABLES}
 
 
 def _task_key(label: str) -> str:
@@ -72,6 +81,8 @@ class DaskFinderExecutor:
         scheduler_address: the scheduler's address (for a local cluster, a loopback one).
         worker_pids: worker process ids at start ({worker address: pid}).
         worker_thread_settings: BLAS/OpenMP thread variables as one worker saw them.
+        worker_malloc_settings: glibc malloc variables (:data:`MALLOC_VARIABLES`) as one worker saw
+            them (None: unset, glibc's adaptive defaults).
         resubmitted: jobs submitted again by this executor after a lost-worker error.
     """
 
@@ -88,6 +99,7 @@ class DaskFinderExecutor:
         self.workers = 0
         self.worker_pids: dict[str, int] = {}
         self.worker_thread_settings: dict[str, str | None] = {}
+        self.worker_malloc_settings: dict[str, str | None] = {}
         self.resubmitted = 0
 
     @classmethod
@@ -141,6 +153,15 @@ class DaskFinderExecutor:
         self.worker_pids = {address: pid for address, (pid, _) in started.items()}
         if started:
             self.worker_thread_settings = next(iter(started.values()))[1]
+            malloc = await self._client.run(worker_malloc_environment)
+            self.worker_malloc_settings = next(iter(malloc.values()))
+            pinned = sorted({address for address, names in malloc.items() if names.get("MALLOC_TRIM_THRESHOLD_")})
+            if pinned:
+                log.warning("dask workers %s run with MALLOC_TRIM_THRESHOLD_=%s (Dask's nanny default): glibc then "
+                            "maps every array of 128 KiB or more afresh and finder jobs take up to ~1.8 times as long; "
+                            "unset it for the workers (distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_: "
+                            "null in their Dask configuration)", ", ".join(pinned),
+                            malloc[pinned[0]]["MALLOC_TRIM_THRESHOLD_"])
         else:
             log.warning("dask scheduler %s has no workers yet: jobs wait until some connect", self.scheduler_address)
 
@@ -193,12 +214,16 @@ class DaskFinderExecutor:
 
 
 async def _local_cluster(workers: int) -> LocalCluster:
-    """A LocalCluster of ``workers`` processes on loopback, one thread and one BLAS thread each."""
+    """A LocalCluster of ``workers`` processes on loopback, one thread and one BLAS thread each,
+    glibc's malloc defaults (:data:`GLIBC_MALLOC_DEFAULTS`), no profiler."""
     blas = {name: "1" for name in BLAS_THREAD_VARIABLES}
     pre_spawn = {**dask.config.get("distributed.nanny.pre-spawn-environ", {}), **blas, **GLIBC_MALLOC_DEFAULTS}
     # Spawned workers copy the environment at start; the nanny also re-applies these to a
     # worker it restarts after a crash.
-    with single_threaded_blas_env(), dask.config.set({"distributed.nanny.pre-spawn-environ": pre_spawn}):
+    # The worker's statistical profiler samples the task thread's stack every 10 ms for the
+    # dashboard, which is off: measured, it cost ~7 % extra CPU per job (notes/daskfast.md).
+    with single_threaded_blas_env(), dask.config.set({"distributed.nanny.pre-spawn-environ": pre_spawn,
+                                                      "distributed.worker.profile.enabled": False}):
         # No dashboard; the scheduler's small HTTP server (health, metrics) on a free loopback port.
         return await LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, asynchronous=True,
                                   host="127.0.0.1", scheduler_port=0, dashboard_address=None, env=blas,

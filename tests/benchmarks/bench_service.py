@@ -231,7 +231,10 @@ def main(argv=None) -> int:
                 root = Path(tmp) / f"{name.replace(' ', '-')}-{round_}"
                 server = ServerThread(root, engine, args.slices_in_flight)
                 try:
+                    cpu_started = time.process_time()  # this process: the server, its archive thread, and
+                    # for "dask 2" the in-process scheduler and nannies (the workers are other processes)
                     run_id, took = run_sender(server.server.address, count, name)
+                    server_cpu_s = time.process_time() - cpu_started
                 finally:
                     server.stop()
                 view = open_archive(root, run_id)
@@ -246,7 +249,8 @@ def main(argv=None) -> int:
                       f"server {np.mean(in_server):.3f} s, archive {1e3 * spent / count:.1f} ms "
                       f"({clock.calls.get(str(view.path), 0) / count:.1f} writer calls); found {found[name][-1]}",
                       file=sys.stderr)
-                print(f"{name} (round {round_ + 1}) finder jobs: {server.jobs.describe()}", file=sys.stderr)
+                print(f"{name} (round {round_ + 1}) finder jobs: {server.jobs.describe()}; server process CPU "
+                      f"{server_cpu_s / count:.2f} s per slice", file=sys.stderr)
     rate = {name: args.rounds * count / seconds[name] for name in configurations}
     results = {name: {"archive_per_slice_s": archive_s[name] / (args.rounds * count),
                       "slice_wall_s": float(np.mean(walls[name])), "found": found[name][0]}

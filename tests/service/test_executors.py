@@ -89,12 +89,15 @@ def _worker_profiler_enabled() -> bool:
     return bool(dask.config.get("distributed.worker.profile.enabled"))
 
 
-def test_local_dask_workers_keep_glibc_malloc_defaults_and_no_profiler(executor, loop):
+def test_local_dask_scheduler_apart_workers_with_glibc_malloc_defaults_and_no_profiler(executor, loop):
     """Dask's nanny would set MALLOC_TRIM_THRESHOLD_=65536, which pins glibc's mmap threshold and
     made the finder's jobs ~1.8 times slower; the local cluster's workers inherit this process's
     setting instead (normally unset), and do not run the dashboard's stack sampler."""
     if isinstance(executor, ProcessPoolFinderExecutor):
         pytest.skip("the process pool's workers inherit this process's environment as it is")
+    # The scheduler runs in a process of its own (server/dask_local.py), not on this event loop.
+    assert executor.scheduler_pid is not None and executor.scheduler_pid not in (os.getpid(), *_pids(executor))
+    assert es.process_alive(executor.scheduler_pid)
     assert executor.worker_malloc_settings["MALLOC_TRIM_THRESHOLD_"] == os.environ.get("MALLOC_TRIM_THRESHOLD_")
     assert executor.worker_malloc_settings["MALLOC_TRIM_THRESHOLD_"] != "65536"
 
@@ -156,7 +159,7 @@ def test_a_worker_killed_mid_job(executor, loop, reference, tmp_path):
 @pytest.mark.parametrize("engine", ENGINES)
 def test_close_ends_the_worker_processes(engine, loop):
     started = loop.run(start_executor(_settings(engine, 1), job_function=es.hooked_job))
-    pids = _pids(started)
+    pids = _pids(started) + ([started.scheduler_pid] if engine == "dask" else [])
     assert pids and all(es.process_alive(pid) for pid in pids)
     loop.run(started.close())
     es.wait_until_gone(pids)

@@ -33,6 +33,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import multiprocessing
+import pickle
 import sys
 import tempfile
 import threading
@@ -75,6 +76,38 @@ class ArchiveClock:
             setattr(ArchiveWriter, name, timed)
 
 
+class JobClock:
+    """Per finder job at the executor: seconds awaited in ``executor.run`` and the seconds the
+    worker itself reported (``outcome.wall_time_s``); the difference is the engine's overhead
+    (sending the job, queueing, returning the outcome)."""
+
+    def __init__(self) -> None:
+        self.awaited: list[float] = []
+        self.worked: list[float] = []
+        self.job_bytes: list[int] = []
+
+    def install(self, executor) -> None:
+        original = executor.run
+
+        async def timed(job):
+            self.job_bytes.append(len(pickle.dumps(job, protocol=5)) if len(self.job_bytes) < 4 else self.job_bytes[-1])
+            started = time.perf_counter()
+            outcome = await original(job)
+            self.awaited.append(time.perf_counter() - started)
+            self.worked.append(float(outcome.wall_time_s))
+            return outcome
+
+        executor.run = timed
+
+    def describe(self) -> str:
+        if not self.awaited:
+            return "no jobs"
+        awaited, worked = np.array(self.awaited), np.array(self.worked)
+        return (f"{len(awaited)} jobs: awaited {awaited.mean():.3f} s, worked {worked.mean():.3f} s, "
+                f"overhead {np.mean(awaited - worked) * 1e3:.0f} ms (median {np.median(awaited - worked) * 1e3:.0f}), "
+                f"job pickle ~{np.mean(self.job_bytes[:4]) / 2**20:.2f} MiB")
+
+
 class ServerThread:
     """A Penumbra server with the executor of ``engine``, on an event loop thread of its own."""
 
@@ -84,6 +117,8 @@ class ServerThread:
         self._thread = threading.Thread(target=self.loop.run_forever, name="bench-server", daemon=True)
         self._thread.start()
         self.executor = self._run(start_executor(engine), 300)
+        self.jobs = JobClock()
+        self.jobs.install(self.executor)
         self.server = self._run(self._create(archive_root), 120)
 
     async def _create(self, archive_root: Path):
@@ -163,6 +198,9 @@ def main(argv=None) -> int:
                         help="times each configuration runs, interleaved (default 2); figures pool all rounds")
     parser.add_argument("--slices-in-flight", type=int, default=2,
                         help="slices of the run searched at once (ServerOptions.slices_in_flight; default 2)")
+    parser.add_argument("--only", default=None,
+                        help='comma-separated configurations to run, e.g. "process 2,dask 2" (default: all); '
+                             "prints only the ratios whose two configurations ran")
     args = parser.parse_args(argv)
     scenario = DemoScenario()
     count = scenario.slice_count if args.slices is None else min(args.slices, scenario.slice_count)
@@ -176,6 +214,12 @@ def main(argv=None) -> int:
         "process 2": EngineSettings(engine="process", workers=2),
         "dask 2": EngineSettings(engine="dask", dask_local_workers=2),
     }
+    if args.only:
+        chosen = [name.strip() for name in args.only.split(",") if name.strip()]
+        unknown = [name for name in chosen if name not in configurations]
+        if unknown:
+            parser.error(f"--only: unknown configuration(s) {unknown}; expected some of {list(configurations)}")
+        configurations = {name: configurations[name] for name in chosen}
     seconds = {name: 0.0 for name in configurations}
     archive_s = {name: 0.0 for name in configurations}
     walls = {name: [] for name in configurations}
@@ -187,7 +231,10 @@ def main(argv=None) -> int:
                 root = Path(tmp) / f"{name.replace(' ', '-')}-{round_}"
                 server = ServerThread(root, engine, args.slices_in_flight)
                 try:
+                    cpu_started = time.process_time()  # this process: the server, its archive thread, and
+                    # for "dask 2" the in-process scheduler and nannies (the workers are other processes)
                     run_id, took = run_sender(server.server.address, count, name)
+                    server_cpu_s = time.process_time() - cpu_started
                 finally:
                     server.stop()
                 view = open_archive(root, run_id)
@@ -202,16 +249,22 @@ def main(argv=None) -> int:
                       f"server {np.mean(in_server):.3f} s, archive {1e3 * spent / count:.1f} ms "
                       f"({clock.calls.get(str(view.path), 0) / count:.1f} writer calls); found {found[name][-1]}",
                       file=sys.stderr)
+                print(f"{name} (round {round_ + 1}) finder jobs: {server.jobs.describe()}; server process CPU "
+                      f"{server_cpu_s / count:.2f} s per slice", file=sys.stderr)
     rate = {name: args.rounds * count / seconds[name] for name in configurations}
     results = {name: {"archive_per_slice_s": archive_s[name] / (args.rounds * count),
                       "slice_wall_s": float(np.mean(walls[name])), "found": found[name][0]}
                for name in configurations}
-    if any(f != found["process 1"][0] for runs in found.values() for f in runs):
+    first = next(iter(found.values()))[0]
+    if any(f != first for runs in found.values() for f in runs):
         print("warning: the runs found different numbers of surfaces", file=sys.stderr)
-    two = results["process 2"]
-    print(f"throughput workers 2 / workers 1: {rate['process 2'] / rate['process 1']:.3f}")
-    print(f"archive share of slice time: {two['archive_per_slice_s'] / two['slice_wall_s']:.4f}")
-    print(f"throughput dask local / process: {rate['dask 2'] / rate['process 2']:.3f}")
+    if "process 1" in rate and "process 2" in rate:
+        print(f"throughput workers 2 / workers 1: {rate['process 2'] / rate['process 1']:.3f}")
+    if "process 2" in results:
+        two = results["process 2"]
+        print(f"archive share of slice time: {two['archive_per_slice_s'] / two['slice_wall_s']:.4f}")
+    if "dask 2" in rate and "process 2" in rate:
+        print(f"throughput dask local / process: {rate['dask 2'] / rate['process 2']:.3f}")
     return 0
 
 

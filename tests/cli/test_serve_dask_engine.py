@@ -17,7 +17,7 @@ import pytest
 import penumbra_shim as ps
 from penumbra_server.numerics.spacetimes import BrillLindquist, sample_patch
 
-from serve_support import alive, children_of, kill_all, start_serve, stop, wait_for_ready
+from serve_support import alive, children_of, cmdline, kill_all, start_serve, stop, wait_for_ready
 
 pytest.importorskip("distributed")
 pytestmark = pytest.mark.slow  # the server starts a Dask LocalCluster
@@ -68,5 +68,29 @@ def test_a_server_on_the_dask_engine_finds_a_lone_hole(tmp_path):
         assert not leftover, f"processes {sorted(leftover)} of the dask engine outlived the server by 30 s"
     finally:
         kill_all(workers)
+        if process.poll() is None:
+            stop(process)
+
+
+def test_a_killed_server_takes_its_local_dask_cluster_with_it(tmp_path):
+    """SIGKILL leaves no time to close anything: the local cluster's scheduler process (which
+    watches its parent) and worker processes end by themselves."""
+    process, ready = start_serve(tmp_path, "--engine", "dask", "--dask-local-workers", "1")
+    children = {}
+    try:
+        wait_for_ready(ready, process, timeout_s=180)
+        children = children_of(process.pid)
+        commands = [cmdline(pid) for pid in children]
+        assert any("penumbra_server.server.dask_local" in c for c in commands), commands  # the scheduler
+        assert len(children) >= 2, commands  # and the worker
+        process.kill()
+        process.wait(timeout=30)
+        deadline = time.monotonic() + 60.0
+        while alive(children) and time.monotonic() < deadline:
+            time.sleep(0.05)
+        leftover = alive(children)
+        assert not leftover, f"processes {[cmdline(pid) for pid in leftover]} outlived the killed server by 60 s"
+    finally:
+        kill_all(children)
         if process.poll() is None:
             stop(process)

@@ -10,6 +10,7 @@ failed and replaces itself, Dask runs the job again elsewhere and it completes.
 from __future__ import annotations
 
 import asyncio
+import logging
 import os
 import signal
 
@@ -82,6 +83,31 @@ def test_workers_are_separate_single_threaded_processes(executor):
     assert set(executor.worker_thread_settings.values()) == {"1"}
 
 
+def _worker_profiler_enabled() -> bool:
+    import dask
+
+    return bool(dask.config.get("distributed.worker.profile.enabled"))
+
+
+def test_local_dask_scheduler_apart_workers_with_glibc_malloc_defaults_and_no_profiler(executor, loop):
+    """Dask's nanny would set MALLOC_TRIM_THRESHOLD_=65536, which pins glibc's mmap threshold and
+    made the finder's jobs ~1.8 times slower; the local cluster's workers inherit this process's
+    setting instead (normally unset), and do not run the dashboard's stack sampler."""
+    if isinstance(executor, ProcessPoolFinderExecutor):
+        pytest.skip("the process pool's workers inherit this process's environment as it is")
+    # The scheduler runs in a process of its own (server/dask_local.py), not on this event loop.
+    assert executor.scheduler_pid is not None and executor.scheduler_pid not in (os.getpid(), *_pids(executor))
+    assert es.process_alive(executor.scheduler_pid)
+    assert executor.worker_malloc_settings["MALLOC_TRIM_THRESHOLD_"] == os.environ.get("MALLOC_TRIM_THRESHOLD_")
+    assert executor.worker_malloc_settings["MALLOC_TRIM_THRESHOLD_"] != "65536"
+
+    async def profiler_settings():
+        return await executor._client.run(_worker_profiler_enabled)
+
+    profiling = loop.run(profiler_settings())
+    assert len(profiling) == 2 and not any(profiling.values())
+
+
 def test_same_jobs_give_the_outcomes_computed_here(executor, loop, reference):
     job, want = reference
     assert want.found and want.reason == REASON_FOUND  # the reference itself: a horizon was found
@@ -133,7 +159,7 @@ def test_a_worker_killed_mid_job(executor, loop, reference, tmp_path):
 @pytest.mark.parametrize("engine", ENGINES)
 def test_close_ends_the_worker_processes(engine, loop):
     started = loop.run(start_executor(_settings(engine, 1), job_function=es.hooked_job))
-    pids = _pids(started)
+    pids = _pids(started) + ([started.scheduler_pid] if engine == "dask" else [])
     assert pids and all(es.process_alive(pid) for pid in pids)
     loop.run(started.close())
     es.wait_until_gone(pids)
@@ -164,14 +190,19 @@ def strict_cluster(loop):
     loop.run(close(cluster))
 
 
-def test_a_task_the_scheduler_gives_up_is_resubmitted_and_completes(strict_cluster, loop, reference, tmp_path):
+def test_a_task_the_scheduler_gives_up_is_resubmitted_and_completes(strict_cluster, loop, reference, tmp_path,
+                                                                    caplog):
     from penumbra_server.server.dask_executor import DaskFinderExecutor
 
     job, want = reference
-    executor = loop.run(DaskFinderExecutor.start(scheduler_address=strict_cluster.scheduler_address, resubmissions=1,
-                                                 job_function=es.hooked_job))
+    with caplog.at_level(logging.WARNING, logger="penumbra.server.dask"):
+        executor = loop.run(DaskFinderExecutor.start(scheduler_address=strict_cluster.scheduler_address,
+                                                     resubmissions=1, job_function=es.hooked_job))
     try:
         assert executor.workers == 2
+        # That cluster was started with Dask's default nanny environment: the executor says what it costs.
+        assert executor.worker_malloc_settings["MALLOC_TRIM_THRESHOLD_"] == "65536"
+        assert any("MALLOC_TRIM_THRESHOLD_=65536" in r.getMessage() for r in caplog.records)
         gate = tmp_path / "gate"
         gate.mkdir()
         pending = loop.submit(executor.run(es.horizon_job(es.GATED + str(gate), data=job.data)))

@@ -3,8 +3,8 @@
 :class:`DaskFinderExecutor` implements :class:`~penumbra_server.server.executors.FinderExecutor`
 with a ``distributed.Client`` running on the server's event loop (``asynchronous=True``). It
 either connects to a scheduler started elsewhere (``dask scheduler`` / ``dask worker`` on other
-nodes, deploy/penumbra-dask.sbatch) or starts a ``LocalCluster`` of worker processes on this
-machine. This module imports ``distributed`` at the top: import it only when that engine is
+nodes, deploy/penumbra-dask.sbatch) or starts a local cluster of worker processes on this
+machine, its scheduler in a process of its own (server/dask_local.py). This module imports ``distributed`` at the top: import it only when that engine is
 configured (:func:`~penumbra_server.server.executors.start_executor` does).
 
 Each job goes to the cluster as the task's argument (a cropped sub-box, small), not scattered
@@ -25,20 +25,21 @@ import asyncio
 import concurrent.futures
 import contextlib
 import logging
+import os
 import re
 import time
 import uuid
 from typing import Callable
 
 import dask
-from distributed import Client, LocalCluster
+from distributed import Client, SpecCluster
 from distributed.comm.core import CommClosedError
 from distributed.scheduler import KilledWorker
 
-from .executors import BLAS_THREAD_VARIABLES, single_threaded_blas_env
+from .dask_local import start_local_cluster
 from .jobs import SurfaceJob, SurfaceOutcome, run_surface_job, warm_up
 
-__all__ = ["DaskFinderExecutor", "LOST_WORKER_ERRORS"]
+__all__ = ["DaskFinderExecutor", "LOST_WORKER_ERRORS", "MALLOC_VARIABLES"]
 
 log = logging.getLogger("penumbra.server.dask")
 
@@ -46,6 +47,16 @@ log = logging.getLogger("penumbra.server.dask")
 #: the scheduler gave up after workers died running it; concurrent.futures.CancelledError (not
 #: asyncio's): the scheduler forgot the task; CommClosedError: the connection dropped meanwhile.
 LOST_WORKER_ERRORS = (KilledWorker, concurrent.futures.CancelledError, CommClosedError)
+
+
+#: Environment variables that set glibc malloc thresholds (any of them pins the mmap threshold).
+MALLOC_VARIABLES = ("MALLOC_TRIM_THRESHOLD_", "MALLOC_MMAP_THRESHOLD_")
+
+
+
+def worker_malloc_environment() -> dict[str, str | None]:
+    """On a worker: its glibc malloc variables (:data:`MALLOC_VARIABLES`), None where unset."""
+    return {name: os.environ.get(name) for name in MALLOC_VARIABLES}
 
 
 def _task_key(label: str) -> str:
@@ -59,12 +70,15 @@ class DaskFinderExecutor:
     Attributes:
         workers: workers connected when the executor started (a cluster may grow or shrink).
         scheduler_address: the scheduler's address (for a local cluster, a loopback one).
+        scheduler_pid: the local cluster's scheduler process (None for a scheduler started elsewhere).
         worker_pids: worker process ids at start ({worker address: pid}).
         worker_thread_settings: BLAS/OpenMP thread variables as one worker saw them.
+        worker_malloc_settings: glibc malloc variables (:data:`MALLOC_VARIABLES`) as one worker saw
+            them (None: unset, glibc's adaptive defaults).
         resubmitted: jobs submitted again by this executor after a lost-worker error.
     """
 
-    def __init__(self, client: Client, cluster: LocalCluster | None, *, task_retries: int, resubmissions: int,
+    def __init__(self, client: Client, cluster: SpecCluster | None, *, task_retries: int, resubmissions: int,
                  job_function: Callable[[SurfaceJob], SurfaceOutcome]) -> None:
         if task_retries < 0 or resubmissions < 0:
             raise ValueError(f"task_retries, resubmissions: expected >= 0, got {task_retries}, {resubmissions}")
@@ -74,17 +88,20 @@ class DaskFinderExecutor:
         self.resubmissions = int(resubmissions)
         self._job_function = job_function
         self.scheduler_address: str = client.scheduler.address
+        process = getattr(getattr(cluster, "scheduler", None), "process", None)
+        self.scheduler_pid: int | None = process.pid if process is not None else None
         self.workers = 0
         self.worker_pids: dict[str, int] = {}
         self.worker_thread_settings: dict[str, str | None] = {}
+        self.worker_malloc_settings: dict[str, str | None] = {}
         self.resubmitted = 0
 
     @classmethod
     async def start(cls, *, scheduler_address: str | None = None, local_workers: int = 0, task_retries: int = 1,
                     resubmissions: int = 2, connect_timeout_s: float = 30.0,
                     job_function: Callable[[SurfaceJob], SurfaceOutcome] = run_surface_job) -> "DaskFinderExecutor":
-        """Connect to ``scheduler_address`` or start a LocalCluster of ``local_workers`` processes
-        (one thread each, BLAS single-threaded); import the numerics on every worker.
+        """Connect to ``scheduler_address`` or start a local cluster of ``local_workers`` processes
+        (one thread each, BLAS single-threaded; server/dask_local.py); import the numerics on every worker.
 
         ``job_function``: what a task runs (default :func:`run_surface_job`; tests pass a
         deliberately slow or failing one). It must be importable on the workers.
@@ -103,7 +120,7 @@ class DaskFinderExecutor:
         cluster = None
         try:
             if scheduler_address is None:
-                cluster = await _local_cluster(local_workers)
+                cluster = await start_local_cluster(local_workers)
                 client = await Client(cluster, asynchronous=True)
             else:
                 client = await Client(scheduler_address, asynchronous=True, timeout=connect_timeout_s)
@@ -130,6 +147,15 @@ class DaskFinderExecutor:
         self.worker_pids = {address: pid for address, (pid, _) in started.items()}
         if started:
             self.worker_thread_settings = next(iter(started.values()))[1]
+            malloc = await self._client.run(worker_malloc_environment)
+            self.worker_malloc_settings = next(iter(malloc.values()))
+            pinned = sorted({address for address, names in malloc.items() if names.get("MALLOC_TRIM_THRESHOLD_")})
+            if pinned:
+                log.warning("dask workers %s run with MALLOC_TRIM_THRESHOLD_=%s (Dask's nanny default): glibc then "
+                            "maps every array of 128 KiB or more afresh and finder jobs take up to ~1.8 times as long; "
+                            "unset it for the workers (distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_: "
+                            "null in their Dask configuration)", ", ".join(pinned),
+                            malloc[pinned[0]]["MALLOC_TRIM_THRESHOLD_"])
         else:
             log.warning("dask scheduler %s has no workers yet: jobs wait until some connect", self.scheduler_address)
 
@@ -179,16 +205,3 @@ class DaskFinderExecutor:
                 await client.close()
         if cluster is not None:
             await cluster.close()
-
-
-async def _local_cluster(workers: int) -> LocalCluster:
-    """A LocalCluster of ``workers`` processes on loopback, one thread and one BLAS thread each."""
-    blas = {name: "1" for name in BLAS_THREAD_VARIABLES}
-    pre_spawn = {**dask.config.get("distributed.nanny.pre-spawn-environ", {}), **blas}
-    # Spawned workers copy the environment at start; the nanny also re-applies these to a
-    # worker it restarts after a crash.
-    with single_threaded_blas_env(), dask.config.set({"distributed.nanny.pre-spawn-environ": pre_spawn}):
-        # No dashboard; the scheduler's small HTTP server (health, metrics) on a free loopback port.
-        return await LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, asynchronous=True,
-                                  host="127.0.0.1", scheduler_port=0, dashboard_address=None, env=blas,
-                                  scheduler_kwargs={"dashboard": False, "dashboard_address": "127.0.0.1:0"})

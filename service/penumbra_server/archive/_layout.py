@@ -98,9 +98,12 @@ UNITS: dict[str, str] = {
     "bytes": "byte",
 }
 
-# Rows per chunk along the growing axis: a chunk is rewritten by every commit that touches it,
-# so keep it small enough that this stays cheap and large enough that a long run has few files.
+# Rows per chunk along the growing axis: a chunk is rewritten by every fold that touches it, so
+# keep it small enough that this stays cheap and large enough that a long run has few files.
 _ROWS_PER_CHUNK = 1024
+# Wide rows (harmonic coefficients, a displacement's reference) get fewer rows per chunk, so that
+# a chunk holds at most about this many bytes (at least 16 rows).
+_CHUNK_BYTES = 128 * 1024
 
 
 @dataclass(frozen=True)
@@ -127,7 +130,11 @@ class Column:
     def chunks(self) -> tuple[int, ...]:
         # Rows with trailing dimensions are wider: fewer per chunk keeps chunks of similar size.
         rows = _ROWS_PER_CHUNK if not self.trailing else _ROWS_PER_CHUNK // 4
-        return (rows,) + tuple(size for _, size in self.trailing)
+        trailing = tuple(size for _, size in self.trailing)
+        row_bytes = int(np.prod(trailing)) * (8 if self.dtype == "str" else np.dtype(self.dtype).itemsize)
+        while rows > 16 and rows * row_bytes > _CHUNK_BYTES:
+            rows //= 2
+        return (rows,) + trailing
 
     def dimension_names(self, row_dimension: str) -> list[str]:
         return [row_dimension] + [dim for dim, _ in self.trailing]

@@ -26,6 +26,7 @@ the journal folded, uncounted groups removed.
 
 from __future__ import annotations
 
+import logging
 import shutil
 import time
 from dataclasses import dataclass
@@ -42,6 +43,8 @@ from .journal import (JOURNAL_DIRECTORY, JournalEntry, attrs_json, contiguous_en
                       remove_temporary, write_entry)
 
 __all__ = ["ArchiveWriter", "ArchiveError", "FoldPolicy"]
+
+log = logging.getLogger("penumbra.archive")
 
 
 @dataclass(frozen=True)
@@ -305,7 +308,10 @@ class ArchiveWriter:
             self._unfolded_since = time.monotonic()
         self._set_state(entry.attrs)
         if fold or (fold is None and self.fold_due()) or closing:
-            self.fold()
+            try:
+                self.fold()
+            except Exception:  # the commit is durable in the journal: the next fold tries again
+                log.exception("%s: folding the journal into the arrays failed; it is tried again later", self.path)
         return dict(self._committed)
 
     def add_surface(self, label: str, *, lmax: int | None = None) -> None:

@@ -15,7 +15,7 @@ from zarr.core.sync import sync as zarr_sync
 from .. import crash_points
 from . import _layout as layout
 
-__all__ = ["ArchiveError", "members", "column_block", "write_blocks", "consolidate", "create_column", "create_columns"]
+__all__ = ["ArchiveError", "members", "column_block", "write_blocks", "consolidate", "create_column", "create_columns", "create_groups"]
 
 _WARNINGS_LOCK = threading.Lock()
 #: zarr's note on the journal directory inside the group (journal.py): expected, not a fault.
@@ -82,7 +82,7 @@ def consolidate(group: zarr.Group) -> None:
         zarr.consolidate_metadata(group.store)
 
 
-def _column_arguments(column: layout.Column, row_dimension: str) -> dict:
+def _column_arguments(column: layout.Column, row_dimension: str, rows: int = 0) -> dict:
     attrs = {}
     if column.unit:
         attrs["units"] = column.unit
@@ -90,7 +90,7 @@ def _column_arguments(column: layout.Column, row_dimension: str) -> dict:
         attrs["description"] = column.description
     return dict(
         name=column.name,
-        shape=(0,) + tuple(size for _, size in column.trailing),
+        shape=(rows,) + tuple(size for _, size in column.trailing),
         chunks=column.chunks(),
         dtype=str if column.dtype == "str" else column.dtype,
         fill_value=column.fill_value,
@@ -103,22 +103,42 @@ def create_column(group: zarr.Group, column: layout.Column, row_dimension: str) 
     return group.create_array(**_column_arguments(column, row_dimension))
 
 
-def create_columns(group: zarr.Group, columns: Sequence[layout.Column], row_dimension: str) -> None:
-    """Create the group's arrays, empty; arrays a killed earlier attempt made are reused (emptied).
-    Each half of the columns in one wait for zarr's I/O loop (the crash point between them)."""
-    existing = dict(group.arrays())
+def create_columns(group: zarr.Group, columns: Sequence[layout.Column], row_dimension: str, rows: int = 0) -> None:
+    """Create the group's arrays with ``rows`` rows of fill values; see :func:`create_groups`."""
+    create_groups([(group, columns, row_dimension, rows)])
 
-    async def make(batch: Sequence[layout.Column]) -> None:
-        jobs = []
-        for column in batch:
-            arr = existing.get(column.name)
-            if arr is None:
-                jobs.append(group._async_group.create_array(**_column_arguments(column, row_dimension)))
-            elif arr.shape[0]:
-                jobs.append(arr.async_array.resize((0,) + arr.shape[1:]))
-        await asyncio.gather(*jobs)
 
-    half = len(columns) // 2
-    zarr_sync(make(columns[:half]))
-    crash_points.reached("archive-mid-group")
-    zarr_sync(make(columns[half:]))
+def create_groups(groups: Sequence[tuple[zarr.Group, Sequence[layout.Column], str, int]]) -> None:
+    """Create the arrays of each (group, columns, row dimension, rows): ``rows`` rows of fill
+    values each (a fold makes them as long as the rows it is about to write: no resize after);
+    arrays a killed earlier attempt made are reused (emptied to that length). The first half of
+    every group's columns in one wait for zarr's I/O loop, then the crash point once per group
+    (each group half created), then the second halves."""
+    existing = [dict(group.arrays()) for group, *_ in groups]
+
+    def jobs(half: int):
+        for (group, columns, row_dimension, rows), arrays in zip(groups, existing):
+            middle = len(columns) // 2
+            for column in (columns[:middle] if half == 0 else columns[middle:]):
+                arr = arrays.get(column.name)
+                if arr is None:
+                    yield group._async_group.create_array(**_column_arguments(column, row_dimension, rows))
+                elif arr.shape[0]:
+                    # Emptied first: the rows a killed fold left must not show through as data.
+                    yield _empty_to(arr.async_array, rows)
+                elif rows:
+                    yield arr.async_array.resize((rows,) + arr.shape[1:])
+
+    async def make(half: int) -> None:
+        await asyncio.gather(*jobs(half))
+
+    zarr_sync(make(0))
+    for _ in groups:
+        crash_points.reached("archive-mid-group")
+    zarr_sync(make(1))
+
+
+async def _empty_to(arr, rows: int) -> None:
+    await arr.resize((0,) + tuple(arr.shape[1:]))
+    if rows:
+        await arr.resize((rows,) + tuple(arr.shape[1:]))

@@ -38,7 +38,8 @@ import zarr
 
 from .. import crash_points
 from . import _layout as layout
-from ._zarr_io import ArchiveError, column_block, members, consolidate, create_column, create_columns, write_blocks
+from ._zarr_io import (ArchiveError, column_block, consolidate, create_column, create_columns, create_groups,
+                       members, write_blocks)
 from .journal import (JOURNAL_DIRECTORY, JournalEntry, attrs_json, contiguous_entries, remove_entries,
                       remove_temporary, write_entry)
 
@@ -401,17 +402,21 @@ class ArchiveWriter:
             for group_path, start_blocks in entry.groups.items():
                 parts.setdefault(group_path, []).append(start_blocks)
         last = entries[-1]
-        for group_path in last.attrs["committed_rows"]:
+        new_groups = []
+        for group_path, rows in last.attrs["committed_rows"].items():
             if group_path not in self._folded:
-                # Groups first written since the last fold (and surfaces added): made now, counted
-                # by the root below; require_group and create_columns reuse what a killed fold made.
+                # Groups first written since the last fold (and surfaces added): made now as long
+                # as their rows, counted by the root below; require_group and create_groups reuse
+                # what a killed fold made.
                 cols, row_dimension = self._group_layout(group_path)
-                sub = self._group.require_group(group_path)
-                create_columns(sub, cols, row_dimension)
-                self._listed.discard(group_path)  # listed again, with the arrays just made
                 head, _, label = group_path.partition("/")
+                sub = self._group.require_group(group_path)
                 if head == layout.SURFACES_GROUP:
                     sub.update_attributes({"label": label, "lmax": self.surface_lmax.get(label, self.lmax)})
+                new_groups.append((sub, cols, row_dimension, int(rows)))
+                self._listed.discard(group_path)  # listed again, with the arrays made now
+        if new_groups:
+            create_groups(new_groups)
         writes = []
         for group_path, pieces in parts.items():
             cols, row_dimension = self._group_layout(group_path)

@@ -17,16 +17,22 @@ One zarr v3 group per run at ``<archive_root>/<run_id>.zarr``::
                                of its link (a gap without drops: one row, count 0); "range"
         formation/             one row per constant-expansion search of a pair before its
                                common horizon formed, with the formation forecast; "search"
+        journal/               commits not yet folded into the arrays (journal.py), not zarr
 
-The tracking groups and ``client_gaps/`` are created by the first commit that writes to them.
+The tracking groups and ``client_gaps/`` are created by the first fold after a commit wrote to them.
 
 Every array grows along axis 0 and sets ``dimension_names`` so that ``xarray.open_zarr``
 opens each group. The time-series groups (slices, surfaces) name their row dimension ``time``,
 so their ``time`` column is the dimension coordinate when xarray opens them (archives written
-before this used "slice" and "sample"; the reader handles both). The writer consolidates the
-metadata after every commit, so ``xarray.open_zarr`` opens a group without a warning and sees
-the rows of the last completed commit. Rows become visible to readers only when the root attribute
-``committed_rows`` counts them: the writer writes rows first and bumps the counter last.
+before this used "slice" and "sample"; the reader handles both).
+
+Commits are written behind (writer.py, journal.py): each commit is first a file of
+``<run_id>.zarr/journal/`` (no ``zarr.json``: zarr and xarray ignore it); the writer *folds* the
+journal into the arrays in bulk, then bumps the root attribute ``committed_rows`` (and
+``journal_folded_through``, the last commit folded), then consolidates the metadata, so
+``xarray.open_zarr`` opens a group without a warning and sees the rows of the last fold (every
+row once the run closed). Rows in the arrays count only when ``committed_rows`` counts them;
+the project's reader adds the journal's commits after ``journal_folded_through``.
 """
 
 from __future__ import annotations

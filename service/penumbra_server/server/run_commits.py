@@ -2,7 +2,9 @@
 given consecutive sequence numbers, written in one archive commit on the run's archive thread,
 and only then appended to the event log (an event is announced only once it is archived).
 Spooled slices whose fate is archived are released here. An archive failure stops the run
-taking slices (``failed_reason``) and announces nothing of the failed batch.
+taking slices (``failed_reason``) and announces nothing of the failed batch. A commit is archived
+once it is durable in the archive's journal; the journal is folded into the zarr arrays after
+the announcement, when the writer's fold policy asks, or when the run stays idle that long.
 
 A mixin of :class:`~penumbra_server.server.runs.RunRecord` (its state is set up there).
 """

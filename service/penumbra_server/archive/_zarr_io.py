@@ -19,7 +19,8 @@ from zarr.storage import MemoryStore
 from .. import crash_points
 from . import _layout as layout
 
-__all__ = ["ArchiveError", "members", "column_block", "write_blocks", "consolidate", "create_column", "create_columns", "create_groups"]
+__all__ = ["ArchiveError", "members", "column_block", "write_blocks", "consolidate", "create_column", "create_columns",
+           "create_groups"]
 
 _WARNINGS_LOCK = threading.Lock()
 #: zarr's note on the journal directory inside the group (journal.py): expected, not a fault.
@@ -57,8 +58,8 @@ def column_block(column: layout.Column, rows: Sequence[Mapping], row_kind: str) 
 
 def write_blocks(blocks: Sequence[tuple[zarr.Array, int, int, np.ndarray]]) -> None:
     """Grow each array to ``stop`` rows and write ``block`` to rows start:stop, all columns at
-    once: one wait for zarr's I/O loop per commit instead of two per column (a commit touches
-    about 150 columns; one at a time that was most of a slice's time in the server)."""
+    once: one wait for zarr's I/O loop per fold instead of two per column (a fold touches
+    about 200 columns)."""
     async def write(arr: zarr.Array, start: int, stop: int, block: np.ndarray) -> None:
         target = arr.async_array
         if target.shape[0] != stop:

@@ -21,10 +21,13 @@ POINTS: tuple[str, ...] = (
     "spool-before-rename",       # the slice's spool file written and flushed, not yet renamed
     "spool-before-ack",          # the spool file in place, the client not yet answered
     "part-spooled-before-ack",   # a part of a slice sent in parts in its part file, its sender not yet answered
-    "archive-mid-group",         # a new archive group half created (some of its arrays)
-    "archive-mid-commit",        # a commit's rows written, its committed-row counts not yet
-    "archive-before-consolidate",  # counts written, consolidated metadata not yet
+    "archive-mid-commit",        # a commit's journal file written and flushed, not yet renamed
+    "archive-journal-written",   # a commit's journal file in place, the commit not yet returned
     "commit-before-release",     # a slice archived, its spool file not yet removed
+    "archive-mid-group",         # a fold: a new archive group half created (some of its arrays)
+    "archive-mid-fold",          # a fold: the journal's rows written to the arrays, their counts not yet
+    "archive-before-consolidate",  # a fold: counts written, consolidated metadata not yet
+    "archive-before-journal-trim",  # a fold: all written, the folded journal files not yet removed
 )
 
 

@@ -23,9 +23,11 @@ configurations run one after another, interleaved, in one process run ("process 
 "process 2", "dask 2").
 
 Archive share: in the "process 2" run, the time the server's archive thread spends in
-ArchiveWriter.commit and add_surface (timed by wrapping those methods in this process), per
-processed slice, over the mean wall time of a slice in the server from the start of its
-processing to its slice_processed commit (latency_s - queue_wait_s of the archive's slice rows).
+ArchiveWriter.commit, add_surface, fold and close (timed by wrapping those methods in this
+process: every archive write of a run after its creation, the journal writes of the commits and
+the bulk folds of the journal into the zarr arrays alike), per processed slice, over the mean
+wall time of a slice in the server from the start of its processing to its slice_processed
+commit (latency_s - queue_wait_s of the archive's slice rows).
 """
 
 from __future__ import annotations
@@ -52,7 +54,8 @@ from penumbra_server.server.executors import EngineSettings, start_executor
 
 
 class ArchiveClock:
-    """Seconds spent in (and calls of) the archive writer's commit and add_surface, per archive path."""
+    """Seconds spent in (and calls of) the archive writer's commit, add_surface, fold and close,
+    per archive path (a fold called inside a commit counts once, in the commit)."""
 
     def __init__(self) -> None:
         self.seconds: dict[str, float] = {}
@@ -60,14 +63,19 @@ class ArchiveClock:
         self._lock = threading.Lock()
 
     def install(self) -> None:
-        for name in ("commit", "add_surface"):
+        inside = threading.local()
+        for name in ("commit", "add_surface", "fold", "close"):
             original = getattr(ArchiveWriter, name)
 
             def timed(writer, *args, _original=original, **kwargs):
+                if getattr(inside, "busy", False):  # nested (commit -> fold): timed by the outer call
+                    return _original(writer, *args, **kwargs)
+                inside.busy = True
                 started = time.perf_counter()
                 try:
                     return _original(writer, *args, **kwargs)
                 finally:
+                    inside.busy = False
                     with self._lock:
                         key = str(writer.path)
                         self.seconds[key] = self.seconds.get(key, 0.0) + time.perf_counter() - started

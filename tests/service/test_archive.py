@@ -14,6 +14,7 @@ from penumbra_server.archive import (
     SLICE_OUTCOME_SKIPPED,
     ArchiveError,
     ArchiveWriter,
+    FoldPolicy,
     list_archives,
     open_archive,
     surface_columns,
@@ -23,7 +24,7 @@ LMAX = 4
 NCOEF = (LMAX + 1) ** 2
 
 
-def _writer(tmp_path, run_id="run-test", labels=("A", "B")):
+def _writer(tmp_path, run_id="run-test", labels=("A", "B"), fold_commits=64):
     return ArchiveWriter.create(
         tmp_path,
         run_id,
@@ -32,6 +33,7 @@ def _writer(tmp_path, run_id="run-test", labels=("A", "B")):
         surface_labels=labels,
         lmax=LMAX,
         software_version="test",
+        fold_policy=FoldPolicy(commits=fold_commits),
     )
 
 
@@ -68,8 +70,13 @@ def test_rows_written_are_read_back_with_units_and_dimensions(tmp_path):
     np.testing.assert_allclose(a["centre"][0], [1, 2, 3])
     b = view.surface("B")
     assert not b["found"][0] and np.isnan(b["area"][0]) and b["status"][0] == 2
-    # every array names its dimensions, so xarray opens each group as it is on disk
+    # every array names its dimensions, so xarray opens each group as it is on disk: the rows
+    # are in the zarr arrays once the writer folded its journal (here: at close)
     xr = pytest.importorskip("xarray")
+    assert writer.unfolded_commits == 1
+    assert xr.open_zarr(str(view.path), group="slices", consolidated=False).sizes["time"] == 0
+    writer.close()
+    assert writer.unfolded_commits == 0 and not (writer.path / "journal" / "000000000001.commit").exists()
     ds = xr.open_zarr(str(view.path), group="surfaces/A", consolidated=False)
     assert ds["coefficients"].dims == ("time", "harmonic")
     assert ds["centre"].dims == ("time", "xyz")
@@ -96,8 +103,9 @@ def test_reader_ignores_rows_beyond_the_committed_count(tmp_path):
     assert areas.shape == (2,) and np.allclose(areas, 16 * np.pi)
 
 
-def test_live_reader_always_sees_a_consistent_prefix(tmp_path):
-    writer = _writer(tmp_path, labels=("A",))
+@pytest.mark.parametrize("fold_commits", [2, 64])  # folds racing the reader; the journal only
+def test_live_reader_always_sees_a_consistent_prefix(tmp_path, fold_commits):
+    writer = _writer(tmp_path, labels=("A",), fold_commits=fold_commits)
     rounds = 15
     failures: list[str] = []
     done = threading.Event()
@@ -152,7 +160,7 @@ def test_an_archive_with_the_older_five_multipoles_is_widened_on_reopening(tmp_p
     # older writer left them; a restarted server appends rows of nine.
     writer = _writer(tmp_path)
     row = dict(_surface_row(1), mass_multipoles=np.arange(9.0), spin_multipoles=np.arange(9.0))
-    writer.commit(surface_rows={"A": [row]})
+    writer.commit(surface_rows={"A": [row]}, fold=True)
     group = zarr.open_group(str(writer.path / "surfaces" / "A"), mode="r+", zarr_format=3)
     del group["mass_multipoles"]
     old = group.create_array("mass_multipoles", shape=(1, 5), chunks=(256, 5), dtype="float64", fill_value=np.nan,

@@ -66,13 +66,16 @@ def _close(stub, run_id: str) -> pb.Run | None:
         raise
 
 
+#: The archive's journal folded into its zarr arrays every 2 commits: kills meet folds too.
+FOLD_OFTEN = ("archive_fold_commits=2",)
+
 #: Random-moment kills after the named ones (bounded: each costs a server start).
 RANDOM_KILLS = 2
 
 
 def _random_life(tmp_path, archive, client: AckingClient, run_id: str, upto: int, chooser: random.Random) -> None:
     """A server life ended by kill -9 at a random moment while slices are sent."""
-    serve = Serve(tmp_path, archive)
+    serve = Serve(tmp_path, archive, options=FOLD_OFTEN)
     try:
         _after_restart(serve.stub, run_id, client)
         sender = threading.Thread(target=_send_unacked, args=(serve.stub, run_id, client, upto), daemon=True)
@@ -92,11 +95,13 @@ def test_kills_lose_no_acknowledged_slice(tmp_path):
     archive = tmp_path / "archive"
     client = AckingClient(_slice)
     crashes = [
-        "archive-mid-group:3",          # the first tracking groups half created
+        "archive-mid-group:3",          # a fold: the first tracking groups half created
         "spool-before-rename:1",        # a slice half written to the spool: never acknowledged
         "spool-before-ack:1",           # a slice on disk, its answer never sent: replayed
-        "archive-mid-commit:2",         # rows written, their committed counts not
-        "archive-before-consolidate:2", # counts written, consolidated metadata not
+        "archive-mid-commit:2",         # a commit's journal file written, not renamed
+        "archive-mid-fold:2",           # a fold: rows written, their committed counts not
+        "archive-before-consolidate:2", # a fold: counts written, consolidated metadata not
+        "archive-before-journal-trim:2",  # a fold complete, its journal files not removed
         "commit-before-release:2",      # archived, spool file not removed; a CloseRun in flight
     ]
     run_id = None
@@ -104,7 +109,7 @@ def test_kills_lose_no_acknowledged_slice(tmp_path):
     kills = 0
     replayed = 0
     for crash in crashes:
-        serve = Serve(tmp_path, archive, crash)
+        serve = Serve(tmp_path, archive, crash, options=FOLD_OFTEN)
         try:
             if run_id is None:
                 run_id = _open(serve.stub)
@@ -125,7 +130,7 @@ def test_kills_lose_no_acknowledged_slice(tmp_path):
         _random_life(tmp_path, archive, client, run_id, sent_upto, chooser)
         kills += 1
     # SIGTERM with slices queued: the graceful stop leaves them in the spool for the next start.
-    serve = Serve(tmp_path, archive)
+    serve = Serve(tmp_path, archive, options=FOLD_OFTEN)
     try:
         replayed += _after_restart(serve.stub, run_id, client).slices_replayed
         sent_upto += PER_LIFE
@@ -135,7 +140,7 @@ def test_kills_lose_no_acknowledged_slice(tmp_path):
         check_archive_after_kill(archive_path(archive, run_id))
     finally:
         serve.close()
-    serve = Serve(tmp_path, archive)
+    serve = Serve(tmp_path, archive, options=FOLD_OFTEN)
     try:
         replayed += _after_restart(serve.stub, run_id, client).slices_replayed
         assert _send_unacked(serve.stub, run_id, client, sent_upto), serve.log.read_text()

@@ -19,7 +19,7 @@ from ._layout import (
 )
 from .displacement import ArchivedDisplacement, displacement_from_row, displacement_row
 from .reader import ArchiveSummary, ArchiveView, list_archives, open_archive
-from .writer import ArchiveError, ArchiveWriter
+from .writer import ArchiveError, ArchiveWriter, FoldPolicy
 
 __all__ = [
     "ARCHIVE_FORMAT_VERSION",
@@ -36,6 +36,7 @@ __all__ = [
     "ArchiveSummary",
     "ArchiveView",
     "ArchiveWriter",
+    "FoldPolicy",
     "archive_path",
     "list_archives",
     "open_archive",

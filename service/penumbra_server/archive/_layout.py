@@ -17,16 +17,22 @@ One zarr v3 group per run at ``<archive_root>/<run_id>.zarr``::
                                of its link (a gap without drops: one row, count 0); "range"
         formation/             one row per constant-expansion search of a pair before its
                                common horizon formed, with the formation forecast; "search"
+        journal/               commits not yet folded into the arrays (journal.py), not zarr
 
-The tracking groups and ``client_gaps/`` are created by the first commit that writes to them.
+The tracking groups and ``client_gaps/`` are created by the first fold after a commit wrote to them.
 
 Every array grows along axis 0 and sets ``dimension_names`` so that ``xarray.open_zarr``
 opens each group. The time-series groups (slices, surfaces) name their row dimension ``time``,
 so their ``time`` column is the dimension coordinate when xarray opens them (archives written
-before this used "slice" and "sample"; the reader handles both). The writer consolidates the
-metadata after every commit, so ``xarray.open_zarr`` opens a group without a warning and sees
-the rows of the last completed commit. Rows become visible to readers only when the root attribute
-``committed_rows`` counts them: the writer writes rows first and bumps the counter last.
+before this used "slice" and "sample"; the reader handles both).
+
+Commits are written behind (writer.py, journal.py): each commit is first a file of
+``<run_id>.zarr/journal/`` (no ``zarr.json``: zarr and xarray ignore it); the writer *folds* the
+journal into the arrays in bulk, then bumps the root attribute ``committed_rows`` (and
+``journal_folded_through``, the last commit folded), then consolidates the metadata, so
+``xarray.open_zarr`` opens a group without a warning and sees the rows of the last fold (every
+row once the run closed). Rows in the arrays count only when ``committed_rows`` counts them;
+the project's reader adds the journal's commits after ``journal_folded_through``.
 """
 
 from __future__ import annotations
@@ -98,9 +104,12 @@ UNITS: dict[str, str] = {
     "bytes": "byte",
 }
 
-# Rows per chunk along the growing axis: a chunk is rewritten by every commit that touches it,
-# so keep it small enough that this stays cheap and large enough that a long run has few files.
+# Rows per chunk along the growing axis: a chunk is rewritten by every fold that touches it, so
+# keep it small enough that this stays cheap and large enough that a long run has few files.
 _ROWS_PER_CHUNK = 1024
+# Wide rows (harmonic coefficients, a displacement's reference) get fewer rows per chunk, so that
+# a chunk holds at most about this many bytes (at least 16 rows).
+_CHUNK_BYTES = 128 * 1024
 
 
 @dataclass(frozen=True)
@@ -127,7 +136,11 @@ class Column:
     def chunks(self) -> tuple[int, ...]:
         # Rows with trailing dimensions are wider: fewer per chunk keeps chunks of similar size.
         rows = _ROWS_PER_CHUNK if not self.trailing else _ROWS_PER_CHUNK // 4
-        return (rows,) + tuple(size for _, size in self.trailing)
+        trailing = tuple(size for _, size in self.trailing)
+        row_bytes = int(np.prod(trailing)) * (8 if self.dtype == "str" else np.dtype(self.dtype).itemsize)
+        while rows > 16 and rows * row_bytes > _CHUNK_BYTES:
+            rows //= 2
+        return (rows,) + trailing
 
     def dimension_names(self, row_dimension: str) -> list[str]:
         return [row_dimension] + [dim for dim, _ in self.trailing]

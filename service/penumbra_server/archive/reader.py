@@ -1,8 +1,10 @@
 """Reading run archives: a consistent prefix of a live or finished run.
 
 A view reads the root attributes once and trusts only their ``committed_rows``: rows beyond
-the counts may be half written. zarr readers keep the shapes they opened with, so call
-:func:`open_archive` again to see rows committed since.
+the counts may be half written. The rows of commits not yet folded into the zarr arrays are read
+from the archive's journal (journal.py) and appended, so a view shows every committed row. zarr
+readers keep the shapes they opened with, so call :func:`open_archive` again to see rows
+committed since.
 """
 
 from __future__ import annotations
@@ -17,6 +19,7 @@ import zarr
 
 from . import _layout as layout
 from .displacement import ArchivedDisplacement, displacement_from_row
+from .journal import JOURNAL_DIRECTORY, JournalEntry, contiguous_entries
 
 __all__ = ["ArchiveView", "ArchiveSummary", "open_archive", "list_archives", "ArchivedDisplacement",
            "displacement_from_row"]
@@ -36,6 +39,21 @@ def _open_root(path: Path, *, attempts: int = 5) -> zarr.Group:
     raise AssertionError("unreachable")
 
 
+def _open_consistent(path: Path, *, attempts: int = 20) -> tuple[zarr.Group, list[JournalEntry]]:
+    """The root group and the journal's commits after its last fold, read consistently: a fold
+    that completed meanwhile (its journal files may be gone) makes the read start again."""
+    for _ in range(attempts):
+        group = _open_root(path)
+        through = int(group.attrs.get("journal_folded_through", 0))
+        try:
+            entries = contiguous_entries(path / JOURNAL_DIRECTORY, through)
+        except FileNotFoundError:  # removed by a fold between the listing and the read
+            continue
+        if int(_open_root(path).attrs.get("journal_folded_through", 0)) == through:
+            return group, entries
+    raise RuntimeError(f"{path}: the archive was folded during each of {attempts} reads; try again")
+
+
 class ArchiveView:
     """A snapshot of one run archive: attributes plus committed rows of every array.
 
@@ -45,15 +63,19 @@ class ArchiveView:
         committed_rows: group path -> rows visible through this view.
     """
 
-    def __init__(self, path: Path, group: zarr.Group) -> None:
+    def __init__(self, path: Path, group: zarr.Group, journal: list[JournalEntry] | None = None) -> None:
         self.path = path
         self._group = group
-        self.attrs: dict = dict(group.attrs)
-        if self.attrs.get("penumbra_archive_version") != layout.ARCHIVE_FORMAT_VERSION:
+        root: dict = dict(group.attrs)
+        if root.get("penumbra_archive_version") != layout.ARCHIVE_FORMAT_VERSION:
             raise ValueError(
                 f"{path}: not a Penumbra run archive (penumbra_archive_version="
-                f"{self.attrs.get('penumbra_archive_version')!r}, expected {layout.ARCHIVE_FORMAT_VERSION})"
+                f"{root.get('penumbra_archive_version')!r}, expected {layout.ARCHIVE_FORMAT_VERSION})"
             )
+        #: Rows in the zarr arrays per group (the last fold's counts); the rest is in the journal.
+        self._folded_rows: dict[str, int] = {k: int(v) for k, v in root["committed_rows"].items()}
+        self._journal = list(journal or ())
+        self.attrs: dict = dict(self._journal[-1].attrs) if self._journal else root
         self.committed_rows: dict[str, int] = {k: int(v) for k, v in self.attrs["committed_rows"].items()}
 
     @property
@@ -84,10 +106,20 @@ class ArchiveView:
         """Harmonic degree of ``surfaces/<label>`` (a common surface may have its own; else lmax)."""
         return int(self.attrs.get("surface_lmax", {}).get(label, self.lmax))
 
+    def _zarr_arrays(self, group_path: str) -> dict:
+        try:
+            return dict(self._group[group_path].arrays())
+        except KeyError:  # created by a commit still in the journal
+            return {}
+
     def _columns(self, group_path: str) -> dict[str, np.ndarray]:
-        rows = self.committed_rows[group_path]
-        group = self._group[group_path]
-        return {name: _plain(arr[:rows]) for name, arr in sorted(group.arrays())}
+        rows = self._folded_rows.get(group_path, 0)
+        folded = {name: _plain(arr[:rows]) for name, arr in self._zarr_arrays(group_path).items()}
+        parts = [(rows, folded)]
+        for entry in self._journal:
+            if group_path in entry.groups:
+                parts.append((entry.rows(group_path), entry.groups[group_path][1]))
+        return _merge_parts(parts) if len(parts) > 1 else dict(sorted(folded.items()))
 
     def slices(self) -> dict[str, np.ndarray]:
         """Columns of ``slices/`` (see the layout), committed rows only."""
@@ -111,12 +143,22 @@ class ArchiveView:
     def _dataset(self, group_path: str, row_dimension: str):
         import xarray as xr  # optional: only the report and tests need it
 
-        group = self._group[group_path]
-        rows = self.committed_rows[group_path]
+        arrays = self._zarr_arrays(group_path)
+        described = _layout_columns(group_path, self)
+        row_dim = next((a.metadata.dimension_names[0] for a in arrays.values() if a.metadata.dimension_names),
+                       row_dimension or "row")
         variables = {}
-        for name, arr in sorted(group.arrays()):
-            dims = tuple(arr.metadata.dimension_names or ())
-            variables[name] = xr.Variable(dims, _plain(arr[:rows]), attrs=dict(arr.attrs))
+        for name, values in self._columns(group_path).items():
+            if name in arrays:
+                dims, attrs = tuple(arrays[name].metadata.dimension_names or ()), dict(arrays[name].attrs)
+            elif name in described:  # a column of the layout only the journal holds yet
+                column = described[name]
+                dims = tuple(column.dimension_names(row_dim))
+                attrs = {key: value for key, value in (("units", column.unit), ("description", column.description))
+                         if value}
+            else:
+                dims, attrs = (row_dim,) + tuple(f"{name}_{axis}" for axis in range(1, values.ndim)), {}
+            variables[name] = xr.Variable(dims, values, attrs=attrs)
         ds = xr.Dataset(variables, attrs={"run_id": self.run_id, "group": group_path, "row_dimension": row_dimension})
         if "time" in ds.variables and len(ds["time"].dims) == 1 and "time" not in ds.coords:
             row = ds["time"].dims[0]
@@ -268,6 +310,56 @@ def _plain(values) -> np.ndarray:
     return arr
 
 
+def _fill_value(dtype: np.dtype):
+    if dtype.kind == "f":
+        return np.nan
+    if dtype.kind == "b":
+        return False
+    if dtype.kind in "iu":
+        return -1
+    return ""
+
+
+def _merge_parts(parts: list[tuple[int, dict[str, np.ndarray]]]) -> dict[str, np.ndarray]:
+    """Columns of consecutive row ranges (the folded arrays, then each journal commit) joined;
+    a column missing from a range (older layout) reads as its fill value there, a narrower
+    one is padded with it."""
+    names = sorted(set().union(*(columns for _, columns in parts)))
+    merged = {}
+    for name in names:
+        reference = next(columns[name] for _, columns in reversed(parts) if name in columns)
+        dtype = object if reference.dtype.kind in "OTU" else reference.dtype
+        trailing = reference.shape[1:]
+        pieces = []
+        for rows, columns in parts:
+            piece = columns.get(name)
+            if piece is not None and piece.shape[1:] == trailing:
+                pieces.append(_plain(piece))
+                continue
+            filled = np.full((rows,) + trailing, _fill_value(np.dtype(dtype)), dtype=dtype)
+            if piece is not None and piece.ndim == filled.ndim:
+                filled[tuple(slice(0, min(a, b)) for a, b in zip(piece.shape, filled.shape))] = \
+                    piece[tuple(slice(0, min(a, b)) for a, b in zip(piece.shape, filled.shape))]
+            pieces.append(filled)
+        merged[name] = np.concatenate(pieces) if pieces else reference[:0]
+    return merged
+
+
+def _layout_columns(group_path: str, view: "ArchiveView") -> dict[str, layout.Column]:
+    """The layout's columns of ``group_path`` by name (empty for a path the layout lacks)."""
+    head, _, label = group_path.partition("/")
+    if group_path == layout.SLICES_GROUP:
+        columns = layout.SLICE_COLUMNS
+    elif head == layout.SURFACES_GROUP:
+        columns = layout.surface_columns(view.surface_lmax(label))
+    else:
+        try:
+            columns = layout.group_columns(group_path)[0]
+        except KeyError:
+            columns = ()
+    return {column.name: column for column in columns}
+
+
 def _empty(column: layout.Column) -> np.ndarray:
     shape = (0,) + tuple(size for _, size in column.trailing)
     return np.zeros(shape, dtype=object if column.dtype == "str" else column.dtype)
@@ -280,7 +372,8 @@ def open_archive(path_or_root: str | Path, run_id: str | None = None) -> Archive
         path = layout.archive_path(path, run_id)
     if not path.exists():
         raise FileNotFoundError(f"{path}: no run archive there")
-    return ArchiveView(path, _open_root(path))
+    group, journal = _open_consistent(path)
+    return ArchiveView(path, group, journal)
 
 
 @dataclass(frozen=True)

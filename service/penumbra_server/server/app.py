@@ -23,6 +23,7 @@ from grpc_reflection.v1alpha import reflection
 from penumbra_shim._wire import horizons_pb2 as pb
 from penumbra_shim._wire import horizons_pb2_grpc as pb_grpc
 
+from ..archive.writer import FoldPolicy
 from ._spec import RunSettings
 from .allocator import return_large_buffers
 from .auth import AuthInterceptor, check_exposure
@@ -84,6 +85,13 @@ class ServerOptions:
     #: one before, so a run's results do not depend on how fast the workers are; 2 or more
     #: keeps every worker busy when one run's slices come faster than one slice's finds.
     slices_in_flight: int = 1
+    #: The archive's write-behind (archive/writer.py): a commit is one durable journal file; the
+    #: zarr arrays receive the journal's rows in bulk ("fold") once it holds this many commits,
+    #: once its oldest commit is archive_fold_after_s old (also when the run is idle), when the
+    #: run closes, when the server stops and when a restarted server reopens the run. The
+    #: project's reader sees every committed row at once; xarray.open_zarr sees the folded rows.
+    archive_fold_commits: int = 64
+    archive_fold_after_s: float = 30.0
     #: Per run, the planner of the surfaces to look for; None: the default
     #: :class:`~penumbra_server.server.planning.SteeringPlanner` (forecast seeds, common horizon).
     #: A planner with an ``attach(steering)`` method is handed the run's tracking state.
@@ -181,6 +189,10 @@ async def create_server(
     options = options or ServerOptions()
     if options.slices_in_flight < 1:
         raise ValueError(f"slices_in_flight: expected at least 1 slice of a run in flight, got {options.slices_in_flight}")
+    if options.archive_fold_commits < 1:
+        raise ValueError(f"archive_fold_commits: expected at least 1 commit per fold, got {options.archive_fold_commits}")
+    if not options.archive_fold_after_s > 0:
+        raise ValueError(f"archive_fold_after_s: expected a positive number of seconds, got {options.archive_fold_after_s}")
     archive_root = Path(archive_root)
     archive_root.mkdir(parents=True, exist_ok=True)
     owns_executor = executor is None
@@ -197,6 +209,8 @@ async def create_server(
                 interpolation_order=options.interpolation_order,
                 common_horizon=options.common_horizon,
                 slices_in_flight=options.slices_in_flight,
+                archive_fold=FoldPolicy(commits=options.archive_fold_commits,
+                                        after_s=options.archive_fold_after_s),
             ),
             planner_factory=options.planner_factory,
             slice_observer_factory=options.slice_observer_factory,

@@ -2,7 +2,9 @@
 given consecutive sequence numbers, written in one archive commit on the run's archive thread,
 and only then appended to the event log (an event is announced only once it is archived).
 Spooled slices whose fate is archived are released here. An archive failure stops the run
-taking slices (``failed_reason``) and announces nothing of the failed batch.
+taking slices (``failed_reason``) and announces nothing of the failed batch. A commit is archived
+once it is durable in the archive's journal; the journal is folded into the zarr arrays after
+the announcement, when the writer's fold policy asks, or when the run stays idle that long.
 
 A mixin of :class:`~penumbra_server.server.runs.RunRecord` (its state is set up there).
 """
@@ -64,13 +66,21 @@ class RunCommits:
         while True:
             while not self._pending:
                 self._pending_changed.clear()
-                await self._pending_changed.wait()
+                if not self.writer.unfolded_commits:
+                    await self._pending_changed.wait()
+                    continue
+                try:  # an idle run's journal is folded after the policy's age, not left behind
+                    await asyncio.wait_for(self._pending_changed.wait(), self.writer.fold_policy.after_s)
+                except asyncio.TimeoutError:
+                    await self._fold()
             batch, self._pending = self._pending, []
             merged = merge_batch(batch, first_seq=self.log.next_seq, now=time.time())
             try:
+                # Durable in the archive's journal when this returns; folded into the arrays
+                # after the events are announced (below), never on the way to them.
                 await self._in_archive_thread(self.writer.commit, slice_rows=merged.slice_rows,
                                               surface_rows=merged.surface_rows, group_rows=merged.group_rows,
-                                              attrs=merged.attrs)
+                                              attrs=merged.attrs, fold=False)
             except asyncio.CancelledError:
                 for emission in batch:
                     emission.done.cancel()
@@ -98,3 +108,15 @@ class RunCommits:
                 self.log.append(event)
                 if not emission.done.done():
                     emission.done.set_result(event)
+            if self.writer.fold_due():
+                await self._fold()
+
+    async def _fold(self) -> None:
+        """Fold the archive's journal into its zarr arrays (on the archive thread). A failure is
+        logged and left to the next fold: every commit is durable in the journal already."""
+        try:
+            await self._in_archive_thread(self.writer.fold)
+        except asyncio.CancelledError:
+            raise
+        except Exception:
+            log.exception("run %s: folding the archive journal failed; it is tried again later", self.run_id)

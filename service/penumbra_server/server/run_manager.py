@@ -106,7 +106,7 @@ class RunManager:
                 lambda: ArchiveWriter.create(
                     self.archive_root, run_id, name=settings.display_name, run_spec=settings.to_dict(),
                     surface_labels=settings.labels, lmax=settings.lmax, software_version=software_version(),
-                    created_unix_s=created,
+                    created_unix_s=created, fold_policy=self.options.archive_fold,
                 ),
             )
             if request_id:  # kept in the archive: a retry after a server restart finds the run too
@@ -149,7 +149,8 @@ class RunManager:
             if summary.run_id in self.runs or summary.state not in ("open", "closed"):
                 continue
             try:
-                writer = await loop.run_in_executor(self.archive_thread, ArchiveWriter.open_existing, summary.path)
+                writer = await loop.run_in_executor(self.archive_thread, ArchiveWriter.open_existing, summary.path,
+                                                    self.options.archive_fold)
                 attrs = writer.attrs
                 settings = RunSettings.from_dict(attrs["run_spec"])
                 # Read before the run is registered: no slice may reach it half restored.

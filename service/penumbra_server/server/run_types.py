@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from ..archive.writer import FoldPolicy
 from ..numerics.slices import Slice
 
 __all__ = ["ManagerOptions", "QueuedSlice"]
@@ -21,6 +22,8 @@ class ManagerOptions:
     #: Slices of one run whose finds may run at once (the next slice's finds start from the
     #: forecast while earlier ones are still searched); results are applied in iteration order.
     slices_in_flight: int = 1
+    #: When a run's archive journal is folded into its zarr arrays (archive/writer.py).
+    archive_fold: FoldPolicy = FoldPolicy()
 
 
 @dataclass(frozen=True, eq=False)

@@ -248,6 +248,8 @@ class RunRecord(RunIngest, RunProcessing, RunCommits):
             await self._committer_task
         except (asyncio.CancelledError, Exception):
             pass
+        # The journal into the arrays, so xarray sees every row of the run after the stop.
+        await self._fold()
 
     @property
     def tracks(self) -> dict[str, SurfaceState]:

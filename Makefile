@@ -23,7 +23,7 @@ demo: $(STAMP)
 	$(THREADS) $(VENV)/bin/penumbra demo --workdir penumbra-demo-output
 
 test: $(STAMP)
-	$(THREADS) $(PY) -m pytest -q -n 2 --dist loadfile
+	$(THREADS) $(PY) -m pytest -q -n 2 --dist loadfile --durations=25
 
 bench: $(STAMP)
 	$(THREADS) $(PY) tests/benchmarks/bench_finder.py

@@ -61,11 +61,11 @@ def test_a_server_on_the_dask_engine_finds_a_lone_hole(tmp_path):
         out, _ = process.communicate(timeout=60)
         assert process.returncode == 0, out
         assert "finder: dask local cluster of 1 worker process;" in out and "stopped" in out
-        deadline = time.monotonic() + 30.0  # children notice their parent's exit within a moment
+        deadline = time.monotonic() + 300.0  # hang-only: children notice their parent's exit within a moment
         while alive(workers) and time.monotonic() < deadline:
             time.sleep(0.05)
         leftover = alive(workers)
-        assert not leftover, f"processes {sorted(leftover)} of the dask engine outlived the server by 30 s"
+        assert not leftover, f"processes {sorted(leftover)} of the dask engine outlived the server by 300 s"
     finally:
         kill_all(workers)
         if process.poll() is None:
@@ -85,11 +85,11 @@ def test_a_killed_server_takes_its_local_dask_cluster_with_it(tmp_path):
         assert len(children) >= 2, commands  # and the worker
         process.kill()
         process.wait(timeout=30)
-        deadline = time.monotonic() + 60.0
+        deadline = time.monotonic() + 300.0  # hang-only
         while alive(children) and time.monotonic() < deadline:
             time.sleep(0.05)
         leftover = alive(children)
-        assert not leftover, f"processes {[cmdline(pid) for pid in leftover]} outlived the killed server by 60 s"
+        assert not leftover, f"processes {[cmdline(pid) for pid in leftover]} outlived the killed server by 300 s"
     finally:
         kill_all(children)
         if process.poll() is None:

@@ -26,6 +26,8 @@ from typing import Mapping
 
 import numpy as np
 
+from ..durable import fsync_directory
+
 __all__ = ["JOURNAL_DIRECTORY", "JournalEntry", "JournalError", "contiguous_entries", "read_entry",
            "remove_entries", "remove_temporary", "write_entry", "list_commits"]
 
@@ -67,14 +69,6 @@ def _file_name(commit: int) -> str:
     return f"{commit:012d}.commit"
 
 
-def _fsync_directory(directory: Path) -> None:
-    fd = os.open(directory, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 def write_entry(directory: Path, entry: JournalEntry, before_rename=None) -> Path:
     """Write ``entry`` durably as ``directory/<commit>.commit`` (tmp, fsync, rename, directory
     fsync); ``before_rename()`` is called with the temporary file flushed (a crash point)."""
@@ -108,7 +102,7 @@ def write_entry(directory: Path, entry: JournalEntry, before_rename=None) -> Pat
     if before_rename is not None:
         before_rename()
     os.replace(temporary, final)
-    _fsync_directory(directory)
+    fsync_directory(directory)
     return final
 
 
@@ -180,7 +174,7 @@ def remove_entries(directory: Path, through: int) -> None:
             (directory / _file_name(commit)).unlink(missing_ok=True)
             removed = True
     if removed:
-        _fsync_directory(directory)
+        fsync_directory(directory)
 
 
 def remove_temporary(directory: Path) -> list[str]:

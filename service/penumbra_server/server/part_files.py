@@ -22,8 +22,9 @@ import re
 from dataclasses import dataclass
 from pathlib import Path
 
+from ..durable import fsync_directory
 from ..numerics.slices import Patch, VariableSet
-from .spool import _fsync_directory, read_record, write_record
+from .spool import read_record, write_record
 
 __all__ = ["PartFiles", "StoredPart"]
 
@@ -110,7 +111,7 @@ class PartFiles:
             path.unlink(missing_ok=True)
             removed += 1
         if removed:
-            _fsync_directory(self.directory)
+            fsync_directory(self.directory)
         return removed
 
     def release_if_spooled(self, iteration: int, spooled: Path) -> int:

@@ -28,6 +28,7 @@ from typing import Iterable
 
 import numpy as np
 
+from ..durable import fsync_directory
 from ..numerics.slices import Patch, Slice, VariableSet
 from .run_types import QueuedSlice
 
@@ -50,14 +51,6 @@ class SpoolEntry:
 
     iteration: int
     path: Path
-
-
-def _fsync_directory(directory: Path) -> None:
-    fd = os.open(directory, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 def _field_bytes(arr: np.ndarray, order: str) -> memoryview:
@@ -98,7 +91,7 @@ def write_record(directory: Path, name: str, header: dict, patches) -> Path:
         os.fsync(f.fileno())
     crash_points.reached("spool-before-rename")
     os.replace(temporary, final)
-    _fsync_directory(directory)
+    fsync_directory(directory)
     return final
 
 
@@ -185,7 +178,7 @@ class RunSpool:
                 removed = True
             self.held.discard(int(iteration))
         if removed:
-            _fsync_directory(self.directory)
+            fsync_directory(self.directory)
 
     def remove_all(self) -> None:
         """Remove the spool directory (a closed run: everything it acknowledged is archived)."""

@@ -104,3 +104,14 @@ def alive(processes: dict[int, int]) -> dict[int, int]:
         if stat is not None and stat[2] == started and stat[0] != "Z":
             still[pid] = started
     return still
+
+
+def outlived(processes: dict[int, int], timeout_s: float) -> dict[int, int]:
+    """Those of ``processes`` still running after waiting up to ``timeout_s`` for all to end
+    (a deadline for a hang: returns as soon as none is left)."""
+    deadline = time.monotonic() + timeout_s
+    remaining = alive(processes)
+    while remaining and time.monotonic() < deadline:
+        time.sleep(0.05)
+        remaining = alive(processes)
+    return remaining

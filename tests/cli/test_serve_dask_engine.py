@@ -9,7 +9,6 @@ docs/references.md item 1).
 from __future__ import annotations
 
 import signal
-import time
 
 import numpy as np
 import pytest
@@ -17,7 +16,7 @@ import pytest
 import penumbra_shim as ps
 from penumbra_server.numerics.spacetimes import BrillLindquist, sample_patch
 
-from serve_support import alive, children_of, cmdline, kill_all, start_serve, stop, wait_for_ready
+from serve_support import children_of, cmdline, kill_all, outlived, start_serve, stop, wait_for_ready
 
 pytest.importorskip("distributed")
 pytestmark = pytest.mark.slow  # the server starts a Dask LocalCluster
@@ -61,10 +60,7 @@ def test_a_server_on_the_dask_engine_finds_a_lone_hole(tmp_path):
         out, _ = process.communicate(timeout=60)
         assert process.returncode == 0, out
         assert "finder: dask local cluster of 1 worker process;" in out and "stopped" in out
-        deadline = time.monotonic() + 300.0  # hang-only: children notice their parent's exit within a moment
-        while alive(workers) and time.monotonic() < deadline:
-            time.sleep(0.05)
-        leftover = alive(workers)
+        leftover = outlived(workers, 300.0)  # children notice their parent's exit within a moment
         assert not leftover, f"processes {sorted(leftover)} of the dask engine outlived the server by 300 s"
     finally:
         kill_all(workers)
@@ -85,10 +81,7 @@ def test_a_killed_server_takes_its_local_dask_cluster_with_it(tmp_path):
         assert len(children) >= 2, commands  # and the worker
         process.kill()
         process.wait(timeout=30)
-        deadline = time.monotonic() + 300.0  # hang-only
-        while alive(children) and time.monotonic() < deadline:
-            time.sleep(0.05)
-        leftover = alive(children)
+        leftover = outlived(children, 300.0)
         assert not leftover, f"processes {[cmdline(pid) for pid in leftover]} outlived the killed server by 300 s"
     finally:
         kill_all(children)

@@ -1,11 +1,10 @@
 """Worker processes and the resource tracker end when `penumbra serve` is killed with SIGKILL."""
 
 import sys
-import time
 
 import pytest
 
-from serve_support import alive, children_of, cmdline, kill_all, start_serve, stop, wait_for_ready
+from serve_support import children_of, cmdline, kill_all, outlived, start_serve, stop, wait_for_ready
 
 pytestmark = pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc (Linux)")
 
@@ -22,11 +21,7 @@ def test_workers_and_resource_tracker_exit_when_the_server_is_killed(tmp_path):
         assert len(trackers) == 1, {pid: cmdline(pid) for pid in children}
         process.kill()  # SIGKILL: no handler, no cleanup in the server
         process.wait(timeout=30)
-        deadline = time.monotonic() + 20.0
-        remaining = alive(children)
-        while remaining and time.monotonic() < deadline:
-            time.sleep(0.1)
-            remaining = alive(children)
+        remaining = outlived(children, 20.0)
         assert not remaining, ("still running 20 s after the server was killed: "
                                + "; ".join(f"{pid}: {cmdline(pid)}" for pid in remaining))
     finally:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 
 import penumbra_shim as ps
@@ -50,3 +52,13 @@ def lone_spec(name: str = "lone hole", *, lmax: int = 6, queue_depth: int = 4, m
 def raw_requests(outgoing: ps.OutgoingSlice, run_id: str, *, chunk_bytes: int = 1 << 20):
     """The wire messages the shim would send, as a list (tests then tamper with them)."""
     return list(outgoing.requests(run_id, chunk_bytes=chunk_bytes))
+
+
+def wait_until(condition, what: str, timeout_s: float) -> None:
+    """Poll ``condition()`` until it is true; fail naming ``what`` after ``timeout_s`` (a deadline
+    for a hang, not a timing assertion)."""
+    deadline = time.monotonic() + timeout_s
+    while not condition():
+        if time.monotonic() > deadline:
+            raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
+        time.sleep(0.02)

@@ -5,8 +5,6 @@ deterministically: every finder job is held (held_executor.py)."""
 
 from __future__ import annotations
 
-import time
-
 import grpc
 import pytest
 
@@ -17,20 +15,12 @@ from penumbra_server.server import BackgroundServer, ServerOptions
 from penumbra_server.server.admission import AdmissionDesk
 
 from held_executor import HeldExecutor
-from service_support import lone_hole_slice, lone_spec
+from service_support import lone_hole_slice, lone_spec, wait_until
 
 
 def _raw_run(address: str, run_id: str) -> pb.Run:
     with grpc.insecure_channel(address) as channel:
         return pb_grpc.HorizonServiceStub(channel).GetRun(pb.GetRunRequest(run_id=run_id), timeout=20).run
-
-
-def _wait(condition, what: str, timeout_s: float = 120.0) -> None:
-    deadline = time.monotonic() + timeout_s
-    while not condition():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
-        time.sleep(0.02)
 
 
 def test_a_slice_the_run_would_only_skip_is_dropped_by_the_client_and_never_uploaded(tmp_path):
@@ -50,11 +40,12 @@ def test_a_slice_the_run_would_only_skip_is_dropped_by_the_client_and_never_uplo
             during = _raw_run(bg.address, run.run_id)
             held.release()
             # One more slice once the queue drained: admitted, and its success reports the drops.
-            _wait(lambda: client.get_run(run.run_id).slices_processed == 2, "the two admitted slices processed")
+            wait_until(lambda: client.get_run(run.run_id).slices_processed == 2, "the two admitted slices processed",
+                       120.0)
             last = run.submit(lone_hole_slice(count)).result(120)
             assert last.accepted
             # The sender reports the drops right after that success (RecordClientGap): wait for it.
-            _wait(lambda: _raw_run(bg.address, run.run_id).client_gaps_recorded == 1, "the gap recorded")
+            wait_until(lambda: _raw_run(bg.address, run.run_id).client_gaps_recorded == 1, "the gap recorded", 120.0)
             run.close()
             events = list(client.watch(run.run_id, timeout_s=60))
             after = _raw_run(bg.address, run.run_id)

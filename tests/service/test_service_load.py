@@ -25,7 +25,7 @@ import pytest
 
 import penumbra_shim as ps
 
-from service_support import LONE_CENTRE, box, lone_hole, lone_spec, patch_data
+from service_support import LONE_CENTRE, box, lone_hole, lone_spec, patch_data, wait_until
 
 NODES = 41                      # 41^3 nodes x 12 ADM fields x 8 bytes = 6.6 MB per slice
 SLICES = 100
@@ -77,14 +77,6 @@ class _Server:
             self.proc.wait(60)
 
 
-def _wait(condition, what: str, timeout_s: float = 300.0) -> None:
-    deadline = time.monotonic() + timeout_s
-    while not condition():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
-        time.sleep(0.05)
-
-
 @pytest.mark.slow
 def test_one_run_at_ten_times_the_server_pace_stays_within_the_memory_budget(tmp_path):
     hole = lone_hole()
@@ -98,7 +90,7 @@ def test_one_run_at_ten_times_the_server_pace_stays_within_the_memory_budget(tmp
             # Warm-up: one slice processed, so that imports, pools and the archive are in memory.
             assert run.submit(one).result(120).accepted
             server.command("allow 1")
-            _wait(lambda: client.get_run(run.run_id).slices_processed == 1, "the warm-up slice")
+            wait_until(lambda: client.get_run(run.run_id).slices_processed == 1, "the warm-up slice", 300.0)
             # The same probe over an idle window first: what the machine's own load costs the loop.
             server.command("reset")
             time.sleep(IDLE_WINDOW_S)  # a measurement window, not a wait for a condition

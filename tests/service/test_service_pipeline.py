@@ -20,7 +20,7 @@ from penumbra_server.server.dispatch import FairDispatcher
 from penumbra_server.server.jobs import SurfaceJob
 
 from gated_executor import GatedExecutor
-from service_support import LONE_CENTRE, box, lone_hole, lone_hole_slice, lone_spec
+from service_support import LONE_CENTRE, box, lone_hole, lone_hole_slice, lone_spec, wait_until
 
 
 def _events(client, run_id):
@@ -155,11 +155,11 @@ def test_a_second_run_is_served_within_one_round_of_a_backlog(tmp_path):
             async def read_dispatched():
                 return list(dispatcher.dispatched)
 
-            _poll(lambda: waiting(busy.run_id) == 3, "the backlog's next slices queued at the dispatcher")
+            wait_until(lambda: waiting(busy.run_id) == 3, "the backlog's next slices queued at the dispatcher", 120.0)
             other = client.open_run(ps.RunSpec(variable_set="adm", bodies=(ps.Body("B", LONE_CENTRE, 1.0),),
                                                name="single", finder=ps.FinderOptions(lmax=6, tolerance=1e-8)))
             assert other.submit(lone_hole_slice(500, nodes=21)).result(60).accepted
-            _poll(lambda: waiting(other.run_id) == 1, "the second run's job queued at the dispatcher")
+            wait_until(lambda: waiting(other.run_id) == 1, "the second run's job queued at the dispatcher", 120.0)
             before = len(gated.entries("arrived"))
             gated.open_all()
             gated.wait_for("done", "B", 500, timeout_s=300)
@@ -171,13 +171,3 @@ def test_a_second_run_is_served_within_one_round_of_a_backlog(tmp_path):
     # One job of the backlog at most between the second run's job queueing and its dispatch.
     assert arrived.index(("B", 500)) - before <= 1
     assert {run for run, label, _ in dispatched if label == "B"} == {other.run_id}
-
-
-def _poll(condition, what: str, timeout_s: float = 120.0) -> None:
-    import time
-
-    deadline = time.monotonic() + timeout_s
-    while not condition():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"not reached within {timeout_s} s: {what}")
-        time.sleep(0.01)

@@ -43,6 +43,7 @@ import numpy as np
 
 __all__ = [
     "ARCHIVE_FORMAT_VERSION",
+    "fill_value_of",
     "ARCHIVE_SUFFIX",
     "METHOD_CODES",
     "Column",
@@ -112,6 +113,17 @@ _ROWS_PER_CHUNK = 1024
 _CHUNK_BYTES = 128 * 1024
 
 
+def fill_value_of(dtype: np.dtype):
+    """What an absent value reads as: NaN (float), False (bool), -1 (integer), "" (text)."""
+    if dtype.kind == "f":
+        return float("nan")
+    if dtype.kind == "b":
+        return False
+    if dtype.kind in "iu":
+        return -1
+    return ""
+
+
 @dataclass(frozen=True)
 class Column:
     """One array of a group: name, dtype, trailing dimensions, fill value, unit."""
@@ -124,14 +136,7 @@ class Column:
 
     @property
     def fill_value(self):
-        if self.dtype == "str":
-            return ""
-        kind = np.dtype(self.dtype).kind
-        if kind == "f":
-            return float("nan")
-        if kind == "b":
-            return False
-        return -1
+        return fill_value_of(np.dtype(object) if self.dtype == "str" else np.dtype(self.dtype))
 
     def chunks(self) -> tuple[int, ...]:
         # Rows with trailing dimensions are wider: fewer per chunk keeps chunks of similar size.

@@ -310,16 +310,6 @@ def _plain(values) -> np.ndarray:
     return arr
 
 
-def _fill_value(dtype: np.dtype):
-    if dtype.kind == "f":
-        return np.nan
-    if dtype.kind == "b":
-        return False
-    if dtype.kind in "iu":
-        return -1
-    return ""
-
-
 def _merge_parts(parts: list[tuple[int, dict[str, np.ndarray]]]) -> dict[str, np.ndarray]:
     """Columns of consecutive row ranges (the folded arrays, then each journal commit) joined;
     a column missing from a range (older layout) reads as its fill value there, a narrower
@@ -336,7 +326,7 @@ def _merge_parts(parts: list[tuple[int, dict[str, np.ndarray]]]) -> dict[str, np
             if piece is not None and piece.shape[1:] == trailing:
                 pieces.append(_plain(piece))
                 continue
-            filled = np.full((rows,) + trailing, _fill_value(np.dtype(dtype)), dtype=dtype)
+            filled = np.full((rows,) + trailing, layout.fill_value_of(np.dtype(dtype)), dtype=dtype)
             if piece is not None and piece.ndim == filled.ndim:
                 filled[tuple(slice(0, min(a, b)) for a, b in zip(piece.shape, filled.shape))] = \
                     piece[tuple(slice(0, min(a, b)) for a, b in zip(piece.shape, filled.shape))]

@@ -30,18 +30,26 @@ def _unit_of_file(root: str, path: str) -> str:
     return next((name for name in SHARED_SESSION_FIXTURES if name in text), path)
 
 
-@pytest.hookimpl(tryfirst=True)
-def pytest_xdist_make_scheduler(config, log):
-    if config.getoption("dist") != "loadfile":
-        return None
-    from xdist.scheduler import LoadScopeScheduling
+class _FileUnitScheduling:
+    """The xdist hook, registered only when xdist is loaded (``-p no:xdist`` knows no such hook)."""
 
-    root = str(config.rootpath)
+    @pytest.hookimpl(tryfirst=True)
+    def pytest_xdist_make_scheduler(self, config, log):
+        if config.getoption("dist") != "loadfile":
+            return None
+        from xdist.scheduler import LoadScopeScheduling
 
-    class FilesSharingSessionFixtures(LoadScopeScheduling):
-        """Units: a file, or all files naming one of SHARED_SESSION_FIXTURES."""
+        root = str(config.rootpath)
 
-        def _split_scope(self, nodeid: str) -> str:
-            return _unit_of_file(root, nodeid.split("::", 1)[0])
+        class FilesSharingSessionFixtures(LoadScopeScheduling):
+            """Units: a file, or all files naming one of SHARED_SESSION_FIXTURES."""
 
-    return FilesSharingSessionFixtures(config, log)
+            def _split_scope(self, nodeid: str) -> str:
+                return _unit_of_file(root, nodeid.split("::", 1)[0])
+
+        return FilesSharingSessionFixtures(config, log)
+
+
+def pytest_configure(config):
+    if config.pluginmanager.hasplugin("xdist"):
+        config.pluginmanager.register(_FileUnitScheduling(), "penumbra-file-units")

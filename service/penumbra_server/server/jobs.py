@@ -17,7 +17,7 @@ from ..numerics.slices import Patch, Slice, optional_fields
 from ..numerics.surfaces import Surface
 # Re-exported: the worker's measurements moved to quoted_quantities.py (tests and inner_jobs use them here).
 from .quoted_quantities import (ERROR_BAR_SOURCES, MULTIPOLE_N_MAX, STABILITY_LMAX_DROP, basic_quantities,  # noqa: F401
-                                error_bars, spin_quantities, stability_quantities)
+                                error_bars, spin_measurement, spin_quantities, stability_quantities)
 
 __all__ = [
     "REASON_FOUND",
@@ -314,12 +314,14 @@ def _found(job: SurfaceJob, kind: str, result, quantities: dict, message: str, t
         message = (f"{message}; solved at l_max {solved.lmax} (raised from {job.lmax}: not resolved "
                    f"at {job.lmax}), measured there, coefficients reported up to l = {job.lmax}")
     measured_in = result.geometry if result.geometry is not None else job.data
-    spin, notes = spin_quantities(solved, measured_in, job.interpolation_order)
+    spin, notes, measured = spin_measurement(solved, measured_in, job.interpolation_order)
     quantities.update(spin)
     stability, stability_notes = stability_quantities(solved, measured_in, job.interpolation_order)
     quantities.update(stability)
     notes.extend(stability_notes)
-    errors, error_notes = error_bars(solved, job.data, job.interpolation_order)
+    if getattr(measured_in, "order", job.interpolation_order) != job.interpolation_order:
+        measured = None  # measured at another interpolation order than the error bars compare at
+    errors, error_notes = error_bars(solved, job.data, job.interpolation_order, measured)
     quantities.update(errors)
     notes.extend(error_notes)
     if notes:

@@ -199,7 +199,7 @@ def basis_on_grid(lmax: int, grid_lmax: int) -> HarmonicBasis:
     """Harmonics up to ``lmax`` at the nodes of ``angular_grid(grid_lmax)`` (memoised: a pure
     function of its arguments; the finder's checks between nodes and the measurements reuse it)."""
     grid = angular_grid(grid_lmax)
-    basis = harmonic_basis(lmax, grid.theta, grid.phi)
+    basis = product_grid_basis(lmax, grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi])
     for name in ("Y", "d_theta", "d_phi", "d_theta_theta", "d_theta_phi", "d_phi_phi"):
         getattr(basis, name).setflags(write=False)
     return basis

@@ -346,13 +346,15 @@ def _found(job: SurfaceJob, kind: str, result, quantities: dict, message: str, t
 
 
 def warm_up(delay_s: float = 0.0) -> tuple[int, dict[str, str | None]]:
-    """Import the numerics in a fresh worker (so the first real job does not pay for it).
+    """Import the numerics in a fresh worker, the measurements too (so the first real job does not
+    pay for it: about 0.4 s for the measurement modules alone).
 
     Returns the worker's pid and its BLAS/OpenMP thread settings (the executor checks them).
     """
     import os
 
-    from ..numerics import finder, guesses, measures  # noqa: F401
+    from ..numerics import (circumferences, constant_expansion, displaced_finder, error_bars, finder,  # noqa: F401
+                            guesses, inner_mots, killing, measures, multipoles, stability)
 
     if delay_s:
         time.sleep(delay_s)

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy.special import sph_harm_y
 
-from penumbra_server.numerics.surfaces import Surface, angular_grid, harmonic_basis
+from penumbra_server.numerics.surfaces import Surface, angular_grid, basis_on_grid, expand_on_grid, harmonic_basis
 
 
 @pytest.mark.parametrize("lmax", [4, 9])
@@ -85,3 +85,18 @@ def test_radius_along_an_arbitrary_curve():
     y10 = np.sqrt(3 / (4 * np.pi))
     assert s.radius([0.2], [0.0])[0] == pytest.approx(1.0 + 0.1 * y10 * np.cos(0.2), rel=1e-13)
     assert s.top_degree_fraction() == 0.0
+
+
+@pytest.mark.parametrize("lmax, grid_lmax", [(4, 4), (8, 12), (16, 20)])
+def test_expansion_on_the_grid_by_factors_equals_the_basis_product(lmax, grid_lmax):
+    """expand_on_grid sums over the product grid's 1-D factors; the same numbers (to round-off)
+    as the (N, K) basis matrices of basis_on_grid times the coefficients, for one field and for
+    several at once."""
+    rng = np.random.default_rng(lmax)
+    basis = basis_on_grid(lmax, grid_lmax)
+    for coefficients in (rng.normal(size=(lmax + 1) ** 2), rng.normal(size=((lmax + 1) ** 2, 6))):
+        got = expand_on_grid(lmax, grid_lmax, coefficients)
+        for values, name in zip(got, ("Y", "d_theta", "d_phi", "d_theta_theta", "d_theta_phi", "d_phi_phi")):
+            expected = getattr(basis, name) @ coefficients
+            assert values.shape == expected.shape
+            np.testing.assert_allclose(values, expected, rtol=0, atol=1e-13 * np.max(np.abs(expected)), err_msg=name)

@@ -32,7 +32,8 @@ import numpy as np
 
 from .curvature import christoffel_lower
 from .geometry import PointGeometry, inverse_3x3
-from .surfaces import Surface, angular_grid, basis_on_grid, coefficient_count, harmonic_basis, harmonic_values
+from .surfaces import (Surface, angular_grid, basis_on_grid, coefficient_count, expand_on_grid, harmonic_basis,
+                       harmonic_values)
 
 __all__ = [
     "ReferenceSurface",
@@ -129,11 +130,22 @@ def _expand(basis, coefficients: np.ndarray) -> tuple[np.ndarray, ...]:
     return tuple(getattr(basis, name) @ coefficients for name in ("Y", "d_theta", "d_phi", "d_theta_theta", "d_theta_phi", "d_phi_phi"))
 
 
-def _local_values(surface: DisplacedSurface, grid_lmax: int) -> tuple[tuple[np.ndarray, ...], tuple[np.ndarray, ...], tuple[np.ndarray, ...]]:
-    """(h and derivatives, x_ref and derivatives, n_ref and derivatives) at the grid's nodes."""
-    h = _expand(basis_on_grid(surface.lmax, grid_lmax), surface.coefficients)
-    ref_basis = basis_on_grid(surface.reference.lmax, grid_lmax)
-    return h, _expand(ref_basis, surface.reference.position), _expand(ref_basis, surface.reference.direction)
+def _local_values(surface: DisplacedSurface, grid_lmax: int, reference_values=None,
+                  ) -> tuple[tuple[np.ndarray, ...], tuple[np.ndarray, ...], tuple[np.ndarray, ...]]:
+    """(h and derivatives, x_ref and derivatives, n_ref and derivatives) at the grid's nodes.
+    Summed over the product grid's factors (:func:`~.surfaces.expand_on_grid`).
+    ``reference_values``: a callable like :func:`reference_on_grid` (e.g. one that remembers the
+    reference of a find's iterations); default :func:`reference_on_grid`."""
+    h = expand_on_grid(surface.lmax, grid_lmax, surface.coefficients)
+    xr, nr = (reference_values or reference_on_grid)(surface.reference, grid_lmax)
+    return h, xr, nr
+
+
+def reference_on_grid(reference: ReferenceSurface, grid_lmax: int) -> tuple[tuple[np.ndarray, ...], tuple[np.ndarray, ...]]:
+    """(x_ref and derivatives, n_ref and derivatives), each (N, 3), at the nodes of
+    ``angular_grid(grid_lmax)`` (one expansion for both)."""
+    both = expand_on_grid(reference.lmax, grid_lmax, np.concatenate([reference.position, reference.direction], axis=1))
+    return tuple(v[:, :3] for v in both), tuple(v[:, 3:] for v in both)
 
 
 def combine(theta, phi, h, xr, nr) -> Embedding:

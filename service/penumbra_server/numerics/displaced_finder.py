@@ -15,6 +15,7 @@ result, not an exception.
 
 from __future__ import annotations
 
+import functools
 import time
 from dataclasses import dataclass
 
@@ -23,7 +24,9 @@ import numpy as np
 from .displaced import (
     DisplacedSurface,
     Embedding,
+    _local_values,
     combine,
+    reference_on_grid,
     displacement_size,
     parametric_expansion,
     refreshed,
@@ -43,6 +46,7 @@ from .find_results import (
     STATUS_MESSAGES,
     UNRESOLVED,
 )
+from .finder_newton import _project_columns
 from .geometry import PointGeometry
 from .slices import DegenerateMetricError, SliceError
 from .sources import as_tracked_source
@@ -136,18 +140,22 @@ class _Failure(Exception):
         self.status = status
 
 
-def _local(surface: DisplacedSurface, grid_lmax: int):
-    names = ("Y", "d_theta", "d_phi", "d_theta_theta", "d_theta_phi", "d_phi_phi")
-    hb = basis_on_grid(surface.lmax, grid_lmax)
-    rb = basis_on_grid(surface.reference.lmax, grid_lmax)
-    return (tuple(getattr(hb, k) @ surface.coefficients for k in names),
-            tuple(getattr(rb, k) @ surface.reference.position for k in names),
-            tuple(getattr(rb, k) @ surface.reference.direction for k in names))
+class _ReferenceMemo:
+    """The reference's values at the nodes for one find: its iterations keep the reference (until
+    a refresh), so they are computed once per reference, not per evaluation."""
+
+    def __init__(self) -> None:
+        self._held: tuple | None = None
+
+    def __call__(self, reference, grid_lmax: int):
+        if self._held is None or self._held[0] is not reference or self._held[1] != grid_lmax:
+            self._held = (reference, grid_lmax, reference_on_grid(reference, grid_lmax))
+        return self._held[2]
 
 
-def _evaluate(source, surface: DisplacedSurface) -> _Iterate:
+def _evaluate(source, surface: DisplacedSurface, reference_values=None) -> _Iterate:
     grid = angular_grid(surface.grid_lmax())
-    local = _local(surface, grid.lmax)
+    local = _local_values(surface, grid.lmax, reference_values)
     emb = combine(grid.theta, grid.phi, *local)
     if not np.all(np.isfinite(emb.x)):
         raise _Failure(DIVERGED, "surface points are not finite")
@@ -205,10 +213,20 @@ def _jacobian(it: _Iterate) -> np.ndarray:
         theta = parametric_expansion(_stack_embeddings(embs), geometry).theta.reshape(len(variants), -1)
     d = [(theta[0] - it.theta) / it.shift, (theta[1] - theta[2]) / (2 * eps1), (theta[3] - theta[4]) / (2 * eps1)]
     d += [(theta[k] - it.theta) / eps2 for k in (5, 6, 7)]
-    B = basis_on_grid(surface.lmax, grid.lmax)
-    J_nodes = sum(dk[:, None] * getattr(B, name) for dk, name in
-                  zip(d, ("Y", "d_theta", "d_phi", "d_theta_theta", "d_theta_phi", "d_phi_phi")))
-    return B.Y.T @ (grid.weights[:, None] * J_nodes)
+    J_nodes = np.matmul(np.stack(d, axis=1)[:, None, :], _stacked_basis(surface.lmax, grid.lmax))[:, 0, :]
+    # Projected factored over the product grid (onto the grid's degrees, then cut to the surface's:
+    # the coefficients run degree by degree), a fraction of the dense product's operations.
+    return _project_columns(grid, J_nodes)[: J_nodes.shape[1]]
+
+
+@functools.lru_cache(maxsize=16)
+def _stacked_basis(lmax: int, grid_lmax: int) -> np.ndarray:
+    """(N, 6, (lmax + 1)^2) the harmonics up to ``lmax`` and their derivatives (HarmonicBasis
+    order) node by node on ``angular_grid(grid_lmax)``, read-only (memoised: a pure function)."""
+    B = basis_on_grid(lmax, grid_lmax)
+    stacked = np.ascontiguousarray(np.stack([B.Y, B.d_theta, B.d_phi, B.d_theta_theta, B.d_theta_phi, B.d_phi_phi], axis=1))
+    stacked.setflags(write=False)
+    return stacked
 
 
 def _projected(surface: DisplacedSurface, theta: np.ndarray) -> np.ndarray:
@@ -226,11 +244,12 @@ def find_displaced(data, guess: DisplacedSurface, *, settings: DisplacedSettings
     start = time.perf_counter()
     source = as_tracked_source(data, order=settings.interpolation_order)
     refreshes = 0
+    memo = _ReferenceMemo()
     if displacement_size(guess) > settings.refresh_fraction:
         guess, refreshes = refreshed(guess), 1
     note = ""
     try:
-        it = _evaluate(source, guess)
+        it = _evaluate(source, guess, memo)
     except _Failure as exc:
         return _result(guess, exc.status, str(exc), 0, np.nan, np.nan, refreshes, source, start)
     proj = _rms(it.surface, it.theta)
@@ -256,7 +275,7 @@ def find_displaced(data, guess: DisplacedSurface, *, settings: DisplacedSettings
         for _ in range(_MAX_SHORTENINGS):
             trial = DisplacedSurface(it.surface.reference, it.surface.lmax, it.surface.coefficients + lam * step)
             try:
-                cand = _evaluate(source, trial)
+                cand = _evaluate(source, trial, memo)
             except _Failure as exc:
                 failure = (exc.status, str(exc))
                 lam *= 0.5
@@ -277,7 +296,7 @@ def find_displaced(data, guess: DisplacedSurface, *, settings: DisplacedSettings
         it, proj = accepted, cand_proj
         if displacement_size(it.surface) > settings.refresh_fraction and refreshes < settings.max_refreshes:
             try:
-                it = _evaluate(source, refreshed(it.surface))
+                it = _evaluate(source, refreshed(it.surface), memo)
             except _Failure as exc:
                 status, note = exc.status, f"after a refresh of the reference: {exc}"
                 break

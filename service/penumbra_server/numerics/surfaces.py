@@ -205,6 +205,50 @@ def basis_on_grid(lmax: int, grid_lmax: int) -> HarmonicBasis:
     return basis
 
 
+#: (theta derivatives, phi derivatives) of each array of :class:`HarmonicBasis`, in its order.
+_DERIVATIVE_ORDERS = ((0, 0), (1, 0), (0, 1), (2, 0), (1, 1), (0, 2))
+
+
+@functools.lru_cache(maxsize=32)
+def _grid_factors(lmax: int, grid_lmax: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The 1-D factors of the harmonics on ``angular_grid(grid_lmax)``: Legendre functions and
+    their theta derivatives (3, n_theta, K), azimuthal factors and their phi derivatives per
+    order m = -lmax..lmax (3, n_phi, 2 lmax + 1), and the (K, 2 lmax + 1) map of each
+    coefficient to its order. Read-only."""
+    grid = angular_grid(grid_lmax)
+    theta, phi = grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi]
+    l, m = _degree_order(lmax)
+    p = sph_legendre_p_all(lmax, lmax, theta, diff_n=2)
+    legendre = np.stack([np.ascontiguousarray(p[d][l, np.abs(m)].T) for d in range(3)])
+    orders = np.arange(-lmax, lmax + 1)
+    azimuthal = np.stack([_azimuthal(orders, phi, d) for d in range(3)])
+    order_of = (m[:, None] == orders[None, :]).astype(float)
+    for arr in (legendre, azimuthal, order_of):
+        arr.setflags(write=False)
+    return legendre, azimuthal, order_of
+
+
+def expand_on_grid(lmax: int, grid_lmax: int, coefficients: np.ndarray) -> tuple[np.ndarray, ...]:
+    """A field of real-harmonic ``coefficients`` ((K,) or (K, q), K = (lmax + 1)^2) and its five
+    derivatives (the order of :class:`HarmonicBasis`) at the nodes of ``angular_grid(grid_lmax)``,
+    each (N,) or (N, q). The same numbers as ``basis_on_grid(lmax, grid_lmax)`` times the
+    coefficients (to round-off), summed over the product grid's factors: first over the degrees
+    of each order at n_theta angles, then over the orders at n_phi angles, never touching an
+    (N, K) matrix (several times fewer operations and memory reads)."""
+    legendre, azimuthal, order_of = _grid_factors(lmax, grid_lmax)
+    c = np.asarray(coefficients, dtype=float)
+    flat = c.reshape(c.shape[0], -1)  # (K, q)
+    n_theta, n_phi = legendre.shape[1], azimuthal.shape[1]
+    weighted = flat.T[:, None, :] * order_of.T[None, :, :]  # (q, 2 lmax + 1, K): each order's coefficients
+    # per theta derivative: the sum over the degrees of each order, (q, n_theta, 2 lmax + 1)
+    by_order = [np.matmul(legendre[d][None], weighted.transpose(0, 2, 1)) for d in range(3)]
+    out = []
+    for d_theta, d_phi in _DERIVATIVE_ORDERS:
+        values = np.matmul(by_order[d_theta], azimuthal[d_phi].T)  # (q, n_theta, n_phi)
+        out.append(np.moveaxis(values.reshape(values.shape[0], n_theta * n_phi), 0, -1).reshape((n_theta * n_phi,) + c.shape[1:]))
+    return tuple(out)
+
+
 def unit_vectors(theta: np.ndarray, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(N, 3) radial unit vector n, e_theta and e_phi at the given angles."""
     st, ct, sp, cp = np.sin(theta), np.cos(theta), np.sin(phi), np.cos(phi)

@@ -186,6 +186,28 @@ def basis_on_grid(lmax: int, grid_lmax: int) -> HarmonicBasis:
     return basis
 
 
+@functools.lru_cache(maxsize=16)
+def _synthesis_factors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For :meth:`Surface.on_grid`: the polar factors (2 lmax + 1, 3 n_theta, lmax + 1), P_l^|m|
+    and its first and second theta derivatives at the rings for each order m = -lmax..lmax (zero
+    for l < |m|), the azimuthal factors (2 lmax + 1, 3 n_phi) and their first and second phi
+    derivatives, and the slot of each coefficient (l, m) in the (m, l) table. Read-only;
+    memoised (a pure function of the grid, which :func:`angular_grid` memoises)."""
+    lmax, n_theta, n_phi = grid.lmax, grid.n_theta, grid.n_phi
+    orders = np.arange(-lmax, lmax + 1)
+    legendre = sph_legendre_p_all(lmax, lmax, grid.theta[::n_phi], diff_n=2)  # [d, l, m >= 0, ring]
+    polar = np.zeros((orders.size, 3, n_theta, lmax + 1))
+    for row, m in enumerate(orders):
+        polar[row, :, :, abs(m):] = np.moveaxis(legendre[:, abs(m):, abs(m)], 1, 2)
+    polar = polar.reshape(orders.size, 3 * n_theta, lmax + 1)
+    azimuthal = np.concatenate([_azimuthal(orders, grid.phi[:n_phi], d).T for d in range(3)], axis=1)
+    l, m = _degree_order(lmax)
+    rows = (m + lmax) * (lmax + 1) + l
+    for array in (polar, azimuthal, rows):
+        array.setflags(write=False)
+    return polar, azimuthal, rows
+
+
 def unit_vectors(theta: np.ndarray, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(N, 3) radial unit vector n, e_theta and e_phi at the given angles."""
     st, ct, sp, cp = np.sin(theta), np.cos(theta), np.sin(phi), np.cos(phi)
@@ -279,8 +301,24 @@ class Surface:
         )
 
     def on_grid(self, grid: AngularGrid) -> RadiusDerivatives:
-        """h and its derivatives at the nodes of ``grid``."""
-        return self.derivatives(grid.basis, grid.theta, grid.phi)
+        """h and its derivatives at the nodes of ``grid`` (factored over the product grid: the
+        same sums as :meth:`derivatives` with ``grid.basis``, to round-off, read from tables a
+        thirtieth of the basis matrices' size)."""
+        if grid.lmax != self.lmax:
+            raise ValueError(f"basis: built for lmax {grid.lmax}, surface has lmax {self.lmax}")
+        polar, azimuthal, rows = _synthesis_factors(grid)
+        orders, degrees = polar.shape[0], polar.shape[2]
+        table = np.zeros(orders * degrees)
+        table[rows] = self.coefficients
+        # (m, [d, ring]) sums over l of the d-th theta derivative of P_l^|m| times a_lm, then
+        # over m against the azimuthal factors and their phi derivatives: [d, ring, e, phi].
+        per_order = (polar @ table.reshape(orders, degrees, 1))[:, :, 0]
+        n_theta, n_phi = grid.n_theta, grid.n_phi
+        out = (per_order.T @ azimuthal).reshape(3, n_theta, 3, n_phi)
+        return RadiusDerivatives(
+            grid.theta, grid.phi, out[0, :, 0].ravel(), out[1, :, 0].ravel(), out[0, :, 1].ravel(),
+            out[2, :, 0].ravel(), out[1, :, 1].ravel(), out[0, :, 2].ravel(),
+        )
 
     def at(self, theta, phi) -> RadiusDerivatives:
         """h and its derivatives at arbitrary directions, e.g. along a curve."""

@@ -165,8 +165,10 @@ class ExpansionVariation:
     hessian_weight: np.ndarray
 
 
-def expansion_variation(dF: np.ndarray, ddF: np.ndarray, terms: GeometryTerms) -> ExpansionVariation:
-    """:class:`ExpansionVariation` at dF (N, 3), ddF (N, 3, 3) (one shape, no leading axes).
+def expansion_variation(dF: np.ndarray, ddF: np.ndarray, terms: GeometryTerms, at: ExpansionTerms | None = None) -> ExpansionVariation:
+    """:class:`ExpansionVariation` at dF (N, 3), ddF (N, 3, 3) (one shape, no leading axes);
+    ``at``: :func:`expansion_from` of the same arguments when the caller has it (its s^i and u
+    are reused).
 
     With s^i = F^i / u, Theta is homogeneous of degree 0 in d_i F apart from the Hessian term:
     Theta = P^ij d_i d_j F / u + s^k s^a s^b d_k gamma_ab / 2 - s^l C_l - K + K_ij s^i s^j, with
@@ -174,17 +176,19 @@ def expansion_variation(dF: np.ndarray, ddF: np.ndarray, terms: GeometryTerms) -
     s^i delta F_i. So delta Theta = P^ij w_j delta F_i / u - (P:d d F / u) s^i delta F_i / u +
     P^ij delta(d_i d_j F) / u with w = -2 (d d F) s / u + (d gamma)(s, s) / 2 + s^k d_k gamma s -
     C + 2 K s (the derivative of the rest in s^i). Exact: no difference steps."""
-    ginv, n = terms.ginv, dF.shape[0]
-    F_up = (ginv @ dF[:, :, None])[:, :, 0]
-    u = np.sqrt(np.sum(F_up * dF, axis=1))
-    s_up = F_up / u[:, None]
-    weight = (ginv - s_up[:, :, None] * s_up[:, None, :]) / u[:, None, None]
+    ginv = terms.ginv
+    if at is None:
+        F_up = (ginv @ dF[:, :, None])[:, :, 0]
+        u = np.sqrt(np.sum(F_up * dF, axis=1))
+        s_up = F_up / u[:, None]
+    else:
+        s_up, u = at.normal_up, at.u
+    s_col = s_up[:, :, None]
+    weight = (ginv - s_col * s_up[:, None, :]) / u[:, None, None]
     hess_term = np.sum(weight * ddF, axis=(1, 2))
-    dg = terms.dgamma.reshape(n, 3, 9)
-    pairs = (s_up[:, :, None] * s_up[:, None, :]).reshape(n, 9, 1)
-    s_dg = (s_up[:, None, :] @ dg).reshape(n, 3, 3)  # s^k d_k gamma_ab
-    w = ((terms.K - ddF / u[:, None, None]) @ (2.0 * s_up[:, :, None]))[:, :, 0]
-    w += 0.5 * (dg @ pairs)[:, :, 0] + (s_dg @ s_up[:, :, None])[:, :, 0] - terms.contracted
+    dg_s = (terms.dgamma @ s_col[:, None])[..., 0]  # [n, k, a] = d_k gamma_ab s^b
+    w = ((terms.K - ddF / u[:, None, None]) @ (2.0 * s_col))[:, :, 0]
+    w += 0.5 * (dg_s @ s_col)[:, :, 0] + (s_up[:, None, :] @ dg_s)[:, 0, :] - terms.contracted
     slope = (weight @ w[:, :, None])[:, :, 0] - s_up * (hess_term / u)[:, None]
     return ExpansionVariation(slope, weight)
 

@@ -49,8 +49,8 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
         tensors = _tensors(run.grid)
         ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift), ev.frame, tensors)
         d_h = (expansion_from(ls_h.dF, ls_h.ddF, terms_h).theta - ev.theta) / ev.shift
-        level_set = level_set_derivatives(rd, ev.frame, tensors)
-        variation = expansion_variation(level_set.dF, level_set.ddF, ev.terms)
+        level_set = ev.level_set if ev.level_set is not None else level_set_derivatives(rd, ev.frame, tensors)
+        variation = expansion_variation(level_set.dF, level_set.ddF, ev.terms, ev.expansion)
         inv_h = 1.0 / rd.h
         local = np.empty((rd.h.size, 6))  # dTheta / d(h, h_t, h_p, h_tt, h_tp, h_pp) node by node
         local[:, 0] = d_h

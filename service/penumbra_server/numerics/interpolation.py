@@ -89,12 +89,15 @@ def _inverse_denominators(nodes: int) -> np.ndarray:
     return out
 
 
+@functools.lru_cache(maxsize=8)
 def _lagrange_derivative_coefficients(nodes: int) -> np.ndarray:
     """(nodes - 1, nodes) C with d/ds L_a(s) = sum_k C[k, a] s^k for the Lagrange basis on
-    0..nodes-1 (coefficients from the inverse Vandermonde matrix)."""
+    0..nodes-1 (coefficients from the inverse Vandermonde matrix), read-only."""
     vandermonde = np.vander(np.arange(nodes, dtype=float), nodes, increasing=True)
     coefficients = np.linalg.inv(vandermonde)  # row k: coefficient of s^k in each L_a
-    return coefficients[1:] * np.arange(1, nodes)[:, None]
+    out = coefficients[1:] * np.arange(1, nodes)[:, None]
+    out.setflags(write=False)
+    return out
 
 
 def lagrange_weight_derivatives(s: np.ndarray, nodes: int) -> np.ndarray:
@@ -169,11 +172,15 @@ class GridGeometry:
             with np.errstate(invalid="ignore"):
                 base = np.floor(rel).astype(int) - (p // 2 - 1)
             inside = np.all((base >= store.reach) & (base + p - 1 <= store.shape_array - 1 - store.reach), axis=1)
-            if not inside.any():
+            if inside.all():  # the usual case: no copies
+                sel, b = idx, base
+                s = rel - b
+            elif not inside.any():
                 continue
-            sel = idx[inside]
-            b = base[inside]
-            s = rel[inside] - b
+            else:
+                sel = idx[inside]
+                b = base[inside]
+                s = rel[inside] - b
             strides = np.array([store.shape[1] * store.shape[2], store.shape[2], 1])
             offsets = ((off[:, None, None] * strides[0] + off[None, :, None] * strides[1]) + off[None, None, :]).ravel()
             flat = (b @ strides)[:, None] + offsets[None, :]

@@ -131,7 +131,7 @@ def _frame(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 def _diverged(surface: Surface, run: _Run, limit: float) -> bool:
-    h = run.grid.basis.Y @ surface.coefficients  # h alone: no derivatives needed here
+    h = surface.on_grid(run.grid).h  # from the small factored tables (not the (N, n_coef) basis)
     return bool(not np.all(np.isfinite(h)) or np.min(h) <= 0 or np.max(h) > limit)
 
 

@@ -172,15 +172,11 @@ class GridGeometry:
             with np.errstate(invalid="ignore"):
                 base = np.floor(rel).astype(int) - (p // 2 - 1)
             inside = np.all((base >= store.reach) & (base + p - 1 <= store.shape_array - 1 - store.reach), axis=1)
-            if inside.all():  # the usual case: no copies
-                sel, b = idx, base
-                s = rel - b
-            elif not inside.any():
+            if not inside.any():
                 continue
-            else:
-                sel = idx[inside]
-                b = base[inside]
-                s = rel[inside] - b
+            # All inside is the usual case: no copies then.
+            sel, b, rel = (idx, base, rel) if inside.all() else (idx[inside], base[inside], rel[inside])
+            s = rel - b
             strides = np.array([store.shape[1] * store.shape[2], store.shape[2], 1])
             offsets = ((off[:, None, None] * strides[0] + off[None, :, None] * strides[1]) + off[None, None, :]).ravel()
             flat = (b @ strides)[:, None] + offsets[None, :]

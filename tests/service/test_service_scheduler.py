@@ -84,6 +84,20 @@ def test_crop_keeps_the_nodes_around_the_box_plus_ghosts():
     assert crop_slice(sl, (5, 5, 5), (6, 6, 6), ghost_nodes=2) is None
 
 
+def test_crop_leaves_the_gauge_fields_behind_unless_asked():
+    spacetime = lone_hole()
+    kwargs = _patch_kwargs(spacetime, box((0, 0, 0), 1.0, 11))
+    shape = kwargs["shape"]
+    gauge = {"lapse": np.full(shape, 0.5), "shift_x": np.full(shape, 0.1), "shift_y": np.zeros(shape),
+             "shift_z": np.zeros(shape)}
+    sl = Slice(time=0, iteration=0, variable_set="adm", patches=(Patch(**{**kwargs, "fields": {**kwargs["fields"], **gauge}}),))
+    lean, = crop_slice(sl, (-0.5,) * 3, (0.5,) * 3, ghost_nodes=2).patches
+    assert sorted(lean.fields) == sorted(kwargs["fields"])  # the metric and curvature only
+    whole, = crop_slice(sl, (-0.5,) * 3, (0.5,) * 3, ghost_nodes=2, keep_gauge=True).patches
+    assert sorted(whole.fields) == sorted({**kwargs["fields"], **gauge})
+    np.testing.assert_array_equal(whole.fields["lapse"], 0.5)
+
+
 def _patch_kwargs(spacetime, spec):
     p = patch_data(spacetime, spec)
     return dict(origin=p.origin, spacing=p.spacing, shape=spec["shape"], level=0, fields=p.fields)

@@ -10,7 +10,7 @@ import pytest
 import numpy as np
 
 from penumbra_server.numerics.finder import FinderSettings, find_surface
-from penumbra_server.numerics.spacetimes import KerrKerrSchild, SchwarzschildIsotropic
+from penumbra_server.numerics.spacetimes import BrillLindquist, KerrKerrSchild, SchwarzschildIsotropic, sample_slice
 from penumbra_server.numerics.surfaces import Surface
 from penumbra_server.server import jobs
 
@@ -58,3 +58,25 @@ def test_unmeasurable_stability_leaves_nan_and_a_note():
     values, notes = jobs.stability_quantities(Surface.sphere((0.0, 0.0, 0.0), 1.0, 4), "not data", 4)
     assert math.isnan(values["stability_eigenvalue"]) and math.isnan(values["stability_eigenvalue_error"])
     assert len(notes) == 1 and notes[0].startswith("stability not computed")
+
+
+def test_error_bars_start_from_the_spin_measurement_without_making_it_again():
+    """The worker measures spin, circumferences and multipoles once: the error bars take that
+    measurement (the same numbers their own reference measurement gives) instead of repeating it."""
+    hole = BrillLindquist(masses=np.array([1.0]), positions=np.zeros((1, 3)))
+    box = dict(origin=(-0.83, -0.81, -0.82), spacing=(0.05,) * 3, shape=(34, 34, 34))
+    grid = sample_slice(hole, [box], variable_set="conformal_w")
+    found = find_surface(grid, Surface.sphere((0.02, 0.0, 0.0), 0.5, 6),
+                         settings=FinderSettings(lmax=6, interpolation_order=4))
+    assert found.success
+    values, notes, measured = jobs.spin_measurement(found.surface, found.geometry, 4)
+    assert notes == [] and measured is not None
+    assert measured["area"] == measured["spin"].area and math.isfinite(values["akv_angular_momentum"])
+    reused, notes_reused = jobs.error_bars(found.surface, grid, 4, measured)
+    again, notes_again = jobs.error_bars(found.surface, grid, 4)
+    assert notes_reused == notes_again == []
+    for name, value in again.items():
+        np.testing.assert_allclose(reused[name], value, rtol=1e-9, atol=1e-13, err_msg=name)
+    # And it is used: a reference measurement off by 1e-3 in area moves the area's error bar.
+    shifted, _ = jobs.error_bars(found.surface, grid, 4, dict(measured, area=measured["area"] * 1.001))
+    assert shifted["area_error"] > 2 * again["area_error"]

@@ -117,6 +117,13 @@ def _measure(surface: Surface, data, order: int, n_max: int, samples: int) -> di
     spin = horizon_spin(surface, data, order=order)
     moments = horizon_multipoles(surface, data, n_max=n_max, spin=spin, order=order)
     circ = axis_circumferences(surface, data, spin.direction, spin.centroid, samples=samples, order=order)
+    return measurement_of(spin, moments, circ)
+
+
+def measurement_of(spin: HorizonSpin, moments, circ) -> dict:
+    """What :func:`quote_horizon` compares, from a surface's spin, multipoles
+    (``horizon_multipoles``) and spin-axis circumferences (``axis_circumferences``): a caller that
+    measured those already at the quote's order, n_max and samples hands this as ``measured``."""
     return dict(
         spin=spin,
         area=spin.area,
@@ -203,6 +210,7 @@ def quote_horizon(
     safety_factor: float = 4.0,
     samples: int = 128,
     tolerance: float = 1e-10,
+    measured: dict | None = None,
 ) -> QuotedHorizon:
     """Quantities of a found ``surface`` in ``data`` with error estimates (module docstring).
 
@@ -216,6 +224,8 @@ def quote_horizon(
         safety_factor: multiplies the root-sum-square of the two differences (>= 1).
         samples: points per circumference cut.
         tolerance: expansion tolerance of the re-find at the check order (grid data).
+        measured: the surface's own measurement at ``order`` (:func:`measurement_of`), when the
+            caller has it; None: measured here.
     """
     if not isinstance(surface, Surface):
         raise TypeError(f"surface: expected a Surface, got {type(surface).__name__}")
@@ -230,7 +240,7 @@ def quote_horizon(
     if grid and order not in SUPPORTED_ORDERS[1:]:
         raise ValueError(f"order: expected an interpolation order in {SUPPORTED_ORDERS[1:]} on grid data, got {order}")
 
-    ref = _measure(surface, data, order, n_max, samples)
+    ref = _measure(surface, data, order, n_max, samples) if measured is None else measured
     truncated = _aligned(_measure(surface.with_lmax(low), data, order, n_max, samples), ref)
     if grid:
         other, check, how = _interpolation_comparison(surface, data, order, n_max, samples, tolerance)

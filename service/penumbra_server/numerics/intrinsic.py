@@ -18,10 +18,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import sph_legendre_p_all
 
 from .geometry import PointGeometry
-from .surfaces import HarmonicBasis, Surface, _azimuthal, _degree_order, harmonic_basis, unit_vectors
+# product_grid_basis re-exported: the measurements import it from here.
+from .surfaces import HarmonicBasis, Surface, harmonic_basis, product_grid_basis, unit_vectors  # noqa: F401
 
 __all__ = ["InducedGeometry", "induced_geometry", "product_grid_basis"]
 
@@ -52,23 +52,6 @@ class InducedGeometry:
     christoffel: np.ndarray
     normal_up: np.ndarray
     geometry: PointGeometry
-
-
-def product_grid_basis(lmax: int, theta_values: np.ndarray, phi_values: np.ndarray) -> HarmonicBasis:
-    """:func:`harmonic_basis` at the product grid theta_values x phi_values (theta-major, N =
-    n_theta n_phi), built from the 1-D factors: the same values far more cheaply."""
-    th = np.asarray(theta_values, dtype=float).ravel()
-    ph = np.asarray(phi_values, dtype=float).ravel()
-    l, m = _degree_order(lmax)
-    p = sph_legendre_p_all(lmax, lmax, th, diff_n=2)
-    P, Pt, Ptt = (p[d][l, np.abs(m)].T[:, None, :] for d in range(3))  # (n_theta, 1, n_coef)
-    f, fp, fpp = (_azimuthal(m, ph, d)[None] for d in range(3))  # (1, n_phi, n_coef)
-    n = th.size * ph.size
-
-    def flat(a):
-        return a.reshape(n, -1)
-
-    return HarmonicBasis(lmax, flat(P * f), flat(Pt * f), flat(P * fp), flat(Ptt * f), flat(Pt * fp), flat(P * fpp))
 
 
 def induced_geometry(

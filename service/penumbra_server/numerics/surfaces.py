@@ -115,6 +115,25 @@ def harmonic_basis(lmax: int, theta: np.ndarray, phi: np.ndarray) -> HarmonicBas
     return HarmonicBasis(lmax, P * f, Pt * f, P * fp, Ptt * f, Pt * fp, P * fpp)
 
 
+def product_grid_basis(lmax: int, theta_values: np.ndarray, phi_values: np.ndarray) -> HarmonicBasis:
+    """:func:`harmonic_basis` at the product grid theta_values x phi_values (theta-major, N =
+    n_theta n_phi), built from the 1-D factors: the same values, far more cheaply (the Legendre
+    functions at n_theta angles, not at N points)."""
+    th = np.asarray(theta_values, dtype=float).ravel()
+    ph = np.asarray(phi_values, dtype=float).ravel()
+    l, m = _degree_order(lmax)
+    p = sph_legendre_p_all(lmax, lmax, th, diff_n=2)
+    # Contiguous factors: the products are then C-ordered and the reshapes below copy nothing.
+    P, Pt, Ptt = (np.ascontiguousarray(p[d][l, np.abs(m)].T)[:, None, :] for d in range(3))  # (n_theta, 1, n_coef)
+    f, fp, fpp = (_azimuthal(m, ph, d)[None] for d in range(3))  # (1, n_phi, n_coef)
+    n = th.size * ph.size
+
+    def flat(a):
+        return a.reshape(n, -1)
+
+    return HarmonicBasis(lmax, flat(P * f), flat(Pt * f), flat(P * fp), flat(Ptt * f), flat(Pt * fp), flat(P * fpp))
+
+
 def harmonic_values(lmax: int, theta: np.ndarray, phi: np.ndarray) -> np.ndarray:
     """(N, (lmax + 1)^2) real harmonics without derivatives (cheaper than :func:`harmonic_basis`)."""
     theta, phi = _check_angles(lmax, theta, phi)
@@ -173,7 +192,7 @@ def angular_grid(lmax: int, n_theta: int | None = None, n_phi: int | None = None
     weights = np.repeat(w, n_phi) * (2.0 * np.pi / n_phi)
     for arr in (theta, phi, weights):
         arr.setflags(write=False)
-    return AngularGrid(lmax, n_theta, n_phi, theta, phi, weights, harmonic_basis(lmax, theta, phi))
+    return AngularGrid(lmax, n_theta, n_phi, theta, phi, weights, product_grid_basis(lmax, th, ph))
 
 
 @functools.lru_cache(maxsize=32)
@@ -181,7 +200,7 @@ def basis_on_grid(lmax: int, grid_lmax: int) -> HarmonicBasis:
     """Harmonics up to ``lmax`` at the nodes of ``angular_grid(grid_lmax)`` (memoised: a pure
     function of its arguments; the finder's checks between nodes and the measurements reuse it)."""
     grid = angular_grid(grid_lmax)
-    basis = harmonic_basis(lmax, grid.theta, grid.phi)
+    basis = product_grid_basis(lmax, grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi])
     for name in ("Y", "d_theta", "d_phi", "d_theta_theta", "d_theta_phi", "d_phi_phi"):
         getattr(basis, name).setflags(write=False)
     return basis

@@ -48,24 +48,45 @@ def inner_common_plans(settings: RunSettings, plans: Sequence[SurfacePlan], comm
 
 
 async def search_in_order(plans: Sequence[SurfacePlan], attempt: Callable[[SurfacePlan], Awaitable[SurfaceOutcome]],
-                          displaced: MutableMapping[str, object]) -> list[SurfaceOutcome]:
-    """Outcomes of ``plans`` in plan order: the plans searched on their own concurrently, then
-    those searched inside a surface of this slice (``SurfacePlan.inside_of``), handed that
-    surface when it was found. ``displaced`` (the run's) takes their solutions in the
-    displacement representation, the seeds of the next slice."""
-    first = list(await asyncio.gather(*(attempt(plan) for plan in plans if plan.inside_of is None)))
-    if all(plan.inside_of is None for plan in plans):
-        return first
-    found = {o.label: o for o in first}
-    inside = []
-    for plan in plans:
-        if plan.inside_of is None:
-            continue
-        outer = found.get(plan.inside_of)
-        if outer is not None and outer.found:
-            plan = dataclasses.replace(plan, outer=Surface(outer.centre, outer.lmax, outer.coefficients))
-        inside.append(attempt(plan))
-    later, earlier = iter(await asyncio.gather(*inside)), iter(first)
-    outcomes = [next(later) if plan.inside_of is not None else next(earlier) for plan in plans]
+                          displaced: MutableMapping[str, object], *,
+                          replan_inside: Callable[[], Awaitable[list[SurfacePlan]]] | None = None) -> list[SurfaceOutcome]:
+    """Outcomes of ``plans`` in plan order. The plans searched on their own start at once; each plan
+    searched inside a surface of this slice (``SurfacePlan.inside_of``) starts when that surface's
+    search ends, handed the surface when it was found (not waiting for the other searches).
+    ``replan_inside``: when given, awaited for the inside plans (in their order) before they start
+    (planned again once the slices before were applied). ``displaced`` (the run's) takes their
+    solutions in the displacement representation, the seeds of the next slice."""
+    any_inside = any(plan.inside_of is not None for plan in plans)
+    tasks: dict[int, asyncio.Future] = {}
+    replanned = None
+    try:
+        for index, plan in enumerate(plans):
+            if plan.inside_of is None:
+                tasks[index] = asyncio.ensure_future(attempt(plan))
+        by_label = {plans[index].label: task for index, task in tasks.items()}
+        if replan_inside is not None and any_inside:
+            replanned = asyncio.ensure_future(replan_inside())
+
+        async def search_inside(plan: SurfacePlan, position: int) -> SurfaceOutcome:
+            if replanned is not None:
+                plan = (await asyncio.shield(replanned))[position]
+            outer_search = by_label.get(plan.inside_of)
+            if outer_search is not None:
+                outer = await asyncio.shield(outer_search)
+                if outer.found:
+                    plan = dataclasses.replace(plan, outer=Surface(outer.centre, outer.lmax, outer.coefficients))
+            return await attempt(plan)
+
+        position = 0
+        for index, plan in enumerate(plans):
+            if plan.inside_of is not None:
+                tasks[index] = asyncio.ensure_future(search_inside(plan, position))
+                position += 1
+        outcomes = list(await asyncio.gather(*(tasks[index] for index in range(len(plans)))))
+    finally:
+        for task in tasks.values():  # cancelled with the slice, or one search raised: end the others
+            task.cancel()
+        if replanned is not None:
+            replanned.cancel()
     displaced.update({o.label: o.displaced for o in outcomes if o.found and o.displaced is not None})
     return outcomes

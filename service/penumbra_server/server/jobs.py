@@ -1,7 +1,7 @@
 """Finder jobs: what a worker process receives and returns, and the function it runs.
 
 A job carries only the sub-box of the slice around its surface (:func:`crop_slice`), never
-the whole slice, so pickling it to a worker stays cheap. :func:`run_surface_job` is a plain
+the whole slice, and only the fields the finder reads, so pickling it to a worker stays cheap. :func:`run_surface_job` is a plain
 function of the job (no server state), runnable in any process or on a distributed engine.
 """
 
@@ -13,11 +13,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..numerics.slices import Patch, Slice
+from ..numerics.slices import Patch, Slice, optional_fields
 from ..numerics.surfaces import Surface
 # Re-exported: the worker's measurements moved to quoted_quantities.py (tests and inner_jobs use them here).
 from .quoted_quantities import (ERROR_BAR_SOURCES, MULTIPOLE_N_MAX, STABILITY_LMAX_DROP, basic_quantities,  # noqa: F401
-                                error_bars, spin_quantities, stability_quantities)
+                                error_bars, spin_measurement, spin_quantities, stability_quantities)
 
 __all__ = [
     "REASON_FOUND",
@@ -51,14 +51,17 @@ REASON_NEEDS_EXCISED_DATA = 6
 SERVICE_INTERPOLATION_ORDER = 4
 
 
-def crop_slice(slice_: Slice, lower, upper, *, ghost_nodes: int) -> Slice | None:
+def crop_slice(slice_: Slice, lower, upper, *, ghost_nodes: int, keep_gauge: bool = False) -> Slice | None:
     """The part of ``slice_`` inside the box [lower, upper], widened by ``ghost_nodes`` per side.
 
     Each patch is cut to the nodes covering the box plus ``ghost_nodes`` (the interpolation
     and finite-difference stencils reach that far), clipped to the patch; patches that miss
     the box are dropped. Field arrays of the result are contiguous copies of the sub-boxes.
+    The gauge fields (lapse, shift: the server's tracking reads them, the finder never) are
+    left out unless ``keep_gauge`` (a fifth less to copy and send for a slice carrying a shift).
     Returns None when no patch overlaps the box.
     """
+    skipped = () if keep_gauge else optional_fields(slice_.variable_set)
     lower = np.asarray(lower, dtype=float)
     upper = np.asarray(upper, dtype=float)
     patches = []
@@ -71,7 +74,7 @@ def crop_slice(slice_: Slice, lower, upper, *, ghost_nodes: int) -> Slice | None
         if np.any(last - first < 1):
             continue  # misses the box, or touches it in fewer than two nodes along an axis
         cut = tuple(slice(int(a), int(b) + 1) for a, b in zip(first, last))
-        fields = {name: np.ascontiguousarray(arr[cut]) for name, arr in patch.fields.items()}
+        fields = {name: np.ascontiguousarray(arr[cut]) for name, arr in patch.fields.items() if name not in skipped}
         patches.append(
             Patch(
                 origin=patch.origin + first * patch.spacing,
@@ -311,12 +314,14 @@ def _found(job: SurfaceJob, kind: str, result, quantities: dict, message: str, t
         message = (f"{message}; solved at l_max {solved.lmax} (raised from {job.lmax}: not resolved "
                    f"at {job.lmax}), measured there, coefficients reported up to l = {job.lmax}")
     measured_in = result.geometry if result.geometry is not None else job.data
-    spin, notes = spin_quantities(solved, measured_in, job.interpolation_order)
+    spin, notes, measured = spin_measurement(solved, measured_in, job.interpolation_order)
     quantities.update(spin)
     stability, stability_notes = stability_quantities(solved, measured_in, job.interpolation_order)
     quantities.update(stability)
     notes.extend(stability_notes)
-    errors, error_notes = error_bars(solved, job.data, job.interpolation_order)
+    if getattr(measured_in, "order", job.interpolation_order) != job.interpolation_order:
+        measured = None  # measured at another interpolation order than the error bars compare at
+    errors, error_notes = error_bars(solved, job.data, job.interpolation_order, measured)
     quantities.update(errors)
     notes.extend(error_notes)
     if notes:

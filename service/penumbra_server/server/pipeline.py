@@ -10,11 +10,15 @@ events of a run advance in iteration order as with one slice at a time. Depth 1 
 time.
 
 Where the tracking order does not allow it, a slice waits: while slices are in flight, a slice
-whose plan holds a search not seeded from a forecast with motion (a surface never found, such
+whose plan holds a search (other than one inside a surface of the same slice, see below) not
+seeded from a forecast with motion (a surface never found, such
 as a common horizon not yet formed; one lost to a wide scan; one seeded where it last was, no
 motion known yet) is planned again once the slices before it are applied (a scan started early throws away what the slice before may find;
 a static seed two slices old can be far off a moving hole). So the first slices of a run go one
-at a time. With more than one slice in flight a run's seeds (never its accepted surfaces, which
+at a time. A search inside a surface of its own slice (the inner common MOTS) waits for that
+surface anyway; it is seeded from its own previous solution, so while the slices before are in
+flight it waits for them to be applied too and is planned then (``InFlight.applied``): its seed
+is the one it would have with one slice at a time. With more than one slice in flight a run's seeds (never its accepted surfaces, which
 meet the same tolerance) depend on timing: the server's default is one slice at a time.
 
 Planning and applying both happen in this one loop (never at the same time), so the run's
@@ -25,7 +29,7 @@ from __future__ import annotations
 
 import asyncio
 from collections import deque
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Awaitable, Callable
 
 from .run_types import QueuedSlice
@@ -56,12 +60,15 @@ class InFlight:
         plans: the surfaces planned for it.
         finds: resolves to the outcomes, one per plan in order (or raises what planning or the
             search raised).
+        applied: resolves once the outcomes were applied (or the apply failed): what a later
+            slice's searches that need this slice's outcomes wait for.
     """
 
     item: QueuedSlice
     started: float
     plans: list
     finds: asyncio.Future
+    applied: asyncio.Future = field(default_factory=lambda: asyncio.get_running_loop().create_future())
 
 
 async def drive_pipeline(queue: deque, changed: asyncio.Event, flight: deque, *, depth: int,
@@ -109,4 +116,8 @@ async def drive_pipeline(queue: deque, changed: asyncio.Event, flight: deque, *,
         else:
             await asyncio.wait((head.finds,))
         flight.popleft()
-        await apply(head)
+        try:
+            await apply(head)
+        finally:
+            if not head.applied.done():
+                head.applied.set_result(None)

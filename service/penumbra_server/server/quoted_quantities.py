@@ -13,7 +13,7 @@ from ..numerics.slices import Slice
 from ..numerics.surfaces import Surface
 
 __all__ = ["ERROR_BAR_SOURCES", "MULTIPOLE_N_MAX", "STABILITY_LMAX_DROP", "basic_quantities", "error_bars",
-           "spin_quantities", "stability_quantities"]
+           "spin_measurement", "spin_quantities", "stability_quantities"]
 
 
 def basic_quantities(q) -> dict:
@@ -43,7 +43,15 @@ def spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str]
     surface the finder converged to is never lost to a measurement of what a practitioner quotes.
     Units as in SurfaceQuantities (J in M^2, masses and lengths in M, the rest dimensionless).
     """
+    out, notes, _ = spin_measurement(surface, data, order)
+    return out, notes
+
+
+def spin_measurement(surface: Surface, data, order: int) -> tuple[dict, list[str], dict | None]:
+    """:func:`spin_quantities`, and the measurement the error bars start from
+    (:func:`numerics.error_bars.measurement_of`; None when a part of it failed)."""
     from ..numerics.circumferences import axis_circumferences, spin_from_circumference_ratio
+    from ..numerics.error_bars import measurement_of
     from ..numerics.killing import horizon_spin
     from ..numerics.multipoles import horizon_multipoles
 
@@ -59,7 +67,8 @@ def spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str]
         spin = horizon_spin(surface, data, order=order)
     except Exception as exc:  # numerics raise ValueError/LinAlgError; either way the surface stays
         notes.append(f"spin not measured: {type(exc).__name__}: {exc}")
-        return out, notes
+        return out, notes, None
+    circ = moments = None
     out.update(
         akv_angular_momentum=float(spin.angular_momentum),
         spin_direction=[float(v) for v in spin.direction],
@@ -81,7 +90,8 @@ def spin_quantities(surface: Surface, data, order: int) -> tuple[dict, list[str]
                    spin_multipoles=[float(v) for v in moments.spin_moments_dimensionless[: MULTIPOLE_N_MAX + 1]])
     except Exception as exc:
         notes.append(f"multipoles not measured: {type(exc).__name__}: {exc}")
-    return out, notes
+    measured = measurement_of(spin, moments, circ) if circ is not None and moments is not None else None
+    return out, notes, measured
 
 
 #: Quantity with an error bar (worker dict / archive name) -> QuotedHorizon attribute.
@@ -102,16 +112,17 @@ ERROR_BAR_SOURCES = {
 _PER_INDEX = ("mass_multipoles", "spin_multipoles")
 
 
-def error_bars(surface: Surface, data: Slice, order: int) -> tuple[dict, list[str]]:
+def error_bars(surface: Surface, data: Slice, order: int, measured: dict | None = None) -> tuple[dict, list[str]]:
     """``<name>_error`` for the quantities of :data:`ERROR_BAR_SOURCES` (same units as the value),
     from :func:`numerics.error_bars.quote_horizon` on the cropped slice; NaN and a note when it
-    cannot be estimated (e.g. l_max < 3)."""
+    cannot be estimated (e.g. l_max < 3). ``measured``: the surface's own measurement at
+    ``order`` from :func:`spin_measurement` (not made twice), or None."""
     from ..numerics.error_bars import quote_horizon
 
     out = {f"{name}_error": ([_NAN] * (MULTIPOLE_N_MAX + 1) if name in _PER_INDEX else _NAN)
            for name in ERROR_BAR_SOURCES}
     try:
-        quoted = quote_horizon(surface, data, order=order, n_max=MULTIPOLE_N_MAX)
+        quoted = quote_horizon(surface, data, order=order, n_max=MULTIPOLE_N_MAX, measured=measured)
     except Exception as exc:  # an error bar that cannot be made must not lose the surface
         return out, [f"error bars not estimated: {type(exc).__name__}: {exc}"]
     for name, attribute in ERROR_BAR_SOURCES.items():

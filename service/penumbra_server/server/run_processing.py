@@ -64,8 +64,10 @@ class RunProcessing:
             failed = asyncio.get_running_loop().create_future()
             failed.set_exception(exc)
             return InFlight(item, started, [], failed)
-        if overlapping and not all(may_overlap(plan) for plan in plans):
+        # A search inside a surface of this slice is planned again once the slices before are applied.
+        if overlapping and not all(may_overlap(plan) for plan in plans if plan.inside_of is None):
             return None
+        earlier = [flight.applied for flight in self._flight]
         additions = []
         for plan in plans:
             if plan.label not in self.surface_labels:  # a surface the planner added (e.g. a common horizon)
@@ -73,7 +75,7 @@ class RunProcessing:
                 if adding is None:
                     adding = self._adding[plan.label] = asyncio.ensure_future(self._add_surface(plan))
                 additions.append(adding)
-        return InFlight(item, started, plans, asyncio.ensure_future(self._search(item, plans, additions)))
+        return InFlight(item, started, plans, asyncio.ensure_future(self._search(item, plans, additions, earlier)))
 
     async def _add_surface(self, plan: SurfacePlan) -> None:
         try:
@@ -83,11 +85,25 @@ class RunProcessing:
         finally:
             self._adding.pop(plan.label, None)
 
-    async def _search(self, item: QueuedSlice, plans: list[SurfacePlan], additions: list) -> list[SurfaceOutcome]:
+    async def _search(self, item: QueuedSlice, plans: list[SurfacePlan], additions: list,
+                      earlier: list[asyncio.Future]) -> list[SurfaceOutcome]:
         for adding in additions:  # its rows need the surface's archive group
             await adding
         # Searches inside a surface of this slice (the inner common MOTS) wait for that surface.
-        return await search_in_order(plans, lambda plan: self._attempt(plan, item), self.displaced)
+        return await search_in_order(plans, lambda plan: self._attempt(plan, item), self.displaced,
+                                     replan_inside=lambda: self._replanned_inside(plans, earlier))
+
+    async def _replanned_inside(self, plans: list[SurfacePlan], earlier: list[asyncio.Future]) -> list[SurfacePlan]:
+        """The inside plans of ``plans``, planned again once the slices launched before this one are
+        applied (their seeds are the previous slice's solutions, as with one slice at a time)."""
+        inside = [plan for plan in plans if plan.inside_of is not None]
+        if not earlier or not inside:
+            return inside
+        await asyncio.wait(earlier)
+        outer = [plan for plan in plans if plan.inside_of is None]
+        again = {plan.label: plan for plan in inner_common_plans(self.settings, outer, self.steering.common_label,
+                                                                 self.states, self.displaced)}
+        return [again.get(plan.label, plan) for plan in inside]
 
     async def _apply_or_fail(self, flight: InFlight) -> None:
         try:

@@ -33,6 +33,8 @@ __all__ = [
     "GeometryTerms",
     "geometry_terms",
     "expansion_from",
+    "ExpansionVariation",
+    "expansion_variation",
     "expansion_at",
 ]
 
@@ -150,6 +152,45 @@ def expansion_from(dF: np.ndarray, ddF: np.ndarray, terms: GeometryTerms) -> Exp
     Kss = np.einsum("...ni,...ni->...n", np.einsum("...nij,...nj->...ni", terms.K, s_up), s_up)
     theta = term_hess + term_dg - term_gamma - terms.trace_K + Kss
     return ExpansionTerms(theta, s_up, u)
+
+
+@dataclass(frozen=True, eq=False)
+class ExpansionVariation:
+    """The first variation of Theta at N points in the level-set derivatives, with the geometry
+    held fixed: delta Theta = slope^i delta(d_i F) + hessian_weight^ij delta(d_i d_j F), slope
+    (N, 3) in 1/M (per unit change of the dimensionless d_i F) and hessian_weight (N, 3, 3) =
+    (gamma^ij - s^i s^j) / u, dimensionless."""
+
+    slope: np.ndarray
+    hessian_weight: np.ndarray
+
+
+def expansion_variation(dF: np.ndarray, ddF: np.ndarray, terms: GeometryTerms, at: ExpansionTerms | None = None) -> ExpansionVariation:
+    """:class:`ExpansionVariation` at dF (N, 3), ddF (N, 3, 3) (one shape, no leading axes);
+    ``at``: :func:`expansion_from` of the same arguments when the caller has it (its s^i and u
+    are reused).
+
+    With s^i = F^i / u, Theta is homogeneous of degree 0 in d_i F apart from the Hessian term:
+    Theta = P^ij d_i d_j F / u + s^k s^a s^b d_k gamma_ab / 2 - s^l C_l - K + K_ij s^i s^j, with
+    P^ij = gamma^ij - s^i s^j, and delta s^i = (gamma^ij - s^i s^j) delta F_j / u, delta u =
+    s^i delta F_i. So delta Theta = P^ij w_j delta F_i / u - (P:d d F / u) s^i delta F_i / u +
+    P^ij delta(d_i d_j F) / u with w = -2 (d d F) s / u + (d gamma)(s, s) / 2 + s^k d_k gamma s -
+    C + 2 K s (the derivative of the rest in s^i). Exact: no difference steps."""
+    ginv = terms.ginv
+    if at is None:
+        F_up = (ginv @ dF[:, :, None])[:, :, 0]
+        u = np.sqrt(np.sum(F_up * dF, axis=1))
+        s_up = F_up / u[:, None]
+    else:
+        s_up, u = at.normal_up, at.u
+    s_col = s_up[:, :, None]
+    weight = (ginv - s_col * s_up[:, None, :]) / u[:, None, None]
+    hess_term = np.sum(weight * ddF, axis=(1, 2))
+    dg_s = (terms.dgamma @ s_col[:, None])[..., 0]  # [n, k, a] = d_k gamma_ab s^b
+    w = ((terms.K - ddF / u[:, None, None]) @ (2.0 * s_col))[:, :, 0]
+    w += 0.5 * (dg_s @ s_col)[:, :, 0] + (s_up[:, None, :] @ dg_s)[:, 0, :] - terms.contracted
+    slope = (weight @ w[:, :, None])[:, :, 0] - s_up * (hess_term / u)[:, None]
+    return ExpansionVariation(slope, weight)
 
 
 def expansion_at(rd: RadiusDerivatives, geometry: PointGeometry) -> ExpansionTerms:

@@ -14,7 +14,15 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .excision import ExcisedDataError
-from .expansion import GeometryTerms, angular_tensors, expansion_from, geometry_terms, level_set_derivatives
+from .expansion import (
+    ExpansionTerms,
+    GeometryTerms,
+    LevelSetDerivatives,
+    angular_tensors,
+    expansion_from,
+    geometry_terms,
+    level_set_derivatives,
+)
 from .find_results import DIVERGED, INVALID_GEOMETRY, NEEDS_EXCISED_DATA, NON_FINITE_DATA, OUTSIDE_DATA
 from .geometry import PointGeometry
 from .slices import DegenerateMetricError, SliceError
@@ -53,6 +61,8 @@ class _Evaluated:
     normal_up: np.ndarray | None = None  # s^i (N, 3), for the Jacobian
     terms: GeometryTerms | None = None  # the geometry's part of Theta, shared by the Jacobian
     frame: tuple | None = None  # unit_vectors at the nodes: n, e_theta, e_phi (N, 3) each
+    level_set: LevelSetDerivatives | None = None  # d_i F, d_i d_j F at the nodes
+    expansion: ExpansionTerms | None = None  # Theta's pieces (s^i, u), for the Jacobian
 
 
 def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
@@ -104,7 +114,8 @@ def _evaluate(run: _Run, surface: Surface) -> _Evaluated | None:
         return None
     run.max_hist.append(float(np.max(np.abs(th))))
     run.rms_hist.append(float(np.sqrt(np.sum(run.grid.weights * th**2) / (4 * np.pi))))
-    return _Evaluated(surface, rd, pts, geo, th, terms.u, shift, shifted, terms.normal_up, geometry_part, frame)
+    return _Evaluated(surface, rd, pts, geo, th, terms.u, shift, shifted, terms.normal_up, geometry_part, frame,
+                      level_set, terms)
 
 
 def _projected_rms(run: _Run, values: np.ndarray) -> float:
@@ -120,7 +131,7 @@ def _frame(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 def _diverged(surface: Surface, run: _Run, limit: float) -> bool:
-    h = run.grid.basis.Y @ surface.coefficients  # h alone: no derivatives needed here
+    h = surface.on_grid(run.grid).h  # from the small factored tables (not the (N, n_coef) basis)
     return bool(not np.all(np.isfinite(h)) or np.min(h) <= 0 or np.max(h) > limit)
 
 

@@ -11,7 +11,7 @@ import numpy as np
 from scipy.special import sph_legendre_p_all
 
 from .excision import ExcisedDataError
-from .expansion import expansion_from, geometry_terms, level_set_derivatives
+from .expansion import expansion_from, expansion_variation, geometry_terms, level_set_derivatives
 from .find_results import (
     CONVERGED,
     CONVERGED_AT_TRUNCATION,
@@ -23,20 +23,20 @@ from .find_results import (
 )
 from .finder_evaluation import _MAX_SHORTENINGS, _diverged, _evaluate, _Evaluated, _projected_rms, _Run, _tensors
 from .slices import SliceError
-from .surfaces import AngularGrid, Surface, _azimuthal, _degree_order
+from .surfaces import AngularGrid, Surface, _azimuthal, _degree_order, _project_columns
 
 def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     """d(projected Theta)/d(coefficients), square ((lmax+1)^2).
 
     Theta at a node depends on h, its first and second angular derivatives there and on the
-    fields there. h moves the point, so its column uses the interpolant shifted along n; h_t and
-    h_p enter nonlinearly (central differences, one batched evaluation on the iterate's geometry
-    terms); h_tt, h_tp and h_pp enter linearly through (gamma^ij - s^i s^j) d_i d_j F / u alone,
-    so their columns are exact: d_i d_j F changes by -grad(theta)_i grad(theta)_j per unit h_tt
-    and likewise for the others.
+    fields there. h moves the point, so its column uses the interpolant shifted along n (a
+    difference quotient over ``ev.shift``). The others enter through d_i F and d_i d_j F alone
+    (h_t, h_p through both, h_tt, h_tp, h_pp linearly through d_i d_j F), on the iterate's
+    geometry: their columns are exact, from :func:`expansion_variation` (delta d_i F per unit h_t
+    is -e_theta / h, per unit h_p -e_phi / (h sin theta); delta d_i d_j F per unit h_k is -T_k /
+    h^2 with the angular tensors T of :func:`angular_tensors`).
     """
     rd, geo = ev.rd, ev.geometry
-    scale = float(np.mean(rd.h))
     # h: moves the point too, so the fields come from the interpolant shifted along n.
     try:
         geo_h = ev.shifted()
@@ -45,72 +45,62 @@ def _jacobian(run: _Run, ev: _Evaluated) -> np.ndarray:
     if not geo_h.covered.all():
         geo_h = geo  # at the data edge: drop the field variation rather than fail
     terms_h = ev.terms if geo_h is geo else geometry_terms(geo_h)
-    eps_first = 1e-5 * scale
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         tensors = _tensors(run.grid)
         ls_h = level_set_derivatives(rd.replace(h=rd.h + ev.shift), ev.frame, tensors)
         d_h = (expansion_from(ls_h.dF, ls_h.ddF, terms_h).theta - ev.theta) / ev.shift
-        # The four shapes h_t +- eps, h_p +- eps on the same directions and geometry, batched.
-        step = np.array([eps_first, -eps_first, 0.0, 0.0])[:, None]
-        variants = rd.replace(h_t=rd.h_t + step, h_p=rd.h_p + step[[2, 3, 0, 1]])
-        ls = level_set_derivatives(variants, ev.frame, tensors)
-        theta = expansion_from(ls.dF, ls.ddF, ev.terms).theta
-        d_t = (theta[0] - theta[1]) / (2 * eps_first)
-        d_p = (theta[2] - theta[3]) / (2 * eps_first)
+        level_set = ev.level_set if ev.level_set is not None else level_set_derivatives(rd, ev.frame, tensors)
+        variation = expansion_variation(level_set.dF, level_set.ddF, ev.terms, ev.expansion)
+        inv_h = 1.0 / rd.h
+        local = np.empty((rd.h.size, 6))  # dTheta / d(h, h_t, h_p, h_tt, h_tp, h_pp) node by node
+        local[:, 0] = d_h
+        # P^ij T_k,ij / u for the five angular tensors in one batched product.
+        local[:, 1:] = (tensors[1] @ variation.hessian_weight.reshape(-1, 9, 1))[:, :, 0]
+        local[:, 1:] *= -(inv_h**2)[:, None]
         _, e_t, e_p = ev.frame
-        grad_t = e_t / rd.h[:, None]
-        grad_p = e_p / (rd.h * np.sin(rd.theta))[:, None]
-        s_up = ev.normal_up
-        proj = ev.terms.ginv - s_up[:, :, None] * s_up[:, None, :]
-        proj_t = np.einsum("nij,nj->ni", proj, grad_t)
-        d_tt = -np.einsum("ni,ni->n", proj_t, grad_t) / ev.u
-        d_tp = -2.0 * np.einsum("ni,ni->n", proj_t, grad_p) / ev.u
-        d_pp = -np.einsum("ni,nij,nj->n", grad_p, proj, grad_p) / ev.u
-    stacked, projector = _jacobian_bases(run.grid)
-    local = np.stack([d_h, d_t, d_p, d_tt, d_tp, d_pp], axis=1)  # (N, 6): dTheta / d(h, h_t, ..., h_pp)
-    J_nodes = np.matmul(local[:, None, :], stacked)[:, 0, :]  # (N, n_coef)
+        local[:, 1] -= np.sum(variation.slope * e_t, axis=1) * inv_h
+        local[:, 2] -= np.sum(variation.slope * e_p, axis=1) * inv_h / np.sin(rd.theta)
+    J_nodes = _nodal_columns(run.grid, local)  # (N, n_coef)
     # The factored projection wins from l_max 8 up (measured: 0.15 against 0.54 ms at l_max 12,
     # 0.5 against 2.7 ms at 16); below, the dense product's single call is faster.
-    return projector @ J_nodes if run.grid.lmax < 8 else _project_columns(run.grid, J_nodes)
+    return _jacobian_bases(run.grid)[1] @ J_nodes if run.grid.lmax < 8 else _project_columns(run.grid, J_nodes)
 
 
-def _project_columns(grid: AngularGrid, values: np.ndarray) -> np.ndarray:
-    """Y^T diag(weights) values for values (N, C) at the grid's nodes: the projection of C
-    nodal functions, factored over the product grid (sum over phi per ring and azimuthal
-    function, then over theta per degree): about a fifth of the multiply-adds of the dense
-    (n_coef x N) product, same result to round-off."""
-    azimuthal, polar, rows = _projection_factors(grid)
-    count = values.shape[1]
-    rings = values.reshape(grid.n_theta, grid.n_phi, count)
-    per_ring = np.swapaxes(azimuthal @ rings, 0, 1)  # (2 lmax + 1, n_theta, C)
-    return (polar @ per_ring).reshape(-1, count)[rows]
+def _nodal_columns(grid: AngularGrid, local: np.ndarray) -> np.ndarray:
+    """(N, n_coef) sum_k local[:, k] B_k for local (N, 6) at the grid's nodes and B_k the
+    harmonics' values and derivatives (h, theta, phi, theta theta, theta phi, phi phi) there.
+    Each B_k is a polar factor of the ring times an azimuthal factor of the meridian, so the sum
+    is made from those small tables (grouped by the azimuthal factor) instead of the six (N,
+    n_coef) matrices: 3.2 MB at l_max 12, whose reading from memory after other work cost more
+    than the products (measured: about 0.6 ms less per Newton iteration at l_max 12)."""
+    polar, azimuthal = _node_factors(grid)  # (n_theta, 3, C): P, P_t, P_tt; (3, n_phi, C): f, f_p, f_pp
+    rings = local.reshape(grid.n_theta, grid.n_phi, 6)
+    out = (rings[:, :, [0, 1, 3]] @ polar) * azimuthal[0]  # h, h_t, h_tt: P, P_t, P_tt times f
+    out += (rings[:, :, [2, 4]] @ polar[:, :2]) * azimuthal[1]  # h_p, h_tp: P, P_t times f_p
+    out += (rings[:, :, 5:] @ polar[:, :1]) * azimuthal[2]  # h_pp: P times f_pp
+    return out.reshape(grid.size, -1)
 
 
 @functools.lru_cache(maxsize=16)
-def _projection_factors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """For :func:`_project_columns`: the azimuthal factors (2 lmax + 1, n_phi) of the real
-    harmonics at the grid's phi (m = -lmax..lmax), the polar factors times the quadrature
-    weights (2 lmax + 1, lmax + 1, n_theta) (zero for l < |m|), and the row of each coefficient
-    (l, m) in the (m, l) table. Read-only; memoised like :func:`_jacobian_bases`."""
-    lmax, n_theta, n_phi = grid.lmax, grid.n_theta, grid.n_phi
-    orders = np.arange(-lmax, lmax + 1)
-    azimuthal = np.ascontiguousarray(_azimuthal(orders, grid.phi[:n_phi], 0).T)
-    legendre = sph_legendre_p_all(lmax, lmax, grid.theta[::n_phi])[0]  # [l, m >= 0, ring]
-    ring_weights = grid.weights[::n_phi]
-    polar = np.zeros((orders.size, lmax + 1, n_theta))
-    for row, m in enumerate(orders):
-        polar[row, abs(m):] = legendre[abs(m):, abs(m)] * ring_weights
-    l, m = _degree_order(lmax)
-    rows = (m + lmax) * (lmax + 1) + l
-    for array in (azimuthal, polar, rows):
+def _node_factors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray]:
+    """For :func:`_nodal_columns`: (n_theta, 3, n_coef) P_l^|m| and its first two theta
+    derivatives at the rings, (3, n_phi, n_coef) the azimuthal factors and their first two phi
+    derivatives (as in :func:`harmonic_basis`). Read-only; memoised like :func:`_jacobian_bases`."""
+    l, m = _degree_order(grid.lmax)
+    legendre = sph_legendre_p_all(grid.lmax, grid.lmax, grid.theta[:: grid.n_phi], diff_n=2)  # [d, l, m, ring]
+    polar = np.ascontiguousarray(np.moveaxis(legendre[:, l, np.abs(m)], 2, 0))  # (ring, d, coefficient)
+    azimuthal = np.stack([_azimuthal(m, grid.phi[: grid.n_phi], d) for d in range(3)])
+    for array in (polar, azimuthal):
         array.setflags(write=False)
-    return azimuthal, polar, rows
+    return polar, azimuthal
+
 
 @functools.lru_cache(maxsize=16)
 def _jacobian_bases(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray]:
     """(N, 6, n_coef) Y and its derivatives (theta, phi, theta theta, theta phi, phi phi) node by
-    node, and the projection (n_coef, N) = Y^T diag(weights), read-only. Memoised: a pure
-    function of the grid, which :func:`angular_grid` itself memoises."""
+    node (the dense form of :func:`_nodal_columns`, for checks), and the projection (n_coef, N)
+    = Y^T diag(weights), read-only. Memoised: a pure function of the grid, which
+    :func:`angular_grid` itself memoises."""
     B = grid.basis
     stacked = np.ascontiguousarray(np.stack([B.Y, B.d_theta, B.d_phi, B.d_theta_theta, B.d_theta_phi, B.d_phi_phi], axis=1))
     projector = np.ascontiguousarray((grid.weights[:, None] * B.Y).T)

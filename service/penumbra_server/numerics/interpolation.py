@@ -89,12 +89,15 @@ def _inverse_denominators(nodes: int) -> np.ndarray:
     return out
 
 
+@functools.lru_cache(maxsize=8)
 def _lagrange_derivative_coefficients(nodes: int) -> np.ndarray:
     """(nodes - 1, nodes) C with d/ds L_a(s) = sum_k C[k, a] s^k for the Lagrange basis on
-    0..nodes-1 (coefficients from the inverse Vandermonde matrix)."""
+    0..nodes-1 (coefficients from the inverse Vandermonde matrix), read-only."""
     vandermonde = np.vander(np.arange(nodes, dtype=float), nodes, increasing=True)
     coefficients = np.linalg.inv(vandermonde)  # row k: coefficient of s^k in each L_a
-    return coefficients[1:] * np.arange(1, nodes)[:, None]
+    out = coefficients[1:] * np.arange(1, nodes)[:, None]
+    out.setflags(write=False)
+    return out
 
 
 def lagrange_weight_derivatives(s: np.ndarray, nodes: int) -> np.ndarray:
@@ -171,9 +174,9 @@ class GridGeometry:
             inside = np.all((base >= store.reach) & (base + p - 1 <= store.shape_array - 1 - store.reach), axis=1)
             if not inside.any():
                 continue
-            sel = idx[inside]
-            b = base[inside]
-            s = rel[inside] - b
+            # All inside is the usual case: no copies then.
+            sel, b, rel = (idx, base, rel) if inside.all() else (idx[inside], base[inside], rel[inside])
+            s = rel - b
             strides = np.array([store.shape[1] * store.shape[2], store.shape[2], 1])
             offsets = ((off[:, None, None] * strides[0] + off[None, :, None] * strides[1]) + off[None, None, :]).ravel()
             flat = (b @ strides)[:, None] + offsets[None, :]
@@ -324,26 +327,25 @@ def _tensor_columns(nd: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 def _tensor_product(wx: np.ndarray, wy: np.ndarray, wz: np.ndarray) -> np.ndarray:
-    """(m, p^3) products wx_a wy_b wz_c, x slowest, of per-axis weights (m, p) each. Made with the
-    points innermost (long inner loops; with p innermost numpy's loops run 6 elements at a
-    time, measured 1.6 times slower including the final transposing copy)."""
+    """(m, p^3) products wx_a wy_b wz_c, x slowest, of per-axis weights (m, p) each: two
+    outer products by einsum, written once in the final layout (no transposing copy, half the
+    memory traffic of a points-innermost cube; same products)."""
     m, p = wx.shape
-    tx, ty, tz = (np.ascontiguousarray(w.T) for w in (wx, wy, wz))  # (p, m)
-    cube = (tx[:, None, :] * ty[None, :, :]).reshape(p * p, 1, m) * tz[None, :, :]
-    return np.ascontiguousarray(cube.reshape(p**3, m).T)
+    xy = np.einsum("ma,mb->mab", wx, wy).reshape(m, p * p)
+    return np.einsum("mq,mc->mqc", xy, wz).reshape(m, p**3)
 
 
 def _tensor_product_variation(w: np.ndarray, dw: np.ndarray) -> np.ndarray:
     """(m, p^3) first variation of the products wx wy wz (:func:`_tensor_product`) when the
     per-axis weights w (m, 3, p) vary by dw (m, 3, p), factored as (dwx wy + wx dwy) wz +
-    (wx wy) dwz; points innermost like :func:`_tensor_product`."""
+    (wx wy) dwz; made like :func:`_tensor_product`."""
     m, _, p = w.shape
-    tw = np.ascontiguousarray(np.moveaxis(w, 0, -1))  # (3, p, m)
-    tdw = np.ascontiguousarray(np.moveaxis(dw, 0, -1))
-    xy = (tw[0][:, None, :] * tw[1][None, :, :]).reshape(p * p, 1, m)
-    dxy = (tdw[0][:, None, :] * tw[1][None, :, :] + tw[0][:, None, :] * tdw[1][None, :, :]).reshape(p * p, 1, m)
-    cube = dxy * tw[2][None, :, :] + xy * tdw[2][None, :, :]
-    return np.ascontiguousarray(cube.reshape(p**3, m).T)
+    xy = np.einsum("ma,mb->mab", w[:, 0], w[:, 1]).reshape(m, p * p)
+    dxy = np.einsum("ma,mb->mab", dw[:, 0], w[:, 1])
+    dxy += np.einsum("ma,mb->mab", w[:, 0], dw[:, 1])
+    cube = np.einsum("mq,mc->mqc", dxy.reshape(m, p * p), w[:, 2])
+    cube += np.einsum("mq,mc->mqc", xy, dw[:, 2])
+    return cube.reshape(m, p**3)
 
 
 def _stencil_sums(store: NodeStore, weights: np.ndarray, slots: np.ndarray) -> np.ndarray:

@@ -165,8 +165,9 @@ class AngularGrid:
         return int(self.theta.size)
 
     def project(self, values: np.ndarray) -> np.ndarray:
-        """Harmonic coefficients of nodal ``values`` (N,) by quadrature."""
-        return self.basis.Y.T @ (self.weights * values)
+        """Harmonic coefficients of nodal ``values`` (N,) by quadrature (factored over the
+        product grid, :func:`_project_columns`)."""
+        return _project_columns(self, np.asarray(values, dtype=float).reshape(self.size, 1))[:, 0]
 
 
 @functools.lru_cache(maxsize=32)
@@ -247,6 +248,61 @@ def expand_on_grid(lmax: int, grid_lmax: int, coefficients: np.ndarray) -> tuple
         values = np.matmul(by_order[d_theta], azimuthal[d_phi].T)  # (q, n_theta, n_phi)
         out.append(np.moveaxis(values.reshape(values.shape[0], n_theta * n_phi), 0, -1).reshape((n_theta * n_phi,) + c.shape[1:]))
     return tuple(out)
+
+
+@functools.lru_cache(maxsize=16)
+def _synthesis_factors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For :meth:`Surface.on_grid`: the polar factors (2 lmax + 1, 3 n_theta, lmax + 1), P_l^|m|
+    and its first and second theta derivatives at the rings for each order m = -lmax..lmax (zero
+    for l < |m|), the azimuthal factors (2 lmax + 1, 3 n_phi) and their first and second phi
+    derivatives, and the slot of each coefficient (l, m) in the (m, l) table. Read-only;
+    memoised (a pure function of the grid, which :func:`angular_grid` memoises)."""
+    lmax, n_theta, n_phi = grid.lmax, grid.n_theta, grid.n_phi
+    orders = np.arange(-lmax, lmax + 1)
+    legendre = sph_legendre_p_all(lmax, lmax, grid.theta[::n_phi], diff_n=2)  # [d, l, m >= 0, ring]
+    polar = np.zeros((orders.size, 3, n_theta, lmax + 1))
+    for row, m in enumerate(orders):
+        polar[row, :, :, abs(m):] = np.moveaxis(legendre[:, abs(m):, abs(m)], 1, 2)
+    polar = polar.reshape(orders.size, 3 * n_theta, lmax + 1)
+    azimuthal = np.concatenate([_azimuthal(orders, grid.phi[:n_phi], d).T for d in range(3)], axis=1)
+    l, m = _degree_order(lmax)
+    rows = (m + lmax) * (lmax + 1) + l
+    for array in (polar, azimuthal, rows):
+        array.setflags(write=False)
+    return polar, azimuthal, rows
+
+
+def _project_columns(grid: AngularGrid, values: np.ndarray) -> np.ndarray:
+    """Y^T diag(weights) values for values (N, C) at the grid's nodes: the projection of C
+    nodal functions, factored over the product grid (sum over phi per ring and azimuthal
+    function, then over theta per degree): about a fifth of the multiply-adds of the dense
+    (n_coef x N) product, same result to round-off."""
+    azimuthal, polar, rows = _projection_factors(grid)
+    count = values.shape[1]
+    rings = values.reshape(grid.n_theta, grid.n_phi, count)
+    per_ring = np.swapaxes(azimuthal @ rings, 0, 1)  # (2 lmax + 1, n_theta, C)
+    return (polar @ per_ring).reshape(-1, count)[rows]
+
+
+@functools.lru_cache(maxsize=16)
+def _projection_factors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For :func:`_project_columns`: the azimuthal factors (2 lmax + 1, n_phi) of the real
+    harmonics at the grid's phi (m = -lmax..lmax), the polar factors times the quadrature
+    weights (2 lmax + 1, lmax + 1, n_theta) (zero for l < |m|), and the row of each coefficient
+    (l, m) in the (m, l) table. Read-only; memoised like :func:`_synthesis_factors`."""
+    lmax, n_theta, n_phi = grid.lmax, grid.n_theta, grid.n_phi
+    orders = np.arange(-lmax, lmax + 1)
+    azimuthal = np.ascontiguousarray(_azimuthal(orders, grid.phi[:n_phi], 0).T)
+    legendre = sph_legendre_p_all(lmax, lmax, grid.theta[::n_phi])[0]  # [l, m >= 0, ring]
+    ring_weights = grid.weights[::n_phi]
+    polar = np.zeros((orders.size, lmax + 1, n_theta))
+    for row, m in enumerate(orders):
+        polar[row, abs(m):] = legendre[abs(m):, abs(m)] * ring_weights
+    l, m = _degree_order(lmax)
+    rows = (m + lmax) * (lmax + 1) + l
+    for array in (azimuthal, polar, rows):
+        array.setflags(write=False)
+    return azimuthal, polar, rows
 
 
 def unit_vectors(theta: np.ndarray, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -342,8 +398,24 @@ class Surface:
         )
 
     def on_grid(self, grid: AngularGrid) -> RadiusDerivatives:
-        """h and its derivatives at the nodes of ``grid``."""
-        return self.derivatives(grid.basis, grid.theta, grid.phi)
+        """h and its derivatives at the nodes of ``grid`` (factored over the product grid: the
+        same sums as :meth:`derivatives` with ``grid.basis``, to round-off, read from tables a
+        thirtieth of the basis matrices' size)."""
+        if grid.lmax != self.lmax:
+            raise ValueError(f"basis: built for lmax {grid.lmax}, surface has lmax {self.lmax}")
+        polar, azimuthal, rows = _synthesis_factors(grid)
+        orders, degrees = polar.shape[0], polar.shape[2]
+        table = np.zeros(orders * degrees)
+        table[rows] = self.coefficients
+        # (m, [d, ring]) sums over l of the d-th theta derivative of P_l^|m| times a_lm, then
+        # over m against the azimuthal factors and their phi derivatives: [d, ring, e, phi].
+        per_order = (polar @ table.reshape(orders, degrees, 1))[:, :, 0]
+        n_theta, n_phi = grid.n_theta, grid.n_phi
+        out = (per_order.T @ azimuthal).reshape(3, n_theta, 3, n_phi)
+        return RadiusDerivatives(
+            grid.theta, grid.phi, out[0, :, 0].ravel(), out[1, :, 0].ravel(), out[0, :, 1].ravel(),
+            out[2, :, 0].ravel(), out[1, :, 1].ravel(), out[0, :, 2].ravel(),
+        )
 
     def at(self, theta, phi) -> RadiusDerivatives:
         """h and its derivatives at arbitrary directions, e.g. along a curve."""

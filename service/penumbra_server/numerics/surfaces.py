@@ -1,27 +1,30 @@
-"""Star-shaped surfaces r = h(theta, phi) about a centre, h expanded in real spherical harmonics.
-
-Real harmonics (orthonormal on the unit sphere, no Condon-Shortley sign games needed since only
-orthonormality matters here)::
-
-    Y_l0      = P_l^0(theta)
-    Y_lm      = sqrt(2) P_l^m(theta) cos(m phi)      m > 0
-    Y_l,-m    = sqrt(2) P_l^m(theta) sin(m phi)      m > 0
-
-with P_l^m the spherical (fully normalised) associated Legendre functions. Coefficient of
-(l, m) sits at index ``l*l + l + m``.
-
-Collocation and quadrature nodes: Gauss-Legendre in cos(theta) (no point on a pole) times a
-uniform phi grid. With ``n_theta >= l_max + 1`` and ``n_phi >= 2 l_max + 1`` the quadrature is
-exact for products of two harmonics of degree <= l_max.
+"""Star-shaped surfaces r = h(theta, phi) about a centre, h expanded in real spherical harmonics
+(conventions, node grids and the factored sums over them: :mod:`.harmonics`, whose names are
+re-exported here).
 """
 
 from __future__ import annotations
 
-import functools
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import sph_legendre_p_all
+
+from .harmonics import (  # noqa: F401  (re-exported: the numerics import them from here)
+    AngularGrid,
+    HarmonicBasis,
+    _azimuthal,
+    _degree_order,
+    _project_columns,
+    _synthesis_factors,
+    angular_grid,
+    basis_on_grid,
+    coefficient_count,
+    degree_of_index,
+    expand_on_grid,
+    harmonic_basis,
+    harmonic_values,
+    product_grid_basis,
+)
 
 __all__ = [
     "coefficient_count",
@@ -36,273 +39,6 @@ __all__ = [
     "Surface",
     "unit_vectors",
 ]
-
-
-def coefficient_count(lmax: int) -> int:
-    """Number of real harmonic coefficients up to degree ``lmax``: (lmax + 1)^2."""
-    return (lmax + 1) ** 2
-
-
-@functools.lru_cache(maxsize=64)
-def degree_of_index(lmax: int) -> np.ndarray:
-    """(n_coef,) degree l of each coefficient index, read-only."""
-    l = np.concatenate([np.full(2 * l + 1, l) for l in range(lmax + 1)])
-    l.setflags(write=False)
-    return l
-
-
-@dataclass(frozen=True, eq=False)
-class HarmonicBasis:
-    """Real harmonics and their angular derivatives at N directions.
-
-    Each matrix has shape (N, (lmax + 1)^2): ``Y``, ``d_theta``, ``d_phi``, ``d_theta_theta``,
-    ``d_theta_phi``, ``d_phi_phi``.
-    """
-
-    lmax: int
-    Y: np.ndarray
-    d_theta: np.ndarray
-    d_phi: np.ndarray
-    d_theta_theta: np.ndarray
-    d_theta_phi: np.ndarray
-    d_phi_phi: np.ndarray
-
-
-@functools.lru_cache(maxsize=64)
-def _degree_order(lmax: int) -> tuple[np.ndarray, np.ndarray]:
-    """(l, m) of every coefficient index, read-only."""
-    l = degree_of_index(lmax)
-    m = np.concatenate([np.arange(-d, d + 1) for d in range(lmax + 1)])
-    m.setflags(write=False)
-    return l, m
-
-
-def _check_angles(lmax: int, theta, phi) -> tuple[np.ndarray, np.ndarray]:
-    if lmax < 0:
-        raise ValueError(f"lmax: expected an integer >= 0, got {lmax}")
-    theta = np.asarray(theta, dtype=float).ravel()
-    phi = np.asarray(phi, dtype=float).ravel()
-    if theta.shape != phi.shape:
-        raise ValueError(f"theta and phi: expected equal lengths, got {theta.shape} and {phi.shape}")
-    return theta, phi
-
-
-def _azimuthal(m: np.ndarray, phi: np.ndarray, derivative: int) -> np.ndarray:
-    """(N, n_coef) the phi factor of each real harmonic (cos for m > 0, sin for m < 0, 1 for m = 0,
-    times sqrt(2) off m = 0) differentiated ``derivative`` times."""
-    am = np.abs(m)
-    arg = phi[:, None] * am[None, :]
-    if derivative == 0:
-        f = np.where(m > 0, np.cos(arg), np.where(m < 0, np.sin(arg), 1.0))
-    elif derivative == 1:
-        f = np.where(m > 0, -am * np.sin(arg), np.where(m < 0, am * np.cos(arg), 0.0))
-    else:
-        f = -(am**2) * np.where(m > 0, np.cos(arg), np.where(m < 0, np.sin(arg), 0.0))
-    return np.where(m == 0, 1.0, np.sqrt(2.0)) * f
-
-
-def harmonic_basis(lmax: int, theta: np.ndarray, phi: np.ndarray) -> HarmonicBasis:
-    """Real harmonics up to ``lmax`` and derivatives up to second order at (theta, phi) (radians).
-
-    ``theta`` and ``phi`` are 1-D arrays of equal length N.
-    """
-    theta, phi = _check_angles(lmax, theta, phi)
-    l, m = _degree_order(lmax)
-    # p[d, l, m, n]: d-th theta derivative of the spherical Legendre function (m >= 0 used).
-    p = sph_legendre_p_all(lmax, lmax, theta, diff_n=2)
-    P, Pt, Ptt = (p[d][l, np.abs(m)].T for d in range(3))  # each (N, n_coef)
-    f, fp, fpp = (_azimuthal(m, phi, d) for d in range(3))
-    return HarmonicBasis(lmax, P * f, Pt * f, P * fp, Ptt * f, Pt * fp, P * fpp)
-
-
-def product_grid_basis(lmax: int, theta_values: np.ndarray, phi_values: np.ndarray) -> HarmonicBasis:
-    """:func:`harmonic_basis` at the product grid theta_values x phi_values (theta-major, N =
-    n_theta n_phi), built from the 1-D factors: the same values, far more cheaply (the Legendre
-    functions at n_theta angles, not at N points)."""
-    th = np.asarray(theta_values, dtype=float).ravel()
-    ph = np.asarray(phi_values, dtype=float).ravel()
-    l, m = _degree_order(lmax)
-    p = sph_legendre_p_all(lmax, lmax, th, diff_n=2)
-    # Contiguous factors: the products are then C-ordered and the reshapes below copy nothing.
-    P, Pt, Ptt = (np.ascontiguousarray(p[d][l, np.abs(m)].T)[:, None, :] for d in range(3))  # (n_theta, 1, n_coef)
-    f, fp, fpp = (_azimuthal(m, ph, d)[None] for d in range(3))  # (1, n_phi, n_coef)
-    n = th.size * ph.size
-
-    def flat(a):
-        return a.reshape(n, -1)
-
-    return HarmonicBasis(lmax, flat(P * f), flat(Pt * f), flat(P * fp), flat(Ptt * f), flat(Pt * fp), flat(P * fpp))
-
-
-def harmonic_values(lmax: int, theta: np.ndarray, phi: np.ndarray) -> np.ndarray:
-    """(N, (lmax + 1)^2) real harmonics without derivatives (cheaper than :func:`harmonic_basis`)."""
-    theta, phi = _check_angles(lmax, theta, phi)
-    l, m = _degree_order(lmax)
-    return sph_legendre_p_all(lmax, lmax, theta)[0][l, np.abs(m)].T * _azimuthal(m, phi, 0)
-
-
-@dataclass(frozen=True, eq=False)
-class AngularGrid:
-    """Collocation/quadrature nodes: Gauss-Legendre in cos(theta) x uniform phi.
-
-    Attributes:
-        lmax: highest degree the grid is built for.
-        theta, phi: (N,) node angles in radians, N = n_theta * n_phi, theta-major.
-        weights: (N,) quadrature weights for integrals over solid angle (sum = 4 pi).
-        basis: :class:`HarmonicBasis` at the nodes.
-    """
-
-    lmax: int
-    n_theta: int
-    n_phi: int
-    theta: np.ndarray
-    phi: np.ndarray
-    weights: np.ndarray
-    basis: HarmonicBasis
-
-    @property
-    def size(self) -> int:
-        return int(self.theta.size)
-
-    def project(self, values: np.ndarray) -> np.ndarray:
-        """Harmonic coefficients of nodal ``values`` (N,) by quadrature (factored over the
-        product grid, :func:`_project_columns`)."""
-        return _project_columns(self, np.asarray(values, dtype=float).reshape(self.size, 1))[:, 0]
-
-
-@functools.lru_cache(maxsize=32)
-def angular_grid(lmax: int, n_theta: int | None = None, n_phi: int | None = None) -> AngularGrid:
-    """The node set for degree ``lmax`` (memoised: a pure function of its arguments).
-
-    Defaults: n_theta = lmax + 2 and n_phi = 2 n_theta, a little above the exactness minimum so
-    that the projection of the (nonlinear) expansion aliases less.
-    """
-    n_theta = int(n_theta or lmax + 2)
-    n_phi = int(n_phi or 2 * n_theta)
-    if n_theta < lmax + 1 or n_phi < 2 * lmax + 1:
-        raise ValueError(
-            f"angular grid: n_theta >= lmax + 1 and n_phi >= 2 lmax + 1 needed, got {n_theta}, {n_phi} for lmax {lmax}"
-        )
-    x, w = np.polynomial.legendre.leggauss(n_theta)
-    th = np.arccos(x)[::-1]  # increasing theta
-    w = w[::-1]
-    ph = (np.arange(n_phi) + 0.5) * (2.0 * np.pi / n_phi)
-    theta = np.repeat(th, n_phi)
-    phi = np.tile(ph, n_theta)
-    weights = np.repeat(w, n_phi) * (2.0 * np.pi / n_phi)
-    for arr in (theta, phi, weights):
-        arr.setflags(write=False)
-    return AngularGrid(lmax, n_theta, n_phi, theta, phi, weights, product_grid_basis(lmax, th, ph))
-
-
-@functools.lru_cache(maxsize=32)
-def basis_on_grid(lmax: int, grid_lmax: int) -> HarmonicBasis:
-    """Harmonics up to ``lmax`` at the nodes of ``angular_grid(grid_lmax)`` (memoised: a pure
-    function of its arguments; the finder's checks between nodes and the measurements reuse it)."""
-    grid = angular_grid(grid_lmax)
-    basis = product_grid_basis(lmax, grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi])
-    for name in ("Y", "d_theta", "d_phi", "d_theta_theta", "d_theta_phi", "d_phi_phi"):
-        getattr(basis, name).setflags(write=False)
-    return basis
-
-
-#: (theta derivatives, phi derivatives) of each array of :class:`HarmonicBasis`, in its order.
-_DERIVATIVE_ORDERS = ((0, 0), (1, 0), (0, 1), (2, 0), (1, 1), (0, 2))
-
-
-@functools.lru_cache(maxsize=32)
-def _grid_factors(lmax: int, grid_lmax: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The 1-D factors of the harmonics on ``angular_grid(grid_lmax)``: Legendre functions and
-    their theta derivatives (3, n_theta, K), azimuthal factors and their phi derivatives per
-    order m = -lmax..lmax (3, n_phi, 2 lmax + 1), and the (K, 2 lmax + 1) map of each
-    coefficient to its order. Read-only."""
-    grid = angular_grid(grid_lmax)
-    theta, phi = grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi]
-    l, m = _degree_order(lmax)
-    p = sph_legendre_p_all(lmax, lmax, theta, diff_n=2)
-    legendre = np.stack([np.ascontiguousarray(p[d][l, np.abs(m)].T) for d in range(3)])
-    orders = np.arange(-lmax, lmax + 1)
-    azimuthal = np.stack([_azimuthal(orders, phi, d) for d in range(3)])
-    order_of = (m[:, None] == orders[None, :]).astype(float)
-    for arr in (legendre, azimuthal, order_of):
-        arr.setflags(write=False)
-    return legendre, azimuthal, order_of
-
-
-def expand_on_grid(lmax: int, grid_lmax: int, coefficients: np.ndarray) -> tuple[np.ndarray, ...]:
-    """A field of real-harmonic ``coefficients`` ((K,) or (K, q), K = (lmax + 1)^2) and its five
-    derivatives (the order of :class:`HarmonicBasis`) at the nodes of ``angular_grid(grid_lmax)``,
-    each (N,) or (N, q). The same numbers as ``basis_on_grid(lmax, grid_lmax)`` times the
-    coefficients (to round-off), summed over the product grid's factors: first over the degrees
-    of each order at n_theta angles, then over the orders at n_phi angles, never touching an
-    (N, K) matrix (several times fewer operations and memory reads)."""
-    legendre, azimuthal, order_of = _grid_factors(lmax, grid_lmax)
-    c = np.asarray(coefficients, dtype=float)
-    flat = c.reshape(c.shape[0], -1)  # (K, q)
-    n_theta, n_phi = legendre.shape[1], azimuthal.shape[1]
-    weighted = flat.T[:, None, :] * order_of.T[None, :, :]  # (q, 2 lmax + 1, K): each order's coefficients
-    # per theta derivative: the sum over the degrees of each order, (q, n_theta, 2 lmax + 1)
-    by_order = [np.matmul(legendre[d][None], weighted.transpose(0, 2, 1)) for d in range(3)]
-    out = []
-    for d_theta, d_phi in _DERIVATIVE_ORDERS:
-        values = np.matmul(by_order[d_theta], azimuthal[d_phi].T)  # (q, n_theta, n_phi)
-        out.append(np.moveaxis(values.reshape(values.shape[0], n_theta * n_phi), 0, -1).reshape((n_theta * n_phi,) + c.shape[1:]))
-    return tuple(out)
-
-
-@functools.lru_cache(maxsize=16)
-def _synthesis_factors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """For :meth:`Surface.on_grid`: the polar factors (2 lmax + 1, 3 n_theta, lmax + 1), P_l^|m|
-    and its first and second theta derivatives at the rings for each order m = -lmax..lmax (zero
-    for l < |m|), the azimuthal factors (2 lmax + 1, 3 n_phi) and their first and second phi
-    derivatives, and the slot of each coefficient (l, m) in the (m, l) table. Read-only;
-    memoised (a pure function of the grid, which :func:`angular_grid` memoises)."""
-    lmax, n_theta, n_phi = grid.lmax, grid.n_theta, grid.n_phi
-    orders = np.arange(-lmax, lmax + 1)
-    legendre = sph_legendre_p_all(lmax, lmax, grid.theta[::n_phi], diff_n=2)  # [d, l, m >= 0, ring]
-    polar = np.zeros((orders.size, 3, n_theta, lmax + 1))
-    for row, m in enumerate(orders):
-        polar[row, :, :, abs(m):] = np.moveaxis(legendre[:, abs(m):, abs(m)], 1, 2)
-    polar = polar.reshape(orders.size, 3 * n_theta, lmax + 1)
-    azimuthal = np.concatenate([_azimuthal(orders, grid.phi[:n_phi], d).T for d in range(3)], axis=1)
-    l, m = _degree_order(lmax)
-    rows = (m + lmax) * (lmax + 1) + l
-    for array in (polar, azimuthal, rows):
-        array.setflags(write=False)
-    return polar, azimuthal, rows
-
-
-def _project_columns(grid: AngularGrid, values: np.ndarray) -> np.ndarray:
-    """Y^T diag(weights) values for values (N, C) at the grid's nodes: the projection of C
-    nodal functions, factored over the product grid (sum over phi per ring and azimuthal
-    function, then over theta per degree): about a fifth of the multiply-adds of the dense
-    (n_coef x N) product, same result to round-off."""
-    azimuthal, polar, rows = _projection_factors(grid)
-    count = values.shape[1]
-    rings = values.reshape(grid.n_theta, grid.n_phi, count)
-    per_ring = np.swapaxes(azimuthal @ rings, 0, 1)  # (2 lmax + 1, n_theta, C)
-    return (polar @ per_ring).reshape(-1, count)[rows]
-
-
-@functools.lru_cache(maxsize=16)
-def _projection_factors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """For :func:`_project_columns`: the azimuthal factors (2 lmax + 1, n_phi) of the real
-    harmonics at the grid's phi (m = -lmax..lmax), the polar factors times the quadrature
-    weights (2 lmax + 1, lmax + 1, n_theta) (zero for l < |m|), and the row of each coefficient
-    (l, m) in the (m, l) table. Read-only; memoised like :func:`_synthesis_factors`."""
-    lmax, n_theta, n_phi = grid.lmax, grid.n_theta, grid.n_phi
-    orders = np.arange(-lmax, lmax + 1)
-    azimuthal = np.ascontiguousarray(_azimuthal(orders, grid.phi[:n_phi], 0).T)
-    legendre = sph_legendre_p_all(lmax, lmax, grid.theta[::n_phi])[0]  # [l, m >= 0, ring]
-    ring_weights = grid.weights[::n_phi]
-    polar = np.zeros((orders.size, lmax + 1, n_theta))
-    for row, m in enumerate(orders):
-        polar[row, abs(m):] = legendre[abs(m):, abs(m)] * ring_weights
-    l, m = _degree_order(lmax)
-    rows = (m + lmax) * (lmax + 1) + l
-    for array in (azimuthal, polar, rows):
-        array.setflags(write=False)
-    return azimuthal, polar, rows
 
 
 def unit_vectors(theta: np.ndarray, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

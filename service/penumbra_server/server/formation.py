@@ -130,10 +130,10 @@ class FormationWatch:
         if steering.common_formed is not None:
             self.stopped = True
             return
-        advice = steering.last_advice
+        t = float(item.slice_.time)
+        advice = steering.advice_by_time.get(t)  # this slice's (a later slice may be planned already)
         if not steering.common_searching or advice is None:
             return
-        t = float(item.slice_.time)
         interval = float(run.settings.refinement.steering_interval)
         if self._last_search_time is not None and t - self._last_search_time < interval * (1 - 1e-9):
             return

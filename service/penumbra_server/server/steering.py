@@ -52,6 +52,8 @@ COMMON_LABEL = "common"
 #: After the common horizon formed, an individual surface missed this many times in a row is
 #: no longer searched (it is inside the common horizon; "keep finding them while found").
 RETIRE_AFTER_MISSES = 2
+#: Slices whose common-search advice is kept (more than the slices a run has in flight).
+_ADVICE_KEPT = 8
 
 
 def common_label_for(body_labels: Sequence[str]) -> str:
@@ -106,6 +108,9 @@ class RunSteering:
         self.previous_slice_time: float = math.nan
         self.last_slice_time: float = math.nan
         self.last_advice: CommonSearchAdvice | None = None
+        #: The advice per slice time, the latest few (with slices in flight the next slice may be
+        #: planned before the one before it is observed: an observer asks for its own slice's).
+        self.advice_by_time: dict[float, CommonSearchAdvice] = {}
         #: The guidance issued last: its merged regions stay merged until clear by the policy's
         #: separation margin (tracking.guidance, hysteresis), so regions do not thrash.
         self.last_guidance: RefinementGuidance | None = None
@@ -204,6 +209,9 @@ class RunSteering:
         advice = common_horizon_watch(positions[0], positions[1], radius_a=a.radius_max, radius_b=b.radius_max,
                                       masses=self.body_masses(self.body_labels), already_searching=already)
         self.last_advice = advice
+        self.advice_by_time[float(time)] = advice
+        while len(self.advice_by_time) > _ADVICE_KEPT:
+            del self.advice_by_time[min(self.advice_by_time)]
         return advice
 
     # -- observation --------------------------------------------------------------------------------

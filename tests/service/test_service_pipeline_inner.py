@@ -10,6 +10,7 @@ is decided by the test (gated_executor.py), never by the machine's speed.
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import time
 
 import numpy as np
@@ -116,8 +117,9 @@ def test_inner_search_waits_for_the_slice_before_while_the_next_slices_searches_
 
 def test_an_inside_search_starts_when_its_own_outer_search_ends_with_the_replanned_plan():
     """search_in_order alone (plain coroutines as the searches, each ending when the test says):
-    the inner search does not wait for a sibling body's search, takes the plan ``replan_inside``
-    gives and the outer surface found, and the outcomes come back in plan order."""
+    deferred searches start only with the plans ``replan`` gives, the inner search does not wait
+    for a sibling body's search and takes the outer surface found, and the outcomes come back in
+    plan order."""
     box = (np.full(3, -1.0), np.full(3, 1.0))
     plans = [SurfacePlan("A", None, None, None, *box), SurfacePlan("common", None, None, None, *box),
              SurfacePlan("common_inner", None, None, None, *box, inside_of="common")]
@@ -134,9 +136,10 @@ def test_an_inside_search_starts_when_its_own_outer_search_ends_with_the_replann
             return SurfaceOutcome(label=plan.label, found=True, reason=REASON_FOUND, status=0, message="found",
                                   centre=sphere.centre, lmax=sphere.lmax, coefficients=sphere.coefficients)
 
-        async def replan_inside():
+        async def replan():
             await ends["replanned"].wait()
-            return [SurfacePlan("common_inner", None, None, None, *box, inside_of="common", lmax=6)]
+            return [plans[0], dataclasses.replace(plans[1], lmax=5),
+                    SurfacePlan("common_inner", None, None, None, *box, inside_of="common", lmax=6)]
 
         async def until(condition):
             for _ in range(1000):  # event-loop turns, not seconds: fails if the condition never holds
@@ -145,10 +148,15 @@ def test_an_inside_search_starts_when_its_own_outer_search_ends_with_the_replann
                 await asyncio.sleep(0)
             raise AssertionError(f"not reached; started {started}")
 
-        search = asyncio.ensure_future(search_in_order(plans, attempt, {}, replan_inside=replan_inside))
-        await until(lambda: started == ["A", "common"])
-        ends["common"].set()
+        search = asyncio.ensure_future(search_in_order(plans, attempt, {}, deferred=frozenset({1, 2}), replan=replan))
+        await until(lambda: started == ["A"])
+        for _ in range(50):  # the deferred searches wait for the plans again, however many turns pass
+            await asyncio.sleep(0)
+        assert started == ["A"]
         ends["replanned"].set()
+        await until(lambda: started == ["A", "common"])
+        assert seen["common"].lmax == 5
+        ends["common"].set()
         await until(lambda: "common_inner" in started)  # while A's search still runs
         assert not ends["A"].is_set() and not search.done()
         assert seen["common_inner"].lmax == 6 and seen["common_inner"].outer is not None

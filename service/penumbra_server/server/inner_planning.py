@@ -48,28 +48,31 @@ def inner_common_plans(settings: RunSettings, plans: Sequence[SurfacePlan], comm
 
 
 async def search_in_order(plans: Sequence[SurfacePlan], attempt: Callable[[SurfacePlan], Awaitable[SurfaceOutcome]],
-                          displaced: MutableMapping[str, object], *,
-                          replan_inside: Callable[[], Awaitable[list[SurfacePlan]]] | None = None) -> list[SurfaceOutcome]:
+                          displaced: MutableMapping[str, object], *, deferred: frozenset[int] = frozenset(),
+                          replan: Callable[[], Awaitable[Sequence[SurfacePlan]]] | None = None) -> list[SurfaceOutcome]:
     """Outcomes of ``plans`` in plan order. The plans searched on their own start at once; each plan
     searched inside a surface of this slice (``SurfacePlan.inside_of``) starts when that surface's
     search ends, handed the surface when it was found (not waiting for the other searches).
-    ``replan_inside``: when given, awaited for the inside plans (in their order) before they start
-    (planned again once the slices before were applied). ``displaced`` (the run's) takes their
-    solutions in the displacement representation, the seeds of the next slice."""
-    any_inside = any(plan.inside_of is not None for plan in plans)
+    ``deferred``: indices of plans that start only once ``replan`` (awaited once) has given the
+    plans again (same labels, same positions); they are searched as planned then.
+    ``displaced`` (the run's) takes their solutions in the displacement representation, the
+    seeds of the next slice."""
+    if deferred and replan is None:
+        raise ValueError("replan: required when plans are deferred")
     tasks: dict[int, asyncio.Future] = {}
     replanned = None
     try:
-        for index, plan in enumerate(plans):
-            if plan.inside_of is None:
-                tasks[index] = asyncio.ensure_future(attempt(plan))
-        by_label = {plans[index].label: task for index, task in tasks.items()}
-        if replan_inside is not None and any_inside:
-            replanned = asyncio.ensure_future(replan_inside())
+        if deferred:
+            replanned = asyncio.ensure_future(replan())
 
-        async def search_inside(plan: SurfacePlan, position: int) -> SurfaceOutcome:
-            if replanned is not None:
-                plan = (await asyncio.shield(replanned))[position]
+        async def plan_at(index: int) -> SurfacePlan:
+            return (await asyncio.shield(replanned))[index] if index in deferred else plans[index]
+
+        async def search_outer(index: int) -> SurfaceOutcome:
+            return await attempt(await plan_at(index))
+
+        async def search_inside(index: int) -> SurfaceOutcome:
+            plan = await plan_at(index)
             outer_search = by_label.get(plan.inside_of)
             if outer_search is not None:
                 outer = await asyncio.shield(outer_search)
@@ -77,11 +80,13 @@ async def search_in_order(plans: Sequence[SurfacePlan], attempt: Callable[[Surfa
                     plan = dataclasses.replace(plan, outer=Surface(outer.centre, outer.lmax, outer.coefficients))
             return await attempt(plan)
 
-        position = 0
+        for index, plan in enumerate(plans):
+            if plan.inside_of is None:
+                tasks[index] = asyncio.ensure_future(search_outer(index) if index in deferred else attempt(plan))
+        by_label = {plans[index].label: task for index, task in tasks.items()}
         for index, plan in enumerate(plans):
             if plan.inside_of is not None:
-                tasks[index] = asyncio.ensure_future(search_inside(plan, position))
-                position += 1
+                tasks[index] = asyncio.ensure_future(search_inside(index))
         outcomes = list(await asyncio.gather(*(tasks[index] for index in range(len(plans)))))
     finally:
         for task in tasks.values():  # cancelled with the slice, or one search raised: end the others

@@ -9,20 +9,22 @@ oldest first, whatever order the finds finish in, so the decision state, the arc
 events of a run advance in iteration order as with one slice at a time. Depth 1 is one slice at a
 time.
 
-Where the tracking order does not allow it, a slice waits: while slices are in flight, a slice
-whose plan holds a search (other than one inside a surface of the same slice, see below) not
-seeded from a forecast with motion (a surface never found, such
-as a common horizon not yet formed; one lost to a wide scan; one seeded where it last was, no
-motion known yet) is planned again once the slices before it are applied (a scan started early throws away what the slice before may find;
-a static seed two slices old can be far off a moving hole). So the first slices of a run go one
-at a time. A search inside a surface of its own slice (the inner common MOTS) waits for that
-surface anyway; it is seeded from its own previous solution, so while the slices before are in
-flight it waits for them to be applied too and is planned then (``InFlight.applied``): its seed
-is the one it would have with one slice at a time. With more than one slice in flight a run's seeds (never its accepted surfaces, which
-meet the same tolerance) depend on timing: the server's default is one slice at a time.
+Where the tracking order does not allow it, a search waits: while slices are in flight, a search
+not seeded from a forecast with motion (a surface never found, such as a common horizon not yet
+formed; one lost to a wide scan; one seeded where it last was, no motion known yet) and a search
+inside a surface of its own slice (the inner common MOTS, seeded from its own previous solution)
+are planned again once the slices before are applied (``InFlight.applied``) and start then, with
+the seeds they would have with one slice at a time (a scan started early throws away what the
+slice before may find; a static seed two slices old can be far off a moving hole). The slice's
+other searches start at once. A slice with no search that may start early waits whole, so the
+first slices of a run go one at a time. With more than one slice in flight the seeds of the
+searches that start early (never the accepted surfaces, which meet the same tolerance) depend on
+timing: the server's default is one slice at a time.
 
-Planning and applying both happen in this one loop (never at the same time), so the run's
-tracking state, which the apply step updates off the event loop, is never read half-updated.
+Plans are made on the event loop, never while a slice's outcomes are being applied (a deferred
+search's only once every slice before it was applied, and no later slice is applied before it),
+so the run's tracking state, which the apply step updates off the event loop, is never read
+half-updated.
 """
 
 from __future__ import annotations

@@ -10,6 +10,7 @@ Write-behind: a processed slice's commit is written while the next slice is proc
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import logging
 import time
 
@@ -51,9 +52,11 @@ class RunProcessing:
                              launch=self._launch, apply=self._apply_or_fail)
 
     def _launch(self, item: QueuedSlice, overlapping: bool) -> InFlight | None:
-        """Plan ``item`` from what the decision state knows now (slices still in flight not yet
-        applied: their surfaces are seeded from the forecast) and start its finds; None when
-        ``overlapping`` and a plan needs those slices' outcomes (:func:`~.pipeline.may_overlap`)."""
+        """Plan ``item`` from what the decision state knows now and start its finds. With slices
+        still in flight (``overlapping``) the searches seeded from a forecast with motion start now
+        (:func:`~.pipeline.may_overlap`); the others (and those inside a surface of this slice)
+        are planned again once those slices are applied (:meth:`_replanned`). None when no search
+        could start now: the slice is launched again after them."""
         started = time.time()
         try:
             plans = list(self.planner.plan(self.settings, self.tracks, item.slice_))
@@ -64,8 +67,9 @@ class RunProcessing:
             failed = asyncio.get_running_loop().create_future()
             failed.set_exception(exc)
             return InFlight(item, started, [], failed)
-        # A search inside a surface of this slice is planned again once the slices before are applied.
-        if overlapping and not all(may_overlap(plan) for plan in plans if plan.inside_of is None):
+        deferred = frozenset(index for index, plan in enumerate(plans)
+                             if overlapping and (plan.inside_of is not None or not may_overlap(plan)))
+        if overlapping and not any(plan.search for index, plan in enumerate(plans) if index not in deferred):
             return None
         earlier = [flight.applied for flight in self._flight]
         additions = []
@@ -75,7 +79,8 @@ class RunProcessing:
                 if adding is None:
                     adding = self._adding[plan.label] = asyncio.ensure_future(self._add_surface(plan))
                 additions.append(adding)
-        return InFlight(item, started, plans, asyncio.ensure_future(self._search(item, plans, additions, earlier)))
+        return InFlight(item, started, plans,
+                        asyncio.ensure_future(self._search(item, plans, additions, earlier, deferred)))
 
     async def _add_surface(self, plan: SurfacePlan) -> None:
         try:
@@ -86,24 +91,29 @@ class RunProcessing:
             self._adding.pop(plan.label, None)
 
     async def _search(self, item: QueuedSlice, plans: list[SurfacePlan], additions: list,
-                      earlier: list[asyncio.Future]) -> list[SurfaceOutcome]:
+                      earlier: list[asyncio.Future], deferred: frozenset[int]) -> list[SurfaceOutcome]:
         for adding in additions:  # its rows need the surface's archive group
             await adding
         # Searches inside a surface of this slice (the inner common MOTS) wait for that surface.
-        return await search_in_order(plans, lambda plan: self._attempt(plan, item), self.displaced,
-                                     replan_inside=lambda: self._replanned_inside(plans, earlier))
+        return await search_in_order(plans, lambda plan: self._attempt(plan, item), self.displaced, deferred=deferred,
+                                     replan=lambda: self._replanned(item, plans, earlier, deferred))
 
-    async def _replanned_inside(self, plans: list[SurfacePlan], earlier: list[asyncio.Future]) -> list[SurfacePlan]:
-        """The inside plans of ``plans``, planned again once the slices launched before this one are
-        applied (their seeds are the previous slice's solutions, as with one slice at a time)."""
-        inside = [plan for plan in plans if plan.inside_of is not None]
-        if not earlier or not inside:
-            return inside
+    async def _replanned(self, item: QueuedSlice, plans: list[SurfacePlan], earlier: list[asyncio.Future],
+                         deferred: frozenset[int]) -> list[SurfacePlan]:
+        """``plans`` (the flight's list, updated in place: the apply step records what was searched)
+        with those at ``deferred`` planned again once the slices launched before this one are
+        applied: seeded from their outcomes, as with one slice at a time. A surface the fresh plan
+        no longer holds is reported not searched."""
         await asyncio.wait(earlier)
-        outer = [plan for plan in plans if plan.inside_of is None]
-        again = {plan.label: plan for plan in inner_common_plans(self.settings, outer, self.steering.common_label,
-                                                                 self.states, self.displaced)}
-        return [again.get(plan.label, plan) for plan in inside]
+        fresh = {plan.label: plan for plan in self.planner.plan(self.settings, self.tracks, item.slice_)}
+        outer = [fresh.get(plan.label, plan) if index in deferred else plan
+                 for index, plan in enumerate(plans) if plan.inside_of is None]
+        fresh.update({plan.label: plan for plan in inner_common_plans(self.settings, outer, self.steering.common_label,
+                                                                      self.states, self.displaced)})
+        for index in deferred:
+            plans[index] = fresh.get(plans[index].label) or dataclasses.replace(
+                plans[index], search=False, note="not searched: no longer planned once the slices before were applied")
+        return plans
 
     async def _apply_or_fail(self, flight: InFlight) -> None:
         try:

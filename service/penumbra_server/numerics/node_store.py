@@ -18,10 +18,10 @@ conformal factor (chi, W or phi).
 from __future__ import annotations
 
 import numpy as np
-from numpy.lib.stride_tricks import sliding_window_view
 
 from .excision import EXCISION_MASK_FIELD
 from .slices import Slice, VariableSet, symmetric_field_names
+from .stencil_rows import memory_layout, stencil_rows
 
 __all__ = ["NodeStore", "centred_difference_weights", "field_layout"]
 
@@ -119,6 +119,7 @@ class NodeStore:
             self._raw_plain = _PLAIN
         self._raw = {name: _flat_view(patch.fields[name]) for name in self._raw_differentiated + self._raw_plain}
         self._arrays = {name: patch.fields[name] for name in self._raw}  # as given, for box reads
+        self._layouts: dict | None = None  # name -> memory_layout, for the stencil fill
         self.n_differentiated = 7
         self.n_values = 4 * 7 + 7
         self._slot_array: np.ndarray | None = None  # flat node -> row (-1: not made), on first use
@@ -195,69 +196,59 @@ class NodeStore:
     #: a stencil costs about as much as 80 to 100 nodes filled one by one.
     _STENCIL_FILL_SHARE = 0.4
 
-    #: Stencils filled per chunk: bounds the temporaries (chunk x order^3 x values) to ~10 MiB.
-    _STENCIL_CHUNK = 128
+    #: Stencils filled per chunk: bounds the temporaries (chunk x order^3 x values, about 2 MiB at
+    #: order 6, and the boxes read) to what stays in cache between reading and storing.
+    _STENCIL_CHUNK = 32
 
     def _fill_stencils(self, corners: np.ndarray, flat: np.ndarray) -> None:
-        """Fill the missing nodes of whole interpolation stencils (conformal data). Each stencil's
-        fields come as three boxes read straight from the patch arrays (its cube widened by
-        order/2 along x, y or z: runs of neighbouring memory), and every node's centred
-        differences are slices of those boxes. Several times fewer reads than gathering each
-        node's difference cross (neighbouring nodes share them), and the rows are the same
-        arithmetic on the same values wherever a node is met, so a node's row never depends on
-        which stencil made it."""
-        p, g = self.order, self.reach
-        c = centred_difference_weights(p)[g + 1:]  # weights of offsets +1..+g (antisymmetric)
-        boxes = [(p + 2 * g, p, p), (p, p + 2 * g, p), (p, p, p + 2 * g)]
-        windows = {name: [sliding_window_view(self._arrays[name], shape) for shape in boxes]
-                   for name in self._raw_differentiated}
-        plain = {name: sliding_window_view(self._arrays[name], (p, p, p)) for name in self._raw_plain}
+        """Fill the missing nodes of whole interpolation stencils (conformal data), reading each
+        field in whole memory rows (:func:`.stencil_rows.stencil_rows`): several times fewer
+        reads than gathering each node's difference cross, and the rows are the node fill's
+        arithmetic on the same values, so a node's row never depends on which path made it."""
+        if self._layouts is None:
+            self._layouts = {name: memory_layout(*self._raw[name], self.shape) for name in self._raw}
+        differentiated = [self._layouts[name] for name in self._raw_differentiated]
+        plain = [self._layouts[name] for name in self._raw_plain]
+        weights = centred_difference_weights(self.order)[self.reach + 1:]
         for start in range(0, corners.shape[0], self._STENCIL_CHUNK):
-            ci, cj, ck = corners[start: start + self._STENCIL_CHUNK].T
             chunk_flat = flat[start: start + self._STENCIL_CHUNK]
             if not (np.take(self._slot, chunk_flat) < 0).any():
                 continue  # earlier stencils of this call made them all
-            m = ci.size
-            columns = np.empty((self.n_values, m, p, p, p))  # value-major: each value written in one pass
-            with np.errstate(invalid="ignore", over="ignore"):
-                for f, name in enumerate(self._raw_differentiated):
-                    wx, wy, wz = windows[name]
-                    along = tuple(box.astype(float, copy=False)
-                                  for box in (wx[ci - g, cj, ck], wy[ci, cj - g, ck], wz[ci, cj, ck - g]))
-                    columns[f] = along[0][:, g: g + p]
-                    for axis, box in enumerate(along):
-                        lo = [slice(None)] * 4
-                        hi = [slice(None)] * 4
-                        derivative = 0.0
-                        for k in range(1, g + 1):
-                            lo[1 + axis] = slice(g - k, g - k + p)
-                            hi[1 + axis] = slice(g + k, g + k + p)
-                            derivative = derivative + c[k - 1] * (box[tuple(hi)] - box[tuple(lo)])
-                        columns[7 + 3 * f + axis] = derivative / self.spacing[axis]
-                for f, name in enumerate(self._raw_plain):
-                    columns[28 + f] = plain[name][ci, cj, ck]
-            self._store_new(chunk_flat.reshape(-1), columns.reshape(self.n_values, -1))
+            rows = stencil_rows(differentiated, plain, corners[start: start + self._STENCIL_CHUNK], self.order,
+                                self.spacing, weights)
+            self._store_new(chunk_flat.reshape(-1), rows.reshape(-1, self.n_values))
 
-    def _store_new(self, flat: np.ndarray, columns: np.ndarray) -> None:
-        """Keep the rows of the nodes in ``flat`` (one each, repeats allowed) not yet stored;
-        ``columns`` (values, len(flat)) holds them value-major."""
-        new = np.nonzero(self._slot[flat] < 0)[0]
-        if new.size == 0:
-            return
+    def _store_new(self, flat: np.ndarray, rows: np.ndarray) -> None:
+        """Keep the rows (len(flat), values) of the nodes in ``flat`` (one each, repeats allowed)
+        not yet stored."""
+        missing = self._slot[flat] < 0
+        if missing.all():
+            new = None  # the common case on fine grids: every node new (repeats checked below)
+            candidates = flat
+        else:
+            new = np.nonzero(missing)[0]
+            if new.size == 0:
+                return
+            candidates = flat[new]
         # One representative of each repeated node (the scratch marks are overwritten below).
-        order = np.arange(new.size, dtype=np.int32)
-        self._slot[flat[new]] = order
-        new = new[self._slot[flat[new]] == order]
-        q = new.size
+        order = np.arange(candidates.size, dtype=np.int32)
+        self._slot[candidates] = order
+        first = self._slot[candidates] == order
+        if not first.all():
+            new = (order if new is None else new)[first]
+        nodes = flat if new is None else flat[new]
+        picked = rows if new is None else rows[new]
+        q = nodes.size
         self._grow(q)
-        # Finiteness on the value-major columns (contiguous), before the transposing copy.
-        finite = np.isfinite(columns).all(axis=0)[new]
-        flags = np.where(finite, 0, self.NON_FINITE).astype(np.uint8)
-        nodes = flat[new]
+        # All finite (one sum) is the rule; the per-row check only when the sum is not finite.
+        if np.isfinite(picked.sum()):
+            flags = np.zeros(q, dtype=np.uint8)
+        else:
+            flags = np.where(np.isfinite(picked).all(axis=1), 0, self.NON_FINITE).astype(np.uint8)
         if self._spheres or self._mask is not None:
             excised = self._excised(np.stack(np.unravel_index(nodes, self.shape), axis=1), self._taps())
             flags[excised] = self.EXCISED
-        self.values[self.count: self.count + q] = columns[:, new].T
+        self.values[self.count: self.count + q] = picked
         self.flags[self.count: self.count + q] = flags
         self.any_flagged |= bool(flags.any())
         self._slot[nodes] = np.arange(self.count, self.count + q, dtype=np.int32)

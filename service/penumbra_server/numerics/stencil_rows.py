@@ -1,0 +1,105 @@
+"""Node rows (fields and centred differences) of whole interpolation stencils, read from the
+patch arrays as runs of neighbouring memory.
+
+Used by :class:`~.node_store.NodeStore` where stencils share few nodes (fine grids, a surface that
+moved): there the cost of preparing a stencil is reading its data from memory, so the reads
+are made as few and as long as the data allow. Each field is read in whole memory rows (runs
+along its fastest axis, p or p + 2 g values long) by one fancy index over a row view of the
+array, instead of value by value: three boxes per differentiated field (the stencil's cube
+widened by g = p / 2 along each axis) and the cube itself for the plain fields. Each box is
+laid out with its widened axis first, so a centred difference is a few whole-array operations
+on contiguous slabs.
+
+The arithmetic of a difference is that of the node-by-node fill (:meth:`NodeStore._fill_chunk`),
+term by term (c_1 (f[+1] - f[-1]) + c_2 (...) + ..., then divided by the spacing), so a node's
+row is the same floating-point numbers whichever path made it.
+
+Shapes: m stencils of p^3 nodes (x slowest, the layout of :meth:`GridGeometry.stencils`);
+rows (m, p^3, 4 n_d + n_plain): the n_d differentiated fields, their x, y, z derivatives
+field-major, the plain fields.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["memory_layout", "stencil_rows"]
+
+
+def memory_layout(flat: np.ndarray, strides: np.ndarray, shape: tuple[int, int, int]) -> tuple[np.ndarray, tuple[int, int, int]]:
+    """(C-contiguous 3-D view of a field's flat C- or F-order data, physical axis of each of its
+    axes). ``flat`` and ``strides`` (elements per physical axis) as kept by the node store: an
+    F-order field is viewed transposed, so its fastest axis (x) comes last."""
+    if strides[2] == 1:
+        return flat.reshape(shape), (0, 1, 2)
+    return flat.reshape(shape[::-1]), (2, 1, 0)
+
+
+def _row_view(flat: np.ndarray, length: int) -> np.ndarray:
+    """1-D view whose item n is the run flat[n: n + length] (one opaque item, overlapping its
+    neighbours): fancy indexing it copies whole runs instead of single values."""
+    return np.ndarray(shape=(flat.size - length + 1,), dtype=np.dtype(("V", flat.itemsize * length)),
+                      buffer=flat, strides=(flat.itemsize,))
+
+
+def _difference(box: np.ndarray, c: np.ndarray, p: int, g: int) -> np.ndarray:
+    """Centred difference along the first axis of ``box`` (p + 2 g, ...) at its p middle planes,
+    the node fill's arithmetic term by term (not yet divided by the spacing)."""
+    derivative = 0.0
+    for k in range(1, g + 1):
+        derivative = derivative + c[k - 1] * (box[g + k: g + k + p] - box[g - k: g - k + p])
+    return derivative
+
+
+def stencil_rows(differentiated, plain, corners: np.ndarray, order: int, spacing: np.ndarray,
+                 difference_weights: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+    """(m, p^3, 4 n_d + n_plain) rows of the nodes of the stencils starting at ``corners``.
+
+    Args:
+        differentiated, plain: sequences of (C-contiguous 3-D array, physical axis of each of
+            its axes) from :func:`memory_layout`, the fields that get derivatives and those that
+            do not.
+        corners: (m, 3) node indices of each stencil's node [0, 0, 0]; every box must lie
+            inside the arrays (the caller checks the reach).
+        order: p, nodes per stencil axis (even); g = p / 2.
+        spacing: (3,) grid spacing in M per physical axis.
+        difference_weights: the centred first-derivative weights of offsets +1..+g.
+        out: optional (m, p^3, values) array to fill.
+    """
+    p, g = order, order // 2
+    L = p + 2 * g
+    m = corners.shape[0]
+    nd = len(differentiated)
+    n_values = 4 * nd + len(plain)
+    if out is None:
+        out = np.empty((m, p**3, n_values))
+    cube = out.reshape(m, p, p, p, n_values)
+    near, wide = np.arange(p), np.arange(L) - g
+    with np.errstate(invalid="ignore", over="ignore"):
+        for f, (array, axes) in enumerate(list(differentiated) + list(plain)):
+            s0, s1 = array.shape[1] * array.shape[2], array.shape[2]
+            flat = array.reshape(-1)
+            base = corners[:, list(axes)] @ np.array([s0, s1, 1])  # corner in the array's own axes
+            # The output cube seen in the array's axes (an F-order field is viewed transposed).
+            dest = cube if axes == (0, 1, 2) else cube.transpose(0, 3, 2, 1, 4)
+            runs = _row_view(flat, p)
+            if f >= nd:
+                starts = base[:, None, None] + (near * s0)[None, :, None] + (near * s1)[None, None, :]
+                dest[..., 3 * nd + f] = runs[starts].view(flat.dtype).reshape(m, p, p, p)
+                continue
+            # Box widened along the array's first axis, that axis first: (L, m, p, p).
+            starts = base[None, :, None] + (wide * s0)[:, None, None] + (near * s1)[None, None, :]
+            box = runs[starts].view(flat.dtype).reshape(L, m, p, p).astype(float, copy=False)
+            dest[..., f] = box[g: g + p].transpose(1, 0, 2, 3)
+            dest[..., nd + 3 * f + axes[0]] = (_difference(box, difference_weights, p, g) / spacing[axes[0]]).transpose(1, 0, 2, 3)
+            # Widened along the second axis, that axis first: (L, m, p [first axis], p).
+            starts = base[None, :, None] + (wide * s1)[:, None, None] + (near * s0)[None, None, :]
+            box = runs[starts].view(flat.dtype).reshape(L, m, p, p).astype(float, copy=False)
+            dest[..., nd + 3 * f + axes[1]] = (_difference(box, difference_weights, p, g) / spacing[axes[1]]).transpose(1, 2, 0, 3)
+            # Widened along the fastest axis: runs of L, turned to put that axis first.
+            starts = base[:, None, None] + (near * s0)[None, :, None] + (near * s1)[None, None, :] - g
+            runs_wide = _row_view(flat, L)[starts].view(flat.dtype).reshape(m * p * p, L)
+            box = np.ascontiguousarray(runs_wide.T, dtype=float)  # (L, m p p)
+            derivative = _difference(box, difference_weights, p, g) / spacing[axes[2]]
+            dest[..., nd + 3 * f + axes[2]] = derivative.reshape(p, m, p, p).transpose(1, 2, 3, 0)
+    return out

@@ -210,45 +210,61 @@ class NodeStore:
         differentiated = [self._layouts[name] for name in self._raw_differentiated]
         plain = [self._layouts[name] for name in self._raw_plain]
         weights = centred_difference_weights(self.order)[self.reach + 1:]
+        p3 = self.order**3
         for start in range(0, corners.shape[0], self._STENCIL_CHUNK):
-            chunk_flat = flat[start: start + self._STENCIL_CHUNK]
-            if not (np.take(self._slot, chunk_flat) < 0).any():
+            chunk_flat = flat[start: start + self._STENCIL_CHUNK].reshape(-1)
+            chunk_corners = corners[start: start + self._STENCIL_CHUNK]
+            missing = np.take(self._slot, chunk_flat) < 0
+            if not missing.any():
                 continue  # earlier stencils of this call made them all
-            rows = stencil_rows(differentiated, plain, corners[start: start + self._STENCIL_CHUNK], self.order,
-                                self.spacing, weights)
-            self._store_new(chunk_flat.reshape(-1), rows.reshape(-1, self.n_values))
+            if missing.all() and self._all_distinct(chunk_flat):
+                # Every node new, none shared (fine grids): the rows are made in the store itself.
+                q = chunk_flat.size
+                self._grow(q)
+                rows = self.values[self.count: self.count + q]
+                stencil_rows(differentiated, plain, chunk_corners, self.order, self.spacing, weights,
+                             out=rows.reshape(-1, p3, self.n_values))
+                self._append(chunk_flat, rows, written=True)
+            else:
+                rows = stencil_rows(differentiated, plain, chunk_corners, self.order, self.spacing, weights)
+                self._store_new(chunk_flat, rows.reshape(-1, self.n_values))
+
+    def _all_distinct(self, flat: np.ndarray) -> bool:
+        """Whether the missing nodes ``flat`` (1-D) hold no repeats (their slot entries, all -1,
+        serve as scratch and are restored)."""
+        order = np.arange(flat.size, dtype=np.int32)
+        self._slot[flat] = order
+        distinct = bool((self._slot[flat] == order).all())
+        self._slot[flat] = -1
+        return distinct
 
     def _store_new(self, flat: np.ndarray, rows: np.ndarray) -> None:
         """Keep the rows (len(flat), values) of the nodes in ``flat`` (one each, repeats allowed)
         not yet stored."""
-        missing = self._slot[flat] < 0
-        if missing.all():
-            new = None  # the common case on fine grids: every node new (repeats checked below)
-            candidates = flat
-        else:
-            new = np.nonzero(missing)[0]
-            if new.size == 0:
-                return
-            candidates = flat[new]
-        # One representative of each repeated node (the scratch marks are overwritten below).
-        order = np.arange(candidates.size, dtype=np.int32)
-        self._slot[candidates] = order
-        first = self._slot[candidates] == order
-        if not first.all():
-            new = (order if new is None else new)[first]
-        nodes = flat if new is None else flat[new]
-        picked = rows if new is None else rows[new]
+        new = np.nonzero(self._slot[flat] < 0)[0]
+        if new.size == 0:
+            return
+        # One representative of each repeated node (the scratch marks are overwritten in _append).
+        order = np.arange(new.size, dtype=np.int32)
+        self._slot[flat[new]] = order
+        new = new[self._slot[flat[new]] == order]
+        self._grow(new.size)
+        self._append(flat[new], rows[new])
+
+    def _append(self, nodes: np.ndarray, rows: np.ndarray, written: bool = False) -> None:
+        """Record the rows (q, values) of the distinct new ``nodes`` as the next q rows of the
+        store (``written``: they are already there)."""
         q = nodes.size
-        self._grow(q)
         # All finite (one sum) is the rule; the per-row check only when the sum is not finite.
-        if np.isfinite(picked.sum()):
+        if np.isfinite(rows.sum()):
             flags = np.zeros(q, dtype=np.uint8)
         else:
-            flags = np.where(np.isfinite(picked).all(axis=1), 0, self.NON_FINITE).astype(np.uint8)
+            flags = np.where(np.isfinite(rows).all(axis=1), 0, self.NON_FINITE).astype(np.uint8)
         if self._spheres or self._mask is not None:
             excised = self._excised(np.stack(np.unravel_index(nodes, self.shape), axis=1), self._taps())
             flags[excised] = self.EXCISED
-        self.values[self.count: self.count + q] = picked
+        if not written:
+            self.values[self.count: self.count + q] = rows
         self.flags[self.count: self.count + q] = flags
         self.any_flagged |= bool(flags.any())
         self._slot[nodes] = np.arange(self.count, self.count + q, dtype=np.int32)

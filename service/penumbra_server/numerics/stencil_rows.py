@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["memory_layout", "stencil_rows"]
+__all__ = ["memory_layout", "stencil_rows", "boxes"]
 
 
 def memory_layout(flat: np.ndarray, strides: np.ndarray, shape: tuple[int, int, int]) -> tuple[np.ndarray, tuple[int, int, int]]:
@@ -40,6 +40,19 @@ def _row_view(flat: np.ndarray, length: int) -> np.ndarray:
     neighbours): fancy indexing it copies whole runs instead of single values."""
     return np.ndarray(shape=(flat.size - length + 1,), dtype=np.dtype(("V", flat.itemsize * length)),
                       buffer=flat, strides=(flat.itemsize,))
+
+
+def boxes(flat: np.ndarray, strides: np.ndarray, corners: np.ndarray, shape: tuple[int, int, int]) -> np.ndarray:
+    """(m, *shape) values of the boxes of ``shape`` (nodes per physical axis) whose node [0, 0, 0]
+    is ``corners`` (m, 3), read in runs along the field's fastest axis. ``flat``, ``strides``:
+    the field's flat C- or F-order data and element strides per physical axis; every box must
+    lie inside the array. A view of the copied runs with the axes in physical order."""
+    fast = int(np.argmin(strides))
+    a, b = (axis for axis in range(3) if axis != fast)
+    starts = ((corners @ strides)[:, None, None] + (np.arange(shape[a]) * strides[a])[None, :, None]
+              + (np.arange(shape[b]) * strides[b])[None, None, :])
+    runs = _row_view(flat, shape[fast])[starts].view(flat.dtype).reshape(corners.shape[0], shape[a], shape[b], shape[fast])
+    return np.moveaxis(runs, 3, 1 + fast)
 
 
 def _difference(box: np.ndarray, c: np.ndarray, p: int, g: int) -> np.ndarray:

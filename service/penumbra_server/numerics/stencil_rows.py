@@ -56,12 +56,30 @@ def boxes(flat: np.ndarray, strides: np.ndarray, corners: np.ndarray, shape: tup
 
 
 def _difference(box: np.ndarray, c: np.ndarray, p: int, g: int) -> np.ndarray:
-    """Centred difference along the first axis of ``box`` (p + 2 g, ...) at its p middle planes,
+    """Centred difference along axis 1 of ``box`` (fields, p + 2 g, ...) at its p middle planes,
     the node fill's arithmetic term by term (not yet divided by the spacing)."""
     derivative = 0.0
     for k in range(1, g + 1):
-        derivative = derivative + c[k - 1] * (box[g + k: g + k + p] - box[g - k: g - k + p])
+        derivative = derivative + c[k - 1] * (box[:, g + k: g + k + p] - box[:, g - k: g - k + p])
     return derivative
+
+
+def _groups(fields) -> list[tuple[tuple[int, int, int], list[int]]]:
+    """(layout, indices of the fields with it): fields of one layout are processed stacked."""
+    groups: dict = {}
+    for index, (array, axes) in enumerate(fields):
+        groups.setdefault((axes, array.shape), []).append(index)
+    return [(key[0], indices) for key, indices in groups.items()]
+
+
+def _runs(fields, indices, starts: np.ndarray, length: int) -> np.ndarray:
+    """(fields, *starts.shape, length) runs of ``length`` values from each field at ``starts``
+    (flat indices into the fields' C-contiguous arrays), as float."""
+    parts = []
+    for index in indices:
+        flat = fields[index][0].reshape(-1)
+        parts.append(_row_view(flat, length)[starts].view(flat.dtype).reshape(starts.shape + (length,)))
+    return np.stack(parts).astype(float, copy=False)
 
 
 def stencil_rows(differentiated, plain, corners: np.ndarray, order: int, spacing: np.ndarray,
@@ -88,31 +106,36 @@ def stencil_rows(differentiated, plain, corners: np.ndarray, order: int, spacing
         out = np.empty((m, p**3, n_values))
     cube = out.reshape(m, p, p, p, n_values)
     near, wide = np.arange(p), np.arange(L) - g
+    c = difference_weights
     with np.errstate(invalid="ignore", over="ignore"):
-        for f, (array, axes) in enumerate(list(differentiated) + list(plain)):
-            s0, s1 = array.shape[1] * array.shape[2], array.shape[2]
-            flat = array.reshape(-1)
-            base = corners[:, list(axes)] @ np.array([s0, s1, 1])  # corner in the array's own axes
-            # The output cube seen in the array's axes (an F-order field is viewed transposed).
+        for axes, indices in _groups(differentiated):
+            shape = differentiated[indices[0]][0].shape
+            s0, s1 = shape[1] * shape[2], shape[2]
+            base = corners[:, list(axes)] @ np.array([s0, s1, 1])  # corner in the arrays' own axes
+            # The output cube seen in the arrays' axes (F-order fields are viewed transposed);
+            # the fields last, as the row holds them.
             dest = cube if axes == (0, 1, 2) else cube.transpose(0, 3, 2, 1, 4)
-            runs = _row_view(flat, p)
-            if f >= nd:
-                starts = base[:, None, None] + (near * s0)[None, :, None] + (near * s1)[None, None, :]
-                dest[..., 3 * nd + f] = runs[starts].view(flat.dtype).reshape(m, p, p, p)
-                continue
-            # Box widened along the array's first axis, that axis first: (L, m, p, p).
-            starts = base[None, :, None] + (wide * s0)[:, None, None] + (near * s1)[None, None, :]
-            box = runs[starts].view(flat.dtype).reshape(L, m, p, p).astype(float, copy=False)
-            dest[..., f] = box[g: g + p].transpose(1, 0, 2, 3)
-            dest[..., nd + 3 * f + axes[0]] = (_difference(box, difference_weights, p, g) / spacing[axes[0]]).transpose(1, 0, 2, 3)
-            # Widened along the second axis, that axis first: (L, m, p [first axis], p).
-            starts = base[None, :, None] + (wide * s1)[:, None, None] + (near * s0)[None, None, :]
-            box = runs[starts].view(flat.dtype).reshape(L, m, p, p).astype(float, copy=False)
-            dest[..., nd + 3 * f + axes[1]] = (_difference(box, difference_weights, p, g) / spacing[axes[1]]).transpose(1, 2, 0, 3)
+            columns = np.array(indices)
+            # Box widened along the arrays' first axis, that axis first: (fields, L, m, p, p).
+            box = _runs(differentiated, indices, base[None, :, None] + (wide * s0)[:, None, None] + (near * s1)[None, None, :], p)
+            dest[..., columns] = box[:, g: g + p].transpose(2, 1, 3, 4, 0)
+            derivative = _difference(box, c, p, g) / spacing[axes[0]]
+            dest[..., nd + 3 * columns + axes[0]] = derivative.transpose(2, 1, 3, 4, 0)
+            # Widened along the second axis, that axis first: (fields, L, m, p [first axis], p).
+            box = _runs(differentiated, indices, base[None, :, None] + (wide * s1)[:, None, None] + (near * s0)[None, None, :], p)
+            derivative = _difference(box, c, p, g) / spacing[axes[1]]
+            dest[..., nd + 3 * columns + axes[1]] = derivative.transpose(2, 3, 1, 4, 0)
             # Widened along the fastest axis: runs of L, turned to put that axis first.
             starts = base[:, None, None] + (near * s0)[None, :, None] + (near * s1)[None, None, :] - g
-            runs_wide = _row_view(flat, L)[starts].view(flat.dtype).reshape(m * p * p, L)
-            box = np.ascontiguousarray(runs_wide.T, dtype=float)  # (L, m p p)
-            derivative = _difference(box, difference_weights, p, g) / spacing[axes[2]]
-            dest[..., nd + 3 * f + axes[2]] = derivative.reshape(p, m, p, p).transpose(1, 2, 3, 0)
+            box = _runs(differentiated, indices, starts, L)  # (fields, m, p, p, L)
+            box = np.ascontiguousarray(np.moveaxis(box, 4, 1))  # (fields, L, m, p, p)
+            derivative = _difference(box, c, p, g) / spacing[axes[2]]
+            dest[..., nd + 3 * columns + axes[2]] = derivative.transpose(2, 3, 4, 1, 0)
+        for axes, indices in _groups(plain):
+            shape = plain[indices[0]][0].shape
+            s0, s1 = shape[1] * shape[2], shape[2]
+            base = corners[:, list(axes)] @ np.array([s0, s1, 1])
+            dest = cube if axes == (0, 1, 2) else cube.transpose(0, 3, 2, 1, 4)
+            starts = base[:, None, None] + (near * s0)[None, :, None] + (near * s1)[None, None, :]
+            dest[..., 4 * nd + np.array(indices)] = np.moveaxis(_runs(plain, indices, starts, p), 0, 4)
     return out

@@ -173,7 +173,8 @@ class NodeStore:
                     and nodes.size >= self._STENCIL_FILL_SHARE * flat.shape[1] * np.count_nonzero(touched)):
                 self._slot[nodes] = -1  # undo _distinct's scratch marks
                 self._grow(nodes.size)
-                self._fill_stencils(corners[touched], flat[touched])
+                # No node missing twice (fine grids): no stencil shares a missing node.
+                self._fill_stencils(corners[touched], flat[touched], nodes.size == np.count_nonzero(missing))
             else:
                 self._fill(nodes)
             slots = np.take(self._slot, flat)
@@ -200,11 +201,12 @@ class NodeStore:
     #: order 6, and the boxes read) to what stays in cache between reading and storing.
     _STENCIL_CHUNK = 32
 
-    def _fill_stencils(self, corners: np.ndarray, flat: np.ndarray) -> None:
+    def _fill_stencils(self, corners: np.ndarray, flat: np.ndarray, distinct: bool = False) -> None:
         """Fill the missing nodes of whole interpolation stencils (conformal data), reading each
         field in whole memory rows (:func:`.stencil_rows.stencil_rows`): several times fewer
         reads than gathering each node's difference cross, and the rows are the node fill's
-        arithmetic on the same values, so a node's row never depends on which path made it."""
+        arithmetic on the same values, so a node's row never depends on which path made it.
+        ``distinct``: the caller knows that no missing node is repeated in ``flat``."""
         if self._layouts is None:
             self._layouts = {name: memory_layout(*self._raw[name], self.shape) for name in self._raw}
         differentiated = [self._layouts[name] for name in self._raw_differentiated]
@@ -217,7 +219,7 @@ class NodeStore:
             missing = np.take(self._slot, chunk_flat) < 0
             if not missing.any():
                 continue  # earlier stencils of this call made them all
-            if missing.all() and self._all_distinct(chunk_flat):
+            if missing.all() and (distinct or self._all_distinct(chunk_flat)):
                 # Every node new, none shared (fine grids): the rows are made in the store itself.
                 q = chunk_flat.size
                 self._grow(q)

@@ -4,7 +4,9 @@ A :class:`NodeStore` maps a patch node (flat index, C order over the patch shape
 contiguous component-last array: the differentiated fields, their x, y, z derivatives
 (field-major) and the plain fields. A node's row is computed the first time an interpolation
 stencil reaches it, from the raw patch arrays at the node and its difference stencil (a cross of
-half-width order/2); the patch arrays are read in place, never copied.
+half-width order/2), or, where stencils share few nodes, for whole stencils at once from runs of
+neighbouring memory (:mod:`.stencil_rows`, the same numbers); the patch arrays are read in place,
+never copied.
 
 The store is a cache of a pure function of the slice (the same node always gets the same row);
 it lives as long as the :class:`~.interpolation.GridGeometry` that owns it, i.e. one find or
@@ -232,8 +234,7 @@ class NodeStore:
                 self._store_new(chunk_flat, rows.reshape(-1, self.n_values))
 
     def _all_distinct(self, flat: np.ndarray) -> bool:
-        """Whether the missing nodes ``flat`` (1-D) hold no repeats (their slot entries, all -1,
-        serve as scratch and are restored)."""
+        """Whether the missing nodes ``flat`` (1-D) hold no repeats (their slots are scratch)."""
         order = np.arange(flat.size, dtype=np.int32)
         self._slot[flat] = order
         distinct = bool((self._slot[flat] == order).all())
@@ -283,10 +284,9 @@ class NodeStore:
             self.values.resize((capacity, self.n_values), refcheck=False)
             self.flags.resize(capacity, refcheck=False)
             return
-        # Later batches: fresh arrays and a copy of the rows made so far. Resizing a large
-        # populated block in place was measured 4 times slower (22 to 43 MB: 28 against 7 ms,
-        # the allocator's move and the zero-filled tail). The store hands out no views that
-        # outlive a call (np.take copies; the sparse sums read ``values`` after the fill).
+        # Later batches: fresh arrays, the rows made so far copied (resizing a large populated
+        # block in place measured 4 times slower: 22 to 43 MB, 28 against 7 ms). No view of the
+        # store outlives a call (np.take copies; the sparse sums read ``values`` after the fill).
         values = np.empty((capacity, self.n_values))
         values[: self.count] = self.values[: self.count]
         flags = np.empty(capacity, dtype=np.uint8)

@@ -27,9 +27,9 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-from numpy.lib.stride_tricks import sliding_window_view
 
 from .node_store import NodeStore, centred_difference_weights
+from .stencil_rows import boxes
 
 __all__ = ["direct_values", "direct_where_unprepared"]
 
@@ -89,9 +89,7 @@ def direct_values(store: NodeStore, corners: np.ndarray, w: np.ndarray, dw: np.n
 
 def _chunk_values(store, corners, w, dw, p, g):
     m = corners.shape[0]
-    ci, cj, ck = corners.T
     L = p + 2 * g
-    arrays = store._arrays
     C = _difference_matrix(p)
     wx, wy, wz = w[:, 0], w[:, 1], w[:, 2]
     D = [w[:, a] @ C / store.spacing[a] for a in range(3)]  # (m, L) each
@@ -112,24 +110,26 @@ def _chunk_values(store, corners, w, dw, p, g):
     def pick(result):
         return result[0] if dw is None else result[1]
 
+    # Boxes are read in runs of neighbouring memory (:func:`.stencil_rows.boxes`).
+    lo = [corners - np.array(offset) for offset in ((g, 0, 0), (0, g, 0), (0, 0, g))]
     for f, name in enumerate(differentiated):
-        arr = arrays[name]
+        flat, strides = store._raw[name]
         # x box (m, L, p, p): z, then y; gives the field and its x difference.
-        box = sliding_window_view(arr, (L, p, p))[ci - g, cj, ck].astype(float, copy=False)
+        box = boxes(flat, strides, lo[0], (L, p, p)).astype(float, copy=False)
         xzy = _varied(_last, *_varied(_last, box, None, wz, dwz), wy, dwy)
         centre_pair = (xzy[0][:, centre], None if xzy[1] is None else xzy[1][:, centre])
         out[:, f] = pick(dot(centre_pair, wx, dwx))
         out[:, nd + 3 * f] = pick(dot(xzy, D[0], dD[0]))
         # y box (m, p, L, p): z, then x.
-        box = sliding_window_view(arr, (p, L, p))[ci, cj - g, ck].astype(float, copy=False)
+        box = boxes(flat, strides, lo[1], (p, L, p)).astype(float, copy=False)
         yzx = _varied(_first, *_varied(_last, box, None, wz, dwz), wx, dwx)
         out[:, nd + 3 * f + 1] = pick(dot(yzx, D[1], dD[1]))
         # z box (m, p, p, L): x, then y.
-        box = sliding_window_view(arr, (p, p, L))[ci, cj, ck - g].astype(float, copy=False)
+        box = boxes(flat, strides, lo[2], (p, p, L)).astype(float, copy=False)
         zxy = _varied(_first, *_varied(_first, box, None, wx, dwx), wy, dwy)
         out[:, nd + 3 * f + 2] = pick(dot(zxy, D[2], dD[2]))
     for f, name in enumerate(store._raw_plain):
-        box = sliding_window_view(arrays[name], (p, p, p))[ci, cj, ck].astype(float, copy=False)
+        box = boxes(*store._raw[name], corners, (p, p, p)).astype(float, copy=False)
         pzy = _varied(_last, *_varied(_last, box, None, wz, dwz), wy, dwy)
         out[:, 4 * nd + f] = pick(dot(pzy, wx, dwx))
     return out

@@ -33,7 +33,7 @@ import numpy as np
 from .curvature import christoffel_lower
 from .geometry import PointGeometry, inverse_3x3
 from .surfaces import (Surface, angular_grid, basis_on_grid, coefficient_count, expand_on_grid, harmonic_basis,
-                       harmonic_values)
+                       harmonic_values, product_grid_basis)
 
 __all__ = [
     "ReferenceSurface",
@@ -44,6 +44,7 @@ __all__ = [
     "reference_from_points",
     "embedding",
     "embedding_at",
+    "embedding_on_product_grid",
     "parametric_expansion",
     "parametric_area",
     "CoordinateExtent",
@@ -171,6 +172,16 @@ def embedding_at(surface: DisplacedSurface, theta, phi) -> Embedding:
     phi = np.asarray(phi, dtype=float).ravel()
     hb, rb = harmonic_basis(surface.lmax, theta, phi), harmonic_basis(surface.reference.lmax, theta, phi)
     return combine(theta, phi, _expand(hb, surface.coefficients), _expand(rb, surface.reference.position),
+                   _expand(rb, surface.reference.direction))
+
+
+def embedding_on_product_grid(surface: DisplacedSurface, grid) -> Embedding:
+    """:func:`embedding_at` the nodes of an :class:`~.harmonics.AngularGrid` (any degree and
+    node counts, e.g. a quadrature grid), its harmonics built from the grid's 1-D factors (the
+    same numbers, far more cheaply)."""
+    th, ph = grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi]
+    hb, rb = product_grid_basis(surface.lmax, th, ph), product_grid_basis(surface.reference.lmax, th, ph)
+    return combine(grid.theta, grid.phi, _expand(hb, surface.coefficients), _expand(rb, surface.reference.position),
                    _expand(rb, surface.reference.direction))
 
 

@@ -16,7 +16,7 @@ import numpy as np
 import scipy.linalg
 
 from .curvature import christoffel_lower, spatial_ricci
-from .displaced import DisplacedSurface, embedding_at
+from .displaced import DisplacedSurface, embedding_on_product_grid
 from .sources import as_tracked_source
 from .stability import StabilitySpectrum
 from .surfaces import angular_grid
@@ -29,7 +29,7 @@ def _matrices(surface: DisplacedSurface, data, lmax: int, order: int):
     grid = angular_grid(lmax, n_theta, 2 * n_theta)
     theta, w = grid.theta, grid.weights
     source = as_tracked_source(data, order=order)
-    emb = embedding_at(surface, grid.theta, grid.phi)
+    emb = embedding_on_product_grid(surface, grid)
     geo = source(emb.x)
     if not geo.covered.all():
         raise ValueError(f"surface: {int((~geo.covered).sum())} of {theta.size} quadrature points lie outside the data")

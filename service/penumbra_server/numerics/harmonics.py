@@ -150,7 +150,9 @@ class AngularGrid:
         lmax: highest degree the grid is built for.
         theta, phi: (N,) node angles in radians, N = n_theta * n_phi, theta-major.
         weights: (N,) quadrature weights for integrals over solid angle (sum = 4 pi).
-        basis: :class:`HarmonicBasis` at the nodes.
+        basis: :class:`HarmonicBasis` at the nodes, built on first use (six (N, (lmax + 1)^2)
+            arrays: a quadrature grid of degree 24 used for its nodes and weights alone would
+            otherwise hold 175 MB of them).
     """
 
     lmax: int
@@ -159,7 +161,10 @@ class AngularGrid:
     theta: np.ndarray
     phi: np.ndarray
     weights: np.ndarray
-    basis: HarmonicBasis
+
+    @functools.cached_property
+    def basis(self) -> HarmonicBasis:
+        return product_grid_basis(self.lmax, self.theta[:: self.n_phi], self.phi[: self.n_phi])
 
     @property
     def size(self) -> int:
@@ -193,7 +198,7 @@ def angular_grid(lmax: int, n_theta: int | None = None, n_phi: int | None = None
     weights = np.repeat(w, n_phi) * (2.0 * np.pi / n_phi)
     for arr in (theta, phi, weights):
         arr.setflags(write=False)
-    return AngularGrid(lmax, n_theta, n_phi, theta, phi, weights, product_grid_basis(lmax, th, ph))
+    return AngularGrid(lmax, n_theta, n_phi, theta, phi, weights)
 
 
 @functools.lru_cache(maxsize=32)

@@ -36,6 +36,7 @@ __all__ = [
     "angular_grid",
     "basis_on_grid",
     "expand_on_grid",
+    "expand_on_product",
 ]
 
 
@@ -217,13 +218,12 @@ _DERIVATIVE_ORDERS = ((0, 0), (1, 0), (0, 1), (2, 0), (1, 1), (0, 2))
 
 
 @functools.lru_cache(maxsize=32)
-def _grid_factors(lmax: int, grid_lmax: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The 1-D factors of the harmonics on ``angular_grid(grid_lmax)``: Legendre functions and
-    their theta derivatives (3, n_theta, K), azimuthal factors and their phi derivatives per
-    order m = -lmax..lmax (3, n_phi, 2 lmax + 1), and the (K, 2 lmax + 1) map of each
-    coefficient to its order. Read-only."""
-    grid = angular_grid(grid_lmax)
-    theta, phi = grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi]
+def _product_factors(lmax: int, theta_bytes: bytes, phi_bytes: bytes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The 1-D factors of the harmonics on the product grid of the float64 angles in
+    ``theta_bytes`` x ``phi_bytes``: Legendre functions and their theta derivatives (3, n_theta,
+    K), azimuthal factors and their phi derivatives per order m = -lmax..lmax (3, n_phi,
+    2 lmax + 1), and the (K, 2 lmax + 1) map of each coefficient to its order. Read-only."""
+    theta, phi = np.frombuffer(theta_bytes), np.frombuffer(phi_bytes)
     l, m = _degree_order(lmax)
     p = sph_legendre_p_all(lmax, lmax, theta, diff_n=2)
     legendre = np.stack([np.ascontiguousarray(p[d][l, np.abs(m)].T) for d in range(3)])
@@ -236,13 +236,23 @@ def _grid_factors(lmax: int, grid_lmax: int) -> tuple[np.ndarray, np.ndarray, np
 
 
 def expand_on_grid(lmax: int, grid_lmax: int, coefficients: np.ndarray) -> tuple[np.ndarray, ...]:
+    """:func:`expand_on_product` at the nodes of ``angular_grid(grid_lmax)``."""
+    grid = angular_grid(grid_lmax)
+    return expand_on_product(lmax, grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi], coefficients)
+
+
+def expand_on_product(lmax: int, theta_values: np.ndarray, phi_values: np.ndarray,
+                      coefficients: np.ndarray) -> tuple[np.ndarray, ...]:
     """A field of real-harmonic ``coefficients`` ((K,) or (K, q), K = (lmax + 1)^2) and its five
-    derivatives (the order of :class:`HarmonicBasis`) at the nodes of ``angular_grid(grid_lmax)``,
-    each (N,) or (N, q). The same numbers as ``basis_on_grid(lmax, grid_lmax)`` times the
-    coefficients (to round-off), summed over the product grid's factors: first over the degrees
-    of each order at n_theta angles, then over the orders at n_phi angles, never touching an
-    (N, K) matrix (several times fewer operations and memory reads)."""
-    legendre, azimuthal, order_of = _grid_factors(lmax, grid_lmax)
+    derivatives (the order of :class:`HarmonicBasis`) at the product grid theta_values x
+    phi_values (theta-major, N = n_theta n_phi), each (N,) or (N, q). The same numbers as
+    :func:`product_grid_basis` times the coefficients (to round-off), summed over the grid's
+    factors: first over the degrees of each order at n_theta angles, then over the orders at
+    n_phi angles, never making an (N, K) matrix (several times fewer operations and memory
+    reads)."""
+    legendre, azimuthal, order_of = _product_factors(
+        lmax, np.ascontiguousarray(theta_values, dtype=float).tobytes(),
+        np.ascontiguousarray(phi_values, dtype=float).tobytes())
     c = np.asarray(coefficients, dtype=float)
     flat = c.reshape(c.shape[0], -1)  # (K, q)
     n_theta, n_phi = legendre.shape[1], azimuthal.shape[1]

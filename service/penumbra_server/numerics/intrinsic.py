@@ -21,9 +21,11 @@ import numpy as np
 
 from .geometry import PointGeometry
 # product_grid_basis re-exported: the measurements import it from here.
-from .surfaces import HarmonicBasis, Surface, harmonic_basis, product_grid_basis, unit_vectors  # noqa: F401
+from .harmonics import expand_on_product
+from .surfaces import (HarmonicBasis, RadiusDerivatives, Surface, harmonic_basis, product_grid_basis,  # noqa: F401
+                       unit_vectors)
 
-__all__ = ["InducedGeometry", "induced_geometry", "product_grid_basis"]
+__all__ = ["InducedGeometry", "induced_geometry", "product_grid_basis", "surface_on_product"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -54,19 +56,32 @@ class InducedGeometry:
     geometry: PointGeometry
 
 
+def surface_on_product(surface: Surface, theta_values: np.ndarray, phi_values: np.ndarray) -> RadiusDerivatives:
+    """h and its derivatives at the product grid theta_values x phi_values (theta-major), summed
+    over the grid's 1-D factors (:func:`~.harmonics.expand_on_product`)."""
+    th = np.asarray(theta_values, dtype=float).ravel()
+    ph = np.asarray(phi_values, dtype=float).ravel()
+    values = expand_on_product(surface.lmax, th, ph, surface.coefficients)
+    return RadiusDerivatives(np.repeat(th, ph.size), np.tile(ph, th.size), *values)
+
+
 def induced_geometry(
-    surface: Surface, theta: np.ndarray, phi: np.ndarray, geometry_source, *, basis: HarmonicBasis | None = None
+    surface: Surface, theta: np.ndarray, phi: np.ndarray, geometry_source, *, basis: HarmonicBasis | None = None,
+    derivatives: RadiusDerivatives | None = None,
 ) -> InducedGeometry:
     """Induced metric, its Christoffel symbols and the unit normal at directions (theta, phi).
 
     ``geometry_source`` maps (N, 3) points to :class:`PointGeometry`; a ValueError names the
-    points it does not cover. ``basis``: the surface's harmonic basis at the directions, if
-    already at hand (e.g. from :func:`product_grid_basis`).
+    points it does not cover. ``basis``: the surface's harmonic basis at the directions, or
+    ``derivatives``: h and its derivatives there (e.g. :func:`surface_on_product`), if already
+    at hand.
     """
     theta = np.asarray(theta, dtype=float).ravel()
     phi = np.asarray(phi, dtype=float).ravel()
-    basis = harmonic_basis(surface.lmax, theta, phi) if basis is None else basis
-    rd = surface.derivatives(basis, theta, phi)
+    if derivatives is not None:
+        rd = derivatives
+    else:
+        rd = surface.derivatives(harmonic_basis(surface.lmax, theta, phi) if basis is None else basis, theta, phi)
     n, et, ep = unit_vectors(theta, phi)
     st, ct = np.sin(theta)[:, None], np.cos(theta)[:, None]
     h, ht, hp = rd.h[:, None], rd.h_t[:, None], rd.h_p[:, None]

@@ -37,7 +37,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.linalg import eigh
 
-from .intrinsic import InducedGeometry, induced_geometry, product_grid_basis
+from .intrinsic import InducedGeometry, induced_geometry, product_grid_basis, surface_on_product
 from .sources import TrackedSource, as_tracked_source
 from .surfaces import HarmonicBasis, Surface, angular_grid, harmonic_basis
 
@@ -112,8 +112,7 @@ def surface_quadrature(surface: Surface, data, lmax_zeta: int, n_theta: int | No
     n_theta = int(n_theta or 2 * max(surface.lmax, lmax_zeta) + 2)
     grid = angular_grid(1, n_theta, 2 * n_theta)  # nodes and weights only (basis of degree 1)
     th, ph = grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi]
-    surface_basis = product_grid_basis(surface.lmax, th, ph)
-    induced = induced_geometry(surface, grid.theta, grid.phi, source, basis=surface_basis)
+    induced = induced_geometry(surface, grid.theta, grid.phi, source, derivatives=surface_on_product(surface, th, ph))
     st = np.sin(grid.theta)
     basis = product_grid_basis(lmax_zeta, th, ph)
     return SurfaceQuadrature(induced, basis, grid.weights, grid.weights * induced.sqrt_det / st, st)

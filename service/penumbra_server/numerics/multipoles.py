@@ -33,7 +33,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.polynomial import legendre
 
-from .intrinsic import induced_geometry, product_grid_basis
+from .harmonics import expand_on_product
+from .intrinsic import induced_geometry, surface_on_product
 from .killing import HorizonSpin, horizon_spin, potential_terms, surface_quadrature
 from .sources import as_tracked_source
 from .surfaces import Surface, harmonic_values
@@ -80,13 +81,11 @@ def curvature_moments(surface: Surface, data, zeta_lmax: int, zeta_coefficients:
     ph = (np.arange(n_phi) + 0.5) * (2 * np.pi / n_phi)
     theta, phi = np.repeat(th, n_phi), np.tile(ph, n_theta)
     weights = np.repeat(0.5 * np.pi * w, n_phi) * (2 * np.pi / n_phi)  # for dtheta dphi
-    ind = induced_geometry(surface, theta, phi, source, basis=product_grid_basis(surface.lmax, th, ph))
+    ind = induced_geometry(surface, theta, phi, source, derivatives=surface_on_product(surface, th, ph))
     gam = ind.christoffel
     frame_scale = ind.sqrt_det / ind.metric[:, 1, 1]
     w_theta, w_phi = frame_scale * gam[:, 0, 0, 1], frame_scale * gam[:, 0, 1, 1]
-    basis = product_grid_basis(zeta_lmax, th, ph)
-    zeta = basis.Y @ zeta_coefficients
-    z_t, z_p = basis.d_theta @ zeta_coefficients, basis.d_phi @ zeta_coefficients
+    zeta, z_t, z_p = expand_on_product(zeta_lmax, th, ph, zeta_coefficients)[:3]
     poles = harmonic_values(zeta_lmax, np.array([0.0, np.pi]), np.zeros(2)) @ zeta_coefficients
     out = np.empty(n_max + 1)
     for n in range(n_max + 1):

@@ -100,3 +100,19 @@ def test_expansion_on_the_grid_by_factors_equals_the_basis_product(lmax, grid_lm
             expected = getattr(basis, name) @ coefficients
             assert values.shape == expected.shape
             np.testing.assert_allclose(values, expected, rtol=0, atol=1e-13 * np.max(np.abs(expected)), err_msg=name)
+
+
+def test_displaced_embedding_on_a_product_grid_equals_the_pointwise_one():
+    """embedding_on_product_grid (sums over the grid's factors) against embedding_at (harmonics
+    evaluated point by point) on a quadrature grid finer than either degree."""
+    from penumbra_server.numerics.displaced import (DisplacedSurface, embedding_at, embedding_on_product_grid,
+                                                    reference_from_star)
+
+    rng = np.random.default_rng(3)
+    c = np.zeros(81)
+    c[0], c[1:] = 1.0, 0.02 * rng.normal(size=80)
+    surface = DisplacedSurface(reference_from_star(Surface((0.1, 0.0, 0.0), 8, c)), 10, 0.01 * rng.normal(size=121))
+    grid = angular_grid(10, 30, 60)
+    pointwise, factored = embedding_at(surface, grid.theta, grid.phi), embedding_on_product_grid(surface, grid)
+    for name in ("x", "x_t", "x_p", "x_tt", "x_tp", "x_pp"):
+        np.testing.assert_allclose(getattr(factored, name), getattr(pointwise, name), rtol=0, atol=1e-13, err_msg=name)

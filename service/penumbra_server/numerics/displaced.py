@@ -32,8 +32,9 @@ import numpy as np
 
 from .curvature import christoffel_lower
 from .geometry import PointGeometry, inverse_3x3
+from .harmonics import expand_on_product
 from .surfaces import (Surface, angular_grid, basis_on_grid, coefficient_count, expand_on_grid, harmonic_basis,
-                       harmonic_values, product_grid_basis)
+                       harmonic_values)
 
 __all__ = [
     "ReferenceSurface",
@@ -177,12 +178,13 @@ def embedding_at(surface: DisplacedSurface, theta, phi) -> Embedding:
 
 def embedding_on_product_grid(surface: DisplacedSurface, grid) -> Embedding:
     """:func:`embedding_at` the nodes of an :class:`~.harmonics.AngularGrid` (any degree and
-    node counts, e.g. a quadrature grid), its harmonics built from the grid's 1-D factors (the
-    same numbers, far more cheaply)."""
+    node counts, e.g. a quadrature grid), summed over the grid's 1-D factors (the same numbers to
+    round-off, far more cheaply)."""
     th, ph = grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi]
-    hb, rb = product_grid_basis(surface.lmax, th, ph), product_grid_basis(surface.reference.lmax, th, ph)
-    return combine(grid.theta, grid.phi, _expand(hb, surface.coefficients), _expand(rb, surface.reference.position),
-                   _expand(rb, surface.reference.direction))
+    reference = surface.reference
+    both = expand_on_product(reference.lmax, th, ph, np.concatenate([reference.position, reference.direction], axis=1))
+    return combine(grid.theta, grid.phi, expand_on_product(surface.lmax, th, ph, surface.coefficients),
+                   tuple(v[:, :3] for v in both), tuple(v[:, 3:] for v in both))
 
 
 def embedding(surface: DisplacedSurface, grid_lmax: int | None = None) -> Embedding:

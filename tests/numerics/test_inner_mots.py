@@ -17,7 +17,7 @@ from penumbra_server.numerics.displaced import (
     star_shaped_form,
 )
 from penumbra_server.numerics.displaced_finder import find_displaced
-from penumbra_server.numerics.displaced_stability import displaced_stability_spectrum
+from penumbra_server.numerics.displaced_stability import displaced_stability_spectra, displaced_stability_spectrum
 from penumbra_server.numerics.finder import UNRESOLVED, FinderSettings, expansion_of, find_surface
 from penumbra_server.numerics.inner_mots import InsideBody, follow_inner, radial_gap
 from penumbra_server.numerics.spacetimes import BrillLindquist
@@ -155,6 +155,20 @@ def test_displaced_stability_operator_equals_the_star_shaped_one():
     displaced = displaced_stability_spectrum(DisplacedSurface.at_reference(reference_from_star(outer), LMAX), data, lmax=8)
     assert displaced.principal_eigenvalue == pytest.approx(star.principal_eigenvalue, rel=1e-6)
     assert displaced.area == pytest.approx(star.area, rel=1e-9)
+
+
+def test_stability_spectra_of_several_degrees_on_one_quadrature_equal_the_separate_ones():
+    """displaced_stability_spectra makes the Galerkin matrices once, at the highest degree, and
+    takes the lower degree's as their leading block: the same eigenvalues as a separate call
+    whose quadrature is the same (here the surface's own degree sets it for both)."""
+    data = pair_data(1.0, 0.7)
+    surface = DisplacedSurface.at_reference(reference_from_star(outer_common(data)), LMAX)
+    together = displaced_stability_spectra(surface, data, [LMAX, LMAX - 2])
+    for spectrum, degree in zip(together, (LMAX, LMAX - 2)):
+        alone = displaced_stability_spectrum(surface, data, lmax=degree)
+        assert spectrum.lmax == degree
+        assert spectrum.principal_eigenvalue == pytest.approx(alone.principal_eigenvalue, rel=1e-10, abs=1e-12)
+        assert spectrum.symmetrized_eigenvalue == pytest.approx(alone.symmetrized_eigenvalue, rel=1e-10, abs=1e-12)
 
 
 def test_displaced_finder_reports_bad_seeds():

@@ -21,7 +21,7 @@ from .sources import as_tracked_source
 from .stability import StabilitySpectrum
 from .surfaces import angular_grid
 
-__all__ = ["displaced_stability_spectrum"]
+__all__ = ["displaced_stability_spectra", "displaced_stability_spectrum"]
 
 
 def _matrices(surface: DisplacedSurface, data, lmax: int, order: int):
@@ -84,7 +84,28 @@ def displaced_stability_spectrum(surface: DisplacedSurface, data, *, lmax: int |
     lmax = surface.lmax if lmax is None else int(lmax)
     if lmax < 1:
         raise ValueError(f"lmax: expected an integer >= 1, got {lmax}")
-    operator, mass, symmetrized, expansion, area = _matrices(surface, data, lmax, order)
+    return _spectrum(*_matrices(surface, data, lmax, order), lmax, count)
+
+
+def displaced_stability_spectra(surface: DisplacedSurface, data, degrees, *, count: int = 6,
+                                order: int = 4) -> list[StabilitySpectrum]:
+    """:func:`displaced_stability_spectrum` for psi up to each of ``degrees`` on one quadrature
+    (that of the highest): the Galerkin matrices of a lower degree are the leading blocks of the
+    highest's (the same harmonics at the same nodes), so the geometry is interpolated and the
+    matrices are made once."""
+    degrees = [int(d) for d in degrees]
+    if not degrees or min(degrees) < 1:
+        raise ValueError(f"degrees: expected integers >= 1, got {degrees}")
+    top = max(degrees)
+    operator, mass, symmetrized, expansion, area = _matrices(surface, data, top, order)
+    out = []
+    for degree in degrees:
+        k = (degree + 1) ** 2
+        out.append(_spectrum(operator[:k, :k], mass[:k, :k], symmetrized[:k, :k], expansion, area, degree, count))
+    return out
+
+
+def _spectrum(operator, mass, symmetrized, expansion, area, lmax: int, count: int) -> StabilitySpectrum:
     values, vectors = scipy.linalg.eig(operator, mass)
     ordering = np.argsort(values.real)
     values, vectors = values[ordering], vectors[:, ordering]

@@ -18,7 +18,7 @@ import numpy as np
 
 from ..numerics.displaced import DisplacedSurface, coordinate_extent, reference_from_star
 from ..numerics.displaced_finder import DisplacedSettings
-from ..numerics.displaced_stability import displaced_stability_spectrum
+from ..numerics.displaced_stability import displaced_stability_spectra
 from ..numerics.inner_mots import find_inner_common, follow_inner
 from ..numerics.sources import as_tracked_source
 from ..numerics.surfaces import coefficient_count
@@ -71,12 +71,13 @@ def _stability(surface: DisplacedSurface, source, order: int) -> tuple[dict, str
     NaN and a note (appended to the message) when it cannot be computed: the surface stays found."""
     out = {"stability_eigenvalue": float("nan"), "stability_eigenvalue_error": float("nan")}
     try:
-        value = displaced_stability_spectrum(surface, source, order=order).principal_eigenvalue
-        out["stability_eigenvalue"] = value
         lower = surface.lmax - STABILITY_LMAX_DROP
-        if lower >= 1:
-            coarse = displaced_stability_spectrum(surface, source, order=order, lmax=lower).principal_eigenvalue
-            out["stability_eigenvalue_error"] = abs(value - coarse)
+        degrees = [surface.lmax, lower] if lower >= 1 else [surface.lmax]
+        spectra = displaced_stability_spectra(surface, source, degrees, order=order)
+        value = spectra[0].principal_eigenvalue
+        out["stability_eigenvalue"] = value
+        if len(spectra) > 1:
+            out["stability_eigenvalue_error"] = abs(value - spectra[1].principal_eigenvalue)
     except Exception as exc:  # an eigenvalue that cannot be made must not lose the surface
         return out, f"; stability not computed: {type(exc).__name__}: {exc}"
     return out, ""

@@ -7,6 +7,7 @@ job behind a gate the test opens), never by the machine's speed.
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 
 import numpy as np
 import pytest
@@ -132,6 +133,31 @@ def test_a_backlog_of_one_run_does_not_hold_back_another_runs_job():
     # (first come, first served would have made it wait for all 20).
     assert arrived.index(("B", 500)) == 2
     assert [it for label, it in arrived if label == "A"] == list(range(20))
+
+
+def test_within_a_run_the_oldest_slice_and_then_a_leading_search_go_first():
+    """A run's waiting jobs reach the executor oldest slice first (a later slice's deferred
+    searches wait for every search of the earlier ones), and within a slice a search another
+    waits for (``leads``: the surface the inner common MOTS lies inside) before the rest."""
+    gated = GatedExecutor.start(1)
+
+    async def scenario():
+        dispatcher = FairDispatcher(gated)  # one slot
+        blocker = asyncio.ensure_future(dispatcher.run("run-a", _small_job("A", 0)))
+        await asyncio.sleep(0)  # at the executor, held at its gate
+        later = [asyncio.ensure_future(dispatcher.run("run-a", _small_job(label, 2))) for label in ("A", "B")]
+        same = [asyncio.ensure_future(dispatcher.run("run-a", _small_job("B", 1))),
+                asyncio.ensure_future(dispatcher.run("run-a", dataclasses.replace(_small_job("C", 1), leads=True)))]
+        await asyncio.sleep(0)
+        assert dispatcher.running == 1 and dispatcher.waiting("run-a") == 4
+        gated.open_all()
+        await asyncio.gather(blocker, *later, *same)
+
+    try:
+        asyncio.run(scenario())
+    finally:
+        gated.close_pool()
+    assert gated.entries("arrived") == [("A", 0), ("C", 1), ("B", 1), ("A", 2), ("B", 2)]
 
 
 def test_a_second_run_is_served_within_one_round_of_a_backlog(tmp_path):

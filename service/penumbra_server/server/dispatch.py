@@ -7,6 +7,11 @@ the executor at once (default: its worker count). A free slot goes to the runs i
 or with several slices in flight, never holds back another run's job by more than one job per
 run: the executor's own queue is first come, first served and would.
 
+Within a run the turn goes to the job of its oldest slice (a later slice's searches that need
+the earlier slices' outcomes wait for every search of those), and within a slice to a search
+that another waits for (``SurfaceJob.leads``: the surface the inner common MOTS is searched
+inside) before the rest; otherwise first come, first served.
+
 Everything here runs on the server's event loop thread.
 """
 
@@ -36,7 +41,8 @@ class FairDispatcher:
         self.slots = int(slots if slots is not None else max(1, getattr(executor, "workers", 1)))
         if self.slots < 1:
             raise ValueError(f"slots: expected at least 1, got {self.slots}")
-        self._waiting: dict[str, deque[tuple[SurfaceJob, asyncio.Future]]] = {}
+        self._waiting: dict[str, list[tuple[tuple, SurfaceJob, asyncio.Future]]] = {}
+        self._arrivals = 0
         #: Runs with jobs waiting, in the order they get their next turn.
         self._turns: deque[str] = deque()
         self._running: set[asyncio.Task] = set()
@@ -53,7 +59,7 @@ class FairDispatcher:
     def waiting(self, run_id: str | None = None) -> int:
         """Jobs not yet at the executor (of ``run_id``, or of all runs)."""
         if run_id is not None:
-            return sum(1 for _, future in self._waiting.get(run_id, ()) if not future.done())
+            return sum(1 for _, _, future in self._waiting.get(run_id, ()) if not future.done())
         return sum(self.waiting(r) for r in self._waiting)
 
     @property
@@ -65,10 +71,12 @@ class FairDispatcher:
         """Queue ``job`` for ``run_id`` and wait for its outcome (cancelling the wait withdraws a
         job that has not reached the executor yet)."""
         future = asyncio.get_running_loop().create_future()
-        queue = self._waiting.setdefault(run_id, deque())
+        queue = self._waiting.setdefault(run_id, [])
         if not queue:
             self._turns.append(run_id)
-        queue.append((job, future))
+        self._arrivals += 1
+        order = (int(job.data.iteration), 0 if getattr(job, "leads", False) else 1, self._arrivals)
+        queue.append((order, job, future))
         self._dispatch()
         return await future
 
@@ -76,7 +84,8 @@ class FairDispatcher:
         while len(self._running) < self.slots and self._turns:
             run_id = self._turns.popleft()
             queue = self._waiting[run_id]
-            job, future = queue.popleft()
+            first = min(range(len(queue)), key=lambda index: queue[index][0])
+            _, job, future = queue.pop(first)
             if queue:
                 self._turns.append(run_id)  # its next job waits for the other runs' turns
             else:
@@ -109,7 +118,7 @@ class FairDispatcher:
     async def close(self) -> None:
         """Withdraw waiting jobs and stop waiting for running ones (the executor is not closed)."""
         for queue in self._waiting.values():
-            for _, future in queue:
+            for _, _, future in queue:
                 future.cancel()
         self._waiting.clear()
         self._turns.clear()

@@ -69,7 +69,7 @@ async def search_in_order(plans: Sequence[SurfacePlan], attempt: Callable[[Surfa
             return (await asyncio.shield(replanned))[index] if index in deferred else plans[index]
 
         async def search_outer(index: int) -> SurfaceOutcome:
-            return await attempt(await plan_at(index))
+            return await attempt(_leading(await plan_at(index), plans))
 
         async def search_inside(index: int) -> SurfaceOutcome:
             plan = await plan_at(index)
@@ -82,7 +82,7 @@ async def search_in_order(plans: Sequence[SurfacePlan], attempt: Callable[[Surfa
 
         for index, plan in enumerate(plans):
             if plan.inside_of is None:
-                tasks[index] = asyncio.ensure_future(search_outer(index) if index in deferred else attempt(plan))
+                tasks[index] = asyncio.ensure_future(search_outer(index) if index in deferred else attempt(_leading(plan, plans)))
         by_label = {plans[index].label: task for index, task in tasks.items()}
         for index, plan in enumerate(plans):
             if plan.inside_of is not None:
@@ -95,3 +95,10 @@ async def search_in_order(plans: Sequence[SurfacePlan], attempt: Callable[[Surfa
             replanned.cancel()
     displaced.update({o.label: o.displaced for o in outcomes if o.found and o.displaced is not None})
     return outcomes
+
+
+def _leading(plan: SurfacePlan, plans: Sequence[SurfacePlan]) -> SurfacePlan:
+    """``plan`` marked ``leads`` when a plan of the slice is searched inside it."""
+    if any(other.inside_of == plan.label for other in plans):
+        return dataclasses.replace(plan, leads=True)
+    return plan

@@ -147,6 +147,8 @@ class SurfaceJob:
     lmax_cap: int | None = None
     may_not_exist: bool = False
     relocate: "Relocation | None" = None
+    #: Another search of the same slice waits for this one (SurfacePlan.leads): dispatched first.
+    leads: bool = False
 
 
 @dataclass(frozen=True, eq=False)

@@ -101,6 +101,9 @@ class SurfacePlan:
     displaced_seed: object | None = None
     may_not_exist: bool = False
     relocate: object | None = None
+    #: Another search of the same slice waits for this one's outcome (it is searched inside this
+    #: surface): its job goes to the workers before the slice's others (dispatch.py).
+    leads: bool = False
 
     def points_outside(self, surface: Surface) -> list[np.ndarray]:
         """The ``must_enclose`` points that lie on or outside ``surface``."""

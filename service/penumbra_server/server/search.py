@@ -82,5 +82,6 @@ async def _find(plan: SurfacePlan, slice_: Slice, executor: FinderExecutor, sett
         displaced_seed=plan.displaced_seed,
         may_not_exist=plan.may_not_exist,
         relocate=plan.relocate,
+        leads=plan.leads,
     )
     return await executor.run(job)

@@ -80,3 +80,30 @@ def test_error_bars_start_from_the_spin_measurement_without_making_it_again():
     # And it is used: a reference measurement off by 1e-3 in area moves the area's error bar.
     shifted, _ = jobs.error_bars(found.surface, grid, 4, dict(measured, area=measured["area"] * 1.001))
     assert shifted["area_error"] > 2 * again["area_error"]
+
+
+def test_a_worker_keeps_freed_memory_in_its_heap():
+    """keep_freed_memory (called by every worker's warm-up) sets glibc's allocator to keep freed
+    memory: checked in fresh processes by the program break, which a large block then moves
+    (allocated in the heap, not mapped) and which freeing it leaves where it is (not trimmed);
+    without the call the block is mapped and the break does not move."""
+    import subprocess
+    import sys
+
+    code = (
+        "import ctypes, sys\n"
+        "from penumbra_server.server.jobs import keep_freed_memory\n"
+        "libc = ctypes.CDLL('libc.so.6')\n"
+        "libc.malloc.restype = libc.sbrk.restype = ctypes.c_void_p\n"
+        "libc.free.argtypes = [ctypes.c_void_p]; libc.sbrk.argtypes = [ctypes.c_long]\n"
+        "kept = keep_freed_memory() if sys.argv[1] == 'keep' else None\n"
+        "start = libc.sbrk(0); block = libc.malloc(64 << 20); grown = libc.sbrk(0)\n"
+        "libc.free(block); after = libc.sbrk(0)\n"
+        "print(kept, grown - start >= 32 << 20, after == grown)\n"
+    )
+
+    def run(mode):
+        return subprocess.run([sys.executable, "-c", code, mode], capture_output=True, text=True, check=True).stdout.split()
+
+    assert run("keep") == ["True", "True", "True"]
+    assert run("default") == ["None", "False", "True"]

@@ -30,6 +30,7 @@ __all__ = [
     "SurfaceJob",
     "SurfaceOutcome",
     "crop_slice",
+    "keep_freed_memory",
     "run_surface_job",
     "warm_up",
 ]
@@ -347,6 +348,23 @@ def _found(job: SurfaceJob, kind: str, result, quantities: dict, message: str, t
     )
 
 
+def keep_freed_memory() -> bool:
+    """Ask glibc's allocator of this (worker) process to keep freed memory in its heap: no mmap
+    for large blocks and no trimming. A find's temporary arrays reach tens of MB at l_max 24
+    (quadrature bases, Galerkin products); mapped afresh each time, every page of them faults on
+    first touch again (measured: a common-horizon job's measurement 3.0 -> 2.5 s CPU, the first
+    job of a worker 4.2 -> 3.9 s). The heap then stays at the process's peak. Returns whether it
+    took effect (glibc only; elsewhere nothing changes)."""
+    import ctypes
+
+    try:
+        libc = ctypes.CDLL("libc.so.6")
+    except OSError:
+        return False
+    m_trim_threshold, m_mmap_max = -1, -4  # glibc's mallopt parameters (malloc.h)
+    return bool(libc.mallopt(m_mmap_max, 0)) and bool(libc.mallopt(m_trim_threshold, 2**30))
+
+
 def warm_up(delay_s: float = 0.0) -> tuple[int, dict[str, str | None]]:
     """Import the numerics in a fresh worker, the measurements too (so the first real job does not
     pay for it: about 0.4 s for the measurement modules alone).
@@ -357,6 +375,8 @@ def warm_up(delay_s: float = 0.0) -> tuple[int, dict[str, str | None]]:
 
     from ..numerics import (circumferences, constant_expansion, displaced_finder, error_bars, finder,  # noqa: F401
                             guesses, inner_mots, killing, measures, multipoles, stability)
+
+    keep_freed_memory()
 
     if delay_s:
         time.sleep(delay_s)

@@ -286,7 +286,9 @@ def test_refused_parts_leave_the_stored_ones_pending_and_the_slice_completes(stu
     found = {e.iteration: e.surface for e in events if e.kind == "surface_found"}
     assert set(found) == {10, 11}
     assert found[10].area == pytest.approx(16 * np.pi, rel=1e-3)  # docs/references.md item 1
-    assert found[10].area == found[11].area  # the same data, once in parts, once whole
+    # The same data, once in parts, once whole: the same surface to round-off (slice 11 starts from
+    # slice 10's surface moved to the forecast, so its solve may stop an iteration earlier).
+    assert found[10].area == pytest.approx(found[11].area, rel=1e-12)
     info = client.get_run(run_id)
     assert (info.slices_received, info.slices_incomplete) == (2, 0)
     assert not [e for e in events if e.kind == "slice_parts_missing"]

@@ -117,6 +117,24 @@ def test_common_search_starts_when_close_and_individuals_retire_after_merger():
     assert guidance.post_merger and [b.label for b in guidance.bodies] == ["common"]
 
 
+def test_the_common_search_advice_is_kept_per_slice_time():
+    """With slices in flight the next slice is planned before a slice is observed: the advice of
+    each slice time stays available (advice_by_time, the formation watch's), not only the last."""
+    settings = _settings(("A", (0.5, 0.0, 0.0), 0.5), ("B", (-0.5, 0.0, 0.0), 0.5))
+    steering = RunSteering(settings)
+    planner = SteeringPlanner(steering)
+    for t, x in ((0.0, 1.0), (1.0, 0.9), (2.0, 0.8)):
+        _observe(steering, planner, settings, t, [_found("A", (x, 0, 0), 0.25), _found("B", (-x, 0, 0), 0.25)])
+    planner.plan(settings, {}, _slice(3.0))
+    planner.plan(settings, {}, _slice(4.0))  # planned before slice 3 is observed
+    assert steering.last_advice is steering.advice_by_time[4.0]
+    assert steering.advice_by_time[3.0] is not steering.advice_by_time[4.0]
+    assert steering.advice_by_time[3.0].centre == pytest.approx(steering.common_advice(3.0).centre)
+    for t in range(5, 20):  # only the latest few are kept
+        planner.plan(settings, {}, _slice(float(t)))
+    assert len(steering.advice_by_time) <= 8 and 19.0 in steering.advice_by_time and 3.0 not in steering.advice_by_time
+
+
 def test_refinement_policy_is_validated_and_echoed(stub):
     spec = ps.RunSpec(variable_set="adm", bodies=(ps.Body("A", (0, 0, 0), 1.0),),
                       refinement=ps.RefinementOptions(points_across_horizon=20, nesting_depth=4, guard_points=0),

@@ -1,7 +1,8 @@
 """The Dask configuration the deployment files give workers (deploy/dask-workers.yaml, the same
 text written by deploy/penumbra-dask.sbatch): read by a real Dask in a fresh process, the nanny
 starts workers without MALLOC_TRIM_THRESHOLD_ (Dask's default 65536 pins glibc's mmap threshold
-and made the finder's jobs ~1.8 times slower, notes/daskfast.md) and without the profiler.
+and made the finder's jobs ~1.8 times slower; DEVELOPERS.md, "The Dask engine keeps up with the
+process pool") and without the profiler.
 """
 
 from __future__ import annotations

@@ -42,7 +42,8 @@ DEFAULT_LMAX = 8
 DEFAULT_LMAX_COMMON = 16
 #: Default cap of the finder's own l_max raising (spec.finder.lmax_cap 0): max(this, lmax_common).
 #: 24 resolves a common horizon formed at the critical separation of Brill-Lindquist pairs with
-#: mass ratios up to 4 about its neck (notes/common.md); beyond that the cost grows as l_max^4.
+#: mass ratios up to 4 about its neck (DEVELOPERS.md, "Common horizons from the neck"); beyond
+#: that the cost grows as l_max^4.
 DEFAULT_LMAX_CAP = 24
 DEFAULT_TOLERANCE = 1e-8  # 1/M; common practice is 1e-8 to 1e-10 (docs/references.md item 15)
 DEFAULT_MAX_ITERATIONS = 40

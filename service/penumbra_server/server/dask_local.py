@@ -6,16 +6,17 @@ starts it, here the server's. Every job's input (tens of MB for the demo's commo
 crosses the server's event loop three times (client to scheduler, into the scheduler, scheduler
 to worker) and the scheduler's bookkeeping shares the loop and the GIL with gRPC ingest and the
 archive thread; measured in the service benchmark, a job took ~250 ms (median) from submission
-to its start on a worker, against ~175 ms with the scheduler in its own process
-(notes/daskfast.md). ``distributed``'s own ``SubprocessScheduler`` reads the scheduler's stderr
-only when it fails to start (a pipe that fills up would stop it) and does not end with its
-parent; :class:`SchedulerProcess` runs this module instead, which watches its parent
-(server/lifeline.py) and logs warnings only, to the server's stderr.
+to its start on a worker, against ~175 ms with the scheduler in its own process (DEVELOPERS.md,
+"The Dask engine keeps up with the process pool"). ``distributed``'s own ``SubprocessScheduler``
+reads the scheduler's stderr only when it fails to start (a pipe that fills up would stop it)
+and does not end with its parent; :class:`SchedulerProcess` runs this module instead, which
+watches its parent (server/lifeline.py) and logs warnings only, to the server's stderr.
 
-Worker settings (both measured, notes/daskfast.md): glibc's adaptive malloc thresholds (Dask's
-nanny would set MALLOC_TRIM_THRESHOLD_=65536: every array of 128 KiB or more is then mapped
-afresh, and the finder's jobs took ~1.8 times the CPU) and no statistical profiler (it samples
-the task's stack every 10 ms for the dashboard, which is off: ~7 % more CPU per job).
+Worker settings (both measured, same section of DEVELOPERS.md): glibc's adaptive malloc
+thresholds (Dask's nanny would set MALLOC_TRIM_THRESHOLD_=65536: every array of 128 KiB or more
+is then mapped afresh, and the finder's jobs took ~1.8 times the CPU) and no statistical
+profiler (it samples the task's stack every 10 ms for the dashboard, which is off: ~7 % more CPU
+per job).
 
 Run as ``python -m penumbra_server.server.dask_local PARENT_PID SCHEDULER_KWARGS_JSON``: the
 scheduler process (started by :class:`SchedulerProcess`, not by hand).

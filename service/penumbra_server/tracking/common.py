@@ -103,7 +103,8 @@ def common_neck_point(position_a, position_b, masses: Sequence[float]) -> np.nda
     waist obliquely). Measured on the independent axisymmetric solutions 0.4 % below the
     critical separation (tests/numerics/axisymmetric_mots.py): |a_16| / a_0 about the neck
     1.7e-4 (mass ratio 2) and 1.1e-5 (ratio 4), about the centre of mass 1.1e-3 and 2.9e-3,
-    about the centroid 1.7e-4 and 2.2e-3 with slower decay beyond (notes/common.md).
+    about the centroid 1.7e-4 and 2.2e-3 with slower decay beyond (DEVELOPERS.md, "Common
+    horizons from the neck").
     """
     xa = _positions(position_a, "position_a")[0]
     xb = _positions(position_b, "position_b")[0]

@@ -107,7 +107,6 @@ class RunSteering:
         self.latest_windows_valid: tuple[float, float] = (math.nan, math.nan)
         self.previous_slice_time: float = math.nan
         self.last_slice_time: float = math.nan
-        self.last_advice: CommonSearchAdvice | None = None
         #: The advice per slice time, the latest few (with slices in flight the next slice may be
         #: planned before the one before it is observed: an observer asks for its own slice's).
         self.advice_by_time: dict[float, CommonSearchAdvice] = {}
@@ -208,7 +207,6 @@ class RunSteering:
         already = self.common_searching or self.common_formed is not None
         advice = common_horizon_watch(positions[0], positions[1], radius_a=a.radius_max, radius_b=b.radius_max,
                                       masses=self.body_masses(self.body_labels), already_searching=already)
-        self.last_advice = advice
         self.advice_by_time[float(time)] = advice
         while len(self.advice_by_time) > _ADVICE_KEPT:
             del self.advice_by_time[min(self.advice_by_time)]

@@ -15,7 +15,6 @@ result, not an exception.
 
 from __future__ import annotations
 
-import functools
 import time
 from dataclasses import dataclass
 
@@ -46,11 +45,11 @@ from .find_results import (
     STATUS_MESSAGES,
     UNRESOLVED,
 )
-from .finder_newton import _project_columns
+from .finder_newton import _nodal_columns, _project_columns
 from .geometry import PointGeometry
 from .slices import DegenerateMetricError, SliceError
 from .sources import as_tracked_source
-from .surfaces import angular_grid, basis_on_grid
+from .surfaces import angular_grid, coefficient_count
 
 __all__ = ["DisplacedSettings", "DisplacedFindResult", "find_displaced"]
 
@@ -213,25 +212,16 @@ def _jacobian(it: _Iterate) -> np.ndarray:
         theta = parametric_expansion(_stack_embeddings(embs), geometry).theta.reshape(len(variants), -1)
     d = [(theta[0] - it.theta) / it.shift, (theta[1] - theta[2]) / (2 * eps1), (theta[3] - theta[4]) / (2 * eps1)]
     d += [(theta[k] - it.theta) / eps2 for k in (5, 6, 7)]
-    J_nodes = np.matmul(np.stack(d, axis=1)[:, None, :], _stacked_basis(surface.lmax, grid.lmax))[:, 0, :]
-    # Projected factored over the product grid (onto the grid's degrees, then cut to the surface's:
-    # the coefficients run degree by degree), a fraction of the dense product's operations.
-    return _project_columns(grid, J_nodes)[: J_nodes.shape[1]]
-
-
-@functools.lru_cache(maxsize=16)
-def _stacked_basis(lmax: int, grid_lmax: int) -> np.ndarray:
-    """(N, 6, (lmax + 1)^2) the harmonics up to ``lmax`` and their derivatives (HarmonicBasis
-    order) node by node on ``angular_grid(grid_lmax)``, read-only (memoised: a pure function)."""
-    B = basis_on_grid(lmax, grid_lmax)
-    stacked = np.ascontiguousarray(np.stack([B.Y, B.d_theta, B.d_phi, B.d_theta_theta, B.d_theta_phi, B.d_phi_phi], axis=1))
-    stacked.setflags(write=False)
-    return stacked
+    # The nodal columns and their projection factored over the product grid, as the star-shaped
+    # finder's Jacobian, for the grid's degrees, cut to the surface's (the coefficients run degree
+    # by degree, so its own are the leading ones).
+    count = coefficient_count(surface.lmax)
+    return _project_columns(grid, _nodal_columns(grid, np.stack(d, axis=1))[:, :count])[:count]
 
 
 def _projected(surface: DisplacedSurface, theta: np.ndarray) -> np.ndarray:
     grid = angular_grid(surface.grid_lmax())
-    return basis_on_grid(surface.lmax, grid.lmax).Y.T @ (grid.weights * theta)
+    return grid.project(theta)[: coefficient_count(surface.lmax)]  # the surface's degrees lead
 
 
 def _rms(surface, theta) -> float:

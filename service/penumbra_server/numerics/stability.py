@@ -43,7 +43,8 @@ import scipy.linalg
 from .curvature import christoffel_lower, spatial_ricci
 from .expansion import level_set_derivatives
 from .sources import as_tracked_source
-from .surfaces import Surface, angular_grid, product_grid_basis, unit_vectors
+from .intrinsic import surface_on_product
+from .surfaces import Surface, angular_grid, unit_vectors
 
 __all__ = ["StabilityMatrices", "StabilitySpectrum", "principal_eigenvalue", "stability_matrices", "stability_spectrum"]
 
@@ -154,7 +155,7 @@ def stability_matrices(
     grid = angular_grid(lmax, n_theta, 2 * n_theta)
     theta, phi, w = grid.theta, grid.phi, grid.weights
     source = as_tracked_source(data, order=order)
-    rd = surface.derivatives(product_grid_basis(surface.lmax, theta[:: grid.n_phi], phi[: grid.n_phi]), theta, phi)
+    rd = surface_on_product(surface, theta[:: grid.n_phi], phi[: grid.n_phi])
     pts = surface.points(rd)
     geo = source(pts)
     if not geo.covered.all():

@@ -37,6 +37,7 @@ __all__ = [
     "basis_on_grid",
     "expand_on_grid",
     "expand_on_product",
+    "synthesize",
 ]
 
 
@@ -217,27 +218,67 @@ def basis_on_grid(lmax: int, grid_lmax: int) -> HarmonicBasis:
 _DERIVATIVE_ORDERS = ((0, 0), (1, 0), (0, 1), (2, 0), (1, 1), (0, 2))
 
 
+def _factor_tables(lmax: int, theta: np.ndarray, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The 1-D factors of the harmonics up to ``lmax`` on the product grid theta x phi: the polar
+    factors (2 lmax + 1, 3 n_theta, lmax + 1), P_l^|m| and its first and second theta derivatives
+    at the rings for each order m = -lmax..lmax (zero for l < |m|), the azimuthal factors
+    (2 lmax + 1, 3 n_phi) and their first and second phi derivatives, and the slot of each
+    coefficient (l, m) in the (m, l) table. Read-only."""
+    n_theta = theta.size
+    orders = np.arange(-lmax, lmax + 1)
+    legendre = sph_legendre_p_all(lmax, lmax, theta, diff_n=2)  # [d, l, m >= 0, ring]
+    polar = np.zeros((orders.size, 3, n_theta, lmax + 1))
+    for row, m in enumerate(orders):
+        polar[row, :, :, abs(m):] = np.moveaxis(legendre[:, abs(m):, abs(m)], 1, 2)
+    polar = polar.reshape(orders.size, 3 * n_theta, lmax + 1)
+    azimuthal = np.concatenate([_azimuthal(orders, phi, d).T for d in range(3)], axis=1)
+    l, m = _degree_order(lmax)
+    rows = (m + lmax) * (lmax + 1) + l
+    for array in (polar, azimuthal, rows):
+        array.setflags(write=False)
+    return polar, azimuthal, rows
+
+
+@functools.lru_cache(maxsize=16)
+def _synthesis_factors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`_factor_tables` of ``grid`` at its own degree (for :meth:`Surface.on_grid`);
+    memoised (a pure function of the grid, which :func:`angular_grid` memoises)."""
+    return _factor_tables(grid.lmax, grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi])
+
+
 @functools.lru_cache(maxsize=32)
 def _product_factors(lmax: int, theta_bytes: bytes, phi_bytes: bytes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The 1-D factors of the harmonics on the product grid of the float64 angles in
-    ``theta_bytes`` x ``phi_bytes``: Legendre functions and their theta derivatives (3, n_theta,
-    K), azimuthal factors and their phi derivatives per order m = -lmax..lmax (3, n_phi,
-    2 lmax + 1), and the (K, 2 lmax + 1) map of each coefficient to its order. Read-only."""
-    theta, phi = np.frombuffer(theta_bytes), np.frombuffer(phi_bytes)
-    l, m = _degree_order(lmax)
-    p = sph_legendre_p_all(lmax, lmax, theta, diff_n=2)
-    legendre = np.stack([np.ascontiguousarray(p[d][l, np.abs(m)].T) for d in range(3)])
-    orders = np.arange(-lmax, lmax + 1)
-    azimuthal = np.stack([_azimuthal(orders, phi, d) for d in range(3)])
-    order_of = (m[:, None] == orders[None, :]).astype(float)
-    for arr in (legendre, azimuthal, order_of):
-        arr.setflags(write=False)
-    return legendre, azimuthal, order_of
+    """:func:`_factor_tables` for the float64 angles in ``theta_bytes`` x ``phi_bytes`` (memoised
+    by value: callers rebuild equal angle arrays)."""
+    return _factor_tables(lmax, np.frombuffer(theta_bytes), np.frombuffer(phi_bytes))
+
+
+def synthesize(factors: tuple[np.ndarray, np.ndarray, np.ndarray], coefficients: np.ndarray) -> tuple[np.ndarray, ...]:
+    """A field of real-harmonic ``coefficients`` ((K,) or (K, q)) and its five derivatives (the
+    order of :class:`HarmonicBasis`) at the nodes of a product grid, each (N,) or (N, q), from
+    the grid's :func:`_factor_tables`: sums over the degrees of each order at the rings, then
+    over the orders at the meridians, never an (N, K) matrix. The same numbers as the basis
+    matrices times the coefficients, to round-off."""
+    polar, azimuthal, rows = factors
+    orders, degrees = polar.shape[0], polar.shape[2]
+    n_theta, n_phi = polar.shape[1] // 3, azimuthal.shape[1] // 3
+    c = np.asarray(coefficients, dtype=float)
+    flat = c.reshape(c.shape[0], -1)  # (K, q)
+    table = np.zeros((orders * degrees, flat.shape[1]))
+    table[rows] = flat
+    # (m, [d, ring], q) sums over l of the d-th theta derivative of P_l^|m| times a_lm, then over
+    # m against the azimuthal factors and their phi derivatives: [q, d, ring, e, phi].
+    per_order = polar @ table.reshape(orders, degrees, -1)
+    out = (per_order.transpose(2, 1, 0) @ azimuthal).reshape(-1, 3, n_theta, 3, n_phi)
+    return tuple(out[:, d_theta, :, d_phi].reshape(out.shape[0], n_theta * n_phi).T.reshape((n_theta * n_phi,) + c.shape[1:])
+                 for d_theta, d_phi in _DERIVATIVE_ORDERS)
 
 
 def expand_on_grid(lmax: int, grid_lmax: int, coefficients: np.ndarray) -> tuple[np.ndarray, ...]:
     """:func:`expand_on_product` at the nodes of ``angular_grid(grid_lmax)``."""
     grid = angular_grid(grid_lmax)
+    if lmax == grid_lmax:
+        return synthesize(_synthesis_factors(grid), coefficients)
     return expand_on_product(lmax, grid.theta[:: grid.n_phi], grid.phi[: grid.n_phi], coefficients)
 
 
@@ -245,47 +286,12 @@ def expand_on_product(lmax: int, theta_values: np.ndarray, phi_values: np.ndarra
                       coefficients: np.ndarray) -> tuple[np.ndarray, ...]:
     """A field of real-harmonic ``coefficients`` ((K,) or (K, q), K = (lmax + 1)^2) and its five
     derivatives (the order of :class:`HarmonicBasis`) at the product grid theta_values x
-    phi_values (theta-major, N = n_theta n_phi), each (N,) or (N, q). The same numbers as
-    :func:`product_grid_basis` times the coefficients (to round-off), summed over the grid's
-    factors: first over the degrees of each order at n_theta angles, then over the orders at
-    n_phi angles, never making an (N, K) matrix (several times fewer operations and memory
-    reads)."""
-    legendre, azimuthal, order_of = _product_factors(
-        lmax, np.ascontiguousarray(theta_values, dtype=float).tobytes(),
-        np.ascontiguousarray(phi_values, dtype=float).tobytes())
-    c = np.asarray(coefficients, dtype=float)
-    flat = c.reshape(c.shape[0], -1)  # (K, q)
-    n_theta, n_phi = legendre.shape[1], azimuthal.shape[1]
-    weighted = flat.T[:, None, :] * order_of.T[None, :, :]  # (q, 2 lmax + 1, K): each order's coefficients
-    # per theta derivative: the sum over the degrees of each order, (q, n_theta, 2 lmax + 1)
-    by_order = [np.matmul(legendre[d][None], weighted.transpose(0, 2, 1)) for d in range(3)]
-    out = []
-    for d_theta, d_phi in _DERIVATIVE_ORDERS:
-        values = np.matmul(by_order[d_theta], azimuthal[d_phi].T)  # (q, n_theta, n_phi)
-        out.append(np.moveaxis(values.reshape(values.shape[0], n_theta * n_phi), 0, -1).reshape((n_theta * n_phi,) + c.shape[1:]))
-    return tuple(out)
-
-
-@functools.lru_cache(maxsize=16)
-def _synthesis_factors(grid: AngularGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """For :meth:`Surface.on_grid`: the polar factors (2 lmax + 1, 3 n_theta, lmax + 1), P_l^|m|
-    and its first and second theta derivatives at the rings for each order m = -lmax..lmax (zero
-    for l < |m|), the azimuthal factors (2 lmax + 1, 3 n_phi) and their first and second phi
-    derivatives, and the slot of each coefficient (l, m) in the (m, l) table. Read-only;
-    memoised (a pure function of the grid, which :func:`angular_grid` memoises)."""
-    lmax, n_theta, n_phi = grid.lmax, grid.n_theta, grid.n_phi
-    orders = np.arange(-lmax, lmax + 1)
-    legendre = sph_legendre_p_all(lmax, lmax, grid.theta[::n_phi], diff_n=2)  # [d, l, m >= 0, ring]
-    polar = np.zeros((orders.size, 3, n_theta, lmax + 1))
-    for row, m in enumerate(orders):
-        polar[row, :, :, abs(m):] = np.moveaxis(legendre[:, abs(m):, abs(m)], 1, 2)
-    polar = polar.reshape(orders.size, 3 * n_theta, lmax + 1)
-    azimuthal = np.concatenate([_azimuthal(orders, grid.phi[:n_phi], d).T for d in range(3)], axis=1)
-    l, m = _degree_order(lmax)
-    rows = (m + lmax) * (lmax + 1) + l
-    for array in (polar, azimuthal, rows):
-        array.setflags(write=False)
-    return polar, azimuthal, rows
+    phi_values (theta-major, N = n_theta n_phi), each (N,) or (N, q): :func:`synthesize` (the
+    same numbers as :func:`product_grid_basis` times the coefficients, to round-off, several
+    times fewer operations and memory reads)."""
+    factors = _product_factors(lmax, np.ascontiguousarray(theta_values, dtype=float).tobytes(),
+                               np.ascontiguousarray(phi_values, dtype=float).tobytes())
+    return synthesize(factors, coefficients)
 
 
 def _project_columns(grid: AngularGrid, values: np.ndarray) -> np.ndarray:

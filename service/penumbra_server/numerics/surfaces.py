@@ -24,6 +24,7 @@ from .harmonics import (  # noqa: F401  (re-exported: the numerics import them f
     harmonic_basis,
     harmonic_values,
     product_grid_basis,
+    synthesize,
 )
 
 __all__ = [
@@ -139,19 +140,7 @@ class Surface:
         thirtieth of the basis matrices' size)."""
         if grid.lmax != self.lmax:
             raise ValueError(f"basis: built for lmax {grid.lmax}, surface has lmax {self.lmax}")
-        polar, azimuthal, rows = _synthesis_factors(grid)
-        orders, degrees = polar.shape[0], polar.shape[2]
-        table = np.zeros(orders * degrees)
-        table[rows] = self.coefficients
-        # (m, [d, ring]) sums over l of the d-th theta derivative of P_l^|m| times a_lm, then
-        # over m against the azimuthal factors and their phi derivatives: [d, ring, e, phi].
-        per_order = (polar @ table.reshape(orders, degrees, 1))[:, :, 0]
-        n_theta, n_phi = grid.n_theta, grid.n_phi
-        out = (per_order.T @ azimuthal).reshape(3, n_theta, 3, n_phi)
-        return RadiusDerivatives(
-            grid.theta, grid.phi, out[0, :, 0].ravel(), out[1, :, 0].ravel(), out[0, :, 1].ravel(),
-            out[2, :, 0].ravel(), out[1, :, 1].ravel(), out[0, :, 2].ravel(),
-        )
+        return RadiusDerivatives(grid.theta, grid.phi, *synthesize(_synthesis_factors(grid), self.coefficients))
 
     def at(self, theta, phi) -> RadiusDerivatives:
         """h and its derivatives at arbitrary directions, e.g. along a curve."""

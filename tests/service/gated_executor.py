@@ -19,7 +19,7 @@ class GatedExecutor:
     """A :class:`~penumbra_server.server.executors.FinderExecutor` over real worker processes.
 
     ``log`` holds ("arrived" | "done", label, iteration, seeded) tuples in order (``seeded``:
-    whether the job carried a seed surface). Thread-safe: the test thread opens gates of jobs
+    whether the job carried a seed surface; a measurement job never does). Thread-safe: the test thread opens gates of jobs
     waiting on the server's loop. Make it with :meth:`start` outside any event loop and call
     :meth:`close_pool` after the server stopped.
     """
@@ -41,7 +41,7 @@ class GatedExecutor:
         key = (job.label, int(job.data.iteration))
         gate = asyncio.Event()
         with self._lock:
-            self.log.append(("arrived", key[0], key[1], job.seed is not None))
+            self.log.append(("arrived", key[0], key[1], getattr(job, "seed", None) is not None))
             if self._all_open or key in self._opened:
                 gate.set()
             else:
@@ -49,7 +49,7 @@ class GatedExecutor:
         await gate.wait()
         outcome = await self.inner.run(job)
         with self._lock:
-            self.log.append(("done", key[0], key[1], job.seed is not None))
+            self.log.append(("done", key[0], key[1], getattr(job, "seed", None) is not None))
         return outcome
 
     def entries(self, what: str) -> list[tuple[str, int]]:

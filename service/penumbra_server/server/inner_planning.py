@@ -49,16 +49,22 @@ def inner_common_plans(settings: RunSettings, plans: Sequence[SurfacePlan], comm
 
 async def search_in_order(plans: Sequence[SurfacePlan], attempt: Callable[[SurfacePlan], Awaitable[SurfaceOutcome]],
                           displaced: MutableMapping[str, object], *, deferred: frozenset[int] = frozenset(),
-                          replan: Callable[[], Awaitable[Sequence[SurfacePlan]]] | None = None) -> list[SurfaceOutcome]:
+                          replan: Callable[[], Awaitable[Sequence[SurfacePlan]]] | None = None,
+                          measure: Callable[[SurfaceOutcome], Awaitable[SurfaceOutcome]] | None = None,
+                          ) -> list[SurfaceOutcome]:
     """Outcomes of ``plans`` in plan order. The plans searched on their own start at once; each plan
     searched inside a surface of this slice (``SurfacePlan.inside_of``) starts when that surface's
     search ends, handed the surface when it was found (not waiting for the other searches).
     ``deferred``: indices of plans that start only once ``replan`` (awaited once) has given the
     plans again (same labels, same positions); they are searched as planned then.
+    ``measure``: completes an outcome that came back with its measurements pending
+    (``SurfaceOutcome.measurement``: the plans another waits for are attempted with ``leads``, and
+    the attempt may leave their measurements apart); it runs while the search inside goes on.
     ``displaced`` (the run's) takes their solutions in the displacement representation, the
     seeds of the next slice."""
     if deferred and replan is None:
         raise ValueError("replan: required when plans are deferred")
+    finds: dict[int, asyncio.Future] = {}
     tasks: dict[int, asyncio.Future] = {}
     replanned = None
     try:
@@ -71,6 +77,14 @@ async def search_in_order(plans: Sequence[SurfacePlan], attempt: Callable[[Surfa
         async def search_outer(index: int) -> SurfaceOutcome:
             return await attempt(_leading(await plan_at(index), plans))
 
+        async def measured(index: int) -> SurfaceOutcome:
+            outcome = await asyncio.shield(finds[index])
+            if outcome.measurement is None:
+                return outcome
+            if measure is None:
+                raise ValueError(f"measure: required, the outcome of {outcome.label!r} came back unmeasured")
+            return await measure(outcome)
+
         async def search_inside(index: int) -> SurfaceOutcome:
             plan = await plan_at(index)
             outer_search = by_label.get(plan.inside_of)
@@ -82,14 +96,15 @@ async def search_in_order(plans: Sequence[SurfacePlan], attempt: Callable[[Surfa
 
         for index, plan in enumerate(plans):
             if plan.inside_of is None:
-                tasks[index] = asyncio.ensure_future(search_outer(index) if index in deferred else attempt(_leading(plan, plans)))
-        by_label = {plans[index].label: task for index, task in tasks.items()}
+                finds[index] = asyncio.ensure_future(search_outer(index))
+                tasks[index] = asyncio.ensure_future(measured(index))
+        by_label = {plans[index].label: task for index, task in finds.items()}
         for index, plan in enumerate(plans):
             if plan.inside_of is not None:
                 tasks[index] = asyncio.ensure_future(search_inside(index))
         outcomes = list(await asyncio.gather(*(tasks[index] for index in range(len(plans)))))
     finally:
-        for task in tasks.values():  # cancelled with the slice, or one search raised: end the others
+        for task in [*finds.values(), *tasks.values()]:  # cancelled with the slice, or one search raised: end the others
             task.cancel()
         if replanned is not None:
             replanned.cancel()

@@ -17,7 +17,8 @@ from ..numerics.slices import Patch, Slice, optional_fields
 from ..numerics.surfaces import Surface
 # Re-exported: the worker's measurements moved to quoted_quantities.py (tests and inner_jobs use them here).
 from .quoted_quantities import (ERROR_BAR_SOURCES, MULTIPOLE_N_MAX, STABILITY_LMAX_DROP, basic_quantities,  # noqa: F401
-                                error_bars, spin_measurement, spin_quantities, stability_quantities)
+                                error_bars, quoted_measurements, spin_measurement, spin_quantities,
+                                stability_quantities)
 
 __all__ = [
     "REASON_FOUND",
@@ -150,6 +151,10 @@ class SurfaceJob:
     relocate: "Relocation | None" = None
     #: Another search of the same slice waits for this one (SurfacePlan.leads): dispatched first.
     leads: bool = False
+    #: Leave spin, stability and error bars of a found surface to a job of their own
+    #: (:mod:`.measure_jobs`): the outcome comes back with the basic measures and ``unmeasured``
+    #: set, so a search waiting for the surface starts while the measurements run on another worker.
+    measure_apart: bool = False
 
 
 @dataclass(frozen=True, eq=False)
@@ -178,6 +183,11 @@ class SurfaceOutcome:
     #: A surface found in the displacement representation (numerics.displaced.DisplacedSurface),
     #: None otherwise; ``coefficients`` then hold its star-shaped form when it has one, else NaN.
     displaced: object | None = None
+    #: Found by a ``measure_apart`` job: the surface at the degree it was solved at, whose spin,
+    #: stability and error bars are still to be measured (:mod:`.measure_jobs`); None otherwise.
+    unmeasured: Surface | None = None
+    #: On the server only: the measurement job of an ``unmeasured`` surface, not yet run.
+    measurement: object | None = None
 
     @classmethod
     def failed(cls, label: str, message: str, *, wall_time_s: float = 0.0) -> "SurfaceOutcome":
@@ -310,25 +320,19 @@ def _run(job: SurfaceJob, start: float) -> SurfaceOutcome:
 def _found(job: SurfaceJob, kind: str, result, quantities: dict, message: str, total_iterations: int,
            start: float) -> SurfaceOutcome:
     """The outcome of a find: spin, stability and error bars measured as well, at the degree the
-    surface was solved at; reported (coefficients) at the job's degree, the archive's."""
+    surface was solved at (unless the job leaves them to a measurement job of their own:
+    ``measure_apart``); reported (coefficients) at the job's degree, the archive's."""
     solved = result.surface
     surface = solved.with_lmax(job.lmax) if solved.lmax > job.lmax else solved
     if solved.lmax > job.lmax:
         message = (f"{message}; solved at l_max {solved.lmax} (raised from {job.lmax}: not resolved "
                    f"at {job.lmax}), measured there, coefficients reported up to l = {job.lmax}")
-    measured_in = result.geometry if result.geometry is not None else job.data
-    spin, notes, measured = spin_measurement(solved, measured_in, job.interpolation_order)
-    quantities.update(spin)
-    stability, stability_notes = stability_quantities(solved, measured_in, job.interpolation_order)
-    quantities.update(stability)
-    notes.extend(stability_notes)
-    if getattr(measured_in, "order", job.interpolation_order) != job.interpolation_order:
-        measured = None  # measured at another interpolation order than the error bars compare at
-    errors, error_notes = error_bars(solved, job.data, job.interpolation_order, measured)
-    quantities.update(errors)
-    notes.extend(error_notes)
-    if notes:
-        message = "; ".join([message, *notes])
+    if not job.measure_apart:
+        measured_in = result.geometry if result.geometry is not None else job.data
+        quoted, notes = quoted_measurements(solved, measured_in, job.data, job.interpolation_order)
+        quantities.update(quoted)
+        if notes:
+            message = "; ".join([message, *notes])
     return SurfaceOutcome(
         label=job.label,
         found=True,
@@ -345,6 +349,7 @@ def _found(job: SurfaceJob, kind: str, result, quantities: dict, message: str, t
         wall_time_s=time.perf_counter() - start,
         guess=kind,
         residual_max_between_nodes=float(result.residual_max_between_nodes),
+        unmeasured=solved if job.measure_apart else None,
     )
 
 

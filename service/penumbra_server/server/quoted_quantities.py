@@ -13,7 +13,7 @@ from ..numerics.slices import Slice
 from ..numerics.surfaces import Surface
 
 __all__ = ["ERROR_BAR_SOURCES", "MULTIPOLE_N_MAX", "STABILITY_LMAX_DROP", "basic_quantities", "error_bars",
-           "spin_measurement", "spin_quantities", "stability_quantities"]
+           "quoted_measurements", "spin_measurement", "spin_quantities", "stability_quantities"]
 
 
 def basic_quantities(q) -> dict:
@@ -158,3 +158,23 @@ def stability_quantities(surface: Surface, data, order: int) -> tuple[dict, list
     except Exception as exc:  # an eigenvalue that cannot be made must not lose the surface
         return out, [f"stability not computed: {type(exc).__name__}: {exc}"]
     return out, []
+
+
+def quoted_measurements(surface: Surface, measured_in, data: Slice, order: int) -> tuple[dict, list[str]]:
+    """Everything quoted for a found surface beyond the basic measures: spin (with circumferences
+    and multipoles), stability, error bars; and the notes of the parts that could not be made.
+
+    ``measured_in``: where spin and stability are measured (the find's prepared geometry, or the
+    slice); ``data``: the cropped slice the error bars re-measure on; ``order``: the interpolation
+    order the error bars compare at.
+    """
+    quantities, notes, measured = spin_measurement(surface, measured_in, order)
+    stability, stability_notes = stability_quantities(surface, measured_in, order)
+    quantities.update(stability)
+    notes.extend(stability_notes)
+    if getattr(measured_in, "order", order) != order:
+        measured = None  # measured at another interpolation order than the error bars compare at
+    errors, error_notes = error_bars(surface, data, order, measured)
+    quantities.update(errors)
+    notes.extend(error_notes)
+    return quantities, notes

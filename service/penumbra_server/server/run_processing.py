@@ -23,7 +23,7 @@ from .pipeline import InFlight, drive_pipeline, may_overlap
 from .run_events import announced_view, notice_emission, slice_emission, surface_emission
 from .run_types import QueuedSlice
 from .scheduler import SurfacePlan
-from .search import search_plan
+from .search import complete_measurement, search_plan
 from .surface_state import SurfaceState, record_outcome
 
 __all__ = ["RunProcessing"]
@@ -96,7 +96,8 @@ class RunProcessing:
             await adding
         # Searches inside a surface of this slice (the inner common MOTS) wait for that surface.
         return await search_in_order(plans, lambda plan: self._attempt(plan, item), self.displaced, deferred=deferred,
-                                     replan=lambda: self._replanned(item, plans, earlier, deferred))
+                                     replan=lambda: self._replanned(item, plans, earlier, deferred),
+                                     measure=lambda outcome: complete_measurement(outcome, self.executor))
 
     async def _replanned(self, item: QueuedSlice, plans: list[SurfacePlan], earlier: list[asyncio.Future],
                          deferred: frozenset[int]) -> list[SurfacePlan]:
@@ -168,5 +169,6 @@ class RunProcessing:
                 log.exception("run %s: slice observer failed", self.run_id)
 
     async def _attempt(self, plan: SurfacePlan, item: QueuedSlice) -> SurfaceOutcome:
+        # A search another waits for comes back before its measurements (search_in_order runs them).
         return await search_plan(plan, item.slice_, executor=self.executor, settings=self.settings,
-                                 interpolation_order=self.options.interpolation_order)
+                                 interpolation_order=self.options.interpolation_order, measure_apart=plan.leads)

@@ -15,9 +15,10 @@ from ..numerics.surfaces import Surface
 from ._spec import RunSettings
 from .executors import FinderExecutor
 from .jobs import REASON_NO_CANDIDATE, REASON_NOT_CONVERGED, REASON_NOT_SEARCHED, REASON_OUTSIDE_DATA, SurfaceJob, SurfaceOutcome, crop_slice
+from .measure_jobs import measurement_job, with_measurement
 from .scheduler import SurfacePlan
 
-__all__ = ["search_plan", "crop_ghost_nodes"]
+__all__ = ["complete_measurement", "search_plan", "crop_ghost_nodes"]
 
 
 def crop_ghost_nodes(interpolation_order: int) -> int:
@@ -26,18 +27,22 @@ def crop_ghost_nodes(interpolation_order: int) -> int:
 
 
 async def search_plan(plan: SurfacePlan, slice_: Slice, *, executor: FinderExecutor, settings: RunSettings,
-                      interpolation_order: int) -> SurfaceOutcome:
-    """The outcome of ``plan`` in ``slice_`` (a plan with ``search`` False: "not searched")."""
+                      interpolation_order: int, measure_apart: bool = False) -> SurfaceOutcome:
+    """The outcome of ``plan`` in ``slice_`` (a plan with ``search`` False: "not searched").
+
+    ``measure_apart``: a found surface comes back before its spin, stability and error bars are
+    measured, carrying the job that measures them (``outcome.measurement``; run it with
+    :func:`complete_measurement`)."""
     if not plan.search:
         return SurfaceOutcome(label=plan.label, found=False, reason=REASON_NOT_SEARCHED, status=-1,
                               message=plan.note or "not searched in this slice")
     if plan.inside_of is not None and plan.outer is None:
         return SurfaceOutcome(label=plan.label, found=False, reason=REASON_NOT_SEARCHED, status=-1,
                               message=f"not searched: {plan.inside_of!r}, which it lies inside, was not found in this slice")
-    outcome = await _find(plan, slice_, executor, settings, interpolation_order)
+    outcome = await _find(plan, slice_, executor, settings, interpolation_order, measure_apart)
     if outcome.reason == REASON_OUTSIDE_DATA and plan.retry_wider:
         # The crop may have cut what the surface needs: once more on twice the region.
-        outcome = await _find(plan.widened(2.0), slice_, executor, settings, interpolation_order)
+        outcome = await _find(plan.widened(2.0), slice_, executor, settings, interpolation_order, measure_apart)
     if outcome.found and plan.must_enclose:
         outside = plan.points_outside(Surface(outcome.centre, outcome.lmax, outcome.coefficients))
         if outside:
@@ -53,8 +58,16 @@ async def search_plan(plan: SurfacePlan, slice_: Slice, *, executor: FinderExecu
     return outcome
 
 
+async def complete_measurement(outcome: SurfaceOutcome, executor: FinderExecutor) -> SurfaceOutcome:
+    """``outcome`` with its pending measurement (``outcome.measurement``) run on ``executor`` and
+    merged in; an outcome without one as it is."""
+    if outcome.measurement is None:
+        return outcome
+    return with_measurement(outcome, await executor.run(outcome.measurement))
+
+
 async def _find(plan: SurfacePlan, slice_: Slice, executor: FinderExecutor, settings: RunSettings,
-                order: int) -> SurfaceOutcome:
+                order: int, measure_apart: bool = False) -> SurfaceOutcome:
     # The crop copies sub-boxes of the slice (milliseconds to seconds for large slices): off the event loop.
     data = await asyncio.to_thread(crop_slice, slice_, plan.box_lower, plan.box_upper,
                                    ghost_nodes=crop_ghost_nodes(order))
@@ -83,5 +96,6 @@ async def _find(plan: SurfacePlan, slice_: Slice, executor: FinderExecutor, sett
         may_not_exist=plan.may_not_exist,
         relocate=plan.relocate,
         leads=plan.leads,
+        measure_apart=measure_apart,
     )
-    return await executor.run(job)
+    return measurement_job(job, await executor.run(job))

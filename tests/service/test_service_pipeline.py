@@ -18,7 +18,9 @@ from penumbra_server.numerics.slices import Slice
 from penumbra_server.numerics.spacetimes import sample_patch
 from penumbra_server.server import BackgroundServer, ServerOptions
 from penumbra_server.server.dispatch import FairDispatcher
-from penumbra_server.server.jobs import SurfaceJob
+from penumbra_server.server.inner_planning import search_in_order
+from penumbra_server.server.jobs import REASON_NOT_SEARCHED, SurfaceJob, SurfaceOutcome
+from penumbra_server.server.scheduler import SurfacePlan
 
 from gated_executor import GatedExecutor
 from service_support import LONE_CENTRE, box, lone_hole, lone_hole_slice, lone_spec, wait_until
@@ -158,6 +160,47 @@ def test_within_a_run_the_oldest_slice_and_then_a_leading_search_go_first():
     finally:
         gated.close_pool()
     assert gated.entries("arrived") == [("A", 0), ("C", 1), ("B", 1), ("A", 2), ("B", 2)]
+
+
+def test_a_leading_search_hands_its_slot_to_the_measurement_of_its_surface():
+    """When a ``leads`` job ends, the job its outcome queues next (the surface's measurement, via
+    search_in_order, a few event-loop turns later) takes the slot before a later slice's job that
+    was waiting already; without the hand-over the later job would."""
+    gated = GatedExecutor.start(1)
+    box_ = (np.full(3, -1.0), np.full(3, 1.0))
+    plans = [SurfacePlan("C", None, None, None, *box_),
+             SurfacePlan("C_inner", None, None, None, *box_, inside_of="C", search=False)]
+
+    async def scenario():
+        dispatcher = FairDispatcher(gated)  # one slot
+
+        async def attempt(plan):
+            if not plan.search:
+                return SurfaceOutcome(label=plan.label, found=False, reason=REASON_NOT_SEARCHED, status=-1,
+                                      message="not searched")
+            job = dataclasses.replace(_small_job(plan.label, 1), leads=plan.leads)
+            outcome = await dispatcher.run("run-a", job)
+            # As search.py does: the measurement of the surface comes with the outcome.
+            return dataclasses.replace(outcome, measurement=_small_job(f"{plan.label} measured", 1))
+
+        async def measure(outcome):
+            measured = await dispatcher.run("run-a", outcome.measurement)
+            return dataclasses.replace(outcome, measurement=None, message=measured.label)
+
+        search = asyncio.ensure_future(search_in_order(plans, attempt, {}, measure=measure))
+        await asyncio.sleep(0)  # the leading job is at the executor, held at its gate
+        later = asyncio.ensure_future(dispatcher.run("run-a", _small_job("A", 2)))
+        await asyncio.sleep(0)
+        assert dispatcher.running == 1 and dispatcher.waiting("run-a") == 1
+        gated.open_all()
+        return await asyncio.gather(search, later)
+
+    try:
+        outcomes, _ = asyncio.run(scenario())
+    finally:
+        gated.close_pool()
+    assert gated.entries("arrived") == [("C", 1), ("C measured", 1), ("A", 2)]
+    assert outcomes[0].message == "C measured" and outcomes[0].measurement is None
 
 
 def test_a_second_run_is_served_within_one_round_of_a_backlog(tmp_path):

@@ -12,6 +12,11 @@ the earlier slices' outcomes wait for every search of those), and within a slice
 that another waits for (``SurfaceJob.leads``: the surface the inner common MOTS is searched
 inside) before the rest; otherwise first come, first served.
 
+Hand-over: when a ``leads`` job ends, its slot is kept for up to :data:`HANDOVER_TURNS` turns of
+the event loop, until a job of the same run and slice is waiting (the found surface's measurement,
+queued as soon as its outcome is delivered): that job of the older slice then takes the slot, not
+a later slice's job that happened to be queued already. Counted in loop turns, not seconds.
+
 Everything here runs on the server's event loop thread.
 """
 
@@ -23,7 +28,11 @@ from collections import deque
 from .executors import FinderExecutor
 from .jobs import SurfaceJob, SurfaceOutcome
 
-__all__ = ["FairDispatcher", "RunDispatch"]
+__all__ = ["FairDispatcher", "RunDispatch", "HANDOVER_TURNS"]
+
+#: Event-loop turns a finished ``leads`` job keeps its slot for a follow-up of its slice (module
+#: docstring); the measurement job arrives within a handful.
+HANDOVER_TURNS = 20
 
 
 class FairDispatcher:
@@ -93,11 +102,11 @@ class FairDispatcher:
             if future.done():  # withdrawn (the run stopped) before its turn
                 continue
             self.dispatched.append((run_id, job.label, int(job.data.iteration)))
-            task = asyncio.ensure_future(self._execute(job, future))
+            task = asyncio.ensure_future(self._execute(run_id, job, future))
             self._running.add(task)
             task.add_done_callback(self._finished)
 
-    async def _execute(self, job: SurfaceJob, future: asyncio.Future) -> None:
+    async def _execute(self, run_id: str, job: SurfaceJob, future: asyncio.Future) -> None:
         try:
             outcome = await self.executor.run(job)
         except asyncio.CancelledError:
@@ -110,6 +119,13 @@ class FairDispatcher:
             return
         if not future.done():
             future.set_result(outcome)
+        if getattr(job, "leads", False):
+            iteration = int(job.data.iteration)
+            for _ in range(HANDOVER_TURNS):
+                if any(int(queued.data.iteration) == iteration and not waiter.done()
+                       for _, queued, waiter in self._waiting.get(run_id, ())):
+                    break
+                await asyncio.sleep(0)
 
     def _finished(self, task: asyncio.Task) -> None:
         self._running.discard(task)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import time
 
 import numpy as np
@@ -62,3 +63,13 @@ def wait_until(condition, what: str, timeout_s: float) -> None:
         if time.monotonic() > deadline:
             raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
         time.sleep(0.02)
+
+
+async def within_turns(condition, what, turns: int = 1000) -> None:
+    """Let the event loop turn until ``condition()`` holds; fail after ``turns`` turns naming
+    ``what()`` (turns, not seconds: the machine's speed does not enter)."""
+    for _ in range(turns):
+        if condition():
+            return
+        await asyncio.sleep(0)
+    raise AssertionError(f"not reached within {turns} event-loop turns: {what()}")

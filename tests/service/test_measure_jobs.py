@@ -19,6 +19,8 @@ from penumbra_server.server.jobs import REASON_FOUND, SurfaceJob, SurfaceOutcome
 from penumbra_server.server.measure_jobs import MeasuredQuantities, MeasureJob, measurement_job, with_measurement
 from penumbra_server.server.scheduler import SurfacePlan
 
+from service_support import within_turns
+
 
 def _hole_job(**changes) -> SurfaceJob:
     """A lone Brill-Lindquist hole of mass 1 (horizon: the sphere of radius 1/2), conformal-W data,
@@ -100,11 +102,7 @@ def test_the_inside_search_starts_before_the_outer_surface_is_measured():
             return with_measurement(outcome, MeasuredQuantities(outcome.label, {"dimensionless_spin": 0.25}))
 
         async def until(condition):
-            for _ in range(1000):  # event-loop turns, not seconds: fails if the condition never holds
-                if condition():
-                    return
-                await asyncio.sleep(0)
-            raise AssertionError(f"not reached; started {started}")
+            await within_turns(condition, lambda: f"started {started}")
 
         search = asyncio.ensure_future(search_in_order(plans, attempt, {}, measure=measure))
         await until(lambda: "common_inner" in started and "measure common" in started)

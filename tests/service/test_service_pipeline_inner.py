@@ -24,6 +24,7 @@ from penumbra_server.server.jobs import REASON_FOUND, SurfaceOutcome
 from penumbra_server.server.scheduler import SurfacePlan
 
 from gated_executor import GatedExecutor
+from service_support import within_turns
 from tracking_support import bl_patches, cube
 
 MASS = 0.5
@@ -142,11 +143,7 @@ def test_an_inside_search_starts_when_its_own_outer_search_ends_with_the_replann
                     SurfacePlan("common_inner", None, None, None, *box, inside_of="common", lmax=6)]
 
         async def until(condition):
-            for _ in range(1000):  # event-loop turns, not seconds: fails if the condition never holds
-                if condition():
-                    return
-                await asyncio.sleep(0)
-            raise AssertionError(f"not reached; started {started}")
+            await within_turns(condition, lambda: f"started {started}")
 
         search = asyncio.ensure_future(search_in_order(plans, attempt, {}, deferred=frozenset({1, 2}), replan=replan))
         await until(lambda: started == ["A"])

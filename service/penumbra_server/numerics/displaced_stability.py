@@ -18,7 +18,7 @@ import scipy.linalg
 from .curvature import christoffel_lower, spatial_ricci
 from .displaced import DisplacedSurface, embedding_on_product_grid
 from .sources import as_tracked_source
-from .stability import StabilitySpectrum
+from .stability import StabilitySpectrum, galerkin_blocks
 from .surfaces import angular_grid
 
 __all__ = ["displaced_stability_spectra", "displaced_stability_spectrum"]
@@ -61,18 +61,8 @@ def _matrices(surface: DisplacedSurface, data, lmax: int, order: int):
     omega_up = np.einsum("nAB,nB->nA", q2_inv, omega_low)
     omega_sq = np.einsum("nA,nA->n", omega_up, omega_low)
     density = np.sqrt(np.linalg.det(q2)) / np.sin(theta)  # dA per solid angle of the parameter sphere
-    B = grid.basis
     wd = w * density
-    dY = np.stack([B.d_theta, B.d_phi], axis=1)
-    grad_Y = np.einsum("nAB,nBj->nAj", q2_inv, dY)
-    # Sums over the nodes as matrix products (BLAS; einsum's own loops are several times slower).
-    n_coef = dY.shape[-1]
-    stiffness = (dY * wd[:, None, None]).reshape(-1, n_coef).T @ grad_Y.reshape(-1, n_coef)
-    drift = (B.Y * wd[:, None]).T @ np.einsum("nA,nAj->nj", omega_up, dY)
-
-    def potential(values):
-        return (B.Y * (wd * values)[:, None]).T @ B.Y
-
+    stiffness, drift, potential = galerkin_blocks(grid.basis, wd, q2_inv, omega_up)
     operator = stiffness + drift - drift.T + potential(0.5 * scalar_2d - 0.5 * square(chi) - omega_sq)
     symmetrized = stiffness + potential(0.5 * scalar_2d - 0.5 * square(chi))
     return operator, potential(np.ones_like(theta)), symmetrized, expansion, float(np.sum(wd))

@@ -46,7 +46,8 @@ from .sources import as_tracked_source
 from .intrinsic import surface_on_product
 from .surfaces import Surface, angular_grid, unit_vectors
 
-__all__ = ["StabilityMatrices", "StabilitySpectrum", "principal_eigenvalue", "stability_matrices", "stability_spectrum"]
+__all__ = ["StabilityMatrices", "StabilitySpectrum", "galerkin_blocks", "principal_eigenvalue", "stability_matrices",
+           "stability_spectrum"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -118,6 +119,25 @@ def _tangent_vectors(rd, theta, phi):
     X_t = rd.h_t[:, None] * n + rd.h[:, None] * et
     X_p = rd.h_p[:, None] * n + (rd.h * np.sin(theta))[:, None] * ep
     return np.stack([X_t, X_p], axis=1)  # (N, 2, 3)
+
+
+def galerkin_blocks(basis, wd: np.ndarray, q2_inv: np.ndarray, omega_up: np.ndarray):
+    """The Galerkin pieces of the stability operator over the harmonics of ``basis`` at the
+    quadrature nodes: the stiffness (d_A Y_i q^AB d_B Y_j), the drift (Y_i Omega^A d_A Y_j), and
+    ``potential(values)``, the mass-like product of Y_i values Y_j; all summed with the weights
+    ``wd`` (N,) (quadrature weight times dA per solid angle). ``q2_inv``: (N, 2, 2) inverse
+    induced metric; ``omega_up``: (N, 2) Omega^A. Returns (stiffness, drift, potential)."""
+    dY = np.stack([basis.d_theta, basis.d_phi], axis=1)  # (N, 2, n_coef)
+    grad_Y = np.einsum("nAB,nBj->nAj", q2_inv, dY)  # raised
+    # Sums over the nodes as matrix products (BLAS; einsum's own loops are several times slower).
+    n_coef = dY.shape[-1]
+    stiffness = (dY * wd[:, None, None]).reshape(-1, n_coef).T @ grad_Y.reshape(-1, n_coef)
+    drift = (basis.Y * wd[:, None]).T @ np.einsum("nA,nAj->nj", omega_up, dY)
+
+    def potential(values):
+        return (basis.Y * (wd * values)[:, None]).T @ basis.Y
+
+    return stiffness, drift, potential
 
 
 def stability_matrices(
@@ -201,18 +221,8 @@ def stability_matrices(
         raise ValueError(f"matter_term: expected {theta.size} values (one per quadrature node), got {matter.size}")
     y_term = 0.5 * square(chi) + matter
 
-    B = grid.basis
     wd = w * density
-    dY = np.stack([B.d_theta, B.d_phi], axis=1)  # (N, 2, n_coef)
-    grad_Y = np.einsum("nAB,nBj->nAj", q2_inv, dY)  # raised
-    # Sums over the nodes as matrix products (BLAS; einsum's own loops are several times slower).
-    n_coef = dY.shape[-1]
-    stiffness = (dY * wd[:, None, None]).reshape(-1, n_coef).T @ grad_Y.reshape(-1, n_coef)
-    drift = (B.Y * wd[:, None]).T @ np.einsum("nA,nAj->nj", omega_up, dY)
-
-    def potential(values):
-        return (B.Y * (wd * values)[:, None]).T @ B.Y
-
+    stiffness, drift, potential = galerkin_blocks(grid.basis, wd, q2_inv, omega_up)
     operator = stiffness + drift - drift.T + potential(0.5 * scalar_2d - y_term - omega_sq)
     return StabilityMatrices(
         lmax=lmax,

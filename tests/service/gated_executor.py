@@ -19,8 +19,8 @@ class GatedExecutor:
     """A :class:`~penumbra_server.server.executors.FinderExecutor` over real worker processes.
 
     ``log`` holds ("arrived" | "done", label, iteration, seeded) tuples in order (``seeded``:
-    whether the job carried a seed surface; a measurement job never does). Thread-safe: the test thread opens gates of jobs
-    waiting on the server's loop. Make it with :meth:`start` outside any event loop and call
+    whether the job carried a seed surface; a measurement job never does). Thread-safe: the test
+    thread opens gates of jobs waiting on the server's loop. Make it with :meth:`start` outside any event loop and call
     :meth:`close_pool` after the server stopped.
     """
 

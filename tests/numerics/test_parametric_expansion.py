@@ -49,6 +49,8 @@ def test_the_fast_contractions_agree_with_the_index_by_index_formula():
 
 
 def test_a_coordinate_sphere_in_flat_space_expands_at_two_over_its_radius():
+    # Theta = 2/r and dA = r^2 sin(theta) dtheta dphi for a round sphere in flat space with K_ij = 0
+    # (common practice: the mean curvature of a sphere).
     radius, n = 1.7, 64
     theta, phi = np.meshgrid(np.linspace(0.2, 2.9, 8), np.linspace(0.0, 6.0, 8), indexing="ij")
     theta, phi = theta.ravel(), phi.ravel()
